@@ -520,8 +520,12 @@ def check_output_path(out: str | Path, inputs: Sequence[str | Path] = ()) -> Pat
         existing = existing.parent
     if not existing.is_dir():
         raise InputError(out, f"output folder {existing} is not a folder")
-    if not os.access(existing, os.W_OK | os.X_OK):
-        raise InputError(out, f"output folder {existing} is not writable")
+    try:  # os.access says yes to root even where writing fails: really try
+        fd, probe = tempfile.mkstemp(prefix=".plexwash-probe-", dir=existing)
+    except OSError as exc:
+        raise InputError(out, f"output folder {existing} is not writable ({exc.strerror})") from None
+    os.close(fd)
+    os.unlink(probe)
     return out
 
 

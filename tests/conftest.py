@@ -1,0 +1,50 @@
+"""Shared fixtures: small synthetic stacks and the demo cohort's generator."""
+
+from __future__ import annotations
+
+import importlib.util
+import os
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "example_stack"
+
+# Two thread pools (BLAS and numba) fighting over two cores make everything slower.
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
+
+def load_generator():
+    """The demo cohort generator, imported from its file (it is not part of the package)."""
+    spec = importlib.util.spec_from_file_location("plexwash_demo_generate", DEMO / "generate.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+@pytest.fixture(scope="session")
+def generator():
+    return load_generator()
+
+
+@pytest.fixture(scope="session")
+def demo_dir() -> Path:
+    return DEMO
+
+
+@pytest.fixture
+def small_stack() -> np.ndarray:
+    """Three channels of Poisson counts, 64 x 48 px (not square, to catch axis mix-ups)."""
+    rng = np.random.default_rng(7)
+    return rng.poisson(3.0, size=(3, 64, 48)).astype(np.float32)
+
+
+@pytest.fixture
+def small_roi(tmp_path, small_stack) -> Path:
+    from plexwash.qc.io import write_ome_tiff
+
+    path = tmp_path / "small.ome.tiff"
+    write_ome_tiff(path, small_stack, ["Nd145", "Nd146", "Ir191"], pixel_size=(0.5, 0.5))
+    return path

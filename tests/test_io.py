@@ -1,0 +1,307 @@
+"""Reading and writing ROIs: formats, round trips checked by outside readers, bad input."""
+
+from __future__ import annotations
+
+import json
+import os
+import stat
+
+import dask.array as da
+import numpy as np
+import pytest
+import tifffile
+import zarr
+from plexwash.qc import io
+from plexwash.qc.errors import InputError
+from plexwash.qc.io import (
+    check_output_path,
+    list_cohort,
+    read_panel,
+    read_roi,
+    sha256_path,
+    write_ome_tiff,
+    write_ome_zarr,
+)
+
+NAMES = ["Nd145", "Nd146", "Ir191"]
+
+
+# ----------------------------------------------------------------- OME-TIFF round trip
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.float32])
+def test_ome_tiff_round_trip_parsed_by_ome_types(tmp_path, dtype):
+    rng = np.random.default_rng(1)
+    stack = rng.integers(0, 200, size=(3, 70, 90)).astype(dtype)
+    path = tmp_path / "r.ome.tiff"
+    write_ome_tiff(path, stack, NAMES, pixel_size=(0.8, 0.5))
+    # Outside reader 1: tifffile reads back the same pixels with the CYX axes.
+    with tifffile.TiffFile(path) as tif:
+        assert tif.is_ome
+        assert tif.series[0].axes == "CYX"
+        assert tif.pages[0].is_tiled
+        assert tif.pages[0].compression == tifffile.COMPRESSION.ZSTD
+        np.testing.assert_array_equal(tif.asarray(), stack)
+        xml = tif.ome_metadata
+    # Outside reader 2: ome-types parses the OME-XML against the OME schema model.
+    import ome_types
+
+    ome = ome_types.from_xml(xml)
+    pixels = ome.images[0].pixels
+    assert [c.name for c in pixels.channels] == NAMES
+    assert pixels.physical_size_x == pytest.approx(0.5)
+    assert pixels.physical_size_y == pytest.approx(0.8)
+    roi = read_roi(path)
+    assert roi.channels == tuple(NAMES)
+    assert roi.pixel_size == (pytest.approx(0.8), pytest.approx(0.5))
+    assert roi.data.dtype == dtype
+    np.testing.assert_array_equal(roi.data, stack)
+
+
+def test_reads_stripped_and_tiled_ome_tiff_written_by_tifffile(tmp_path, small_stack):
+    for tile in (None, (32, 32)):
+        path = tmp_path / f"t{tile is None}.ome.tiff"
+        tifffile.imwrite(path, small_stack, ome=True, photometric="minisblack", tile=tile,
+                         metadata={"axes": "CYX", "Channel": {"Name": NAMES}})
+        roi = read_roi(path)
+        assert roi.channels == tuple(NAMES)
+        np.testing.assert_array_equal(roi.data, small_stack)
+
+
+def test_big_stacks_read_lazily_as_dask(tmp_path, small_stack, monkeypatch):
+    path = tmp_path / "big.ome.tiff"
+    write_ome_tiff(path, small_stack, NAMES)
+    monkeypatch.setattr(io, "LAZY_BYTES", 100)
+    roi = read_roi(path)
+    assert isinstance(roi.data, da.Array)
+    np.testing.assert_array_equal(roi.data.compute(), small_stack)
+
+
+def test_dask_stack_written_through_spill_matches(tmp_path, small_stack, monkeypatch):
+    monkeypatch.setattr(io, "IN_MEMORY_WRITE_BYTES", 10)
+    lazy = da.from_array(small_stack, chunks=(3, 20, 17))
+    path = tmp_path / "w.ome.tiff"
+    write_ome_tiff(path, lazy * 2, NAMES)
+    np.testing.assert_array_equal(tifffile.imread(path), small_stack * 2)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["w.ome.tiff"]  # no temporary left
+
+
+def test_plain_multipage_tiff_with_panel(tmp_path, small_stack):
+    path = tmp_path / "plain.tiff"
+    tifffile.imwrite(path, small_stack, photometric="minisblack")
+    panel = tmp_path / "panel.csv"
+    panel.write_text("channel,label,use\nNd145,membrane-A,yes\nNd146,nuclear-B,yes\nIr191,DNA,no\n")
+    roi = read_roi(path, panel=panel)
+    assert roi.channels == tuple(NAMES)
+    assert roi.labels == ("membrane-A", "nuclear-B", "DNA")
+    assert roi.use == (True, True, False)
+    np.testing.assert_array_equal(roi.data, small_stack)
+
+
+def test_panel_reorders_labels_to_ome_channel_order(tmp_path, small_roi):
+    panel = tmp_path / "panel.csv"
+    panel.write_text("channel,label,use\nIr191,DNA,no\nNd145,A,yes\nNd146,B,yes\n")
+    roi = read_roi(small_roi, panel=panel)
+    assert roi.labels == ("A", "B", "DNA")
+    assert roi.use == (True, True, False)
+
+
+# ----------------------------------------------------------------- OME-Zarr
+
+
+def test_ome_zarr_written_validates_against_ngff_05(tmp_path, small_stack):
+    path = tmp_path / "r.ome.zarr"
+    write_ome_zarr(path, da.from_array(small_stack, chunks=(3, 32, 32)), NAMES, pixel_size=(0.5, 0.5))
+    # Outside reference: ome-zarr-models validates the NGFF 0.5 image metadata.
+    from ome_zarr_models.v05.image import Image
+
+    image = Image.from_zarr(zarr.open_group(path, mode="r"))
+    ome = image.attributes.ome
+    assert ome.version == "0.5"
+    assert [a.name for a in ome.multiscales[0].axes] == ["c", "y", "x"]
+    assert [c["label"] for c in ome.omero["channels"]] == NAMES
+    roi = read_roi(path)
+    assert roi.channels == tuple(NAMES)
+    assert roi.pixel_size == (0.5, 0.5)
+    np.testing.assert_array_equal(np.asarray(roi.data), small_stack)
+
+
+def test_reads_ngff_04_layout(tmp_path, small_stack):
+    path = tmp_path / "old.ome.zarr"
+    group = zarr.open_group(path, mode="w", zarr_format=2)
+    arr = group.create_array("0", shape=small_stack.shape, dtype=small_stack.dtype, chunks=(1, 32, 32))
+    arr[...] = small_stack
+    # NGFF 0.4 keeps multiscales and omero at the top of .zattrs (ngff.openmicroscopy.org/0.4).
+    group.attrs.update({
+        "multiscales": [{"version": "0.4", "axes": [{"name": "c", "type": "channel"},
+                                                     {"name": "y", "type": "space"},
+                                                     {"name": "x", "type": "space"}],
+                         "datasets": [{"path": "0", "coordinateTransformations":
+                                       [{"type": "scale", "scale": [1, 2.0, 2.0]}]}]}],
+        "omero": {"channels": [{"label": n} for n in NAMES]},
+    })
+    roi = read_roi(path)
+    assert roi.channels == tuple(NAMES)
+    assert roi.pixel_size == (2.0, 2.0)
+    np.testing.assert_array_equal(np.asarray(roi.data), small_stack)
+
+
+# ----------------------------------------------------------------- bad input
+
+
+def _expect(problem: str, func, *args, **kwargs):
+    with pytest.raises(InputError) as info:
+        func(*args, **kwargs)
+    assert problem in info.value.problem, info.value.problem
+    return info.value
+
+
+def test_missing_file(tmp_path):
+    err = _expect("not found", read_roi, tmp_path / "nope.ome.tiff")
+    assert err.path.endswith("nope.ome.tiff")
+
+
+def test_empty_file(tmp_path):
+    path = tmp_path / "empty.ome.tiff"
+    path.touch()
+    _expect("empty", read_roi, path)
+
+
+def test_not_a_tiff(tmp_path):
+    path = tmp_path / "notes.tiff"
+    path.write_text("these are not pixels")
+    _expect("not a readable TIFF", read_roi, path)
+
+
+@pytest.mark.parametrize("keep", [0.9, 0.5, 0.2])
+def test_truncated_file_detected(tmp_path, small_stack, keep):
+    full = tmp_path / "full.ome.tiff"
+    write_ome_tiff(full, small_stack, NAMES)
+    data = full.read_bytes()
+    cut = tmp_path / "cut.ome.tiff"
+    cut.write_bytes(data[: int(len(data) * keep)])
+    _expect("truncated", read_roi, cut)
+
+
+def test_two_d_image_refused(tmp_path, small_stack):
+    path = tmp_path / "flat.ome.tiff"
+    tifffile.imwrite(path, small_stack[0], ome=True, photometric="minisblack", metadata={"axes": "YX"})
+    _expect("2-D image", read_roi, path)
+
+
+def test_unknown_axes_refused(tmp_path):
+    path = tmp_path / "zstack.ome.tiff"
+    tifffile.imwrite(path, np.zeros((2, 3, 16, 16), np.uint16), ome=True, photometric="minisblack",
+                     metadata={"axes": "ZCYX"})
+    _expect("unsupported axes", read_roi, path)
+
+
+def test_panel_not_matching_channels(tmp_path, small_roi):
+    panel = tmp_path / "panel.csv"
+    panel.write_text("channel,label,use\nNd145,A,yes\nSm147,B,yes\nIr191,DNA,yes\n")
+    err = _expect("do not match", read_roi, small_roi, panel=panel)
+    assert "Sm147" in err.problem and "Nd146" in err.problem
+    assert err.path.endswith("panel.csv")
+
+
+def test_panel_with_wrong_count_for_plain_tiff(tmp_path, small_stack):
+    path = tmp_path / "plain.tiff"
+    tifffile.imwrite(path, small_stack, photometric="minisblack")
+    panel = tmp_path / "panel.csv"
+    panel.write_text("channel,label,use\nNd145,A,yes\nNd146,B,yes\n")
+    _expect("lists 2 channels", read_roi, path, panel=panel)
+
+
+def test_plain_tiff_without_panel(tmp_path, small_stack):
+    path = tmp_path / "plain.tiff"
+    tifffile.imwrite(path, small_stack, photometric="minisblack")
+    _expect("--panel", read_roi, path)
+
+
+@pytest.mark.parametrize("text, problem", [
+    ("channel,label\nNd145,A\n", "missing column"),
+    ("channel,label,use\nNd145,A,maybe\n", "use must be"),
+    ("channel,label,use\nNd145,A,yes\nNd145,B,yes\n", "duplicate channel"),
+    ("", "empty"),
+])
+def test_bad_panel(tmp_path, text, problem):
+    panel = tmp_path / "panel.csv"
+    panel.write_text(text)
+    _expect(problem, read_panel, panel)
+
+
+def test_duplicate_channel_names(tmp_path, small_stack):
+    path = tmp_path / "dup.ome.tiff"
+    write_ome_tiff(path, small_stack, ["Nd145", "Nd145", "Ir191"])
+    err = _expect("duplicate channel", read_roi, path)
+    assert "Nd145" in err.problem
+
+
+@pytest.mark.parametrize("lazy", [False, True])
+def test_non_finite_pixels_refused_with_count(tmp_path, small_stack, lazy):
+    stack = small_stack.copy()
+    stack[0, 3, 4] = np.nan
+    stack[2, 10, 11] = np.inf
+    stack[1, 0, 0] = -np.inf
+    path = tmp_path / "nan.ome.tiff"
+    write_ome_tiff(path, stack, NAMES)
+    err = _expect("3 pixel(s) are NaN or Inf", read_roi, path, lazy=lazy)
+    assert err.path == str(path)
+
+
+def test_output_equal_to_input_refused(small_roi):
+    _expect("is the input", check_output_path, small_roi, [small_roi])
+    other = small_roi.parent / "." / small_roi.name
+    _expect("is the input", check_output_path, other, [small_roi])
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root can write into read-only folders")
+def test_unwritable_output_folder_non_root(tmp_path):
+    locked = tmp_path / "locked"
+    locked.mkdir()
+    locked.chmod(stat.S_IRUSR | stat.S_IXUSR)
+    try:
+        _expect("not writable", check_output_path, locked / "out.ome.tiff")
+    finally:
+        locked.chmod(stat.S_IRWXU)
+
+
+def test_unwritable_output_folder(tmp_path):
+    # /proc refuses new files even to root (Linux procfs), so this runs everywhere.
+    _expect("not writable", check_output_path, "/proc/plexwash-out/out.ome.tiff")
+
+
+def test_output_under_a_file_refused(tmp_path, small_roi):
+    # Even root cannot create a folder below a regular file: always testable.
+    _expect("is not a folder", check_output_path, small_roi / "sub" / "out.ome.tiff")
+
+
+def test_inputs_are_never_modified(tmp_path, small_roi):
+    before = sha256_path(small_roi)
+    roi = read_roi(small_roi)
+    write_ome_tiff(tmp_path / "copy.ome.tiff", np.asarray(roi.data) + 1, roi.channels)
+    assert sha256_path(small_roi) == before
+
+
+def test_list_cohort_sorted_and_filtered(tmp_path, small_stack):
+    for name in ["b.ome.tiff", "a.ome.tiff"]:
+        write_ome_tiff(tmp_path / name, small_stack, NAMES)
+    (tmp_path / "notes.txt").write_text("x")
+    assert [p.name for p in list_cohort(tmp_path)] == ["a.ome.tiff", "b.ome.tiff"]
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    _expect("no ROI found", list_cohort, empty)
+
+
+def test_sha256_of_folder_changes_with_content(tmp_path, small_stack):
+    path = tmp_path / "r.ome.zarr"
+    write_ome_zarr(path, small_stack, NAMES)
+    first = sha256_path(path)
+    write_ome_zarr(path, small_stack + 1, NAMES)
+    assert sha256_path(path) != first
+    # hashlib is the reference for single files
+    import hashlib
+
+    meta = path / "zarr.json"
+    assert sha256_path(meta) == hashlib.sha256(meta.read_bytes()).hexdigest()
+    assert json.loads(meta.read_text())["attributes"]["ome"]["version"] == "0.5"
