@@ -19,6 +19,7 @@ import tempfile
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator, Sequence
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 
@@ -573,12 +574,23 @@ def write_text_atomic(path: str | Path, text: str) -> None:
     _replace(tmp, path)
 
 
-def write_stack(path: str | Path, data, channels: Sequence[str], *, pixel_size=None, settings=None) -> Path:
-    """Write a stack in the format of ``settings`` (an :class:`OutputSettings`)."""
+class Written(NamedTuple):
+    """What a writer returns: the final path and the values computed alongside the pixels."""
+
+    path: Path
+    extra: list
+
+
+def write_stack(path, data, channels, *, pixel_size=None, settings=None, compute_with=()) -> Written:
+    """Write a stack in the format of ``settings`` (an :class:`OutputSettings`).
+
+    ``compute_with`` holds dask values (e.g. per-channel sums) to compute in the same
+    pass as the pixels, so a lazy pipeline runs once; they come back in ``extra``.
+    """
     settings = settings or OutputSettings()
-    if settings.format == "ome-zarr":
-        return write_ome_zarr(path, data, channels, pixel_size=pixel_size, settings=settings)
-    return write_ome_tiff(path, data, channels, pixel_size=pixel_size, settings=settings)
+    writer = write_ome_zarr if settings.format == "ome-zarr" else write_ome_tiff
+    return writer(path, data, channels, pixel_size=pixel_size, settings=settings,
+                  compute_with=compute_with)
 
 
 def output_name(stem: str, settings=None) -> str:
@@ -593,7 +605,7 @@ def output_name(stem: str, settings=None) -> str:
     return stem + (".ome.zarr" if settings.format == "ome-zarr" else ".ome.tiff")
 
 
-def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> Path:
+def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, compute_with=()) -> Written:
     """Write a C x Y x X stack as a tiled, compressed OME-TIFF, atomically.
 
     A dask array is computed chunk by chunk: small stacks in memory, big ones through a
@@ -611,6 +623,8 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> P
         Physical (y, x) pixel size in micrometres.
     settings : OutputSettings, optional
         Compression and tile size.
+    compute_with : sequence of dask values, optional
+        Computed in the same pass as the pixels; returned in ``Written.extra``.
     """
     import tifffile
 
@@ -635,11 +649,11 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> P
     try:
         if _is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
             spill_dir = Path(tempfile.mkdtemp(prefix=f".{path.name}.spill-", dir=path.parent))
-            source = _spill_to_zarr(data, spill_dir)
+            source, extra = _spill_to_zarr(data, spill_dir, compute_with)
             content = _tiles(source, tile)
             kwargs = {"shape": tuple(data.shape), "dtype": data.dtype}
         else:
-            content = np.asarray(data)
+            content, extra = _compute_in_memory(data, compute_with)
             kwargs = {}
         tifffile.imwrite(
             tmp,
@@ -659,7 +673,16 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> P
             tmp.unlink()
         if spill_dir is not None:
             shutil.rmtree(spill_dir, ignore_errors=True)
-    return path
+    return Written(path, extra)
+
+
+def _compute_in_memory(data, compute_with):
+    if not _is_dask(data) and not compute_with:
+        return np.asarray(data), []
+    import dask
+
+    content, *extra = dask.compute(data, *compute_with)
+    return np.asarray(content), list(extra)
 
 
 def _round_up16(n: int) -> int:
@@ -681,13 +704,12 @@ def _check_stack_shape(path: Path, data, channels: Sequence[str]) -> None:
         raise InputError(path, f"{len(channels)} channel names for {data.shape[0]} channels")
 
 
-def _spill_to_zarr(data, folder: Path):
+def _spill_to_zarr(data, folder: Path, compute_with=()):
     """Compute a dask stack once into an uncompressed local zarr array.
 
     The zarr chunks are one channel by the dask chunk's Y x X, so every dask block
     writes whole zarr chunks and no two blocks touch the same chunk (no lock needed).
     """
-    import dask.array as da
     import zarr
 
     cy, cx = data.chunksize[1], data.chunksize[2]
@@ -700,8 +722,17 @@ def _spill_to_zarr(data, folder: Path):
         compressors=None,
         zarr_format=3,
     )
-    da.store(data, array, lock=False)
-    return array
+    return array, _store(data, array, compute_with)
+
+
+def _store(data, array, compute_with):
+    """Store a dask array into a zarr array, computing ``compute_with`` in the same pass."""
+    import dask
+    import dask.array as da
+
+    stored = da.store(data, array, lock=False, compute=False)
+    _, *extra = dask.compute(stored, *compute_with)
+    return list(extra)
 
 
 def _tiles(array, tile: int) -> Iterator[np.ndarray]:
@@ -713,13 +744,12 @@ def _tiles(array, tile: int) -> Iterator[np.ndarray]:
                 yield np.asarray(array[c, y : y + tile, x : x + tile])
 
 
-def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None) -> Path:
+def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, compute_with=()) -> Written:
     """Write a C x Y x X stack as an OME-Zarr image (NGFF 0.5, Zarr v3), atomically.
 
     Channel names go to ``omero.channels[].label``; chunks are one channel by
     ``settings.tile`` pixels; zstd compressed unless ``compression = "none"``.
     """
-    import dask.array as da
     import zarr
     from zarr.codecs import ZstdCodec
 
@@ -748,15 +778,16 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None) -> P
             dimension_names=["c", "y", "x"],
         )
         if _is_dask(data):
-            da.store(data.rechunk(array.chunks), array, lock=False)
+            extra = _store(data.rechunk(array.chunks), array, compute_with)
         else:
             array[...] = np.asarray(data)
+            extra = _compute_in_memory(np.zeros(0), compute_with)[1]
         group.attrs["ome"] = ngff_metadata(path.name, channels, data, pixel_size)
         _replace(tmp, path)
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
-    return path
+    return Written(path, extra)
 
 
 def ngff_metadata(name: str, channels: Sequence[str], data, pixel_size=None) -> dict:
