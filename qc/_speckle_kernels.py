@@ -1,0 +1,226 @@
+"""Compiled kernels behind :mod:`plexwash.qc.speckle` (numba, exact float32 arithmetic).
+
+Every kernel works on one 2-D float32 channel, releases the GIL (``nogil``) so that
+channels or dask blocks run in parallel threads, and is cached on disk (``cache=True``).
+``fastmath`` stays off: results must equal the scipy references bit for bit.
+
+Edges are the array's edges. For the hot-pixel rule they are mirrored (scipy's
+``mode='mirror'``: the edge pixel is not its own neighbour); for window counts the window
+is clipped to the array. Under ``dask.array.map_overlap`` with ``boundary='none'`` an
+array edge is either the image edge (same result as numpy) or lies in the overlap that
+is trimmed away.
+"""
+
+from __future__ import annotations
+
+import numba as nb
+import numpy as np
+
+#: Pixel states inside :func:`speckle_filter`.
+_NOT_POSITIVE = 0
+_DROPPED = 1  # positive, failed both tests and is not next to a core pixel
+_KEPT = 2  # kept by its own value or as a neighbour of a core pixel
+_CORE = 3  # kept by the local-density test
+
+
+@nb.njit(cache=True, nogil=True)
+def hot_pixels(image, ratio, min_excess, out, removed):
+    """Detect and restore hot pixels of one channel; return how many were restored.
+
+    ``out`` and ``removed`` (float32, same shape) are filled completely.
+    """
+    height, width = image.shape
+    count = 0
+    ring = np.empty(8, np.float32)
+    for y in range(height):
+        ym = y - 1 if y > 0 else 1
+        yp = y + 1 if y < height - 1 else height - 2
+        above, row, below = image[ym], image[y], image[yp]
+        for x in range(width):
+            xm = x - 1 if x > 0 else 1
+            xp = x + 1 if x < width - 1 else width - 2
+            v = row[x]
+            top = max(above[xm], above[x], above[xp], row[xm])
+            bottom = max(row[xp], below[xm], below[x], below[xp])
+            peak = np.float64(max(top, bottom))
+            if v > ratio * max(peak, 0.0) and v - peak >= min_excess:
+                ring[0] = above[xm]
+                ring[1] = above[x]
+                ring[2] = above[xp]
+                ring[3] = row[xm]
+                ring[4] = row[xp]
+                ring[5] = below[xm]
+                ring[6] = below[x]
+                ring[7] = below[xp]
+                med = _upper_median8(ring)
+                out[y, x] = med
+                removed[y, x] = v - med
+                count += 1
+            else:
+                out[y, x] = v
+                removed[y, x] = 0.0
+    return count
+
+
+@nb.njit(cache=True, nogil=True)
+def _upper_median8(values):
+    """Element of rank 4 (0-based) of 8 values: scipy's median of an even-sized footprint."""
+    for i in range(1, 8):  # insertion sort: 8 values, only run for detected pixels
+        key = values[i]
+        j = i - 1
+        while j >= 0 and values[j] > key:
+            values[j + 1] = values[j]
+            j -= 1
+        values[j + 1] = key
+    return values[4]
+
+
+@nb.njit(cache=True, nogil=True)
+def window_counts(image, threshold, radius, counts):
+    """Number of pixels ``> threshold`` in the (2r+1)^2 window around each pixel, centre included.
+
+    Running sums down the columns, then along each row: the cost does not depend on
+    ``radius``. Windows are clipped to the array. ``counts`` is uint16.
+    """
+    height, width = image.shape
+    column = np.zeros(width, np.int32)
+    for y in range(min(radius, height - 1) + 1):
+        for x in range(width):
+            if image[y, x] > threshold:
+                column[x] += 1
+    for y in range(height):
+        total = 0
+        for x in range(min(radius, width - 1) + 1):
+            total += column[x]
+        for x in range(width):
+            counts[y, x] = total
+            right = x + 1 + radius
+            left = x - radius
+            if right < width:
+                total += column[right]
+            if left >= 0:
+                total -= column[left]
+        entering = y + 1 + radius
+        leaving = y - radius
+        if entering < height:
+            row = image[entering]
+            for x in range(width):
+                if row[x] > threshold:
+                    column[x] += 1
+        if leaving >= 0 and y + 1 < height:
+            row = image[leaving]
+            for x in range(width):
+                if row[x] > threshold:
+                    column[x] -= 1
+
+
+@nb.njit(cache=True, nogil=True)
+def full_window_histogram(counts, radius, histogram):
+    """Add the counts of windows that lie wholly inside the array to ``histogram`` (int64)."""
+    height, width = counts.shape
+    for y in range(radius, height - radius):
+        for x in range(radius, width - radius):
+            histogram[counts[y, x]] += 1
+
+
+@nb.njit(cache=True, nogil=True)
+def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_area, out, removed):
+    """Local-density speckle filter of one channel; return how many pixels were set to 0.
+
+    Parameters (all arrays C-contiguous)
+    ----------
+    image : float32 (H, W)
+    counts : uint16 (H, W), from :func:`window_counts` (centre included)
+    threshold : float32, a pixel is positive when ``value > threshold``
+    radius : int, window half-width
+    min_count : int32 (2r+2, 2r+2); ``min_count[a, b]`` = smallest neighbour count kept for
+        a window clipped to ``a`` rows and ``b`` columns
+    value_cut : float64; a positive pixel with ``value > value_cut`` is kept by value
+    min_area : int; kept 8-connected components smaller than this are dropped
+    out, removed : float32 (H, W), filled completely
+    """
+    height, width = image.shape
+    state = np.zeros((height, width), np.uint8)
+    for y in range(height):
+        rows = min(height - 1, y + radius) - max(0, y - radius) + 1
+        for x in range(width):
+            v = image[y, x]
+            if v > threshold:
+                cols = min(width - 1, x + radius) - max(0, x - radius) + 1
+                if np.int32(counts[y, x]) - 1 >= min_count[rows, cols]:
+                    state[y, x] = _CORE
+                elif v > value_cut:
+                    state[y, x] = _KEPT
+                else:
+                    state[y, x] = _DROPPED
+    # DBSCAN border points at distance 1: a positive pixel touching a core pixel is kept.
+    for y in range(height):
+        for x in range(width):
+            if state[y, x] == _DROPPED:
+                for yy in range(max(0, y - 1), min(height, y + 2)):
+                    for xx in range(max(0, x - 1), min(width, x + 2)):
+                        if state[yy, xx] == _CORE:
+                            state[y, x] = _KEPT
+    if min_area > 1:
+        _drop_small_components(state, min_area)
+    n_removed = 0
+    for y in range(height):
+        for x in range(width):
+            v = image[y, x]
+            if state[y, x] == _DROPPED:
+                out[y, x] = 0.0
+                removed[y, x] = v
+                n_removed += 1
+            else:
+                out[y, x] = v
+                removed[y, x] = 0.0
+    return n_removed
+
+
+@nb.njit(cache=True, nogil=True)
+def _find(parent, i):
+    while parent[i] != i:
+        parent[i] = parent[parent[i]]  # path halving
+        i = parent[i]
+    return i
+
+
+@nb.njit(cache=True, nogil=True)
+def _union(parent, i, j):
+    ri = _find(parent, i)
+    rj = _find(parent, j)
+    if ri < rj:
+        parent[rj] = ri
+    elif rj < ri:
+        parent[ri] = rj
+
+
+@nb.njit(cache=True, nogil=True)
+def _drop_small_components(state, min_area):
+    """Mark kept pixels of 8-connected components smaller than ``min_area`` as dropped.
+
+    Union-find over pixel indices; a pixel is linked to its kept neighbours W, NW, N, NE.
+    """
+    height, width = state.shape
+    parent = np.empty(height * width, np.int32)
+    for y in range(height):
+        for x in range(width):
+            if state[y, x] < _KEPT:
+                continue
+            i = y * width + x
+            parent[i] = i
+            if x > 0 and state[y, x - 1] >= _KEPT:
+                _union(parent, i, i - 1)
+            if y > 0:
+                for xx in range(max(0, x - 1), min(width, x + 2)):
+                    if state[y - 1, xx] >= _KEPT:
+                        _union(parent, i, i - width + xx - x)
+    size = np.zeros(height * width, np.int32)
+    for y in range(height):
+        for x in range(width):
+            if state[y, x] >= _KEPT:
+                size[_find(parent, y * width + x)] += 1
+    for y in range(height):
+        for x in range(width):
+            if state[y, x] >= _KEPT and size[_find(parent, y * width + x)] < min_area:
+                state[y, x] = _DROPPED

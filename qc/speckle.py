@@ -1,0 +1,883 @@
+"""Hot pixels and sparse speckle: two cleaning steps that remove isolated counts.
+
+Hot pixels
+    Single-pixel spikes. A pixel is hot when it exceeds ``ratio`` times the maximum of
+    its 8 neighbours and that maximum by at least ``min_excess`` counts; only detected
+    pixels are restored, with the median of their 8 neighbours (detect, then restore:
+    Chan, Ho & Nikolova 2005).
+
+Speckle
+    Isolated background counts are sparse and spatially independent; real signal is
+    clustered. A positive pixel (``value > threshold``) is kept when
+
+    * the number ``n`` of positive pixels among its ``(2r+1)^2 - 1`` neighbours is
+      improbable for background: ``P(N >= n) < alpha`` with ``N ~ Binomial(m, p)``
+      (a *core* pixel: the core-point rule of DBSCAN, Ester et al. 1996, on the pixel
+      grid, with its count threshold derived from a false-keep rate), or
+    * it touches a core pixel (8-connected: DBSCAN's border points, at distance 1, so
+      the rim of a cell whose window is half outside the cell is not shaved off), or
+    * its own value is improbable for background: ``P(Y >= value) < value_alpha`` with
+      ``Y ~ Poisson(level)``, so bright tiny objects survive.
+
+    Then kept pixels are grouped into 8-connected components and components smaller than
+    ``min_area`` are dropped. Bright pixels take part in that rule like any other: the
+    default ``min_area = 2`` removes a single isolated bright count (a hot-ish speckle)
+    while a real speck of two or more pixels stays. Dropped pixels are set to 0; pixels at
+    or below ``threshold`` are left as they are.
+
+Background
+    ``p`` (the background positive rate) and ``level`` (the background mean) are estimated
+    once per channel by :func:`estimate_background`, from the histogram of window counts
+    over all windows that lie wholly inside the image. Under background alone a window
+    count is ``Binomial(W, p)`` with ``W = (2r+1)^2``; cells add windows with high counts.
+    The fit uses only the low part of the histogram: a binomial truncated to ``0..K`` is
+    fitted by maximum likelihood (for this exponential family: match the truncated mean),
+    with ``K`` the 90 % point of the fitted binomial, iterated to a fixed point from a
+    start at the 1 % quantile of all window counts. Cells, which fill windows, do not enter
+    the fit; windows that only graze a cell raise it slightly (a few % of ``p`` in tests
+    with 25 % cell cover). ``level`` follows from ``p`` under a Poisson background:
+    ``P(Y > threshold) = p``, i.e. ``level = -log(1 - p)`` for ``threshold = 0``.
+
+Chunked stacks
+    The background estimate is a property of the whole channel: for dask input it is
+    computed first (one pass over the channel), then the filter runs block by block with
+    ``dask.array.map_overlap``, ``boundary='none'`` (the kernels treat the image edge
+    themselves, exactly as for numpy) and a depth from :func:`speckle_depth`. That depth
+    makes every block's result identical to the whole-image result: the window counts need
+    ``radius``, the border rule 1 more, and a component cut by the block edge is judged
+    correctly when its part inside the block reaches ``min_area - 1`` pixels beyond the
+    kept region (a smaller component cannot reach the block edge), so
+    ``depth = radius + 1 + (min_area - 1) = radius + min_area``.
+
+References
+----------
+.. [1] R. H. Chan, C.-W. Ho and M. Nikolova, "Salt-and-pepper noise removal by
+   median-type noise detectors and detail-preserving regularization", IEEE Trans.
+   Image Process. 14(10):1479-1485, 2005.
+.. [2] M. Ester, H.-P. Kriegel, J. Sander and X. Xu, "A density-based algorithm for
+   discovering clusters in large spatial databases with noise", Proc. KDD-96, 226-231.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import functools
+import os
+from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
+from typing import Any, NamedTuple
+
+import numpy as np
+from plexwash.qc import _speckle_kernels as _k  # absolute: one numba cache, whatever imported us
+from scipy import optimize, special
+
+from .errors import InputError
+from .settings import describe_range, setting
+
+#: Depth of the hot-pixel rule under ``map_overlap``: the 8 neighbours.
+HOT_PIXEL_DEPTH = 1
+#: Quantile of all window counts where the background fit starts.
+_FIT_START_QUANTILE = 0.01
+#: The background fit uses window counts up to the (1 - this) point of the fitted binomial.
+_FIT_UPPER_TAIL = 0.1
+
+
+# ----------------------------------------------------------------------------- settings
+
+
+@dataclasses.dataclass(frozen=True)
+class HotPixelSettings:
+    """Hot-pixel step settings (recipe section ``[hot_pixels]``)."""
+
+    enabled: bool = setting(True, "restore single-pixel spikes from their neighbours")
+    ratio: float = setting(
+        5.0, "a hot pixel exceeds this many times the brightest of its 8 neighbours", low=1.0, high=1000.0
+    )
+    min_excess: float = setting(
+        10.0, "and exceeds that neighbour by at least this many counts", low=0.0, high=1e6
+    )
+
+
+@dataclasses.dataclass(frozen=True)
+class SpeckleSettings:
+    """Speckle step settings (recipe section ``[speckle]``)."""
+
+    enabled: bool = setting(True, "remove isolated background counts by a local-density test")
+    threshold: float = setting(0.0, "a pixel is positive when its value is above this", low=0.0, high=1e6)
+    radius: int = setting(2, "half-width of the square window in which positive neighbours are counted", low=1, high=50)
+    alpha: float = setting(
+        0.01, "keep a pixel when its neighbour count is this improbable for background", low=0.0, high=0.5, low_open=True
+    )
+    value_alpha: float = setting(
+        1e-6, "keep a pixel when its own value is this improbable for background", low=0.0, high=0.5, low_open=True
+    )
+    min_area: int = setting(2, "drop kept groups of fewer pixels (8-connected)", low=1, high=1000)
+
+
+# ----------------------------------------------------------------------------- results
+
+
+class StepResult(NamedTuple):
+    """What a cleaning step returns.
+
+    Attributes
+    ----------
+    image : numpy.ndarray or dask.array.Array
+        Cleaned data, float32 (one channel, or a C x Y x X stack for the stack functions).
+    removed : numpy.ndarray or dask.array.Array
+        The removed map: input - output, float32, same shape.
+    stats : dict or list of dict
+        Numbers about the step (one dict per channel for stacks). For dask input the
+        entries measured on the output (``n_pixels``, ``n_removed``, ``removed_fraction``)
+        are 0-d dask arrays; compute them together with the output.
+    """
+
+    image: Any
+    removed: Any
+    stats: Any
+
+
+class BackgroundEstimate(NamedTuple):
+    """Background of one channel, as the speckle filter sees it.
+
+    Attributes
+    ----------
+    rate : float
+        ``p``, the probability that a background pixel is positive.
+    level : float
+        ``lambda``, the background mean of a Poisson model with ``P(Y > threshold) = p``.
+    count_threshold : int
+        Smallest positive-neighbour count kept by the density test in a full window
+        (``(2r+1)^2`` if none can be).
+    value_threshold : float
+        Smallest whole count kept by the value test (values above ``value_threshold - 1``
+        are kept; ``inf`` when none are).
+    threshold, radius, alpha, value_alpha
+        The settings the estimate was made with.
+    """
+
+    rate: float
+    level: float
+    count_threshold: int
+    value_threshold: float
+    threshold: float
+    radius: int
+    alpha: float
+    value_alpha: float
+
+
+# ----------------------------------------------------------------------------- hot pixels
+
+
+def remove_hot_pixels(image, *, ratio: float = 5.0, min_excess: float = 10.0) -> StepResult:
+    """Restore hot pixels of one channel from the median of their 8 neighbours.
+
+    A pixel is hot when ``value > ratio * max(neighbours)`` (maximum clipped at 0) and
+    ``value - max(neighbours) >= min_excess``. Detection uses the input only; then each
+    detected pixel, and only those, is replaced by the median of its 8 neighbours (for
+    8 values the upper median, rank 4 of 0..7, as ``scipy.ndimage.median_filter``).
+    Image edges are mirrored (the edge pixel is not its own neighbour).
+
+    Two adjacent bright pixels are never hot (each bounds the other's ratio), so real
+    specks of two or more pixels are left alone.
+
+    Parameters
+    ----------
+    image : (Y, X) array_like or dask array
+        One channel. Not modified.
+    ratio : float, optional
+        How many times the brightest neighbour a hot pixel exceeds (>= 1).
+    min_excess : float, optional
+        By how many counts at least a hot pixel exceeds its brightest neighbour (>= 0).
+
+    Returns
+    -------
+    StepResult
+        ``image`` cleaned (float32), ``removed`` = input - output, ``stats`` with
+        ``n_pixels`` (pixels restored) and ``removed_fraction`` (fraction of the
+        channel's signal removed).
+
+    References
+    ----------
+    .. [1] R. H. Chan, C.-W. Ho and M. Nikolova, IEEE Trans. Image Process. 14(10),
+       2005 (two-phase detect-then-restore).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> img = np.ones((5, 5), np.float32); img[2, 2] = 400.0
+    >>> out, removed, st = remove_hot_pixels(img)
+    >>> float(out[2, 2]), float(removed[2, 2]), st["n_pixels"]
+    (1.0, 399.0, 1)
+    """
+    settings = _settings(HotPixelSettings, "hot_pixels", ratio=ratio, min_excess=min_excess)
+    if _is_dask(image):
+        return _hot_pixels_dask(_channel(image, "image"), settings)
+    return _hot_pixels_numpy(_channel(image, "image"), settings)
+
+
+def _hot_pixels_numpy(image: np.ndarray, settings: HotPixelSettings) -> StepResult:
+    out = np.empty(image.shape, np.float32)
+    removed = np.empty(image.shape, np.float32)
+    n = _k.hot_pixels(image, float(settings.ratio), float(settings.min_excess), out, removed)
+    return StepResult(out, removed, {"n_pixels": int(n), "removed_fraction": _fraction(removed, image)})
+
+
+def _hot_pixels_block(block, ratio, min_excess):
+    out = np.empty(block.shape, np.float32)
+    _k.hot_pixels(np.ascontiguousarray(block), ratio, min_excess, out, np.empty_like(out))
+    return out
+
+
+def _hot_pixels_dask(image, settings: HotPixelSettings) -> StepResult:
+    block_step = functools.partial(
+        _hot_pixels_block, ratio=float(settings.ratio), min_excess=float(settings.min_excess)
+    )
+    out = image.map_overlap(
+        block_step,
+        depth=HOT_PIXEL_DEPTH,
+        boundary="none",
+        dtype=np.float32,
+        meta=np.empty((0, 0), np.float32),
+    )
+    removed = image - out
+    stats = {"n_pixels": (removed > 0).sum(), "removed_fraction": _fraction(removed, image)}
+    return StepResult(out, removed, stats)
+
+
+# ----------------------------------------------------------------------------- background
+
+
+def estimate_background(
+    image,
+    *,
+    threshold: float = 0.0,
+    radius: int = 2,
+    alpha: float = 0.01,
+    value_alpha: float = 1e-6,
+) -> BackgroundEstimate:
+    """Estimate a channel's background positive rate and level, robustly to cells.
+
+    Window counts (positive pixels in each full ``(2r+1)^2`` window) follow
+    ``Binomial(W, p)`` on background. A binomial truncated to the low counts ``0..K`` is
+    fitted by maximum likelihood, with ``K`` the 90 % point of the fitted binomial,
+    iterated from a start at the 1 % quantile of all window counts; windows filled by
+    cells lie above ``K`` and do not enter. The background level follows from a Poisson
+    model: ``P(Y > threshold) = p``.
+
+    Parameters
+    ----------
+    image : (Y, X) array_like or dask array
+        One channel, at least ``2 * radius + 1`` pixels a side. For dask input the
+        histogram is computed here (one pass).
+    threshold : float, optional
+        A pixel is positive when its value is above this (>= 0).
+    radius : int, optional
+        Window half-width.
+    alpha, value_alpha : float, optional
+        False-keep rates of the density and value tests, used for the thresholds
+        reported in the estimate.
+
+    Returns
+    -------
+    BackgroundEstimate
+
+    References
+    ----------
+    .. [1] M. Ester et al., Proc. KDD-96 (the core-point rule that the thresholds serve).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> img = rng.poisson(0.2, (400, 400)).astype(np.float32)  # P(Y > 0) = 0.181
+    >>> bg = estimate_background(img)
+    >>> round(bg.rate, 2), round(bg.level, 1), bg.count_threshold, bg.value_threshold
+    (0.18, 0.2, 10, 6.0)
+    """
+    settings = _settings(
+        SpeckleSettings, "speckle", threshold=threshold, radius=radius, alpha=alpha, value_alpha=value_alpha
+    )
+    if _is_dask(image):
+        histogram = _window_histogram_dask(_channel(image, "image"), settings)
+        histogram = np.asarray(histogram.compute())
+    else:
+        image = _channel(image, "image")
+        _check_window(image.shape, settings.radius)
+        counts = _counts(image, settings)
+        histogram = _window_histogram(counts, settings.radius)
+    return _background_from_histogram(histogram, settings)
+
+
+def _counts(image: np.ndarray, settings: SpeckleSettings) -> np.ndarray:
+    counts = np.empty(image.shape, np.uint16)
+    _k.window_counts(image, np.float32(settings.threshold), int(settings.radius), counts)
+    return counts
+
+
+def _window_histogram(counts: np.ndarray, radius: int) -> np.ndarray:
+    histogram = np.zeros((2 * radius + 1) ** 2 + 1, np.int64)
+    _k.full_window_histogram(counts, radius, histogram)
+    return histogram
+
+
+def _counts_block(block, threshold, radius):
+    block = np.ascontiguousarray(block)
+    counts = np.empty(block.shape, np.uint16)
+    _k.window_counts(block, threshold, radius, counts)
+    return counts
+
+
+def _histogram_block(block, size):
+    return np.bincount(block.ravel(), minlength=size).reshape(1, 1, size)
+
+
+def _window_histogram_dask(image, settings: SpeckleSettings):
+    """Histogram of full-window counts of a dask channel (lazy, chunking-independent)."""
+    import dask.array as da
+
+    radius = int(settings.radius)
+    _check_window(image.shape, radius)
+    counts = image.map_overlap(
+        functools.partial(_counts_block, threshold=np.float32(settings.threshold), radius=radius),
+        depth=radius,
+        boundary="none",
+        dtype=np.uint16,
+        meta=np.empty((0, 0), np.uint16),
+    )
+    inner = counts[radius : image.shape[0] - radius, radius : image.shape[1] - radius]
+    size = (2 * radius + 1) ** 2 + 1
+    per_block = da.map_blocks(
+        functools.partial(_histogram_block, size=size),
+        inner,
+        new_axis=2,
+        chunks=(1, 1, size),
+        dtype=np.int64,
+        meta=np.empty((0, 0, 0), np.int64),
+    )
+    return per_block.sum(axis=(0, 1))
+
+
+def _background_from_histogram(histogram: np.ndarray, settings: SpeckleSettings) -> BackgroundEstimate:
+    window = (2 * int(settings.radius) + 1) ** 2
+    rate = _fit_rate(histogram)
+    level = _poisson_level(rate, settings.threshold)
+    count_threshold = int(_binomial_min_count(np.array([window - 1]), rate, settings.alpha)[0])
+    return BackgroundEstimate(
+        rate=rate,
+        level=level,
+        count_threshold=count_threshold,
+        value_threshold=_poisson_min_value(level, settings.value_alpha),
+        threshold=float(settings.threshold),
+        radius=int(settings.radius),
+        alpha=float(settings.alpha),
+        value_alpha=float(settings.value_alpha),
+    )
+
+
+def _fit_rate(histogram: np.ndarray) -> float:
+    """Background positive rate from a histogram of full-window counts (0..W)."""
+    histogram = np.asarray(histogram, np.float64)
+    window = len(histogram) - 1
+    occupied = np.flatnonzero(histogram)
+    lowest = int(occupied[0])
+    if lowest == window:  # every window is full: nothing looks like background
+        return 1.0
+    cumulative = np.cumsum(histogram)
+    start = int(np.searchsorted(cumulative, _FIT_START_QUANTILE * cumulative[-1]))
+    upper = min(max(start, lowest + 1), window)
+    seen = set()
+    rate = 0.0
+    while upper not in seen:
+        seen.add(upper)
+        rate = _truncated_binomial_mle(histogram[: upper + 1], window)
+        if rate <= 0.0:
+            return 0.0
+        upper = min(max(_binomial_upper_point(window, rate, _FIT_UPPER_TAIL), lowest + 1), window)
+    return rate
+
+
+def _binomial_upper_point(trials: int, rate: float, tail: float) -> int:
+    """Smallest ``k`` with ``P(N > k) <= tail``, ``N ~ Binomial(trials, rate)`` (scipy's ``isf``)."""
+    survival = special.bdtrc(np.arange(trials + 1), trials, rate)  # P(N > k)
+    return int(np.argmax(survival <= tail))
+
+
+def _truncated_binomial_mle(histogram: np.ndarray, window: int) -> float:
+    """ML rate of ``Binomial(window, p)`` truncated to ``0..K`` (K = len(histogram) - 1).
+
+    The truncated binomial is an exponential family in ``logit(p)`` with the count as its
+    statistic, so the likelihood equation is: truncated mean = observed mean. The
+    truncated mean increases with ``p``; it is solved by bracketing root finding.
+    """
+    k = np.arange(len(histogram), dtype=np.float64)
+    observed = float(histogram @ k / histogram.sum())
+    top = len(histogram) - 1
+    if observed <= 0.0:
+        return 0.0
+    if top == window:
+        return observed / window
+    if observed >= top:
+        return 1.0
+    log_comb = special.gammaln(window + 1) - special.gammaln(k + 1) - special.gammaln(window - k + 1)
+
+    def excess(theta):
+        weights = log_comb + theta * k
+        weights = np.exp(weights - weights.max())
+        return float(weights @ k / weights.sum()) - observed
+
+    low, high = -60.0, 60.0
+    if excess(low) >= 0.0:
+        return float(special.expit(low))
+    if excess(high) <= 0.0:
+        return float(special.expit(high))
+    theta = optimize.brentq(excess, low, high, xtol=1e-12, rtol=1e-12)
+    return float(special.expit(theta))
+
+
+def _poisson_level(rate: float, threshold: float) -> float:
+    """Mean ``lambda`` of a Poisson count with ``P(Y > threshold) = rate``."""
+    if rate <= 0.0:
+        return 0.0
+    if rate >= 1.0:
+        return float("inf")
+    # P(Y > k) = P(Y >= k + 1) = regularised lower incomplete gamma P(k + 1, lambda)
+    return float(special.gammaincinv(np.floor(threshold) + 1.0, rate))
+
+
+def _poisson_min_value(level: float, value_alpha: float) -> float:
+    """Smallest whole ``v >= 1`` with ``P(Y >= v) < value_alpha``, ``Y ~ Poisson(level)``."""
+    if not np.isfinite(level):
+        return float("inf")
+
+    def tail(v):  # P(Y >= v) = P(Y > v - 1)
+        return special.pdtrc(v - 1, level)
+
+    low, high = 0, 1  # invariant: tail(low) >= value_alpha > tail(high)
+    while tail(high) >= value_alpha:
+        low, high = high, 2 * high
+    while high - low > 1:
+        mid = (low + high) // 2
+        low, high = (low, mid) if tail(mid) < value_alpha else (mid, high)
+    return float(high)
+
+
+def _binomial_min_count(trials: np.ndarray, rate: float, alpha: float) -> np.ndarray:
+    """Smallest ``k`` with ``P(N >= k) < alpha``, ``N ~ Binomial(trials, rate)``, per entry.
+
+    ``k = trials + 1`` (never kept) when even ``P(N = trials)`` is not below ``alpha``.
+    """
+    trials = np.asarray(trials, np.int64)
+    low = np.zeros_like(trials)  # P(N >= 0) = 1 >= alpha
+    high = trials + 1  # P(N >= trials + 1) = 0 < alpha
+    while np.any(high - low > 1):
+        mid = (low + high) // 2
+        below = special.bdtrc(mid - 1, trials, rate) < alpha  # P(N >= mid) = P(N > mid - 1)
+        low = np.where(below, low, mid)
+        high = np.where(below, mid, high)
+    return high
+
+
+def _min_count_table(radius: int, rate: float, alpha: float) -> np.ndarray:
+    """``table[a, b]``: smallest kept neighbour count for a window of ``a`` x ``b`` pixels."""
+    side = 2 * radius + 1
+    a, b = np.meshgrid(np.arange(side + 1), np.arange(side + 1), indexing="ij")
+    trials = np.maximum(a * b - 1, 0)
+    return _binomial_min_count(trials, rate, alpha).astype(np.int32)
+
+
+# ----------------------------------------------------------------------------- speckle
+
+
+def speckle_depth(settings: SpeckleSettings) -> int:
+    """Overlap that makes the chunked speckle filter equal the whole-image filter.
+
+    ``radius`` for the window counts, 1 for the border rule, ``min_area - 1`` for the
+    component-size rule (see the module notes).
+
+    Examples
+    --------
+    >>> speckle_depth(SpeckleSettings(radius=2, min_area=2))
+    4
+    """
+    return int(settings.radius) + 1 + max(int(settings.min_area) - 1, 0)
+
+
+def remove_speckle(
+    image,
+    *,
+    threshold: float = 0.0,
+    radius: int = 2,
+    alpha: float = 0.01,
+    value_alpha: float = 1e-6,
+    min_area: int = 2,
+    background: BackgroundEstimate | None = None,
+) -> StepResult:
+    """Remove sparse background counts of one channel by a local-density test.
+
+    A positive pixel (``value > threshold``) is kept when its positive-neighbour count
+    ``n`` in the ``(2r+1)^2`` window is improbable for background (``P(N >= n) < alpha``,
+    ``N ~ Binomial(m, p)``, ``m`` = neighbours inside the image), when it touches such a
+    pixel, or when its value is improbable for background (``P(Y >= value) <
+    value_alpha``, ``Y ~ Poisson(level)``). Kept 8-connected components smaller than
+    ``min_area`` are dropped. Dropped pixels become 0.
+
+    Parameters
+    ----------
+    image : (Y, X) array_like or dask array
+        One channel, at least ``2 * radius + 1`` pixels a side. Not modified.
+    threshold : float, optional
+        A pixel is positive when its value is above this (compared in float32).
+    radius : int, optional
+        Window half-width; the cost does not depend on it (running box sums).
+    alpha : float, optional
+        False-keep rate of the density test for one background pixel.
+    value_alpha : float, optional
+        False-keep rate of the value test for one background pixel.
+    min_area : int, optional
+        Smallest kept component, in pixels (1: no size rule).
+    background : BackgroundEstimate, optional
+        Use this estimate (e.g. made once on a whole channel) instead of estimating
+        from ``image``. Its ``threshold`` must equal ``threshold``.
+
+    Returns
+    -------
+    StepResult
+        ``stats``: ``rate``, ``level``, ``count_threshold`` (smallest kept neighbour
+        count in a full window), ``value_threshold`` (smallest whole count kept by
+        value), ``n_removed`` (pixels set to 0), ``removed_fraction``.
+
+    References
+    ----------
+    .. [1] M. Ester, H.-P. Kriegel, J. Sander and X. Xu, Proc. KDD-96, 226-231.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> img = np.zeros((40, 40), np.float32)
+    >>> img[5, 5] = 1.0                  # an isolated count
+    >>> img[20:26, 20:26] = 2.0          # a small cell
+    >>> out, removed, st = remove_speckle(img)
+    >>> float(out[5, 5]), float(out[22, 22]), st["n_removed"]
+    (0.0, 2.0, 1)
+    """
+    settings = _settings(
+        SpeckleSettings,
+        "speckle",
+        threshold=threshold,
+        radius=radius,
+        alpha=alpha,
+        value_alpha=value_alpha,
+        min_area=min_area,
+    )
+    if background is not None and float(background.threshold) != float(settings.threshold):
+        raise InputError(
+            "background", f"estimated with threshold {background.threshold:g}, filter uses {settings.threshold:g}"
+        )
+    image = _channel(image, "image")
+    _check_window(image.shape, settings.radius)
+    if _is_dask(image):
+        if background is None:
+            background = _background_from_histogram(
+                np.asarray(_window_histogram_dask(image, settings).compute()), settings
+            )
+        return _speckle_dask(image, settings, background)
+    return _speckle_numpy(image, settings, background)
+
+
+def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background) -> StepResult:
+    counts = _counts(image, settings)
+    if background is None:
+        background = _background_from_histogram(_window_histogram(counts, settings.radius), settings)
+    out = np.empty(image.shape, np.float32)
+    removed = np.empty(image.shape, np.float32)
+    n_removed = _speckle_apply(image, counts, _filter_parameters(settings, background), out, removed)
+    stats = _speckle_stats(settings, background)
+    stats.update(n_removed=int(n_removed), removed_fraction=_fraction(removed, image))
+    return StepResult(out, removed, stats)
+
+
+def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate) -> dict:
+    """Everything the kernel needs besides the pixels."""
+    value_threshold = _poisson_min_value(background.level, settings.value_alpha)
+    return {
+        "threshold": np.float32(settings.threshold),
+        "radius": int(settings.radius),
+        "min_count": _min_count_table(int(settings.radius), background.rate, settings.alpha),
+        "value_cut": float(value_threshold - 1.0),
+        "min_area": int(settings.min_area),
+        "pass_through": background.rate >= 1.0,
+    }
+
+
+def _speckle_apply(image, counts, params: dict, out, removed) -> int:
+    if params["pass_through"]:  # every window is full: no pixel is sparser than background
+        out[...] = image
+        removed[...] = 0.0
+        return 0
+    kernel_args = {k: v for k, v in params.items() if k != "pass_through"}
+    return _k.speckle_filter(image, counts, out=out, removed=removed, **kernel_args)
+
+
+def _speckle_block(block, params: dict):
+    block = np.ascontiguousarray(block)
+    counts = np.empty(block.shape, np.uint16)
+    _k.window_counts(block, params["threshold"], params["radius"], counts)
+    out = np.empty(block.shape, np.float32)
+    _speckle_apply(block, counts, params, out, np.empty_like(out))
+    return out
+
+
+def _speckle_dask(image, settings: SpeckleSettings, background: BackgroundEstimate) -> StepResult:
+    out = image.map_overlap(
+        functools.partial(_speckle_block, params=_filter_parameters(settings, background)),
+        depth=speckle_depth(settings),
+        boundary="none",
+        dtype=np.float32,
+        meta=np.empty((0, 0), np.float32),
+    )
+    removed = image - out
+    stats = _speckle_stats(settings, background)
+    stats.update(n_removed=(removed > 0).sum(), removed_fraction=_fraction(removed, image))
+    return StepResult(out, removed, stats)
+
+
+def _speckle_stats(settings: SpeckleSettings, background: BackgroundEstimate) -> dict:
+    window = (2 * int(settings.radius) + 1) ** 2
+    return {
+        "rate": float(background.rate),
+        "level": _finite_or_none(float(background.level)),
+        "count_threshold": int(_binomial_min_count(np.array([window - 1]), background.rate, settings.alpha)[0]),
+        "value_threshold": _finite_or_none(_poisson_min_value(background.level, settings.value_alpha)),
+    }
+
+
+def _finite_or_none(value: float):
+    return value if np.isfinite(value) else None
+
+
+# ----------------------------------------------------------------------------- stacks
+
+
+def hot_pixels_stack(stack, settings: HotPixelSettings | Sequence[HotPixelSettings] | None = None) -> StepResult:
+    """Hot-pixel step on a (C, Y, X) stack, numpy or dask.
+
+    Parameters
+    ----------
+    stack : (C, Y, X) array_like or dask array
+        Not modified.
+    settings : HotPixelSettings or sequence of them, optional
+        One for all channels, or one per channel. A channel whose settings have
+        ``enabled=False`` passes through unchanged (zero removed map).
+
+    Returns
+    -------
+    StepResult
+        ``(cleaned, removed, stats)``: float32 stacks (numpy in -> numpy out, dask in ->
+        dask out, same chunks) and one stats dict per channel (``enabled``, ``n_pixels``,
+        ``removed_fraction``).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> stack = np.zeros((2, 8, 8), np.float32); stack[:, 4, 4] = 300.0
+    >>> off = HotPixelSettings(enabled=False)
+    >>> cleaned, removed, st = hot_pixels_stack(stack, [HotPixelSettings(), off])
+    >>> cleaned[:, 4, 4].tolist(), [s["n_pixels"] for s in st]
+    ([0.0, 300.0], [1, 0])
+    """
+    stack = _stack(stack)
+    per_channel = _per_channel(settings, HotPixelSettings, stack.shape[0])
+
+    def channel_step(c, image, s):
+        return _hot_pixels_dask(image, s) if _is_dask(image) else _hot_pixels_numpy(image, s)
+
+    return _run_stack(stack, per_channel, channel_step, passive={"n_pixels": 0})
+
+
+def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] | None = None) -> StepResult:
+    """Speckle step on a (C, Y, X) stack, numpy or dask.
+
+    Each channel's background is estimated once on the whole channel (for dask, all
+    channels in one pass, computed here), so results do not depend on chunking.
+
+    Parameters
+    ----------
+    stack : (C, Y, X) array_like or dask array
+        Not modified.
+    settings : SpeckleSettings or sequence of them, optional
+        One for all channels, or one per channel. A channel whose settings have
+        ``enabled=False`` passes through unchanged (zero removed map).
+
+    Returns
+    -------
+    StepResult
+        ``(cleaned, removed, stats)``: float32 stacks and one stats dict per channel
+        (``enabled``, ``rate``, ``level``, ``count_threshold``, ``value_threshold``,
+        ``n_removed``, ``removed_fraction``).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> stack = np.zeros((1, 30, 30), np.float32); stack[0, 3, 3] = 1.0
+    >>> cleaned, removed, st = speckle_stack(stack)
+    >>> float(removed[0, 3, 3]), st[0]["n_removed"]
+    (1.0, 1)
+    """
+    stack = _stack(stack)
+    per_channel = _per_channel(settings, SpeckleSettings, stack.shape[0])
+    for s in per_channel:
+        if s.enabled:
+            _check_window(stack.shape, s.radius)
+    backgrounds = {}
+    if _is_dask(stack):
+        import dask
+
+        enabled = [c for c, s in enumerate(per_channel) if s.enabled]
+        histograms = dask.compute(*[_window_histogram_dask(stack[c], per_channel[c]) for c in enabled])
+        for c, histogram in zip(enabled, histograms, strict=True):
+            backgrounds[c] = _background_from_histogram(np.asarray(histogram), per_channel[c])
+
+    def channel_step(c, image, s):
+        if _is_dask(image):
+            return _speckle_dask(image, s, backgrounds[c])
+        return _speckle_numpy(image, s, None)
+
+    passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None, "n_removed": 0}
+    return _run_stack(stack, per_channel, channel_step, passive=passive)
+
+
+def _run_stack(stack, per_channel: list, channel_step, *, passive: dict) -> StepResult:
+    """Apply ``channel_step(c, channel, settings)`` to every enabled channel of a stack."""
+    n_channels = stack.shape[0]
+
+    def one(c):
+        s, image = per_channel[c], stack[c]
+        if not s.enabled:
+            zeros = image * np.float32(0) if _is_dask(image) else np.zeros(image.shape, np.float32)
+            return StepResult(image, zeros, {"enabled": False, **passive, "removed_fraction": 0.0})
+        result = channel_step(c, image, s)
+        return StepResult(result.image, result.removed, {"enabled": True, **result.stats})
+
+    if _is_dask(stack):
+        import dask.array as da
+
+        results = [one(c) for c in range(n_channels)]
+        cleaned = da.stack([r.image for r in results]).rechunk(stack.chunks)
+        removed = da.stack([r.removed for r in results]).rechunk(stack.chunks)
+        return StepResult(cleaned, removed, [r.stats for r in results])
+
+    from threadpoolctl import threadpool_limits
+
+    cleaned = np.empty(stack.shape, np.float32)
+    removed = np.empty(stack.shape, np.float32)
+    stats = [None] * n_channels
+
+    def store(c):
+        result = one(c)
+        cleaned[c] = result.image
+        removed[c] = result.removed
+        stats[c] = result.stats
+
+    workers = min(n_channels, os.cpu_count() or 1)
+    with threadpool_limits(limits=1):  # kernels run in parallel threads; keep BLAS pools out of their way
+        if workers <= 1:
+            for c in range(n_channels):
+                store(c)
+        else:
+            with ThreadPoolExecutor(max_workers=workers) as pool:
+                list(pool.map(store, range(n_channels)))
+    return StepResult(cleaned, removed, stats)
+
+
+# ----------------------------------------------------------------------------- helpers
+
+
+def _is_dask(array) -> bool:
+    return type(array).__module__.startswith("dask.")
+
+
+def _as_float32(array, what: str, ndim: int):
+    if _is_dask(array):
+        dtype = array.dtype
+    else:
+        array = np.asarray(array)
+        dtype = array.dtype
+    if array.ndim != ndim:
+        shape = "x".join(str(n) for n in array.shape) or "scalar"
+        raise InputError(what, f"expected a {ndim}-D array, got shape {shape}")
+    if not (np.issubdtype(dtype, np.integer) or np.issubdtype(dtype, np.floating)):
+        raise InputError(what, f"expected real numbers, got dtype {dtype}")
+    if any(n < 2 for n in array.shape[-2:]):
+        raise InputError(what, f"needs at least 2 x 2 pixels, got {array.shape[-2]} x {array.shape[-1]}")
+    if _is_dask(array):
+        return array.astype(np.float32)
+    return np.ascontiguousarray(array, dtype=np.float32)
+
+
+def _channel(image, what: str):
+    return _as_float32(image, what, 2)
+
+
+def _stack(stack):
+    return _as_float32(stack, "stack", 3)
+
+
+def _check_window(shape, radius: int) -> None:
+    side = 2 * int(radius) + 1
+    if shape[-2] < side or shape[-1] < side:
+        raise InputError(
+            "speckle.radius", f"window of {side} px is larger than the image ({shape[-2]} x {shape[-1]})"
+        )
+
+
+def _fraction(removed, image):
+    """Fraction of the channel's signal that was removed (0 when the channel has none).
+
+    For dask input a 0-d dask array (array arithmetic only: in dask 2026.8 computing
+    ``Delayed`` objects together with arrays in one ``dask.compute`` misorders results).
+    """
+    part, total = removed.sum(dtype=np.float64), image.sum(dtype=np.float64)
+    if _is_dask(removed):
+        return part * (total > 0) / np.maximum(total, np.finfo(np.float64).tiny)
+    return float(part) / float(total) if total > 0 else 0.0
+
+
+def _per_channel(settings, kind, n_channels: int) -> list:
+    if settings is None:
+        settings = kind()
+    if isinstance(settings, kind):
+        return [settings] * n_channels
+    settings = list(settings)
+    if len(settings) != n_channels:
+        raise InputError("settings", f"{len(settings)} settings for {n_channels} channels")
+    for s in settings:
+        if not isinstance(s, kind):
+            raise InputError("settings", f"expected {kind.__name__}, got {type(s).__name__}")
+    return settings
+
+
+def _settings(kind, section: str, **values):
+    """Build a settings object from keyword arguments, checking types and ranges."""
+    fields = {f.name: f for f in dataclasses.fields(kind)}
+    for name, value in values.items():
+        meta = fields[name].metadata
+        expected = type(fields[name].default)
+        key = f"{section}.{name}"
+        if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
+            raise InputError(key, f"must be a number, got {value!r}")
+        if expected is int:
+            if float(value) != int(value):
+                raise InputError(key, f"must be a whole number, got {value!r}")
+            value = int(value)
+        else:
+            value = float(value)
+            if not np.isfinite(value):
+                raise InputError(key, f"must be finite, got {value!r}")
+        low, high = meta.get("low"), meta.get("high")
+        if (low is not None and (value < low or (meta.get("low_open") and value == low))) or (
+            high is not None and (value > high or (meta.get("high_open") and value == high))
+        ):
+            raise InputError(key, f"= {value!r} is out of range; allowed: {describe_range(meta)}")
+        values[name] = value
+    return kind(**values)
