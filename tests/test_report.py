@@ -1,0 +1,224 @@
+"""The cohort report: one self-contained HTML file, parsed and rendered in headless Chromium."""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import io
+import json
+import shutil
+import subprocess
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+from plexwash.qc.errors import InputError
+from plexwash.qc.report import (
+    CAUTIONS,
+    combined_removed_fraction,
+    downsample,
+    png_grey,
+    robust_range,
+    to_grey,
+    write_report,
+)
+from plexwash.qc.run import Ledger, read_ledger, run_cohort
+
+SECTIONS = ("cautions", "summary", "sbr", "flags", "outliers", "removed", "spillover",
+            "thumbnails", "provenance")
+CHANNELS = ["Nd143", "Nd144", "Nd145", "Nd146", "Gd160", "Ir191"]
+CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
+
+
+class _Page(HTMLParser):
+    """Collects ids, images, every attribute value and the text of a page."""
+
+    def __init__(self):
+        super().__init__()
+        self.ids, self.images, self.attributes, self.tags, self.text = set(), [], [], [], []
+        self.styles = []
+        self._in_style = False
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        self.tags.append(tag)
+        if "id" in attrs:
+            self.ids.add(attrs["id"])
+        if tag == "img":
+            self.images.append(attrs)
+        self.attributes.extend((tag, k, v or "") for k, v in attrs.items())
+        self._in_style = tag == "style"
+
+    def handle_endtag(self, tag):
+        if tag == "style":
+            self._in_style = False
+
+    def handle_data(self, data):
+        (self.styles if self._in_style else self.text).append(data)
+
+
+def _parse(path: Path) -> _Page:
+    page = _Page()
+    page.feed(path.read_text(encoding="utf-8"))
+    return page
+
+
+@pytest.fixture(scope="module")
+def run_dir(tmp_path_factory, generator):
+    """A run of three small ROIs, one of them unreadable (so the report shows a failure)."""
+    stack = tmp_path_factory.mktemp("stack")
+    rng = np.random.default_rng(3)
+    panel = generator.random_panel(CHANNELS, rng, failed="Gd160")
+    generator.simulate_cohort(stack, random_state=3, n_rois=3, size=72, control_size=40,
+                              panel=panel)
+    broken = stack / "cohort" / "roi_03.ome.tiff"
+    broken.write_bytes(broken.read_bytes()[:900])
+    out = tmp_path_factory.mktemp("run")
+    run_cohort(stack / "cohort", out, spillover=stack / "truth" / "spillover.csv",
+               panel=stack / "panel.csv", progress=False)
+    return out
+
+
+def test_report_has_every_section_and_the_cautions(run_dir):
+    page = _parse(run_dir / "report.html")
+    assert set(SECTIONS) <= page.ids
+    text = " ".join(" ".join(page.text).split())
+    for caution in CAUTIONS:
+        assert " ".join(caution.split()) in text
+    assert "not for clinical diagnosis" in text
+    assert "1.3.5.17" in text and "3.5" in text  # the outlier rule is named with its source
+    assert "failed" in text and "truncated" in text  # the unreadable ROI and its error
+
+
+def test_report_images_are_embedded_pngs(run_dir):
+    from PIL import Image
+
+    page = _parse(run_dir / "report.html")
+    # 2 SBR panels in one plot, removed fractions, spillover, 2 ROIs x 6 channels x 3 thumbnails
+    assert len(page.images) >= 3 + 2 * len(CHANNELS) * 3
+    prefix = "data:image/png;base64,"
+    for img in page.images:
+        assert img["src"].startswith(prefix)
+        image = Image.open(io.BytesIO(base64.b64decode(img["src"][len(prefix):])))  # reference decoder
+        image.verify()
+        assert img.get("alt")
+
+
+def test_report_has_no_external_reference(run_dir):
+    page = _parse(run_dir / "report.html")
+    assert not {"script", "link", "iframe", "object", "embed"} & set(page.tags)
+    for tag, key, value in page.attributes:
+        if key in ("src", "href", "action", "srcset", "poster", "data"):
+            assert value.startswith(("data:", "#")), (tag, key, value[:60])
+    css = " ".join(page.styles)
+    assert "url(" not in css and "@import" not in css and "@font-face" not in css
+    raw = (run_dir / "report.html").read_text(encoding="utf-8")
+    assert "http://" not in raw and "https://" not in raw
+
+
+def test_report_provenance_lists_hashes(run_dir):
+    page_text = (run_dir / "report.html").read_text(encoding="utf-8")
+    records = [r for r in read_ledger(run_dir) if r["status"] == "done"]
+    assert len(records) == 2
+    for rec in records:
+        # reference: hashlib.sha256 of the files themselves
+        assert hashlib.sha256(Path(rec["input"]).read_bytes()).hexdigest() in page_text
+        assert hashlib.sha256((run_dir / rec["output"]).read_bytes()).hexdigest() in page_text
+    assert rec["recipe_sha256"] in page_text
+    from plexwash.qc import __version__
+
+    assert f"plexwash {__version__}" in page_text
+
+
+def test_report_is_small(run_dir):
+    assert (run_dir / "report.html").stat().st_size < 1_500_000
+
+
+def test_report_regenerates_to_another_file(run_dir, tmp_path):
+    target = write_report(run_dir, output=tmp_path / "again.html")
+    assert target == tmp_path / "again.html"
+    assert set(SECTIONS) <= _parse(target).ids
+
+
+def test_report_without_a_ledger_is_an_input_error(tmp_path):
+    with pytest.raises(InputError, match="ledger"):
+        write_report(tmp_path)
+
+
+def test_report_of_a_ledger_alone(tmp_path):
+    """A folder holding only a ledger (no quality.csv, recipe or images) still reports."""
+    rows = [{"roi": "a", "channel": "CD3", "stage": "raw", "sbr": 4.0, "snr": 2.0,
+             "flags": ["low-sbr"]}]
+    Ledger(tmp_path / "ledger.jsonl").append({"roi": "a", "status": "done", "quality": rows,
+                                              "removed_fraction": {"speckle": {"CD3": 0.1}},
+                                              "input": str(tmp_path / "gone.ome.tiff"),
+                                              "output": "gone.ome.tiff", "channels": ["CD3"]})
+    page = _parse(write_report(tmp_path))
+    assert set(SECTIONS) <= page.ids
+    text = " ".join(page.text)
+    assert "low-sbr" in text and "No spillover matrix" in text and "not shown" in text
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not Path(CHROMIUM).exists(), reason="chromium is not installed")
+def test_report_renders_in_headless_chromium(run_dir, tmp_path):
+    from PIL import Image
+
+    shot = tmp_path / "shot.png"
+    command = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+               "--no-first-run", "--disable-background-networking", "--disable-component-update",
+               "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}", f"--screenshot={shot}",
+               "--window-size=1200,1600", (run_dir / "report.html").as_uri()]
+    subprocess.run(command, check=True, timeout=120, capture_output=True)
+    pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
+    assert pixels.shape == (1600, 1200)
+    assert pixels.std() > 20  # not blank: header band, text and plots
+    assert (pixels < 80).mean() > 0.02 and (pixels > 200).mean() > 0.3
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def test_png_grey_decodes_to_the_same_pixels():
+    from PIL import Image
+
+    rng = np.random.default_rng(0)
+    image = rng.integers(0, 256, (37, 53), dtype=np.uint8)
+    decoded = np.asarray(Image.open(io.BytesIO(png_grey(image))))  # reference: Pillow's decoder
+    np.testing.assert_array_equal(decoded, image)
+    assert Image.open(io.BytesIO(png_grey(image))).mode == "L"
+
+
+def test_downsample_matches_block_reduce():
+    from skimage.measure import block_reduce
+
+    rng = np.random.default_rng(1)
+    stack = rng.random((2, 50, 30))
+    # reference: skimage.measure.block_reduce with np.mean over 2 x 2 blocks (trimmed to whole blocks)
+    expected = np.stack([block_reduce(c[:50, :30], (2, 2), np.mean) for c in stack])
+    np.testing.assert_allclose(downsample(stack, 25), expected)
+    import dask.array as da
+
+    lazy = da.from_array(stack, chunks=(1, 16, 16))
+    np.testing.assert_allclose(downsample(lazy, 25), expected)
+
+
+def test_contrast_and_grey_mapping():
+    image = np.arange(1001.0)
+    lo, hi = robust_range(image)
+    # reference: numpy.percentile (linear interpolation) at 1 and 99.5
+    assert (lo, hi) == (10.0, 995.0)
+    grey = to_grey(np.array([lo - 5, lo, (lo + hi) / 2, hi, hi + 5]), lo, hi)
+    assert grey.tolist() == [0, 0, 128, 255, 255]
+    assert robust_range(np.zeros(9)) == (0.0, 1.0)
+
+
+def test_combined_removed_fraction():
+    assert combined_removed_fraction([0.1, 0.2, 0.5]) == pytest.approx(1 - 0.9 * 0.8 * 0.5)
+    assert combined_removed_fraction([]) == 0.0
+
+
+def test_report_json_safe_ledger(run_dir):
+    for line in (run_dir / "ledger.jsonl").read_text().splitlines():
+        json.loads(line)  # strict JSON: no NaN

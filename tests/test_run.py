@@ -1,0 +1,564 @@
+"""The cohort run: outputs, ledger, resume, failures, interrupts, schedulers, quality table."""
+
+from __future__ import annotations
+
+import fcntl
+import hashlib
+import json
+import math
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from plexwash.qc import run as run_module
+from plexwash.qc.errors import InputError
+from plexwash.qc.io import read_roi
+from plexwash.qc.run import (
+    LEDGER,
+    QUALITY,
+    Ledger,
+    latest_records,
+    quality_table,
+    read_ledger,
+    read_quality_csv,
+    run_cohort,
+    sweep_temporary,
+)
+
+REQUIRED_LEDGER_KEYS = ("roi", "status", "input_sha256", "output", "output_sha256",
+                        "recipe_sha256", "version", "seconds")
+CHANNELS = ["Nd143", "Nd144", "Nd145", "Nd146", "Sm147", "Gd160", "Ir191", "Ir193"]
+
+
+def _sha256(path: Path) -> str:
+    # reference: hashlib.sha256 over the file's bytes
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def _make_cohort(generator, folder: Path, *, n_rois: int, size: int, random_state: int) -> Path:
+    rng = np.random.default_rng(random_state)
+    panel = generator.random_panel(CHANNELS, rng, failed="Gd160", dim="Sm147")
+    generator.simulate_cohort(folder, random_state=random_state, n_rois=n_rois, size=size,
+                              control_size=48, panel=panel)
+    return folder
+
+
+def _hashes(folder: Path) -> dict[str, str]:
+    return {p.name: _sha256(p) for p in sorted(folder.iterdir()) if p.is_file()}
+
+
+def _arrays(out: Path, names) -> dict[str, np.ndarray]:
+    return {n: np.asarray(read_roi(out / f"{n}.ome.tiff").data) for n in names}
+
+
+@pytest.fixture(scope="module")
+def cohort(tmp_path_factory, generator):
+    """Four small ROIs (8 channels) with controls, truth and panel."""
+    return _make_cohort(generator, tmp_path_factory.mktemp("stack"), n_rois=4, size=80,
+                        random_state=11)
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory, cohort):
+    """One uninterrupted in-process run of the cohort, with the true spillover matrix."""
+    before = _hashes(cohort / "cohort")
+    out = tmp_path_factory.mktemp("reference")
+    summary = run_cohort(cohort / "cohort", out, spillover=cohort / "truth" / "spillover.csv",
+                         panel=cohort / "panel.csv", progress=False)
+    return {"out": out, "summary": summary, "before": before}
+
+
+def _names(cohort: Path) -> list[str]:
+    return sorted(p.name.split(".")[0] for p in (cohort / "cohort").glob("*.ome.tiff"))
+
+
+# --------------------------------------------------------------------------- one run
+
+
+def test_run_writes_every_output(reference, cohort):
+    out, summary = reference["out"], reference["summary"]
+    names = _names(cohort)
+    assert (summary.done, summary.skipped, summary.failed, summary.exit_code) == (4, 0, 0, 0)
+    for name in names:
+        washed = read_roi(out / f"{name}.ome.tiff")
+        raw = read_roi(cohort / "cohort" / f"{name}.ome.tiff")
+        assert washed.channels == raw.channels
+        assert washed.shape == raw.shape
+        assert np.dtype(washed.data.dtype) == np.float32
+    for item in ("ledger.jsonl", "quality.csv", "report.html", "recipe.toml", "spillover.csv",
+                 "panel.csv", "run.log"):
+        assert (out / item).is_file(), item
+    # inputs are never modified
+    assert _hashes(cohort / "cohort") == reference["before"]
+
+
+def test_ledger_records_hashes_and_provenance(reference, cohort):
+    out = reference["out"]
+    lines = (out / LEDGER).read_text().splitlines()
+    records = [json.loads(line) for line in lines]  # every line is one JSON object
+    assert len(records) == 4
+    from plexwash.qc import __version__
+    from plexwash.qc.recipe import load_recipe
+
+    recipe = load_recipe(out / "recipe.toml")
+    for rec in records:
+        for key in REQUIRED_LEDGER_KEYS:
+            assert key in rec, key
+        assert rec["status"] == "done"
+        assert rec["input_sha256"] == _sha256(cohort / "cohort" / f"{rec['roi']}.ome.tiff")
+        assert rec["output_sha256"] == _sha256(out / rec["output"])
+        assert rec["recipe_sha256"] == recipe.sha256()
+        assert rec["spillover_sha256"] == _sha256(out / "spillover.csv")
+        assert rec["version"] == __version__
+        assert rec["seconds"] > 0
+        assert rec["started"] <= rec["finished"]
+        assert set(rec["removed_fraction"]) == {"hot_pixels", "compensation", "speckle"}
+        for step in rec["removed_fraction"].values():
+            assert set(step) == set(CHANNELS)
+            assert all(0.0 <= v <= 1.0 for v in step.values())
+        assert {r["stage"] for r in rec["quality"]} == {"raw", "washed"}
+
+
+def test_recipe_copy_is_self_contained(reference, cohort):
+    from plexwash.qc.recipe import load_recipe
+    from plexwash.qc.spillover import read_spillover
+
+    out = reference["out"]
+    recipe = load_recipe(out / "recipe.toml")
+    assert recipe.compensation.spillover == "spillover.csv"
+    assert recipe.spillover_path() == out / "spillover.csv"
+    copy = read_spillover(out / "spillover.csv")
+    source = read_spillover(cohort / "truth" / "spillover.csv")
+    assert list(copy.channels) == list(source.channels)
+    np.testing.assert_array_equal(np.asarray(copy.values), np.asarray(source.values))
+
+
+def test_washed_pixels_are_the_wash_of_each_roi(reference, cohort):
+    from plexwash.qc.recipe import load_recipe
+    from plexwash.qc.wash import compute, wash
+
+    out = reference["out"]
+    recipe = load_recipe(out / "recipe.toml")
+    for name in _names(cohort)[:2]:
+        roi = read_roi(cohort / "cohort" / f"{name}.ome.tiff", panel=cohort / "panel.csv")
+        direct = compute(wash(roi, recipe))
+        np.testing.assert_array_equal(np.asarray(read_roi(out / f"{name}.ome.tiff").data),
+                                      np.asarray(direct.data))
+
+
+def test_quality_csv_rows_and_columns(reference, cohort):
+    rows = read_quality_csv(reference["out"] / QUALITY)
+    assert len(rows) == 4 * len(CHANNELS) * 2
+    header = (reference["out"] / QUALITY).read_text().splitlines()[0].split(",")
+    assert header[:7] == ["roi", "channel", "label", "stage", "sbr", "snr", "flags"]
+    assert {r["stage"] for r in rows} == {"raw", "washed"}
+    assert all(r["sbr"] is not None and r["sbr"] > 0 for r in rows)
+    washed = [r for r in rows if r["stage"] == "washed"]
+    assert all("removed_speckle" in r for r in washed)
+    # the failed stain (Gd160) is judged empty in most ROIs, raw or washed (generator truth)
+    failed_rows = [r for r in rows if r["channel"] == "Gd160"]
+    assert sum("empty" in r["flags"] for r in failed_rows) >= len(failed_rows) // 2
+
+
+def test_quality_csv_modified_z_follows_the_handbook(reference):
+    rows = read_quality_csv(reference["out"] / QUALITY)
+    groups: dict[tuple, list] = {}
+    for row in rows:
+        groups.setdefault((row["channel"], row["stage"]), []).append(row)
+    for members in groups.values():
+        x = np.log([r["sbr"] for r in members])
+        median = np.median(x)
+        mad = np.median(np.abs(x - median))
+        if mad == 0:
+            continue
+        # NIST/SEMATECH e-Handbook 1.3.5.17: M_i = 0.6745 (x_i - median) / MAD
+        expected = 0.6745 * (x - median) / mad
+        np.testing.assert_allclose([r["sbr_modified_z"] for r in members], expected, rtol=1e-9)
+        for r, m in zip(members, expected, strict=True):
+            # Iglewicz & Hoaglin: label |M| > 3.5 as a potential outlier
+            assert ("outlier" in r["flags"]) == (abs(m) > 3.5)
+
+
+def test_quality_table_flags_a_planted_outlier(tmp_path):
+    ledger = Ledger(tmp_path / LEDGER)
+    sbr = [20.0, 22.0, 19.0, 21.0, 20.5, 2.0]
+    for k, value in enumerate(sbr):
+        rows = [{"roi": f"r{k}", "channel": "CD3", "stage": "raw", "sbr": value, "snr": 1.0,
+                 "flags": []}]
+        ledger.append({"roi": f"r{k}", "status": "done", "quality": rows,
+                       "removed_fraction": {}})
+    table = quality_table(tmp_path)
+    x = np.log(sbr)
+    m = 0.6745 * (x - np.median(x)) / np.median(np.abs(x - np.median(x)))  # NIST 1.3.5.17
+    assert [r["roi"] for r in table if "outlier" in r["flags"]] == ["r5"]
+    assert abs(m[5]) > 3.5 and np.all(np.abs(m[:5]) <= 3.5)
+    np.testing.assert_allclose([r["sbr_modified_z"] for r in table], m)
+
+
+def test_run_log_has_timestamped_lines(reference):
+    lines = (reference["out"] / "run.log").read_text().splitlines()
+    assert any("roi_01: done" in line for line in lines)
+    for line in lines:
+        stamp = line.split(" ", 1)[0]
+        assert len(stamp) >= 19 and stamp[4] == "-" and stamp[10] == "T", line
+
+
+# --------------------------------------------------------------------------- resume
+
+
+def _copy_run(reference, tmp_path) -> Path:
+    out = tmp_path / "run"
+    shutil.copytree(reference["out"], out)
+    return out
+
+
+def _rerun(cohort, out, **kwargs):
+    kwargs.setdefault("spillover", cohort / "truth" / "spillover.csv")
+    return run_cohort(cohort / "cohort", out, panel=cohort / "panel.csv", progress=False, **kwargs)
+
+
+def test_rerun_skips_what_is_done(reference, cohort, tmp_path):
+    out = _copy_run(reference, tmp_path)
+    n_lines = len(read_ledger(out))
+    stamps = {p.name: p.stat().st_mtime_ns for p in out.glob("*.ome.tiff")}
+    summary = _rerun(cohort, out)
+    assert (summary.done, summary.skipped, summary.failed) == (0, 4, 0)
+    assert len(read_ledger(out)) == n_lines
+    assert {p.name: p.stat().st_mtime_ns for p in out.glob("*.ome.tiff")} == stamps
+
+
+def test_rerun_redoes_changed_missing_and_torn_outputs(reference, cohort, tmp_path):
+    out = _copy_run(reference, tmp_path)
+    (out / "roi_01.ome.tiff").unlink()
+    data = bytearray((out / "roi_02.ome.tiff").read_bytes())
+    data[len(data) // 2] ^= 0xFF  # one flipped byte: the hash no longer matches
+    (out / "roi_02.ome.tiff").write_bytes(bytes(data))
+    torn = (out / "roi_03.ome.tiff").read_bytes()
+    (out / "roi_03.ome.tiff").write_bytes(torn[: len(torn) // 3])
+    summary = _rerun(cohort, out)
+    assert (summary.done, summary.skipped) == (3, 1)
+    redone = [r["roi"] for r in read_ledger(out)[4:]]
+    assert sorted(redone) == ["roi_01", "roi_02", "roi_03"]
+    for name, array in _arrays(out, _names(cohort)).items():
+        np.testing.assert_array_equal(array, _arrays(reference["out"], [name])[name])
+
+
+def test_rerun_redoes_everything_when_the_recipe_changes(reference, cohort, tmp_path):
+    from plexwash.qc.recipe import load_recipe
+
+    out = _copy_run(reference, tmp_path)
+    recipe = load_recipe(out / "recipe.toml").replace("speckle", alpha=0.001)
+    summary = _rerun(cohort, out, recipe=recipe)
+    assert (summary.done, summary.skipped) == (4, 0)
+    latest = latest_records(read_ledger(out))
+    assert {r["recipe_sha256"] for r in latest.values()} == {load_recipe(out / "recipe.toml").sha256()}
+
+
+def test_rerun_redoes_a_changed_input(reference, cohort, tmp_path):
+    out = _copy_run(reference, tmp_path)
+    cohort2 = tmp_path / "stack"
+    shutil.copytree(cohort, cohort2)
+    roi = read_roi(cohort2 / "cohort" / "roi_02.ome.tiff")
+    from plexwash.qc.io import write_ome_tiff
+
+    changed = np.asarray(roi.data).copy()
+    changed[0, 5, 5] += 7
+    write_ome_tiff(cohort2 / "cohort" / "roi_02.ome.tiff", changed, roi.channels)
+    summary = _rerun(cohort2, out)
+    assert (summary.done, summary.skipped) == (1, 3)
+    assert read_ledger(out)[-1]["roi"] == "roi_02"
+
+
+# --------------------------------------------------------------------------- failures and bad input
+
+
+def test_unreadable_roi_is_recorded_and_the_others_finish(cohort, tmp_path):
+    folder = tmp_path / "cohort"
+    shutil.copytree(cohort / "cohort", folder)
+    whole = (folder / "roi_02.ome.tiff").read_bytes()
+    (folder / "roi_02.ome.tiff").write_bytes(whole[: len(whole) // 2])  # truncated file
+    before = _hashes(folder)
+    out = tmp_path / "run"
+    summary = run_cohort(folder, out, panel=cohort / "panel.csv", progress=False)
+    assert (summary.done, summary.failed, summary.exit_code) == (3, 1, 3)
+    assert summary.failed_rois == ("roi_02",)
+    failed = [r for r in read_ledger(out) if r["status"] == "failed"]
+    assert len(failed) == 1 and "truncated" in failed[0]["error"]
+    assert failed[0]["output"] is None and failed[0]["output_sha256"] is None
+    assert not (out / "roi_02.ome.tiff").exists()
+    assert _hashes(folder) == before
+    assert "roi_02" not in {r["roi"] for r in read_quality_csv(out / QUALITY)}
+    # a rerun retries only the failed ROI (and fails it again)
+    again = run_cohort(folder, out, panel=cohort / "panel.csv", progress=False)
+    assert (again.done, again.skipped, again.failed) == (0, 3, 1)
+
+
+def test_bad_run_arguments_are_input_errors(cohort, tmp_path):
+    with pytest.raises(InputError, match="cohort folder"):
+        run_cohort(cohort / "cohort", cohort / "cohort", progress=False)
+    with pytest.raises(InputError, match="not found"):
+        run_cohort(tmp_path / "missing", tmp_path / "out", progress=False)
+    with pytest.raises(InputError, match="either"):
+        run_cohort(cohort / "cohort", tmp_path / "out", workers=2, scheduler="tcp://127.0.0.1:1",
+                   progress=False)
+    with pytest.raises(InputError, match="workers"):
+        run_cohort(cohort / "cohort", tmp_path / "out", workers=0, progress=False)
+    bad = tmp_path / "bad.csv"
+    bad.write_text("nonsense\n")
+    with pytest.raises(InputError):
+        run_cohort(cohort / "cohort", tmp_path / "out", spillover=bad, progress=False)
+
+
+def test_a_second_run_into_the_same_folder_is_refused(cohort, tmp_path):
+    out = tmp_path / "run"
+    out.mkdir()
+    with open(out / ".plexwash-run.lock", "a") as fh:
+        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        with pytest.raises(InputError, match="another plexwash run"):
+            run_cohort(cohort / "cohort", out, progress=False)
+
+
+def test_ledger_survives_a_torn_last_line(tmp_path):
+    path = tmp_path / LEDGER
+    path.write_text('{"roi": "a", "status": "done"}\n{"roi": "b", "sta')  # killed mid-line
+    assert [r["roi"] for r in read_ledger(tmp_path)] == ["a"]
+    Ledger(path).append({"roi": "c", "status": "failed", "value": float("nan")})
+    assert [r["roi"] for r in read_ledger(tmp_path)] == ["a", "c"]
+    assert read_ledger(tmp_path)[-1]["value"] is None  # NaN is not JSON: written as null
+    for line in path.read_text().splitlines()[2:]:
+        json.loads(line)
+
+
+def test_sweep_removes_only_temporary_names(tmp_path):
+    keep = [tmp_path / "roi_01.ome.tiff", tmp_path / "ledger.jsonl", tmp_path / ".hidden"]
+    gone = [tmp_path / ".roi_01.ome.tiff.partial-123", tmp_path / ".quality.csv.partial-9"]
+    for p in keep + gone:
+        p.write_text("x")
+    spill = tmp_path / ".roi_02.ome.tiff.spill-abc"
+    (spill / "stack.zarr").mkdir(parents=True)
+    assert sorted(sweep_temporary(tmp_path)) == sorted(gone + [spill])
+    assert all(p.exists() for p in keep)
+
+
+def test_progress_lines_without_a_terminal(cohort, tmp_path, capsys):
+    run_cohort(cohort / "cohort", tmp_path / "run", panel=cohort / "panel.csv", progress=True)
+    err = capsys.readouterr().err.splitlines()
+    done = [line for line in err if ": done in " in line]
+    assert len(done) == 4
+    assert all(line[:4].isdigit() and "left]" in line for line in done)
+
+
+def test_progress_bar_on_a_terminal(cohort, tmp_path, monkeypatch):
+    import io
+
+    class Terminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    screen = Terminal()
+    monkeypatch.setattr(sys, "stderr", screen)
+    run_cohort(cohort / "cohort", tmp_path / "run", panel=cohort / "panel.csv", progress=True)
+    text = screen.getvalue()
+    assert "washing" in text and "4/4" in text
+    assert "roi_04: done" in text
+
+
+def test_ome_zarr_output_and_resume(cohort, tmp_path):
+    from plexwash.qc.io import sha256_path
+    from plexwash.qc.recipe import default_recipe
+
+    recipe = default_recipe().replace("output", format="ome-zarr")
+    out = tmp_path / "run"
+    summary = run_cohort(cohort / "cohort", out, recipe=recipe, panel=cohort / "panel.csv",
+                         progress=False)
+    assert summary.done == 4
+    for rec in read_ledger(out):
+        assert rec["output"].endswith(".ome.zarr") and (out / rec["output"]).is_dir()
+        assert rec["output_sha256"] == sha256_path(out / rec["output"])
+    assert run_cohort(cohort / "cohort", out, recipe=recipe, panel=cohort / "panel.csv",
+                      progress=False).skipped == 4
+
+
+def test_chunking_does_not_change_the_pixels(reference, cohort, tmp_path, monkeypatch):
+    from plexwash.qc import io as io_module
+    from plexwash.qc.recipe import load_recipe
+
+    monkeypatch.setattr(io_module, "LAZY_BYTES", 0)  # every ROI read lazily, as dask
+    recipe = load_recipe(reference["out"] / "recipe.toml").replace("output", tile=64)
+    out = tmp_path / "lazy"
+    run_cohort(cohort / "cohort", out, recipe=recipe, spillover=cohort / "truth" / "spillover.csv",
+               panel=cohort / "panel.csv", progress=False)
+    names = _names(cohort)
+    lazy, eager = _arrays(out, names), _arrays(reference["out"], names)
+    for name in names:
+        np.testing.assert_array_equal(lazy[name], eager[name])
+
+
+# --------------------------------------------------------------------------- schedulers
+
+
+def _start_scheduler(tmp_path):
+    """A dask scheduler and one worker process on the loopback interface."""
+    file = tmp_path / "scheduler.json"
+    env = {**os.environ, "OMP_WAIT_POLICY": "PASSIVE"}
+    scheduler = subprocess.Popen(
+        [sys.executable, "-m", "distributed.cli.dask_scheduler", "--host", "127.0.0.1",
+         "--port", "0", "--no-dashboard", "--scheduler-file", str(file)],
+        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+    deadline = time.monotonic() + 60
+    while not file.exists() and time.monotonic() < deadline:
+        time.sleep(0.1)
+    address = json.loads(file.read_text())["address"]
+    worker = subprocess.Popen(
+        [sys.executable, "-m", "distributed.cli.dask_worker", address, "--nthreads", "1",
+         "--nworkers", "1", "--host", "127.0.0.1", "--no-dashboard"],
+        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+    return scheduler, worker, address
+
+
+@pytest.mark.slow
+def test_same_pixels_whatever_the_scheduler(reference, cohort, tmp_path):
+    names = _names(cohort)
+    expected = _arrays(reference["out"], names)
+    spill = cohort / "truth" / "spillover.csv"
+    local = tmp_path / "local"
+    summary = run_cohort(cohort / "cohort", local, spillover=spill, panel=cohort / "panel.csv",
+                         workers=2, progress=False)
+    assert summary.done == 4
+    scheduler, worker, address = _start_scheduler(tmp_path)
+    try:
+        assert address.startswith("tcp://127.0.0.1:")
+        remote = tmp_path / "remote"
+        summary = run_cohort(cohort / "cohort", remote, spillover=spill, panel=cohort / "panel.csv",
+                             scheduler=address, progress=False)
+        assert summary.done == 4
+    finally:
+        for process in (worker, scheduler):
+            process.terminate()
+            process.wait(timeout=30)
+    for out in (local, remote):
+        got = _arrays(out, names)
+        for name in names:
+            np.testing.assert_array_equal(got[name], expected[name])
+        assert {r["pid"] for r in read_ledger(out)}.isdisjoint({os.getpid()})  # ran elsewhere
+        assert quality_table(out) == quality_table(reference["out"])
+
+
+# --------------------------------------------------------------------------- kill and interrupt
+
+
+_DRIVER = textwrap.dedent("""
+    import sys
+    from plexwash.qc.run import run_cohort
+    try:
+        s = run_cohort(sys.argv[1], sys.argv[2], spillover=sys.argv[3], panel=sys.argv[4],
+                       progress=False)
+    except KeyboardInterrupt:
+        sys.exit(130)
+    sys.exit(s.exit_code)
+""")
+
+
+@pytest.fixture(scope="module")
+def bigger_cohort(tmp_path_factory, generator):
+    """Eight ROIs large enough that a run takes a few seconds."""
+    return _make_cohort(generator, tmp_path_factory.mktemp("bigger"), n_rois=8, size=256,
+                        random_state=5)
+
+
+def _start_driver(cohort, out):
+    env = {**os.environ, "OMP_WAIT_POLICY": "PASSIVE"}
+    return subprocess.Popen(
+        [sys.executable, "-c", _DRIVER, str(cohort / "cohort"), str(out),
+         str(cohort / "truth" / "spillover.csv"), str(cohort / "panel.csv")],
+        env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+
+
+def _wait_for_done_records(out, n, process, timeout=120):
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if sum(r["status"] == "done" for r in read_ledger(out)) >= n:
+            return
+        if process.poll() is not None:
+            raise AssertionError(f"run ended early: {process.communicate()}")
+        time.sleep(0.02)
+    raise AssertionError("no ledger record appeared")
+
+
+def _check_no_false_record(out):
+    """Every done record's output exists and hashes as recorded; every output is readable."""
+    latest = latest_records(read_ledger(out))
+    for rec in latest.values():
+        if rec["status"] == "done":
+            assert rec["output_sha256"] == _sha256(out / rec["output"])
+    for path in out.glob("*.ome.tiff"):
+        np.asarray(read_roi(path).data)  # complete: a torn file would fail to read
+
+
+@pytest.fixture(scope="module")
+def bigger_reference(tmp_path_factory, bigger_cohort):
+    out = tmp_path_factory.mktemp("bigger_reference")
+    run_cohort(bigger_cohort / "cohort", out, spillover=bigger_cohort / "truth" / "spillover.csv",
+               panel=bigger_cohort / "panel.csv", progress=False)
+    return out
+
+
+@pytest.mark.slow
+def test_kill_9_loses_only_the_rois_in_flight(bigger_cohort, bigger_reference, tmp_path):
+    before = _hashes(bigger_cohort / "cohort")
+    out = tmp_path / "run"
+    process = _start_driver(bigger_cohort, out)
+    _wait_for_done_records(out, 2, process)
+    time.sleep(0.15)  # let the next ROI get well into its wash
+    process.send_signal(signal.SIGKILL)
+    process.wait(timeout=30)
+    assert process.returncode == -signal.SIGKILL
+    _check_no_false_record(out)
+    done_before = sum(r["status"] == "done" for r in latest_records(read_ledger(out)).values())
+    assert 2 <= done_before < 8
+    # plant leftovers of the kind a killed writer leaves, to see them swept
+    (out / ".roi_08.ome.tiff.partial-999999").write_bytes(b"torn")
+    (out / ".roi_08.ome.tiff.spill-zz" / "stack.zarr").mkdir(parents=True)
+    summary = run_cohort(bigger_cohort / "cohort", out,
+                         spillover=bigger_cohort / "truth" / "spillover.csv",
+                         panel=bigger_cohort / "panel.csv", progress=False)
+    assert (summary.done, summary.skipped, summary.failed) == (8 - done_before, done_before, 0)
+    assert not [p for p in out.iterdir() if p.name.startswith(".") and ("partial" in p.name
+                                                                          or "spill" in p.name)]
+    names = [f"roi_{k:02d}" for k in range(1, 9)]
+    got, expected = _arrays(out, names), _arrays(bigger_reference, names)
+    for name in names:
+        np.testing.assert_array_equal(got[name], expected[name])
+    assert _hashes(bigger_cohort / "cohort") == before
+
+
+@pytest.mark.slow
+def test_ctrl_c_stops_cleanly(bigger_cohort, tmp_path):
+    out = tmp_path / "run"
+    process = _start_driver(bigger_cohort, out)
+    _wait_for_done_records(out, 1, process)
+    time.sleep(0.1)
+    process.send_signal(signal.SIGINT)
+    process.wait(timeout=60)
+    assert process.returncode == 130
+    _check_no_false_record(out)
+    records = read_ledger(out)
+    assert records and all(r["status"] == "done" for r in records)
+    recorded = {r["output"] for r in records}
+    assert {p.name for p in out.glob("*.ome.tiff")} <= recorded  # no unrecorded output
+    assert not [p for p in out.iterdir() if p.name.startswith(".") and "plexwash-run" not in p.name]
+    assert "interrupted" in (out / "run.log").read_text()
+
+
+def test_run_summary_exit_codes():
+    summary = run_module.RunSummary(Path("."), done=2, skipped=1, failed=0)
+    assert (summary.exit_code, summary.total) == (0, 3)
+    assert run_module.RunSummary(Path("."), 1, 0, 1, ("a",)).exit_code == 3
+    assert math.isfinite(summary.seconds)
