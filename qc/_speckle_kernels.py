@@ -115,12 +115,17 @@ def window_counts(image, threshold, radius, counts):
 
 
 @nb.njit(cache=True, nogil=True)
-def full_window_histogram(counts, radius, histogram):
-    """Add the counts of windows that lie wholly inside the array to ``histogram`` (int64)."""
+def centre_histogram(image, counts, threshold, radius, histogram):
+    """Add full windows to ``histogram[c, n]`` (int64, 2 x (2r+1)^2).
+
+    ``c`` = 1 when the centre is ``> threshold``; ``n`` = positive neighbours. Only windows
+    wholly inside the array count.
+    """
     height, width = counts.shape
     for y in range(radius, height - radius):
         for x in range(radius, width - radius):
-            histogram[counts[y, x]] += 1
+            centre = 1 if image[y, x] > threshold else 0
+            histogram[centre, np.int64(counts[y, x]) - centre] += 1
 
 
 @nb.njit(cache=True, nogil=True)

@@ -27,15 +27,15 @@ Speckle
 
 Background
     ``p`` (the background positive rate) and ``level`` (the background mean) are estimated
-    once per channel by :func:`estimate_background`, from the histogram of window counts
-    over all windows that lie wholly inside the image. Under background alone a window
-    count is ``Binomial(W, p)`` with ``W = (2r+1)^2``; cells add windows with high counts.
-    The fit uses only the low part of the histogram: a binomial truncated to ``0..K`` is
-    fitted by maximum likelihood (for this exponential family: match the truncated mean),
-    with ``K`` the 90 % point of the fitted binomial, iterated to a fixed point from a
-    start at the 1 % quantile of all window counts. Cells, which fill windows, do not enter
-    the fit; windows that only graze a cell raise it slightly (a few % of ``p`` in tests
-    with 25 % cell cover). ``level`` follows from ``p`` under a Poisson background:
+    once per channel by :func:`estimate_background`. Under background alone the centre of
+    a window is positive with probability ``p`` whatever its neighbours are, so among
+    windows with ``n`` positive neighbours the fraction of positive centres estimates ``p``
+    for every ``n`` (the conditional maximum likelihood). Only windows with few positive
+    neighbours (``n`` up to the median of ``Binomial(m, p)``, iterated to a fixed point
+    from the 1 % quantile of all ``n``) are used: a window centred in a cell has many
+    positive neighbours and does not enter, and a window that merely grazes a cell has a
+    background centre and so does not bias the estimate. Only windows wholly inside the
+    image count. ``level`` follows from ``p`` under a Poisson background:
     ``P(Y > threshold) = p``, i.e. ``level = -log(1 - p)`` for ``threshold = 0``.
 
 Chunked stacks
@@ -69,17 +69,18 @@ from typing import Any, NamedTuple
 
 import numpy as np
 from plexwash.qc import _speckle_kernels as _k  # absolute: one numba cache, whatever imported us
-from scipy import optimize, special
+from scipy import special
 
 from .errors import InputError
 from .settings import describe_range, setting
 
 #: Depth of the hot-pixel rule under ``map_overlap``: the 8 neighbours.
 HOT_PIXEL_DEPTH = 1
-#: Quantile of all window counts where the background fit starts.
+#: Quantile of all neighbour counts where the background fit starts.
 _FIT_START_QUANTILE = 0.01
-#: The background fit uses window counts up to the (1 - this) point of the fitted binomial.
-_FIT_UPPER_TAIL = 0.1
+#: The background fit uses windows with up to the (1 - this) point of Binomial(m, p) positive
+#: neighbours: 0.5, the median, keeps windows centred in cells out.
+_FIT_UPPER_TAIL = 0.5
 
 
 # ----------------------------------------------------------------------------- settings
@@ -103,7 +104,13 @@ class SpeckleSettings:
     """Speckle step settings (recipe section ``[speckle]``)."""
 
     enabled: bool = setting(True, "remove isolated background counts by a local-density test")
-    threshold: float = setting(0.0, "a pixel is positive when its value is above this", low=0.0, high=1e6)
+    threshold: float = setting(
+        0.5,
+        "a pixel is positive when its value is above this (0.5: a whole count; ignores sub-count residue"
+        " left by compensation)",
+        low=0.0,
+        high=1e6,
+    )
     radius: int = setting(2, "half-width of the square window in which positive neighbours are counted", low=1, high=50)
     alpha: float = setting(
         0.01, "keep a pixel when its neighbour count is this improbable for background", low=0.0, high=0.5, low_open=True
@@ -111,7 +118,7 @@ class SpeckleSettings:
     value_alpha: float = setting(
         1e-6, "keep a pixel when its own value is this improbable for background", low=0.0, high=0.5, low_open=True
     )
-    min_area: int = setting(2, "drop kept groups of fewer pixels (8-connected)", low=1, high=1000)
+    min_area: int = setting(2, "drop kept groups of fewer pixels (8-connected)", low=1, high=100)
 
 
 # ----------------------------------------------------------------------------- results
@@ -251,27 +258,29 @@ def _hot_pixels_dask(image, settings: HotPixelSettings) -> StepResult:
 def estimate_background(
     image,
     *,
-    threshold: float = 0.0,
+    threshold: float = 0.5,
     radius: int = 2,
     alpha: float = 0.01,
     value_alpha: float = 1e-6,
 ) -> BackgroundEstimate:
     """Estimate a channel's background positive rate and level, robustly to cells.
 
-    Window counts (positive pixels in each full ``(2r+1)^2`` window) follow
-    ``Binomial(W, p)`` on background. A binomial truncated to the low counts ``0..K`` is
-    fitted by maximum likelihood, with ``K`` the 90 % point of the fitted binomial,
-    iterated from a start at the 1 % quantile of all window counts; windows filled by
-    cells lie above ``K`` and do not enter. The background level follows from a Poisson
-    model: ``P(Y > threshold) = p``.
+    On background a window's centre is positive with probability ``p`` independently of
+    its ``n`` positive neighbours. ``p`` is the fraction of positive centres among full
+    windows with ``n <= K``, ``K`` the median of ``Binomial((2r+1)^2 - 1, p)``, iterated to
+    a fixed point from the 1 % quantile of all ``n``: windows centred in cells have large
+    ``n`` and stay out, windows grazing a cell have background centres and do not bias it.
+    The background level follows from a Poisson model: ``P(Y > threshold) = p``.
 
     Parameters
     ----------
     image : (Y, X) array_like or dask array
         One channel, at least ``2 * radius + 1`` pixels a side. For dask input the
-        histogram is computed here (one pass).
+        neighbour-count histogram is computed here (one pass).
     threshold : float, optional
-        A pixel is positive when its value is above this (>= 0).
+        A pixel is positive when its value is above this (>= 0). The default 0.5 is "at
+        least one count" for count data and ignores the tiny positive residue that
+        compensation leaves in pixels without counts (which would otherwise inflate ``p``).
     radius : int, optional
         Window half-width.
     alpha, value_alpha : float, optional
@@ -299,13 +308,12 @@ def estimate_background(
         SpeckleSettings, "speckle", threshold=threshold, radius=radius, alpha=alpha, value_alpha=value_alpha
     )
     if _is_dask(image):
-        histogram = _window_histogram_dask(_channel(image, "image"), settings)
-        histogram = np.asarray(histogram.compute())
+        histogram = np.asarray(_centre_histogram_dask(_channel(image, "image"), settings).compute())
     else:
         image = _channel(image, "image")
         _check_window(image.shape, settings.radius)
         counts = _counts(image, settings)
-        histogram = _window_histogram(counts, settings.radius)
+        histogram = _centre_histogram(image, counts, settings)
     return _background_from_histogram(histogram, settings)
 
 
@@ -315,38 +323,42 @@ def _counts(image: np.ndarray, settings: SpeckleSettings) -> np.ndarray:
     return counts
 
 
-def _window_histogram(counts: np.ndarray, radius: int) -> np.ndarray:
-    histogram = np.zeros((2 * radius + 1) ** 2 + 1, np.int64)
-    _k.full_window_histogram(counts, radius, histogram)
+def _centre_histogram(image: np.ndarray, counts: np.ndarray, settings: SpeckleSettings) -> np.ndarray:
+    """``histogram[c, n]``: full windows with centre positive (c = 1) or not and n positive neighbours."""
+    radius = int(settings.radius)
+    histogram = np.zeros((2, (2 * radius + 1) ** 2), np.int64)
+    _k.centre_histogram(image, counts, np.float32(settings.threshold), radius, histogram)
     return histogram
 
 
-def _counts_block(block, threshold, radius):
+def _codes_block(block, threshold, radius):
+    """Per pixel ``n + c * (2r+1)^2`` (uint16), to histogram a dask channel block by block."""
     block = np.ascontiguousarray(block)
     counts = np.empty(block.shape, np.uint16)
     _k.window_counts(block, threshold, radius, counts)
-    return counts
+    positive = block > threshold
+    return (counts - positive + positive * np.uint16((2 * radius + 1) ** 2)).astype(np.uint16)
 
 
 def _histogram_block(block, size):
     return np.bincount(block.ravel(), minlength=size).reshape(1, 1, size)
 
 
-def _window_histogram_dask(image, settings: SpeckleSettings):
-    """Histogram of full-window counts of a dask channel (lazy, chunking-independent)."""
+def _centre_histogram_dask(image, settings: SpeckleSettings):
+    """:func:`_centre_histogram` of a dask channel (lazy, independent of chunking)."""
     import dask.array as da
 
     radius = int(settings.radius)
     _check_window(image.shape, radius)
-    counts = image.map_overlap(
-        functools.partial(_counts_block, threshold=np.float32(settings.threshold), radius=radius),
+    codes = image.map_overlap(
+        functools.partial(_codes_block, threshold=np.float32(settings.threshold), radius=radius),
         depth=radius,
         boundary="none",
         dtype=np.uint16,
         meta=np.empty((0, 0), np.uint16),
     )
-    inner = counts[radius : image.shape[0] - radius, radius : image.shape[1] - radius]
-    size = (2 * radius + 1) ** 2 + 1
+    inner = codes[radius : image.shape[0] - radius, radius : image.shape[1] - radius]
+    size = 2 * (2 * radius + 1) ** 2
     per_block = da.map_blocks(
         functools.partial(_histogram_block, size=size),
         inner,
@@ -355,7 +367,7 @@ def _window_histogram_dask(image, settings: SpeckleSettings):
         dtype=np.int64,
         meta=np.empty((0, 0, 0), np.int64),
     )
-    return per_block.sum(axis=(0, 1))
+    return per_block.sum(axis=(0, 1)).reshape(2, size // 2)
 
 
 def _background_from_histogram(histogram: np.ndarray, settings: SpeckleSettings) -> BackgroundEstimate:
@@ -376,24 +388,20 @@ def _background_from_histogram(histogram: np.ndarray, settings: SpeckleSettings)
 
 
 def _fit_rate(histogram: np.ndarray) -> float:
-    """Background positive rate from a histogram of full-window counts (0..W)."""
+    """Background positive rate from ``histogram[centre positive, n]`` (see :func:`estimate_background`)."""
     histogram = np.asarray(histogram, np.float64)
-    window = len(histogram) - 1
-    occupied = np.flatnonzero(histogram)
-    lowest = int(occupied[0])
-    if lowest == window:  # every window is full: nothing looks like background
-        return 1.0
-    cumulative = np.cumsum(histogram)
-    start = int(np.searchsorted(cumulative, _FIT_START_QUANTILE * cumulative[-1]))
-    upper = min(max(start, lowest + 1), window)
+    neighbours = histogram.shape[1] - 1
+    cumulative = np.cumsum(histogram.sum(axis=0))
+    if cumulative[-1] == 0:
+        raise InputError("image", "no window lies wholly inside the image")
+    upper = int(np.searchsorted(cumulative, _FIT_START_QUANTILE * cumulative[-1]))
     seen = set()
     rate = 0.0
     while upper not in seen:
         seen.add(upper)
-        rate = _truncated_binomial_mle(histogram[: upper + 1], window)
-        if rate <= 0.0:
-            return 0.0
-        upper = min(max(_binomial_upper_point(window, rate, _FIT_UPPER_TAIL), lowest + 1), window)
+        positive, negative = histogram[1, : upper + 1].sum(), histogram[0, : upper + 1].sum()
+        rate = float(positive / (positive + negative))
+        upper = _binomial_upper_point(neighbours, rate, _FIT_UPPER_TAIL)
     return rate
 
 
@@ -401,38 +409,6 @@ def _binomial_upper_point(trials: int, rate: float, tail: float) -> int:
     """Smallest ``k`` with ``P(N > k) <= tail``, ``N ~ Binomial(trials, rate)`` (scipy's ``isf``)."""
     survival = special.bdtrc(np.arange(trials + 1), trials, rate)  # P(N > k)
     return int(np.argmax(survival <= tail))
-
-
-def _truncated_binomial_mle(histogram: np.ndarray, window: int) -> float:
-    """ML rate of ``Binomial(window, p)`` truncated to ``0..K`` (K = len(histogram) - 1).
-
-    The truncated binomial is an exponential family in ``logit(p)`` with the count as its
-    statistic, so the likelihood equation is: truncated mean = observed mean. The
-    truncated mean increases with ``p``; it is solved by bracketing root finding.
-    """
-    k = np.arange(len(histogram), dtype=np.float64)
-    observed = float(histogram @ k / histogram.sum())
-    top = len(histogram) - 1
-    if observed <= 0.0:
-        return 0.0
-    if top == window:
-        return observed / window
-    if observed >= top:
-        return 1.0
-    log_comb = special.gammaln(window + 1) - special.gammaln(k + 1) - special.gammaln(window - k + 1)
-
-    def excess(theta):
-        weights = log_comb + theta * k
-        weights = np.exp(weights - weights.max())
-        return float(weights @ k / weights.sum()) - observed
-
-    low, high = -60.0, 60.0
-    if excess(low) >= 0.0:
-        return float(special.expit(low))
-    if excess(high) <= 0.0:
-        return float(special.expit(high))
-    theta = optimize.brentq(excess, low, high, xtol=1e-12, rtol=1e-12)
-    return float(special.expit(theta))
 
 
 def _poisson_level(rate: float, threshold: float) -> float:
@@ -506,7 +482,7 @@ def speckle_depth(settings: SpeckleSettings) -> int:
 def remove_speckle(
     image,
     *,
-    threshold: float = 0.0,
+    threshold: float = 0.5,
     radius: int = 2,
     alpha: float = 0.01,
     value_alpha: float = 1e-6,
@@ -578,9 +554,8 @@ def remove_speckle(
     _check_window(image.shape, settings.radius)
     if _is_dask(image):
         if background is None:
-            background = _background_from_histogram(
-                np.asarray(_window_histogram_dask(image, settings).compute()), settings
-            )
+            histogram = _centre_histogram_dask(image, settings).compute()
+            background = _background_from_histogram(np.asarray(histogram), settings)
         return _speckle_dask(image, settings, background)
     return _speckle_numpy(image, settings, background)
 
@@ -588,7 +563,7 @@ def remove_speckle(
 def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background) -> StepResult:
     counts = _counts(image, settings)
     if background is None:
-        background = _background_from_histogram(_window_histogram(counts, settings.radius), settings)
+        background = _background_from_histogram(_centre_histogram(image, counts, settings), settings)
     out = np.empty(image.shape, np.float32)
     removed = np.empty(image.shape, np.float32)
     n_removed = _speckle_apply(image, counts, _filter_parameters(settings, background), out, removed)
@@ -734,7 +709,7 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
         import dask
 
         enabled = [c for c, s in enumerate(per_channel) if s.enabled]
-        histograms = dask.compute(*[_window_histogram_dask(stack[c], per_channel[c]) for c in enabled])
+        histograms = dask.compute(*[_centre_histogram_dask(stack[c], per_channel[c]) for c in enabled])
         for c, histogram in zip(enabled, histograms, strict=True):
             backgrounds[c] = _background_from_histogram(np.asarray(histogram), per_channel[c])
 

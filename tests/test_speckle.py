@@ -1,0 +1,507 @@
+"""Hot pixels and speckle: exactness against scipy references, behaviour on synthetic tissue
+and on the demo cohort, chunked (dask) results equal to whole-image results."""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+import doctest
+import json
+
+import dask
+import dask.array as da
+import numpy as np
+import pytest
+import tifffile
+from plexwash.qc import speckle
+from plexwash.qc.errors import InputError
+from plexwash.qc.speckle import (
+    BackgroundEstimate,
+    HotPixelSettings,
+    SpeckleSettings,
+    estimate_background,
+    hot_pixels_stack,
+    remove_hot_pixels,
+    remove_speckle,
+    speckle_depth,
+    speckle_stack,
+)
+from scipy import ndimage as ndi
+from scipy import stats
+
+RING = np.ones((3, 3), bool)
+RING[1, 1] = False  # the 8 neighbours
+EIGHT = np.ones((3, 3), int)  # 8-connectivity structuring element
+
+
+# --------------------------------------------------------------------------- synthetic tissue
+
+
+def synthetic_channel(shape=(320, 320), *, background=0.1, seed=0, n_cells=160, n_dim=40,
+                      n_specks=40, n_processes=10, n_hot=50):
+    """One channel of counts with known parts.
+
+    Cells: disks of radius 3.5-7 px in 6 clusters, 4-25 counts/pixel; dim cells 1-3
+    counts/pixel; thin processes: 1-2 px wide lines, 2-5 counts/pixel; tiny specks:
+    Gaussian-ish objects with sigma 0.65-1.2 px (2-6 px above half maximum), 30-200
+    counts in total; background: independent Poisson at ``background`` counts/pixel; hot
+    pixels: single spikes of 300-1000 counts.
+    """
+    rng = np.random.default_rng(seed)
+    height, width = shape
+    yy, xx = np.mgrid[0:height, 0:width]
+    expect = np.zeros(shape)
+    masks = {k: np.zeros(shape, bool) for k in ("cells", "dim", "processes", "specks")}
+    centres = rng.uniform(30, min(shape) - 30, size=(6, 2))
+    for i in range(n_cells + n_dim):
+        c = centres[rng.integers(len(centres))] + rng.normal(0, 30, 2)
+        inside = (yy - c[0]) ** 2 + (xx - c[1]) ** 2 <= rng.uniform(3.5, 7) ** 2
+        kind = "cells" if i < n_cells else "dim"
+        expect[inside] += rng.uniform(4, 25) if kind == "cells" else rng.uniform(1, 3)
+        masks[kind] |= inside
+    for _ in range(n_processes):
+        y0, x0 = rng.uniform(20, height - 20), rng.uniform(20, width - 20)
+        angle, length = rng.uniform(0, np.pi), rng.uniform(20, 60)
+        t = np.linspace(0, length, int(length * 3))
+        line = np.zeros(shape, bool)
+        line[np.clip(np.round(y0 + t * np.sin(angle)).astype(int), 0, height - 1),
+             np.clip(np.round(x0 + t * np.cos(angle)).astype(int), 0, width - 1)] = True
+        if rng.random() < 0.5:
+            line = ndi.binary_dilation(line, np.ones((2, 2), bool))
+        line &= ~(masks["cells"] | masks["dim"])
+        expect[line] += rng.uniform(2, 5)
+        masks["processes"] |= line
+    for _ in range(n_specks):
+        c = rng.uniform(5, np.array(shape) - 5)
+        sigma, total = rng.uniform(0.65, 1.2), rng.uniform(30, 200)
+        g = np.exp(-((yy - c[0]) ** 2 + (xx - c[1]) ** 2) / (2 * sigma**2))
+        g[g < 0.1 * g.max()] = 0
+        g *= total / g.sum()
+        expect += g
+        masks["specks"] |= g > 0.5
+    signal = rng.poisson(expect).astype(np.float32)
+    counts = signal + rng.poisson(background, shape).astype(np.float32)
+    hot = np.zeros(shape, bool)
+    hot.flat[rng.choice(height * width, n_hot, replace=False)] = True
+    raw = counts.copy()
+    raw[hot] += rng.uniform(300, 1000, n_hot).astype(np.float32)
+    return {"raw": raw, "counts": counts, "expect": expect, "hot": hot, **masks}
+
+
+@pytest.fixture(scope="module", params=[0.02, 0.1, 0.3], ids=lambda b: f"background{b}")
+def tissue(request):
+    return synthetic_channel(background=request.param, seed=int(request.param * 100))
+
+
+# --------------------------------------------------------------------------- hot pixels
+
+
+def test_hot_pixel_rule_and_restoration_match_scipy_filters():
+    rng = np.random.default_rng(1)
+    img = rng.poisson(4.0, (61, 47)).astype(np.float32)
+    spikes = rng.choice(img.size, 150, replace=False)
+    img.flat[spikes] += rng.uniform(5, 400, 150).astype(np.float32)  # some too small to be hot
+    for y, x in ((0, 0), (0, 20), (60, 46), (30, 0), (60, 3), (12, 46)):
+        img[y, x] = 500.0  # corners and edges
+    img[20, 20] = img[20, 21] = 300.0  # a two-pixel object is never hot
+    ratio, min_excess = 5.0, 10.0
+    out, removed, st = remove_hot_pixels(img, ratio=ratio, min_excess=min_excess)
+    # scipy.ndimage.maximum_filter / median_filter with the 3x3-minus-centre footprint;
+    # mode='mirror' does not count an edge pixel as its own neighbour
+    peak = ndi.maximum_filter(img, footprint=RING, mode="mirror").astype(np.float64)
+    median = ndi.median_filter(img, footprint=RING, mode="mirror")
+    value = img.astype(np.float64)
+    hot = (value > ratio * np.maximum(peak, 0)) & (value - peak >= min_excess)
+    expected = np.where(hot, median, img)
+    assert hot[0, 0] and hot[60, 46] and hot[0, 20] and not hot[20, 20]
+    np.testing.assert_array_equal(out, expected)
+    np.testing.assert_array_equal(removed, img - expected)
+    assert st["n_pixels"] == int(hot.sum()) > 50
+    assert st["removed_fraction"] == pytest.approx(float((img - expected).sum() / img.sum()))
+
+
+def test_hot_pixels_neutralised_on_synthetic_tissue(tissue):
+    out, removed, st = remove_hot_pixels(tissue["raw"])
+    hot = tissue["hot"]
+    peak = ndi.maximum_filter(tissue["raw"], footprint=RING, mode="mirror")
+    neutralised = (removed[hot] > 0) & (out[hot] <= peak[hot])
+    assert neutralised.mean() >= 0.99
+    # nothing real is touched: cells, dim cells, processes, tiny specks, background
+    assert not np.any(removed[~hot])
+    assert st["n_pixels"] == int(np.count_nonzero(removed))
+
+
+# --------------------------------------------------------------------------- window counts and thresholds
+
+
+@pytest.mark.parametrize("radius, shape, threshold", [(1, (40, 33), 0.0), (2, (57, 64), 1.5), (5, (7, 40), 0.0)])
+def test_window_counts_equal_scipy_convolve(radius, shape, threshold):
+    rng = np.random.default_rng(radius)
+    img = rng.poisson(0.8, shape).astype(np.float32)
+    counts = speckle._counts(img, SpeckleSettings(radius=radius, threshold=threshold))
+    side = 2 * radius + 1
+    # scipy.ndimage.convolve with a box of ones, zeros outside the image
+    reference = ndi.convolve((img > threshold).astype(np.int64), np.ones((side, side), np.int64),
+                             mode="constant", cval=0)
+    np.testing.assert_array_equal(counts, reference)
+
+
+def test_count_thresholds_equal_scipy_binom_isf():
+    for trials in (3, 8, 24, 48, 120, 168):
+        for rate in (0.0, 0.004, 0.05, 0.2, 0.3, 0.7, 0.99):
+            for alpha in (0.2, 0.01, 1e-4, 1e-7):
+                k = int(speckle._binomial_min_count(np.array([trials]), rate, alpha)[0])
+                # scipy.stats.binom.isf(q) = smallest k with P(N > k) <= q, so P(N >= isf + 1) <= q
+                assert k == int(stats.binom.isf(alpha, trials, rate)) + 1, (trials, rate, alpha)
+                assert stats.binom.sf(k - 1, trials, rate) < alpha <= stats.binom.sf(k - 2, trials, rate)
+
+
+def test_value_thresholds_equal_scipy_poisson_isf():
+    for level in (0.005, 0.02, 0.1, 0.3, 1.0, 4.0):
+        for value_alpha in (1e-2, 1e-4, 1e-6, 1e-9):
+            v = speckle._poisson_min_value(level, value_alpha)
+            # scipy.stats.poisson.isf(q) = smallest k with P(Y > k) <= q
+            assert v == stats.poisson.isf(value_alpha, level) + 1, (level, value_alpha)
+            assert stats.poisson.sf(v - 1, level) < value_alpha
+
+
+def test_fit_upper_point_equals_scipy_binom_isf():
+    for trials, rate in ((25, 0.02), (25, 0.3), (49, 0.26), (169, 0.1)):
+        # scipy.stats.binom.isf
+        assert speckle._binomial_upper_point(trials, rate, 0.1) == stats.binom.isf(0.1, trials, rate)
+
+
+def test_background_rate_is_the_fraction_of_positive_centres_among_sparse_windows():
+    d = synthetic_channel((200, 180), background=0.15, seed=6, n_cells=60, n_hot=0)
+    img, radius = d["counts"], 2
+    side, neighbours = 2 * radius + 1, (2 * radius + 1) ** 2 - 1
+    positive = img > 0
+    n = ndi.convolve(positive.astype(np.int64), np.ones((side, side), np.int64), mode="constant") - positive
+    inner = (slice(radius, -radius), slice(radius, -radius))  # full windows only
+    n, centre = n[inner].ravel(), positive[inner].ravel()
+    upper = int(np.quantile(n, 0.01, method="inverted_cdf"))
+    for _ in range(20):  # the documented fixed point, with scipy.stats.binom.isf for the median
+        rate = centre[n <= upper].mean()
+        upper, previous = int(stats.binom.isf(0.5, neighbours, rate)), upper
+        if upper == previous:
+            break
+    assert estimate_background(img, radius=radius).rate == pytest.approx(rate, rel=1e-12)
+
+
+def test_default_threshold_ignores_sub_count_residue():
+    rng = np.random.default_rng(11)
+    d = synthetic_channel((200, 200), background=0.05, seed=12, n_cells=60, n_hot=0)
+    counts = d["counts"]
+    residue = counts + np.where(rng.random(counts.shape) < 0.2, np.float32(1e-4), np.float32(0))
+    clean = estimate_background(counts)
+    assert estimate_background(residue).rate == clean.rate  # values <= 0.5 are not counts
+    assert estimate_background(residue, threshold=0.0).rate > 3 * clean.rate
+    np.testing.assert_array_equal(remove_speckle(residue).image > 0.5, remove_speckle(counts).image > 0.5)
+
+
+def test_background_level_follows_a_poisson_model():
+    rng = np.random.default_rng(4)
+    img = rng.poisson(0.7, (200, 200)).astype(np.float32)
+    for threshold in (0.0, 2.0):
+        bg = estimate_background(img, threshold=threshold)
+        # scipy.stats.poisson.sf: P(Y > threshold) at the estimated level is the estimated rate
+        assert stats.poisson.sf(threshold, bg.level) == pytest.approx(bg.rate, rel=1e-9)
+    bg = estimate_background(img)
+    window = 25
+    assert bg.count_threshold == int(stats.binom.isf(bg.alpha, window - 1, bg.rate)) + 1  # scipy.stats.binom.isf
+    assert bg.value_threshold == stats.poisson.isf(bg.value_alpha, bg.level) + 1  # scipy.stats.poisson.isf
+
+
+@pytest.mark.parametrize("rate", [0.02, 0.1, 0.3])
+def test_background_rate_recovered_and_not_inflated_by_cells(rate):
+    rng = np.random.default_rng(int(rate * 1000))
+    level = -np.log1p(-rate)  # Poisson: P(Y > 0) = 1 - exp(-level)
+    pure = rng.poisson(level, (400, 400)).astype(np.float32)
+    assert estimate_background(pure).rate == pytest.approx(rate, rel=0.05)
+    d = synthetic_channel((400, 400), background=level, seed=5, n_cells=400, n_dim=100, n_hot=0)
+    with_cells = estimate_background(d["counts"])
+    naive = float((d["counts"] > 0).mean())
+    assert naive > rate + 0.1  # cells make the plain positive fraction useless
+    assert with_cells.rate == pytest.approx(rate, rel=0.08)
+    for radius in (1, 4):  # the rate is a property of the background, not of the window
+        assert estimate_background(d["counts"], radius=radius).rate == pytest.approx(rate, rel=0.08)
+
+
+# --------------------------------------------------------------------------- the speckle rule
+
+
+def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level):
+    """The documented rule, written with scipy building blocks."""
+    side = 2 * radius + 1
+    positive = img > np.float32(threshold)
+    box = np.ones((side, side), np.int64)
+    n = ndi.convolve(positive.astype(np.int64), box, mode="constant") - positive  # scipy.ndimage.convolve
+    trials = ndi.convolve(np.ones(img.shape, np.int64), box, mode="constant") - 1  # neighbours in the image
+    min_count = stats.binom.isf(alpha, trials, rate) + 1  # scipy.stats.binom.isf
+    core = positive & (n >= min_count)
+    min_value = stats.poisson.isf(value_alpha, level) + 1  # scipy.stats.poisson.isf
+    border = positive & ndi.binary_dilation(core, structure=np.ones((3, 3), bool))  # scipy.ndimage.binary_dilation
+    keep = core | border | (positive & (img > min_value - 1))
+    if min_area > 1:
+        labels, _ = ndi.label(keep, structure=EIGHT)  # scipy.ndimage.label, 8-connectivity
+        sizes = np.bincount(labels.ravel())
+        keep &= sizes[labels] >= min_area
+    return np.where(positive & ~keep, np.float32(0), img)
+
+
+@pytest.mark.parametrize("radius, min_area, threshold", [(1, 1, 0.0), (2, 2, 0.5), (3, 5, 1.5), (2, 12, 0.0)])
+def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold):
+    d = synthetic_channel((150, 170), background=0.15, seed=radius + min_area, n_cells=40, n_dim=10,
+                          n_specks=15, n_processes=4, n_hot=0)
+    img = d["counts"]
+    img[0, :6] = 3.0  # objects on the image edge, where windows are clipped
+    img[-3:, -1] = 4.0
+    settings = dict(threshold=threshold, radius=radius, alpha=0.01, value_alpha=1e-5, min_area=min_area)
+    out, removed, st = remove_speckle(img, **settings)
+    expected = reference_speckle(img, rate=st["rate"], level=st["level"], **settings)
+    np.testing.assert_array_equal(out, expected)
+    np.testing.assert_array_equal(removed, img - expected)
+    assert st["n_removed"] == int(np.count_nonzero(removed)) > 0
+    assert st["removed_fraction"] == pytest.approx(float(removed.sum() / img.sum()))
+
+
+def test_speckle_on_synthetic_tissue(tissue):
+    washed, _, _ = remove_hot_pixels(tissue["raw"])
+    out, removed, st = remove_speckle(washed)
+    # Background counts that any local rule can judge: beyond the 8 neighbours of every object
+    # (a count touching a cell is indistinguishable from the cell's own edge).
+    away = (ndi.distance_transform_edt(tissue["expect"] == 0) > 1.5) & ~tissue["hot"]
+    assert out[away].sum() <= 0.10 * washed[away].sum()  # >= 90 % of background speckle counts removed
+    no_signal = (tissue["expect"] == 0) & ~tissue["hot"]
+    assert out[no_signal].sum() <= 0.15 * washed[no_signal].sum()  # including the objects' rims
+
+    def retained(mask):
+        mask = mask & ~tissue["hot"]
+        return out[mask].sum() / washed[mask].sum()
+
+    assert 0.95 <= retained(tissue["cells"]) <= 1.05
+    assert retained(tissue["specks"]) >= 0.90
+    assert retained(tissue["dim"]) >= 0.90
+    assert retained(tissue["processes"]) >= 0.75
+    assert st["removed_fraction"] == pytest.approx(float(removed.sum() / washed.sum()))
+
+
+def test_isolated_bright_count_goes_and_two_pixel_speck_stays():
+    rng = np.random.default_rng(8)
+    img = rng.poisson(0.05, (80, 80)).astype(np.float32)
+    img[10, 10] = 9.0  # one improbable count, alone
+    img[40, 40:42] = 9.0  # the same, two pixels side by side
+    img[60, 60] = img[61, 61] = 7.0  # diagonal neighbours are connected (8-connectivity)
+    for y, x in ((10, 10), (40, 40), (60, 60)):
+        img[y - 2 : y + 3, x - 2 : x + 3][img[y - 2 : y + 3, x - 2 : x + 3] < 7] = 0.0
+    out, _, st = remove_speckle(img)
+    assert st["value_threshold"] <= 7
+    assert out[10, 10] == 0.0
+    assert out[40, 40] == out[40, 41] == 9.0
+    assert out[60, 60] == out[61, 61] == 7.0
+
+
+def test_empty_and_full_channels():
+    zeros = np.zeros((30, 30), np.float32)
+    out, removed, st = remove_speckle(zeros)
+    assert st["rate"] == 0.0 and st["n_removed"] == 0 and not removed.any()
+    full = np.full((30, 30), 5.0, np.float32)  # every window full: no background to judge against
+    out, removed, st = remove_speckle(full)
+    assert st["rate"] == 1.0 and st["level"] is None and st["value_threshold"] is None
+    np.testing.assert_array_equal(out, full)
+    assert st["removed_fraction"] == 0.0
+
+
+def test_background_given_is_used_and_must_match_threshold():
+    d = synthetic_channel((120, 120), background=0.2, seed=9, n_cells=20, n_hot=0)
+    img = d["counts"]
+    whole = estimate_background(img, threshold=0.0)
+    crop = img[:60, :60]
+    out, _, st = remove_speckle(crop, threshold=0.0, background=whole)
+    assert st["rate"] == whole.rate
+    expected = reference_speckle(crop, threshold=0.0, radius=2, alpha=0.01, value_alpha=1e-6, min_area=2,
+                                 rate=whole.rate, level=whole.level)
+    np.testing.assert_array_equal(out, expected)
+    with pytest.raises(InputError, match="background: estimated with threshold 0, filter uses 1"):
+        remove_speckle(crop, threshold=1.0, background=whole)
+
+
+# --------------------------------------------------------------------------- stacks, dask, overrides
+
+
+def small_tissue_stack(seed=10):
+    channels = [synthetic_channel((150, 131), background=b, seed=seed + i, n_cells=40, n_dim=10,
+                                  n_specks=10, n_processes=3, n_hot=30)["raw"]
+                for i, b in enumerate((0.05, 0.2, 0.1))]
+    stack = np.stack(channels)
+    stack[:, 0, :3] = 600.0  # hot-ish things on the image edge and across chunk borders
+    stack[:, 23, 16:18] = 40.0
+    return stack
+
+
+PER_CHANNEL = [
+    SpeckleSettings(),
+    SpeckleSettings(radius=3, alpha=0.001, min_area=6, threshold=1.5),
+    SpeckleSettings(enabled=False),
+]
+
+
+@pytest.mark.parametrize("chunks", [(1, 40, 33), (3, 64, 50), (2, 150, 23)])
+def test_dask_equals_numpy_across_chunk_borders(chunks):
+    stack = small_tissue_stack()
+    lazy = da.from_array(stack, chunks=chunks)
+    for step, settings in ((hot_pixels_stack, HotPixelSettings()), (speckle_stack, PER_CHANNEL),
+                           (speckle_stack, SpeckleSettings(radius=1, min_area=1))):
+        eager = step(stack, settings)
+        result = step(lazy, settings)
+        assert isinstance(result.image, da.Array) and result.image.chunks == lazy.chunks
+        image, removed, stats_ = dask.compute(result.image, result.removed, result.stats)
+        np.testing.assert_array_equal(image, eager.image)
+        np.testing.assert_array_equal(removed, eager.removed)
+        for a, b in zip(stats_, eager.stats, strict=True):
+            assert a.keys() == b.keys()
+            for key in a:
+                assert a[key] == (pytest.approx(b[key], rel=1e-12) if isinstance(b[key], float) else b[key]), key
+
+
+def test_chunked_speckle_depth_is_needed(monkeypatch):
+    img = np.zeros((32, 48), np.float32)
+    img[10, 14:23] = 50.0  # 9 kept pixels crossing the chunk border at x = 16
+    settings = SpeckleSettings(min_area=8)
+    eager = speckle_stack(img[None], settings).image
+    lazy = da.from_array(img[None], chunks=(1, 16, 16))
+    assert eager[0, 10, 14] == 50.0
+    np.testing.assert_array_equal(speckle_stack(lazy, settings).image.compute(), eager)
+    monkeypatch.setattr(speckle, "speckle_depth", lambda s: s.radius)  # too shallow for the size rule
+    assert not np.array_equal(speckle_stack(lazy, settings).image.compute(), eager)
+
+
+def test_background_estimate_does_not_depend_on_chunks():
+    img = small_tissue_stack()[1]
+    reference = estimate_background(img, radius=3)
+    for chunks in ((20, 20), (150, 7), (64, 131)):
+        assert estimate_background(da.from_array(img, chunks=chunks), radius=3) == reference
+
+
+def test_per_channel_settings_and_disabled_channel():
+    stack = small_tissue_stack()
+    cleaned, removed, st = speckle_stack(stack, PER_CHANNEL)
+    for c in (0, 1):
+        kwargs = {f.name: getattr(PER_CHANNEL[c], f.name) for f in dataclasses.fields(SpeckleSettings)
+                  if f.name != "enabled"}
+        single = remove_speckle(stack[c], **kwargs)
+        np.testing.assert_array_equal(cleaned[c], single.image)
+        assert st[c] == {"enabled": True, **single.stats}
+    np.testing.assert_array_equal(cleaned[2], stack[2])
+    assert not removed[2].any()
+    assert st[2]["enabled"] is False and st[2]["removed_fraction"] == 0.0
+    hot = hot_pixels_stack(stack, [HotPixelSettings(), HotPixelSettings(enabled=False),
+                                   HotPixelSettings(ratio=20.0)])
+    assert hot.stats[0]["n_pixels"] > 0 and hot.stats[1]["n_pixels"] == 0
+    np.testing.assert_array_equal(hot.image[1], stack[1])
+    np.testing.assert_array_equal(hot.image[2], remove_hot_pixels(stack[2], ratio=20.0).image)
+    with pytest.raises(InputError, match="settings: 2 settings for 3 channels"):
+        speckle_stack(stack, PER_CHANNEL[:2])
+    with pytest.raises(InputError, match="expected SpeckleSettings"):
+        speckle_stack(stack, [HotPixelSettings()] * 3)
+
+
+@pytest.mark.parametrize("dtype", [np.uint16, np.int32, np.float32, np.float64])
+def test_inputs_never_modified_and_output_is_float32(dtype):
+    stack = small_tissue_stack().astype(dtype)
+    before = stack.copy()
+    results = [hot_pixels_stack(stack), speckle_stack(stack), remove_hot_pixels(stack[0]),
+               remove_speckle(stack[1])]
+    lazy = da.from_array(stack, chunks=(1, 50, 50))
+    results += [hot_pixels_stack(lazy), speckle_stack(lazy)]
+    for result in results:
+        image, removed = dask.compute(result.image, result.removed)
+        assert image.dtype == np.float32 and removed.dtype == np.float32
+    np.testing.assert_array_equal(stack, before)
+    assert stack.dtype == dtype
+    np.testing.assert_array_equal(speckle_stack(stack).image, speckle_stack(stack.astype(np.float32)).image)
+
+
+def test_bad_input_is_refused_with_a_named_problem():
+    img = np.zeros((20, 20), np.float32)
+    cases = [
+        (lambda: remove_hot_pixels(np.zeros(5)), "image: expected a 2-D array"),
+        (lambda: remove_speckle(np.zeros((2, 5, 5))), "image: expected a 2-D array"),
+        (lambda: hot_pixels_stack(img), "stack: expected a 3-D array"),
+        (lambda: remove_hot_pixels(img.astype(complex)), "image: expected real numbers"),
+        (lambda: remove_hot_pixels(np.zeros((1, 9))), "needs at least 2 x 2 pixels"),
+        (lambda: remove_speckle(img, radius=12), "speckle.radius: window of 25 px is larger"),
+        (lambda: remove_hot_pixels(img, ratio=0.5), "hot_pixels.ratio"),
+        (lambda: remove_speckle(img, radius=0), "speckle.radius"),
+        (lambda: remove_speckle(img, radius=2.5), "speckle.radius: must be a whole number"),
+        (lambda: remove_speckle(img, alpha=0.0), "speckle.alpha"),
+        (lambda: remove_speckle(img, min_area=0), "speckle.min_area"),
+        (lambda: remove_speckle(img, threshold=float("nan")), "speckle.threshold: must be finite"),
+        (lambda: remove_speckle(img, threshold="0"), "speckle.threshold: must be a number"),
+    ]
+    for call, message in cases:
+        with pytest.raises(InputError, match=message):
+            call()
+
+
+def test_settings_are_frozen_documented_and_defaults_in_range():
+    for cls in (HotPixelSettings, SpeckleSettings):
+        obj = cls()
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            obj.enabled = False
+        for field in dataclasses.fields(cls):
+            assert field.metadata["doc"]
+        # the functions' own defaults are the settings' defaults
+        values = {f.name: f.default for f in dataclasses.fields(cls) if f.name != "enabled"}
+        assert speckle._settings(cls, "x", **values) == obj
+    assert speckle_depth(SpeckleSettings()) == 2 + 2  # radius + min_area
+    assert speckle_depth(SpeckleSettings(radius=5, min_area=1)) == 6
+    assert BackgroundEstimate._fields[:4] == ("rate", "level", "count_threshold", "value_threshold")
+
+
+def test_docstring_examples_run():
+    result = doctest.testmod(speckle, verbose=False)
+    assert result.attempted >= 6 and result.failed == 0
+
+
+# --------------------------------------------------------------------------- the demo cohort
+
+
+def demo_truth(demo_dir, name):
+    names = json.loads((demo_dir / "truth" / "truth.json").read_text())
+    rows = list(csv.reader((demo_dir / "truth" / "spillover.csv").open()))
+    spill = np.array([[float(v) for v in row[1:]] for row in rows[1:]])
+    truth = np.load(demo_dir / "truth" / f"{name}.npz")
+    raw = tifffile.imread(demo_dir / "cohort" / f"{name}.ome.tiff").astype(np.float32)
+    return names, spill, truth, raw
+
+
+def test_defaults_on_the_demo_cohort(demo_dir):
+    names, spill, truth, raw = demo_truth(demo_dir, "roi_01")
+    channels = names["channels"]
+    hot = truth["hot_pixels"]
+    is_hot = np.zeros(raw.shape, bool)
+    is_hot[hot[:, 0], hot[:, 1], hot[:, 2]] = True
+
+    washed, removed, _ = hot_pixels_stack(raw)
+    without_hot = raw.copy()
+    without_hot[hot[:, 0], hot[:, 1], hot[:, 2]] -= hot[:, 3]
+    left = washed[hot[:, 0], hot[:, 1], hot[:, 2]] - without_hot[hot[:, 0], hot[:, 1], hot[:, 2]]
+    # hot pixels against bright cells keep a brighter neighbour than ratio allows; the rest go
+    assert np.mean(left < 0.1 * hot[:, 3]) >= 0.94
+    assert not np.any(removed[~is_hot])
+
+    cleaned, _, st = speckle_stack(washed)
+    signal = truth["signal"].astype(np.float64)
+    measured_signal = np.einsum("ij,iyx->jyx", spill, signal)  # what each channel really records
+    for c, name in enumerate(channels):
+        far = ndi.distance_transform_edt(measured_signal[c] < 0.05) > 3.5
+        far &= ~is_hot[c]
+        assert cleaned[c][far].sum() <= 0.05 * washed[c][far].sum(), name
+        own = (signal[c] > 0) & ~is_hot[c]
+        if own.any():
+            assert cleaned[c][own].sum() >= 0.99 * washed[c][own].sum(), name
+        assert st[c]["rate"] == pytest.approx(truth["background_rate"][c], rel=0.35, abs=0.01), name
+    specks = channels.index(names["specks"][0])
+    granules = (truth["specks"] > 0) & ~is_hot[specks]
+    np.testing.assert_array_equal(cleaned[specks][granules], washed[specks][granules])
