@@ -335,6 +335,8 @@ def _open_tiff(path: Path, *, has_panel: bool):
             tif = tifffile.TiffFile(path)
             series = tif.series[0] if tif.series else None
         except (tifffile.TiffFileError, ValueError, OSError, struct.error, IndexError) as exc:
+            if _has_tiff_header(path):
+                raise InputError(path, f"file is truncated or damaged ({_short(exc)})") from None
             raise InputError(path, f"not a readable TIFF file ({_short(exc)})") from None
     try:
         if series is None:
@@ -369,6 +371,13 @@ def _open_tiff(path: Path, *, has_panel: bool):
     except Exception as exc:  # tifffile raises many types on damaged files
         tif.close()
         raise InputError(path, f"cannot read TIFF ({_short(exc)})") from None
+
+
+def _has_tiff_header(path: Path) -> bool:
+    """True when the file starts like a TIFF or BigTIFF (TIFF 6.0 spec, section 2)."""
+    with open(path, "rb") as fh:
+        head = fh.read(4)
+    return head in (b"II*\x00", b"MM\x00*", b"II+\x00", b"MM\x00+")
 
 
 def _short(exc: BaseException) -> str:
