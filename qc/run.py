@@ -174,13 +174,14 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
     (1, 0, True)
     """
     started = time.perf_counter()
-    plan = _prepare(cohort_dir, out_dir, recipe=recipe, spillover=spillover, panel=panel)
     if workers is not None and scheduler is not None:
         raise InputError("--workers", "give either --workers or --scheduler, not both")
     if workers is not None and (isinstance(workers, bool) or int(workers) < 1):
         raise InputError("--workers", f"must be a whole number >= 1, got {workers!r}")
-    out = plan.out_dir
+    inputs = _check_inputs(cohort_dir, out_dir, recipe=recipe, spillover=spillover, panel=panel)
+    out = inputs["out_dir"]
     with _run_lock(out), _RunLog(out / RUN_LOG, progress=progress) as log, _interrupt_on_sigterm():
+        plan = _write_run_files(inputs)
         removed = sweep_temporary(out)
         if removed:
             log.line(f"removed {len(removed)} leftover temporary file(s) of an interrupted run")
@@ -193,13 +194,15 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
         done = 0
         log.start(len(jobs))
         try:
-            for record in _execute(jobs, workers=workers, scheduler=scheduler, log=log):
-                ledger.append(record)
-                if record["status"] == "done":
-                    done += 1
-                else:
-                    failed.append(record["roi"])
-                log.finished(record)
+            results = contextlib.closing(_execute(jobs, workers=workers, scheduler=scheduler, log=log))
+            with results as records:
+                for record in records:
+                    ledger.append(record)
+                    if record["status"] == "done":
+                        done += 1
+                    else:
+                        failed.append(record["roi"])
+                    log.finished(record)
         except KeyboardInterrupt:
             log.line("interrupted: stopped; ROIs in flight were not recorded and will be redone")
             sweep_temporary(out)
@@ -217,6 +220,47 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
     return RunSummary(out, done, len(skipped), len(failed), tuple(failed), seconds, report)
 
 
+#: The demo data of a source checkout: ``example_stack/`` beside the ``qc`` folder.
+DEMO_STACK = Path(__file__).resolve().parents[1] / "example_stack"
+
+
+def run_demo(out_dir="plexwash-demo", *, stack=None, workers=None, progress=True) -> RunSummary:
+    """The main job on the demo cohort: estimate spillover from its controls, run, report.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+        The run folder (default ``plexwash-demo`` in the current folder).
+    stack : str or Path, optional
+        The demo folder (``cohort/``, ``controls/controls.csv``, ``panel.csv``); default
+        ``example_stack/`` of the source checkout.
+    workers : int, optional
+        As in :func:`run_cohort`.
+    progress : bool
+        As in :func:`run_cohort`.
+
+    Returns
+    -------
+    RunSummary
+
+    Raises
+    ------
+    InputError
+        When the demo folder is missing (an installed wheel has no ``example_stack``).
+    """
+    from .spillover import estimate_from_controls
+
+    stack = Path(stack) if stack is not None else DEMO_STACK
+    controls = stack / "controls" / "controls.csv"
+    for needed in (stack / "cohort", controls, stack / "panel.csv"):
+        if not needed.exists():
+            raise InputError(needed, "demo data not found (it ships with the source checkout, "
+                             "example_stack/)")
+    matrix = estimate_from_controls(controls, panel=stack / "panel.csv")
+    return run_cohort(stack / "cohort", out_dir, spillover=matrix, panel=stack / "panel.csv",
+                      workers=workers, progress=progress)
+
+
 @dataclasses.dataclass(frozen=True)
 class _Plan:
     cohort_dir: Path
@@ -231,10 +275,10 @@ class _Plan:
     panel_sha256: str | None
 
 
-def _prepare(cohort_dir, out_dir, *, recipe, spillover, panel) -> _Plan:
-    """Check the inputs and write the self-contained recipe (and its spillover, panel) copy."""
-    from .io import check_output_path, list_cohort, read_panel, roi_stem, sha256_path
-    from .recipe import Recipe, load_recipe, write_recipe
+def _check_inputs(cohort_dir, out_dir, *, recipe, spillover, panel) -> dict:
+    """Read and check everything a run needs, writing nothing."""
+    from .io import check_output_path, list_cohort, read_panel, roi_stem
+    from .recipe import Recipe, load_recipe
 
     cohort_dir = Path(cohort_dir).absolute()
     out = Path(out_dir).absolute()
@@ -261,11 +305,17 @@ def _prepare(cohort_dir, out_dir, *, recipe, spillover, panel) -> _Plan:
     if panel is not None:
         panel_obj = panel if not isinstance(panel, (str, Path)) else read_panel(panel)
         panel_text = _panel_csv(panel_obj)
+    return {"cohort_dir": cohort_dir, "out_dir": out, "rois": sorted(names.items()),
+            "recipe": recipe, "matrix": _spillover_matrix(spillover, recipe),
+            "panel_text": panel_text}
 
-    matrix = _spillover_matrix(spillover, recipe)
-    out.mkdir(parents=True, exist_ok=True)
-    from .io import write_text_atomic
 
+def _write_run_files(inputs: dict) -> _Plan:
+    """Write the self-contained recipe copy (and its spillover matrix and panel) of a run."""
+    from .io import sha256_path, write_text_atomic
+    from .recipe import load_recipe, write_recipe
+
+    out, recipe, matrix, panel_text = (inputs[k] for k in ("out_dir", "recipe", "matrix", "panel_text"))
     spillover_path = panel_path = None
     changes = {"spillover": ""}
     if matrix is not None:
@@ -282,7 +332,7 @@ def _prepare(cohort_dir, out_dir, *, recipe, spillover, panel) -> _Plan:
     if load_recipe(out / RECIPE).sha256() != run_recipe.sha256():  # the copy must say the same
         raise RuntimeError("the written recipe does not read back identically")
     return _Plan(
-        cohort_dir=cohort_dir, out_dir=out, rois=sorted(names.items()), recipe_path=out / RECIPE,
+        cohort_dir=inputs["cohort_dir"], out_dir=out, rois=inputs["rois"], recipe_path=out / RECIPE,
         recipe_sha256=run_recipe.sha256(), output_settings=run_recipe.output,
         spillover_path=spillover_path,
         spillover_sha256=sha256_path(spillover_path) if spillover_path else None,

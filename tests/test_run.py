@@ -562,3 +562,17 @@ def test_run_summary_exit_codes():
     assert (summary.exit_code, summary.total) == (0, 3)
     assert run_module.RunSummary(Path("."), 1, 0, 1, ("a",)).exit_code == 3
     assert math.isfinite(summary.seconds)
+
+
+def test_run_demo_on_a_generated_stack(cohort, tmp_path):
+    from plexwash.qc.run import run_demo
+    from plexwash.qc.spillover import estimate_from_controls, read_spillover
+
+    summary = run_demo(tmp_path / "demo", stack=cohort, progress=False)
+    assert (summary.done, summary.exit_code) == (4, 0)
+    used = read_spillover(tmp_path / "demo" / "spillover.csv")
+    estimate = estimate_from_controls(cohort / "controls" / "controls.csv", panel=cohort / "panel.csv")
+    np.testing.assert_allclose(used.values, estimate.values, rtol=1e-9, atol=1e-12)
+    assert (tmp_path / "demo" / "report.html").is_file()
+    with pytest.raises(InputError, match="demo data not found"):
+        run_demo(tmp_path / "none", stack=tmp_path / "missing", progress=False)

@@ -1,0 +1,160 @@
+"""Speed of a wash against its floor: reading the ROI and writing it back.
+
+One 40 x 1000 x 1000 ROI (float32 counts from the demo generator, ~160 MB; read lazily
+as dask because it is over ``io.LAZY_BYTES``) is written once as OME-TIFF. Then, each
+timed ``--repeats`` times (medians printed):
+
+- floor: ``read_roi`` + ``write_stack`` of the same pixels as float32, in the recipe's
+  output format and compression (what any tool must pay to read and write this stack);
+- wash: ``read_roi`` + ``wash_to_file`` (hot pixels, NNLS compensation with a spillover
+  matrix, speckle; stats in the same pass);
+- run: the same ROI through ``run_cohort`` (adds hashing of input and output and the
+  quality measurements of raw and washed, and the report), for information.
+
+The ratio wash / floor is the figure of merit (target <= 3x, must be < 4x).
+
+    python benchmarks/wash.py [--repeats 3] [--dtype float32|uint16] [--size 1000] [--channels 40]
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib.util
+import os
+import shutil
+import statistics
+import tempfile
+import time
+from pathlib import Path
+
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
+import numpy as np  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def load_generator():
+    spec = importlib.util.spec_from_file_location("plexwash_demo_generate",
+                                                  ROOT / "example_stack" / "generate.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def channel_names(n: int) -> list[str]:
+    """n mass-tagged names on consecutive masses (so the spillover has neighbour pairs)."""
+    elements = [("La", 139), ("Pr", 141), ("Nd", 142), ("Sm", 147), ("Eu", 151), ("Gd", 152),
+                ("Tb", 159), ("Dy", 160), ("Ho", 165), ("Er", 166), ("Tm", 169), ("Yb", 171),
+                ("Lu", 175), ("Hf", 176)]
+    names, mass = [], 139
+    while len(names) < n - 2:
+        element = [e for e, m in elements if m <= mass][-1]
+        names.append(f"{element}{mass}")
+        mass += 1
+    return names + ["Ir191", "Ir193"]
+
+
+def make_roi(folder: Path, *, channels: int, size: int, dtype) -> tuple[Path, Path]:
+    """Write one simulated ROI and its true spillover matrix; return their paths."""
+    gen = load_generator()
+    names = channel_names(channels)
+    rng = np.random.default_rng(40)
+    panel = gen.random_panel(names, rng, failed=names[5], dim=names[3], rare=names[7],
+                             specks=names[9])
+    spill = gen.build_spillover(names, np.random.default_rng(41))
+    counts, _ = gen.simulate_roi(np.random.default_rng(42), panel, spill, size, dtype=dtype,
+                                 n_striped_rows=2)
+    from plexwash.qc.io import write_ome_tiff
+
+    cohort = folder / "cohort"
+    cohort.mkdir(parents=True, exist_ok=True)
+    roi = cohort / "bench.ome.tiff"
+    write_ome_tiff(roi, counts, names, pixel_size=(1.0, 1.0))
+    spill_csv = folder / "spillover.csv"
+    gen.write_spillover_csv(spill_csv, spill, names)
+    return roi, spill_csv
+
+
+def time_floor(roi_path: Path, out: Path, recipe) -> float:
+    from plexwash.qc.io import read_roi, write_stack
+
+    start = time.perf_counter()
+    roi = read_roi(roi_path)
+    write_stack(out, roi.data.astype(np.float32), roi.channels, pixel_size=roi.pixel_size,
+                settings=recipe.output)
+    return time.perf_counter() - start
+
+
+def time_wash(roi_path: Path, out: Path, recipe, spill_csv: Path) -> float:
+    from plexwash.qc.io import read_roi
+    from plexwash.qc.spillover import read_spillover
+    from plexwash.qc.wash import wash_to_file
+
+    start = time.perf_counter()
+    roi = read_roi(roi_path)
+    wash_to_file(roi, out, recipe, spillover=read_spillover(spill_csv))
+    return time.perf_counter() - start
+
+
+def time_run(cohort: Path, out: Path, recipe, spill_csv: Path) -> tuple[float, dict]:
+    from plexwash.qc.run import read_ledger, run_cohort
+
+    shutil.rmtree(out, ignore_errors=True)
+    start = time.perf_counter()
+    run_cohort(cohort, out, recipe=recipe, spillover=spill_csv, progress=False)
+    seconds = time.perf_counter() - start
+    return seconds, read_ledger(out)[-1].get("timings", {})
+
+
+def main(argv=None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--size", type=int, default=1000)
+    parser.add_argument("--channels", type=int, default=40)
+    parser.add_argument("--dtype", choices=("float32", "uint16"), default="float32")
+    parser.add_argument("--no-run", action="store_true", help="skip the run_cohort timing")
+    args = parser.parse_args(argv)
+
+    from plexwash.qc.recipe import default_recipe
+
+    recipe = default_recipe()
+    tmp = Path(tempfile.mkdtemp(prefix="plexwash-bench-"))
+    try:
+        t0 = time.perf_counter()
+        roi, spill_csv = make_roi(tmp, channels=args.channels, size=args.size, dtype=np.dtype(args.dtype))
+        stack_bytes = args.channels * args.size * args.size * 4
+        print(f"ROI {args.channels} x {args.size} x {args.size} {args.dtype} "
+              f"({roi.stat().st_size / 1e6:.0f} MB on disk, {stack_bytes / 1e6:.0f} MB as float32), "
+              f"made in {time.perf_counter() - t0:.1f} s; output {recipe.output.format}, "
+              f"{recipe.output.compression}, tile {recipe.output.tile}; {os.cpu_count()} cores")
+        # warm-up: numba caches, imports, file cache
+        time_wash(roi, tmp / "warm.ome.tiff", recipe, spill_csv)
+        floors, washes, runs = [], [], []
+        timings = {}
+        for k in range(args.repeats):
+            floors.append(time_floor(roi, tmp / f"floor-{k}.ome.tiff", recipe))
+            washes.append(time_wash(roi, tmp / f"wash-{k}.ome.tiff", recipe, spill_csv))
+            if not args.no_run:
+                seconds, timings = time_run(roi.parent, tmp / "run", recipe, spill_csv)
+                runs.append(seconds)
+        floor, washed = statistics.median(floors), statistics.median(washes)
+        print(f"floor (read + write back)   median {floor:.2f} s   runs {_list(floors)}")
+        print(f"wash to file                median {washed:.2f} s   runs {_list(washes)}")
+        print(f"wash / floor = {washed / floor:.2f}x   (target <= 3x, must be < 4x)")
+        if runs:
+            run = statistics.median(runs)
+            print(f"run_cohort, one ROI         median {run:.2f} s   runs {_list(runs)}")
+            print(f"run / floor = {run / floor:.2f}x   (adds hashing, quality raw + washed, report)")
+            print("last run's timings per part: "
+                  + ", ".join(f"{k} {v:.2f} s" for k, v in timings.items()))
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _list(values) -> str:
+    return ", ".join(f"{v:.2f}" for v in values)
+
+
+if __name__ == "__main__":
+    main()
