@@ -166,13 +166,15 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_a
                     for xx in range(max(0, x - 1), min(width, x + 2)):
                         if state[yy, xx] == _CORE:
                             state[y, x] = _KEPT
-    if min_area > 1:
+    if min_area > 2:
         _drop_small_components(state, min_area)
     n_removed = 0
     for y in range(height):
         for x in range(width):
             v = image[y, x]
-            if state[y, x] == _DROPPED:
+            s = state[y, x]
+            # min_area == 2: a kept pixel survives exactly when one of its 8 neighbours is kept
+            if s == _DROPPED or (s >= _KEPT and min_area == 2 and not _has_kept_neighbour(state, y, x)):
                 out[y, x] = 0.0
                 removed[y, x] = v
                 n_removed += 1
@@ -180,6 +182,16 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_a
                 out[y, x] = v
                 removed[y, x] = 0.0
     return n_removed
+
+
+@nb.njit(cache=True, nogil=True)
+def _has_kept_neighbour(state, y, x):
+    height, width = state.shape
+    for yy in range(max(0, y - 1), min(height, y + 2)):
+        for xx in range(max(0, x - 1), min(width, x + 2)):
+            if (yy != y or xx != x) and state[yy, xx] >= _KEPT:
+                return True
+    return False
 
 
 @nb.njit(cache=True, nogil=True)
@@ -204,28 +216,40 @@ def _union(parent, i, j):
 def _drop_small_components(state, min_area):
     """Mark kept pixels of 8-connected components smaller than ``min_area`` as dropped.
 
-    Union-find over pixel indices; a pixel is linked to its kept neighbours W, NW, N, NE.
+    Two-pass labelling: provisional labels linked by union-find (neighbours W, NW, N, NE),
+    then sizes per root. Labels are compact, so ``parent`` stays small and cached.
     """
     height, width = state.shape
-    parent = np.empty(height * width, np.int32)
+    labels = np.empty((height, width), np.int32)  # read only where state is kept
+    parent = np.empty(height * (width + 1) // 2 + 2, np.int32)  # bound on new labels
+    n_labels = 0
     for y in range(height):
         for x in range(width):
             if state[y, x] < _KEPT:
                 continue
-            i = y * width + x
-            parent[i] = i
+            label = -1
             if x > 0 and state[y, x - 1] >= _KEPT:
-                _union(parent, i, i - 1)
+                label = labels[y, x - 1]
             if y > 0:
                 for xx in range(max(0, x - 1), min(width, x + 2)):
                     if state[y - 1, xx] >= _KEPT:
-                        _union(parent, i, i - width + xx - x)
-    size = np.zeros(height * width, np.int32)
+                        if label < 0:
+                            label = labels[y - 1, xx]
+                        else:
+                            _union(parent, label, labels[y - 1, xx])
+            if label < 0:
+                label = n_labels
+                parent[label] = label
+                n_labels += 1
+            labels[y, x] = label
+    size = np.zeros(n_labels, np.int32)
+    for label in range(n_labels):
+        parent[label] = _find(parent, label)
     for y in range(height):
         for x in range(width):
             if state[y, x] >= _KEPT:
-                size[_find(parent, y * width + x)] += 1
+                size[parent[labels[y, x]]] += 1
     for y in range(height):
         for x in range(width):
-            if state[y, x] >= _KEPT and size[_find(parent, y * width + x)] < min_area:
+            if state[y, x] >= _KEPT and size[parent[labels[y, x]]] < min_area:
                 state[y, x] = _DROPPED

@@ -42,12 +42,14 @@ Chunked stacks
     The background estimate is a property of the whole channel: for dask input it is
     computed first (one pass over the channel), then the filter runs block by block with
     ``dask.array.map_overlap``, ``boundary='none'`` (the kernels treat the image edge
-    themselves, exactly as for numpy) and a depth from :func:`speckle_depth`. That depth
-    makes every block's result identical to the whole-image result: the window counts need
-    ``radius``, the border rule 1 more, and a component cut by the block edge is judged
-    correctly when its part inside the block reaches ``min_area - 1`` pixels beyond the
-    kept region (a smaller component cannot reach the block edge), so
-    ``depth = radius + 1 + (min_area - 1) = radius + min_area``.
+    themselves, exactly as for numpy) and the depth from :func:`speckle_depth`, which
+    makes every block's result identical to the whole-image result. Window counts are
+    exact ``radius`` pixels in from the block edge, core/border marks ``radius + 1`` in.
+    A kept component smaller than ``min_area`` spans fewer than ``min_area`` pixels, so
+    seen from the block's own part it cannot leave a margin of ``min_area - 1`` pixels;
+    if the part seen in the block does leave that margin, the component has at least
+    ``min_area`` pixels anyway. Hence ``depth = radius + 1 + (min_area - 1) = radius +
+    min_area``.
 
 References
 ----------
@@ -501,9 +503,12 @@ def remove_speckle(
     Parameters
     ----------
     image : (Y, X) array_like or dask array
-        One channel, at least ``2 * radius + 1`` pixels a side. Not modified.
+        One channel, at least ``2 * radius + 1`` pixels a side. Not modified. For dask
+        input without ``background`` the estimate is computed here (one pass), then the
+        filter stays lazy.
     threshold : float, optional
-        A pixel is positive when its value is above this (compared in float32).
+        A pixel is positive when its value is above this (compared in float32); 0.5 means
+        "at least one count" and ignores sub-count residue left by compensation.
     radius : int, optional
         Window half-width; the cost does not depend on it (running box sums).
     alpha : float, optional
