@@ -1,0 +1,88 @@
+"""plexwash studio: napari dock widgets over the plexwash engine (``plexwash studio``).
+
+The npe2 manifest ``napari.yaml`` contributes a reader (OME-TIFF, OME-Zarr, TIFF with its
+panel), a writer (image layers to one OME-TIFF / OME-Zarr stack), the demo cohort as
+sample data, and five dock widgets: Cohort, Spillover, Speckle, Quality, Run.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+#: Dock widget titles (as users see them), in the order they are docked.
+WIDGETS = ("Cohort", "Spillover", "Speckle", "Quality", "Run")
+PLUGIN = "plexwash"
+
+__all__ = ["PLUGIN", "WIDGETS", "launch_studio"]
+
+
+def launch_studio(cohort_dir: str | Path | None = None, *, viewer=None, show: bool = True,
+                  run: bool = True):
+    """Open napari with the five studio widgets docked and, optionally, a cohort listed.
+
+    Parameters
+    ----------
+    cohort_dir : str or Path, optional
+        A folder of ROIs to list in the Cohort widget (its first ROI is loaded).
+    viewer : napari.Viewer, optional
+        Dock into this viewer instead of making a new one.
+    show : bool
+        Show the window (False for tests and screenshots).
+    run : bool
+        Enter the Qt event loop (returns when the window closes). False returns at once.
+
+    Returns
+    -------
+    napari.Viewer
+        The viewer; ``viewer.window.dock_widgets`` holds the widgets by title.
+
+    Raises
+    ------
+    plexwash.qc.errors.InputError
+        When ``cohort_dir`` is not a readable cohort folder.
+    """
+    import napari
+    from plexwash.qc.io import list_cohort
+    from qtpy.QtCore import Qt, QTimer
+
+    if cohort_dir is not None:
+        list_cohort(cohort_dir)  # fail early, before a window opens, with the CLI's message
+    if viewer is None:
+        viewer = napari.Viewer(title="plexwash studio", show=show)
+    widgets, docks = {}, {}
+    for title in WIDGETS:
+        # Cohort goes left on its own; the others share one tabbed column on the right
+        tabify = title not in ("Cohort", "Spillover")
+        dock, widget = viewer.window.add_plugin_dock_widget(PLUGIN, title, tabify=tabify)
+        widgets[title], docks[title] = widget, dock
+        if title == "Cohort":
+            dock.parent().addDockWidget(Qt.DockWidgetArea.LeftDockWidgetArea, dock)
+        dock.setWindowTitle(title)  # tabs read "Speckle", not "Speckle (plexwash)"
+    main = docks["Cohort"].parent()
+    main.resizeDocks([docks["Cohort"], docks["Speckle"]], [340, 400], Qt.Orientation.Horizontal)
+    _give_cohort_room(main, docks["Cohort"])
+    QTimer.singleShot(0, lambda: _give_cohort_room(main, docks["Cohort"]))  # once laid out
+    docks["Speckle"].raise_()
+    if cohort_dir is not None:
+        cohort = widgets["Cohort"]
+        cohort.open_cohort(cohort_dir)
+        if cohort.table.rowCount():
+            cohort.load(0)
+    if run:
+        napari.run()
+    return viewer
+
+
+def _give_cohort_room(main, cohort_dock) -> None:
+    """Share the left column: compact layer controls and list above, the Cohort widget below."""
+    from qtpy.QtCore import Qt
+    from qtpy.QtWidgets import QDockWidget
+
+    left = [d for d in main.findChildren(QDockWidget)
+            if main.dockWidgetArea(d) == Qt.DockWidgetArea.LeftDockWidgetArea and d.isVisible()
+            and d is not cohort_dock]
+    if not left:
+        return
+    height = max(main.height(), 900)
+    share = [int(height * 0.22)] * len(left)
+    main.resizeDocks(left + [cohort_dock], share + [height - sum(share)], Qt.Orientation.Vertical)

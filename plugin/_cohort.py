@@ -1,0 +1,413 @@
+"""Cohort dock widget: open a cohort, see each ROI's flags, load one, view its channels."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from napari.qt.threading import thread_worker
+from qtpy.QtCore import Qt
+from qtpy.QtWidgets import (
+    QAbstractItemView,
+    QButtonGroup,
+    QDoubleSpinBox,
+    QHBoxLayout,
+    QHeaderView,
+    QLabel,
+    QListWidget,
+    QListWidgetItem,
+    QPushButton,
+    QTableWidget,
+    QTableWidgetItem,
+)
+
+from ._common import WARN, PathRow, StudioWidget, qcolor
+from ._layers import (
+    CONTRAST_PERCENTILES,
+    PALETTE,
+    colormap_for,
+    grid_of,
+    robust_limits,
+    roi_layer_data,
+    set_colormap,
+    studio_layers,
+)
+from ._quality import measure_rows
+from ._reader import read_with_panel
+
+VIEWS = ("single", "grid", "overlay")
+
+
+# --------------------------------------------------------------------------- plain functions
+
+
+def read_quality_table(path) -> dict[str, dict[str, list[dict]]]:
+    """Rows of a run's ``quality.csv`` grouped as ``{roi: {stage: [row, ...]}}`` (flags as lists)."""
+    from plexwash.qc.run import read_quality_csv
+
+    out: dict[str, dict[str, list[dict]]] = {}
+    for row in read_quality_csv(path):
+        out.setdefault(row["roi"], {}).setdefault(row.get("stage") or "raw", []).append(row)
+    return out
+
+
+def summarize_flags(rows: list[dict]) -> str:
+    """One line for an ROI's flags: ROI-level flags, then each channel flag with its channels.
+
+    Examples
+    --------
+    >>> rows = [{"channel": "A", "flags": ["empty", "striped"]},
+    ...         {"channel": "B", "flags": ["striped"]}, {"channel": "C", "flags": ["striped"]}]
+    >>> summarize_flags(rows)
+    'striped · empty: A'
+    >>> summarize_flags([{"channel": "A", "flags": []}])
+    'ok'
+    """
+    if not rows:
+        return ""
+    everywhere = set(rows[0]["flags"])
+    for row in rows[1:]:
+        everywhere &= set(row["flags"])
+    if len(rows) == 1:
+        from plexwash.qc.quality import ROI_FLAGS
+
+        everywhere &= set(ROI_FLAGS)
+    per_flag: dict[str, list[str]] = {}
+    for row in rows:
+        for flag in row["flags"]:
+            if flag not in everywhere:
+                per_flag.setdefault(flag, []).append(str(row.get("label") or row["channel"]))
+    parts = sorted(everywhere)
+    for flag, channels in per_flag.items():
+        shown = ", ".join(channels[:3]) + (f" +{len(channels) - 3}" if len(channels) > 3 else "")
+        parts.append(f"{flag}: {shown}")
+    return " · ".join(parts) if parts else "ok"
+
+
+def load_roi(path, *, low: float = CONTRAST_PERCENTILES[0], high: float = CONTRAST_PERCENTILES[1]):
+    """Read an ROI with its panel and make its channel layers with robust contrast."""
+    roi = read_with_panel(path)
+    layers = roi_layer_data(roi, visible=1)
+    for data, kwargs, _ in layers:
+        kwargs["contrast_limits"] = list(robust_limits(data, low=low, high=high))
+    return roi, layers
+
+
+# --------------------------------------------------------------------------- widget
+
+
+class CohortWidget(StudioWidget):
+    """Open a cohort folder, list its ROIs with flags, load one, show one, all or some channels."""
+
+    def __init__(self, napari_viewer, parent=None):
+        super().__init__(napari_viewer, parent)
+        self.view = "single"
+        self.run_quality: dict[str, dict[str, list[dict]]] = {}
+        self._flag_worker = None
+        self._loading: Path | None = None
+        layout = self.layout()
+
+        layout.addWidget(self.caption("Cohort folder"))
+        self.folder = PathRow("folder of ROIs (.ome.tiff, .tiff, .ome.zarr)", folder=True, button="Open…")
+        self.folder.changed.connect(lambda text: self.open_cohort(text) if text else None)
+        layout.addWidget(self.folder)
+        self.run_folder = PathRow("run output folder (optional: flags from its quality.csv)",
+                                  folder=True, button="Choose…")
+        self.run_folder.changed.connect(lambda text: self.use_run_folder(text or None))
+        layout.addWidget(self.run_folder)
+
+        self.table = QTableWidget(0, 3)
+        self.table.setObjectName("roi_table")
+        self.table.setHorizontalHeaderLabels(["ROI", "raw flags", "washed flags"])
+        self.table.horizontalHeaderItem(1).setToolTip("inspect-style quality of the raw ROI")
+        self.table.horizontalHeaderItem(2).setToolTip("from the run's quality.csv, when one is chosen")
+        self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
+        self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
+        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.table.verticalHeader().setVisible(False)
+        header = self.table.horizontalHeader()
+        header.setSectionResizeMode(0, QHeaderView.ResizeMode.ResizeToContents)
+        header.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
+        header.setSectionResizeMode(2, QHeaderView.ResizeMode.Stretch)
+        self.table.setMinimumHeight(84)
+        self.table.cellClicked.connect(lambda row, _col: self.load(row))
+        layout.addWidget(self.table, 1)
+
+        layout.addWidget(self.caption("Channels"))
+        self.channels = QListWidget()
+        self.channels.setObjectName("channel_list")
+        self.channels.setToolTip("click: tune this channel · tick: include it in the overlay")
+        self.channels.currentItemChanged.connect(self._channel_clicked)
+        self.channels.itemChanged.connect(self._channel_ticked)
+        self.channels.setMinimumHeight(96)
+        layout.addWidget(self.channels, 2)
+
+        views = QHBoxLayout()
+        self.view_buttons = QButtonGroup(self)
+        for key, text, tip in (
+            ("single", "One", "only the chosen channel"),
+            ("grid", "Grid", "every channel side by side"),
+            ("overlay", "Overlay", "ticked channels blended, one hue each"),
+        ):
+            button = QPushButton(text)
+            button.setCheckable(True)
+            button.setToolTip(tip)
+            button.setObjectName(f"view_{key}")
+            button.clicked.connect(lambda _=False, k=key: self.set_view(k))
+            self.view_buttons.addButton(button)
+            views.addWidget(button)
+        self.view_buttons.buttons()[0].setChecked(True)
+        layout.addLayout(views)
+
+        contrast = QHBoxLayout()
+        contrast.addWidget(QLabel("contrast %"))
+        self.low = _percent_box(CONTRAST_PERCENTILES[0], "percentile shown as black")
+        self.high = _percent_box(CONTRAST_PERCENTILES[1], "percentile shown at full colour")
+        contrast.addWidget(self.low)
+        contrast.addWidget(QLabel("–"))
+        contrast.addWidget(self.high)
+        rescale = QPushButton("Rescale")
+        rescale.setToolTip("set every channel's contrast from these percentiles of its pixels")
+        rescale.clicked.connect(self.rescale)
+        contrast.addWidget(rescale)
+        layout.addLayout(contrast)
+        self.finish_layout()
+        self.state.run_finished.connect(lambda summary: self.use_run_folder(summary.out_dir))
+
+    # ------------------------------------------------------------------ cohort
+
+    def open_cohort(self, folder):
+        """List the ROIs of a folder and start measuring their raw flags in the background."""
+        from plexwash.qc.errors import InputError
+        from plexwash.qc.io import list_cohort
+
+        folder = Path(folder).expanduser()
+        try:
+            rois = list_cohort(folder)
+        except InputError as exc:
+            self.fail(exc)
+            return None
+        self.folder.set_path(folder)
+        self.state.set_cohort(folder, rois)
+        self.table.setRowCount(len(rois))
+        from plexwash.qc.io import roi_stem
+
+        for r, path in enumerate(rois):
+            item = QTableWidgetItem(roi_stem(path))
+            item.setData(Qt.ItemDataRole.UserRole, str(path))
+            self.table.setItem(r, 0, item)
+            self.table.setItem(r, 1, QTableWidgetItem("measuring…"))
+            self.table.setItem(r, 2, QTableWidgetItem("—"))
+        own_table = folder / "quality.csv"
+        if own_table.is_file():  # a run's output folder opened as a cohort
+            self.use_run_folder(folder)
+        elif self.state.run_dir is not None:
+            self.use_run_folder(self.state.run_dir)
+        self.say(f"{len(rois)} ROIs in {folder}")
+        return self._measure_flags(rois)
+
+    def _measure_flags(self, rois):
+        if self._flag_worker is not None:
+            self._flag_worker.quit()
+        recipe = self.state.recipe
+
+        @thread_worker
+        def flags():
+            for path in rois:
+                try:
+                    roi = read_with_panel(path)
+                except Exception as exc:  # one bad ROI must not stop the others
+                    yield path, exc
+                    continue
+                yield roi.name, measure_rows(roi, recipe)
+
+        from plexwash.qc.io import roi_stem
+
+        worker = flags()
+        self._flag_worker = worker
+        self.state.pending_quality = {roi_stem(p) for p in rois}
+        worker.finished.connect(lambda: self._flags_done(worker))
+        return self.start(worker, on_yield=self._flags_arrived)
+
+    def _flags_done(self, worker):
+        if self._flag_worker is worker:
+            self._flag_worker = None
+            self.state.pending_quality = set()
+
+    def _flags_arrived(self, result):
+        name, rows = result
+        if isinstance(rows, Exception):
+            from plexwash.qc.io import roi_stem
+
+            row = self._row_of(roi_stem(name))
+            if row is not None:
+                self.table.setItem(row, 1, QTableWidgetItem(f"unreadable: {rows}"))
+            self.state.pending_quality.discard(roi_stem(name))
+            return
+        self.state.set_quality(name, rows)
+        row = self._row_of(name)
+        if row is not None:
+            self._set_flag_cell(row, 1, rows)
+
+    def use_run_folder(self, folder):
+        """Show washed flags from ``<folder>/quality.csv`` (raw ones too when it holds them)."""
+        if folder is None:
+            self.run_quality = {}
+            return
+        folder = Path(folder)
+        table = folder / "quality.csv"
+        if not table.is_file():
+            self.say(f"no quality.csv in {folder}", warn=True)
+            return
+        self.run_folder.set_path(folder)
+        self.state.run_dir = folder
+        self.run_quality = read_quality_table(table)
+        for name, stages in self.run_quality.items():
+            row = self._row_of(name)
+            if row is None:
+                continue
+            if "washed" in stages:
+                self._set_flag_cell(row, 2, stages["washed"])
+            if "raw" in stages and self.table.item(row, 1).text() == "measuring…":
+                self._set_flag_cell(row, 1, stages["raw"])
+
+    def _row_of(self, name: str):
+        for r in range(self.table.rowCount()):
+            if self.table.item(r, 0).text() == name:
+                return r
+        return None
+
+    def _set_flag_cell(self, row: int, column: int, rows: list[dict]):
+        text = summarize_flags(rows)
+        item = QTableWidgetItem(text)
+        item.setToolTip(text)
+        if text not in ("ok", ""):
+            item.setForeground(qcolor(WARN))
+        self.table.setItem(row, column, item)
+
+    # ------------------------------------------------------------------ ROI
+
+    def load(self, row: int):
+        """Load the ROI in table row ``row`` in the background; returns the worker."""
+        item = self.table.item(row, 0)
+        if item is None:
+            return None
+        return self.load_path(Path(item.data(Qt.ItemDataRole.UserRole)))
+
+    def load_path(self, path):
+        path = Path(path)
+        self._loading = path
+        low, high = self.low.value(), self.high.value()
+        self.say(f"loading {path.name}…")
+        worker = thread_worker(load_roi)(path, low=min(low, high - 0.1), high=high)
+        return self.start(worker, on_return=lambda result: self._show_roi(path, *result))
+
+    def _show_roi(self, path, roi, layers):
+        if path != self._loading:
+            return  # a later click won
+        for layer in studio_layers(self.viewer):
+            self.viewer.layers.remove(layer)
+        for data, kwargs, _ in layers:
+            self.viewer.add_image(data, **kwargs)
+        self.state.set_roi(roi)
+        self._fill_channels(roi)
+        self.set_view(self.view)
+        self.viewer.reset_view()
+        self.say(f"{roi.name}: {len(roi.channels)} channels, {roi.shape[1]} x {roi.shape[2]} px")
+
+    def _fill_channels(self, roi):
+        self.channels.blockSignals(True)
+        self.channels.clear()
+        for i, (channel, label) in enumerate(zip(roi.channels, roi.labels, strict=True)):
+            text = label if label == channel else f"{label}  ({channel})"
+            item = QListWidgetItem(text)
+            item.setData(Qt.ItemDataRole.UserRole, channel)
+            item.setFlags(item.flags() | Qt.ItemFlag.ItemIsUserCheckable)
+            item.setCheckState(Qt.CheckState.Checked if i < 3 else Qt.CheckState.Unchecked)
+            self.channels.addItem(item)
+        index = roi.channel_index(self.state.channel) if self.state.channel in roi.channels else 0
+        self.channels.setCurrentRow(index)
+        self.channels.blockSignals(False)
+
+    def _channel_clicked(self, item, _previous=None):
+        if item is None:
+            return
+        self.state.set_channel(item.data(Qt.ItemDataRole.UserRole))
+        if self.view == "single":
+            self.set_view("single")
+
+    def _channel_ticked(self, _item):
+        if self.view == "overlay":
+            self.set_view("overlay")
+
+    def ticked(self) -> list[str]:
+        """Acquisition names of the ticked channels."""
+        return [self.channels.item(i).data(Qt.ItemDataRole.UserRole)
+                for i in range(self.channels.count())
+                if self.channels.item(i).checkState() == Qt.CheckState.Checked]
+
+    def set_ticked(self, channels) -> None:
+        wanted = set(channels)
+        for i in range(self.channels.count()):
+            item = self.channels.item(i)
+            checked = item.data(Qt.ItemDataRole.UserRole) in wanted
+            item.setCheckState(Qt.CheckState.Checked if checked else Qt.CheckState.Unchecked)
+
+    # ------------------------------------------------------------------ views
+
+    def set_view(self, view: str) -> None:
+        """``single`` (the chosen channel), ``grid`` (all channels) or ``overlay`` (ticked ones)."""
+        if view not in VIEWS:
+            raise ValueError(f"view must be one of {VIEWS}, got {view!r}")
+        self.view = view
+        for button in self.view_buttons.buttons():
+            button.setChecked(button.objectName() == f"view_{view}")
+        raw = studio_layers(self.viewer, stage="raw")
+        if not raw:
+            return
+        grid = grid_of(self.viewer)
+        if view != "grid":
+            grid.enabled = False  # leave the grid before changing layers: grid updates are costly
+        shown = self.ticked() if view == "overlay" else []
+        order = {c: k for k, c in enumerate(shown)}
+        for layer in raw:
+            meta = layer.metadata["plexwash"]
+            channel = meta["channel"]
+            if view == "grid":
+                layer.visible = True
+                set_colormap(layer, colormap_for(meta["index"]))
+            elif view == "overlay":
+                layer.visible = channel in order
+                # hues follow tick order so any chosen combination gets distinct colours
+                set_colormap(layer, colormap_for(order.get(channel, meta["index"])))
+            else:
+                layer.visible = channel == self.state.channel
+                set_colormap(layer, colormap_for(meta["index"]))
+        if view == "grid":
+            for layer in studio_layers(self.viewer):
+                if layer.metadata["plexwash"]["stage"] != "raw":
+                    layer.visible = False
+            grid.enabled = True
+        if view == "overlay" and len(self.ticked()) > len(PALETTE):
+            self.say(f"more than {len(PALETTE)} channels ticked: hues repeat", warn=True)
+
+    def rescale(self) -> None:
+        """Contrast of every studio layer from the percentile boxes."""
+        low, high = self.low.value(), self.high.value()
+        if low >= high:
+            self.say("the low percentile must be below the high one", warn=True)
+            return
+        for layer in studio_layers(self.viewer):
+            lo, hi = robust_limits(layer.data, low=low, high=high)
+            layer.contrast_limits = (lo, hi)
+
+
+def _percent_box(value: float, tip: str) -> QDoubleSpinBox:
+    box = QDoubleSpinBox()
+    box.setRange(0.0, 100.0)
+    box.setDecimals(2)
+    box.setSingleStep(0.1)
+    box.setValue(value)
+    box.setToolTip(tip)
+    box.setButtonSymbols(QDoubleSpinBox.ButtonSymbols.NoButtons)
+    box.setMinimumWidth(56)
+    return box

@@ -1,0 +1,221 @@
+"""Turning ROIs and step results into napari layer data (plain functions, no viewer needed).
+
+The studio's look is its own: a palette of eight hues on black, chosen so neighbouring
+channels in an overlay stay apart, and layer names of the form ``<label>`` for raw
+channels and ``<label> · <stage>`` for what a step made of them.
+"""
+
+from __future__ import annotations
+
+import functools
+from pathlib import Path
+
+import numpy as np
+
+#: Studio palette: (name, hex) pairs, cycled over channels. Hues are spaced so that any
+#: three consecutive channels mix to distinct colours under additive blending.
+PALETTE = (
+    ("ember", "#ff6b3d"),
+    ("glacier", "#45c8ff"),
+    ("moss", "#8fe04a"),
+    ("orchid", "#d46bff"),
+    ("amber", "#ffc53d"),
+    ("lagoon", "#2fe0b8"),
+    ("coral", "#ff5c8a"),
+    ("periwinkle", "#7d8bff"),
+)
+
+#: Default robust contrast: percentiles of the channel's pixels (common practice).
+CONTRAST_PERCENTILES = (0.5, 99.8)
+#: Contrast is estimated from at most this many pixels (a regular subsample).
+CONTRAST_SAMPLE = 262_144
+
+STAGE_SEPARATOR = " · "
+STAGES = ("raw", "washed", "removed", "compensated")
+
+
+def colormap_for(index: int):
+    """The studio colormap of the channel at ``index`` (black to one palette hue).
+
+    Examples
+    --------
+    >>> colormap_for(0).name
+    'plexwash ember'
+    >>> colormap_for(8).name == colormap_for(0).name
+    True
+    """
+    name, hexcode = PALETTE[index % len(PALETTE)]
+    rgb = tuple(int(hexcode[i : i + 2], 16) / 255 for i in (1, 3, 5))
+    return _colormap(f"plexwash {name}", name, rgb)
+
+
+def removed_colormap():
+    """Colormap of removed maps: black to white, so they never read as a channel hue."""
+    return _colormap("plexwash removed", "removed", (1.0, 1.0, 1.0))
+
+
+@functools.cache
+def _colormap(name: str, display_name: str, rgb: tuple[float, float, float]):
+    """One Colormap object per hue: napari registers every new colormap with every layer's
+    controls, so making a fresh object per assignment costs seconds on a 40-channel ROI."""
+    from napari.utils.colormaps import Colormap
+
+    return Colormap([[0.0, 0.0, 0.0, 1.0], [*rgb, 1.0]], name=name, display_name=display_name)
+
+
+def set_colormap(layer, colormap) -> None:
+    """Assign a colormap only when it changes (assignments redraw the layer's controls)."""
+    if layer.colormap.name != colormap.name:
+        layer.colormap = colormap
+
+
+def _sample(image) -> np.ndarray:
+    """A regular subsample of a 2-D image (numpy or dask) with at most ``CONTRAST_SAMPLE`` pixels."""
+    n_y, n_x = image.shape[-2:]
+    step = max(1, int(np.ceil(np.sqrt(n_y * n_x / CONTRAST_SAMPLE))))
+    sample = image[..., ::step, ::step]
+    if hasattr(sample, "compute"):
+        sample = sample.compute()
+    return np.asarray(sample, dtype=np.float64)
+
+
+def robust_limits(image, *, low: float = CONTRAST_PERCENTILES[0],
+                  high: float = CONTRAST_PERCENTILES[1]) -> tuple[float, float]:
+    """Contrast limits from percentiles of an image, never an empty range.
+
+    Parameters
+    ----------
+    image : array (Y, X), numpy or dask
+        One channel.
+    low, high : float
+        Percentiles (0-100) mapped to black and to full colour.
+
+    Returns
+    -------
+    (float, float)
+        ``lo < hi``. A constant image gives ``(v, v + 1)``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> robust_limits(np.arange(101.0).reshape(1, 101), low=10, high=90)
+    (10.0, 90.0)
+    >>> robust_limits(np.zeros((4, 4)))
+    (0.0, 1.0)
+    """
+    if not 0 <= low < high <= 100:
+        raise ValueError(f"percentiles must satisfy 0 <= low < high <= 100, got {low}, {high}")
+    sample = _sample(image)
+    lo, hi = (float(v) for v in np.percentile(sample, [low, high]))
+    if hi <= lo:  # sparse counts: the high percentile can still be 0; fall back to the max
+        hi = float(sample.max())
+    if hi <= lo:
+        hi = lo + 1.0
+    return lo, hi
+
+
+def layer_name(label: str, stage: str = "raw") -> str:
+    """Name of a studio layer.
+
+    Examples
+    --------
+    >>> layer_name("CD3")
+    'CD3'
+    >>> layer_name("CD3", "washed")
+    'CD3 · washed'
+    """
+    return label if stage == "raw" else f"{label}{STAGE_SEPARATOR}{stage}"
+
+
+def studio_meta(roi_path, channel: str, label: str, index: int, stage: str = "raw") -> dict:
+    """What the studio records in ``layer.metadata['plexwash']``."""
+    return {"roi": str(roi_path), "channel": channel, "label": label, "index": int(index),
+            "stage": stage}
+
+
+def channel_layer(image, *, roi_path, channel: str, label: str, index: int, stage: str = "raw",
+                  pixel_size=None, visible: bool = True, limits=None) -> tuple:
+    """One napari image ``LayerDataTuple`` for a channel (or a step's result on it)."""
+    kwargs = {
+        "name": layer_name(label, stage),
+        "colormap": removed_colormap() if stage == "removed" else colormap_for(index),
+        "blending": "additive",
+        "contrast_limits": list(limits if limits is not None else robust_limits(image)),
+        "visible": visible,
+        "metadata": {"plexwash": studio_meta(roi_path, channel, label, index, stage)},
+    }
+    if pixel_size is not None:
+        kwargs["scale"] = tuple(float(s) for s in pixel_size)
+    return (image, kwargs, "image")
+
+
+def roi_layer_data(roi, *, visible: int | None = 1) -> list[tuple]:
+    """One image layer per channel of an ROI, named by panel label (else channel name).
+
+    Parameters
+    ----------
+    roi : plexwash.qc.Roi
+    visible : int or None
+        How many leading channels start visible (None: all). Twenty additive channels at
+        once wash out to white, so by default only the first is shown.
+    """
+    layers = []
+    for i, (channel, label) in enumerate(zip(roi.channels, roi.labels, strict=True)):
+        show = visible is None or i < visible
+        layers.append(channel_layer(roi.data[i], roi_path=roi.path, channel=channel, label=label,
+                                    index=i, pixel_size=roi.pixel_size, visible=show))
+    return layers
+
+
+def find_panel(path) -> Path | None:
+    """``panel.csv`` beside an ROI, or in the folder above (a cohort folder's parent).
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> root = pathlib.Path(tempfile.mkdtemp()); (root / "cohort").mkdir()
+    >>> _ = (root / "panel.csv").write_text("channel,label,use\\n")
+    >>> find_panel(root / "cohort" / "roi.ome.tiff") == root / "panel.csv"
+    True
+    """
+    path = Path(path)
+    for folder in (path.parent, path.parent.parent):
+        candidate = folder / "panel.csv"
+        if candidate.is_file():
+            return candidate
+    return None
+
+
+def studio_layers(viewer, *, stage: str | None = None, roi=None) -> list:
+    """Layers the studio put on a viewer, optionally only one stage or one ROI path."""
+    out = []
+    for layer in viewer.layers:
+        meta = layer.metadata.get("plexwash") if hasattr(layer, "metadata") else None
+        if not meta:
+            continue
+        if stage is not None and meta.get("stage") != stage:
+            continue
+        if roi is not None and meta.get("roi") != str(roi):
+            continue
+        out.append(layer)
+    return out
+
+
+def set_layer(viewer, layer_tuple: tuple):
+    """Add a layer, or replace the data of the layer of the same name (keeps the user's view)."""
+    data, kwargs, _ = layer_tuple
+    name = kwargs["name"]
+    if name in viewer.layers:
+        layer = viewer.layers[name]
+        layer.data = data
+        layer.metadata = kwargs["metadata"]
+        layer.contrast_limits = kwargs["contrast_limits"]
+        return layer
+    return viewer.add_image(data, **kwargs)
+
+
+def grid_of(viewer):
+    """The viewer's grid settings (``viewer.canvas.grid`` since napari 0.9, ``viewer.grid`` before)."""
+    canvas = getattr(viewer, "canvas", None)
+    grid = getattr(canvas, "grid", None)
+    return grid if grid is not None else viewer.grid

@@ -1,0 +1,64 @@
+"""npe2 reader: an ROI (OME-TIFF, OME-Zarr, or TIFF with its panel) as one layer per channel."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ._layers import find_panel, roi_layer_data
+
+_SUFFIXES = (".ome.tiff", ".ome.tif", ".tiff", ".tif", ".ome.zarr", ".zarr")
+
+
+def napari_get_reader(path):
+    """Return :func:`read_roi_layers` when plexwash can read ``path``, else None.
+
+    A plain TIFF is read only when a ``panel.csv`` lies beside it (or one folder up),
+    because its pages carry no channel names.
+    """
+    if isinstance(path, (list, tuple)):
+        if len(path) != 1:
+            return None
+        path = path[0]
+    path = Path(path)
+    name = path.name.lower()
+    if not name.endswith(_SUFFIXES) or not path.exists():
+        return None
+    if name.endswith((".zarr",)):
+        return read_roi_layers if path.is_dir() else None
+    if not name.endswith((".ome.tiff", ".ome.tif")) and find_panel(path) is None:
+        import tifffile
+
+        try:
+            with tifffile.TiffFile(path) as tif:
+                if not tif.is_ome:
+                    return None
+        except Exception:
+            return None
+    return read_roi_layers
+
+
+def read_with_panel(path):
+    """Read an ROI with the ``panel.csv`` found beside it or one folder up.
+
+    The panel names the channels of a plain TIFF and gives readable labels to OME files
+    whose channels it lists; a panel that does not match an OME file is ignored (the
+    file's own names are used).
+    """
+    from plexwash.qc import read_roi
+    from plexwash.qc.errors import InputError
+
+    path = Path(path)
+    panel = find_panel(path)
+    try:
+        return read_roi(path, panel=panel)
+    except InputError:
+        if panel is None or not path.name.lower().endswith((".ome.tiff", ".ome.tif", ".zarr")):
+            raise
+        return read_roi(path)
+
+
+def read_roi_layers(path) -> list[tuple]:
+    """Read one ROI (or several) into image layer data, one layer per channel."""
+    if isinstance(path, (list, tuple)):
+        return [layer for p in path for layer in read_roi_layers(p)]
+    return roi_layer_data(read_with_panel(path))

@@ -1,0 +1,459 @@
+"""Speckle dock widget: tune hot-pixel and speckle settings per channel with a live preview.
+
+The preview shows the chosen channel three times side by side: raw, washed, and the
+removed map (raw - washed), and says what fraction of the channel's signal went. It is
+the wash of :mod:`plexwash.qc.wash` restricted to one channel: hot pixels, then (when the
+Spillover widget holds a matrix) compensation of the whole stack, then speckle.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from pathlib import Path
+
+import numpy as np
+from qtpy.QtWidgets import (
+    QCheckBox,
+    QComboBox,
+    QHBoxLayout,
+    QLabel,
+    QPushButton,
+)
+
+from ._common import PathRow, SettingsForm, StudioWidget
+from ._layers import channel_layer, grid_of, studio_layers
+from ._preview import LatestOnly
+
+#: The per-channel sections this widget edits, in step order.
+SECTIONS = ("hot_pixels", "speckle")
+#: Gap between the raw, washed and removed copies, as a fraction of the ROI width.
+SIDE_GAP = 0.04
+
+
+@dataclasses.dataclass(frozen=True)
+class ChannelPreview:
+    """A one-channel wash: what the canvas shows and the numbers beside it.
+
+    Attributes
+    ----------
+    channel, label : str
+        Acquisition name and panel label.
+    index : int
+        Position of the channel in the ROI.
+    washed, removed : numpy.ndarray
+        The washed channel and raw - washed (float32).
+    fractions : dict
+        Step -> fraction of the signal entering that step which it removed.
+    total_fraction : float
+        Fraction of the channel's raw signal removed by the whole wash.
+    removed_limits : (float, float)
+        Contrast for the removed map.
+    notes : tuple of str
+    """
+
+    channel: str
+    label: str
+    index: int
+    washed: np.ndarray
+    removed: np.ndarray
+    fractions: dict
+    total_fraction: float
+    removed_limits: tuple[float, float]
+    notes: tuple[str, ...] = ()
+
+
+def _fraction(removed: np.ndarray, entering: np.ndarray) -> float:
+    total = float(entering.sum(dtype=np.float64))
+    return float(removed.sum(dtype=np.float64)) / total if total > 0 else 0.0
+
+
+def _removed_limits(removed: np.ndarray) -> tuple[float, float]:
+    """0 to the 99th percentile of the removed pixels (a sparse map: most pixels are 0)."""
+    positive = removed[removed > 0]
+    if positive.size == 0:
+        return 0.0, 1.0
+    top = float(np.percentile(positive, 99.0))
+    return 0.0, top if top > 0 else float(positive.max())
+
+
+class PreviewEngine:
+    """One-channel wash previews that redo only the steps whose inputs changed.
+
+    Without a spillover matrix a channel's wash is independent of the others: hot pixels
+    then speckle on that channel alone (the hot-pixel result is kept while only speckle
+    settings change). With a matrix, compensation needs every channel, so the whole stack
+    is washed once up to compensation (:func:`plexwash.qc.wash.wash` with speckle off)
+    and kept until the ROI, the matrix or a hot-pixel / compensation setting changes.
+    Not thread-safe: the studio runs one computation at a time.
+    """
+
+    def __init__(self):
+        self._hot_key = None
+        self._hot = None
+        self._stack_key = None
+        self._stack = None
+        self._planes: dict[int, tuple] = {}
+
+    def compute(self, roi, recipe, channel: str, *, spillover=None, plane=None) -> ChannelPreview:
+        """Wash one channel of ``roi`` with ``recipe`` (and ``spillover``) up to the end."""
+        from plexwash.qc.speckle import remove_hot_pixels, remove_speckle
+
+        index = roi.channel_index(channel)
+        channel = roi.channels[index]
+        label = roi.labels[index]
+        raw = plane if plane is not None else np.asarray(roi.data[index], dtype=np.float32)
+        raw = np.asarray(raw, dtype=np.float32)
+        if not roi.use[index]:
+            zeros = np.zeros_like(raw)
+            return ChannelPreview(channel, label, index, raw, zeros, {}, 0.0, (0.0, 1.0),
+                                  ("the panel marks this channel use = no: it passes through",))
+        hot = recipe.for_channel("hot_pixels", channel)
+        speckle = recipe.for_channel("speckle", channel)
+        fractions, notes = {}, []
+        if spillover is not None and recipe.compensation.enabled:
+            before, fractions = self._compensated(roi, recipe, spillover, index, raw)
+        else:
+            if spillover is None:
+                notes.append("no spillover matrix: compensation left out")
+            before = raw
+            if hot.enabled:
+                key = (id(raw), hot)
+                if key != self._hot_key:
+                    self._hot = remove_hot_pixels(raw, ratio=hot.ratio, min_excess=hot.min_excess)
+                    self._hot_key = key
+                before = self._hot.image
+                fractions["hot_pixels"] = _fraction(self._hot.removed, raw)
+        if speckle.enabled:
+            kwargs = {f.name: getattr(speckle, f.name) for f in dataclasses.fields(speckle)
+                      if f.name != "enabled"}
+            result = remove_speckle(before, **kwargs)
+            washed = result.image
+            fractions["speckle"] = _fraction(result.removed, before)
+        else:
+            washed = before
+        removed = raw - washed
+        return ChannelPreview(channel, label, index, washed, removed, fractions,
+                              _fraction(removed, raw), _removed_limits(removed), tuple(notes))
+
+    def _compensated(self, roi, recipe, spillover, index: int, raw):
+        from plexwash.qc.wash import wash
+
+        key = (id(roi), id(spillover), _canonical(recipe, "hot_pixels"), _canonical(recipe, "compensation"))
+        if key != self._stack_key:
+            self._stack = wash(roi, _without_speckle(recipe), spillover=spillover)
+            self._stack_key = key
+            self._planes = {}
+        if index not in self._planes:
+            stack = self._stack
+            parts = [stack.data[index]] + [stack.removed[s][index] for s in ("hot_pixels", "compensation")
+                                           if s in stack.removed]
+            if stack.is_lazy:
+                import dask
+
+                parts = list(dask.compute(*parts))
+            self._planes[index] = tuple(np.asarray(p, dtype=np.float32) for p in parts)
+        before, *removed = self._planes[index]
+        fractions = {}
+        entering = raw
+        steps = [s for s in ("hot_pixels", "compensation") if s in self._stack.removed]
+        for step, taken in zip(steps, removed, strict=True):
+            fractions[step] = _fraction(taken, entering)
+            entering = entering - taken
+        return before, fractions
+
+
+def _canonical(recipe, section: str) -> str:
+    from plexwash.qc.io import canonical_json
+
+    data = recipe.to_dict()[section]
+    return canonical_json(data)
+
+
+def _without_speckle(recipe):
+    """The recipe with the speckle step off for every channel."""
+    from plexwash.qc.recipe import recipe_from_dict
+
+    data = recipe.to_dict()
+    data["speckle"] = {"enabled": False}
+    return recipe_from_dict(data, source=recipe.source)
+
+
+def recipe_apply_to_all(recipe, channel: str):
+    """A recipe whose global hot-pixel and speckle settings are ``channel``'s, with no overrides.
+
+    Examples
+    --------
+    >>> from plexwash.qc import default_recipe
+    >>> r = default_recipe().with_channel("speckle", "Nd145", radius=4)
+    >>> r2 = recipe_apply_to_all(r, "Nd145")
+    >>> r2.speckle.radius, dict(r2.channels)
+    (4, {})
+    """
+    from plexwash.qc.recipe import recipe_from_dict
+
+    data = recipe.to_dict()
+    for section in SECTIONS:
+        data[section] = dataclasses.asdict(recipe.for_channel(section, channel))
+    return recipe_from_dict(data, source=recipe.source)
+
+
+def recipe_reset_channel(recipe, channel: str):
+    """A recipe without ``channel``'s hot-pixel and speckle overrides."""
+    from plexwash.qc.recipe import recipe_from_dict
+
+    data = recipe.to_dict()
+    for section in SECTIONS:
+        overrides = data[section].get("channels", {})
+        overrides.pop(channel, None)
+        if not overrides:
+            data[section].pop("channels", None)
+    return recipe_from_dict(data, source=recipe.source)
+
+
+class SpeckleWidget(StudioWidget):
+    """Per-channel hot-pixel and speckle settings, live preview, apply to all, save the recipe."""
+
+    def __init__(self, napari_viewer, parent=None, *, delay_ms: int = 8):
+        from plexwash.qc.speckle import HotPixelSettings, SpeckleSettings
+
+        super().__init__(napari_viewer, parent)
+        self.engine = PreviewEngine()
+        self.runner = LatestOnly(self._compute, self._deliver, delay_ms=delay_ms, parent=self)
+        self.runner.failed.connect(self.fail)
+        self.last: ChannelPreview | None = None
+        self._framed: tuple | None = None
+        layout = self.layout()
+
+        layout.addWidget(self.caption("Channel"))
+        row = QHBoxLayout()
+        self.channel = QComboBox()
+        self.channel.setObjectName("speckle_channel")
+        self.channel.currentIndexChanged.connect(self._channel_chosen)
+        self.live = QCheckBox("live")
+        self.live.setChecked(True)
+        self.live.setToolTip("recompute the preview after every change")
+        self.live.toggled.connect(lambda on: self.preview() if on else None)
+        row.addWidget(self.channel, 1)
+        row.addWidget(self.live)
+        layout.addLayout(row)
+
+        layout.addWidget(self.caption("Hot pixels"))
+        self.forms = {"hot_pixels": SettingsForm(HotPixelSettings), "speckle": SettingsForm(SpeckleSettings)}
+        self.forms["hot_pixels"].changed.connect(lambda k, v: self.change("hot_pixels", k, v))
+        layout.addWidget(self.forms["hot_pixels"])
+        layout.addWidget(self.caption("Speckle"))
+        self.forms["speckle"].changed.connect(lambda k, v: self.change("speckle", k, v))
+        layout.addWidget(self.forms["speckle"])
+
+        self.removed_text = QLabel("—")
+        self.removed_text.setObjectName("removed_fraction")
+        self.removed_text.setStyleSheet("font-size: 15px; font-weight: bold;")
+        self.removed_detail = QLabel("")
+        self.removed_detail.setWordWrap(True)
+        layout.addWidget(self.removed_text)
+        layout.addWidget(self.removed_detail)
+
+        buttons = QHBoxLayout()
+        self.all_button = QPushButton("Apply to all channels")
+        self.all_button.setToolTip("make this channel's settings the global ones and drop per-channel changes")
+        self.all_button.clicked.connect(self.apply_to_all)
+        self.reset_button = QPushButton("Use global")
+        self.reset_button.setToolTip("drop this channel's own settings")
+        self.reset_button.clicked.connect(self.reset_channel)
+        buttons.addWidget(self.all_button)
+        buttons.addWidget(self.reset_button)
+        layout.addLayout(buttons)
+
+        layout.addWidget(self.caption("Recipe"))
+        self.recipe_path = PathRow("recipe.toml", save=True, filter="Recipe (*.toml)", button="…")
+        layout.addWidget(self.recipe_path)
+        recipe_buttons = QHBoxLayout()
+        load = QPushButton("Load")
+        load.clicked.connect(lambda: self.load_recipe(self.recipe_path.path()))
+        save = QPushButton("Save")
+        save.clicked.connect(lambda: self.save_recipe(self.recipe_path.path()))
+        recipe_buttons.addWidget(load)
+        recipe_buttons.addWidget(save)
+        layout.addLayout(recipe_buttons)
+        self.finish_layout()
+
+        self.state.roi_changed.connect(self._roi_changed)
+        self.state.channel_changed.connect(self._select_channel)
+        self.state.recipe_changed.connect(self._recipe_changed)
+        self.state.spillover_changed.connect(lambda _m: self.preview())
+        self._roi_changed(self.state.roi)
+
+    # ------------------------------------------------------------------ settings
+
+    @property
+    def current_channel(self) -> str | None:
+        return self.channel.currentData()
+
+    def change(self, section: str, name: str, value) -> None:
+        """Set one setting of the current channel (a per-channel override) and preview it."""
+        from plexwash.qc.errors import InputError
+
+        channel = self.current_channel
+        if channel is None:
+            self.say("load an ROI first", warn=True)
+            return
+        try:
+            recipe = self.state.recipe.with_channel(section, channel, **{name: value})
+        except InputError as exc:
+            self.fail(exc)
+            return
+        self.state.set_recipe(recipe)
+
+    def apply_to_all(self) -> None:
+        channel = self.current_channel
+        if channel is None:
+            return
+        self.state.set_recipe(recipe_apply_to_all(self.state.recipe, channel))
+        self.say(f"settings of {self.state.label(channel)} now apply to every channel")
+
+    def reset_channel(self) -> None:
+        channel = self.current_channel
+        if channel is None:
+            return
+        self.state.set_recipe(recipe_reset_channel(self.state.recipe, channel))
+
+    def save_recipe(self, path) -> Path | None:
+        from plexwash.qc import write_recipe
+
+        if path is None:
+            self.say("choose where to save the recipe", warn=True)
+            return None
+        path = Path(path)
+        if path.suffix.lower() != ".toml":
+            path = path.with_suffix(".toml")
+        write_recipe(path, self.state.recipe)
+        self.recipe_path.set_path(path)
+        self.say(f"recipe saved: {path}")
+        return path
+
+    def load_recipe(self, path) -> None:
+        from plexwash.qc import load_recipe
+        from plexwash.qc.errors import InputError
+
+        if path is None:
+            self.say("choose a recipe file", warn=True)
+            return
+        try:
+            recipe = load_recipe(path)
+        except InputError as exc:
+            self.fail(exc)
+            return
+        self.state.set_recipe(recipe)
+        self.say(f"recipe loaded: {path}")
+
+    def _recipe_changed(self, recipe) -> None:
+        self._show_settings()
+        self.preview()
+
+    def _show_settings(self) -> None:
+        channel = self.current_channel
+        recipe = self.state.recipe
+        for section, form in self.forms.items():
+            settings = recipe.for_channel(section, channel) if channel else getattr(recipe, section)
+            form.set_values(settings)
+        own = channel is not None and any(channel in recipe.channels.get(s, {}) for s in SECTIONS)
+        self.reset_button.setEnabled(own)
+
+    # ------------------------------------------------------------------ channels
+
+    def _roi_changed(self, roi) -> None:
+        self.runner.stop()
+        self.engine = PreviewEngine()
+        self.channel.blockSignals(True)
+        self.channel.clear()
+        if roi is not None:
+            for channel, label in zip(roi.channels, roi.labels, strict=True):
+                self.channel.addItem(label if label == channel else f"{label} ({channel})", channel)
+            wanted = self.state.channel if self.state.channel in roi.channels else roi.channels[0]
+            self.channel.setCurrentIndex(roi.channels.index(wanted))
+        self.channel.blockSignals(False)
+        self._framed = None
+        self._show_settings()
+        if roi is not None:
+            self.preview()
+
+    def _select_channel(self, channel) -> None:
+        index = self.channel.findData(channel)
+        if index >= 0 and index != self.channel.currentIndex():
+            self.channel.setCurrentIndex(index)
+
+    def _channel_chosen(self, _index) -> None:
+        channel = self.current_channel
+        if channel is None:
+            return
+        self.state.set_channel(channel)
+        self._show_settings()
+        self.preview()
+
+    # ------------------------------------------------------------------ preview
+
+    def preview(self) -> None:
+        """Ask for a fresh preview of the current channel (coalesced, latest wins)."""
+        if not self.live.isChecked() or self.state.roi is None or self.current_channel is None:
+            return
+        state = self.state
+        channel = self.current_channel
+        self.runner.request((state.roi, state.recipe, channel, state.spillover, state.plane(channel)))
+
+    def _compute(self, payload) -> ChannelPreview:
+        roi, recipe, channel, spillover, plane = payload
+        return self.engine.compute(roi, recipe, channel, spillover=spillover, plane=plane)
+
+    def _deliver(self, result: ChannelPreview) -> None:
+        roi = self.state.roi
+        if not self.alive() or roi is None or result.channel not in roi.channels:
+            return
+        if result.label not in self.viewer.layers:
+            return  # the ROI's layers were removed (or the viewer is closing): nothing to preview beside
+        self.last = result
+        raw = self.viewer.layers[result.label]
+        limits = tuple(raw.contrast_limits)
+        width = roi.shape[2] * (roi.pixel_size[1] if roi.pixel_size else 1.0)
+        step = width * (1 + SIDE_GAP)
+        for layer in studio_layers(self.viewer):  # previews of another channel go
+            meta = layer.metadata["plexwash"]
+            if meta["stage"] in ("washed", "removed") and meta["channel"] != result.channel:
+                self.viewer.layers.remove(layer)
+        for stage, data, lims, k in (("washed", result.washed, limits, 1),
+                                     ("removed", result.removed, result.removed_limits, 2)):
+            name = f"{result.label} · {stage}"
+            if name in self.viewer.layers:
+                layer = self.viewer.layers[name]
+                layer.data = data
+                layer.contrast_limits = lims
+            else:
+                _, kwargs, _ = channel_layer(data, roi_path=roi.path, channel=result.channel,
+                                             label=result.label, index=result.index, stage=stage,
+                                             pixel_size=roi.pixel_size, limits=lims)
+                kwargs["translate"] = (0.0, k * step)
+                self.viewer.add_image(data, **kwargs)
+        self._frame(result)
+        self._show_fractions(result)
+
+    def _frame(self, result: ChannelPreview) -> None:
+        """First preview of a channel: show raw | washed | removed side by side."""
+        key = (id(self.state.roi), result.channel)
+        if self._framed == key:
+            return
+        self._framed = key
+        grid_of(self.viewer).enabled = False
+        for layer in studio_layers(self.viewer, stage="raw"):
+            layer.visible = layer.metadata["plexwash"]["channel"] == result.channel
+        self.viewer.reset_view()
+
+    def _show_fractions(self, result: ChannelPreview) -> None:
+        self.removed_text.setText(f"removed {100 * result.total_fraction:.3g} % of the signal")
+        names = {"hot_pixels": "hot pixels", "compensation": "compensation", "speckle": "speckle"}
+        parts = [f"{names[k]} {100 * v:.3g} %" for k, v in result.fractions.items()]
+        self.removed_detail.setText(" · ".join(parts + list(result.notes)))
+        self.removed_text.setToolTip("of the raw channel's total counts; each step's share is of "
+                                     "the signal entering that step")
+
+    def closeEvent(self, event):
+        self.runner.stop()
+        super().closeEvent(event)

@@ -1,0 +1,131 @@
+"""What the five dock widgets of one viewer share: the cohort, the current ROI, the recipe.
+
+One :class:`StudioState` per viewer. Widgets read it and listen to its signals; only the
+widget that owns a piece of state changes it (Cohort: cohort and ROI; Spillover: the
+matrix; Speckle: the recipe's cleaning settings; Run: the run folder). Signals are
+emitted on the GUI thread.
+"""
+
+from __future__ import annotations
+
+import weakref
+from pathlib import Path
+
+import numpy as np
+from psygnal import Signal
+
+_STATES: dict[int, StudioState] = {}
+
+
+class StudioState:
+    """Shared state of the studio on one viewer.
+
+    Attributes
+    ----------
+    cohort : Path or None
+        The cohort folder.
+    rois : list of Path
+        Its ROIs, sorted.
+    roi : plexwash.qc.Roi or None
+        The ROI on the canvas.
+    recipe : plexwash.qc.Recipe
+        The settings being tuned (defaults until loaded or changed).
+    spillover : SpilloverMatrix or None
+        The matrix loaded or estimated in the Spillover widget.
+    channel : str or None
+        The channel being tuned (acquisition name).
+    run_dir : Path or None
+        Output folder of the last run (its ``quality.csv`` feeds the Cohort flags).
+    quality : dict
+        ROI name -> quality rows (raw stage) measured in the studio.
+    pending_quality : set of str
+        ROI names whose raw quality a background measurement will still deliver.
+    """
+
+    cohort_changed = Signal(object)
+    roi_changed = Signal(object)
+    recipe_changed = Signal(object)
+    spillover_changed = Signal(object)
+    channel_changed = Signal(object)
+    run_finished = Signal(object)
+    quality_changed = Signal(str)
+
+    def __init__(self):
+        from plexwash.qc import default_recipe
+
+        self.cohort: Path | None = None
+        self.rois: list[Path] = []
+        self.roi = None
+        self.recipe = default_recipe()
+        self.spillover = None
+        self.channel: str | None = None
+        self.run_dir: Path | None = None
+        self.quality: dict[str, list[dict]] = {}
+        self.pending_quality: set[str] = set()
+        self._planes: dict[int, np.ndarray] = {}
+
+    # ------------------------------------------------------------------ setters
+
+    def set_cohort(self, folder: Path, rois: list[Path]) -> None:
+        self.cohort = Path(folder)
+        self.rois = list(rois)
+        self.quality = {}
+        self.cohort_changed.emit(self.cohort)
+
+    def set_roi(self, roi) -> None:
+        self.roi = roi
+        self._planes = {}
+        if roi is not None and (self.channel is None or self.channel not in roi.channels):
+            self.channel = roi.channels[0]
+        self.roi_changed.emit(roi)
+
+    def set_recipe(self, recipe) -> None:
+        self.recipe = recipe
+        self.recipe_changed.emit(recipe)
+
+    def set_spillover(self, matrix) -> None:
+        self.spillover = matrix
+        self.spillover_changed.emit(matrix)
+
+    def set_channel(self, channel: str) -> None:
+        if channel != self.channel:
+            self.channel = channel
+            self.channel_changed.emit(channel)
+
+    def set_quality(self, roi_name: str, rows: list[dict]) -> None:
+        self.quality[roi_name] = rows
+        self.pending_quality.discard(roi_name)
+        self.quality_changed.emit(roi_name)
+
+    # ------------------------------------------------------------------ pixels
+
+    def plane(self, channel: str) -> np.ndarray:
+        """One channel of the current ROI as float32 numpy (cached until the ROI changes)."""
+        if self.roi is None:
+            raise LookupError("no ROI loaded")
+        index = self.roi.channel_index(channel)
+        if index not in self._planes:
+            self._planes[index] = np.ascontiguousarray(np.asarray(self.roi.data[index]), dtype=np.float32)
+        return self._planes[index]
+
+    def label(self, channel: str) -> str:
+        """Panel label of a channel of the current ROI."""
+        return self.roi.labels[self.roi.channel_index(channel)]
+
+
+def studio_state(viewer) -> StudioState:
+    """The :class:`StudioState` of a viewer (made on first use, dropped with the viewer).
+
+    napari hands each plugin widget its own proxy of the viewer; the state belongs to
+    the viewer behind the proxies, so all widgets of one window share it.
+    """
+    viewer = getattr(viewer, "__wrapped__", viewer)
+    key = id(viewer)
+    entry = _STATES.get(key)
+    if entry is not None and entry._viewer() is viewer:
+        return entry
+    state = StudioState()
+    state._viewer = weakref.ref(viewer)
+    _STATES[key] = state
+    weakref.finalize(viewer, _STATES.pop, key, None)
+    return state

@@ -1,0 +1,302 @@
+"""Studio plain functions, without a viewer: reader, writer, sample data, contrast, flags,
+one-channel wash previews, recipe edits, spillover edits, cancellable calls."""
+
+from __future__ import annotations
+
+import dataclasses
+import threading
+import time
+
+import numpy as np
+import pytest
+import tifffile
+from plexwash.plugin import _layers, _reader, _sample_data, _writer
+from plexwash.plugin._cohort import read_quality_table, summarize_flags
+from plexwash.plugin._run import CancellableCall, Cancelled
+from plexwash.plugin._speckle import PreviewEngine, recipe_apply_to_all, recipe_reset_channel
+from plexwash.qc import default_recipe, read_roi
+from plexwash.qc.errors import InputError
+from plexwash.qc.io import write_ome_tiff, write_ome_zarr
+
+
+@pytest.fixture(scope="module")
+def demo_roi(demo_dir):
+    return _reader.read_with_panel(demo_dir / "cohort" / "roi_01.ome.tiff")
+
+
+# --------------------------------------------------------------------------- contrast, names
+
+
+def test_robust_limits_are_numpy_percentiles():
+    rng = np.random.default_rng(3)
+    image = rng.gamma(2.0, 10.0, size=(300, 200))
+    lo, hi = _layers.robust_limits(image, low=1.0, high=99.0)
+    # reference: numpy.percentile on every pixel (300 x 200 is below the subsample size)
+    assert (lo, hi) == tuple(np.percentile(image, [1.0, 99.0]))
+
+
+def test_robust_limits_subsample_big_images_and_never_collapse():
+    rng = np.random.default_rng(4)
+    image = rng.poisson(5.0, size=(1200, 1100)).astype(np.float32)
+    lo, hi = _layers.robust_limits(image)
+    exact = np.percentile(image, [0.5, 99.8])
+    assert abs(lo - exact[0]) <= 1 and abs(hi - exact[1]) <= 1
+    sparse = np.zeros((50, 50), np.float32)
+    sparse[3, 3] = 7.0
+    assert _layers.robust_limits(sparse) == (0.0, 7.0)  # high percentile is 0: use the max
+    with pytest.raises(ValueError):
+        _layers.robust_limits(image, low=60, high=40)
+
+
+def test_palette_hues_are_distinct_and_cycle():
+    tops = [tuple(np.round(_layers.colormap_for(i).colors[-1], 3)) for i in range(len(_layers.PALETTE))]
+    assert len(set(tops)) == len(_layers.PALETTE)
+    assert _layers.colormap_for(len(_layers.PALETTE)).name == _layers.colormap_for(0).name
+    assert all(np.allclose(_layers.colormap_for(i).colors[0], [0, 0, 0, 1]) for i in range(3))
+
+
+def test_find_panel_beside_then_one_folder_up(tmp_path):
+    (tmp_path / "cohort").mkdir()
+    roi = tmp_path / "cohort" / "a.tiff"
+    assert _layers.find_panel(roi) is None
+    (tmp_path / "panel.csv").write_text("channel,label,use\n")
+    assert _layers.find_panel(roi) == tmp_path / "panel.csv"
+    (tmp_path / "cohort" / "panel.csv").write_text("channel,label,use\n")
+    assert _layers.find_panel(roi) == tmp_path / "cohort" / "panel.csv"
+
+
+# --------------------------------------------------------------------------- reader
+
+
+def _panel(folder, rows):
+    text = "channel,label,use\n" + "".join(f"{c},{label},{u}\n" for c, label, u in rows)
+    (folder / "panel.csv").write_text(text)
+
+
+def test_reader_gives_one_layer_per_channel_named_by_label(tmp_path, small_stack):
+    path = tmp_path / "roi.ome.tiff"
+    write_ome_tiff(path, small_stack, ["Nd145", "Nd146", "Ir191"])
+    _panel(tmp_path, [("Nd145", "CD3", "yes"), ("Nd146", "CD8", "yes"), ("Ir191", "DNA", "no")])
+    reader = _reader.napari_get_reader(str(path))
+    assert callable(reader)
+    layers = reader(str(path))
+    assert [kw["name"] for _, kw, kind in layers] == ["CD3", "CD8", "DNA"]
+    assert all(kind == "image" for _, _, kind in layers)
+    for i, (data, kw, _) in enumerate(layers):
+        np.testing.assert_array_equal(np.asarray(data), small_stack[i])
+        assert kw["metadata"]["plexwash"]["channel"] == ["Nd145", "Nd146", "Ir191"][i]
+        assert kw["blending"] == "additive"
+        assert kw["contrast_limits"][0] < kw["contrast_limits"][1]
+
+
+def test_reader_plain_tiff_needs_a_panel(tmp_path, small_stack):
+    path = tmp_path / "plain.tiff"
+    tifffile.imwrite(path, small_stack, photometric="minisblack")
+    assert _reader.napari_get_reader(str(path)) is None  # no names: not ours to read
+    _panel(tmp_path, [("A1", "alpha", "yes"), ("B2", "beta", "yes"), ("C3", "gamma", "yes")])
+    layers = _reader.napari_get_reader(str(path))(str(path))
+    assert [kw["name"] for _, kw, _ in layers] == ["alpha", "beta", "gamma"]
+    np.testing.assert_array_equal(np.asarray(layers[2][0]), small_stack[2])
+
+
+def test_reader_ome_zarr_and_refusals(tmp_path, small_stack):
+    path = tmp_path / "roi.ome.zarr"
+    write_ome_zarr(path, small_stack, ["Nd145", "Nd146", "Ir191"])
+    layers = _reader.napari_get_reader(str(path))(str(path))
+    assert [kw["name"] for _, kw, _ in layers] == ["Nd145", "Nd146", "Ir191"]
+    np.testing.assert_array_equal(np.asarray(layers[1][0]), small_stack[1])
+    assert _reader.napari_get_reader(str(tmp_path / "notes.txt")) is None
+    assert _reader.napari_get_reader(str(tmp_path / "missing.ome.tiff")) is None
+    assert _reader.napari_get_reader([str(path), str(path)]) is None
+
+
+def test_reader_ignores_a_panel_of_other_files_for_ome(tmp_path, small_stack):
+    path = tmp_path / "roi.ome.tiff"
+    write_ome_tiff(path, small_stack, ["Nd145", "Nd146", "Ir191"])
+    _panel(tmp_path, [("X1", "x", "yes")])
+    assert [kw["name"] for _, kw, _ in _reader.read_roi_layers(path)] == ["Nd145", "Nd146", "Ir191"]
+
+
+# --------------------------------------------------------------------------- writer
+
+
+def test_writer_round_trip_ome_tiff_and_zarr(tmp_path, small_roi):
+    layers = _reader.read_roi_layers(small_roi)
+    roi = read_roi(small_roi)
+    for name in ("washed.ome.tiff", "washed.ome.zarr"):
+        written = _writer.write_washed_stack(str(tmp_path / name), layers)
+        back = read_roi(written[0])
+        assert back.channels == roi.channels  # acquisition names, not labels
+        np.testing.assert_array_equal(np.asarray(back.data), roi.data)
+        assert back.pixel_size == pytest.approx((0.5, 0.5))
+
+
+def test_writer_adds_suffix_and_refuses_mixed_shapes(tmp_path):
+    a = (np.ones((8, 8), np.float32), {"name": "A"}, "image")
+    b = (np.zeros((8, 8), np.float32), {"name": "B"}, "image")
+    out = _writer.write_washed_stack(str(tmp_path / "stack"), [a, b])
+    assert out[0].endswith("stack.ome.tiff")
+    assert read_roi(out[0]).channels == ("A", "B")
+    c = (np.zeros((4, 8), np.float32), {"name": "C"}, "image")
+    with pytest.raises(ValueError, match="differ in shape"):
+        _writer.stack_from_layers([a, c])
+
+
+# --------------------------------------------------------------------------- sample data
+
+
+def test_sample_data_is_the_demo_cohort(demo_dir):
+    layers = _sample_data.demo_first_roi()
+    roi = read_roi(demo_dir / "cohort" / "roi_01.ome.tiff", panel=demo_dir / "panel.csv")
+    assert [kw["name"] for _, kw, _ in layers] == list(roi.labels)
+    np.testing.assert_array_equal(np.asarray(layers[5][0]), roi.data[5])
+    assert _sample_data.demo_second_roi()[0][1]["metadata"]["plexwash"]["roi"].endswith("roi_02.ome.tiff")
+
+
+def test_sample_data_missing_demo_is_an_input_error(tmp_path, monkeypatch):
+    monkeypatch.setenv(_sample_data.DEMO_ENV, str(tmp_path))
+    with pytest.raises(InputError, match="demo cohort not found"):
+        _sample_data.demo_first_roi()
+
+
+# --------------------------------------------------------------------------- flags
+
+
+def test_summarize_flags_separates_roi_and_channel_flags():
+    rows = [{"channel": c, "label": c.lower(), "flags": f} for c, f in
+            [("A", ["empty", "striped"]), ("B", ["low-sbr", "striped"]), ("C", ["striped"]),
+             ("D", ["low-sbr", "striped"]), ("E", ["low-sbr", "striped"]), ("F", ["low-sbr", "striped"])]]
+    assert summarize_flags(rows) == "striped · empty: a · low-sbr: b, d, e +1"
+    assert summarize_flags([]) == ""
+
+
+def test_read_quality_table_groups_by_roi_and_stage(tmp_path):
+    (tmp_path / "quality.csv").write_text(
+        "roi,channel,label,stage,sbr,snr,flags\n"
+        "r1,A,a,raw,2.0,1.0,empty;low-sbr\n"
+        "r1,A,a,washed,3.0,2.0,\n"
+        "r2,A,a,raw,9.0,5.0,\n")
+    table = read_quality_table(tmp_path / "quality.csv")
+    assert set(table) == {"r1", "r2"}
+    assert table["r1"]["raw"][0]["flags"] == ["empty", "low-sbr"]
+    assert table["r1"]["washed"][0]["flags"] == []
+
+
+# --------------------------------------------------------------------------- previews
+
+
+def test_preview_equals_the_wash_channel_by_channel(demo_roi):
+    from plexwash.qc.wash import wash
+
+    roi = demo_roi
+    recipe = default_recipe().with_channel("speckle", roi.channels[3], radius=3, min_area=3)
+    washed = wash(roi, recipe)  # no spillover: compensation is skipped in both
+    engine = PreviewEngine()
+    for index in (0, 3):
+        preview = engine.compute(roi, recipe, roi.channels[index])
+        np.testing.assert_array_equal(preview.washed, washed.data[index])
+        raw = roi.data[index].astype(np.float32)
+        np.testing.assert_array_equal(preview.removed, raw - washed.data[index])
+        assert preview.total_fraction == pytest.approx(
+            float((raw - washed.data[index]).sum()) / float(raw.sum()))
+        for step in ("hot_pixels", "speckle"):
+            assert preview.fractions[step] == pytest.approx(washed.stats[step][index]["removed_fraction"])
+
+
+def test_preview_reuses_hot_pixels_while_only_speckle_changes(demo_roi):
+    roi = demo_roi
+    engine = PreviewEngine()
+    plane = roi.data[2].astype(np.float32)
+    recipe = default_recipe()
+    engine.compute(roi, recipe, roi.channels[2], plane=plane)
+    hot = engine._hot
+    engine.compute(roi, recipe.with_channel("speckle", roi.channels[2], radius=4), roi.channels[2], plane=plane)
+    assert engine._hot is hot
+    engine.compute(roi, recipe.with_channel("hot_pixels", roi.channels[2], ratio=8.0), roi.channels[2],
+                   plane=plane)
+    assert engine._hot is not hot
+
+
+def test_preview_of_a_pass_through_channel(small_stack, tmp_path):
+    from plexwash.qc.io import Roi
+
+    roi = Roi(small_stack, ("A", "B", "C"), tmp_path / "x.ome.tiff", use=(True, False, True))
+    preview = PreviewEngine().compute(roi, default_recipe(), "B")
+    np.testing.assert_array_equal(preview.washed, small_stack[1])
+    assert preview.total_fraction == 0.0 and preview.notes
+
+
+def test_apply_to_all_and_reset_channel():
+    recipe = (default_recipe().with_channel("speckle", "A", radius=5)
+              .with_channel("hot_pixels", "A", ratio=9.0).with_channel("speckle", "B", alpha=0.05))
+    everywhere = recipe_apply_to_all(recipe, "A")
+    assert everywhere.speckle.radius == 5 and everywhere.hot_pixels.ratio == 9.0
+    assert everywhere.for_channel("speckle", "B").alpha == default_recipe().speckle.alpha
+    assert "speckle" not in everywhere.channels
+    reset = recipe_reset_channel(recipe, "A")
+    assert reset.for_channel("speckle", "A") == default_recipe().speckle
+    assert reset.for_channel("speckle", "B").alpha == 0.05
+
+
+# --------------------------------------------------------------------------- spillover edits
+
+
+def test_edit_entry_and_heatmap_values():
+    from plexwash.plugin._spillover import edit_entry, heatmap_values
+    from plexwash.qc.spillover import SpilloverMatrix
+
+    values = np.array([[1.0, 0.01, 0.0], [0.0, 1.0, 0.02], [0.005, 0.0, 1.0]])
+    matrix = SpilloverMatrix(("A", "B", "C"), values, values * 0.5, values * 1.5)
+    edited = edit_entry(matrix, "A", "C", 0.03)
+    assert edited.values[0, 2] == 0.03 and edited.low[0, 2] == 0.03 and edited.high[0, 2] == 0.03
+    assert matrix.values[0, 2] == 0.0  # the input is not modified
+    shown = heatmap_values(edited)
+    assert np.isnan(np.diag(shown)).all() and shown[1, 2] == pytest.approx(2.0)
+    width = heatmap_values(edited, "interval width %")
+    assert width[0, 1] == pytest.approx(1.0) and width[0, 2] == 0.0
+    for bad in (("A", "A", 0.1), ("A", "Z", 0.1), ("A", "B", 1.5)):
+        with pytest.raises(InputError):
+            edit_entry(matrix, *bad)
+
+
+# --------------------------------------------------------------------------- cancelling
+
+
+def test_cancellable_call_interrupts_a_running_call():
+    call = CancellableCall()
+    result, started = {}, threading.Event()
+
+    def busy():
+        started.set()
+        total = 0
+        while True:  # Python bytecode: the interrupt lands within a few steps
+            total += 1
+
+    thread = threading.Thread(target=lambda: result.setdefault("value", call(busy)))
+    thread.start()
+    assert started.wait(5)
+    time.sleep(0.05)
+    assert call.cancel() is True
+    thread.join(5)
+    assert not thread.is_alive()
+    assert isinstance(result["value"], Cancelled)
+    assert call.cancel() is False  # at most once
+
+
+def test_cancellable_call_returns_and_never_fires_later():
+    call = CancellableCall()
+    assert call(lambda x: x + 1, 1) == 2
+    assert call.cancel() is False  # nothing runs: no interrupt is sent anywhere
+    time.sleep(0.01)
+    early = CancellableCall()
+    early.cancel()
+    assert isinstance(early(lambda: 1), Cancelled)
+
+
+def test_preview_dataclass_is_frozen(small_stack, tmp_path):
+    from plexwash.qc.io import Roi
+
+    roi = Roi(small_stack, ("A", "B", "C"), tmp_path / "x.ome.tiff")
+    preview = PreviewEngine().compute(roi, default_recipe(), "A")
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        preview.channel = "B"

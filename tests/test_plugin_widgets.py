@@ -1,0 +1,305 @@
+"""The studio's dock widgets driven in a real napari viewer under Xvfb.
+
+Settings are changed programmatically, then the layers are checked against the engine's
+own output for the same settings.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import pytest
+from plexwash.plugin import WIDGETS, launch_studio
+from plexwash.plugin._cohort import summarize_flags
+from plexwash.plugin._layers import grid_of, robust_limits, studio_layers
+from plexwash.plugin._quality import measure_rows
+from plexwash.plugin._reader import read_with_panel
+from plexwash.plugin._run import Cancelled
+from plexwash.qc import default_recipe, load_recipe
+from plexwash.qc.io import list_cohort
+from plexwash.qc.speckle import SpeckleSettings
+
+pytestmark = pytest.mark.gui
+
+WAIT_MS = 60_000
+
+
+#: A small panel of the demo generator: neighbouring Nd masses (spillover pairs), a failed
+#: stain (Tb159) and DNA, so widget tests stay quick (napari adds about 4 layers a second here).
+SMALL_PANEL = ("Nd142", "Nd143", "Nd144", "Nd146", "Gd158", "Tb159", "Gd160", "Ir191")
+
+
+@pytest.fixture(scope="module")
+def cohort(tmp_path_factory, generator):
+    """Two unseen ROIs of the demo generator (8 channels, about 96 px a side) + controls."""
+    root = tmp_path_factory.mktemp("studio")
+    panel = [m for m in generator.default_panel() if m.channel in SMALL_PANEL]
+    generator.simulate_cohort(root, random_state=23, n_rois=2, size=96, control_size=64, panel=panel)
+    return root
+
+
+def dock(viewer, title):
+    _, widget = viewer.window.add_plugin_dock_widget("plexwash", title)
+    return widget
+
+
+def wait(qtbot, worker):
+    """Wait for a napari worker to finish (its result handlers have run by then)."""
+    assert worker is not None
+    with qtbot.waitSignal(worker.finished, timeout=WAIT_MS):
+        pass
+
+
+def open_first_roi(qtbot, viewer, cohort):
+    widget = dock(viewer, "Cohort")
+    wait(qtbot, widget.open_cohort(cohort / "cohort"))
+    wait(qtbot, widget.load(0))
+    return widget
+
+
+def wait_preview(qtbot, speckle):
+    qtbot.waitUntil(lambda: speckle.last is not None and speckle.runner.idle, timeout=WAIT_MS)
+
+
+# --------------------------------------------------------------------------- Cohort
+
+
+def test_cohort_lists_flags_loads_and_views(make_napari_viewer, qtbot, cohort):
+    viewer = make_napari_viewer()
+    widget = open_first_roi(qtbot, viewer, cohort)
+    paths = list_cohort(cohort / "cohort")
+    assert widget.table.rowCount() == len(paths) == 2
+    for row, path in enumerate(paths):  # flags are the engine's quality of the raw ROI
+        expected = summarize_flags(measure_rows(read_with_panel(path), default_recipe()))
+        assert widget.table.item(row, 1).text() == expected
+
+    roi = read_with_panel(paths[0])
+    raw = studio_layers(viewer, stage="raw")
+    assert [layer.name for layer in raw] == list(roi.labels)
+    for i, layer in enumerate(raw):
+        np.testing.assert_array_equal(layer.data, roi.data[i])
+        assert tuple(layer.contrast_limits) == pytest.approx(robust_limits(roi.data[i]))
+        assert layer.blending == "additive"
+
+    widget.set_view("grid")
+    assert grid_of(viewer).enabled and all(layer.visible for layer in raw)
+    chosen = [roi.channels[1], roi.channels[4], roi.channels[6]]
+    widget.set_ticked(chosen)
+    widget.set_view("overlay")
+    assert not grid_of(viewer).enabled
+    shown = [layer for layer in raw if layer.visible]
+    assert [layer.metadata["plexwash"]["channel"] for layer in shown] == chosen
+    assert len({tuple(layer.colormap.colors[-1]) for layer in shown}) == 3  # distinct hues
+    widget.channels.setCurrentRow(4)
+    widget.set_view("single")
+    assert [layer.name for layer in raw if layer.visible] == [roi.labels[4]]
+
+    widget.low.setValue(5.0)
+    widget.high.setValue(95.0)
+    widget.rescale()
+    assert tuple(raw[3].contrast_limits) == pytest.approx(robust_limits(roi.data[3], low=5, high=95))
+
+
+def test_cohort_refuses_a_folder_without_rois(make_napari_viewer, tmp_path):
+    viewer = make_napari_viewer()
+    widget = dock(viewer, "Cohort")
+    assert widget.open_cohort(tmp_path) is None
+    assert "no ROI found" in widget.status.text()
+
+
+# --------------------------------------------------------------------------- Quality
+
+
+def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, cohort):
+    viewer = make_napari_viewer()
+    quality = dock(viewer, "Quality")
+    open_first_roi(qtbot, viewer, cohort)
+    roi = read_with_panel(list_cohort(cohort / "cohort")[0])
+    expected = measure_rows(roi, default_recipe())
+    qtbot.waitUntil(lambda: len(quality.rows) == len(expected), timeout=WAIT_MS)
+    assert [r["sbr"] for r in quality.rows] == [r["sbr"] for r in expected]
+    assert [r["flags"] for r in quality.rows] == [r["flags"] for r in expected]
+    assert quality.table.rowCount() == len(expected)
+    assert len(quality.figure.axes[0].patches) == len(expected)  # one bar per channel
+
+    sbr_column = 2
+    quality.table.sortItems(sbr_column, order=quality.table.horizontalHeader().sortIndicatorOrder().DescendingOrder)
+    top = max(expected, key=lambda r: r["sbr"])
+    assert quality.table.item(0, 0).text() == top["channel"]
+    quality.table.selectRow(0)
+    assert quality.state.channel == top["channel"]
+
+
+# --------------------------------------------------------------------------- Speckle
+
+
+def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tmp_path):
+    from plexwash.qc.speckle import remove_hot_pixels, remove_speckle
+    from plexwash.qc.wash import wash
+
+    viewer = make_napari_viewer()
+    speckle = dock(viewer, "Speckle")
+    open_first_roi(qtbot, viewer, cohort)
+    wait_preview(qtbot, speckle)
+    roi = speckle.state.roi
+    channel = roi.channels[5]
+    speckle.channel.setCurrentIndex(5)
+    wait_preview(qtbot, speckle)
+
+    with qtbot.waitSignal(speckle.runner.delivered, timeout=WAIT_MS):
+        speckle.forms["speckle"].editors["radius"].setValue(4)
+    raw = roi.data[5].astype(np.float32)
+    hot = remove_hot_pixels(raw, ratio=5.0, min_excess=10.0)
+    expected = remove_speckle(hot.image, radius=4)
+    washed_layer = viewer.layers[f"{roi.labels[5]} · washed"]
+    removed_layer = viewer.layers[f"{roi.labels[5]} · removed"]
+    np.testing.assert_array_equal(washed_layer.data, expected.image)
+    np.testing.assert_array_equal(removed_layer.data, raw - expected.image)
+    whole = wash(roi, speckle.state.recipe)  # the cohort wash with the same recipe
+    np.testing.assert_array_equal(washed_layer.data, whole.data[5])
+    total = float((raw - expected.image).sum()) / float(raw.sum())
+    assert speckle.removed_text.text() == f"removed {100 * total:.3g} % of the signal"
+    assert speckle.state.recipe.for_channel("speckle", channel).radius == 4
+    assert speckle.state.recipe.speckle.radius == 2  # only this channel changed
+
+    # a burst of changes: only the newest setting reaches the canvas
+    for value in (5, 6, 7):
+        speckle.forms["speckle"].editors["radius"].setValue(value)
+    wait_preview(qtbot, speckle)
+    np.testing.assert_array_equal(washed_layer.data, remove_speckle(hot.image, radius=7).image)
+
+    speckle.apply_to_all()
+    wait_preview(qtbot, speckle)
+    assert speckle.state.recipe.speckle.radius == 7 and not speckle.state.recipe.channels
+    saved = speckle.save_recipe(tmp_path / "tuned")
+    assert saved.name == "tuned.toml"
+    assert load_recipe(saved).sha256() == speckle.state.recipe.sha256()
+
+
+def test_speckle_rejects_out_of_range_values(make_napari_viewer, qtbot, cohort):
+    viewer = make_napari_viewer()
+    speckle = dock(viewer, "Speckle")
+    open_first_roi(qtbot, viewer, cohort)
+    editor = speckle.forms["speckle"].editors["radius"]
+    meta = {f.name: f.metadata for f in dataclasses.fields(SpeckleSettings)}["radius"]
+    assert (editor.minimum(), editor.maximum()) == (meta["low"], meta["high"])
+    alpha = speckle.forms["speckle"].editors["alpha"]
+    assert alpha.minimum() > 0  # open lower bound: 0 cannot be typed in
+
+
+# --------------------------------------------------------------------------- Spillover
+
+
+def test_spillover_load_edit_preview_save(make_napari_viewer, qtbot, cohort, tmp_path):
+    from plexwash.plugin._spillover import compensated_stack, heatmap_values
+    from plexwash.qc.spillover import align_spillover, compensate, read_spillover
+
+    viewer = make_napari_viewer()
+    spill = dock(viewer, "Spillover")
+    open_first_roi(qtbot, viewer, cohort)
+    spill.load(cohort / "truth" / "spillover.csv")
+    truth = read_spillover(cohort / "truth" / "spillover.csv")
+    np.testing.assert_array_equal(spill.state.spillover.values, truth.values)
+    shown = spill.figure.axes[0].images[0].get_array()
+    np.testing.assert_allclose(np.ma.filled(shown, np.nan), heatmap_values(truth), equal_nan=True)
+
+    names = list(truth.channels)
+    spill.set_entry(names[0], names[1], 0.0123)
+    assert spill.state.spillover.values[0, 1] == 0.0123
+    spill.source.setCurrentText(names[3])
+    spill.receiver.setCurrentText(names[4])
+    assert spill.value.value() == pytest.approx(100 * truth.values[3, 4])
+
+    wait(qtbot, spill.preview())
+    roi = spill.state.roi
+    expected = compensate(roi.data.astype(np.float32),
+                          align_spillover(spill.state.spillover, roi.channels), method="nnls")
+    layers = studio_layers(viewer, stage="compensated")
+    assert len(layers) == len(roi.channels)
+    for layer in layers:
+        np.testing.assert_array_equal(layer.data, expected[layer.metadata["plexwash"]["index"]])
+    visible = [layer.metadata["plexwash"]["channel"] for layer in layers if layer.visible]
+    assert visible == [names[4]]
+    used, stack = compensated_stack(roi, spill.state.spillover)
+    np.testing.assert_array_equal(stack, expected)
+
+    path = spill.save(tmp_path / "edited.csv")
+    back = read_spillover(path)
+    np.testing.assert_array_equal(back.values, spill.state.spillover.values)
+    assert spill.state.recipe.compensation.spillover == str(path)
+
+
+def test_spillover_estimate_from_controls(make_napari_viewer, qtbot, cohort):
+    viewer = make_napari_viewer()
+    spill = dock(viewer, "Spillover")
+    dock(viewer, "Cohort").open_cohort(cohort / "cohort")
+    controls = cohort / "controls" / "controls.csv"
+    assert spill.controls_path.path() == controls  # found beside the cohort
+    from plexwash.qc.spillover import estimate_from_controls
+
+    wait(qtbot, spill.estimate_controls(controls))
+    expected = estimate_from_controls(controls)
+    np.testing.assert_array_equal(spill.state.spillover.values, expected.values)
+
+
+# --------------------------------------------------------------------------- Run
+
+
+def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohort, tmp_path):
+    from plexwash.qc.run import read_ledger
+
+    viewer = make_napari_viewer()
+    cohort_widget = dock(viewer, "Cohort")
+    run = dock(viewer, "Run")
+    wait(qtbot, cohort_widget.open_cohort(cohort / "cohort"))
+    assert run.cohort.path() == cohort / "cohort"
+
+    out = tmp_path / "run"
+    run.output.set_path(out)
+    worker = run.run()
+    assert not run.run_button.isEnabled() and run.cancel_button.isEnabled()
+    run.cancel()
+    wait(qtbot, worker)
+    assert run.summary is None and "cancelled" in run.status.text()
+    assert run.run_button.isEnabled() and not run.cancel_button.isEnabled()
+    done_before = [r for r in read_ledger(out) if r["status"] == "done"]
+    assert len(done_before) < 2
+
+    wait(qtbot, run.run())  # rerun: resumes, finishes
+    assert run.summary is not None and run.summary.done + run.summary.skipped == 2
+    assert run.summary.failed == 0
+    for path in list_cohort(cohort / "cohort"):
+        assert (out / path.name).is_file()
+    assert cohort_widget.table.item(0, 2).text() not in ("—", "")  # washed flags arrived
+
+
+def test_cancel_before_start_returns_cancelled():
+    from plexwash.plugin._run import CancellableCall
+
+    call = CancellableCall()
+    call.cancel()
+    assert isinstance(call(lambda: 1 / 0), Cancelled)
+
+
+# --------------------------------------------------------------------------- launcher, look
+
+
+def test_launcher_docks_five_widgets_and_lists_the_cohort(make_napari_viewer, qtbot, cohort):
+    viewer = make_napari_viewer(show=True)
+    launch_studio(cohort / "cohort", viewer=viewer, run=False)
+    titles = [name.split(" (")[0] for name in viewer.window.dock_widgets]
+    assert titles == list(WIDGETS)
+    widgets = {name.split(" (")[0]: w for name, w in viewer.window.dock_widgets.items()}
+    assert widgets["Cohort"].table.rowCount() == 2
+    qtbot.waitUntil(lambda: widgets["Cohort"].state.roi is not None, timeout=WAIT_MS)
+    speckle = widgets["Speckle"]
+    wait_preview(qtbot, speckle)
+    qtbot.wait(200)
+
+    shot = viewer.screenshot(canvas_only=False)
+    assert shot.ndim == 3 and shot.shape[0] > 400 and shot.shape[1] > 600
+    assert shot[..., :3].std() > 10  # the window is drawn, not a flat colour
+    canvas = viewer.screenshot(canvas_only=True)
+    lit = (canvas[..., :3].max(axis=2) > 40).mean()
+    assert 0.005 < lit < 0.9  # channels rendered on the black canvas
