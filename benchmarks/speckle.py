@@ -61,13 +61,15 @@ def uniform_count(stack: np.ndarray, radius: int) -> np.ndarray:
     return ndi.uniform_filter((stack > 0).astype(np.float32), size=(1, side, side), mode="constant") * side**2
 
 
-def median_time(func, repeats: int) -> float:
-    times = []
+def median_times(funcs: dict, repeats: int) -> dict:
+    """Median wall time of each function; repeats are interleaved so load changes hit all alike."""
+    times = {name: [] for name in funcs}
     for _ in range(repeats):
-        start = time.perf_counter()
-        func()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
+        for name, func in funcs.items():
+            start = time.perf_counter()
+            func()
+            times[name].append(time.perf_counter() - start)
+    return {name: statistics.median(t) for name, t in times.items()}
 
 
 def main() -> None:
@@ -85,14 +87,22 @@ def main() -> None:
     hot_pixels_stack(stack[:1], hot_settings)
     speckle_stack(washed[:1], r2)
 
-    t_max = median_time(lambda: shifted_maximum(stack), args.repeats)
-    t_box = median_time(lambda: uniform_count(stack, 2), args.repeats)
-    t_hot = median_time(lambda: hot_pixels_stack(stack, hot_settings), args.repeats)
-    t_r2 = median_time(lambda: speckle_stack(washed, r2), args.repeats)
-    t_r6 = median_time(lambda: speckle_stack(washed, r6), args.repeats)
+    t = median_times(
+        {
+            "max": lambda: shifted_maximum(stack),
+            "box": lambda: uniform_count(stack, 2),
+            "hot": lambda: hot_pixels_stack(stack, hot_settings),
+            "r2": lambda: speckle_stack(washed, r2),
+            "r6": lambda: speckle_stack(washed, r6),
+        },
+        args.repeats,
+    )
+    t_max, t_box, t_hot, t_r2, t_r6 = t["max"], t["box"], t["hot"], t["r2"], t["r6"]
+    load = os.getloadavg()[0]
 
     shape = "x".join(map(str, stack.shape))
-    print(f"stack {shape} float32, {os.cpu_count()} cores, medians of {args.repeats} repeats")
+    print(f"stack {shape} float32, {os.cpu_count()} cores, medians of {args.repeats} interleaved repeats,"
+          f" load average {load:.1f}")
     print(f"floor: 8 shifted np.maximum           {t_max:7.3f} s")
     print(f"floor: uniform_filter count (5x5)     {t_box:7.3f} s")
     print(f"hot_pixels_stack                      {t_hot:7.3f} s   = {t_hot / t_max:5.2f}x shifted maximum")

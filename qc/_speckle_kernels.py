@@ -166,15 +166,13 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_a
                     for xx in range(max(0, x - 1), min(width, x + 2)):
                         if state[yy, xx] == _CORE:
                             state[y, x] = _KEPT
-    if min_area > 2:
+    if min_area > 1:
         _drop_small_components(state, min_area)
     n_removed = 0
     for y in range(height):
         for x in range(width):
             v = image[y, x]
-            s = state[y, x]
-            # min_area == 2: a kept pixel survives exactly when one of its 8 neighbours is kept
-            if s == _DROPPED or (s >= _KEPT and min_area == 2 and not _has_kept_neighbour(state, y, x)):
+            if state[y, x] == _DROPPED:
                 out[y, x] = 0.0
                 removed[y, x] = v
                 n_removed += 1
@@ -182,16 +180,6 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_a
                 out[y, x] = v
                 removed[y, x] = 0.0
     return n_removed
-
-
-@nb.njit(cache=True, nogil=True)
-def _has_kept_neighbour(state, y, x):
-    height, width = state.shape
-    for yy in range(max(0, y - 1), min(height, y + 2)):
-        for xx in range(max(0, x - 1), min(width, x + 2)):
-            if (yy != y or xx != x) and state[yy, xx] >= _KEPT:
-                return True
-    return False
 
 
 @nb.njit(cache=True, nogil=True)

@@ -76,6 +76,20 @@ from scipy import special
 from .errors import InputError
 from .settings import describe_range, setting
 
+__all__ = [
+    "HOT_PIXEL_DEPTH",
+    "BackgroundEstimate",
+    "HotPixelSettings",
+    "SpeckleSettings",
+    "StepResult",
+    "estimate_background",
+    "hot_pixels_stack",
+    "remove_hot_pixels",
+    "remove_speckle",
+    "speckle_depth",
+    "speckle_stack",
+]
+
 #: Depth of the hot-pixel rule under ``map_overlap``: the 8 neighbours.
 HOT_PIXEL_DEPTH = 1
 #: Quantile of all neighbour counts where the background fit starts.
@@ -225,11 +239,17 @@ def remove_hot_pixels(image, *, ratio: float = 5.0, min_excess: float = 10.0) ->
     return _hot_pixels_numpy(_channel(image, "image"), settings)
 
 
-def _hot_pixels_numpy(image: np.ndarray, settings: HotPixelSettings) -> StepResult:
-    out = np.empty(image.shape, np.float32)
-    removed = np.empty(image.shape, np.float32)
+def _hot_pixels_numpy(image: np.ndarray, settings: HotPixelSettings, out=None, removed=None) -> StepResult:
+    out, removed = _outputs(image, out, removed)
     n = _k.hot_pixels(image, float(settings.ratio), float(settings.min_excess), out, removed)
     return StepResult(out, removed, {"n_pixels": int(n), "removed_fraction": _fraction(removed, image)})
+
+
+def _outputs(image: np.ndarray, out, removed):
+    """The arrays a kernel fills: given views (planes of a stack) or new ones."""
+    if out is None:
+        out, removed = np.empty(image.shape, np.float32), np.empty(image.shape, np.float32)
+    return out, removed
 
 
 def _hot_pixels_block(block, ratio, min_excess):
@@ -565,12 +585,11 @@ def remove_speckle(
     return _speckle_numpy(image, settings, background)
 
 
-def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background) -> StepResult:
+def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out=None, removed=None) -> StepResult:
     counts = _counts(image, settings)
     if background is None:
         background = _background_from_histogram(_centre_histogram(image, counts, settings), settings)
-    out = np.empty(image.shape, np.float32)
-    removed = np.empty(image.shape, np.float32)
+    out, removed = _outputs(image, out, removed)
     n_removed = _speckle_apply(image, counts, _filter_parameters(settings, background), out, removed)
     stats = _speckle_stats(settings, background)
     stats.update(n_removed=int(n_removed), removed_fraction=_fraction(removed, image))
@@ -669,8 +688,8 @@ def hot_pixels_stack(stack, settings: HotPixelSettings | Sequence[HotPixelSettin
     stack = _stack(stack)
     per_channel = _per_channel(settings, HotPixelSettings, stack.shape[0])
 
-    def channel_step(c, image, s):
-        return _hot_pixels_dask(image, s) if _is_dask(image) else _hot_pixels_numpy(image, s)
+    def channel_step(c, image, s, out, removed):
+        return _hot_pixels_dask(image, s) if _is_dask(image) else _hot_pixels_numpy(image, s, out, removed)
 
     return _run_stack(stack, per_channel, channel_step, passive={"n_pixels": 0})
 
@@ -718,26 +737,35 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
         for c, histogram in zip(enabled, histograms, strict=True):
             backgrounds[c] = _background_from_histogram(np.asarray(histogram), per_channel[c])
 
-    def channel_step(c, image, s):
+    def channel_step(c, image, s, out, removed):
         if _is_dask(image):
             return _speckle_dask(image, s, backgrounds[c])
-        return _speckle_numpy(image, s, None)
+        return _speckle_numpy(image, s, None, out, removed)
 
     passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None, "n_removed": 0}
     return _run_stack(stack, per_channel, channel_step, passive=passive)
 
 
 def _run_stack(stack, per_channel: list, channel_step, *, passive: dict) -> StepResult:
-    """Apply ``channel_step(c, channel, settings)`` to every enabled channel of a stack."""
+    """Apply ``channel_step(c, channel, settings, out, removed)`` to every enabled channel.
+
+    numpy: the kernels write straight into the planes ``out``/``removed`` of the result
+    stacks, channels in parallel threads (the kernels release the GIL). dask: ``out`` and
+    ``removed`` are None and each channel returns its lazy result.
+    """
     n_channels = stack.shape[0]
 
-    def one(c):
+    def one(c, out=None, removed=None) -> StepResult:
         s, image = per_channel[c], stack[c]
-        if not s.enabled:
-            zeros = image * np.float32(0) if _is_dask(image) else np.zeros(image.shape, np.float32)
-            return StepResult(image, zeros, {"enabled": False, **passive, "removed_fraction": 0.0})
-        result = channel_step(c, image, s)
-        return StepResult(result.image, result.removed, {"enabled": True, **result.stats})
+        if s.enabled:
+            result = channel_step(c, image, s, out, removed)
+            return result._replace(stats={"enabled": True, **result.stats})
+        stats = {"enabled": False, **passive, "removed_fraction": 0.0}
+        if _is_dask(image):
+            return StepResult(image, image * np.float32(0), stats)
+        out[...] = image
+        removed[...] = 0.0
+        return StepResult(out, removed, stats)
 
     if _is_dask(stack):
         import dask.array as da
@@ -751,22 +779,17 @@ def _run_stack(stack, per_channel: list, channel_step, *, passive: dict) -> Step
 
     cleaned = np.empty(stack.shape, np.float32)
     removed = np.empty(stack.shape, np.float32)
-    stats = [None] * n_channels
 
     def store(c):
-        result = one(c)
-        cleaned[c] = result.image
-        removed[c] = result.removed
-        stats[c] = result.stats
+        return one(c, cleaned[c], removed[c]).stats
 
     workers = min(n_channels, os.cpu_count() or 1)
     with threadpool_limits(limits=1):  # kernels run in parallel threads; keep BLAS pools out of their way
         if workers <= 1:
-            for c in range(n_channels):
-                store(c)
+            stats = [store(c) for c in range(n_channels)]
         else:
             with ThreadPoolExecutor(max_workers=workers) as pool:
-                list(pool.map(store, range(n_channels)))
+                stats = list(pool.map(store, range(n_channels)))
     return StepResult(cleaned, removed, stats)
 
 
