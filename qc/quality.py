@@ -59,6 +59,9 @@ How a channel is measured
    percent of bright channels (1-5 counts per pixel) and up to a few hundred
    hot pixels are not excess. Measured alone (:func:`measure_channel`) a channel
    is compared with a flat background only, so ghosts there count as signal.
+   The test is built for raw counts: on washed stacks (background removed, the
+   remainder of subtracted ghosts over-dispersed) pass the raw result as
+   ``reference`` to :func:`measure_stack`, so stains empty before stay empty.
 
 Flags
 -----
@@ -362,7 +365,7 @@ def measure_channel(image, *, settings: QualitySettings = QualitySettings(), dty
 
 def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings = QualitySettings(),
                   channel_settings: Sequence[QualitySettings] | None = None, dtype_max=None,
-                  spillover=None) -> StackQuality:
+                  spillover=None, reference: StackQuality | None = None) -> StackQuality:
     """Measure every channel of a ROI and the ROI-level flags.
 
     Channels are pulled into memory one at a time (a dask stack is computed
@@ -393,6 +396,12 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         channel j). When given, each channel's ghost pattern is fixed by its column
         (only its overall scale, 0 to 2, is fitted) instead of fitting every
         fraction; it is used even when ``ghosts`` is false.
+    reference : StackQuality, optional
+        The same ROI measured before cleaning (the ``raw`` stage). Channels empty
+        there stay empty here: a wash removes signal, it cannot create a stain.
+        Pass it when measuring the ``washed`` stage: after compensation and speckle
+        removal the background is gone and the remainder of subtracted ghosts is
+        no longer Poisson, so the excess test alone over-reads it.
 
     Returns
     -------
@@ -424,6 +433,8 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
                              f"{len(per_channel)} settings for a stack of {shape[0]} channels")
     if len({s.empty_bin for s in per_channel}) > 1:
         raise InputError("quality.empty_bin", "must be the same for every channel of a ROI")
+    if reference is not None and reference.names != names:
+        raise InputError("reference", "measured with other channels than this stack")
     matrix = None
     if spillover is not None:
         matrix = np.asarray(spillover, dtype=np.float64)
@@ -444,6 +455,9 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
     # keeps a threaded BLAS from fighting other work for the cores.
     with threadpool_limits(limits=1, user_api="blas"):
         results = _judge_with_ghosts(results, summaries, per_channel, matrix)
+    if reference is not None:
+        results = [_inherit_empty(cq, ref) for cq, ref in zip(results, reference.channels,
+                                                               strict=True)]
     rows = _striped_lines(np.stack([s.rows for s in summaries]), settings)
     columns = _striped_lines(np.stack([s.columns for s in summaries]), settings)
     flags = ("striped",) if rows or columns else ()
@@ -869,6 +883,14 @@ def _excess_area(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
         excess |= (_poisson_upper(n_w, mu_w) < settings.empty_alpha) & (
             n_w - mu_w >= settings.min_excess * unit * a_w)
     return float(area[excess].sum())
+
+
+def _inherit_empty(cq: ChannelQuality, reference: ChannelQuality) -> ChannelQuality:
+    """``cq`` flagged empty when its reference (the channel before cleaning) is."""
+    if not reference.empty or cq.empty:
+        return cq
+    flags = tuple(f for f in CHANNEL_FLAGS if f == "empty" or f in cq.flags)
+    return dataclasses.replace(cq, flags=flags)
 
 
 def _judge_with_ghosts(results: list[ChannelQuality], summaries: list[_Summary],

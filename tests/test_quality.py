@@ -277,6 +277,22 @@ def test_per_channel_settings():
     assert sq.channel("A").empty and not sq.channel("B").empty
 
 
+def test_washed_stage_keeps_raw_empty_verdicts():
+    stack, names, spill = _panel_stack(1)
+    raw = measure_stack(stack, names)
+    # a stand-in for washing: ghosts subtracted (unconstrained solve, clipped at 0),
+    # then everything below 1 count set to 0 and a remainder left in the failed stain
+    washed = np.linalg.solve(spill.T, stack.reshape(5, -1).astype(float)).reshape(stack.shape)
+    washed = np.where(washed >= 1.0, washed, 0.0)
+    washed[4] += np.where(stack[0] > 60, 1.0, 0.0)  # a remainder shaped like channel A
+    washed[3] = 0.0  # over-cleaning: the rare stain wiped out
+    sq = measure_stack(washed, names, reference=raw)
+    assert [cq.empty for cq in sq.channels] == [False, False, False, True, True]
+    assert "empty" in sq.channel("Failed").flags
+    with pytest.raises(InputError, match="reference"):
+        measure_stack(washed[:4], names[:4], reference=raw)
+
+
 def _demo_roi(generator, seed, size, panel=None):
     rng = np.random.default_rng(seed)
     panel = panel or generator.default_panel()
