@@ -27,13 +27,15 @@ class LatestOnly(QObject):
     deliver : callable
         ``result -> None``; runs on the GUI thread, only for the newest request.
     delay_ms : int
-        Debounce: wait this long after a request for more before starting.
+        Debounce: wait this long after a request for more before starting. With 0 an
+        idle runner starts at once, and requests arriving while it runs are coalesced
+        into one (only the newest is started when the running one ends).
     """
 
     delivered = Signal(float)  # seconds from the request to the end of ``deliver``
     failed = Signal(object)
 
-    def __init__(self, compute: Callable, deliver: Callable, *, delay_ms: int = 8, parent=None):
+    def __init__(self, compute: Callable, deliver: Callable, *, delay_ms: int = 0, parent=None):
         super().__init__(parent)
         self._compute = compute
         self._deliver = deliver
@@ -50,7 +52,10 @@ class LatestOnly(QObject):
         """Ask for a computation; replaces any request not yet started."""
         self._generation += 1
         self._pending = (self._generation, payload, time.perf_counter())
-        self._timer.start()
+        if self._timer.interval() == 0 and self._running is None:
+            self._launch()
+        else:
+            self._timer.start()
 
     @property
     def idle(self) -> bool:
