@@ -135,7 +135,7 @@ class QualitySettings:
         5.0, "a pixel above this times the 2nd largest of its 8 neighbours is a spike (hot pixel)",
         low=1.0, high=1e6)
     spike_excess: float = setting(
-        10.0, "... and only when it exceeds that maximum by at least this many counts",
+        10.0, "... and only when it exceeds that neighbour by at least this many counts",
         low=0.0, high=1e9)
     saturation_level: float = setting(
         0.0, "value counted as saturated; 0 = the detector/dtype maximum (none for float data)",
@@ -165,7 +165,7 @@ class QualitySettings:
         1.0, "detector counts per intensity unit (the empty test assumes Poisson counts)",
         low=0.0, low_open=True, high=1e9)
     stripe_drop: float = setting(
-        0.5, "flag a row/column striped when its mean is below (1 - this) times its neighbours'",
+        0.5, "flag a row/column striped when it holds below (1 - this) of the lines beside it",
         low=0.0, low_open=True, high=1.0, high_open=True)
     stripe_min_counts: float = setting(
         25.0, "a channel judges a row (column) only when its neighbour lines hold this many counts",
@@ -312,8 +312,10 @@ def region_snr(values) -> float:
     v = np.asarray(values, dtype=np.float64).ravel()
     if v.size == 0:
         return math.nan
-    mean = float(v.mean())
-    std = float(v.std())
+    return _mean_over_std(float(v.mean()), float(v.std()))
+
+
+def _mean_over_std(mean: float, std: float) -> float:
     if std == 0.0:
         return math.inf if mean != 0.0 else math.nan
     return mean / std
@@ -548,26 +550,13 @@ def cohort_outliers(table: Iterable[Mapping], *, metric: str = "sbr", cutoff: fl
     rows = list(table)
     if not (cutoff > 0):
         raise InputError("cutoff", f"must be > 0, got {cutoff!r}")
-    groups: dict[tuple, list[int]] = {}
-    values = np.full(len(rows), np.nan)
-    for k, row in enumerate(rows):
-        for key in ("roi", "channel"):
-            if key not in row:
-                raise InputError("quality table", f"row {k + 1} has no {key!r}")
-        groups.setdefault((row["channel"], row.get("stage")), []).append(k)
-        values[k] = _as_float(row.get(metric))
-    if log_scale:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            values = np.where(values > 0, np.log(np.where(values > 0, values, 1.0)), np.nan)
-    scores = np.full(len(rows), np.nan)
-    for members in groups.values():
-        scores[members] = modified_z_scores(values[members])
+    scores = _cohort_scores(rows, metric, log_scale)
     out = []
-    for k, row in enumerate(rows):
-        if np.isfinite(scores[k]) and abs(scores[k]) > cutoff:
+    for row, score in zip(rows, scores, strict=True):
+        if np.isfinite(score) and abs(score) > cutoff:
             out.append({"roi": row["roi"], "channel": row["channel"], "stage": row.get("stage"),
                         "metric": metric, "value": _as_float(row.get(metric)),
-                        "modified_z": float(scores[k])})
+                        "modified_z": float(score)})
     return out
 
 
@@ -575,7 +564,8 @@ def add_outlier_flags(table: Iterable[Mapping], *, metric: str = "sbr", cutoff: 
                       log_scale: bool = False) -> list[dict]:
     """Copies of the quality rows with ``outlier`` added to the flags of cohort outliers.
 
-    Also adds ``modified_z`` (of ``metric``) to every row. ``flags`` keep their
+    Also adds ``modified_z`` (of ``metric``; None where it is undefined) to every
+    row. ``flags`` keep their
     form: a list stays a list, a ``';'``-joined string stays a string.
 
     Examples
@@ -586,23 +576,32 @@ def add_outlier_flags(table: Iterable[Mapping], *, metric: str = "sbr", cutoff: 
     [[], [], [], [], ['outlier']]
     """
     rows = [dict(row) for row in table]
-    flagged = {(o["roi"], o["channel"], o["stage"]): o["modified_z"]
-               for o in cohort_outliers(rows, metric=metric, cutoff=cutoff, log_scale=log_scale)}
-    scores = {}
-    groups: dict[tuple, list[int]] = {}
-    for k, row in enumerate(rows):
-        groups.setdefault((row["channel"], row.get("stage")), []).append(k)
-    for members in groups.values():
-        vals = np.array([_as_float(rows[k].get(metric)) for k in members])
-        if log_scale:
-            vals = np.where(vals > 0, np.log(np.where(vals > 0, vals, 1.0)), np.nan)
-        for k, m in zip(members, modified_z_scores(vals), strict=True):
-            scores[k] = float(m)
-    for k, row in enumerate(rows):
-        row["modified_z"] = scores[k]
-        if (row["roi"], row["channel"], row.get("stage")) in flagged:
+    if not (cutoff > 0):
+        raise InputError("cutoff", f"must be > 0, got {cutoff!r}")
+    for row, score in zip(rows, _cohort_scores(rows, metric, log_scale), strict=True):
+        row["modified_z"] = float(score) if np.isfinite(score) else None
+        if np.isfinite(score) and abs(score) > cutoff:
             row["flags"] = _add_flag(row.get("flags", []), OUTLIER_FLAG)
     return rows
+
+
+def _cohort_scores(rows: list[Mapping], metric: str, log_scale: bool) -> np.ndarray:
+    """Modified z-score of every row's metric within its (channel, stage) group."""
+    groups: dict[tuple, list[int]] = {}
+    values = np.full(len(rows), np.nan)
+    for k, row in enumerate(rows):
+        for key in ("roi", "channel"):
+            if key not in row:
+                raise InputError("quality table", f"row {k + 1} has no {key!r}")
+        groups.setdefault((row["channel"], row.get("stage")), []).append(k)
+        values[k] = _as_float(row.get(metric))
+    if log_scale:
+        positive = values > 0
+        values = np.where(positive, np.log(np.where(positive, values, 1.0)), np.nan)
+    scores = np.full(len(rows), np.nan)
+    for members in groups.values():
+        scores[members] = modified_z_scores(values[members])
+    return scores
 
 
 def quality_rows(stack_quality: StackQuality, *, roi: str, stage: str,
@@ -664,54 +663,70 @@ def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
     if not (np.issubdtype(raw.dtype, np.integer) or np.issubdtype(raw.dtype, np.floating)
             or raw.dtype == bool):
         raise InputError(key, f"unsupported pixel type {raw.dtype}")
-    values = raw.astype(np.float64)
-    if not np.all(np.isfinite(values)):
+    if raw.dtype == bool:
+        raw = raw.astype(np.uint8)
+    if raw.dtype.kind == "f" and not np.all(np.isfinite(raw)):
         raise InputError(key, "channel contains NaN or infinite values")
 
-    clean, spikes = _suppress_spikes(values, settings.spike_ratio, settings.spike_excess)
+    # statistics of the values as given, before the raw copy is released
+    p50, p99 = (float(v) for v in np.percentile(raw, [50.0, 99.0]))
+    maximum = float(raw.max())
+    zero_fraction = float(np.count_nonzero(raw == 0)) / raw.size
+    clean, spikes = _suppress_spikes(raw, settings.spike_ratio, settings.spike_excess)
+    del raw
+
     smoothed = _split_image(clean, settings.smoothing_sigma)
     if smoothed.max() > smoothed.min():
         t_log = float(threshold_otsu(smoothed))
     else:
         t_log = float(smoothed.max())
     foreground = smoothed > t_log
+    del smoothed
     n_fg = int(np.count_nonzero(foreground))
     floor = settings.background_floor
-    if 0 < n_fg < values.size:
-        fg = clean[foreground]
-        bg = clean[~foreground]
-        fg_mean, bg_mean, bg_std = float(fg.mean()), float(bg.mean()), float(bg.std())
+    if 0 < n_fg < clean.size:
+        fg_mean, fg_std = _masked_mean_std(clean, foreground)
+        bg_mean, bg_std = _masked_mean_std(clean, ~foreground)
         sbr = fg_mean / max(bg_mean, floor)
         snr = (fg_mean - bg_mean) / max(bg_std, floor)
-        fg_snr = region_snr(fg)
+        fg_snr = _mean_over_std(fg_mean, fg_std)
     else:  # nothing stands out: the whole channel is background
         fg_mean = bg_mean = float(clean.mean())
         bg_std = float(clean.std())
         sbr, snr, fg_snr = 1.0, 0.0, math.nan
         n_fg = 0
+    del foreground
 
     level = _saturation_level(dtype, settings, dtype_max)
-    saturated = 0.0 if level is None else float(np.count_nonzero(clean >= level)) / values.size
-    p50, p99 = (float(v) for v in np.percentile(values, [50.0, 99.0]))
+    saturated = 0.0 if level is None else float(np.count_nonzero(clean >= level)) / clean.size
 
     bins = _bin_sums(clean, settings.empty_bin)
-    area = _bin_sums(np.ones(values.shape), settings.empty_bin)
+    area = _bin_sums(np.ones(clean.shape), settings.empty_bin)
     mu, coef, _ = _fit_model(bins.ravel() * settings.counts_per_unit, area.ravel(),
                              np.empty((0, bins.size)), np.empty(0), settings)
     excess_area = _excess_area(bins * settings.counts_per_unit, mu.reshape(bins.shape), area,
                                settings)
     flags = _channel_flags(excess_area, sbr, saturated, settings)
     cq = ChannelQuality(
-        name=name, sbr=sbr, snr=snr, foreground_fraction=n_fg / values.size,
+        name=name, sbr=sbr, snr=snr, foreground_fraction=n_fg / clean.size,
         foreground_mean=fg_mean, background_mean=bg_mean, background_std=bg_std,
         foreground_snr=fg_snr, threshold=float(np.expm1(t_log)), p50=p50, p99=p99,
-        maximum=float(values.max()), zero_fraction=float(np.count_nonzero(values == 0)) / values.size,
+        maximum=maximum, zero_fraction=zero_fraction,
         saturated_fraction=saturated, saturation_level=level, spikes=spikes,
         excess_area=excess_area, background_rate=float(coef[0]) / settings.counts_per_unit,
         ghost_sources=(), flags=flags)
     summary = _Summary(bins=bins, shape=clean.shape, rows=_line_sums(clean),
                        columns=_line_sums(clean.T))
     return cq, summary
+
+
+def _masked_mean_std(values: np.ndarray, mask: np.ndarray) -> tuple[float, float]:
+    """Mean and standard deviation of ``values[mask]`` without copying them out."""
+    n = np.count_nonzero(mask)
+    mean = float(np.sum(values, where=mask)) / n
+    squares = float(np.sum(np.square(values - mean, where=mask, out=np.zeros(values.shape)),
+                           where=mask))
+    return mean, math.sqrt(squares / n)
 
 
 def _channel_flags(excess_area: float, sbr: float, saturated: float,
@@ -726,8 +741,8 @@ def _channel_flags(excess_area: float, sbr: float, saturated: float,
     return tuple(flags)
 
 
-def _suppress_spikes(values: np.ndarray, ratio: float, excess: float) -> tuple[np.ndarray, int]:
-    """Set isolated spikes to their neighbourhood level; return the copy and their count.
+def _suppress_spikes(image: np.ndarray, ratio: float, excess: float) -> tuple[np.ndarray, int]:
+    """Set isolated spikes to their neighbourhood level; return a float64 copy and their count.
 
     A pixel is a spike when it exceeds ``ratio`` times the *second* largest of its
     8 neighbours and that value by at least ``excess``; it is then set to that
@@ -735,23 +750,32 @@ def _suppress_spikes(values: np.ndarray, ratio: float, excess: float) -> tuple[n
     that happen to touch (common on large images), while anything with two or
     more bright neighbours - a cell, a line one pixel wide - is left alone.
     """
-    height, width = values.shape
-    padded = np.pad(values, 1, constant_values=-np.inf)  # edge pixels have fewer neighbours
+    height, width = image.shape
+    padded = np.full((height + 2, width + 2), -np.inf)  # edge pixels have fewer neighbours
+    padded[1:-1, 1:-1] = image
+    values = padded[1:-1, 1:-1]  # the float64 copy, inside the padding
     first = np.full(values.shape, -np.inf)
     second = np.full(values.shape, -np.inf)
+    lower = np.empty(values.shape)
     for dy in (0, 1, 2):
         for dx in (0, 1, 2):
             if dy == 1 and dx == 1:
                 continue
             shifted = padded[dy:dy + height, dx:dx + width]
-            np.maximum(second, np.minimum(first, shifted), out=second)
+            np.minimum(first, shifted, out=lower)
+            np.maximum(second, lower, out=second)
             np.maximum(first, shifted, out=first)
-    level = np.where(np.isfinite(second), np.maximum(second, 0.0), 0.0)
-    spike = (values > ratio * level) & (values - level >= excess) & (values > 0)
+    del first
+    level = np.maximum(second, 0.0, out=second)  # no neighbour (-inf) counts as 0
+    np.multiply(level, ratio, out=lower)
+    spike = values > lower
+    np.subtract(values, level, out=lower)
+    spike &= (lower >= excess) & (values > 0)
+    del lower
     n = int(np.count_nonzero(spike))
-    if n == 0:
-        return values, 0
-    return np.where(spike, level, values), n
+    if n:
+        np.copyto(values, level, where=spike)
+    return values, n
 
 
 def _split_image(clean: np.ndarray, sigma: float) -> np.ndarray:
@@ -961,24 +985,27 @@ def _line_sums(image: np.ndarray) -> np.ndarray:
     ``sum(a (w + m))``, ``sum(nb (w + m))`` and ``sum(nb)``, ``m`` being the part's
     mean of ``w``.
     """
-    def beside(d):
-        total = np.zeros_like(image)
-        count = np.zeros((image.shape[0], 1))
-        if image.shape[0] > d:
-            total[d:] += image[:-d]
-            total[:-d] += image[d:]
+    def beside(part, d):
+        total = np.zeros(part.shape)
+        count = np.zeros((part.shape[0], 1))
+        if part.shape[0] > d:
+            total[d:] += part[:-d]
+            total[:-d] += part[d:]
             count[d:] += 1
             count[:-d] += 1
-        return total / np.maximum(count, 1)
+        total /= np.maximum(count, 1)
+        return total
 
-    near, far = beside(1), beside(2)
     edges = _segments(image.shape[1])
     out = np.empty((3, len(edges) - 1, image.shape[0]))
     for k, (start, stop) in enumerate(zip(edges[:-1], edges[1:], strict=True)):
-        weight = far[:, start:stop] + far[:, start:stop].mean(axis=1, keepdims=True)
-        out[0, k] = (image[:, start:stop] * weight).sum(axis=1)
-        out[1, k] = (near[:, start:stop] * weight).sum(axis=1)
-        out[2, k] = near[:, start:stop].sum(axis=1)
+        part = image[:, start:stop]  # one part at a time keeps the temporaries small
+        weight = beside(part, 2)
+        weight += weight.mean(axis=1, keepdims=True)
+        near = beside(part, 1)
+        out[0, k] = np.einsum("ij,ij->i", part, weight)
+        out[1, k] = np.einsum("ij,ij->i", near, weight)
+        out[2, k] = near.sum(axis=1)
     return out
 
 
