@@ -49,6 +49,9 @@ def launch_studio(cohort_dir: str | Path | None = None, *, viewer=None, show: bo
         list_cohort(cohort_dir)  # fail early, before a window opens, with the CLI's message
     if viewer is None:
         viewer = napari.Viewer(title="plexwash studio", show=show)
+        made_here = True
+    else:
+        made_here = False
     widgets, docks = {}, {}
     for title in WIDGETS:
         # Cohort goes left on its own; the others share one tabbed column on the right
@@ -59,6 +62,8 @@ def launch_studio(cohort_dir: str | Path | None = None, *, viewer=None, show: bo
             dock.parent().addDockWidget(Qt.DockWidgetArea.LeftDockWidgetArea, dock)
         dock.setWindowTitle(title)  # tabs read "Speckle", not "Speckle (plexwash)"
     main = docks["Cohort"].parent()
+    if made_here:
+        _roomy(main)
     main.resizeDocks([docks["Cohort"], docks["Speckle"]], [340, 400], Qt.Orientation.Horizontal)
     _give_cohort_room(main, docks["Cohort"])
     QTimer.singleShot(0, lambda: _give_cohort_room(main, docks["Cohort"]))  # once laid out
@@ -86,3 +91,16 @@ def _give_cohort_room(main, cohort_dock) -> None:
     height = max(main.height(), 900)
     share = [int(height * 0.22)] * len(left)
     main.resizeDocks(left + [cohort_dock], share + [height - sum(share)], Qt.Orientation.Vertical)
+
+
+def _roomy(main) -> None:
+    """Five docks need room: grow a small window to most of the screen (at most 1680 x 1050)."""
+    from qtpy.QtWidgets import QApplication
+
+    screen = QApplication.primaryScreen()
+    if screen is None:
+        return
+    area = screen.availableGeometry()
+    width, height = min(1680, int(area.width() * 0.92)), min(1050, int(area.height() * 0.92))
+    if main.width() < width or main.height() < height:
+        main.resize(max(main.width(), width), max(main.height(), height))

@@ -25,6 +25,7 @@ from ._layers import (
     CONTRAST_PERCENTILES,
     PALETTE,
     colormap_for,
+    fit_visible,
     grid_of,
     robust_limits,
     roi_layer_data,
@@ -311,7 +312,7 @@ class CohortWidget(StudioWidget):
         self.state.set_roi(roi)
         self._fill_channels(roi)
         self.set_view(self.view)
-        self.viewer.reset_view()
+        fit_visible(self.viewer)
         self.say(f"{roi.name}: {len(roi.channels)} channels, {roi.shape[1]} x {roi.shape[2]} px")
 
     def _fill_channels(self, roi):
@@ -358,35 +359,38 @@ class CohortWidget(StudioWidget):
         """``single`` (the chosen channel), ``grid`` (all channels) or ``overlay`` (ticked ones)."""
         if view not in VIEWS:
             raise ValueError(f"view must be one of {VIEWS}, got {view!r}")
+        changed = view != self.view
         self.view = view
         for button in self.view_buttons.buttons():
             button.setChecked(button.objectName() == f"view_{view}")
-        raw = studio_layers(self.viewer, stage="raw")
-        if not raw:
+        if not studio_layers(self.viewer, stage="raw"):
             return
+        order = {c: k for k, c in enumerate(self.ticked())} if view == "overlay" else {}
         grid = grid_of(self.viewer)
+        was_grid = grid.enabled
         if view != "grid":
-            grid.enabled = False  # leave the grid before changing layers: grid updates are costly
-        shown = self.ticked() if view == "overlay" else []
-        order = {c: k for k, c in enumerate(shown)}
-        for layer in raw:
+            grid.enabled = False  # leave the grid first: each change inside it relays out every cell
+        for layer in studio_layers(self.viewer):
             meta = layer.metadata["plexwash"]
-            channel = meta["channel"]
-            if view == "grid":
-                layer.visible = True
-                set_colormap(layer, colormap_for(meta["index"]))
-            elif view == "overlay":
-                layer.visible = channel in order
-                # hues follow tick order so any chosen combination gets distinct colours
-                set_colormap(layer, colormap_for(order.get(channel, meta["index"])))
+            channel, stage = meta["channel"], meta["stage"]
+            if stage == "raw":
+                if view == "grid":
+                    show, hue = True, meta["index"]
+                elif view == "overlay":  # hues follow tick order: any combination gets distinct ones
+                    show, hue = channel in order, order.get(channel, meta["index"])
+                else:
+                    show, hue = channel == self.state.channel, meta["index"]
+                set_colormap(layer, colormap_for(hue))
+            elif stage in ("washed", "removed"):  # the Speckle preview sits beside its raw channel
+                show = view == "single" and channel == self.state.channel
             else:
-                layer.visible = channel == self.state.channel
-                set_colormap(layer, colormap_for(meta["index"]))
+                show = False
+            if layer.visible != show:
+                layer.visible = show
         if view == "grid":
-            for layer in studio_layers(self.viewer):
-                if layer.metadata["plexwash"]["stage"] != "raw":
-                    layer.visible = False
             grid.enabled = True
+        if changed or was_grid != grid.enabled:
+            fit_visible(self.viewer)
         if view == "overlay" and len(self.ticked()) > len(PALETTE):
             self.say(f"more than {len(PALETTE)} channels ticked: hues repeat", warn=True)
 

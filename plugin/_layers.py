@@ -219,3 +219,12 @@ def grid_of(viewer):
     canvas = getattr(viewer, "canvas", None)
     grid = getattr(canvas, "grid", None)
     return grid if grid is not None else viewer.grid
+
+
+def fit_visible(viewer) -> None:
+    """Fit the camera to the visible layers (hidden side-by-side previews do not count)."""
+    shown = [layer for layer in viewer.layers if layer.visible]
+    try:
+        viewer.reset_view(layers=shown or None)
+    except TypeError:  # napari before 0.9 fits every layer
+        viewer.reset_view()

@@ -21,7 +21,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._common import PathRow, SettingsForm, StudioWidget
-from ._layers import channel_layer, grid_of, studio_layers
+from ._layers import channel_layer, fit_visible, grid_of, studio_layers
 from ._preview import LatestOnly
 
 #: The per-channel sections this widget edits, in step order.
@@ -454,9 +454,10 @@ class SpeckleWidget(StudioWidget):
             return
         self._framed = key
         grid_of(self.viewer).enabled = False
-        for layer in studio_layers(self.viewer, stage="raw"):
-            layer.visible = layer.metadata["plexwash"]["channel"] == result.channel
-        self.viewer.reset_view()
+        for layer in studio_layers(self.viewer):
+            meta = layer.metadata["plexwash"]
+            layer.visible = meta["channel"] == result.channel and meta["stage"] in ("raw", "washed", "removed")
+        fit_visible(self.viewer)
 
     def _show_fractions(self, result: ChannelPreview) -> None:
         self.removed_text.setText(f"removed {100 * result.total_fraction:.3g} % of the signal")

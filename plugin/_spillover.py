@@ -18,7 +18,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._common import PathRow, StudioWidget, small_figure, style_axes
-from ._layers import channel_layer, find_panel, robust_limits, studio_layers
+from ._layers import channel_layer, find_panel, fit_visible, grid_of, robust_limits, studio_layers
 
 #: What the heatmap can show.
 HEATMAP_VIEWS = ("spillover %", "interval width %")
@@ -115,6 +115,7 @@ class SpilloverWidget(StudioWidget):
     def __init__(self, napari_viewer, parent=None):
         super().__init__(napari_viewer, parent)
         self.compensated: tuple | None = None
+        self._fitted = False
         layout = self.layout()
 
         layout.addWidget(self.caption("Matrix"))
@@ -399,21 +400,25 @@ class SpilloverWidget(StudioWidget):
             kwargs["translate"] = (0.0, width * 1.04)
             self.viewer.add_image(stack[k], **kwargs)
         self.compensated = (roi, used)
+        self._fitted = False
         self._show_receiver()
         self.say(f"{roi.name}: {len(used)} compensated layers (receiving channel shown beside raw)")
 
     def _show_receiver(self):
-        """Show the chosen receiving channel raw and compensated; hide the other compensated layers."""
+        """Side by side: the chosen receiving channel raw, and compensated; everything else hidden."""
         roi = self.state.roi
         receiver = self.receiver.currentText()
         if roi is None or self.compensated is None or self.compensated[0] is not roi:
             return
-        for layer in studio_layers(self.viewer, stage="compensated"):
-            layer.visible = layer.metadata["plexwash"]["channel"] == receiver
-        if receiver in roi.channels:
-            raw_name = roi.labels[roi.channel_index(receiver)]
-            if raw_name in self.viewer.layers:
-                self.viewer.layers[raw_name].visible = True
+        if receiver not in roi.channels:
+            return
+        grid_of(self.viewer).enabled = False
+        for layer in studio_layers(self.viewer):
+            meta = layer.metadata["plexwash"]
+            layer.visible = meta["channel"] == receiver and meta["stage"] in ("raw", "compensated")
+        if not self._fitted:
+            self._fitted = True
+            fit_visible(self.viewer)
 
 
 def _frame_patch(x: int, y: int):
