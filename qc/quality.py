@@ -105,6 +105,8 @@ _MAD_CONSTANT = 0.6745
 _MEAN_AD_CONSTANT = 1.253314
 # Largest number of refits of the background / ghost model while leaving out bins.
 _MAX_FIT_ROUNDS = 12
+# Bins per block when Gram matrices are updated (bounds the temporary copies).
+_GRAM_BLOCK = 8192
 # Largest factor on the ghost pattern of a known spillover matrix.
 _KNOWN_SCALE_MAX = 2.0
 # Slopes below this are not listed as ghost sources in reports.
@@ -279,8 +281,7 @@ class StackQuality:
 class _Summary:
     """What a stack measurement keeps of one channel once its pixels are released."""
 
-    bins: np.ndarray  # (ny, nx) spike-free sums in bins, counts
-    shape: tuple[int, int]
+    bins: np.ndarray  # (ny, nx) spike-free sums in bins, data units
     rows: np.ndarray  # (3, segments, Y) sums of the stripe test, see _line_sums
     columns: np.ndarray  # (3, segments, X)
 
@@ -446,22 +447,28 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         if not np.all(np.isfinite(matrix)) or np.any(matrix < 0):
             raise InputError("spillover", "matrix holds negative or non-finite values")
 
-    results, summaries = [], []
+    results, row_sums, column_sums = [], [], []
+    design = None  # bin areas, then each channel's bin sums: what the ghost model needs
     for c, name in enumerate(names):
         cq, summary = _measure(stack[c], per_channel[c], dtype_max, name,
                                dtype=getattr(stack, "dtype", None))
+        if design is None:
+            design = np.empty((shape[0] + 1, summary.bins.size))
+            design[0] = _bin_sums(np.ones(shape[1:]), per_channel[0].empty_bin).ravel()
+        design[c + 1] = summary.bins.ravel()
         results.append(cq)
-        summaries.append(summary)
+        row_sums.append(summary.rows)
+        column_sums.append(summary.columns)
 
     # The ghost fits are many small products: one BLAS thread is fastest, and
     # keeps a threaded BLAS from fighting other work for the cores.
     with threadpool_limits(limits=1, user_api="blas"):
-        results = _judge_with_ghosts(results, summaries, per_channel, matrix)
+        results = _judge_with_ghosts(results, design, summary.bins.shape, per_channel, matrix)
     if reference is not None:
         results = [_inherit_empty(cq, ref) for cq, ref in zip(results, reference.channels,
                                                                strict=True)]
-    rows = _striped_lines(np.stack([s.rows for s in summaries]), settings)
-    columns = _striped_lines(np.stack([s.columns for s in summaries]), settings)
+    rows = _striped_lines(np.stack(row_sums), settings)
+    columns = _striped_lines(np.stack(column_sums), settings)
     flags = ("striped",) if rows or columns else ()
     return StackQuality(channels=tuple(results), flags=flags, striped_rows=rows,
                         striped_columns=columns, shape=shape)
@@ -702,8 +709,7 @@ def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
 
     bins = _bin_sums(clean, settings.empty_bin)
     area = _bin_sums(np.ones(clean.shape), settings.empty_bin)
-    mu, coef, _ = _fit_model(bins.ravel() * settings.counts_per_unit, area.ravel(),
-                             np.empty((0, bins.size)), np.empty(0), settings)
+    mu, coef, _ = _fit_model(bins.ravel(), area.ravel()[None, :], np.array([np.inf]), settings)
     excess_area = _excess_area(bins * settings.counts_per_unit, mu.reshape(bins.shape), area,
                                settings)
     flags = _channel_flags(excess_area, sbr, saturated, settings)
@@ -713,16 +719,16 @@ def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
         foreground_snr=fg_snr, threshold=float(np.expm1(t_log)), p50=p50, p99=p99,
         maximum=maximum, zero_fraction=zero_fraction,
         saturated_fraction=saturated, saturation_level=level, spikes=spikes,
-        excess_area=excess_area, background_rate=float(coef[0]) / settings.counts_per_unit,
+        excess_area=excess_area, background_rate=float(coef[0]),
         ghost_sources=(), flags=flags)
-    summary = _Summary(bins=bins, shape=clean.shape, rows=_line_sums(clean),
+    summary = _Summary(bins=bins, rows=_line_sums(clean),
                        columns=_line_sums(clean.T))
     return cq, summary
 
 
 def _masked_mean_std(values: np.ndarray, mask: np.ndarray) -> tuple[float, float]:
     """Mean and standard deviation of ``values[mask]`` without copying them out."""
-    n = np.count_nonzero(mask)
+    n = int(np.count_nonzero(mask))
     mean = float(np.sum(values, where=mask)) / n
     squares = float(np.sum(np.square(values - mean, where=mask, out=np.zeros(values.shape)),
                            where=mask))
@@ -810,71 +816,90 @@ def _poisson_upper(n: np.ndarray, mu: np.ndarray) -> np.ndarray:
     """P(N >= n) for N ~ Poisson(mu); the regularised lower incomplete gamma P(n, mu).
 
     For integer n >= 1, P(N >= n) = P(n, mu) = gammainc(n, mu); it interpolates
-    smoothly for non-integer counts (e.g. compensated data). Bins with n <= mu
-    (P >= 1/2 for any count of interest here) are given 1 without evaluating it.
+    smoothly for non-integer counts (e.g. compensated data). Only small
+    probabilities are exact: bins with n <= mu + sqrt(mu) are given 1.
     """
     out = np.ones(np.shape(n))
-    above = n > mu
+    # P(N >= n) >= 0.159 whenever n <= mu + sqrt(mu) (checked numerically for
+    # 1e-3 <= mu <= 1e5); every alpha used here is below 0.159, so those bins are
+    # given 1 without the (slow) incomplete gamma function.
+    above = n > mu + np.sqrt(mu)
     out[above] = special.gammainc(n[above], mu[above])
     return out
 
 
-def _fit_model(n: np.ndarray, area: np.ndarray, sources: np.ndarray, caps: np.ndarray,
+def _fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
                settings: QualitySettings, *, gram: np.ndarray | None = None,
                cross: np.ndarray | None = None):
-    """Fit n ~ b * area + sum_i s_i * sources_i, leaving out bins the model cannot explain.
+    """Fit target ~ design.T @ coef, leaving out bins the model cannot explain.
 
-    ``b >= 0``, ``0 <= s_i <= caps_i``; least squares on the bins kept. Bins with
-    ``P(N >= n | mu) < fit_alpha`` are left out and the fit repeated until the set
-    is stable. ``gram`` / ``cross`` (the Gram matrix of [area; sources] and its
-    products with n over all bins) may be passed precomputed; between rounds they
-    are updated with the bins that changed side only.
+    ``design`` row 0 holds the bins' areas (its coefficient is the background per
+    pixel, >= 0, unbounded above), the other rows the sources (coefficients
+    ``0 <= s_i <= upper_i``; an upper bound of 0 leaves a row out). Least squares on
+    the bins kept; bins with ``P(N >= n | mu) < fit_alpha`` (counts ``n`` and
+    ``mu`` = values times ``counts_per_unit``) are left out and the fit repeated
+    until the set is stable. ``gram`` / ``cross`` (``design @ design.T`` and
+    ``design @ target`` over all bins) may be passed precomputed; between rounds
+    they are updated with the bins that changed side only.
 
-    Returns mu (model counts per bin, floored), the coefficients [b, s...] and the
-    mask of bins kept.
+    Returns mu (model counts per bin, floored), the coefficients (in the data's
+    units) and the mask of bins kept.
     """
-    design = np.vstack([area[None, :], sources])
+    unit = settings.counts_per_unit
     if gram is None:
         gram = design @ design.T
-        cross = design @ n
-    floor = settings.background_floor * settings.counts_per_unit * area
+        cross = design @ target
+    n = target * unit
+    floor = settings.background_floor * unit * design[0]
     kept = np.ones(n.shape, bool)
     lower = np.zeros(design.shape[0])
-    upper = np.concatenate([[np.inf], caps])
     g, h = gram, cross
     for _ in range(_MAX_FIT_ROUNDS):
         coef = _box_least_squares(g, h, lower, upper)
-        mu = np.maximum(coef @ design, floor)
+        mu = np.maximum(unit * (coef @ design), floor)
         new_kept = _poisson_upper(n, mu) >= settings.fit_alpha
         if not new_kept.any() or np.array_equal(new_kept, kept):
             break
-        leaving, joining = kept & ~new_kept, new_kept & ~kept
-        d_out, d_in = design[:, leaving], design[:, joining]
-        g = g - d_out @ d_out.T + d_in @ d_in.T
-        h = h - d_out @ n[leaving] + d_in @ n[joining]
+        g_out, h_out = _partial_gram(design, target, kept & ~new_kept)
+        g_in, h_in = _partial_gram(design, target, new_kept & ~kept)
+        g, h = g - g_out + g_in, h - h_out + h_in
         kept = new_kept
     return mu, coef, kept
+
+
+def _partial_gram(design: np.ndarray, target: np.ndarray, mask: np.ndarray):
+    """``D D^T`` and ``D t`` over the bins in ``mask``, a block of bins at a time."""
+    index = np.flatnonzero(mask)
+    g = np.zeros((design.shape[0], design.shape[0]))
+    h = np.zeros(design.shape[0])
+    for start in range(0, index.size, _GRAM_BLOCK):
+        part = index[start:start + _GRAM_BLOCK]
+        d = design[:, part]
+        g += d @ d.T
+        h += d @ target[part]
+    return g, h
 
 
 def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
                        upper: np.ndarray) -> np.ndarray:
     """argmin c^T G c - 2 c^T h subject to lower <= c <= upper (G = D D^T, h = D n).
 
-    Solved as the equivalent bounded least-squares problem ||L^T c - L^-1 h||
+    Variables with ``upper <= lower`` are fixed at ``lower``; the others are
+    solved as the equivalent bounded least-squares problem ||L^T c - L^-1 h||
     (G = L L^T) with ``scipy.optimize.lsq_linear`` (BVLS), on a diagonally scaled
     G with a tiny ridge so that dependent or all-zero sources do no harm.
     """
-    k = gram.shape[0]
-    diag = np.diag(gram).copy()
-    usable = diag > 0
-    coef = np.zeros(k)
-    if not usable.any():
+    coef = lower.astype(np.float64).copy()
+    free = (upper > lower) & (np.diag(gram) > 0)
+    if not free.any():
         return coef
-    idx = np.flatnonzero(usable)
-    scale = np.sqrt(diag[idx])
+    idx = np.flatnonzero(free)
+    fixed = np.flatnonzero(~free)
+    h = cross[idx] - gram[np.ix_(idx, fixed)] @ coef[fixed]
+    scale = np.sqrt(np.diag(gram)[idx])
     g = gram[np.ix_(idx, idx)] / np.outer(scale, scale)
     g[np.diag_indices_from(g)] += 1e-9
-    h = cross[idx] / scale
+    h = h / scale
     lo = lower[idx] * scale
     hi = upper[idx] * scale
     if len(idx) == 1:  # one unknown: clip the unconstrained minimum
@@ -882,8 +907,6 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
         return coef
     chol = linalg.cholesky(g, lower=True)
     rhs = linalg.solve_triangular(chol, h, lower=True)
-    fixed = lo >= hi
-    hi = np.where(fixed, lo + 1e-12, hi)
     result = optimize.lsq_linear(chol.T, rhs, bounds=(lo, hi), method="bvls")
     coef[idx] = result.x / scale
     return coef
@@ -917,14 +940,15 @@ def _inherit_empty(cq: ChannelQuality, reference: ChannelQuality) -> ChannelQual
     return dataclasses.replace(cq, flags=flags)
 
 
-def _judge_with_ghosts(results: list[ChannelQuality], summaries: list[_Summary],
+def _judge_with_ghosts(results: list[ChannelQuality], design: np.ndarray, shape,
                        per_channel: list[QualitySettings], matrix) -> list[ChannelQuality]:
-    """Redo the excess test of every channel with ghosts of the other channels in the model."""
+    """Redo the excess test of every channel with ghosts of the other channels in the model.
+
+    ``design`` holds the bins' areas, then every channel's bin sums (data units),
+    one row each; ``shape`` is the shape of the bin grid.
+    """
     if len(results) < 2:
         return results
-    size = per_channel[0].empty_bin
-    area = _bin_sums(np.ones(summaries[0].shape), size)
-    design = np.vstack([area.ravel()] + [s.bins.ravel() for s in summaries])
     gram = design @ design.T
     names = [cq.name for cq in results]
     out = list(results)
@@ -933,44 +957,38 @@ def _judge_with_ghosts(results: list[ChannelQuality], summaries: list[_Summary],
         # ghosts only explain more of a channel: one already empty stays empty
         if cq.empty or (not s.ghosts and matrix is None):
             continue
-        out[c] = _ghost_test(c, cq, design, gram, area, names, s, matrix)
+        out[c] = _ghost_test(c, cq, design, gram, shape, names, s, matrix)
     return out
 
 
-def _ghost_test(c: int, cq: ChannelQuality, design: np.ndarray, gram: np.ndarray,
-                area: np.ndarray, names: list, settings: QualitySettings,
-                matrix) -> ChannelQuality:
-    """Excess test of channel c with the other channels' ghosts in the model.
-
-    ``design`` holds the bin areas then every channel's bin sums (intensity
-    units); ``gram`` is ``design @ design.T``, shared by all channels.
-    """
-    unit = settings.counts_per_unit
-    others = [i for i in range(design.shape[0] - 1) if i != c]
-    rows = [i + 1 for i in others]
-    target = design[c + 1] * unit
+def _ghost_test(c: int, cq: ChannelQuality, design: np.ndarray, gram: np.ndarray, shape,
+                names: list, settings: QualitySettings, matrix) -> ChannelQuality:
+    """Excess test of channel c with the other channels' ghosts in the model."""
+    target = design[c + 1]
+    others = [i for i in range(len(names)) if i != c]
     if matrix is not None:
         # The known matrix fixes the ghost pattern; its overall scale is fitted
         # (0 .. _KNOWN_SCALE_MAX): measured sources carry their own background and
         # spillover, so the pattern is a little off in scale, never in shape.
-        ghost = matrix[others, c] @ design[rows] * unit
-        mu, coef, _ = _fit_model(target, design[0], ghost[None, :],
-                                 np.array([_KNOWN_SCALE_MAX]), settings)
+        ghost = matrix[others, c] @ design[[i + 1 for i in others]]
+        mu, coef, _ = _fit_model(target, np.vstack([design[0], ghost]),
+                                 np.array([np.inf, _KNOWN_SCALE_MAX]), settings)
         slopes = matrix[others, c] * coef[1]
     else:
-        scale = np.array([1.0] + [unit] * len(rows))  # design rows in counts
-        g = gram[np.ix_([0] + rows, [0] + rows)] * np.outer(scale, scale)
-        h = gram[[0] + rows, c + 1] * unit * scale
-        caps = np.full(len(rows), settings.max_ghost)
-        mu, coef, _ = _fit_model(target, design[0], design[rows] * unit, caps, settings,
-                                 gram=g, cross=h)
-        slopes = coef[1:]
-    excess_area = _excess_area(target.reshape(area.shape), mu.reshape(area.shape), area, settings)
+        upper = np.full(design.shape[0], settings.max_ghost)
+        upper[0] = np.inf
+        upper[c + 1] = 0.0  # a channel is no ghost of itself
+        mu, coef, _ = _fit_model(target, design, upper, settings, gram=gram,
+                                 cross=gram[:, c + 1])
+        slopes = coef[[i + 1 for i in others]]
+    area = design[0].reshape(shape)
+    excess_area = _excess_area(target.reshape(shape) * settings.counts_per_unit,
+                               mu.reshape(shape), area, settings)
     ghost_sources = tuple(sorted(((names[i], float(v)) for i, v in zip(others, slopes, strict=True)
                                   if v >= _REPORTED_SLOPE), key=lambda p: -p[1]))
     flags = _channel_flags(excess_area, cq.sbr, cq.saturated_fraction, settings)
     return dataclasses.replace(cq, excess_area=excess_area, flags=flags,
-                               background_rate=float(coef[0]) / unit, ghost_sources=ghost_sources)
+                               background_rate=float(coef[0]), ghost_sources=ghost_sources)
 
 
 # --------------------------------------------------------------------------- stripes
