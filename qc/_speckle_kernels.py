@@ -24,9 +24,14 @@ _CORE = 3  # kept by the local-density test
 
 
 @nb.njit(cache=True, nogil=True)
-def hot_pixels(image, ratio, min_excess, out, removed):
+def hot_pixels(image, ratio, min_excess, flat_sigmas, out, removed):
     """Detect and restore hot pixels of one channel; return how many were restored.
 
+    A pixel with value ``v`` whose brightest neighbour is ``m1`` is hot when
+    ``v - m1 >= min_excess`` and either ``v > ratio * max(m1, 0)``, or (when
+    ``flat_sigmas > 0``) its surroundings are flat and its excess is not Poisson noise:
+    ``m1 - m2 <= s * sqrt(m1 + m2)`` and ``v - m1 > s * sqrt(v + m1)``, with ``m2`` the
+    brightest pixel at distance 2 and ``s = flat_sigmas``. Edges are mirrored.
     ``out`` and ``removed`` (float32, same shape) are filled completely.
     """
     height, width = image.shape
@@ -43,7 +48,14 @@ def hot_pixels(image, ratio, min_excess, out, removed):
             top = max(above[xm], above[x], above[xp], row[xm])
             bottom = max(row[xp], below[xm], below[x], below[xp])
             peak = np.float64(max(top, bottom))
-            if v > ratio * max(peak, 0.0) and v - peak >= min_excess:
+            hot = False
+            if v - peak >= min_excess:  # rare: only candidates pay for the rest
+                if v > ratio * max(peak, 0.0):
+                    hot = True
+                elif flat_sigmas > 0.0 and v - peak > flat_sigmas * np.sqrt(max(v + peak, 0.0)):
+                    outer = _ring2_max(image, y, x)
+                    hot = peak - outer <= flat_sigmas * np.sqrt(max(peak + outer, 0.0))
+            if hot:
                 ring[0] = above[xm]
                 ring[1] = above[x]
                 ring[2] = above[xp]
@@ -52,7 +64,7 @@ def hot_pixels(image, ratio, min_excess, out, removed):
                 ring[5] = below[xm]
                 ring[6] = below[x]
                 ring[7] = below[xp]
-                med = _upper_median8(ring)
+                med = _low_median8(ring)
                 out[y, x] = med
                 removed[y, x] = v - med
                 count += 1
@@ -63,8 +75,32 @@ def hot_pixels(image, ratio, min_excess, out, removed):
 
 
 @nb.njit(cache=True, nogil=True)
-def _upper_median8(values):
-    """Element of rank 4 (0-based) of 8 values: scipy's median of an even-sized footprint."""
+def _mirror(i, n):
+    """Index ``i`` reflected into ``0..n-1`` without repeating the edge (scipy's ``'mirror'``)."""
+    if i < 0:
+        return -i
+    if i >= n:
+        return 2 * n - 2 - i
+    return i
+
+
+@nb.njit(cache=True, nogil=True)
+def _ring2_max(image, y, x):
+    """Brightest of the 16 pixels at Chebyshev distance 2 from (y, x), edges mirrored."""
+    height, width = image.shape
+    best = -np.inf
+    for d in range(-2, 3):
+        for yy, xx in ((y - 2, x + d), (y + 2, x + d)):
+            best = max(best, np.float64(image[_mirror(yy, height), _mirror(xx, width)]))
+        if -2 < d < 2:
+            for yy, xx in ((y + d, x - 2), (y + d, x + 2)):
+                best = max(best, np.float64(image[_mirror(yy, height), _mirror(xx, width)]))
+    return best
+
+
+@nb.njit(cache=True, nogil=True)
+def _low_median8(values):
+    """Low median of 8 values: the element of rank 3 (0-based), the dimmer of the two middle ones."""
     for i in range(1, 8):  # insertion sort: 8 values, only run for detected pixels
         key = values[i]
         j = i - 1
@@ -72,7 +108,7 @@ def _upper_median8(values):
             values[j + 1] = values[j]
             j -= 1
         values[j + 1] = key
-    return values[4]
+    return values[3]
 
 
 @nb.njit(cache=True, nogil=True)
@@ -129,7 +165,7 @@ def centre_histogram(image, counts, threshold, radius, histogram):
 
 
 @nb.njit(cache=True, nogil=True)
-def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_area, out, removed):
+def speckle_filter(image, counts, threshold, radius, min_count, value_cut, keep_touching, min_area, out, removed):
     """Local-density speckle filter of one channel; return how many pixels were set to 0.
 
     Parameters (all arrays C-contiguous)
@@ -141,6 +177,7 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_a
     min_count : int32 (2r+2, 2r+2); ``min_count[a, b]`` = smallest neighbour count kept for
         a window clipped to ``a`` rows and ``b`` columns
     value_cut : float64; a positive pixel with ``value > value_cut`` is kept by value
+    keep_touching : bool; also keep positive pixels touching a core pixel (DBSCAN border points)
     min_area : int; kept 8-connected components smaller than this are dropped
     out, removed : float32 (H, W), filled completely
     """
@@ -158,14 +195,8 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_a
                     state[y, x] = _KEPT
                 else:
                     state[y, x] = _DROPPED
-    # DBSCAN border points at distance 1: a positive pixel touching a core pixel is kept.
-    for y in range(height):
-        for x in range(width):
-            if state[y, x] == _DROPPED:
-                for yy in range(max(0, y - 1), min(height, y + 2)):
-                    for xx in range(max(0, x - 1), min(width, x + 2)):
-                        if state[yy, xx] == _CORE:
-                            state[y, x] = _KEPT
+    if keep_touching:  # DBSCAN border points at distance 1: positive pixels touching a core pixel
+        _keep_touching(state)
     if min_area > 1:
         _drop_small_components(state, min_area)
     n_removed = 0
@@ -180,6 +211,19 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, min_a
                 out[y, x] = v
                 removed[y, x] = 0.0
     return n_removed
+
+
+@nb.njit(cache=True, nogil=True)
+def _keep_touching(state):
+    """Mark dropped positive pixels that touch (8-connected) a core pixel as kept."""
+    height, width = state.shape
+    for y in range(height):
+        for x in range(width):
+            if state[y, x] == _DROPPED:
+                for yy in range(max(0, y - 1), min(height, y + 2)):
+                    for xx in range(max(0, x - 1), min(width, x + 2)):
+                        if state[yy, xx] == _CORE:
+                            state[y, x] = _KEPT
 
 
 @nb.njit(cache=True, nogil=True)

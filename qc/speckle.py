@@ -1,10 +1,16 @@
 """Hot pixels and sparse speckle: two cleaning steps that remove isolated counts.
 
 Hot pixels
-    Single-pixel spikes. A pixel is hot when it exceeds ``ratio`` times the maximum of
-    its 8 neighbours and that maximum by at least ``min_excess`` counts; only detected
-    pixels are restored, with the median of their 8 neighbours (detect, then restore:
-    Chan, Ho & Nikolova 2005).
+    Single-pixel spikes. A pixel is hot when it exceeds the maximum of its 8 neighbours by
+    at least ``min_excess`` counts and either exceeds ``ratio`` times that maximum
+    (thresholded median replacement, common practice) or sits on a flat structure with
+    an excess that Poisson noise cannot explain: its brightest neighbour is not
+    significantly brighter than the brightest pixel two steps out (so it is no peak of a
+    small object) and it exceeds that neighbour by more than ``flat_sigmas`` Poisson
+    standard deviations. The second test finds spikes on or beside bright cells, where
+    the ratio test is blind; the peak of a tiny Gaussian-ish speck falls off steeply
+    from ring 1 to ring 2 and is left alone. Only detected pixels are restored, with the
+    (low) median of their 8 neighbours (detect, then restore: Chan, Ho & Nikolova 2005).
 
 Speckle
     Isolated background counts are sparse and spatially independent; real signal is
@@ -14,8 +20,10 @@ Speckle
       improbable for background: ``P(N >= n) < alpha`` with ``N ~ Binomial(m, p)``
       (a *core* pixel: the core-point rule of DBSCAN, Ester et al. 1996, on the pixel
       grid, with its count threshold derived from a false-keep rate), or
-    * it touches a core pixel (8-connected: DBSCAN's border points, at distance 1, so
-      the rim of a cell whose window is half outside the cell is not shaved off), or
+    * (only with ``keep_touching``) it touches a core pixel, 8-connected: DBSCAN's border
+      points at distance 1. This keeps more of thin processes in high background, and
+      more background beside cells; it is off by default, where background counts in
+      the rims of cells weigh more, or
     * its own value is improbable for background: ``P(Y >= value) < value_alpha`` with
       ``Y ~ Poisson(level)``, so bright tiny objects survive.
 
@@ -44,7 +52,8 @@ Chunked stacks
     ``dask.array.map_overlap``, ``boundary='none'`` (the kernels treat the image edge
     themselves, exactly as for numpy) and the depth from :func:`speckle_depth`, which
     makes every block's result identical to the whole-image result. Window counts are
-    exact ``radius`` pixels in from the block edge, core/border marks ``radius + 1`` in.
+    exact ``radius`` pixels in from the block edge, kept marks ``radius + 1`` in (the
+    ``keep_touching`` rule looks one pixel further).
     A kept component smaller than ``min_area`` spans fewer than ``min_area`` pixels, so
     seen from the block's own part it cannot leave a margin of ``min_area - 1`` pixels;
     if the part seen in the block does leave that margin, the component has at least
@@ -90,8 +99,8 @@ __all__ = [
     "speckle_stack",
 ]
 
-#: Depth of the hot-pixel rule under ``map_overlap``: the 8 neighbours.
-HOT_PIXEL_DEPTH = 1
+#: Depth of the hot-pixel rule under ``map_overlap``: the 8 neighbours and the ring beyond.
+HOT_PIXEL_DEPTH = 2
 #: Quantile of all neighbour counts where the background fit starts.
 _FIT_START_QUANTILE = 0.01
 #: The background fit uses windows with up to the (1 - this) point of Binomial(m, p) positive
@@ -113,6 +122,13 @@ class HotPixelSettings:
     min_excess: float = setting(
         10.0, "and exceeds that neighbour by at least this many counts", low=0.0, high=1e6
     )
+    flat_sigmas: float = setting(
+        6.0,
+        "on flat structures a pixel is also hot when it exceeds its brightest neighbour by this many"
+        " Poisson standard deviations (0: off)",
+        low=0.0,
+        high=100.0,
+    )
 
 
 @dataclasses.dataclass(frozen=True)
@@ -133,6 +149,9 @@ class SpeckleSettings:
     )
     value_alpha: float = setting(
         1e-6, "keep a pixel when its own value is this improbable for background", low=0.0, high=0.5, low_open=True
+    )
+    keep_touching: bool = setting(
+        False, "also keep positive pixels touching a dense pixel (more of thin processes, more background beside cells)"
     )
     min_area: int = setting(2, "drop kept groups of fewer pixels (8-connected)", low=1, high=100)
 
@@ -192,17 +211,27 @@ class BackgroundEstimate(NamedTuple):
 # ----------------------------------------------------------------------------- hot pixels
 
 
-def remove_hot_pixels(image, *, ratio: float = 5.0, min_excess: float = 10.0) -> StepResult:
+def remove_hot_pixels(
+    image, *, ratio: float = 5.0, min_excess: float = 10.0, flat_sigmas: float = 6.0
+) -> StepResult:
     """Restore hot pixels of one channel from the median of their 8 neighbours.
 
-    A pixel is hot when ``value > ratio * max(neighbours)`` (maximum clipped at 0) and
-    ``value - max(neighbours) >= min_excess``. Detection uses the input only; then each
-    detected pixel, and only those, is replaced by the median of its 8 neighbours (for
-    8 values the upper median, rank 4 of 0..7, as ``scipy.ndimage.median_filter``).
-    Image edges are mirrored (the edge pixel is not its own neighbour).
+    With ``v`` the pixel, ``m1`` the brightest of its 8 neighbours and ``m2`` the
+    brightest of the 16 pixels two steps out, a pixel is hot when ``v - m1 >=
+    min_excess`` and either
 
-    Two adjacent bright pixels are never hot (each bounds the other's ratio), so real
-    specks of two or more pixels are left alone.
+    * ``v > ratio * max(m1, 0)``, or
+    * ``m1 - m2 <= s * sqrt(m1 + m2)`` (no peak of a small object around it) and
+      ``v - m1 > s * sqrt(v + m1)`` (more than Poisson noise), ``s = flat_sigmas``.
+
+    Detection uses the input only; then each detected pixel, and only those, is replaced
+    by the median of its 8 neighbours: the low median (rank 3 of 0..7), so that a spike
+    on the edge of a cell, with four cell and four background neighbours, is restored to
+    background rather than given a cell value it never had. Image edges are mirrored (the
+    edge pixel is not its own neighbour). Two adjacent bright pixels of similar value are never hot, so real
+    specks of two or more pixels are left alone; a tiny Gaussian-ish speck (sigma >= 0.65
+    px) has its peak at most ~2.6 times its brightest neighbour and falls off steeply
+    beyond, so neither test touches it.
 
     Parameters
     ----------
@@ -212,6 +241,9 @@ def remove_hot_pixels(image, *, ratio: float = 5.0, min_excess: float = 10.0) ->
         How many times the brightest neighbour a hot pixel exceeds (>= 1).
     min_excess : float, optional
         By how many counts at least a hot pixel exceeds its brightest neighbour (>= 0).
+    flat_sigmas : float, optional
+        Poisson standard deviations of the flat-structure test; 0 turns it off (the
+        plain ratio rule).
 
     Returns
     -------
@@ -233,7 +265,8 @@ def remove_hot_pixels(image, *, ratio: float = 5.0, min_excess: float = 10.0) ->
     >>> float(out[2, 2]), float(removed[2, 2]), st["n_pixels"]
     (1.0, 399.0, 1)
     """
-    settings = _settings(HotPixelSettings, "hot_pixels", ratio=ratio, min_excess=min_excess)
+    settings = _settings(HotPixelSettings, "hot_pixels", ratio=ratio, min_excess=min_excess,
+                         flat_sigmas=flat_sigmas)
     if _is_dask(image):
         return _hot_pixels_dask(_channel(image, "image"), settings)
     return _hot_pixels_numpy(_channel(image, "image"), settings)
@@ -241,7 +274,7 @@ def remove_hot_pixels(image, *, ratio: float = 5.0, min_excess: float = 10.0) ->
 
 def _hot_pixels_numpy(image: np.ndarray, settings: HotPixelSettings, out=None, removed=None) -> StepResult:
     out, removed = _outputs(image, out, removed)
-    n = _k.hot_pixels(image, float(settings.ratio), float(settings.min_excess), out, removed)
+    n = _k.hot_pixels(image, *_hot_parameters(settings), out, removed)
     return StepResult(out, removed, {"n_pixels": int(n), "removed_fraction": _fraction(removed, image)})
 
 
@@ -252,16 +285,18 @@ def _outputs(image: np.ndarray, out, removed):
     return out, removed
 
 
-def _hot_pixels_block(block, ratio, min_excess):
+def _hot_parameters(settings: HotPixelSettings) -> tuple[float, float, float]:
+    return float(settings.ratio), float(settings.min_excess), float(settings.flat_sigmas)
+
+
+def _hot_pixels_block(block, parameters):
     out = np.empty(block.shape, np.float32)
-    _k.hot_pixels(np.ascontiguousarray(block), ratio, min_excess, out, np.empty_like(out))
+    _k.hot_pixels(np.ascontiguousarray(block), *parameters, out, np.empty_like(out))
     return out
 
 
 def _hot_pixels_dask(image, settings: HotPixelSettings) -> StepResult:
-    block_step = functools.partial(
-        _hot_pixels_block, ratio=float(settings.ratio), min_excess=float(settings.min_excess)
-    )
+    block_step = functools.partial(_hot_pixels_block, parameters=_hot_parameters(settings))
     out = image.map_overlap(
         block_step,
         depth=HOT_PIXEL_DEPTH,
@@ -490,7 +525,7 @@ def _min_count_table(radius: int, rate: float, alpha: float) -> np.ndarray:
 def speckle_depth(settings: SpeckleSettings) -> int:
     """Overlap that makes the chunked speckle filter equal the whole-image filter.
 
-    ``radius`` for the window counts, 1 for the border rule, ``min_area - 1`` for the
+    ``radius`` for the window counts, 1 for the ``keep_touching`` rule, ``min_area - 1`` for the
     component-size rule (see the module notes).
 
     Examples
@@ -508,6 +543,7 @@ def remove_speckle(
     radius: int = 2,
     alpha: float = 0.01,
     value_alpha: float = 1e-6,
+    keep_touching: bool = False,
     min_area: int = 2,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
@@ -515,10 +551,12 @@ def remove_speckle(
 
     A positive pixel (``value > threshold``) is kept when its positive-neighbour count
     ``n`` in the ``(2r+1)^2`` window is improbable for background (``P(N >= n) < alpha``,
-    ``N ~ Binomial(m, p)``, ``m`` = neighbours inside the image), when it touches such a
-    pixel, or when its value is improbable for background (``P(Y >= value) <
-    value_alpha``, ``Y ~ Poisson(level)``). Kept 8-connected components smaller than
-    ``min_area`` are dropped. Dropped pixels become 0.
+    ``N ~ Binomial(m, p)``, ``m`` = neighbours inside the image), when its value is
+    improbable for background (``P(Y >= value) < value_alpha``, ``Y ~ Poisson(level)``),
+    or, with ``keep_touching``, when it touches a pixel kept by density. Kept 8-connected
+    components smaller than ``min_area`` are dropped; bright single pixels too, so an
+    isolated hot-ish count goes while a speck of two or more pixels stays. Dropped pixels
+    become 0; pixels at or below ``threshold`` are left as they are.
 
     Parameters
     ----------
@@ -535,6 +573,10 @@ def remove_speckle(
         False-keep rate of the density test for one background pixel.
     value_alpha : float, optional
         False-keep rate of the value test for one background pixel.
+    keep_touching : bool, optional
+        Also keep positive pixels touching a pixel kept by density (DBSCAN's border
+        points): more of thin processes in high background, and more background counts
+        beside cells.
     min_area : int, optional
         Smallest kept component, in pixels (1: no size rule).
     background : BackgroundEstimate, optional
@@ -569,6 +611,7 @@ def remove_speckle(
         radius=radius,
         alpha=alpha,
         value_alpha=value_alpha,
+        keep_touching=keep_touching,
         min_area=min_area,
     )
     if background is not None and float(background.threshold) != float(settings.threshold):
@@ -606,6 +649,7 @@ def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate
         "value_cut": float(value_threshold - 1.0),
         "min_area": int(settings.min_area),
         "pass_through": background.rate >= 1.0,
+        "keep_touching": bool(settings.keep_touching),
     }
 
 
@@ -811,8 +855,8 @@ def _as_float32(array, what: str, ndim: int):
         raise InputError(what, f"expected a {ndim}-D array, got shape {shape}")
     if not (np.issubdtype(dtype, np.integer) or np.issubdtype(dtype, np.floating)):
         raise InputError(what, f"expected real numbers, got dtype {dtype}")
-    if any(n < 2 for n in array.shape[-2:]):
-        raise InputError(what, f"needs at least 2 x 2 pixels, got {array.shape[-2]} x {array.shape[-1]}")
+    if any(n < 3 for n in array.shape[-2:]):
+        raise InputError(what, f"needs at least 3 x 3 pixels, got {array.shape[-2]} x {array.shape[-1]}")
     if _is_dask(array):
         return array.astype(np.float32)
     return np.ascontiguousarray(array, dtype=np.float32)
@@ -867,6 +911,11 @@ def _settings(kind, section: str, **values):
         meta = fields[name].metadata
         expected = type(fields[name].default)
         key = f"{section}.{name}"
+        if expected is bool:
+            if not isinstance(value, (bool, np.bool_)):
+                raise InputError(key, f"must be true or false, got {value!r}")
+            values[name] = bool(value)
+            continue
         if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
             raise InputError(key, f"must be a number, got {value!r}")
         if expected is int:
