@@ -203,6 +203,26 @@ def test_preview_equals_the_wash_channel_by_channel(demo_roi):
             assert preview.fractions[step] == pytest.approx(washed.stats[step][index]["removed_fraction"])
 
 
+def test_preview_with_spillover_equals_the_wash(demo_roi, demo_dir):
+    from plexwash.qc.spillover import read_spillover
+    from plexwash.qc.wash import wash
+
+    matrix = read_spillover(demo_dir / "truth" / "spillover.csv")
+    recipe = default_recipe().with_channel("speckle", demo_roi.channels[4], alpha=0.05)
+    washed = wash(demo_roi, recipe, spillover=matrix)
+    engine = PreviewEngine()
+    for index in (4, 9):
+        preview = engine.compute(demo_roi, recipe, demo_roi.channels[index], spillover=matrix)
+        np.testing.assert_array_equal(preview.washed, washed.data[index])
+        for step in ("hot_pixels", "compensation", "speckle"):
+            assert preview.fractions[step] == pytest.approx(washed.stats[step][index]["removed_fraction"],
+                                                            rel=1e-6, abs=1e-12)
+    stack = engine._stack
+    engine.compute(demo_roi, recipe.with_channel("speckle", demo_roi.channels[9], radius=3),
+                   demo_roi.channels[9], spillover=matrix)
+    assert engine._stack is stack  # a speckle change keeps the compensated stack
+
+
 def test_preview_reuses_hot_pixels_while_only_speckle_changes(demo_roi):
     roi = demo_roi
     engine = PreviewEngine()

@@ -130,6 +130,15 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
     quality.table.selectRow(0)
     assert quality.state.channel == top["channel"]
 
+    from plexwash.qc.wash import compute, wash
+
+    quality.stage.setCurrentIndex(1)  # washed with the studio's recipe
+    wait(qtbot, quality.measure())
+    washed = compute(wash(roi, quality.state.recipe))
+    expected = measure_rows(roi, quality.state.recipe, stage="washed", data=washed.data)
+    assert [r["stage"] for r in quality.rows] == ["washed"] * len(expected)
+    assert [r["sbr"] for r in quality.rows] == [r["sbr"] for r in expected]
+
 
 # --------------------------------------------------------------------------- Speckle
 
@@ -230,7 +239,9 @@ def test_spillover_load_edit_preview_save(make_napari_viewer, qtbot, cohort, tmp
     assert spill.state.recipe.compensation.spillover == str(path)
 
 
-def test_spillover_estimate_from_controls(make_napari_viewer, qtbot, cohort):
+def test_spillover_estimate_from_controls_and_tissue(make_napari_viewer, qtbot, cohort):
+    from plexwash.plugin._spillover import heatmap_values
+
     viewer = make_napari_viewer()
     spill = dock(viewer, "Spillover")
     dock(viewer, "Cohort").open_cohort(cohort / "cohort")
@@ -241,6 +252,17 @@ def test_spillover_estimate_from_controls(make_napari_viewer, qtbot, cohort):
     wait(qtbot, spill.estimate_controls(controls))
     expected = estimate_from_controls(controls)
     np.testing.assert_array_equal(spill.state.spillover.values, expected.values)
+    np.testing.assert_array_equal(spill.state.spillover.high, expected.high)
+
+    from plexwash.qc.spillover import estimate_from_tissue
+
+    wait(qtbot, spill.estimate_tissue())
+    paths = list_cohort(cohort / "cohort")
+    tissue = estimate_from_tissue(paths, panel=cohort / "panel.csv")
+    np.testing.assert_array_equal(spill.state.spillover.values, tissue.values)
+    spill.view.setCurrentText("interval width %")
+    shown = np.ma.filled(spill.figure.axes[0].images[0].get_array(), np.nan)
+    np.testing.assert_allclose(shown, heatmap_values(tissue, "interval width %"), equal_nan=True)
 
 
 # --------------------------------------------------------------------------- Run
@@ -272,6 +294,47 @@ def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohor
     for path in list_cohort(cohort / "cohort"):
         assert (out / path.name).is_file()
     assert cohort_widget.table.item(0, 2).text() not in ("—", "")  # washed flags arrived
+
+
+def test_cancel_interrupts_a_run_between_rois(make_napari_viewer, qtbot, cohort, tmp_path, monkeypatch):
+    """Cancel while the second ROI is in flight: the first stays done, the second is not
+    recorded and leaves no temporary file; a rerun skips the first and washes the second."""
+    import time
+
+    import plexwash.qc.run as run_module
+    from plexwash.qc.run import read_ledger
+
+    real = run_module.wash_one
+    calls = []
+
+    def slow_second(job):  # the second ROI takes long enough to be cancelled in flight
+        calls.append(job["roi"])
+        if len(calls) == 2:
+            end = time.monotonic() + 30
+            while time.monotonic() < end:
+                time.sleep(0.01)
+        return real(job)
+
+    monkeypatch.setattr(run_module, "wash_one", slow_second)
+    viewer = make_napari_viewer()
+    run = dock(viewer, "Run")
+    run.cohort.set_path(cohort / "cohort")
+    out = tmp_path / "run"
+    run.output.set_path(out)
+    worker = run.run()
+    qtbot.waitUntil(lambda: len(calls) == 2, timeout=WAIT_MS)
+    started = time.monotonic()
+    run.cancel()
+    wait(qtbot, worker)
+    assert time.monotonic() - started < 10  # not the 30 s of the slow ROI
+    assert "cancelled" in run.status.text() and run.summary is None
+    records = read_ledger(out)
+    assert [r["status"] for r in records] == ["done"]
+    assert not [p for p in out.iterdir() if ".partial-" in p.name or ".spill-" in p.name]
+
+    monkeypatch.setattr(run_module, "wash_one", real)
+    wait(qtbot, run.run())
+    assert (run.summary.done, run.summary.skipped, run.summary.failed) == (1, 1, 0)
 
 
 def test_cancel_before_start_returns_cancelled():
