@@ -237,6 +237,20 @@ def test_preview_reuses_hot_pixels_while_only_speckle_changes(demo_roi):
     assert engine._hot is not hot
 
 
+def test_lazy_rois_give_the_same_layers_and_previews(small_stack, tmp_path):
+    import dask.array as da
+    from plexwash.qc.io import Roi
+
+    eager = Roi(small_stack, ("A", "B", "C"), tmp_path / "x.ome.tiff")
+    lazy = Roi(da.from_array(small_stack, chunks=(1, 32, 24)), ("A", "B", "C"), tmp_path / "x.ome.tiff")
+    for (d1, k1, _), (d2, k2, _) in zip(_layers.roi_layer_data(eager), _layers.roi_layer_data(lazy), strict=True):
+        assert k1["contrast_limits"] == k2["contrast_limits"]
+        np.testing.assert_array_equal(np.asarray(d1), np.asarray(d2))
+    a = PreviewEngine().compute(eager, default_recipe(), "B")
+    b = PreviewEngine().compute(lazy, default_recipe(), "B")
+    np.testing.assert_array_equal(a.washed, b.washed)
+
+
 def test_preview_of_a_pass_through_channel(small_stack, tmp_path):
     from plexwash.qc.io import Roi
 
