@@ -12,10 +12,51 @@ except PackageNotFoundError:  # running from a source tree that is not installed
 
 from .errors import InputError
 from .io import OutputSettings, Panel, Roi, read_panel, read_roi, write_ome_tiff, write_ome_zarr
+from .quality import (
+    QualitySettings,
+    add_outlier_flags,
+    cohort_outliers,
+    measure_channel,
+    measure_stack,
+    modified_z_scores,
+    quality_rows,
+)
 from .recipe import Recipe, default_recipe, load_recipe, write_recipe
+from .speckle import HotPixelSettings, SpeckleSettings, remove_hot_pixels, remove_speckle
+from .spillover import (
+    CompensationSettings,
+    SpilloverMatrix,
+    compensate,
+    estimate_from_controls,
+    estimate_from_tissue,
+    read_spillover,
+    write_spillover,
+)
+from .wash import Washed, wash, wash_to_file
 
 __all__ = [
+    "CompensationSettings",
+    "HotPixelSettings",
     "InputError",
+    "QualitySettings",
+    "SpeckleSettings",
+    "SpilloverMatrix",
+    "Washed",
+    "add_outlier_flags",
+    "cohort_outliers",
+    "compensate",
+    "estimate_from_controls",
+    "estimate_from_tissue",
+    "measure_channel",
+    "measure_stack",
+    "modified_z_scores",
+    "quality_rows",
+    "read_spillover",
+    "remove_hot_pixels",
+    "remove_speckle",
+    "wash",
+    "wash_to_file",
+    "write_spillover",
     "OutputSettings",
     "Panel",
     "Recipe",
