@@ -23,7 +23,7 @@ Inside a task the ROI's chunks run on dask's threaded scheduler.
 
 - default: in this process, one ROI after the other, each ROI's chunks on all cores;
 - ``workers=N``: a ``dask.distributed.LocalCluster`` of N worker processes, one ROI per
-  worker at a time, each with ``cpu_count // N`` threads for its chunks;
+  worker at a time, each with ``cores // N`` threads for its chunks;
 - ``scheduler="tcp://host:port"``: join a running cluster (``Client(address)``); its
   workers must see the same paths (a shared file system).
 
@@ -38,7 +38,9 @@ panel and plexwash version are unchanged; everything else is (re)done. Outputs a
 under a temporary name and renamed, ledger lines are appended one at a time and fsynced,
 so ``kill -9`` loses only the ROIs in flight; leftover temporary files are removed when
 the next run starts. Ctrl-C (or SIGTERM) stops the run: nothing is recorded for the ROIs
-in flight, their temporary files are removed, and ``KeyboardInterrupt`` propagates. One
+in flight, their temporary files and any output they finished without being recorded are
+removed, and ``KeyboardInterrupt`` propagates (with a remote scheduler, a task already
+running on a worker may still finish writing; the next run redoes it). One
 unreadable ROI is recorded ``failed`` with its error; the others go on; the exit code is
 then 3. Inputs are only ever opened for reading. A lock file keeps two runs from writing
 into the same folder at once.
@@ -191,6 +193,7 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
                  + (f" (recipe {plan.recipe_sha256[:12]})" if plan.recipe_sha256 else ""))
         ledger = Ledger(out / LEDGER)
         failed: list[str] = []
+        recorded: set[str] = set()
         done = 0
         log.start(len(jobs))
         try:
@@ -200,12 +203,18 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
                     ledger.append(record)
                     if record["status"] == "done":
                         done += 1
+                        recorded.add(record["roi"])
                     else:
                         failed.append(record["roi"])
                     log.finished(record)
         except KeyboardInterrupt:
-            log.line("interrupted: stopped; ROIs in flight were not recorded and will be redone")
+            # the workers are stopped by now: outputs they finished but that were not recorded
+            # are removed, so every stack in the folder is one the ledger vouches for
+            for job in jobs:
+                if job["output"] and job["roi"] not in recorded:
+                    _remove(out / job["output"])
             sweep_temporary(out)
+            log.line("interrupted: stopped; ROIs in flight were not recorded and will be redone")
             raise
         finally:
             log.stop()
@@ -441,7 +450,7 @@ def _execute_here(jobs: list[dict]) -> Iterable[dict]:
 
     import dask
 
-    threads = max(1, os.cpu_count() or 1)
+    threads = _cpu_count()
     pool = ThreadPoolExecutor(threads, thread_name_prefix="plexwash-chunk")
     try:
         with dask.config.set(scheduler="threads", pool=pool):
@@ -460,7 +469,7 @@ def _execute_on_cluster(jobs: list[dict], *, workers, scheduler, log) -> Iterabl
                          "needs dask.distributed (pip install 'plexwash[cluster]')") from None
 
     cluster = None
-    cpus = os.cpu_count() or 1
+    cpus = _cpu_count()
     if workers is not None:
         workers = int(workers)
         threads = max(1, cpus // workers)
@@ -576,10 +585,12 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
         target = out_dir / f".{output_name(job['roi'])}.measure-{os.getpid()}"
     result = wash_to_file(roi, target, recipe, spillover=matrix)
     written.append(target)
+    release_memory()
     lap("wash_write")
     output_sha256 = sha256_path(target) if job["output"] is not None else None
     lap("hash_output")
     raw_rows, washed_rows, roi_flags = _measure_quality(roi, target, recipe, matrix)
+    release_memory()
     lap("quality")
     if job["output"] is None:
         _remove(target)
@@ -647,6 +658,33 @@ def _median_sbr(raw_rows, washed_rows) -> dict:
     return out
 
 
+def _cpu_count() -> int:
+    """Cores this process may use (the batch system's allocation, not the whole node)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+def release_memory() -> None:
+    """Hand freed heap memory back to the operating system (glibc ``malloc_trim``).
+
+    Between the parts of an ROI (wash, quality) most of what was allocated is free again,
+    but glibc keeps freed blocks of up to 32 MiB in its per-thread arenas, so the process
+    would carry the wash's high-water mark into the quality measurements and the next
+    ROI. Trimming makes the peaks of the parts not add up. A no-op where glibc is absent.
+    """
+    import gc
+
+    gc.collect()
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):
+        pass
+
+
 def _worker_threads() -> int:
     """Threads for one ROI's chunks on a dask worker: its cores shared by its task slots."""
     try:
@@ -655,7 +693,7 @@ def _worker_threads() -> int:
         slots = get_worker().state.nthreads
     except (ImportError, ValueError, AttributeError):
         slots = 1
-    return max(1, (os.cpu_count() or 1) // max(1, slots))
+    return max(1, _cpu_count() // max(1, slots))
 
 
 def _base_record(job: Mapping) -> dict:
