@@ -420,6 +420,17 @@ def test_chunked_speckle_depth_is_needed(monkeypatch):
     assert not np.array_equal(speckle_stack(lazy, settings).image.compute(), eager)
 
 
+def test_chunked_hot_pixel_depth_is_needed(monkeypatch):
+    img = np.zeros((32, 48), np.float32)
+    img[10, 15:17] = 300.0, 100.0  # a peak with one bright neighbour across the chunk border
+    eager = hot_pixels_stack(img[None]).image
+    lazy = da.from_array(img[None], chunks=(1, 32, 16))
+    assert eager[0, 10, 15] == 300.0  # no flat structure around it: not hot
+    np.testing.assert_array_equal(hot_pixels_stack(lazy).image.compute(), eager)
+    monkeypatch.setattr(speckle, "HOT_PIXEL_DEPTH", 1)  # the ring two steps out is then cut
+    assert not np.array_equal(hot_pixels_stack(lazy).image.compute(), eager)
+
+
 def test_background_estimate_does_not_depend_on_chunks():
     img = small_tissue_stack()[1]
     reference = estimate_background(img, radius=3)
