@@ -113,9 +113,9 @@ class PathRow(QWidget):
     changed = Signal(str)
 
     def __init__(self, placeholder: str, *, folder: bool = False, save: bool = False,
-                 filter: str = "", button: str = "Browse…", parent=None):
+                 file_types: str = "", button: str = "Browse…", parent=None):
         super().__init__(parent)
-        self._folder, self._save, self._filter = folder, save, filter
+        self._folder, self._save, self._file_types = folder, save, file_types
         layout = QHBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
         self.edit = QLineEdit()
@@ -131,9 +131,9 @@ class PathRow(QWidget):
         if self._folder:
             chosen = QFileDialog.getExistingDirectory(self, "Choose a folder", start)
         elif self._save:
-            chosen, _ = QFileDialog.getSaveFileName(self, "Save as", start, self._filter)
+            chosen, _ = QFileDialog.getSaveFileName(self, "Save as", start, self._file_types)
         else:
-            chosen, _ = QFileDialog.getOpenFileName(self, "Open", start, self._filter)
+            chosen, _ = QFileDialog.getOpenFileName(self, "Open", start, self._file_types)
         if chosen:
             self.edit.setText(chosen)
             self.changed.emit(chosen)

@@ -114,7 +114,7 @@ class RunWidget(StudioWidget):
         for button in (self.use_studio, self.use_file):
             self.recipe_choice.addButton(button)
             layout.addWidget(button)
-        self.recipe_file = PathRow("recipe.toml", filter="Recipe (*.toml)")
+        self.recipe_file = PathRow("recipe.toml", file_types="Recipe (*.toml)")
         self.recipe_file.changed.connect(lambda _t: self.use_file.setChecked(True))
         layout.addWidget(self.recipe_file)
         self.spill_note = QLabel("")
@@ -226,16 +226,16 @@ class RunWidget(StudioWidget):
     def _update_progress(self):
         from plexwash.qc.run import read_ledger
 
-        out = self.output.path()
-        if self._bar is None or out is None:
+        out, bar = self.output.path(), self._bar
+        if bar is None or out is None:
             return
         records = read_ledger(out)[self._ledger_start:]
         new = len(records) - self._done_shown
         if new > 0:
-            self._bar.update(new)
-            last = records[-1]
-            self._bar.set_description(f"plexwash run: {last['roi']} {last['status']}")
             self._done_shown = len(records)
+            last = records[-1]
+            bar.set_description(f"plexwash run: {last['roi']} {last['status']}")
+            bar.update(new)  # may process events (and so close the bar): keep it last
 
     def _returned(self, out, result):
         self._update_progress()

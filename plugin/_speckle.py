@@ -276,7 +276,7 @@ class SpeckleWidget(StudioWidget):
         layout.addLayout(buttons)
 
         layout.addWidget(self.caption("Recipe"))
-        self.recipe_path = PathRow("recipe.toml", save=True, filter="Recipe (*.toml)", button="…")
+        self.recipe_path = PathRow("recipe.toml", save=True, file_types="Recipe (*.toml)", button="…")
         layout.addWidget(self.recipe_path)
         recipe_buttons = QHBoxLayout()
         load = QPushButton("Load")

@@ -22,7 +22,7 @@ from plexwash.qc.speckle import SpeckleSettings
 
 pytestmark = pytest.mark.gui
 
-WAIT_MS = 60_000
+WAIT_MS = 120_000  # generous: the test machine is shared
 
 
 #: A small panel of the demo generator: neighbouring Nd masses (spillover pairs), a failed
