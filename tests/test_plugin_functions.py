@@ -334,3 +334,12 @@ def test_preview_dataclass_is_frozen(small_stack, tmp_path):
     preview = PreviewEngine().compute(roi, default_recipe(), "A")
     with pytest.raises(dataclasses.FrozenInstanceError):
         preview.channel = "B"
+
+
+def test_launcher_refuses_a_bad_cohort_before_opening_a_window(tmp_path):
+    from plexwash.plugin import launch_studio
+
+    with pytest.raises(InputError, match="cohort folder not found"):
+        launch_studio(tmp_path / "missing", show=False, run=False)
+    with pytest.raises(InputError, match="no ROI found"):
+        launch_studio(tmp_path, show=False, run=False)
