@@ -71,8 +71,11 @@ _BREAKDOWN_CHILD = textwrap.dedent("""
     out.mkdir(parents=True, exist_ok=True)
     t = time.perf_counter()
     import numpy, dask.array, scipy.ndimage, skimage.filters, tifffile, zarr, numba  # noqa
-    from plexwash.qc import io, quality, report, run, spillover, wash
+    from plexwash.qc import io, spillover
     from plexwash.qc.recipe import default_recipe
+    from plexwash.qc.report import downsample
+    from plexwash.qc.run import _measure_quality
+    from plexwash.qc.wash import wash_to_file
     part("imports", t)
     t = time.perf_counter()
     recipe = default_recipe()
@@ -84,14 +87,14 @@ _BREAKDOWN_CHILD = textwrap.dedent("""
     part("hash input", t)
     t = time.perf_counter()
     target = out / "big.ome.tiff"
-    wash.wash_to_file(roi, target, recipe, spillover=matrix)
+    wash_to_file(roi, target, recipe, spillover=matrix)
     part("wash_to_file", t)
     t = time.perf_counter()
-    run._measure_quality(roi, target, recipe, matrix)
+    _measure_quality(roi, target, recipe, matrix)
     part("quality raw + washed", t)
     t = time.perf_counter()
-    report.downsample(io.read_roi(target).data)
-    report.downsample(roi.data)
+    downsample(io.read_roi(target).data)
+    downsample(roi.data)
     part("report thumbnails", t)
     print(json.dumps(parts))
 """)

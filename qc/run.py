@@ -82,6 +82,9 @@ EXIT_OK, EXIT_SOME_FAILED = 0, 3
 _TEMPORARY_MARKERS = (".partial-", ".spill-", ".old-", ".measure-", ".plexwash-probe-")
 #: Quality-table columns written first, in this order; the others follow as measured.
 QUALITY_FIRST_COLUMNS = ("roi", "channel", "label", "stage", "sbr", "snr", "flags", "sbr_modified_z")
+#: Raw and washed quality are measured side by side when a channel has at most this many
+#: pixels (the measurement holds about 15 float64 copies of one channel, ~120 B a pixel).
+QUALITY_PARALLEL_PIXELS = 2**21
 #: Cohort outliers: modified z-score of log(SBR) per channel and stage, |M| > 3.5
 #: (Iglewicz & Hoaglin 1993; NIST/SEMATECH e-Handbook 1.3.5.17).
 OUTLIER_METRIC, OUTLIER_CUTOFF = "sbr", 3.5
@@ -182,7 +185,7 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
         raise InputError("--workers", f"must be a whole number >= 1, got {workers!r}")
     inputs = _check_inputs(cohort_dir, out_dir, recipe=recipe, spillover=spillover, panel=panel)
     out = inputs["out_dir"]
-    with _run_lock(out), _RunLog(out / RUN_LOG, progress=progress) as log, _interrupt_on_sigterm():
+    with _run_lock(out), _RunLog(out / RUN_LOG, progress=progress) as log, _interrupts() as stop:
         plan = _write_run_files(inputs)
         removed = sweep_temporary(out)
         if removed:
@@ -207,6 +210,8 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
                     else:
                         failed.append(record["roi"])
                     log.finished(record)
+                    if stop.is_set():
+                        raise KeyboardInterrupt("interrupted")
         except KeyboardInterrupt:
             # the workers are stopped by now: outputs they finished but that were not recorded
             # are removed, so every stack in the folder is one the ledger vouches for
@@ -540,7 +545,7 @@ def wash_one(job: Mapping) -> dict:
         if dask.config.get("pool", None) is None:
             config["num_workers"] = threads
         with dask.config.set(config):
-            record = _wash_and_measure(job, out_dir, written)
+            record = _wash_and_measure(job, out_dir, written, threads)
     except BaseException as exc:
         for path in written:  # a result that is not recorded done is not left under its name
             _remove(path)
@@ -551,7 +556,7 @@ def wash_one(job: Mapping) -> dict:
     return record
 
 
-def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
+def _wash_and_measure(job: Mapping, out_dir: Path, written: list, threads: int) -> dict:
     from .io import read_roi, sha256_path
     from .recipe import load_recipe
     from .wash import wash_to_file
@@ -589,7 +594,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     lap("wash_write")
     output_sha256 = sha256_path(target) if job["output"] is not None else None
     lap("hash_output")
-    raw_rows, washed_rows, roi_flags = _measure_quality(roi, target, recipe, matrix)
+    raw_rows, washed_rows, roi_flags = _measure_quality(roi, target, recipe, matrix, threads=threads)
     release_memory()
     lap("quality")
     if job["output"] is None:
@@ -609,8 +614,13 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     return record
 
 
-def _measure_quality(roi, washed_path: Path, recipe, matrix):
-    """Quality rows of the raw ROI and of the washed stack as written."""
+def _measure_quality(roi, washed_path: Path, recipe, matrix, *, threads: int = 1):
+    """Quality rows of the raw ROI and of the washed stack as written.
+
+    The two stages are measured side by side in two threads when there are cores to spare
+    and channels are small enough (``QUALITY_PARALLEL_PIXELS``) that two channels' worth
+    of temporaries fit the memory bound; the measurements release the GIL.
+    """
     import numpy as np
 
     from .io import read_roi
@@ -621,11 +631,25 @@ def _measure_quality(roi, washed_path: Path, recipe, matrix):
     dtype = np.dtype(roi.data.dtype)
     dtype_max = float(np.iinfo(dtype).max) if dtype.kind in "ui" else None
     known = _aligned_matrix(matrix, roi.channels)
-    raw = measure_stack(roi.data, roi.channels, settings=settings, channel_settings=per_channel,
-                        dtype_max=dtype_max, spillover=known)
     washed_roi = read_roi(washed_path)
-    washed = measure_stack(washed_roi.data, roi.channels, settings=settings,
-                           channel_settings=per_channel, dtype_max=dtype_max)
+    jobs = (
+        (roi.data, {"spillover": known}),
+        (washed_roi.data, {}),
+    )
+
+    def measure(item):
+        stack, extra = item
+        return measure_stack(stack, roi.channels, settings=settings, channel_settings=per_channel,
+                             dtype_max=dtype_max, **extra)
+
+    _, n_y, n_x = roi.shape
+    if threads >= 2 and n_y * n_x <= QUALITY_PARALLEL_PIXELS:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(2, thread_name_prefix="plexwash-quality") as pool:
+            raw, washed = pool.map(measure, jobs)
+    else:
+        raw, washed = (measure(item) for item in jobs)
     rows = []
     for stage, result in (("raw", raw), ("washed", washed)):
         stage_rows = quality_rows(result, roi=roi.name, stage=stage)
@@ -673,10 +697,8 @@ def release_memory() -> None:
     but glibc keeps freed blocks of up to 32 MiB in its per-thread arenas, so the process
     would carry the wash's high-water mark into the quality measurements and the next
     ROI. Trimming makes the peaks of the parts not add up. A no-op where glibc is absent.
+    (No ``gc.collect()`` here: a Ctrl-C arriving during a collection would be swallowed.)
     """
-    import gc
-
-    gc.collect()
     try:
         import ctypes
 
@@ -766,20 +788,32 @@ def _run_lock(out_dir: Path):
 
 
 @contextlib.contextmanager
-def _interrupt_on_sigterm():
-    """Treat SIGTERM (e.g. a batch system's time limit) like Ctrl-C while the run goes."""
+def _interrupts():
+    """Ctrl-C and SIGTERM (a batch system's time limit) stop the run, reliably.
+
+    Both raise ``KeyboardInterrupt`` and also set the returned event, which the run checks
+    after every ROI: an interrupt that CPython swallows (one arriving while the garbage
+    collector runs a finaliser is reported as "ignored") still stops the run at the next
+    ROI. A signal that was ignored before the run (``nohup``) stays ignored.
+    """
+    event = threading.Event()
     if threading.current_thread() is not threading.main_thread():
-        yield
+        yield event
         return
 
     def _raise(signum, frame):
+        event.set()
         raise KeyboardInterrupt(f"signal {signum}")
 
-    previous = signal.signal(signal.SIGTERM, _raise)
+    previous = {}
+    for number in (signal.SIGINT, signal.SIGTERM):
+        if signal.getsignal(number) is not signal.SIG_IGN:
+            previous[number] = signal.signal(number, _raise)
     try:
-        yield
+        yield event
     finally:
-        signal.signal(signal.SIGTERM, previous)
+        for number, handler in previous.items():
+            signal.signal(number, handler)
 
 
 # --------------------------------------------------------------------------- ledger

@@ -17,13 +17,13 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from plexwash.qc import run as run_module
 from plexwash.qc.errors import InputError
 from plexwash.qc.io import read_roi
 from plexwash.qc.run import (
     LEDGER,
     QUALITY,
     Ledger,
+    RunSummary,
     latest_records,
     quality_table,
     read_ledger,
@@ -558,9 +558,9 @@ def test_ctrl_c_stops_cleanly(bigger_cohort, tmp_path):
 
 
 def test_run_summary_exit_codes():
-    summary = run_module.RunSummary(Path("."), done=2, skipped=1, failed=0)
+    summary = RunSummary(Path("."), done=2, skipped=1, failed=0)
     assert (summary.exit_code, summary.total) == (0, 3)
-    assert run_module.RunSummary(Path("."), 1, 0, 1, ("a",)).exit_code == 3
+    assert RunSummary(Path("."), 1, 0, 1, ("a",)).exit_code == 3
     assert math.isfinite(summary.seconds)
 
 
