@@ -16,12 +16,17 @@ DEMO = ROOT / "example_stack"
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 
-def load_generator():
-    """The demo cohort generator, imported from its file (it is not part of the package)."""
-    spec = importlib.util.spec_from_file_location("plexwash_demo_generate", DEMO / "generate.py")
+def load_example_module(name: str):
+    """A module of example_stack/ (generator, scorer), imported from its file: not packaged."""
+    spec = importlib.util.spec_from_file_location(f"plexwash_demo_{name}", DEMO / f"{name}.py")
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
     return module
+
+
+def load_generator():
+    """The demo cohort generator (example_stack/generate.py)."""
+    return load_example_module("generate")
 
 
 @pytest.fixture(scope="session")
