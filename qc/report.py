@@ -63,7 +63,8 @@ p.note { color: var(--muted); margin: 4px 0 10px; }
 .tile { background: var(--panel); border: 1px solid var(--line); padding: 8px 14px; min-width: 120px; }
 .tile b { display: block; font-size: 20px; }
 table { border-collapse: collapse; margin: 6px 0 12px; font-size: 13px; }
-th, td { border: 1px solid var(--line); padding: 3px 8px; text-align: left; vertical-align: top; }
+th, td { border: 1px solid var(--line); padding: 3px 8px; text-align: left; vertical-align: top;
+         overflow-wrap: anywhere; }
 th { background: var(--panel); font-weight: 600; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
 td.hash, span.hash { font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: 12px; }
@@ -321,17 +322,21 @@ def _section_flags(rows) -> str:
 
 
 def _section_outliers(outliers, rows) -> str:
-    from .run import OUTLIER_CUTOFF
+    from .run import OUTLIER_CUTOFF, OUTLIER_MIN_ROIS
 
     out = ['<section id="outliers"><h2>Cohort outliers</h2>',
            '<p class="note">For each channel and stage, the modified z-score of log(SBR) across '
            "ROIs, M = 0.6745 (x &minus; median) / MAD (MAD: median absolute deviation); an ROI is "
            f"an outlier when |M| &gt; {OUTLIER_CUTOFF:g} (Iglewicz &amp; Hoaglin 1993; "
-           "NIST/SEMATECH e-Handbook of Statistical Methods, 1.3.5.17). With few ROIs the score "
-           "is coarse.</p>"]
+           "NIST/SEMATECH e-Handbook of Statistical Methods, 1.3.5.17). Outliers are called once "
+           f"the cohort has {OUTLIER_MIN_ROIS} ROIs or more; the scores are in quality.csv "
+           "(column sbr_modified_z).</p>"]
     if not outliers:
         n_rois = len({r["roi"] for r in rows})
-        out.append(f"<p>No outlier among {n_rois} ROI(s).</p></section>")
+        if n_rois < OUTLIER_MIN_ROIS:
+            out.append(f"<p>{n_rois} ROI(s) measured: too few to call outliers.</p></section>")
+        else:
+            out.append(f"<p>No outlier among {n_rois} ROIs.</p></section>")
         return "\n".join(out)
     out.append("<table><tr><th>ROI</th><th>channel</th><th>stage</th><th>SBR</th>"
                "<th>modified z</th></tr>")
@@ -432,8 +437,8 @@ def _thumbnail_choice(done, rows, limit) -> list[str]:
 def _section_thumbnails(ctx, done, rows, limit) -> str:
     out = ['<section id="thumbnails"><h2>Before and after</h2>',
            '<p class="note">Per channel: raw, washed, and what the wash removed (raw &minus; '
-           "washed). Raw and washed share one contrast per channel (the "
-           f"{CONTRAST_PERCENTILES[0]:g}th to {CONTRAST_PERCENTILES[1]:g}th percentile of the raw "
+           "washed). Raw and washed share one contrast per channel (black and white at the "
+           f"percentiles {CONTRAST_PERCENTILES[0]:g} and {CONTRAST_PERCENTILES[1]:g} of the raw "
            "thumbnail); the removed map has its own, so faint removals show. Thumbnails are "
            "block means, downsampled to at most "
            f"{THUMBNAIL_SIZE} px.</p>"]

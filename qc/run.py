@@ -88,6 +88,9 @@ QUALITY_PARALLEL_PIXELS = 2**21
 #: Cohort outliers: modified z-score of log(SBR) per channel and stage, |M| > 3.5
 #: (Iglewicz & Hoaglin 1993; NIST/SEMATECH e-Handbook 1.3.5.17).
 OUTLIER_METRIC, OUTLIER_CUTOFF = "sbr", 3.5
+#: Fewer ROIs than this are too few to call any one an outlier (with 3 values the MAD is
+#: set by a single deviation); the scores are still written (common practice).
+OUTLIER_MIN_ROIS = 5
 
 
 @dataclasses.dataclass(frozen=True)
@@ -897,8 +900,9 @@ def quality_table(out_dir) -> list[dict]:
 
     Rows come from each ROI's latest ``done`` ledger record.
     Cohort outliers are judged per channel and stage on log(SBR) with the modified
-    z-score (``|M| > 3.5``); ``flags`` gains ``outlier`` and every row carries
-    ``sbr_modified_z``. Washed rows also carry each step's removed fraction.
+    z-score (``|M| > 3.5``, once the cohort has ``OUTLIER_MIN_ROIS`` ROIs); ``flags``
+    gains ``outlier`` and every row carries ``sbr_modified_z``. Washed rows also carry
+    each step's removed fraction.
     """
     from .quality import add_outlier_flags
 
@@ -917,7 +921,9 @@ def quality_table(out_dir) -> list[dict]:
             rows.append(row)
     if not rows:
         return []
-    flagged = add_outlier_flags(rows, metric=OUTLIER_METRIC, cutoff=OUTLIER_CUTOFF, log_scale=True)
+    enough = len({row["roi"] for row in rows}) >= OUTLIER_MIN_ROIS
+    flagged = add_outlier_flags(rows, metric=OUTLIER_METRIC, log_scale=True,
+                                cutoff=OUTLIER_CUTOFF if enough else math.inf)
     for row in flagged:
         row["sbr_modified_z"] = row.pop("modified_z")
     return flagged
