@@ -120,7 +120,7 @@ def write_report(out_dir, *, output=None, thumbnail_rois: int = THUMBNAIL_ROIS) 
     >>> from plexwash.qc.io import write_ome_tiff
     >>> from plexwash.qc.run import run_cohort
     >>> tmp = pathlib.Path(tempfile.mkdtemp()); (tmp / "c").mkdir()
-    >>> write_ome_tiff(tmp / "c" / "a.ome.tiff", np.ones((2, 32, 32), np.float32), ["X1", "X2"])
+    >>> _ = write_ome_tiff(tmp / "c" / "a.ome.tiff", np.ones((2, 32, 32), np.float32), ["X1", "X2"])
     >>> _ = run_cohort(tmp / "c", tmp / "run", progress=False)
     >>> path = write_report(tmp / "run", output=tmp / "again.html")
     >>> "<img" in path.read_text()

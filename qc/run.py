@@ -176,7 +176,7 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
     >>> from plexwash.qc.io import write_ome_tiff
     >>> tmp = pathlib.Path(tempfile.mkdtemp())
     >>> (tmp / "cohort").mkdir()
-    >>> write_ome_tiff(tmp / "cohort" / "a.ome.tiff", np.ones((2, 32, 32), np.float32), ["X1", "X2"])
+    >>> _ = write_ome_tiff(tmp / "cohort" / "a.ome.tiff", np.ones((2, 32, 32), np.float32), ["X1", "X2"])
     >>> summary = run_cohort(tmp / "cohort", tmp / "run", progress=False)
     >>> summary.done, summary.exit_code, (tmp / "run" / "a.ome.tiff").exists()
     (1, 0, True)
