@@ -17,11 +17,13 @@ max(0, (b_i - sum_{j != i} G_ij x_j) / G_ii)`` is a max-norm contraction with fa
 same factor (Bertsekas & Tsitsiklis, *Parallel and Distributed Computation*, 1989,
 sec. 3.1), so the sweeps converge to the unique NNLS solution from any start, and a
 sweep that changes no entry by more than ``eps`` leaves an error of at most ``eps * rho
-/ (1 - rho)``. Spillover matrices are near identity (``rho`` about 0.05–0.15), so a
-handful of sweeps reach 1e-13 of the pixel's largest count. The sweeps run over a block
-of pixels at once with the pixel index innermost: every operation is a long vector
+/ (1 - rho)``. Spillover matrices are near identity (``rho`` about 0.05–0.25), so about
+seven sweeps reach 1e-10 of the pixel's largest count. The sweeps run over a block of
+pixels at once with the pixel index innermost: every operation is a long vector
 operation over pixels, following the sparse pattern of ``G`` (the same for all pixels),
-and the cost per pixel is a few times ``nnz(G)`` multiply-adds.
+and the cost per pixel is a few times ``nnz(G)`` multiply-adds. Channels are swept in
+the order of a greedy colouring of the spillover graph (like red-black ordering), which
+converges a little faster than mass order.
 
 ``_pixel_bpp`` — for matrices that are not contractions (``rho >= 0.5``, strong
 spillover) and as a fallback: with ``x0 = A^-1 y`` the objective is ``(x - x0)^T G (x -
@@ -325,6 +327,7 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
     t = work[3, 0]
     change = work[3, 1]
     limit = work[3, 2]
+    active = work[3, 3]
     for r in range(m):
         row = idx[r]
         for p in range(n):
@@ -350,7 +353,12 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
                 limit[p] = max(limit[p], abs(yb[i, p]))
         for p in range(LANES):
             limit[p] = limit[p] * tol_rel
-        converged = False
+        # A pixel stops at the end of the first sweep that moves none of its values by
+        # more than its limit; frozen, it no longer depends on the other pixels of the
+        # block, so the result is the same however the stack is chunked.
+        for p in range(LANES):
+            active[p] = 1.0
+        remaining = LANES
         for _sweep in range(max_sweeps):
             for p in range(LANES):
                 change[p] = 0.0
@@ -360,19 +368,21 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
                 _subtract_rows(t, x, g_col, g_val, g_ptr[i], g_ptr[i + 1], 1.0)
                 d = g_dinv[i]
                 for p in range(LANES):
-                    new = max(t[p] * d, 0.0)
-                    change[p] = max(change[p], abs(new - x[i, p]))
+                    old = x[i, p]
+                    new = max(t[p] * d, 0.0) if active[p] > 0.0 else old
+                    change[p] = max(change[p], abs(new - old))
                     x[i, p] = new
-            converged = True
+            remaining = 0
             for p in range(LANES):
-                if change[p] > limit[p]:
-                    converged = False
-            if converged:
+                if change[p] <= limit[p]:
+                    active[p] = 0.0
+                remaining += active[p] > 0.0
+            if remaining == 0:
                 break
-        if not converged:
+        if remaining:
             # Only reachable when rounding stalls the sweeps: solve those pixels exactly.
             for p in range(n):
-                if change[p] > limit[p]:
+                if active[p] > 0.0:
                     handed_over += 1
                     _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges)
     else:
@@ -402,8 +412,8 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
 
 @njit(cache=True)
 def _workspace(m):
-    """Scratch for :func:`_block`: pixels, solution, right-hand side (m rows each) and 3 vectors."""
-    return np.empty((4, max(m, 3), LANES))
+    """Scratch for :func:`_block`: pixels, solution, right-hand side (m rows each) and 4 vectors."""
+    return np.empty((4, max(m, 4), LANES))
 
 
 @njit(cache=True, fastmath=_FAST, error_model="numpy")

@@ -330,6 +330,12 @@ def test_control_problems_name_the_control(tmp_path):
                                           ["other.ome.tiff", "Nd142"]])
     with pytest.raises(InputError, match=r"other.ome.tiff: has other channels than the first control"):
         estimate_from_controls(path)
+    rng = np.random.default_rng(1)
+    counts, _ = spot_control(rng, np.eye(2), 0)
+    write_ome_tiff(tmp_path / "swapped.ome.tiff", counts[::-1].copy(), ["Nd142", "Nd143"])
+    path = write_csv(tmp_path / "f.csv", [["file", "channel"], ["swapped.ome.tiff", "Nd142"]])
+    with pytest.raises(InputError, match=r"swapped.ome.tiff: Nd143 measures as much as the stained channel Nd142"):
+        estimate_from_controls(path)
     (tmp_path / "broken.ome.tiff").write_bytes(b"not a tiff")
     path = write_csv(tmp_path / "e.csv", [["file", "channel"], ["broken.ome.tiff", "Nd142"]])
     with pytest.raises(InputError, match="broken.ome.tiff"):
