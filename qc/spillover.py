@@ -716,13 +716,13 @@ def _csr(matrix: np.ndarray):
 
 
 def _compensate_array(array: np.ndarray, values: np.ndarray, *, method: str, parallel: bool,
-                      out_dtype=np.float32, max_sweeps: int | None = None) -> np.ndarray:
-    """numpy kernel driver; ``out_dtype``/``max_sweeps`` exist for tests."""
+                      max_sweeps: int | None = None, max_exchanges: int = _MAX_EXCHANGES) -> np.ndarray:
+    """numpy kernel driver; ``max_sweeps``/``max_exchanges`` exist to test the fallbacks."""
     n_channels = array.shape[0]
     if array.dtype not in (np.float32, np.float64):
         array = array.astype(np.float32)
     flat = np.ascontiguousarray(array).reshape(n_channels, -1)
-    out = np.empty(flat.shape, dtype=out_dtype)
+    out = np.empty(flat.shape, dtype=np.float32)
     values = np.ascontiguousarray(values, dtype=np.float64)
     components = _components_cached(values.tobytes(), n_channels)
     kernel = _nnls.compensate_parallel if parallel else _nnls.compensate_serial
@@ -733,7 +733,7 @@ def _compensate_array(array: np.ndarray, values: np.ndarray, *, method: str, par
                 continue
             mode = _nnls.MODE_LINEAR if method == "linear" else comp.mode
             sweeps = comp.max_sweeps if max_sweeps is None else max_sweeps
-            kernel(flat, comp.idx, *comp.arrays, out, mode, _SWEEP_TOLERANCE, sweeps, _MAX_EXCHANGES)
+            kernel(flat, comp.idx, *comp.arrays, out, mode, _SWEEP_TOLERANCE, sweeps, max_exchanges)
     return out.reshape(array.shape)
 
 
@@ -891,7 +891,19 @@ def estimate_from_controls(
             replicates = replicates[np.isfinite(replicates)]
             lo, hi = np.quantile(replicates, [alpha, 1.0 - alpha]) if replicates.size else (estimate, estimate)
             values[i, j], low[i, j], high[i, j] = max(estimate, 0.0), max(lo, 0.0), max(hi, 0.0)
-    return SpilloverMatrix(channels, values, low, high)
+    return _rounded(channels, values, low, high)
+
+
+#: Estimates are rounded to this many decimals (1e-4 %): far below their uncertainty,
+#: and it keeps the CSV readable.
+_ESTIMATE_DECIMALS = 6
+
+
+def _rounded(channels, values, low, high) -> SpilloverMatrix:
+    def r(a):
+        return np.round(a, _ESTIMATE_DECIMALS) + 0.0  # + 0.0 turns -0.0 into 0.0
+
+    return SpilloverMatrix(channels, r(values), np.minimum(r(low), r(values)), np.maximum(r(high), r(values)))
 
 
 def _check_bootstrap(n_boot, level, tile) -> None:
@@ -1143,7 +1155,7 @@ def estimate_from_tissue(
             sources_signal = counts if _round == 0 else np.linalg.solve(values.T, counts)
             values, low, high = _tissue_round(counts, sources_signal, pairs, intercepts, tile_of,
                                               roi_of, n_boot, z, max_value, min_value, seed, smooth)
-    return SpilloverMatrix(channels, values, low, high)
+    return _rounded(channels, values, low, high)
 
 
 def _tissue_round(counts, signal, pairs, intercepts, tile_of, roi_of, n_boot, z, max_value, min_value, seed,

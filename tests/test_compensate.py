@@ -122,6 +122,14 @@ def test_sweeps_handing_pixels_to_pivoting_stay_exact(physics):
     np.testing.assert_allclose(out, compensate(stack, s), rtol=1e-5, atol=1e-4)
 
 
+def test_lawson_hanson_last_resort_is_exact(physics):
+    s, stack = physics
+    # no sweeps to speak of and no pivoting exchanges: pixels whose first partition guess
+    # is wrong are solved by Lawson-Hanson from scratch
+    out = _compensate_array(stack, s, method="nnls", parallel=False, max_sweeps=1, max_exchanges=0)
+    assert_matches_scipy(stack, s, out, every=3)
+
+
 def test_kkt_conditions_on_a_full_panel(physics):
     s, stack = physics
     out = compensate(stack, s)
