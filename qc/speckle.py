@@ -733,9 +733,13 @@ def hot_pixels_stack(stack, settings: HotPixelSettings | Sequence[HotPixelSettin
     per_channel = _per_channel(settings, HotPixelSettings, stack.shape[0])
 
     def channel_step(c, image, s, out, removed):
-        return _hot_pixels_dask(image, s) if _is_dask(image) else _hot_pixels_numpy(image, s, out, removed)
+        return _hot_pixels_numpy(image, s, out, removed)
 
-    return _run_stack(stack, per_channel, channel_step, passive={"n_pixels": 0})
+    def block_kernel(c, s):
+        return functools.partial(_hot_pixels_block, parameters=_hot_parameters(s)), HOT_PIXEL_DEPTH, {}
+
+    return _run_stack(stack, per_channel, channel_step, passive={"n_pixels": 0},
+                      block_kernel=block_kernel, count_key="n_pixels")
 
 
 def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] | None = None) -> StepResult:
@@ -782,21 +786,30 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
             backgrounds[c] = _background_from_histogram(np.asarray(histogram), per_channel[c])
 
     def channel_step(c, image, s, out, removed):
-        if _is_dask(image):
-            return _speckle_dask(image, s, backgrounds[c])
         return _speckle_numpy(image, s, None, out, removed)
 
+    def block_kernel(c, s):
+        kernel = functools.partial(_speckle_block, params=_filter_parameters(s, backgrounds[c]))
+        return kernel, speckle_depth(s), _speckle_stats(s, backgrounds[c])
+
     passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None, "n_removed": 0}
-    return _run_stack(stack, per_channel, channel_step, passive=passive)
+    return _run_stack(stack, per_channel, channel_step, passive=passive,
+                      block_kernel=block_kernel, count_key="n_removed")
 
 
-def _run_stack(stack, per_channel: list, channel_step, *, passive: dict) -> StepResult:
-    """Apply ``channel_step(c, channel, settings, out, removed)`` to every enabled channel.
+def _run_stack(stack, per_channel: list, channel_step, *, passive: dict, block_kernel,
+               count_key: str) -> StepResult:
+    """Apply a step to every enabled channel of a numpy or dask stack.
 
-    numpy: the kernels write straight into the planes ``out``/``removed`` of the result
-    stacks, channels in parallel threads (the kernels release the GIL). dask: ``out`` and
-    ``removed`` are None and each channel returns its lazy result.
+    numpy: ``channel_step(c, channel, settings, out, removed)`` writes straight into the
+    planes of the result stacks, channels in parallel threads (the kernels release the GIL).
+    dask: ``block_kernel(c, settings) -> (kernel, depth, stats)`` gives each channel's 2-D
+    block kernel; one ``map_overlap`` over whole (C, y, x) blocks applies them all, with
+    the largest depth any channel needs (a larger halo never changes a kernel's result).
+    One graph over whole blocks keeps memory bounded by a few blocks plus their halos.
     """
+    if _is_dask(stack):
+        return _run_stack_dask(stack, per_channel, block_kernel, passive=passive, count_key=count_key)
     n_channels = stack.shape[0]
 
     def one(c, out=None, removed=None) -> StepResult:
@@ -810,14 +823,6 @@ def _run_stack(stack, per_channel: list, channel_step, *, passive: dict) -> Step
         out[...] = image
         removed[...] = 0.0
         return StepResult(out, removed, stats)
-
-    if _is_dask(stack):
-        import dask.array as da
-
-        results = [one(c) for c in range(n_channels)]
-        cleaned = da.stack([r.image for r in results]).rechunk(stack.chunks)
-        removed = da.stack([r.removed for r in results]).rechunk(stack.chunks)
-        return StepResult(cleaned, removed, [r.stats for r in results])
 
     from threadpoolctl import threadpool_limits
 
@@ -834,6 +839,36 @@ def _run_stack(stack, per_channel: list, channel_step, *, passive: dict) -> Step
         else:
             with ThreadPoolExecutor(max_workers=workers) as pool:
                 stats = list(pool.map(store, range(n_channels)))
+    return StepResult(cleaned, removed, stats)
+
+
+def _run_stack_dask(stack, per_channel: list, block_kernel, *, passive: dict, count_key: str) -> StepResult:
+    chunks = stack.chunks
+    stack = stack.rechunk({0: -1})  # every block holds all channels: kernels index them
+    kernels = [block_kernel(c, s) if s.enabled else None for c, s in enumerate(per_channel)]
+    depth = max((k[1] for k in kernels if k is not None), default=0)
+
+    def apply(block):
+        out = np.empty(block.shape, np.float32)
+        for c, kernel in enumerate(kernels):
+            out[c] = kernel[0](block[c]) if kernel is not None else block[c]
+        return out
+
+    if depth:
+        cleaned = stack.map_overlap(apply, depth={0: 0, 1: depth, 2: depth}, boundary="none",
+                                    dtype=np.float32, meta=np.empty((0, 0, 0), np.float32))
+    else:
+        cleaned = stack
+    removed = stack - cleaned
+    if chunks[0] != stack.chunks[0]:  # dask in, dask out with the caller's chunks
+        cleaned, removed = cleaned.rechunk(chunks), removed.rechunk(chunks)
+    stats = []
+    for c, kernel in enumerate(kernels):
+        if kernel is None:
+            stats.append({"enabled": False, **passive, "removed_fraction": 0.0})
+            continue
+        stats.append({"enabled": True, **kernel[2], count_key: (removed[c] > 0).sum(),
+                      "removed_fraction": _fraction(removed[c], stack[c])})
     return StepResult(cleaned, removed, stats)
 
 

@@ -151,11 +151,17 @@ def _compensation_step(stack, names, recipe: Recipe, spillover, roi: Roi):
     return out, [{"method": settings.method} for _ in names]
 
 
+#: Bytes of one wash chunk (all channels x edge x edge float32): a few chunks and their
+#: halos are in memory at once, so this bounds a lazy wash's memory whatever the stack size.
+CHUNK_BYTES = 16 * 2**20
+
+
 def _as_float32(data, *, tile: int):
     if _is_dask(data):
         n_c, n_y, n_x = data.shape
-        data = data.astype(np.float32).rechunk((n_c, min(tile, n_y), min(tile, n_x)))
-        return data
+        budget = int((CHUNK_BYTES / (4 * n_c)) ** 0.5) // 64 * 64
+        edge = max(64, min(tile, budget))
+        return data.astype(np.float32).rechunk((n_c, min(edge, n_y), min(edge, n_x)))
     return np.asarray(data, dtype=np.float32)
 
 
