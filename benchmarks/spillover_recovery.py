@@ -172,7 +172,7 @@ def main(argv=None) -> int:
         if args.unseen:
             gen = load_generator()
             for k in range(min(args.unseen, len(UNSEEN_PANELS))):
-                state = 9100 + k
+                state = 9300 + k
                 names = UNSEEN_PANELS[k]
                 rng = np.random.default_rng(state)
                 panel = gen.random_panel(names, rng, failed=names[len(names) // 2], dim=names[3],
