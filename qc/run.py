@@ -82,9 +82,6 @@ EXIT_OK, EXIT_SOME_FAILED = 0, 3
 _TEMPORARY_MARKERS = (".partial-", ".spill-", ".old-", ".measure-", ".plexwash-probe-")
 #: Quality-table columns written first, in this order; the others follow as measured.
 QUALITY_FIRST_COLUMNS = ("roi", "channel", "label", "stage", "sbr", "snr", "flags", "sbr_modified_z")
-#: Raw and washed quality are measured side by side when a channel has at most this many
-#: pixels (the measurement holds about 15 float64 copies of one channel, ~120 B a pixel).
-QUALITY_PARALLEL_PIXELS = 2**21
 #: Cohort outliers: modified z-score of log(SBR) per channel and stage, |M| > 3.5
 #: (Iglewicz & Hoaglin 1993; NIST/SEMATECH e-Handbook 1.3.5.17).
 OUTLIER_METRIC, OUTLIER_CUTOFF = "sbr", 3.5
@@ -548,7 +545,7 @@ def wash_one(job: Mapping) -> dict:
         if dask.config.get("pool", None) is None:
             config["num_workers"] = threads
         with dask.config.set(config):
-            record = _wash_and_measure(job, out_dir, written, threads)
+            record = _wash_and_measure(job, out_dir, written)
     except BaseException as exc:
         for path in written:  # a result that is not recorded done is not left under its name
             _remove(path)
@@ -559,7 +556,7 @@ def wash_one(job: Mapping) -> dict:
     return record
 
 
-def _wash_and_measure(job: Mapping, out_dir: Path, written: list, threads: int) -> dict:
+def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     from .io import read_roi, sha256_path
     from .recipe import load_recipe
     from .wash import wash_to_file
@@ -597,7 +594,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list, threads: int) 
     lap("wash_write")
     output_sha256 = sha256_path(target) if job["output"] is not None else None
     lap("hash_output")
-    raw_rows, washed_rows, roi_flags = _measure_quality(roi, target, recipe, matrix, threads=threads)
+    raw_rows, washed_rows, roi_flags = _measure_quality(roi, target, recipe, matrix)
     release_memory()
     lap("quality")
     if job["output"] is None:
@@ -617,12 +614,10 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list, threads: int) 
     return record
 
 
-def _measure_quality(roi, washed_path: Path, recipe, matrix, *, threads: int = 1):
+def _measure_quality(roi, washed_path: Path, recipe, matrix):
     """Quality rows of the raw ROI and of the washed stack as written.
 
-    The two stages are measured side by side in two threads when there are cores to spare
-    and channels are small enough (``QUALITY_PARALLEL_PIXELS``) that two channels' worth
-    of temporaries fit the memory bound; the measurements release the GIL.
+    Raw first, then washed with the raw result as reference (empty verdicts carry over).
     """
     import numpy as np
 
@@ -635,24 +630,15 @@ def _measure_quality(roi, washed_path: Path, recipe, matrix, *, threads: int = 1
     dtype_max = float(np.iinfo(dtype).max) if dtype.kind in "ui" else None
     known = _aligned_matrix(matrix, roi.channels)
     washed_roi = read_roi(washed_path)
-    jobs = (
-        (roi.data, {"spillover": known}),
-        (washed_roi.data, {}),
-    )
 
-    def measure(item):
-        stack, extra = item
+    def measure(stack, **extra):
         return measure_stack(stack, roi.channels, settings=settings, channel_settings=per_channel,
                              dtype_max=dtype_max, **extra)
 
-    _, n_y, n_x = roi.shape
-    if threads >= 2 and n_y * n_x <= QUALITY_PARALLEL_PIXELS:
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(2, thread_name_prefix="plexwash-quality") as pool:
-            raw, washed = pool.map(measure, jobs)
-    else:
-        raw, washed = (measure(item) for item in jobs)
+    # The washed stage is judged against the raw one: a wash removes signal and cannot
+    # create a stain, so a channel empty in raw stays empty (quality.measure_stack notes).
+    raw = measure(roi.data, spillover=known)
+    washed = measure(washed_roi.data, reference=raw)
     rows = []
     for stage, result in (("raw", raw), ("washed", washed)):
         stage_rows = quality_rows(result, roi=roi.name, stage=stage)
