@@ -10,7 +10,7 @@ invertible and close to the identity. Its normal equations use ``G = A^T A`` and
 
 Two exact solvers:
 
-``_sweep_block`` — projected Gauss–Seidel on the normal equations (exact coordinate
+Sweeps (``_block`` in sweep mode) — projected Gauss–Seidel on the normal equations (exact coordinate
 descent; Franc, Hlavac & Navara, CAIP 2005, for NNLS). When the Jacobi map ``x_i <-
 max(0, (b_i - sum_{j != i} G_ij x_j) / G_ii)`` is a max-norm contraction with factor
 ``rho = max_i sum_{j != i} |G_ij| / G_ii < 1``, the Gauss–Seidel map is one too, with the
@@ -23,9 +23,11 @@ pixels at once with the pixel index innermost: every operation is a long vector
 operation over pixels, following the sparse pattern of ``G`` (the same for all pixels),
 and the cost per pixel is a few times ``nnz(G)`` multiply-adds. Channels are swept in
 the order of a greedy colouring of the spillover graph (like red-black ordering), which
-converges a little faster than mass order.
+converges a little faster than mass order. Each pixel stops at the end of its own first
+quiet sweep and is frozen from then on, so its result does not depend on the other
+pixels of its block: chunking a stack changes no bit of the output.
 
-``_pixel_bpp`` — for matrices that are not contractions (``rho >= 0.5``, strong
+Pivoting (``_pixel_bpp``) — for matrices that are not contractions (``rho >= 0.5``, strong
 spillover) and as a fallback: with ``x0 = A^-1 y`` the objective is ``(x - x0)^T G (x -
 x0)``, and the KKT conditions form the linear complementarity problem
 
