@@ -199,3 +199,18 @@ def test_run_exit_code_3_when_an_roi_fails(tmp_path):
     status = {r["roi"]: r["status"] for r in records}
     assert status == {"a": "done", "b": "done", "c": "failed"}
     assert "truncated" in next(r for r in records if r["roi"] == "c")["error"]
+
+
+def test_run_on_demo_flags_failed_stain_empty_raw_and_washed(tmp_path):
+    result = run_cli("run", DEMO / "cohort", "-o", tmp_path / "run", "--quiet",
+                     "--spillover", DEMO / "truth" / "spillover.csv")
+    assert result.returncode == 0, result.stderr
+    import csv
+
+    rows = list(csv.DictReader((tmp_path / "run" / "quality.csv").open()))
+    assert len(rows) == 3 * 22 * 2  # ROI x channel x stage
+    for row in rows:
+        is_failed = row["channel"] == "Tb159"  # the demo's failed stain (example_stack/truth)
+        assert ("empty" in row["flags"].split(";")) == is_failed, row
+    striped = {r["roi"] for r in rows if "striped" in r["flags"].split(";")}
+    assert striped == {"roi_02"}
