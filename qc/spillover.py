@@ -726,7 +726,11 @@ def _compensate_array(array: np.ndarray, values: np.ndarray, *, method: str, par
     values = np.ascontiguousarray(values, dtype=np.float64)
     components = _components_cached(values.tobytes(), n_channels)
     kernel = _nnls.compensate_parallel if parallel else _nnls.compensate_serial
-    with _one_blas_thread(parallel):
+    # Threads take the kernel's tasks one at a time: on a shared machine a thread that
+    # loses its core for a while does not hold back the others.
+    from numba import parallel_chunksize
+
+    with _one_blas_thread(parallel), parallel_chunksize(1):
         for comp in components:
             if comp.mode < 0:
                 np.maximum(flat[comp.idx[0]], 0, out=out[comp.idx[0]], casting="unsafe")
