@@ -153,7 +153,7 @@ def _compensation_step(stack, names, recipe: Recipe, spillover, roi: Roi):
 
 #: Bytes of one wash chunk (all channels x edge x edge float32): a few chunks and their
 #: halos are in memory at once, so this bounds a lazy wash's memory whatever the stack size.
-CHUNK_BYTES = 16 * 2**20
+CHUNK_BYTES = 64 * 2**20
 
 
 def _as_float32(data, *, tile: int):
