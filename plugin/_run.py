@@ -45,6 +45,9 @@ class CancellableCall:
         self._lock = threading.Lock()
         self._thread: int | None = None
         self.cancelled = False
+        #: Also set on cancel: ``run_cohort(cancel=...)`` stops after the ROI in flight even
+        #: when CPython swallows the asynchronous interrupt (e.g. inside a finaliser).
+        self.event = threading.Event()
 
     def __call__(self, function, *args, **kwargs):
         try:
@@ -72,6 +75,7 @@ class CancellableCall:
             if self.cancelled:
                 return False
             self.cancelled = True
+            self.event.set()
             if self._thread is None:
                 return False
             _async_raise(self._thread, KeyboardInterrupt)
@@ -195,7 +199,7 @@ class RunWidget(StudioWidget):
         @thread_worker
         def job():
             return call(run_cohort, cohort, out, recipe=recipe, spillover=spillover, panel=panel,
-                        workers=workers, progress=False)
+                        workers=workers, progress=False, cancel=call.event)
 
         self.run_button.setEnabled(False)
         self.cancel_button.setEnabled(True)

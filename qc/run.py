@@ -130,7 +130,7 @@ class RunSummary:
 
 
 def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, workers=None,
-               scheduler=None, progress=True) -> RunSummary:
+               scheduler=None, progress=True, cancel=None) -> RunSummary:
     """Wash every ROI of a cohort folder into a run folder, resuming an earlier run.
 
     Parameters
@@ -152,6 +152,9 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
     progress : bool
         Show progress on stderr (a bar on a terminal, timestamped lines otherwise).
         ``run.log`` is always written.
+    cancel : threading.Event, optional
+        When set (e.g. by a GUI's Cancel button), the run stops after the ROI in flight,
+        exactly as on Ctrl-C (``KeyboardInterrupt``; finished ROIs stay recorded).
 
     Returns
     -------
@@ -210,7 +213,7 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
                     else:
                         failed.append(record["roi"])
                     log.finished(record)
-                    if stop.is_set():
+                    if stop.is_set() or (cancel is not None and cancel.is_set()):
                         raise KeyboardInterrupt("interrupted")
         except KeyboardInterrupt:
             # the workers are stopped by now: outputs they finished but that were not recorded

@@ -587,3 +587,25 @@ def test_run_demo_on_a_generated_stack(cohort, tmp_path):
     assert (tmp_path / "demo" / "report.html").is_file()
     with pytest.raises(InputError, match="demo data not found"):
         run_demo(tmp_path / "none", stack=tmp_path / "missing", progress=False)
+
+
+def test_cancel_event_stops_after_the_roi_in_flight(tmp_path):
+    import threading
+
+    import numpy as np
+
+    from plexwash.qc.io import write_ome_tiff
+    from plexwash.qc.run import read_ledger, run_cohort
+
+    cohort = tmp_path / "cohort"
+    cohort.mkdir()
+    stack = np.random.default_rng(3).poisson(2.0, (2, 48, 48)).astype(np.uint16)
+    for name in ("a", "b", "c"):
+        write_ome_tiff(cohort / f"{name}.ome.tiff", stack, ["Nd145", "Nd146"])
+    cancel = threading.Event()
+    cancel.set()  # as if Cancel was pressed while the first ROI was washing
+    with pytest.raises(KeyboardInterrupt):
+        run_cohort(cohort, tmp_path / "run", progress=False, cancel=cancel)
+    assert [r["roi"] for r in read_ledger(tmp_path / "run")] == ["a"]
+    summary = run_cohort(cohort, tmp_path / "run", progress=False)  # a rerun resumes
+    assert (summary.done, summary.skipped) == (2, 1)
