@@ -593,7 +593,6 @@ def test_cancel_event_stops_after_the_roi_in_flight(tmp_path):
     import threading
 
     import numpy as np
-
     from plexwash.qc.io import write_ome_tiff
     from plexwash.qc.run import read_ledger, run_cohort
 
