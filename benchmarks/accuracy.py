@@ -16,19 +16,13 @@ Run: python benchmarks/accuracy.py [--cohort example_stack]
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import statistics
 import sys
 from pathlib import Path
 
+from _common import load_example
+
 ROOT = Path(__file__).resolve().parents[1]
-
-
-def _score_module():
-    spec = importlib.util.spec_from_file_location("plexwash_demo_score", ROOT / "example_stack" / "score.py")
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
 
 
 def main(argv=None) -> int:
@@ -41,7 +35,7 @@ def main(argv=None) -> int:
     from plexwash.qc.spillover import read_spillover
     from plexwash.qc.wash import wash
 
-    score = _score_module()
+    score = load_example("score")
     matrix = read_spillover(args.cohort / "truth" / "spillover.csv")
     recipe = default_recipe()
     print(f"{'roi':8} {'speckle':>8} {'hot':>8} {'retain med':>10} {'retain min':>16} "

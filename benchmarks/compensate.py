@@ -21,13 +21,13 @@ from __future__ import annotations
 
 import argparse
 import os
-import statistics
 import sys
 import time
 
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import numpy as np  # noqa: E402
+from _common import median_time
 from plexwash.qc.spillover import compensate, plausible_pairs  # noqa: E402
 from scipy.optimize import nnls  # noqa: E402
 
@@ -75,15 +75,6 @@ def count_stack(s: np.ndarray, size: int, rng) -> np.ndarray:
         mean = np.tensordot(s[:, j], x, axes=(0, 0))
         stack[j] = rng.poisson(mean)
     return stack
-
-
-def median_time(fn, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
 
 
 def main(argv=None) -> int:

@@ -17,7 +17,6 @@ see which part holds the memory.
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import json
 import os
 import resource
@@ -28,6 +27,8 @@ import tempfile
 import textwrap
 import time
 from pathlib import Path
+
+from _common import load_generator
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -98,14 +99,6 @@ _BREAKDOWN_CHILD = textwrap.dedent("""
     part("report thumbnails", t)
     print(json.dumps(parts))
 """)
-
-
-def load_generator():
-    spec = importlib.util.spec_from_file_location("plexwash_demo_generate",
-                                                  ROOT / "example_stack" / "generate.py")
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
 
 
 def build_stack(folder: Path, *, channels: int, size: int) -> tuple[Path, Path, int]:

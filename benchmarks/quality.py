@@ -20,37 +20,19 @@ the verdicts against the generator's truth.
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import os
-import statistics
-import time
 import tracemalloc
 from pathlib import Path
 
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import numpy as np  # noqa: E402
+from _common import load_generator, median_time
 from plexwash.qc.quality import measure_stack  # noqa: E402
 from scipy import ndimage  # noqa: E402
 from skimage.filters import threshold_otsu  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
-
-
-def _generator():
-    spec = importlib.util.spec_from_file_location("demo_generate", ROOT / "example_stack" / "generate.py")
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
-def _median_time(fn, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
 
 
 def _split_only(stack):
@@ -71,7 +53,7 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=2026)
     args = parser.parse_args()
 
-    gen = _generator()
+    gen = load_generator()
     panel = gen.default_panel()
     names = [m.channel for m in panel]
     spill = gen.build_spillover(names, np.random.default_rng([args.seed, 0]))
@@ -85,9 +67,9 @@ def main() -> None:
     print(f"empty verdicts wrong: {wrong or 'none'}; striped rows found {result.striped_rows}, "
           f"true {tuple(int(r) for r in truth['striped_rows'])}")
 
-    t_measure = _median_time(lambda: measure_stack(stack, names), args.repeats)
-    t_split = _median_time(lambda: _split_only(stack), args.repeats)
-    t_read = _median_time(lambda: _read_once(stack), args.repeats)
+    t_measure = median_time(lambda: measure_stack(stack, names), args.repeats)
+    t_split = median_time(lambda: _split_only(stack), args.repeats)
+    t_read = median_time(lambda: _read_once(stack), args.repeats)
 
     tracemalloc.start()
     measure_stack(stack, names)

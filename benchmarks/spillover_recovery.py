@@ -21,7 +21,6 @@ Tissue (:func:`estimate_from_tissue`, all ROIs of the cohort pooled):
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import json
 import os
 import sys
@@ -32,6 +31,7 @@ from pathlib import Path
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import numpy as np  # noqa: E402
+from _common import load_generator  # noqa: E402
 from plexwash.qc.spillover import (  # noqa: E402
     estimate_from_controls,
     estimate_from_tissue,
@@ -54,13 +54,6 @@ UNSEEN_PANELS = (
      "Dy163", "Dy164", "Ho165", "Er166", "Er167", "Er168", "Tm169", "Er170", "Yb171", "Yb172",
      "Yb173", "Yb174", "Lu175", "Yb176", "Ir191", "Ir193"],
 )
-
-
-def load_generator():
-    spec = importlib.util.spec_from_file_location("plexwash_demo_generate", DEMO / "generate.py")
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
 
 
 def truth_matrix(folder: Path, channels) -> np.ndarray:

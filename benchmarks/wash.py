@@ -19,7 +19,6 @@ The ratio wash / floor is the figure of merit (target <= 3x, must be < 4x).
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import os
 import shutil
 import statistics
@@ -30,16 +29,9 @@ from pathlib import Path
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import numpy as np  # noqa: E402
+from _common import load_generator
 
 ROOT = Path(__file__).resolve().parents[1]
-
-
-def load_generator():
-    spec = importlib.util.spec_from_file_location("plexwash_demo_generate",
-                                                  ROOT / "example_stack" / "generate.py")
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
 
 
 def channel_names(n: int) -> list[str]:
