@@ -29,6 +29,8 @@ import time
 from pathlib import Path
 
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+# tests import this file by path: make its sibling _common importable either way
+sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 import numpy as np  # noqa: E402
 from _common import load_generator  # noqa: E402
