@@ -203,14 +203,16 @@ def _read_csv_rows(path: Path, *, required: Sequence[str]) -> list[tuple[int, di
     return rows
 
 
-def _refuse_duplicates(path: Path, names: Sequence[str], what: str) -> None:
+def _refuse_duplicates(path, names: Sequence[str], what: str, *,
+                       message: str = "duplicate {what} name(s): {names}") -> None:
+    """Raise InputError naming every name that occurs more than once, in first-seen order."""
     seen, dups = set(), []
     for name in names:
         if name in seen and name not in dups:
             dups.append(name)
         seen.add(name)
     if dups:
-        raise InputError(path, f"duplicate {what} name(s): {', '.join(dups)}")
+        raise InputError(path, message.format(what=what, names=", ".join(dups)))
 
 
 def _apply_panel(path: Path, channels: tuple[str, ...] | None, n_channels: int, panel: Panel):

@@ -236,13 +236,9 @@ def _read_matrix_csv(path: Path, *, channels: tuple[str, ...] | None = None):
 
 
 def _refuse_duplicate_names(path, names: Sequence[str], what: str) -> None:
-    seen, repeated = set(), []
-    for name in names:
-        if name in seen and name not in repeated:
-            repeated.append(name)
-        seen.add(name)
-    if repeated:
-        raise InputError(path, f"channel named twice ({what}s): {', '.join(repeated)}")
+    from .io import _refuse_duplicates
+
+    _refuse_duplicates(path, names, what, message="channel named twice ({what}s): {names}")
 
 
 def write_spillover(path: str | Path, matrix: SpilloverMatrix, *, heatmap: str | Path | None = None) -> Path:
