@@ -31,6 +31,10 @@ class Cancelled:
         return "Cancelled()"
 
 
+#: Seconds a cancelled call may take to stop by itself before it is interrupted.
+INTERRUPT_GRACE_S = 2.0
+
+
 class CancellableCall:
     """Run a blocking call in a worker thread that :meth:`cancel` can interrupt.
 
@@ -78,8 +82,18 @@ class CancellableCall:
             self.event.set()
             if self._thread is None:
                 return False
-            _async_raise(self._thread, KeyboardInterrupt)
-            return True
+        # The run stops by itself at its next ROI (the event); the interrupt only follows
+        # after a grace period, for an ROI that takes long. Sent at once it could land in
+        # the middle of an import at the start of the call and leave it stuck.
+        timer = threading.Timer(INTERRUPT_GRACE_S, self._interrupt)
+        timer.daemon = True
+        timer.start()
+        return True
+
+    def _interrupt(self):
+        with self._lock:
+            if self._thread is not None:
+                _async_raise(self._thread, KeyboardInterrupt)
 
 
 def _async_raise(thread_id: int, exc_type) -> None:
