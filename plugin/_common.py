@@ -79,6 +79,9 @@ class StudioWidget(QWidget):
             worker.yielded.connect(self.guarded(on_yield))
         worker.errored.connect(self.guarded(on_error or self.fail))
         worker.finished.connect(lambda: self._workers.discard(worker))
+        # connected before start, so it can't be missed however fast the worker is; it runs
+        # after the handlers above (Qt calls slots in connection order)
+        worker.finished.connect(lambda: setattr(worker, "finished_handled", True))
         worker.start()
         return worker
 

@@ -47,8 +47,9 @@ def dock(viewer, title):
 def wait(qtbot, worker):
     """Wait for a napari worker to finish (its result handlers have run by then)."""
     assert worker is not None
-    with qtbot.waitSignal(worker.finished, timeout=WAIT_MS):
-        pass
+    # a flag set by a slot connected before the worker started: a worker that finishes
+    # before this call (a run cancelled at once) would make waitSignal miss its signal
+    qtbot.waitUntil(lambda: getattr(worker, "finished_handled", False), timeout=WAIT_MS)
 
 
 def open_first_roi(qtbot, viewer, cohort):
