@@ -19,7 +19,6 @@ import tempfile
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator, Sequence
 from pathlib import Path
-from typing import NamedTuple
 
 import numpy as np
 
@@ -31,6 +30,9 @@ LAZY_BYTES = 128 * 2**20
 #: Output stacks bigger than this are spilled through a temporary zarr store instead of
 #: being computed in memory, so memory stays bounded by chunks.
 IN_MEMORY_WRITE_BYTES = 256 * 2**20
+#: Tiles tifffile gathers before compressing them in parallel (its default is 512 MB,
+#: which for a big stack written tile by tile would hold most of it in memory).
+WRITE_BUFFER_BYTES = 32 * 2**20
 
 SUPPORTED_DTYPES = (np.uint8, np.uint16, np.uint32, np.int16, np.int32, np.float32, np.float64)
 TIFF_SUFFIXES = (".ome.tiff", ".ome.tif", ".tiff", ".tif")
@@ -269,7 +271,7 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     --------
     >>> import numpy as np, tempfile, pathlib
     >>> path = pathlib.Path(tempfile.mkdtemp()) / "tiny.ome.tiff"
-    >>> write_ome_tiff(path, np.ones((2, 8, 8), np.float32), ["Nd145", "Ir191"])
+    >>> _ = write_ome_tiff(path, np.ones((2, 8, 8), np.float32), ["Nd145", "Ir191"])
     >>> roi = read_roi(path)
     >>> roi.channels, roi.shape
     (('Nd145', 'Ir191'), (2, 8, 8))
@@ -585,23 +587,16 @@ def write_text_atomic(path: str | Path, text: str) -> None:
     _replace(tmp, path)
 
 
-class Written(NamedTuple):
-    """What a writer returns: the final path and the values computed alongside the pixels."""
-
-    path: Path
-    extra: list
-
-
-def write_stack(path, data, channels, *, pixel_size=None, settings=None, compute_with=()) -> Written:
+def write_stack(path, data, channels, *, pixel_size=None, settings=None) -> Path:
     """Write a stack in the format of ``settings`` (an :class:`OutputSettings`).
 
-    ``compute_with`` holds dask values (e.g. per-channel sums) to compute in the same
-    pass as the pixels, so a lazy pipeline runs once; they come back in ``extra``.
+    ``data`` is a numpy array, a dask array (computed chunk by chunk) or any array store
+    that can be sliced ``data[c, y0:y1, x0:x1]`` (a zarr array, a staged stack), read
+    band by band. Returns the final path.
     """
     settings = settings or OutputSettings()
     writer = write_ome_zarr if settings.format == "ome-zarr" else write_ome_tiff
-    return writer(path, data, channels, pixel_size=pixel_size, settings=settings,
-                  compute_with=compute_with)
+    return writer(path, data, channels, pixel_size=pixel_size, settings=settings)
 
 
 def output_name(stem: str, settings=None) -> str:
@@ -616,17 +611,18 @@ def output_name(stem: str, settings=None) -> str:
     return stem + (".ome.zarr" if settings.format == "ome-zarr" else ".ome.tiff")
 
 
-def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, compute_with=()) -> Written:
+def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> Path:
     """Write a C x Y x X stack as a tiled, compressed OME-TIFF, atomically.
 
     A dask array is computed chunk by chunk: small stacks in memory, big ones through a
-    temporary zarr store beside the output so memory stays bounded by chunks.
+    temporary zarr store beside the output so memory stays bounded by chunks. An array
+    store (zarr array, staged stack) is read band by band.
 
     Parameters
     ----------
     path : str or Path
         Destination; written under a temporary name and renamed when complete.
-    data : numpy.ndarray or dask.array.Array
+    data : numpy.ndarray, dask.array.Array or array store
         The stack, axes (C, Y, X).
     channels : sequence of str
         Channel names, written to OME-XML ``Channel/@Name``.
@@ -634,8 +630,6 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, comp
         Physical (y, x) pixel size in micrometres.
     settings : OutputSettings, optional
         Compression and tile size.
-    compute_with : sequence of dask values, optional
-        Computed in the same pass as the pixels; returned in ``Written.extra``.
     """
     import tifffile
 
@@ -658,14 +652,14 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, comp
     tmp = _temporary_sibling(path)
     spill_dir = None
     try:
+        kwargs = {"shape": tuple(data.shape), "dtype": np.dtype(data.dtype)}
         if _is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
             spill_dir = Path(tempfile.mkdtemp(prefix=f".{path.name}.spill-", dir=path.parent))
-            source, extra = _spill_to_zarr(data, spill_dir, compute_with)
-            content = _tiles(source, tile)
-            kwargs = {"shape": tuple(data.shape), "dtype": data.dtype}
-        else:
-            content, extra = _compute_in_memory(data, compute_with)
-            kwargs = {}
+            content = _tiles(_spill_to_zarr(data, spill_dir), tile)
+        elif _is_dask(data) or isinstance(data, np.ndarray):
+            content, kwargs = np.asarray(data), {}
+        else:  # an array store: read band by band
+            content = _tiles(data, tile)
         tifffile.imwrite(
             tmp,
             content,
@@ -674,6 +668,7 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, comp
             tile=(tile, tile),
             compression=compression,
             metadata=metadata,
+            buffersize=WRITE_BUFFER_BYTES,
             **kwargs,
         )
         with open(tmp, "rb+") as fh:
@@ -684,16 +679,7 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, comp
             tmp.unlink()
         if spill_dir is not None:
             shutil.rmtree(spill_dir, ignore_errors=True)
-    return Written(path, extra)
-
-
-def _compute_in_memory(data, compute_with):
-    if not _is_dask(data) and not compute_with:
-        return np.asarray(data), []
-    import dask
-
-    content, *extra = dask.compute(data, *compute_with)
-    return np.asarray(content), list(extra)
+    return path
 
 
 def _round_up16(n: int) -> int:
@@ -715,7 +701,7 @@ def _check_stack_shape(path: Path, data, channels: Sequence[str]) -> None:
         raise InputError(path, f"{len(channels)} channel names for {data.shape[0]} channels")
 
 
-def _spill_to_zarr(data, folder: Path, compute_with=()):
+def _spill_to_zarr(data, folder: Path):
     """Compute a dask stack once into an uncompressed local zarr array.
 
     The zarr chunks are one channel by the dask chunk's Y x X, so every dask block
@@ -733,29 +719,28 @@ def _spill_to_zarr(data, folder: Path, compute_with=()):
         compressors=None,
         zarr_format=3,
     )
-    return array, _store(data, array, compute_with)
+    _store(data, array)
+    return array
 
 
-def _store(data, array, compute_with):
-    """Store a dask array into a zarr array, computing ``compute_with`` in the same pass."""
-    import dask
+def _store(data, array) -> None:
+    """Store a dask array into a zarr array (chunks aligned: no lock)."""
     import dask.array as da
 
-    stored = da.store(data, array, lock=False, compute=False)
-    _, *extra = dask.compute(stored, *compute_with)
-    return list(extra)
+    da.store(data, array, lock=False)
 
 
 def _tiles(array, tile: int) -> Iterator[np.ndarray]:
-    """Tiles in TIFF order: channel by channel, then row-major."""
+    """Tiles in TIFF order: channel by channel, then row-major; read one band of rows at a time."""
     n_c, n_y, n_x = array.shape
     for c in range(n_c):
         for y in range(0, n_y, tile):
+            band = np.asarray(array[c, y : y + tile, 0:n_x])
             for x in range(0, n_x, tile):
-                yield np.asarray(array[c, y : y + tile, x : x + tile])
+                yield np.ascontiguousarray(band[:, x : x + tile])
 
 
-def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, compute_with=()) -> Written:
+def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None) -> Path:
     """Write a C x Y x X stack as an OME-Zarr image (NGFF 0.5, Zarr v3), atomically.
 
     Channel names go to ``omero.channels[].label``; chunks are one channel by
@@ -788,17 +773,21 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, comp
             compressors=compressors,
             dimension_names=["c", "y", "x"],
         )
-        if _is_dask(data):
-            extra = _store(data.rechunk(array.chunks), array, compute_with)
+        if isinstance(data, np.ndarray):
+            array[...] = data
         else:
-            array[...] = np.asarray(data)
-            extra = _compute_in_memory(np.zeros(0), compute_with)[1]
+            if not _is_dask(data):  # an array store: read in bands of whole rows
+                import dask.array as da
+
+                data = da.from_array(data, chunks=(1, array.chunks[1], data.shape[2]),
+                                     lock=False, asarray=True, fancy=False)
+            _store(data.rechunk(array.chunks), array)
         group.attrs["ome"] = ngff_metadata(path.name, channels, data, pixel_size)
         _replace(tmp, path)
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
-    return Written(path, extra)
+    return path
 
 
 def ngff_metadata(name: str, channels: Sequence[str], data, pixel_size=None) -> dict:
