@@ -135,20 +135,29 @@ _STEP_FUNCTIONS = {"hot_pixels": _step_hot_pixels, "speckle": _step_speckle}
 
 def _compensation_step(stack, names, recipe: Recipe, spillover, roi: Roi):
     """Compensated stack and per-channel stats, or None when there is no matrix."""
-    settings = recipe.compensation
-    if not settings.enabled:
+    values = _compensation_values(names, recipe, spillover)
+    if values is None:
+        return None
+    from .spillover import compensate
+
+    method = recipe.compensation.method
+    out = compensate(stack, values, method=method)
+    return out, [{"method": method} for _ in names]
+
+
+def _compensation_values(names, recipe: Recipe, spillover):
+    """The spillover matrix over the used channels, or None when compensation does not run."""
+    if not recipe.compensation.enabled:
         return None
     if spillover is None:
         spillover = recipe.spillover_path()
     if spillover is None:
         return None
-    from .spillover import SpilloverMatrix, align_spillover, compensate, read_spillover
+    from .spillover import SpilloverMatrix, align_spillover, read_spillover
 
     source = spillover if isinstance(spillover, (str, Path)) else "spillover matrix"
     matrix = spillover if isinstance(spillover, SpilloverMatrix) else read_spillover(spillover)
-    values = align_spillover(matrix, names, source=source)
-    out = compensate(stack, values, method=settings.method)
-    return out, [{"method": settings.method} for _ in names]
+    return align_spillover(matrix, names, source=source)
 
 
 #: Bytes of one wash chunk (all channels x edge x edge float32): a few chunks and their
@@ -189,13 +198,19 @@ def _expand(sub, used: Sequence[int], n_channels: int, *, original=None, zeros: 
 
 
 def _with_fractions(step_stats, removed_map, before, names, used, all_channels):
+    """Per-channel stats of a step from its removed map and its input (numpy or dask)."""
+    removed_sum = removed_map.sum(axis=(1, 2), dtype=np.float64)
+    input_sum = before.sum(axis=(1, 2), dtype=np.float64)
+    return _step_rows(step_stats, removed_sum, input_sum, names, used, all_channels)
+
+
+def _step_rows(step_stats, removed_sum, input_sum, names, used, all_channels):
     """Per-channel stats (one dict per channel of the ROI) with the removed fraction.
 
-    The fraction is the channel's removed signal over its signal entering the step,
-    so the numbers do not depend on chunking or on the step's own bookkeeping.
+    The fraction is the channel's removed signal over its signal entering the step
+    (sums over the used channels, in their order), so the numbers do not depend on
+    chunking or on the step's own bookkeeping. Dask sums stay lazy until computed.
     """
-    removed_sum = removed_map.sum(axis=(1, 2))
-    input_sum = before.sum(axis=(1, 2))
     rows = []
     k = 0
     for i, name in enumerate(all_channels):
@@ -256,6 +271,11 @@ def compute(washed: Washed) -> Washed:
 def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *, spillover=None) -> dict:
     """Wash one ROI and write it atomically; the pixels and the stats come from one pass.
 
+    A numpy ROI is washed in memory. A lazy (dask) ROI is washed in passes over two
+    staging files beside the output (:mod:`plexwash.qc.staging`), so memory stays at a
+    few single-channel planes per thread whatever the number of channels; the pixels
+    equal those of the in-memory wash.
+
     Returns
     -------
     dict
@@ -267,16 +287,21 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
     out_path = Path(out_path)
     if out_path.exists() and roi.path.exists() and out_path.resolve() == roi.path.resolve():
         raise InputError(out_path, "output path is the input; refusing to overwrite raw data")
+    if _is_dask(roi.data):
+        from .staging import Staging, wash_staged
+
+        recipe.check_channels(roi.channels, roi=roi.path)
+        names = [c for c, u in zip(roi.channels, roi.use, strict=True) if u]
+        values = _compensation_values(names, recipe, spillover)
+        notes: list[str] = []
+        with Staging(out_path) as staging:
+            staged, stats = wash_staged(roi, recipe, values, staging=staging, notes=notes)
+            write_stack(out_path, staged, roi.channels, pixel_size=roi.pixel_size,
+                        settings=recipe.output)
+        return {"output": str(out_path), "seconds": time.perf_counter() - started,
+                "stats": stats, "notes": notes}
     washed = wash(roi, recipe, spillover=spillover)
-    pending = lazy_stats(washed)
-    _, computed = write_stack(out_path, washed.data, washed.channels, pixel_size=washed.pixel_size,
-                           settings=recipe.output, compute_with=pending)
-    values = iter(computed)
-    stats = {}
-    for step, rows in washed.stats.items():
-        done = []
-        for row in rows:
-            done.append({k: (next(values) if _is_dask(v) else v) for k, v in row.items()})
-        stats[step] = finish_stats(done)
+    write_stack(out_path, washed.data, washed.channels, pixel_size=washed.pixel_size,
+                settings=recipe.output)
     return {"output": str(out_path), "seconds": time.perf_counter() - started,
-            "stats": stats, "notes": list(washed.notes)}
+            "stats": washed.stats, "notes": list(washed.notes)}

@@ -53,3 +53,20 @@ def small_roi(tmp_path, small_stack) -> Path:
     path = tmp_path / "small.ome.tiff"
     write_ome_tiff(path, small_stack, ["Nd145", "Nd146", "Ir191"], pixel_size=(0.5, 0.5))
     return path
+
+
+@pytest.fixture(scope="session")
+def unseen():
+    """An ROI and matrix the defaults were never tuned on: other random state, size, panel."""
+    gen = load_generator()
+    rng = np.random.default_rng(90210)
+    names = ["Nd142", "Nd143", "Nd144", "Nd146", "Sm147", "Sm149", "Eu151", "Eu153", "Gd156",
+             "Gd158", "Gd160", "Dy161", "Dy162", "Dy163", "Er166", "Er167", "Yb172", "Ir191"]
+    panel = gen.random_panel(names, rng, failed="Gd158", dim="Dy163", rare="Er167", specks="Gd156")
+    spill = gen.build_spillover(names, rng)
+    counts, truth = gen.simulate_roi(rng, panel, spill, (330, 290))
+    from plexwash.qc.io import Roi
+    from plexwash.qc.spillover import SpilloverMatrix
+
+    roi = Roi(counts, tuple(names), Path("unseen.ome.tiff"))
+    return roi, SpilloverMatrix(tuple(names), spill), truth

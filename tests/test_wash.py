@@ -11,28 +11,14 @@ import pytest
 from plexwash.qc.io import Roi, read_roi
 from plexwash.qc.recipe import default_recipe
 from plexwash.qc.speckle import hot_pixels_stack, speckle_stack
-from plexwash.qc.spillover import SpilloverMatrix, compensate
+from plexwash.qc.spillover import compensate
 from plexwash.qc.wash import STEPS, compute, wash, wash_to_file
 
-from tests.conftest import load_example_module, load_generator
+from tests.conftest import load_example_module
 
 
 def _score():
     return load_example_module("score")
-
-
-@pytest.fixture(scope="module")
-def unseen(request):
-    """An ROI and matrix the defaults were never tuned on: other random state, size, panel."""
-    gen = load_generator()
-    rng = np.random.default_rng(90210)
-    names = ["Nd142", "Nd143", "Nd144", "Nd146", "Sm147", "Sm149", "Eu151", "Eu153", "Gd156",
-             "Gd158", "Gd160", "Dy161", "Dy162", "Dy163", "Er166", "Er167", "Yb172", "Ir191"]
-    panel = gen.random_panel(names, rng, failed="Gd158", dim="Dy163", rare="Er167", specks="Gd156")
-    spill = gen.build_spillover(names, rng)
-    counts, truth = gen.simulate_roi(rng, panel, spill, (330, 290))
-    roi = Roi(counts, tuple(names), Path("unseen.ome.tiff"))
-    return roi, SpilloverMatrix(tuple(names), spill), truth
 
 
 def test_steps_run_in_order_and_removed_maps_add_up(unseen):

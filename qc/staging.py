@@ -1,0 +1,331 @@
+"""Washing a lazy ROI to a file in passes over uncompressed staging files.
+
+A stack larger than memory cannot be washed as one array, and a generic chunked graph
+(each step a ``map_overlap``) keeps the halos of neighbouring chunks of every step
+alive at once: with 50 channels one row of (C, tile, tile) chunks alone is a few
+hundred MB. The steps here do not need that: hot pixels and speckle look at one channel
+at a time, and compensation looks at one pixel (all channels) at a time. So the wash
+runs in passes, each a set of independent dask tasks, over two staging files of float32
+pixels in (C, Y, X) order beside the output:
+
+0. copy: the source is copied into file A as float32, chunk by chunk (only when its
+   chunks hold several channels; a source chunked by channel is read plane by plane
+   in pass 1 directly, so its tiles are decoded once);
+1. hot pixels, one task per channel: the whole plane is read, cleaned, written to A;
+2. compensation, one task per band of rows (all used channels x a few rows x the full
+   width): read from A, NNLS, written to B;
+3. speckle, one task per channel: the whole compensated plane (B) is read, its
+   background estimated from the whole plane and the filter applied; written to A,
+   whose content is no longer needed after pass 2.
+
+A then holds the washed stack and is written to the output (OME-TIFF tiles or OME-Zarr
+chunks) band by band. Every pass works on whole planes or on whole pixels, as the
+in-memory wash does, so the pixels are bit for bit those of :func:`plexwash.qc.wash` on
+the same stack, whatever the chunking. The removed-signal sums of each step come from
+the same passes.
+
+Memory is a few planes of one channel per thread (16 MB for 2000 x 2000 float32),
+whatever the number of channels; disk is two float32 copies of the stack, in a hidden
+``.NAME.spill-*`` folder beside the output that is removed when the wash ends (a run
+sweeps leftovers of a killed one).
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+import threading
+from pathlib import Path
+
+import numpy as np
+
+#: Bytes of one compensation band (all used channels x rows x full width, float32).
+BAND_BYTES = 8 * 2**20
+#: Bytes the planes in flight in one pass may take: a pass runs at most
+#: ``STAGE_WORKING_BYTES // (copies x plane bytes)`` channels at once (and never more
+#: than dask's threads), so a 2000 x 2000 ROI's speckle pass runs one channel at a time.
+STAGE_WORKING_BYTES = 96 * 2**20
+#: Plane-sized float32 arrays a task of pass 1 (plane, cleaned, removed) and of pass 3
+#: (plus the uint16 window counts) holds.
+HOT_COPIES, SPECKLE_COPIES = 3.0, 3.5
+
+_ITEM = np.dtype(np.float32).itemsize
+
+
+class StagedStack:
+    """A (C, Y, X) float32 stack in one uncompressed file, read and written in pieces.
+
+    Reads and writes go through ``os.preadv``/``os.pwritev`` (no memory map, so the
+    pages never count towards the process's memory), from any number of threads; two
+    writers must not touch the same pixels.
+
+    Supports ``stack[c]``, ``stack[c, y0:y1, x0:x1]`` and ``stack[c0:c1, y0:y1,
+    x0:x1]`` for reading (what tile writers and ``dask.array.from_array`` ask for) and
+    assignment of the same for ``dask.array.store``.
+    """
+
+    dtype = np.dtype(np.float32)
+    ndim = 3
+
+    def __init__(self, path: str | Path, shape: tuple[int, int, int]):
+        self.path = Path(path)
+        self.shape = tuple(int(n) for n in shape)
+        self._fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
+        os.ftruncate(self._fd, int(np.prod(self.shape)) * _ITEM)
+        self._lock = threading.Lock() if not hasattr(os, "preadv") else None
+
+    def close(self) -> None:
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+    # -- offsets
+    def _offset(self, c: int, y: int, x: int = 0) -> int:
+        _, n_y, n_x = self.shape
+        return ((c * n_y + y) * n_x + x) * _ITEM
+
+    def _io(self, buffer: np.ndarray, offset: int, write: bool) -> None:
+        view = memoryview(buffer).cast("B")
+        done = 0
+        while done < len(view):  # a call may move fewer bytes than asked
+            part = view[done:]
+            if self._lock is None:
+                n = (os.pwritev if write else os.preadv)(self._fd, [part], offset + done)
+            else:  # pragma: no cover - platforms without preadv (Windows)
+                with self._lock:
+                    os.lseek(self._fd, offset + done, os.SEEK_SET)
+                    n = os.write(self._fd, part) if write else os.readv(self._fd, [part])
+            if n <= 0:
+                raise OSError(f"{self.path}: short {'write' if write else 'read'}")
+            done += n
+
+    # -- planes and bands
+    def read_rows(self, channels, y0: int, y1: int) -> np.ndarray:
+        """``stack[channels, y0:y1, :]`` as a new array (one read per channel)."""
+        channels = list(channels)
+        out = np.empty((len(channels), y1 - y0, self.shape[2]), np.float32)
+        for k, c in enumerate(channels):
+            self._io(out[k], self._offset(c, y0), write=False)
+        return out
+
+    def write_rows(self, channels, y0: int, rows: np.ndarray) -> None:
+        """Store ``rows`` (len(channels), n, X) at rows ``y0:y0+n`` of those channels."""
+        rows = np.ascontiguousarray(rows, np.float32)
+        for k, c in enumerate(channels):
+            self._io(rows[k], self._offset(c, y0), write=True)
+
+    def read_plane(self, c: int) -> np.ndarray:
+        return self.read_rows([c], 0, self.shape[1])[0]
+
+    def write_plane(self, c: int, plane: np.ndarray) -> None:
+        self.write_rows([c], 0, np.asarray(plane)[None])
+
+    # -- array protocol (reading and ``dask.array.store``)
+    def _region(self, key):
+        if not isinstance(key, tuple):
+            key = (key,)
+        key = key + (slice(None),) * (3 - len(key))
+        squeeze = isinstance(key[0], (int, np.integer))
+        c = slice(int(key[0]), int(key[0]) + 1) if squeeze else key[0]
+        bounds = [s.indices(n) for s, n in zip((c, key[1], key[2]), self.shape, strict=True)]
+        if any(step != 1 for _, _, step in bounds):
+            raise IndexError("StagedStack supports unit-step slices only")
+        return [(start, max(start, stop)) for start, stop, _ in bounds], squeeze
+
+    def __getitem__(self, key) -> np.ndarray:
+        (c0, c1), (y0, y1), (x0, x1) = (region := self._region(key))[0]
+        if x0 == 0 and x1 == self.shape[2]:
+            out = self.read_rows(range(c0, c1), y0, y1)
+        else:
+            out = np.empty((c1 - c0, y1 - y0, x1 - x0), np.float32)
+            for k, c in enumerate(range(c0, c1)):
+                for y in range(y0, y1):
+                    self._io(out[k, y - y0], self._offset(c, y, x0), write=False)
+        return out[0] if region[1] else out
+
+    def __setitem__(self, key, value) -> None:
+        (c0, c1), (y0, y1), (x0, x1) = self._region(key)[0]
+        value = np.broadcast_to(np.asarray(value, np.float32), (c1 - c0, y1 - y0, x1 - x0))
+        if x0 == 0 and x1 == self.shape[2]:
+            self.write_rows(range(c0, c1), y0, value)
+            return
+        for k, c in enumerate(range(c0, c1)):
+            for y in range(y0, y1):
+                self._io(np.ascontiguousarray(value[k, y - y0]), self._offset(c, y, x0), write=True)
+
+    def __array__(self, dtype=None, copy=None):
+        return self.read_rows(range(self.shape[0]), 0, self.shape[1]).astype(dtype or np.float32,
+                                                                             copy=False)
+
+
+class Staging:
+    """A hidden ``.NAME.spill-*`` folder beside ``out_path`` for staging files; removed on exit."""
+
+    def __init__(self, out_path: Path):
+        out_path.parent.mkdir(parents=True, exist_ok=True)
+        self.folder = Path(tempfile.mkdtemp(prefix=f".{out_path.name}.spill-", dir=out_path.parent))
+        self._stacks: list[StagedStack] = []
+
+    def stack(self, name: str, shape) -> StagedStack:
+        staged = StagedStack(self.folder / f"{name}.f32", shape)
+        self._stacks.append(staged)
+        return staged
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        for staged in self._stacks:
+            staged.close()
+        shutil.rmtree(self.folder, ignore_errors=True)
+
+
+# ----------------------------------------------------------------------------- the passes
+
+
+def band_rows(n_channels: int, width: int, height: int) -> int:
+    """Rows per compensation band: about ``BAND_BYTES`` of float32 for the used channels."""
+    rows = BAND_BYTES // max(1, n_channels * width * _ITEM)
+    return int(min(max(rows, 1), height))
+
+
+def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[StagedStack, dict]:
+    """Wash a lazy ROI into a staged stack; return it and the per-step stats rows.
+
+    ``values`` is the spillover matrix aligned to the used channels (None: no
+    compensation). The stats rows are those of the in-memory wash (see
+    ``wash._step_rows``), with sums accumulated over planes and bands.
+    """
+    import dask
+
+    from .speckle import hot_pixels_stack, speckle_stack
+    from .wash import _step_rows
+
+    n_c, n_y, n_x = (int(n) for n in roi.data.shape)
+    used = [i for i, u in enumerate(roi.use) if u]
+    names = [roi.channels[i] for i in used]
+    hot = recipe.for_channels("hot_pixels", names)
+    speckle = recipe.for_channels("speckle", names)
+    run_hot = any(s.enabled for s in hot)
+    run_speckle = any(s.enabled for s in speckle)
+    settings_of = dict(zip(used, zip(hot, speckle, strict=True), strict=True))
+
+    a = staging.stack("a", (n_c, n_y, n_x))
+    by_channel = len(roi.data.chunks[0]) == n_c  # one channel per source chunk
+    if not by_channel:
+        import dask.array as da
+
+        dask.compute(da.store(roi.data.astype(np.float32), a, lock=False, compute=False))
+
+    def source_plane(c):
+        if not by_channel:
+            return a.read_plane(c)
+        import dask.array as da
+
+        plane = np.empty((n_y, n_x), np.float32)  # chunks land in place: no concatenation
+        da.store(roi.data[c].astype(np.float32), plane, lock=False, scheduler="synchronous")
+        return plane
+
+    # pass 1: hot pixels (and the float32 copy of pass-through channels)
+    def pass_hot(c):
+        plane = source_plane(c)
+        if c not in settings_of or not run_hot:
+            if by_channel:
+                a.write_plane(c, plane)
+            return None
+        cleaned, removed, stats = hot_pixels_stack(plane[None], [settings_of[c][0]])
+        a.write_plane(c, cleaned[0])
+        return stats[0], _sums(removed, plane[None])
+
+    plane_bytes = n_y * n_x * _ITEM
+    hot_results = _in_chains(pass_hot, range(n_c), _chains(HOT_COPIES * plane_bytes))
+    stats = {}
+    if run_hot:
+        stats["hot_pixels"] = _step_rows([hot_results[c][0] for c in used],
+                                         *_stacked([hot_results[c][1] for c in used]),
+                                         names, used, roi.channels)
+
+    # pass 2: compensation, band by band
+    current = a
+    if values is not None:
+        from .spillover import _compensate_array
+
+        b = staging.stack("b", (n_c, n_y, n_x))
+        rows = band_rows(len(used), n_x, n_y)
+        method = recipe.compensation.method
+
+        def pass_compensate(y0):
+            y1 = min(y0 + rows, n_y)
+            band = a.read_rows(used, y0, y1)
+            out = _compensate_array(band, values, method=method, parallel=False)
+            b.write_rows(used, y0, out)
+            return _sums(band - out, band)
+
+        sums = dask.compute(*[dask.delayed(pass_compensate, pure=False)(y) for y in range(0, n_y, rows)])
+        removed_sum = np.sum([s[0] for s in sums], axis=0)
+        input_sum = np.sum([s[1] for s in sums], axis=0)
+        stats["compensation"] = _step_rows([{"method": method} for _ in used], removed_sum, input_sum,
+                                           names, used, roi.channels)
+        current = b
+    else:
+        notes.append("compensation skipped: no spillover matrix given")
+
+    # pass 3: speckle, channel by channel on whole planes; the result goes to A
+    def pass_speckle(c):
+        plane = current.read_plane(c)
+        if not run_speckle:
+            a.write_plane(c, plane)
+            return None
+        cleaned, removed, step_stats = speckle_stack(plane[None], [settings_of[c][1]])
+        a.write_plane(c, cleaned[0])
+        return step_stats[0], _sums(removed, plane[None])
+
+    if run_speckle or current is not a:
+        results = _in_chains(pass_speckle, used, _chains(SPECKLE_COPIES * plane_bytes))
+        if run_speckle:
+            stats["speckle"] = _step_rows([r[0] for r in results], *_stacked([r[1] for r in results]),
+                                          names, used, roi.channels)
+    return a, stats
+
+
+def _chains(task_bytes: float) -> int:
+    """How many tasks of ``task_bytes`` may run at once within ``STAGE_WORKING_BYTES``."""
+    return int(max(1, STAGE_WORKING_BYTES // max(task_bytes, 1)))
+
+
+def _in_chains(function, items, chains: int) -> list:
+    """``[function(i) for i in items]`` as ``chains`` dask tasks, each doing its items in turn.
+
+    dask runs at most as many tasks at once as it has threads; chains bound it further,
+    so memory stays at ``chains`` tasks' worth whatever the thread count.
+    """
+    import dask
+
+    items = list(items)
+    chains = max(1, min(chains, len(items)))
+    groups = [items[k::chains] for k in range(chains)]
+
+    def run(group):
+        return [function(i) for i in group]
+
+    done = dask.compute(*[dask.delayed(run, pure=False)(g) for g in groups])
+    results = {}
+    for group, values in zip(groups, done, strict=True):
+        results.update(zip(group, values, strict=True))
+    return [results[i] for i in items]
+
+
+def _sums(removed: np.ndarray, before: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-channel removed and input sums (float64) of a (C, y, x) piece."""
+    return (removed.sum(axis=(1, 2), dtype=np.float64), before.sum(axis=(1, 2), dtype=np.float64))
+
+
+def _stacked(pairs) -> tuple[np.ndarray, np.ndarray]:
+    return np.concatenate([p[0] for p in pairs]), np.concatenate([p[1] for p in pairs])

@@ -1,0 +1,134 @@
+"""The staged wash of lazy ROIs: its files, its passes, and equality with the in-memory wash."""
+
+from __future__ import annotations
+
+import dask.array as da
+import numpy as np
+import pytest
+from plexwash.qc import staging
+from plexwash.qc.io import Roi, read_roi
+from plexwash.qc.recipe import default_recipe
+from plexwash.qc.staging import StagedStack, Staging, band_rows
+from plexwash.qc.wash import STEPS, wash, wash_to_file
+
+
+def _lazy(roi, chunks):
+    return Roi(da.from_array(roi.data, chunks=chunks), roi.channels, roi.path, roi.labels, roi.use)
+
+
+def _same_stats(result, eager):
+    assert set(result["stats"]) == set(eager.stats)
+    for step in eager.stats:
+        for got, want in zip(result["stats"][step], eager.stats[step], strict=True):
+            assert got["channel"] == want["channel"] and got["ran"] == want["ran"]
+            assert got["removed_fraction"] == pytest.approx(want["removed_fraction"], rel=1e-6, abs=1e-12)
+            for key in ("n_pixels", "n_removed", "rate", "count_threshold", "method"):
+                assert got.get(key) == want.get(key), (step, key)
+
+
+# --------------------------------------------------------------------------- the staging file
+
+
+def test_staged_stack_reads_back_what_was_written(tmp_path):
+    rng = np.random.default_rng(3)
+    data = rng.normal(size=(4, 37, 29)).astype(np.float32)
+    staged = StagedStack(tmp_path / "s.f32", data.shape)
+    # written through dask.array.store, in chunks that cut rows and columns (reference: numpy)
+    da.store(da.from_array(data, chunks=(3, 10, 8)), staged, lock=False)
+    np.testing.assert_array_equal(np.asarray(staged), data)
+    np.testing.assert_array_equal(staged[2], data[2])
+    np.testing.assert_array_equal(staged[1, 5:20, 3:11], data[1, 5:20, 3:11])
+    np.testing.assert_array_equal(staged[1:3, 30:, :], data[1:3, 30:, :])
+    np.testing.assert_array_equal(staged.read_rows([3, 0], 4, 9), data[[3, 0], 4:9])
+    staged.write_rows([0, 2], 7, np.zeros((2, 3, 29), np.float32))
+    data[[0, 2], 7:10] = 0.0
+    np.testing.assert_array_equal(staged.read_plane(2), data[2])
+    assert (tmp_path / "s.f32").stat().st_size == data.nbytes
+    staged.close()
+
+
+def test_staged_stack_refuses_strided_slices(tmp_path):
+    with StagedStack(tmp_path / "s.f32", (2, 8, 8)) as staged, pytest.raises(IndexError):
+        staged[0, ::2]
+
+
+def test_staging_folder_is_hidden_and_removed(tmp_path):
+    out = tmp_path / "roi.ome.tiff"
+    with Staging(out) as folder:
+        folder.stack("a", (2, 4, 4)).write_plane(1, np.ones((4, 4), np.float32))
+        assert folder.folder.name.startswith(".roi.ome.tiff.spill-")  # swept by a rerun
+        assert folder.folder.exists()
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_band_rows_hold_about_the_band_budget():
+    rows = band_rows(50, 2000, 2000)
+    assert rows * 50 * 2000 * 4 <= staging.BAND_BYTES < (rows + 1) * 50 * 2000 * 4
+    assert band_rows(2, 10, 7) == 7 and band_rows(10**6, 10**6, 5) == 1
+
+
+def test_chains_keep_order_and_bound_the_tasks(monkeypatch):
+    seen = []
+    monkeypatch.setattr(staging, "STAGE_WORKING_BYTES", 250)
+    assert staging._chains(100) == 2 and staging._chains(1000) == 1
+    out = staging._in_chains(lambda i: seen.append(i) or i * i, range(7), staging._chains(100))
+    assert out == [i * i for i in range(7)] and sorted(seen) == list(range(7))
+
+
+# --------------------------------------------------------------------------- the staged wash
+
+
+@pytest.mark.parametrize("chunks", [(1, 96, 80), (7, 64, 128)], ids=["by-channel", "mixed-channels"])
+def test_staged_wash_equals_the_in_memory_wash(unseen, tmp_path, chunks):
+    """Chunks of one channel are read plane by plane; others go through the copy pass."""
+    roi, matrix, _ = unseen
+    use = tuple(name != "Yb172" for name in roi.channels)  # one pass-through channel
+    marked = Roi(roi.data, roi.channels, roi.path, use=use)
+    eager = wash(marked, spillover=matrix)
+    out = tmp_path / "w.ome.tiff"
+    result = wash_to_file(_lazy(marked, chunks), out, spillover=matrix)
+    np.testing.assert_array_equal(read_roi(out, lazy=False).data, eager.data)
+    _same_stats(result, eager)
+    assert [p.name for p in tmp_path.iterdir()] == ["w.ome.tiff"]
+
+
+def test_staged_wash_with_steps_off_and_no_matrix(unseen, tmp_path):
+    roi, _, _ = unseen
+    recipe = (default_recipe().replace("hot_pixels", enabled=False)
+              .with_channel("speckle", "Nd143", enabled=False))
+    eager = wash(roi, recipe)
+    result = wash_to_file(_lazy(roi, (1, 128, 128)), tmp_path / "w.ome.tiff", recipe)
+    np.testing.assert_array_equal(read_roi(tmp_path / "w.ome.tiff", lazy=False).data, eager.data)
+    assert set(result["stats"]) == {"speckle"} and result["notes"] == list(eager.notes)
+    _same_stats(result, eager)
+
+
+def test_staged_wash_to_ome_zarr(unseen, tmp_path):
+    roi, matrix, _ = unseen
+    recipe = default_recipe().replace("output", format="ome-zarr", tile=64)
+    eager = wash(roi, spillover=matrix)
+    out = tmp_path / "w.ome.zarr"
+    wash_to_file(_lazy(roi, (1, 100, 100)), out, recipe, spillover=matrix)
+    back = read_roi(out, lazy=False)
+    assert back.channels == roi.channels
+    np.testing.assert_array_equal(back.data, eager.data)
+
+
+def test_a_failed_staged_wash_leaves_nothing(unseen, tmp_path, monkeypatch):
+    roi, matrix, _ = unseen
+    wash_module = __import__("sys").modules["plexwash.qc.wash"]
+
+    def broken(*args, **kwargs):
+        raise OSError("disk full")
+
+    monkeypatch.setattr(wash_module, "write_stack", broken)
+    with pytest.raises(OSError, match="disk full"):
+        wash_to_file(_lazy(roi, (1, 128, 128)), tmp_path / "w.ome.tiff", spillover=matrix)
+    assert list(tmp_path.iterdir()) == []
+
+
+def test_stats_of_every_step_are_present(unseen, tmp_path):
+    roi, matrix, _ = unseen
+    result = wash_to_file(_lazy(roi, (1, 128, 128)), tmp_path / "w.ome.tiff", spillover=matrix)
+    assert list(result["stats"]) == list(STEPS)
+    assert all(0.0 <= r["removed_fraction"] <= 1.0 for rows in result["stats"].values() for r in rows)
