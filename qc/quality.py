@@ -79,12 +79,14 @@ import dataclasses
 import math
 import warnings
 from collections.abc import Iterable, Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 from scipy import linalg, ndimage, optimize, special
 from skimage.filters import threshold_otsu
 from threadpoolctl import threadpool_limits
 
+from . import _quality_kernels as _k
 from .errors import InputError
 from .settings import setting
 
@@ -368,11 +370,12 @@ def measure_channel(image, *, settings: QualitySettings = QualitySettings(), dty
 
 def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings = QualitySettings(),
                   channel_settings: Sequence[QualitySettings] | None = None, dtype_max=None,
-                  spillover=None, reference: StackQuality | None = None) -> StackQuality:
+                  spillover=None, reference: StackQuality | None = None,
+                  threads: int = 1) -> StackQuality:
     """Measure every channel of a ROI and the ROI-level flags.
 
-    Channels are pulled into memory one at a time (a dask stack is computed
-    channel by channel), so memory stays at a few copies of one channel plus,
+    Channels are pulled into memory one at a time per thread (a dask stack is
+    computed channel by channel), so memory stays at a few copies of one channel plus,
     for the ghost model, every channel summed in bins (``C / empty_bin**2``
     channels' worth).
 
@@ -405,6 +408,10 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         Pass it when measuring the ``washed`` stage: after compensation and speckle
         removal the background is gone and the remainder of subtracted ghosts is
         no longer Poisson, so the excess test alone over-reads it.
+    threads : int, optional
+        Threads for the channels' measurements and the ghost fits; the results do not
+        depend on it. Fewer channels are measured at once when their copies would
+        exceed ``QUALITY_WORKING_BYTES`` (see :func:`channel_threads`).
 
     Returns
     -------
@@ -447,28 +454,37 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         if not np.all(np.isfinite(matrix)) or np.any(matrix < 0):
             raise InputError("spillover", "matrix holds negative or non-finite values")
 
-    results, row_sums, column_sums = [], [], []
-    design = None  # bin areas, then each channel's bin sums: what the ghost model needs
-    for c, name in enumerate(names):
-        cq, summary = _measure(stack[c], per_channel[c], dtype_max, name,
-                               dtype=getattr(stack, "dtype", None))
-        if design is None:
-            design = np.empty((shape[0] + 1, summary.bins.size))
-            design[0] = _bin_sums(np.ones(shape[1:]), per_channel[0].empty_bin).ravel()
+    # bin areas, then each channel's bin sums: what the ghost model needs
+    bin_size = per_channel[0].empty_bin
+    areas = _bin_areas(shape[1:], bin_size)
+    # float32 rows (counts binned from data of up to 16 bits are exact; the fits convert a
+    # block of bins at a time to float64), so the model costs 4 bytes per bin per channel
+    design = np.empty((shape[0] + 1, areas.size), np.float32)
+    design[0] = areas.ravel()
+
+    def one(c):
+        # the plane read from a lazy stack is released as soon as its spike-free copy exists
+        prepared = _prepare(_plane(stack, c), per_channel[c], names[c],
+                            dtype=getattr(stack, "dtype", None))
+        cq, summary = _measure_prepared(prepared, per_channel[c], dtype_max, names[c])
         design[c + 1] = summary.bins.ravel()
-        results.append(cq)
-        row_sums.append(summary.rows)
-        column_sums.append(summary.columns)
+        return cq, summary.rows, summary.columns
+
+    measured = _map_threads(one, range(shape[0]), channel_threads(shape[1:], threads))
+    results = [m[0] for m in measured]
+    row_sums = [m[1] for m in measured]
+    column_sums = [m[2] for m in measured]
 
     # The ghost fits are many small products: one BLAS thread is fastest, and
     # keeps a threaded BLAS from fighting other work for the cores.
     with threadpool_limits(limits=1, user_api="blas"):
-        results = _judge_with_ghosts(results, design, summary.bins.shape, per_channel, matrix)
+        results = _judge_with_ghosts(results, design, areas.shape, per_channel, matrix,
+                                     threads=threads)
     if reference is not None:
         results = [_inherit_empty(cq, ref) for cq, ref in zip(results, reference.channels,
                                                                strict=True)]
-    rows = _striped_lines(np.stack(row_sums), settings)
-    columns = _striped_lines(np.stack(column_sums), settings)
+    rows = _striped_lines(np.stack(row_sums).astype(np.float64), settings)
+    columns = _striped_lines(np.stack(column_sums).astype(np.float64), settings)
     flags = ("striped",) if rows or columns else ()
     return StackQuality(channels=tuple(results), flags=flags, striped_rows=rows,
                         striped_columns=columns, shape=shape)
@@ -659,6 +675,16 @@ def quality_rows(stack_quality: StackQuality, *, roi: str, stage: str,
 
 def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
     """Measure one channel; returns its ChannelQuality and what the stack needs later."""
+    return _measure_prepared(_prepare(image, settings, name, dtype=dtype), settings, dtype_max,
+                             name)
+
+
+def _prepare(image, settings: QualitySettings, name, *, dtype=None) -> dict:
+    """Check a channel, take the statistics of its values as given and its spike-free copy.
+
+    Split from the rest so that the caller's reference to the pixels as given (a plane
+    read from a lazy stack) is gone before the copies the split needs are made.
+    """
     key = name if name is not None else "image"
     raw = np.asarray(image)
     if dtype is None:
@@ -680,26 +706,36 @@ def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
     maximum = float(raw.max())
     zero_fraction = float(np.count_nonzero(raw == 0)) / raw.size
     clean, spikes = _suppress_spikes(raw, settings.spike_ratio, settings.spike_excess)
-    del raw
+    return {"clean": clean, "spikes": spikes, "p50": p50, "p99": p99, "maximum": maximum,
+            "zero_fraction": zero_fraction, "dtype": dtype}
+
+
+def _measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name):
+    """The rest of :func:`_measure`, from the spike-free copy (``prepared`` is emptied)."""
+    clean = prepared.pop("clean")
+    spikes, dtype = prepared["spikes"], prepared["dtype"]
+    p50, p99, maximum = prepared["p50"], prepared["p99"], prepared["maximum"]
+    zero_fraction = prepared["zero_fraction"]
 
     smoothed = _split_image(clean, settings.smoothing_sigma)
-    if smoothed.max() > smoothed.min():
-        t_log = float(threshold_otsu(smoothed))
+    low, high = float(smoothed.min()), float(smoothed.max())
+    if high > low:
+        t_log = float(_otsu(smoothed, low, high))
     else:
-        t_log = float(smoothed.max())
+        t_log = high
     foreground = smoothed > t_log
     del smoothed
     n_fg = int(np.count_nonzero(foreground))
     floor = settings.background_floor
     if 0 < n_fg < clean.size:
-        fg_mean, fg_std = _masked_mean_std(clean, foreground)
-        bg_mean, bg_std = _masked_mean_std(clean, ~foreground)
+        fg_mean, fg_std = _masked_mean_std(clean, foreground, True)
+        bg_mean, bg_std = _masked_mean_std(clean, foreground, False)
         sbr = fg_mean / max(bg_mean, floor)
         snr = (fg_mean - bg_mean) / max(bg_std, floor)
         fg_snr = _mean_over_std(fg_mean, fg_std)
     else:  # nothing stands out: the whole channel is background
-        fg_mean = bg_mean = float(clean.mean())
-        bg_std = float(clean.std())
+        fg_mean = bg_mean = float(clean.mean(dtype=np.float64))
+        bg_std = float(clean.std(dtype=np.float64))
         sbr, snr, fg_snr = 1.0, 0.0, math.nan
         n_fg = 0
     del foreground
@@ -708,7 +744,7 @@ def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
     saturated = 0.0 if level is None else float(np.count_nonzero(clean >= level)) / clean.size
 
     bins = _bin_sums(clean, settings.empty_bin)
-    area = _bin_sums(np.ones(clean.shape), settings.empty_bin)
+    area = _bin_areas(clean.shape, settings.empty_bin)
     mu, coef, _ = _fit_model(bins.ravel(), area.ravel()[None, :], np.array([np.inf]), settings)
     excess_area = _excess_area(bins * settings.counts_per_unit, mu.reshape(bins.shape), area,
                                settings)
@@ -721,18 +757,16 @@ def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
         saturated_fraction=saturated, saturation_level=level, spikes=spikes,
         excess_area=excess_area, background_rate=float(coef[0]),
         ghost_sources=(), flags=flags)
-    summary = _Summary(bins=bins, rows=_line_sums(clean),
-                       columns=_line_sums(clean.T))
+    # the stripe sums of every channel are kept until the end: float32 halves them
+    summary = _Summary(bins=bins, rows=_line_sums(clean).astype(np.float32),
+                       columns=_line_sums(clean.T).astype(np.float32))
     return cq, summary
 
 
-def _masked_mean_std(values: np.ndarray, mask: np.ndarray) -> tuple[float, float]:
-    """Mean and standard deviation of ``values[mask]`` without copying them out."""
-    n = int(np.count_nonzero(mask))
-    mean = float(np.sum(values, where=mask)) / n
-    squares = float(np.sum(np.square(values - mean, where=mask, out=np.zeros(values.shape)),
-                           where=mask))
-    return mean, math.sqrt(squares / n)
+def _masked_mean_std(values: np.ndarray, mask: np.ndarray, inside: bool) -> tuple[float, float]:
+    """Mean and standard deviation of the pixels where ``mask == inside``, without copies."""
+    mean, std = _k.masked_mean_std(values, mask, inside)
+    return float(mean), float(std)
 
 
 def _channel_flags(excess_area: float, sbr: float, saturated: float,
@@ -748,7 +782,10 @@ def _channel_flags(excess_area: float, sbr: float, saturated: float,
 
 
 def _suppress_spikes(image: np.ndarray, ratio: float, excess: float) -> tuple[np.ndarray, int]:
-    """Set isolated spikes to their neighbourhood level; return a float64 copy and their count.
+    """Set isolated spikes to their neighbourhood level; return a copy and their count.
+
+    The copy is float32 when that holds every value of the input exactly (float32 and
+    integers of up to 16 bits: the output values are input values), float64 otherwise.
 
     A pixel is a spike when it exceeds ``ratio`` times the *second* largest of its
     8 neighbours and that value by at least ``excess``; it is then set to that
@@ -756,40 +793,38 @@ def _suppress_spikes(image: np.ndarray, ratio: float, excess: float) -> tuple[np
     that happen to touch (common on large images), while anything with two or
     more bright neighbours - a cell, a line one pixel wide - is left alone.
     """
-    height, width = image.shape
-    padded = np.full((height + 2, width + 2), -np.inf)  # edge pixels have fewer neighbours
-    padded[1:-1, 1:-1] = image
-    values = padded[1:-1, 1:-1]  # the float64 copy, inside the padding
-    first = np.full(values.shape, -np.inf)
-    second = np.full(values.shape, -np.inf)
-    lower = np.empty(values.shape)
-    for dy in (0, 1, 2):
-        for dx in (0, 1, 2):
-            if dy == 1 and dx == 1:
-                continue
-            shifted = padded[dy:dy + height, dx:dx + width]
-            np.minimum(first, shifted, out=lower)
-            np.maximum(second, lower, out=second)
-            np.maximum(first, shifted, out=first)
-    del first
-    level = np.maximum(second, 0.0, out=second)  # no neighbour (-inf) counts as 0
-    np.multiply(level, ratio, out=lower)
-    spike = values > lower
-    np.subtract(values, level, out=lower)
-    spike &= (lower >= excess) & (values > 0)
-    del lower
-    n = int(np.count_nonzero(spike))
-    if n:
-        np.copyto(values, level, where=spike)
-    return values, n
+    image = np.ascontiguousarray(image)
+    exact32 = image.dtype == np.float32 or (image.dtype.kind in "ui" and image.dtype.itemsize <= 2)
+    clean = np.empty(image.shape, np.float32 if exact32 else np.float64)
+    n = _k.suppress_spikes(image, float(ratio), float(excess), clean)
+    return clean, int(n)
 
 
 def _split_image(clean: np.ndarray, sigma: float) -> np.ndarray:
-    """The image Otsu's threshold is found on: log1p, then a light Gaussian smoothing."""
-    logged = np.log1p(np.maximum(clean, 0.0))
+    """The image Otsu's threshold is found on: log1p, then a light Gaussian smoothing.
+
+    One new array of the copy's type (float32 for float32 and 16-bit data, whose values
+    it holds exactly; the log is then good to float32 rounding, far finer than a bin of
+    Otsu's 256-bin histogram): the log and the smoothing work in place (the smoothing
+    is separable and scipy filters each line from a copy, as it does between its own
+    axes).
+    """
+    logged = np.empty(clean.shape, clean.dtype)
+    np.maximum(clean, 0.0, out=logged)
+    np.log1p(logged, out=logged)
     if sigma > 0:
-        return ndimage.gaussian_filter(logged, sigma, mode="reflect")
+        ndimage.gaussian_filter(logged, sigma, mode="reflect", output=logged)
     return logged
+
+
+def _otsu(image: np.ndarray, low: float, high: float) -> float:
+    """``skimage.filters.threshold_otsu(image)`` without the copy of the image it makes.
+
+    The same 256-bin histogram over the image's range (``numpy.histogram``, as
+    ``skimage.exposure.histogram`` does for float images) is handed to threshold_otsu.
+    """
+    counts, edges = np.histogram(image, bins=256, range=(low, high))
+    return threshold_otsu(hist=(counts, (edges[:-1] + edges[1:]) / 2.0))
 
 
 def _saturation_level(dtype, settings: QualitySettings, dtype_max) -> float | None:
@@ -802,29 +837,66 @@ def _saturation_level(dtype, settings: QualitySettings, dtype_max) -> float | No
     return None
 
 
+def _bin_areas(shape, size: int) -> np.ndarray:
+    """Pixels per size x size bin of an image of ``shape`` (``_bin_sums`` of ones)."""
+    rows = np.minimum(size, shape[0] - np.arange(0, shape[0], size))
+    columns = np.minimum(size, shape[1] - np.arange(0, shape[1], size))
+    return np.outer(rows, columns).astype(np.float64)
+
+
 def _bin_sums(values: np.ndarray, size: int) -> np.ndarray:
     """Sums over size x size bins (the last row/column of bins may be partial)."""
-    rows = np.arange(0, values.shape[0], size)
+    n_rows = -(-values.shape[0] // size)
     columns = np.arange(0, values.shape[1], size)
-    return np.add.reduceat(np.add.reduceat(values, rows, axis=0), columns, axis=1)
+    out = np.empty((n_rows, columns.size))
+    for i in range(n_rows):  # one band of rows at a time: no float64 copy of the image
+        band = values[i * size:(i + 1) * size].sum(axis=0, dtype=np.float64)
+        out[i] = np.add.reduceat(band, columns)
+    return out
 
 
 # --------------------------------------------------------------------------- the excess test
 
 
-def _poisson_upper(n: np.ndarray, mu: np.ndarray) -> np.ndarray:
-    """P(N >= n) for N ~ Poisson(mu); the regularised lower incomplete gamma P(n, mu).
+def _poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarray:
+    """Where ``P(N >= n) < alpha`` for N ~ Poisson(mu) (``alpha`` below 0.159).
 
-    For integer n >= 1, P(N >= n) = P(n, mu) = gammainc(n, mu); it interpolates
-    smoothly for non-integer counts (e.g. compensated data). Only small
-    probabilities are exact: bins with n <= mu + sqrt(mu) are given 1.
+    ``P(N >= n)`` is the regularised lower incomplete gamma ``P(n, mu)``
+    (``scipy.special.gammainc``), which interpolates smoothly for non-integer counts
+    (compensated data). Only the bins the answer is not obvious for pay for it:
+
+    * ``n <= mu + sqrt(mu)``: ``P >= 0.159 > alpha`` (checked numerically for
+      1e-3 <= mu <= 1e5), so not below;
+    * the Chernoff bound ``P(n, mu) <= exp(-(n log(n / mu) - n + mu))`` for ``n > mu``
+      (the lower tail of a Gamma(n) variable; it holds for non-integer n too) is
+      already below ``alpha``: below. These are the bright bins of a stain, most of
+      a stained channel's bins;
+    * the series ``P(n, mu) = mu^n e^-mu / Gamma(n + 1) * (1 + mu / (n + 1) + mu^2 /
+      ((n + 1)(n + 2)) + ...)`` (Abramowitz & Stegun 6.5.29), cut after three terms, is a
+      lower bound; where it is at least ``alpha``: not below. These are the background
+      bins that fluctuate up;
+    * the rest: ``gammainc`` itself.
+
+    The answer is that of ``gammainc(n, mu) < alpha`` everywhere (the bounds keep a
+    margin far above their rounding).
     """
-    out = np.ones(np.shape(n))
-    # P(N >= n) >= 0.159 whenever n <= mu + sqrt(mu) (checked numerically for
-    # 1e-3 <= mu <= 1e5); every alpha used here is below 0.159, so those bins are
-    # given 1 without the (slow) incomplete gamma function.
+    n = np.asarray(n, dtype=np.float64)
+    mu = np.asarray(mu, dtype=np.float64)
+    out = np.zeros(n.shape, bool)
     above = n > mu + np.sqrt(mu)
-    out[above] = special.gammainc(n[above], mu[above])
+    n_a, mu_a = n[above], mu[above]
+    log_alpha = math.log(alpha)
+    with np.errstate(divide="ignore"):
+        log_ratio = np.log(mu_a)
+        upper = -(n_a * (np.log(n_a) - log_ratio) - n_a + mu_a)
+    below = upper < log_alpha - 1e-9
+    unsure = np.flatnonzero(~below)
+    n_u, mu_u = n_a[unsure], mu_a[unsure]
+    series = 1.0 + mu_u / (n_u + 1.0) * (1.0 + mu_u / (n_u + 2.0))
+    lower = n_u * log_ratio[unsure] - mu_u - special.gammaln(n_u + 1.0) + np.log(series)
+    hard = lower < log_alpha + 1e-9
+    below[unsure[hard]] = special.gammainc(n_u[hard], mu_u[hard]) < alpha
+    out[above] = below
     return out
 
 
@@ -847,17 +919,17 @@ def _fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
     """
     unit = settings.counts_per_unit
     if gram is None:
-        gram = design @ design.T
-        cross = design @ target
+        gram = _gram(design)
+        cross = _cross(design, target)
     n = target * unit
-    floor = settings.background_floor * unit * design[0]
+    floor = settings.background_floor * unit * design[0].astype(np.float64)
     kept = np.ones(n.shape, bool)
     lower = np.zeros(design.shape[0])
     g, h = gram, cross
     for _ in range(_MAX_FIT_ROUNDS):
         coef = _box_least_squares(g, h, lower, upper)
-        mu = np.maximum(unit * (coef @ design), floor)
-        new_kept = _poisson_upper(n, mu) >= settings.fit_alpha
+        mu = np.maximum(unit * _combine(coef, design), floor)
+        new_kept = ~_poisson_tail_below(n, mu, settings.fit_alpha)
         if not new_kept.any() or np.array_equal(new_kept, kept):
             break
         g_out, h_out = _partial_gram(design, target, kept & ~new_kept)
@@ -867,6 +939,31 @@ def _fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
     return mu, coef, kept
 
 
+def _gram(design: np.ndarray) -> np.ndarray:
+    """``D D^T`` in float64, a block of bins (columns) at a time."""
+    g = np.zeros((design.shape[0], design.shape[0]))
+    for start in range(0, design.shape[1], _GRAM_BLOCK):
+        d = design[:, start:start + _GRAM_BLOCK].astype(np.float64)
+        g += d @ d.T
+    return g
+
+
+def _cross(design: np.ndarray, target: np.ndarray) -> np.ndarray:
+    """``D t`` in float64, a block of bins at a time."""
+    h = np.zeros(design.shape[0])
+    for start in range(0, design.shape[1], _GRAM_BLOCK):
+        h += design[:, start:start + _GRAM_BLOCK].astype(np.float64) @ target[start:start + _GRAM_BLOCK]
+    return h
+
+
+def _combine(coef: np.ndarray, design: np.ndarray) -> np.ndarray:
+    """``coef @ design`` in float64, a block of columns at a time (no float64 copy of ``design``)."""
+    out = np.empty(design.shape[1])
+    for start in range(0, design.shape[1], _GRAM_BLOCK):
+        out[start:start + _GRAM_BLOCK] = coef @ design[:, start:start + _GRAM_BLOCK].astype(np.float64)
+    return out
+
+
 def _partial_gram(design: np.ndarray, target: np.ndarray, mask: np.ndarray):
     """``D D^T`` and ``D t`` over the bins in ``mask``, a block of bins at a time."""
     index = np.flatnonzero(mask)
@@ -874,7 +971,7 @@ def _partial_gram(design: np.ndarray, target: np.ndarray, mask: np.ndarray):
     h = np.zeros(design.shape[0])
     for start in range(0, index.size, _GRAM_BLOCK):
         part = index[start:start + _GRAM_BLOCK]
-        d = design[:, part]
+        d = design[:, part].astype(np.float64)
         g += d @ d.T
         h += d @ target[part]
     return g, h
@@ -921,13 +1018,13 @@ def _excess_area(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
     bin (a hot pixel that escaped) cannot lend excess to its eight neighbours.
     """
     unit = settings.counts_per_unit
-    excess = (_poisson_upper(n, mu) < settings.empty_alpha) & (
+    excess = _poisson_tail_below(n, mu, settings.empty_alpha) & (
         n - mu >= settings.min_excess * unit * area)
     if min(n.shape) >= 3:
         n_w, mu_w, a_w = (ndimage.uniform_filter(v, 3, mode="constant") * 9 for v in (n, mu, area))
         largest = ndimage.maximum_filter(n - mu, 3, mode="constant", cval=0.0)
         n_w = n_w - np.maximum(largest, 0.0)
-        excess |= (_poisson_upper(n_w, mu_w) < settings.empty_alpha) & (
+        excess |= _poisson_tail_below(n_w, mu_w, settings.empty_alpha) & (
             n_w - mu_w >= settings.min_excess * unit * a_w)
     return float(area[excess].sum())
 
@@ -941,7 +1038,8 @@ def _inherit_empty(cq: ChannelQuality, reference: ChannelQuality) -> ChannelQual
 
 
 def _judge_with_ghosts(results: list[ChannelQuality], design: np.ndarray, shape,
-                       per_channel: list[QualitySettings], matrix) -> list[ChannelQuality]:
+                       per_channel: list[QualitySettings], matrix, *, threads: int = 1
+                       ) -> list[ChannelQuality]:
     """Redo the excess test of every channel with ghosts of the other channels in the model.
 
     ``design`` holds the bins' areas, then every channel's bin sums (data units),
@@ -949,29 +1047,72 @@ def _judge_with_ghosts(results: list[ChannelQuality], design: np.ndarray, shape,
     """
     if len(results) < 2:
         return results
-    gram = design @ design.T
+    gram = _gram(design)
     names = [cq.name for cq in results]
-    out = list(results)
-    for c, cq in enumerate(results):
-        s = per_channel[c]
+
+    def judge(c):
+        cq, s = results[c], per_channel[c]
         # ghosts only explain more of a channel: one already empty stays empty
         if cq.empty or (not s.ghosts and matrix is None):
-            continue
-        out[c] = _ghost_test(c, cq, design, gram, shape, names, s, matrix)
-    return out
+            return cq
+        return _ghost_test(c, cq, design, gram, shape, names, s, matrix)
+
+    return _map_threads(judge, range(len(results)), threads)
+
+
+def _plane(stack, c: int):
+    """Channel ``c``; of a dask stack, computed straight into one array (no concatenation)."""
+    if not type(stack).__module__.startswith("dask"):
+        return stack[c]
+    import dask.array as da
+
+    plane = np.empty(stack.shape[1:], stack.dtype)
+    da.store(stack[c], plane, lock=False)
+    return plane
+
+
+def _map_threads(function, items, threads: int) -> list:
+    """``[function(i) for i in items]``, on ``threads`` threads when more than one."""
+    items = list(items)
+    if threads <= 1 or len(items) <= 1:
+        return [function(i) for i in items]
+    with ThreadPoolExecutor(min(threads, len(items)), thread_name_prefix="plexwash-quality") as pool:
+        return list(pool.map(function, items))
+
+
+#: Bytes the per-channel measurements may hold at once; one needs about
+#: ``CHANNEL_COPIES`` float32 copies of its channel (the raw plane, its spike-free copy
+#: and the float64 image Otsu's threshold is found on).
+QUALITY_WORKING_BYTES = 128 * 2**20
+CHANNEL_COPIES = 6
+
+
+def channel_threads(plane_shape, threads: int) -> int:
+    """Channels measured at once: ``threads``, fewer when their copies would exceed the budget.
+
+    Examples
+    --------
+    >>> channel_threads((1000, 1000), 2), channel_threads((2000, 2000), 2)
+    (2, 1)
+    """
+    per_channel = CHANNEL_COPIES * 4 * int(np.prod(plane_shape))
+    return int(max(1, min(threads, QUALITY_WORKING_BYTES // max(per_channel, 1))))
 
 
 def _ghost_test(c: int, cq: ChannelQuality, design: np.ndarray, gram: np.ndarray, shape,
                 names: list, settings: QualitySettings, matrix) -> ChannelQuality:
     """Excess test of channel c with the other channels' ghosts in the model."""
-    target = design[c + 1]
+    target = design[c + 1].astype(np.float64)
+    areas = design[0].astype(np.float64)
     others = [i for i in range(len(names)) if i != c]
     if matrix is not None:
         # The known matrix fixes the ghost pattern; its overall scale is fitted
         # (0 .. _KNOWN_SCALE_MAX): measured sources carry their own background and
         # spillover, so the pattern is a little off in scale, never in shape.
-        ghost = matrix[others, c] @ design[[i + 1 for i in others]]
-        mu, coef, _ = _fit_model(target, np.vstack([design[0], ghost]),
+        weights = np.array(matrix[:, c], dtype=np.float64)
+        weights[c] = 0.0  # a channel is no ghost of itself (no copy of the other rows)
+        ghost = _combine(weights, design[1:])
+        mu, coef, _ = _fit_model(target, np.vstack([areas, ghost]),
                                  np.array([np.inf, _KNOWN_SCALE_MAX]), settings)
         slopes = matrix[others, c] * coef[1]
     else:
@@ -981,7 +1122,7 @@ def _ghost_test(c: int, cq: ChannelQuality, design: np.ndarray, gram: np.ndarray
         mu, coef, _ = _fit_model(target, design, upper, settings, gram=gram,
                                  cross=gram[:, c + 1])
         slopes = coef[[i + 1 for i in others]]
-    area = design[0].reshape(shape)
+    area = areas.reshape(shape)
     excess_area = _excess_area(target.reshape(shape) * settings.counts_per_unit,
                                mu.reshape(shape), area, settings)
     ghost_sources = tuple(sorted(((names[i], float(v)) for i, v in zip(others, slopes, strict=True)

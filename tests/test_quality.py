@@ -108,12 +108,19 @@ def test_threshold_is_otsu_of_smoothed_log(sigma):
     img, _ = _cells_image(0, background=4.0, foreground=30.0)
     q = measure_channel(img, settings=QualitySettings(smoothing_sigma=sigma))
     assert q.spikes == 0
-    transformed = np.log1p(img.astype(np.float64))
+    # 16-bit data are split in float32 (it holds every value exactly)
+    transformed = np.log1p(img.astype(np.float32))
     if sigma:
         transformed = ndimage.gaussian_filter(transformed, sigma, mode="reflect")
     expected = threshold_otsu(transformed)  # reference: skimage.filters.threshold_otsu
     assert q.threshold == pytest.approx(np.expm1(expected), rel=1e-12)
     assert q.foreground_fraction == pytest.approx(np.mean(transformed > expected))
+    # ... and the float64 split of the same image gives the same threshold to float32
+    # rounding: far inside one of the histogram's 256 bins
+    exact = np.log1p(img.astype(np.float64))
+    if sigma:
+        exact = ndimage.gaussian_filter(exact, sigma, mode="reflect")
+    assert q.threshold == pytest.approx(np.expm1(threshold_otsu(exact)), rel=1e-5)
 
 
 @pytest.mark.parametrize("lam", [4.0, 25.0, 100.0])
@@ -485,3 +492,53 @@ def test_bad_input_is_reported():
         measure_stack(np.zeros((2, 8, 8)), ["a", "b"], spillover=np.eye(3))
     with pytest.raises(InputError, match="Nd145: channel contains NaN"):
         measure_stack(np.stack([bad, bad]), ["Nd145", "b"])
+
+
+# --------------------------------------------------------------------------- fast paths
+
+
+@pytest.mark.parametrize("alpha", [0.05, 1e-6, 1e-12])
+def test_poisson_tail_test_equals_the_incomplete_gamma(alpha):
+    """The bounds only skip work: the verdicts are those of scipy.special.gammainc."""
+    from plexwash.qc.quality import _poisson_tail_below
+    from scipy import special
+
+    rng = np.random.default_rng(12)
+    mu = 10.0 ** rng.uniform(-3, 5, 300_000)
+    n = rng.poisson(mu * rng.uniform(0.3, 4.0, mu.size)).astype(float)
+    n[::3] += rng.uniform(0, 1, n[::3].size)  # non-integer counts (compensated data)
+    exact = special.gammainc(np.maximum(n, 1e-300), mu) < alpha  # reference: P(N >= n) = P(n, mu)
+    exact &= n > mu + np.sqrt(mu)  # where P >= 0.159 (> alpha) by the documented shortcut
+    np.testing.assert_array_equal(_poisson_tail_below(n, mu, alpha), exact)
+
+
+def test_otsu_without_copy_equals_skimage():
+    from plexwash.qc.quality import _otsu
+
+    image = np.random.default_rng(4).gamma(2.0, 3.0, (311, 257))
+    expected = threshold_otsu(image)  # reference: skimage.filters.threshold_otsu
+    assert _otsu(image, image.min(), image.max()) == expected
+
+
+def test_measure_stack_does_not_depend_on_threads_or_dask():
+    import dask.array as da
+
+    rng = np.random.default_rng(8)
+    stack = rng.poisson(1.0, (5, 120, 100)).astype(np.uint16)
+    stack[1, 30:70, 20:60] += 40
+    stack[2] += (0.05 * stack[1]).astype(np.uint16)
+    names = ["A", "B", "C", "D", "E"]
+    one = measure_stack(stack, names)
+    for other in (measure_stack(stack, names, threads=3),
+                  measure_stack(da.from_array(stack, chunks=(2, 50, 64)), names, threads=2)):
+        assert other == one
+
+
+def test_channel_threads_follow_the_memory_budget(monkeypatch):
+    from plexwash.qc import quality
+
+    # 128 MiB for channels of 6 float32 copies: 5 of 1000 x 1000, 1 of 2000 x 2000
+    assert quality.channel_threads((1000, 1000), 4) == 4
+    assert quality.channel_threads((2000, 2000), 4) == 1
+    monkeypatch.setattr(quality, "QUALITY_WORKING_BYTES", 2 * quality.CHANNEL_COPIES * 4 * 100)
+    assert quality.channel_threads((10, 10), 8) == 2 and quality.channel_threads((100, 100), 8) == 1
