@@ -64,6 +64,7 @@ _BREAKDOWN_CHILD = textwrap.dedent("""
 
     parts = []
     def part(name, t0):
+        release_memory()  # as the run does between the parts of an ROI
         parts.append({"part": name, "peak_mb": peak_mb(), "after_mb": rss_mb(),
                       "seconds": time.perf_counter() - t0})
         reset()
@@ -75,8 +76,9 @@ _BREAKDOWN_CHILD = textwrap.dedent("""
     from plexwash.qc import io, spillover
     from plexwash.qc.recipe import default_recipe
     from plexwash.qc.report import downsample
-    from plexwash.qc.run import _measure_quality
+    from plexwash.qc.run import _measure_quality, bound_heap, release_memory
     from plexwash.qc.wash import wash_to_file
+    bound_heap()  # as the run does
     part("imports", t)
     t = time.perf_counter()
     recipe = default_recipe()
@@ -91,7 +93,7 @@ _BREAKDOWN_CHILD = textwrap.dedent("""
     wash_to_file(roi, target, recipe, spillover=matrix)
     part("wash_to_file", t)
     t = time.perf_counter()
-    _measure_quality(roi, target, recipe, matrix)
+    _measure_quality(roi, target, recipe, matrix, threads=2)
     part("quality raw + washed", t)
     t = time.perf_counter()
     downsample(io.read_roi(target).data)

@@ -68,6 +68,8 @@ def main() -> None:
           f"true {tuple(int(r) for r in truth['striped_rows'])}")
 
     t_measure = median_time(lambda: measure_stack(stack, names), args.repeats)
+    cores = os.cpu_count() or 1
+    t_threads = median_time(lambda: measure_stack(stack, names, threads=cores), args.repeats)
     t_split = median_time(lambda: _split_only(stack), args.repeats)
     t_read = median_time(lambda: _read_once(stack), args.repeats)
 
@@ -78,10 +80,12 @@ def main() -> None:
     channel_bytes = stack.shape[1] * stack.shape[2] * 8
 
     print(f"measure_stack               {t_measure:8.3f} s (median of {args.repeats})")
+    print(f"measure_stack, {cores} threads     {t_threads:8.3f} s")
     print(f"split only (floor)          {t_split:8.3f} s")
     print(f"read once                   {t_read:8.3f} s")
     print(f"measure_stack / split only  = {t_measure / t_split:.1f}x")
     print(f"measure_stack / read once   = {t_measure / t_read:.1f}x")
+    print(f"one thread / {cores} threads      = {t_measure / t_threads:.2f}x")
     print(f"peak traced memory / one float64 channel = {peak / channel_bytes:.1f}x "
           f"(stack is {stack.nbytes / channel_bytes:.1f}x)")
 

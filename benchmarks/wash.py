@@ -1,8 +1,9 @@
 """Speed of a wash against its floor: reading the ROI and writing it back.
 
 One 40 x 1000 x 1000 ROI (float32 counts from the demo generator, ~160 MB; read lazily
-as dask because it is over ``io.LAZY_BYTES``) is written once as OME-TIFF. Then, each
-timed ``--repeats`` times (medians printed):
+as dask because it is over ``io.LAZY_BYTES``, so the wash goes through the staged passes
+of ``qc/staging.py``) is written once as OME-TIFF. Then, each timed ``--repeats`` times
+(medians printed):
 
 - floor: ``read_roi`` + ``write_stack`` of the same pixels as float32, in the recipe's
   output format and compression (what any tool must pay to read and write this stack);

@@ -459,6 +459,7 @@ def _execute_here(jobs: list[dict]) -> Iterable[dict]:
     import dask
 
     threads = _cpu_count()
+    bound_heap()  # before the pool's threads exist
     pool = ThreadPoolExecutor(threads, thread_name_prefix="plexwash-chunk")
     try:
         with dask.config.set(scheduler="threads", pool=pool):
@@ -538,6 +539,7 @@ def wash_one(job: Mapping) -> dict:
     """
     import dask
 
+    bound_heap()
     started = _now()
     t0 = time.perf_counter()
     out_dir = Path(job["out_dir"])
@@ -597,7 +599,8 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     lap("wash_write")
     output_sha256 = sha256_path(target) if job["output"] is not None else None
     lap("hash_output")
-    raw_rows, washed_rows, roi_flags = _measure_quality(roi, target, recipe, matrix)
+    raw_rows, washed_rows, roi_flags = _measure_quality(
+        roi, target, recipe, matrix, threads=job.get("threads") or _worker_threads())
     release_memory()
     lap("quality")
     if job["output"] is None:
@@ -617,7 +620,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     return record
 
 
-def _measure_quality(roi, washed_path: Path, recipe, matrix):
+def _measure_quality(roi, washed_path: Path, recipe, matrix, *, threads: int = 1):
     """Quality rows of the raw ROI and of the washed stack as written.
 
     Raw first, then washed with the raw result as reference (empty verdicts carry over).
@@ -636,7 +639,7 @@ def _measure_quality(roi, washed_path: Path, recipe, matrix):
 
     def measure(stack, **extra):
         return measure_stack(stack, roi.channels, settings=settings, channel_settings=per_channel,
-                             dtype_max=dtype_max, **extra)
+                             dtype_max=dtype_max, threads=threads, **extra)
 
     # The washed stage is judged against the raw one: a wash removes signal and cannot
     # create a stain, so a channel empty in raw stays empty (quality.measure_stack notes).
@@ -697,6 +700,27 @@ def release_memory() -> None:
         ctypes.CDLL("libc.so.6").malloc_trim(0)
     except (OSError, AttributeError):
         pass
+
+
+def bound_heap() -> None:
+    """Let all threads allocate from one glibc malloc arena (``mallopt(M_ARENA_MAX, 1)``).
+
+    By default glibc gives threads their own arenas (up to 8 per core); each keeps the
+    freed planes of the channels its thread worked on, so a run's memory grows with the
+    number of threads rather than with what they hold. The wash and the quality
+    measurements allocate few, large arrays, so sharing one arena costs no measurable
+    time (``benchmarks/memory.py``). Set once per process, before the chunk threads
+    start; a no-op where glibc is absent.
+    """
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6").mallopt(_M_ARENA_MAX, 1)
+    except (OSError, AttributeError):
+        pass
+
+
+_M_ARENA_MAX = -8  # from glibc's malloc.h
 
 
 def _worker_threads() -> int:
