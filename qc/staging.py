@@ -36,6 +36,7 @@ import os
 import shutil
 import tempfile
 import threading
+import weakref
 from pathlib import Path
 
 import numpy as np
@@ -72,13 +73,14 @@ class StagedStack:
         self.path = Path(path)
         self.shape = tuple(int(n) for n in shape)
         self._fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_TRUNC, 0o600)
+        # closed by close(), or when the last task holding this stack lets go of it
+        self._closer = weakref.finalize(self, os.close, self._fd)
         os.ftruncate(self._fd, int(np.prod(self.shape)) * _ITEM)
         self._lock = threading.Lock() if not hasattr(os, "preadv") else None
 
     def close(self) -> None:
-        if self._fd is not None:
-            os.close(self._fd)
-            self._fd = None
+        """Close the file; only once no task can still read or write it."""
+        self._closer()
 
     def __enter__(self):
         return self
@@ -181,9 +183,14 @@ class Staging:
     def __enter__(self):
         return self
 
-    def __exit__(self, *exc):
-        for staged in self._stacks:
-            staged.close()
+    def __exit__(self, exc_type, *exc):
+        # After an error or an interrupt, tasks of the pass may still be running: their
+        # files are unlinked now but closed only when the tasks let go of them, so that no
+        # descriptor number is reused (by the ledger, say) while a task still writes.
+        if exc_type is None:
+            for staged in self._stacks:
+                staged.close()
+        self._stacks.clear()
         shutil.rmtree(self.folder, ignore_errors=True)
 
 

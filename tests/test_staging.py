@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import gc
+import os
+
 import dask.array as da
 import numpy as np
 import pytest
@@ -122,9 +125,13 @@ def test_a_failed_staged_wash_leaves_nothing(unseen, tmp_path, monkeypatch):
         raise OSError("disk full")
 
     monkeypatch.setattr(wash_module, "write_stack", broken)
+    open_before = len(os.listdir("/proc/self/fd")) if os.path.isdir("/proc/self/fd") else None
     with pytest.raises(OSError, match="disk full"):
         wash_to_file(_lazy(roi, (1, 128, 128)), tmp_path / "w.ome.tiff", spillover=matrix)
     assert list(tmp_path.iterdir()) == []
+    if open_before is not None:  # the staging files are closed once nothing holds them
+        gc.collect()
+        assert len(os.listdir("/proc/self/fd")) <= open_before
 
 
 def test_stats_of_every_step_are_present(unseen, tmp_path):
