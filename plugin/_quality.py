@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import os
 
 import numpy as np
 from napari.qt.threading import thread_worker
@@ -47,7 +48,7 @@ def measure_rows(roi, recipe, *, stage: str = "raw", data=None, spillover=None) 
         dtype_max = float(np.iinfo(roi.data.dtype).max)  # washed float data keep the detector range
     quality = measure_stack(stack, list(roi.channels), settings=recipe.quality,
                             channel_settings=recipe.for_channels("quality", roi.channels),
-                            dtype_max=dtype_max, spillover=spillover)
+                            dtype_max=dtype_max, spillover=spillover, threads=os.cpu_count() or 1)
     rows = quality_rows(quality, roi=roi.name, stage=stage)
     for row, label in zip(rows, roi.labels, strict=True):
         row["label"] = label

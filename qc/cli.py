@@ -168,6 +168,7 @@ def inspection(roi, recipe) -> dict:
     measured = measure_stack(
         roi.data, roi.channels, settings=recipe.quality,
         channel_settings=recipe.for_channels("quality", roi.channels),
+        threads=os.cpu_count() or 1,
     )
     rows = quality_rows(measured, roi=roi.name, stage="raw")
     channels = []

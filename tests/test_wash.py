@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import statistics
-from pathlib import Path
 
 import dask.array as da
 import numpy as np
