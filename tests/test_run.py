@@ -467,7 +467,10 @@ def test_same_pixels_whatever_the_scheduler(reference, cohort, tmp_path):
 
 _DRIVER = textwrap.dedent("""
     import sys
+    from plexwash.qc import io
     from plexwash.qc.run import run_cohort
+    if sys.argv[5:] == ["lazy"]:  # every ROI read as dask: the staged wash
+        io.LAZY_BYTES = 0
     try:
         s = run_cohort(sys.argv[1], sys.argv[2], spillover=sys.argv[3], panel=sys.argv[4],
                        progress=False)
@@ -484,11 +487,12 @@ def bigger_cohort(tmp_path_factory, generator):
                         random_state=5)
 
 
-def _start_driver(cohort, out):
+def _start_driver(cohort, out, *, lazy=False):
     env = {**os.environ, "OMP_WAIT_POLICY": "PASSIVE"}
     return subprocess.Popen(
         [sys.executable, "-c", _DRIVER, str(cohort / "cohort"), str(out),
-         str(cohort / "truth" / "spillover.csv"), str(cohort / "panel.csv")],
+         str(cohort / "truth" / "spillover.csv"), str(cohort / "panel.csv"),
+         *(["lazy"] if lazy else [])],
         env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
 
 
@@ -522,10 +526,11 @@ def bigger_reference(tmp_path_factory, bigger_cohort):
 
 
 @pytest.mark.slow
-def test_kill_9_loses_only_the_rois_in_flight(bigger_cohort, bigger_reference, tmp_path):
+@pytest.mark.parametrize("lazy", [False, True], ids=["in-memory", "staged"])
+def test_kill_9_loses_only_the_rois_in_flight(bigger_cohort, bigger_reference, tmp_path, lazy):
     before = _hashes(bigger_cohort / "cohort")
     out = tmp_path / "run"
-    process = _start_driver(bigger_cohort, out)
+    process = _start_driver(bigger_cohort, out, lazy=lazy)
     _wait_for_done_records(out, 2, process)
     time.sleep(0.15)  # let the next ROI get well into its wash
     process.send_signal(signal.SIGKILL)
