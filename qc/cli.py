@@ -306,6 +306,9 @@ def _wash(args) -> int:
 
         raise InputError(out, "output must end in .ome.tiff or .ome.zarr, or be a folder")
     check_output_path(out, [args.roi])
+    from .run import bound_heap
+
+    bound_heap()  # as a run does: threads share one malloc arena
     roi = read_roi(args.roi, panel=args.panel)
     result = wash_to_file(roi, out, recipe, spillover=args.spillover)
     print(f"washed {roi.name} -> {out} in {result['seconds']:.1f} s")
