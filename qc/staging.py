@@ -27,7 +27,7 @@ the same passes.
 Memory is a few planes of one channel per thread (16 MB for 2000 x 2000 float32),
 whatever the number of channels; disk is two float32 copies of the stack, in a hidden
 ``.NAME.spill-*`` folder beside the output that is removed when the wash ends (a run
-sweeps leftovers of a killed one).
+sweeps leftovers of a killed one), or under ``$PLEXWASH_STAGING_DIR`` when set.
 """
 
 from __future__ import annotations
@@ -167,12 +167,22 @@ class StagedStack:
                                                                              copy=False)
 
 
+#: Environment variable naming a folder for the staging files instead of the output's
+#: folder (e.g. a node's local scratch disk when the outputs go to network storage).
+STAGING_ENV = "PLEXWASH_STAGING_DIR"
+
+
 class Staging:
-    """A hidden ``.NAME.spill-*`` folder beside ``out_path`` for staging files; removed on exit."""
+    """A hidden ``.NAME.spill-*`` folder for staging files; removed on exit.
+
+    It is made beside ``out_path`` (where a rerun sweeps what a killed run left), or in
+    the folder named by ``$PLEXWASH_STAGING_DIR`` when that is set.
+    """
 
     def __init__(self, out_path: Path):
-        out_path.parent.mkdir(parents=True, exist_ok=True)
-        self.folder = Path(tempfile.mkdtemp(prefix=f".{out_path.name}.spill-", dir=out_path.parent))
+        parent = Path(os.environ.get(STAGING_ENV) or out_path.parent)
+        parent.mkdir(parents=True, exist_ok=True)
+        self.folder = Path(tempfile.mkdtemp(prefix=f".{out_path.name}.spill-", dir=parent))
         self._stacks: list[StagedStack] = []
 
     def stack(self, name: str, shape) -> StagedStack:

@@ -64,6 +64,15 @@ def test_staging_folder_is_hidden_and_removed(tmp_path):
     assert list(tmp_path.iterdir()) == []
 
 
+def test_staging_can_go_to_another_folder(tmp_path, monkeypatch):
+    scratch = tmp_path / "scratch"
+    monkeypatch.setenv(staging.STAGING_ENV, str(scratch))
+    out = tmp_path / "out" / "roi.ome.tiff"
+    with Staging(out) as folder:
+        assert folder.folder.parent == scratch
+    assert list(scratch.iterdir()) == [] and not out.parent.exists()
+
+
 def test_band_rows_hold_about_the_band_budget():
     rows = band_rows(50, 2000, 2000)
     assert rows * 50 * 2000 * 4 <= staging.BAND_BYTES < (rows + 1) * 50 * 2000 * 4
