@@ -469,10 +469,13 @@ def compensate_parallel(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr,
     return handed_over
 
 
-@njit(cache=True)
+@njit(cache=True, nogil=True)
 def compensate_serial(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val,
                       g_dinv, ainv, h, g, out, mode, tol_rel, max_sweeps, max_exchanges):
-    """:func:`compensate_parallel` on the calling thread (dask already runs blocks in parallel)."""
+    """:func:`compensate_parallel` on the calling thread (dask already runs blocks in parallel).
+
+    Releases the GIL, so that the blocks of several threads really run at once.
+    """
     npix = y.shape[1]
     nblocks = (npix + LANES - 1) // LANES
     work = _workspace(idx.shape[0])

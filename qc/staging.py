@@ -167,6 +167,35 @@ class StagedStack:
                                                                              copy=False)
 
 
+class MemoryStack:
+    """The in-memory counterpart of :class:`StagedStack` (a numpy array), for ROIs held in memory."""
+
+    dtype = np.dtype(np.float32)
+    ndim = 3
+
+    def __init__(self, shape):
+        self.array = np.empty(tuple(int(n) for n in shape), np.float32)
+        self.shape = self.array.shape
+
+    def read_rows(self, channels, y0: int, y1: int) -> np.ndarray:
+        return self.array[list(channels), y0:y1]
+
+    def write_rows(self, channels, y0: int, rows: np.ndarray) -> None:
+        self.array[list(channels), y0:y0 + rows.shape[1]] = rows
+
+    def read_plane(self, c: int) -> np.ndarray:
+        return self.array[c].copy()  # tasks may write the plane back while it is read
+
+    def write_plane(self, c: int, plane: np.ndarray) -> None:
+        self.array[c] = plane
+
+    def __setitem__(self, key, value) -> None:
+        self.array[key] = value
+
+    def close(self) -> None:
+        pass
+
+
 #: Environment variable naming a folder for the staging files instead of the output's
 #: folder (e.g. a node's local scratch disk when the outputs go to network storage).
 STAGING_ENV = "PLEXWASH_STAGING_DIR"
@@ -179,13 +208,18 @@ class Staging:
     the folder named by ``$PLEXWASH_STAGING_DIR`` when that is set.
     """
 
-    def __init__(self, out_path: Path):
-        parent = Path(os.environ.get(STAGING_ENV) or out_path.parent)
-        parent.mkdir(parents=True, exist_ok=True)
-        self.folder = Path(tempfile.mkdtemp(prefix=f".{out_path.name}.spill-", dir=parent))
-        self._stacks: list[StagedStack] = []
+    def __init__(self, out_path: Path | None):
+        """``out_path=None``: the stacks are numpy arrays (an ROI held in memory), no folder."""
+        self.folder = None
+        if out_path is not None:
+            parent = Path(os.environ.get(STAGING_ENV) or out_path.parent)
+            parent.mkdir(parents=True, exist_ok=True)
+            self.folder = Path(tempfile.mkdtemp(prefix=f".{out_path.name}.spill-", dir=parent))
+        self._stacks: list = []
 
-    def stack(self, name: str, shape) -> StagedStack:
+    def stack(self, name: str, shape) -> StagedStack | MemoryStack:
+        if self.folder is None:
+            return MemoryStack(shape)
         staged = StagedStack(self.folder / f"{name}.f32", shape)
         self._stacks.append(staged)
         return staged
@@ -201,7 +235,8 @@ class Staging:
             for staged in self._stacks:
                 staged.close()
         self._stacks.clear()
-        shutil.rmtree(self.folder, ignore_errors=True)
+        if self.folder is not None:
+            shutil.rmtree(self.folder, ignore_errors=True)
 
 
 # ----------------------------------------------------------------------------- the passes
@@ -214,7 +249,8 @@ def band_rows(n_channels: int, width: int, height: int) -> int:
 
 
 def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[StagedStack, dict]:
-    """Wash a lazy ROI into a staged stack; return it and the per-step stats rows.
+    """Wash an ROI (lazy, or numpy with in-memory staging) into a staged stack; return it
+    and the per-step stats rows.
 
     ``values`` is the spillover matrix aligned to the used channels (None: no
     compensation). The stats rows are those of the in-memory wash (see
@@ -235,13 +271,16 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
     settings_of = dict(zip(used, zip(hot, speckle, strict=True), strict=True))
 
     a = staging.stack("a", (n_c, n_y, n_x))
-    by_channel = len(roi.data.chunks[0]) == n_c  # one channel per source chunk
+    lazy = hasattr(roi.data, "chunks") and not isinstance(roi.data, np.ndarray)
+    by_channel = not lazy or len(roi.data.chunks[0]) == n_c  # one channel per source chunk
     if not by_channel:
         import dask.array as da
 
         dask.compute(da.store(roi.data.astype(np.float32), a, lock=False, compute=False))
 
     def source_plane(c):
+        if not lazy:
+            return np.array(roi.data[c], dtype=np.float32)
         if not by_channel:
             return a.read_plane(c)
         import dask.array as da
@@ -257,9 +296,9 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
             if by_channel:
                 a.write_plane(c, plane)
             return None
-        cleaned, removed, stats = hot_pixels_stack(plane[None], [settings_of[c][0]])
+        cleaned, _, stats = hot_pixels_stack(plane[None], [settings_of[c][0]])
         a.write_plane(c, cleaned[0])
-        return stats[0], _sums(removed, plane[None])
+        return stats[0], _sums(plane[None], cleaned)
 
     plane_bytes = n_y * n_x * _ITEM
     hot_results = _in_chains(pass_hot, range(n_c), _chains(HOT_COPIES * plane_bytes))
@@ -283,7 +322,7 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
             band = a.read_rows(used, y0, y1)
             out = _compensate_array(band, values, method=method, parallel=False)
             b.write_rows(used, y0, out)
-            return _sums(band - out, band)
+            return _sums(band, out)
 
         sums = dask.compute(*[dask.delayed(pass_compensate, pure=False)(y) for y in range(0, n_y, rows)])
         removed_sum = np.sum([s[0] for s in sums], axis=0)
@@ -300,9 +339,9 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
         if not run_speckle:
             a.write_plane(c, plane)
             return None
-        cleaned, removed, step_stats = speckle_stack(plane[None], [settings_of[c][1]])
+        cleaned, _, step_stats = speckle_stack(plane[None], [settings_of[c][1]])
         a.write_plane(c, cleaned[0])
-        return step_stats[0], _sums(removed, plane[None])
+        return step_stats[0], _sums(plane[None], cleaned)
 
     if run_speckle or current is not a:
         results = _in_chains(pass_speckle, used, _chains(SPECKLE_COPIES * plane_bytes))
@@ -339,9 +378,12 @@ def _in_chains(function, items, chains: int) -> list:
     return [results[i] for i in items]
 
 
-def _sums(removed: np.ndarray, before: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Per-channel removed and input sums (float64) of a (C, y, x) piece."""
-    return (removed.sum(axis=(1, 2), dtype=np.float64), before.sum(axis=(1, 2), dtype=np.float64))
+def _sums(before: np.ndarray, after: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per-channel removed (``before - after``) and input sums (float64) of a (C, y, x) piece."""
+    from ._staging_kernels import removed_and_input_sums
+
+    return removed_and_input_sums(np.ascontiguousarray(before, np.float32),
+                                  np.ascontiguousarray(after, np.float32))
 
 
 def _stacked(pairs) -> tuple[np.ndarray, np.ndarray]:

@@ -271,10 +271,10 @@ def compute(washed: Washed) -> Washed:
 def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *, spillover=None) -> dict:
     """Wash one ROI and write it atomically; the pixels and the stats come from one pass.
 
-    A numpy ROI is washed in memory. A lazy (dask) ROI is washed in passes over two
-    staging files beside the output (:mod:`plexwash.qc.staging`), so memory stays at a
-    few single-channel planes per thread whatever the number of channels; the pixels
-    equal those of the in-memory wash.
+    The wash runs in passes (:mod:`plexwash.qc.staging`): a lazy (dask) ROI over two
+    staging files beside the output, so memory stays at a few single-channel planes per
+    thread whatever the number of channels; a numpy ROI over two arrays in memory. No
+    removed map is kept, only its sums. The pixels equal those of :func:`wash`.
 
     Returns
     -------
@@ -287,21 +287,16 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
     out_path = Path(out_path)
     if out_path.exists() and roi.path.exists() and out_path.resolve() == roi.path.resolve():
         raise InputError(out_path, "output path is the input; refusing to overwrite raw data")
-    if _is_dask(roi.data):
-        from .staging import Staging, wash_staged
+    from .staging import MemoryStack, Staging, wash_staged
 
-        recipe.check_channels(roi.channels, roi=roi.path)
-        names = [c for c, u in zip(roi.channels, roi.use, strict=True) if u]
-        values = _compensation_values(names, recipe, spillover)
-        notes: list[str] = []
-        with Staging(out_path) as staging:
-            staged, stats = wash_staged(roi, recipe, values, staging=staging, notes=notes)
-            write_stack(out_path, staged, roi.channels, pixel_size=roi.pixel_size,
-                        settings=recipe.output)
-        return {"output": str(out_path), "seconds": time.perf_counter() - started,
-                "stats": stats, "notes": notes}
-    washed = wash(roi, recipe, spillover=spillover)
-    write_stack(out_path, washed.data, washed.channels, pixel_size=washed.pixel_size,
-                settings=recipe.output)
+    recipe.check_channels(roi.channels, roi=roi.path)
+    names = [c for c, u in zip(roi.channels, roi.use, strict=True) if u]
+    values = _compensation_values(names, recipe, spillover)
+    notes: list[str] = []
+    # a numpy ROI is staged in memory; no removed maps are kept, only their sums
+    with Staging(out_path if _is_dask(roi.data) else None) as staging:
+        staged, stats = wash_staged(roi, recipe, values, staging=staging, notes=notes)
+        data = staged.array if isinstance(staged, MemoryStack) else staged
+        write_stack(out_path, data, roi.channels, pixel_size=roi.pixel_size, settings=recipe.output)
     return {"output": str(out_path), "seconds": time.perf_counter() - started,
-            "stats": washed.stats, "notes": list(washed.notes)}
+            "stats": stats, "notes": notes}

@@ -16,6 +16,8 @@ from plexwash.qc.wash import STEPS, wash, wash_to_file
 
 
 def _lazy(roi, chunks):
+    if chunks is None:
+        return roi
     return Roi(da.from_array(roi.data, chunks=chunks), roi.channels, roi.path, roi.labels, roi.use)
 
 
@@ -90,9 +92,11 @@ def test_chains_keep_order_and_bound_the_tasks(monkeypatch):
 # --------------------------------------------------------------------------- the staged wash
 
 
-@pytest.mark.parametrize("chunks", [(1, 96, 80), (7, 64, 128)], ids=["by-channel", "mixed-channels"])
+@pytest.mark.parametrize("chunks", [None, (1, 96, 80), (7, 64, 128)],
+                         ids=["numpy", "by-channel", "mixed-channels"])
 def test_staged_wash_equals_the_in_memory_wash(unseen, tmp_path, chunks):
-    """Chunks of one channel are read plane by plane; others go through the copy pass."""
+    """numpy ROIs are staged in memory; dask chunks of one channel are read plane by
+    plane, others go through the copy pass. All equal :func:`wash` bit for bit."""
     roi, matrix, _ = unseen
     use = tuple(name != "Yb172" for name in roi.channels)  # one pass-through channel
     marked = Roi(roi.data, roi.channels, roi.path, use=use)
