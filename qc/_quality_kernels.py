@@ -6,6 +6,8 @@ releases the GIL (``nogil``) and is cached on disk (``cache=True``).
 
 from __future__ import annotations
 
+import math
+
 import numba as nb
 import numpy as np
 
@@ -70,3 +72,27 @@ def masked_mean_std(values, mask, inside):
                 d = values[y, x] - mean
                 squares += d * d
     return mean, np.sqrt(squares / n)
+
+
+@nb.njit(cache=True, nogil=True)
+def poisson_tail_screen(n, mu, log_alpha, out):
+    """Sort bins for the test ``P(N >= n) < alpha``, N ~ Poisson(mu), by cheap bounds.
+
+    ``out[i]`` becomes 0 (not below: ``n <= mu + sqrt(mu)`` or the series lower bound is
+    at least ``alpha``), 1 (below: the Chernoff upper bound is under ``alpha``) or 2
+    (undecided: the caller asks ``gammainc``). See ``quality._poisson_tail_below``.
+    """
+    for i in range(n.size):
+        ni = n[i]
+        mi = mu[i]
+        if not ni > mi + np.sqrt(mi):
+            out[i] = 0
+            continue
+        log_mu = np.log(mi)
+        upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
+        if upper < log_alpha - 1e-9:
+            out[i] = 1
+            continue
+        series = 1.0 + mi / (ni + 1.0) * (1.0 + mi / (ni + 2.0))
+        lower = ni * log_mu - mi - math.lgamma(ni + 1.0) + np.log(series)
+        out[i] = 0 if lower >= log_alpha + 1e-9 else 2

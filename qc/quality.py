@@ -880,23 +880,14 @@ def _poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarr
     The answer is that of ``gammainc(n, mu) < alpha`` everywhere (the bounds keep a
     margin far above their rounding).
     """
-    n = np.asarray(n, dtype=np.float64)
-    mu = np.asarray(mu, dtype=np.float64)
-    out = np.zeros(n.shape, bool)
-    above = n > mu + np.sqrt(mu)
-    n_a, mu_a = n[above], mu[above]
-    log_alpha = math.log(alpha)
-    with np.errstate(divide="ignore"):
-        log_ratio = np.log(mu_a)
-        upper = -(n_a * (np.log(n_a) - log_ratio) - n_a + mu_a)
-    below = upper < log_alpha - 1e-9
-    unsure = np.flatnonzero(~below)
-    n_u, mu_u = n_a[unsure], mu_a[unsure]
-    series = 1.0 + mu_u / (n_u + 1.0) * (1.0 + mu_u / (n_u + 2.0))
-    lower = n_u * log_ratio[unsure] - mu_u - special.gammaln(n_u + 1.0) + np.log(series)
-    hard = lower < log_alpha + 1e-9
-    below[unsure[hard]] = special.gammainc(n_u[hard], mu_u[hard]) < alpha
-    out[above] = below
+    n = np.ascontiguousarray(n, dtype=np.float64)
+    mu = np.ascontiguousarray(np.broadcast_to(mu, n.shape), dtype=np.float64)
+    verdict = np.empty(n.shape, np.int8)
+    _k.poisson_tail_screen(n.ravel(), mu.ravel(), math.log(alpha), verdict.ravel())
+    out = verdict == 1
+    hard = verdict == 2
+    if hard.any():
+        out[hard] = special.gammainc(n[hard], mu[hard]) < alpha
     return out
 
 
