@@ -6,8 +6,10 @@ step removed (a removed map per channel) and the fraction of each channel's sign
 went, so over-cleaning is visible. Channels that the panel marks ``use = no`` pass
 through untouched and take no part in compensation.
 
-A numpy ROI is washed in memory; a dask ROI stays lazy, chunked (all channels x tile x
-tile) so memory is bounded by chunks, and is computed once when written.
+A numpy ROI is washed in memory; for a dask ROI :func:`wash` returns a lazy graph
+(chunks of all channels x tile x tile) for notebooks and previews. Writing a wash
+(:func:`wash_to_file`, every run) goes through the passes of :mod:`plexwash.qc.staging`
+instead, which keep memory at a few single-channel planes and give the same pixels.
 """
 
 from __future__ import annotations
@@ -160,8 +162,8 @@ def _compensation_values(names, recipe: Recipe, spillover):
     return align_spillover(matrix, names, source=source)
 
 
-#: Bytes of one wash chunk (all channels x edge x edge float32): a few chunks and their
-#: halos are in memory at once, so this bounds a lazy wash's memory whatever the stack size.
+#: Bytes of one chunk of the lazy graph :func:`wash` returns for a dask ROI (all channels
+#: x edge x edge float32). Writing a wash does not use that graph: see ``staging``.
 CHUNK_BYTES = 64 * 2**20
 
 
