@@ -271,7 +271,7 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
     settings_of = dict(zip(used, zip(hot, speckle, strict=True), strict=True))
 
     a = staging.stack("a", (n_c, n_y, n_x))
-    lazy = hasattr(roi.data, "chunks") and not isinstance(roi.data, np.ndarray)
+    lazy = type(roi.data).__module__.startswith("dask")  # else any array: numpy, zarr
     by_channel = not lazy or len(roi.data.chunks[0]) == n_c  # one channel per source chunk
     if not by_channel:
         import dask.array as da
