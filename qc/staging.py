@@ -1,4 +1,4 @@
-"""Washing a lazy ROI to a file in passes over uncompressed staging files.
+"""Washing an ROI to a file in passes over staging stacks (files for a lazy ROI).
 
 A stack larger than memory cannot be washed as one array, and a generic chunked graph
 (each step a ``map_overlap``) keeps the halos of neighbouring chunks of every step
@@ -28,6 +28,10 @@ Memory is a few planes of one channel per thread (16 MB for 2000 x 2000 float32)
 whatever the number of channels; disk is two float32 copies of the stack, in a hidden
 ``.NAME.spill-*`` folder beside the output that is removed when the wash ends (a run
 sweeps leftovers of a killed one), or under ``$PLEXWASH_STAGING_DIR`` when set.
+
+An ROI held in memory (numpy) goes through the same passes with two numpy arrays as
+staging (:class:`MemoryStack`): no removed map is kept, only its sums, which is faster
+than :func:`plexwash.qc.wash` when only the washed stack and its numbers are wanted.
 """
 
 from __future__ import annotations
