@@ -1,6 +1,6 @@
 """Compiled kernels behind :mod:`plexwash.qc.quality` (numba).
 
-Each works on one 2-D channel in one pass without temporaries the size of the channel,
+Each works in one pass without temporaries the size of its input,
 releases the GIL (``nogil``) and is cached on disk (``cache=True``).
 """
 

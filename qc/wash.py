@@ -271,7 +271,7 @@ def compute(washed: Washed) -> Washed:
 
 
 def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *, spillover=None) -> dict:
-    """Wash one ROI and write it atomically; the pixels and the stats come from one pass.
+    """Wash one ROI and write it atomically; the pixels and the stats come from the same passes.
 
     The wash runs in passes (:mod:`plexwash.qc.staging`): a lazy (dask) ROI over two
     staging files beside the output, so memory stays at a few single-channel planes per
