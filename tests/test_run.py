@@ -556,9 +556,10 @@ def test_kill_9_loses_only_the_rois_in_flight(bigger_cohort, bigger_reference, t
 
 
 @pytest.mark.slow
-def test_ctrl_c_stops_cleanly(bigger_cohort, tmp_path):
+@pytest.mark.parametrize("lazy", [False, True], ids=["in-memory", "staged"])
+def test_ctrl_c_stops_cleanly(bigger_cohort, tmp_path, lazy):
     out = tmp_path / "run"
-    process = _start_driver(bigger_cohort, out)
+    process = _start_driver(bigger_cohort, out, lazy=lazy)
     _wait_for_done_records(out, 1, process)
     time.sleep(0.1)
     process.send_signal(signal.SIGINT)
