@@ -183,26 +183,35 @@ def read_panel(path: str | Path) -> Panel:
     return Panel(tuple(channels), tuple(labels), tuple(use), path)
 
 
-def _read_csv_rows(path: Path, *, required: Sequence[str]) -> list[tuple[int, dict]]:
-    """Rows of a small CSV as (line number, dict), checking the header names ``required``."""
-    if not path.is_file():
+def read_csv_cells(path: Path) -> list[tuple[int, list[str]]]:
+    """The non-blank rows of a small CSV file as (line number, cells).
+
+    One-line errors for a missing, unreadable or empty file; the callers check the cells.
+    """
+    if not path.exists():
         raise InputError(path, "file not found")
     try:
         text = path.read_text(encoding="utf-8-sig")
     except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(path, f"cannot read as text ({exc.__class__.__name__})") from None
-    if not text.strip():
+        raise InputError(path, f"cannot read ({exc})") from None
+    rows = [(line, cells) for line, cells in enumerate(csv.reader(text.splitlines()), start=1)
+            if any(cell.strip() for cell in cells)]
+    if not rows:
         raise InputError(path, "file is empty")
-    reader = csv.DictReader(text.splitlines())
-    header = [h.strip() for h in (reader.fieldnames or [])]
+    return rows
+
+
+def _read_csv_rows(path: Path, *, required: Sequence[str]) -> list[tuple[int, dict]]:
+    """Rows of a small CSV as (line number, dict), checking the header names ``required``."""
+    rows = read_csv_cells(path)
+    header = [h.strip() for h in rows[0][1]]
     missing = [c for c in required if c not in header]
     if missing:
         raise InputError(path, f"missing column(s) {', '.join(missing)}; expected {','.join(required)}")
-    reader.fieldnames = header
-    rows = [(n + 2, row) for n, row in enumerate(reader) if any((v or "").strip() for v in row.values())]
-    if not rows:
+    body = [(line, dict(zip(header, cells, strict=False))) for line, cells in rows[1:]]
+    if not body:
         raise InputError(path, "no rows below the header")
-    return rows
+    return body
 
 
 def _refuse_duplicates(path, names: Sequence[str], what: str, *,

@@ -183,18 +183,12 @@ def read_spillover(path: str | Path) -> SpilloverMatrix:
 
 def _read_matrix_csv(path: Path, *, channels: tuple[str, ...] | None = None):
     """Parse one matrix CSV; with ``channels`` given, reorder to (and require) them."""
-    if not path.exists():
-        raise InputError(path, "file not found")
+    from .io import read_csv_cells
+
     if path.is_dir():
         raise InputError(path, "is a folder, expected a spillover CSV")
-    try:
-        text = path.read_text(encoding="utf-8-sig")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(path, f"cannot read ({exc})") from None
-    rows = [r for r in csv.reader(io.StringIO(text)) if any(cell.strip() for cell in r)]
-    if not rows:
-        raise InputError(path, "file is empty")
-    header = [cell.strip() for cell in rows[0]]
+    rows = read_csv_cells(path)
+    header = [cell.strip() for cell in rows[0][1]]
     if header[0]:
         raise InputError(path, "the first cell must be empty (row 1 = receiving channel names)")
     receivers = header[1:]
@@ -202,7 +196,7 @@ def _read_matrix_csv(path: Path, *, channels: tuple[str, ...] | None = None):
         raise InputError(path, "row 1 must name every receiving channel")
     _refuse_duplicate_names(path, receivers, "column")
     sources, table = [], []
-    for line, row in enumerate(rows[1:], start=2):
+    for line, row in rows[1:]:
         if len(row) != len(header):
             raise InputError(path, f"line {line} has {len(row)} cells, expected {len(header)}")
         name = row[0].strip()
@@ -917,18 +911,9 @@ def _check_bootstrap(n_boot, level, tile) -> None:
 
 def _read_controls(controls_csv: Path, panel):
     """Rows of controls.csv, each control read and put in the first control's channel order."""
-    from .io import read_panel, read_roi
+    from .io import read_csv_cells, read_panel, read_roi
 
-    if not controls_csv.exists():
-        raise InputError(controls_csv, "file not found")
-    try:
-        text = controls_csv.read_text(encoding="utf-8-sig")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(controls_csv, f"cannot read ({exc})") from None
-    reader = csv.reader(io.StringIO(text))
-    rows = [(line, r) for line, r in enumerate(reader, start=1) if any(c.strip() for c in r)]
-    if not rows:
-        raise InputError(controls_csv, "file is empty")
+    rows = read_csv_cells(controls_csv)
     header = [c.strip().lower() for c in rows[0][1]]
     if "file" not in header or "channel" not in header:
         raise InputError(controls_csv, "header must have the columns file,channel")
