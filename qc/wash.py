@@ -246,15 +246,6 @@ def finish_stats(rows: list[dict]) -> list[dict]:
     return rows
 
 
-def lazy_stats(washed: Washed) -> list:
-    """The dask values inside the stats that still need computing."""
-    out = []
-    for rows in washed.stats.values():
-        for row in rows:
-            out.extend(v for v in row.values() if _is_dask(v))
-    return out
-
-
 def compute(washed: Washed) -> Washed:
     """Compute a lazy wash in memory (small stacks, notebooks); numpy washes return as is."""
     if not washed.is_lazy:
