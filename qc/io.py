@@ -322,6 +322,23 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     return Roi(array, tuple(channels), path, tuple(labels), tuple(use), pixel_size)
 
 
+def channel_plane(data, c: int, *, dtype=None, scheduler=None) -> np.ndarray:
+    """Channel ``c`` of a (C, Y, X) stack as a numpy array (of ``dtype`` when given).
+
+    The chunks of a dask stack are stored straight into the new array, without the
+    copy that concatenating them would make. ``scheduler`` is dask's (e.g.
+    ``"synchronous"`` inside a task that already runs on dask's threads).
+    """
+    if not _is_dask(data):
+        return np.asarray(data[c], dtype=dtype)
+    import dask.array as da
+
+    plane = np.empty(tuple(data.shape[1:]), dtype or data.dtype)
+    source = data[c] if plane.dtype == data.dtype else data[c].astype(plane.dtype)
+    da.store(source, plane, lock=False, scheduler=scheduler)
+    return plane
+
+
 def _refuse_non_finite(path: Path, array) -> None:
     if np.dtype(array.dtype).kind != "f":
         return

@@ -88,6 +88,7 @@ from threadpoolctl import threadpool_limits
 
 from . import _quality_kernels as _k
 from .errors import InputError
+from .io import channel_plane
 from .settings import setting
 
 #: Channel-level flags, in the order they are listed.
@@ -464,7 +465,7 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
 
     def one(c):
         # the plane read from a lazy stack is released as soon as its spike-free copy exists
-        prepared = _prepare(_plane(stack, c), per_channel[c], names[c],
+        prepared = _prepare(channel_plane(stack, c), per_channel[c], names[c],
                             dtype=getattr(stack, "dtype", None))
         cq, summary = _measure_prepared(prepared, per_channel[c], dtype_max, names[c])
         design[c + 1] = summary.bins.ravel()
@@ -1049,17 +1050,6 @@ def _judge_with_ghosts(results: list[ChannelQuality], design: np.ndarray, shape,
         return _ghost_test(c, cq, design, gram, shape, names, s, matrix)
 
     return _map_threads(judge, range(len(results)), threads)
-
-
-def _plane(stack, c: int):
-    """Channel ``c``; of a dask stack, computed straight into one array (no concatenation)."""
-    if not type(stack).__module__.startswith("dask"):
-        return stack[c]
-    import dask.array as da
-
-    plane = np.empty(stack.shape[1:], stack.dtype)
-    da.store(stack[c], plane, lock=False)
-    return plane
 
 
 def _map_threads(function, items, threads: int) -> list:

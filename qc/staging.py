@@ -262,6 +262,7 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
     """
     import dask
 
+    from .io import channel_plane
     from .speckle import hot_pixels_stack, speckle_stack
     from .wash import _step_rows
 
@@ -283,15 +284,9 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
         dask.compute(da.store(roi.data.astype(np.float32), a, lock=False, compute=False))
 
     def source_plane(c):
-        if not lazy:
-            return np.array(roi.data[c], dtype=np.float32)
         if not by_channel:
             return a.read_plane(c)
-        import dask.array as da
-
-        plane = np.empty((n_y, n_x), np.float32)  # chunks land in place: no concatenation
-        da.store(roi.data[c].astype(np.float32), plane, lock=False, scheduler="synchronous")
-        return plane
+        return channel_plane(roi.data, c, dtype=np.float32, scheduler="synchronous")
 
     # pass 1: hot pixels (and the float32 copy of pass-through channels)
     def pass_hot(c):
