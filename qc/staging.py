@@ -262,7 +262,7 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
     """
     import dask
 
-    from .io import channel_plane
+    from .io import _is_dask, channel_plane
     from .speckle import hot_pixels_stack, speckle_stack
     from .wash import _step_rows
 
@@ -276,7 +276,7 @@ def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[
     settings_of = dict(zip(used, zip(hot, speckle, strict=True), strict=True))
 
     a = staging.stack("a", (n_c, n_y, n_x))
-    lazy = type(roi.data).__module__.startswith("dask")  # else any array: numpy, zarr
+    lazy = _is_dask(roi.data)  # else any array: numpy, zarr
     by_channel = not lazy or len(roi.data.chunks[0]) == n_c  # one channel per source chunk
     if not by_channel:
         import dask.array as da
