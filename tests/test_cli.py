@@ -111,7 +111,8 @@ def test_wash_writes_ome_tiff_with_channel_names(tmp_path):
     with tifffile.TiffFile(out) as tif:
         import ome_types  # outside reader of the OME-XML
 
-        ome = ome_types.from_xml(tif.ome_metadata)
+        # validated against the OME 2016-06 XML schema (ome_types, validate=True)
+        ome = ome_types.from_xml(tif.ome_metadata, validate=True)
         names = [c.name for c in ome.images[0].pixels.channels]
         assert ome.images[0].pixels.physical_size_x == pytest.approx(1.0)
         data = tif.asarray()

@@ -137,8 +137,8 @@ def test_ome_xml_names_channels_in_order(info):
     assert len(files) == 3 + len(info["estimable_sources"])
     for path in files:
         with tifffile.TiffFile(path) as tif:
-            # OME-XML parsed and validated against the OME 2016-06 schema by ome_types
-            ome = ome_types.from_xml(tif.ome_metadata)
+            # OME-XML validated against the OME 2016-06 XML schema by ome_types (validate=True)
+            ome = ome_types.from_xml(tif.ome_metadata, validate=True)
             shape, axes = tif.series[0].shape, tif.series[0].axes
         pixels = ome.images[0].pixels
         assert [c.name for c in pixels.channels] == names

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import os
 import stat
+import warnings
 
 import dask.array as da
 import numpy as np
@@ -29,6 +30,26 @@ NAMES = ["Nd145", "Nd146", "Ir191"]
 # ----------------------------------------------------------------- OME-TIFF round trip
 
 
+def test_schema_validation_rejects_what_parsing_alone_accepts(tmp_path):
+    """The check above can fail: with validate=True, ome_types refuses an attribute the
+    OME 2016-06 schema does not define and an ID outside its pattern; without it, both pass."""
+    import ome_types
+
+    path = write_ome_tiff(tmp_path / "r.ome.tiff", np.zeros((3, 16, 16), np.uint8), NAMES)
+    with tifffile.TiffFile(path) as tif:
+        xml = tif.ome_metadata
+    ome_types.from_xml(xml, validate=True)
+    unknown = xml.replace("<Pixels ", '<Pixels Unknown="1" ', 1)
+    bad_id = xml.replace('ID="Image:0"', 'ID="not an id"', 1)
+    assert unknown != xml and bad_id != xml
+    for text in (unknown, bad_id):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # ome_types warns as it recasts the bad ID
+            ome_types.from_xml(text)  # parsing alone accepts it
+        with pytest.raises(ValueError, match="Validation of"):  # ome_types' ValidationError
+            ome_types.from_xml(text, validate=True)
+
+
 @pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.float32])
 def test_ome_tiff_round_trip_parsed_by_ome_types(tmp_path, dtype):
     rng = np.random.default_rng(1)
@@ -43,10 +64,11 @@ def test_ome_tiff_round_trip_parsed_by_ome_types(tmp_path, dtype):
         assert tif.pages[0].compression == tifffile.COMPRESSION.ZSTD
         np.testing.assert_array_equal(tif.asarray(), stack)
         xml = tif.ome_metadata
-    # Outside reader 2: ome-types parses the OME-XML against the OME schema model.
+    # Outside reader 2: ome-types validates the OME-XML against the OME 2016-06 XML schema
+    # (validate=True; without it ome_types only parses) and parses it.
     import ome_types
 
-    ome = ome_types.from_xml(xml)
+    ome = ome_types.from_xml(xml, validate=True)
     pixels = ome.images[0].pixels
     assert [c.name for c in pixels.channels] == NAMES
     assert pixels.physical_size_x == pytest.approx(0.5)
