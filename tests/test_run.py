@@ -162,9 +162,52 @@ def test_quality_csv_rows_and_columns(reference, cohort):
     assert all(r["sbr"] is not None and r["sbr"] > 0 for r in rows)
     washed = [r for r in rows if r["stage"] == "washed"]
     assert all("removed_speckle" in r for r in washed)
-    # the failed stain (Gd160) is judged empty in most ROIs, raw or washed (generator truth)
-    failed_rows = [r for r in rows if r["channel"] == "Gd160"]
-    assert sum("empty" in r["flags"] for r in failed_rows) >= len(failed_rows) // 2
+
+
+
+def _truth_flags(cohort: Path):
+    """Per (roi, channel): the channel flags the generator's truth calls for, and the striped ROI.
+
+    ``empty`` where the channel holds no true signal in that ROI (truth ``signal`` all 0:
+    the failed stain everywhere, and a stain whose cells are missing from a small ROI).
+    No other channel flag is planted: no count reaches the uint16 maximum (``saturated``),
+    and every stain with signal is well above the SBR limit (``low-sbr``; the dim stain's
+    cells hold 1-3 counts a pixel on a background of 0.02-0.3, ranges checked in
+    test_demo_cohort.py).
+    """
+    info = json.loads((cohort / "truth" / "truth.json").read_text())
+    expected = {}
+    for roi in info["rois"]:
+        with np.load(cohort / "truth" / f"{roi['name']}.npz") as z:
+            signal = z["signal"]
+        for k, channel in enumerate(info["channels"]):
+            expected[roi["name"], channel] = {"empty"} if not signal[k].any() else set()
+    return expected, info["striped_roi"]
+
+
+def test_quality_csv_channel_flags_match_the_generator_truth(reference, cohort):
+    rows = read_quality_csv(reference["out"] / QUALITY)
+    expected, striped_roi = _truth_flags(cohort)
+    assert any(flags for flags in expected.values())  # the fixture plants empty channels
+    for name in _names(cohort):
+        raw = np.asarray(read_roi(cohort / "cohort" / f"{name}.ome.tiff").data)
+        assert raw.max() < np.iinfo(np.uint16).max  # nothing saturated in the input
+    for row in rows:
+        channel_flags = set(row["flags"]) - {"striped"}
+        assert channel_flags == expected[row["roi"], row["channel"]], row
+        if row["roi"] == striped_roi:
+            assert "striped" in row["flags"], row
+
+
+@pytest.mark.xfail(strict=True, reason="known limit of the stripe test: on ROIs of 64-112 px "
+                   "with 8 channels a gap between cells spans a whole line, so ROIs without "
+                   "stripes are flagged too (found by issue 17; the demo's 256-384 px ROIs are "
+                   "flagged right, test_cli.py)")
+def test_quality_csv_stripe_flags_match_the_generator_truth(reference, cohort):
+    rows = read_quality_csv(reference["out"] / QUALITY)
+    _, striped_roi = _truth_flags(cohort)
+    flagged = {r["roi"] for r in rows if "striped" in r["flags"]}
+    assert flagged == {striped_roi}
 
 
 def test_quality_csv_modified_z_follows_the_handbook(reference):
