@@ -318,8 +318,9 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
            ainv, h, g, out, start, stop, mode, tol_rel, max_sweeps, max_exchanges, work):
     """Compensate pixels ``start:stop`` of the component whose channels are ``idx``.
 
-    ``work`` is scratch from :func:`_workspace`. Returns the number of pixels the sweeps
-    left to the pivoting solver.
+    ``work`` is scratch from :func:`_workspace`. Returns ``(pivoted, last_resort)``: the
+    pixels solved by pivoting (in sweep mode, those the sweeps left over) and, of those,
+    the ones the Lawson-Hanson fallback solved.
     """
     m = idx.shape[0]
     n = stop - start
@@ -336,7 +337,8 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
             yb[r, p] = y[row, start + p]
         for p in range(n, LANES):
             yb[r, p] = 0.0
-    handed_over = 0
+    pivoted = 0
+    last_resort = 0
     if mode == MODE_SWEEP:
         for p in range(LANES):
             limit[p] = 0.0
@@ -385,8 +387,9 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
             # Only reachable when rounding stalls the sweeps: solve those pixels exactly.
             for p in range(n):
                 if active[p] > 0.0:
-                    handed_over += 1
-                    _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges)
+                    pivoted += 1
+                    if _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges) < 0:
+                        last_resort += 1
     else:
         every = np.arange(m)
         for r in range(m):
@@ -404,12 +407,14 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
                     if x[r, p] < 0.0:
                         negative = True
                 if negative:
-                    _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges)
+                    pivoted += 1
+                    if _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges) < 0:
+                        last_resort += 1
     for r in range(m):
         row = idx[r]
         for p in range(n):
             out[row, start + p] = x[r, p]
-    return handed_over
+    return pivoted, last_resort
 
 
 @njit(cache=True)
@@ -420,7 +425,10 @@ def _workspace(m):
 
 @njit(cache=True, fastmath=_FAST, error_model="numpy")
 def _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges):
-    """Solve pixel ``p`` of a block exactly by pivoting; the answer replaces ``x[:, p]``."""
+    """Solve pixel ``p`` of a block exactly by pivoting; the answer replaces ``x[:, p]``.
+
+    Returns what :func:`_pixel_bpp` returns (-1: the Lawson-Hanson fallback solved it).
+    """
     m = yb.shape[0]
     yv = np.empty(m)
     x0 = np.zeros(m)
@@ -436,9 +444,10 @@ def _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges):
     fs = np.empty((5, m))
     low = np.empty((m, m))
     iscr = np.empty((3, m), dtype=np.int64)
-    _pixel_bpp(yv, x0, b, h, g, xv, max_exchanges, fs, low, iscr)
+    used = _pixel_bpp(yv, x0, b, h, g, xv, max_exchanges, fs, low, iscr)
     for r in range(m):
         x[r, p] = xv[r]
+    return used
 
 
 #: Blocks handled by one task of the parallel loop (its scratch is allocated once).
@@ -450,23 +459,28 @@ def compensate_parallel(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr,
                         g_dinv, ainv, h, g, out, mode, tol_rel, max_sweeps, max_exchanges):
     """Compensate one spillover component of a (C, N) pixel array; threads over blocks.
 
-    Returns how many pixels the sweeps handed to the pivoting solver.
+    Returns ``(pivoted, last_resort)`` summed over the blocks (see :func:`_block`).
     """
     npix = y.shape[1]
     nblocks = (npix + LANES - 1) // LANES
     ntasks = (nblocks + BLOCKS_PER_TASK - 1) // BLOCKS_PER_TASK
-    handed_over = 0
+    pivoted = 0
+    last_resort = 0
     for task in prange(ntasks):
         work = _workspace(idx.shape[0])
-        count = 0
+        n_pivot = 0
+        n_last = 0
         for blk in range(task * BLOCKS_PER_TASK, min(nblocks, (task + 1) * BLOCKS_PER_TASK)):
             start = blk * LANES
             stop = min(npix, start + LANES)
-            count += _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val,
-                            g_dinv, ainv, h, g, out, start, stop, mode, tol_rel, max_sweeps,
-                            max_exchanges, work)
-        handed_over += count
-    return handed_over
+            a, b = _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val,
+                          g_dinv, ainv, h, g, out, start, stop, mode, tol_rel, max_sweeps,
+                          max_exchanges, work)
+            n_pivot += a
+            n_last += b
+        pivoted += n_pivot
+        last_resort += n_last
+    return pivoted, last_resort
 
 
 @njit(cache=True, nogil=True)
@@ -479,11 +493,14 @@ def compensate_serial(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g
     npix = y.shape[1]
     nblocks = (npix + LANES - 1) // LANES
     work = _workspace(idx.shape[0])
-    handed_over = 0
+    pivoted = 0
+    last_resort = 0
     for blk in range(nblocks):
         start = blk * LANES
         stop = min(npix, start + LANES)
-        handed_over += _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col,
-                              g_val, g_dinv, ainv, h, g, out, start, stop, mode, tol_rel,
-                              max_sweeps, max_exchanges, work)
-    return handed_over
+        a, b = _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col,
+                      g_val, g_dinv, ainv, h, g, out, start, stop, mode, tol_rel,
+                      max_sweeps, max_exchanges, work)
+        pivoted += a
+        last_resort += b
+    return pivoted, last_resort

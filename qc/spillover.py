@@ -706,8 +706,13 @@ def _csr(matrix: np.ndarray):
 
 
 def _compensate_array(array: np.ndarray, values: np.ndarray, *, method: str, parallel: bool,
-                      max_sweeps: int | None = None, max_exchanges: int = _MAX_EXCHANGES) -> np.ndarray:
-    """numpy kernel driver; ``max_sweeps``/``max_exchanges`` exist to test the fallbacks."""
+                      max_sweeps: int | None = None, max_exchanges: int = _MAX_EXCHANGES,
+                      counts: dict | None = None) -> np.ndarray:
+    """numpy kernel driver; ``max_sweeps``/``max_exchanges`` exist to test the fallbacks.
+
+    ``counts``, when given, gains the pixels solved by pivoting (``"pivoted"``) and, of
+    those, by the Lawson-Hanson fallback (``"last_resort"``), so a test can see they ran.
+    """
     n_channels = array.shape[0]
     if array.dtype not in (np.float32, np.float64):
         array = array.astype(np.float32)
@@ -727,7 +732,11 @@ def _compensate_array(array: np.ndarray, values: np.ndarray, *, method: str, par
                 continue
             mode = _nnls.MODE_LINEAR if method == "linear" else comp.mode
             sweeps = comp.max_sweeps if max_sweeps is None else max_sweeps
-            kernel(flat, comp.idx, *comp.arrays, out, mode, _SWEEP_TOLERANCE, sweeps, max_exchanges)
+            pivoted, last_resort = kernel(flat, comp.idx, *comp.arrays, out, mode, _SWEEP_TOLERANCE,
+                                          sweeps, max_exchanges)
+            if counts is not None:
+                counts["pivoted"] = counts.get("pivoted", 0) + int(pivoted)
+                counts["last_resort"] = counts.get("last_resort", 0) + int(last_resort)
     return out.reshape(array.shape)
 
 

@@ -110,14 +110,23 @@ def test_strong_spillover_uses_pivoting_and_matches_scipy():
     assert comp.mode == _nnls.MODE_PIVOT  # not a max-norm contraction: sweeps not used
     stack = count_stack(s, (20, 19), rng)
     out = compensate(stack, s)
+    counts = {}
+    again = _compensate_array(stack, s, method="nnls", parallel=True, counts=counts)
+    np.testing.assert_array_equal(again, out)
+    assert counts["pivoted"] > 0 and counts["last_resort"] == 0  # the pivoting path ran
     assert_matches_scipy(stack, s, out)
     assert kkt_violation(stack, s, out) < 1e-5
 
 
 def test_sweeps_handing_pixels_to_pivoting_stay_exact(physics):
     s, stack = physics
+    assert {c.mode for c in _prepare_components(s) if c.idx.size > 1} == {_nnls.MODE_SWEEP}
+    normal = {}
+    _compensate_array(stack, s, method="nnls", parallel=True, counts=normal)
     # One sweep cannot converge: every unfinished pixel goes to the pivoting solver.
-    out = _compensate_array(stack, s, method="nnls", parallel=True, max_sweeps=1)
+    counts = {}
+    out = _compensate_array(stack, s, method="nnls", parallel=True, max_sweeps=1, counts=counts)
+    assert counts["pivoted"] > 10 * max(normal["pivoted"], 1)  # the hand-over really ran
     assert_matches_scipy(stack, s, out)
     np.testing.assert_allclose(out, compensate(stack, s), rtol=1e-5, atol=1e-4)
 
@@ -126,7 +135,10 @@ def test_lawson_hanson_last_resort_is_exact(physics):
     s, stack = physics
     # no sweeps to speak of and no pivoting exchanges: pixels whose first partition guess
     # is wrong are solved by Lawson-Hanson from scratch
-    out = _compensate_array(stack, s, method="nnls", parallel=False, max_sweeps=1, max_exchanges=0)
+    counts = {}
+    out = _compensate_array(stack, s, method="nnls", parallel=False, max_sweeps=1,
+                            max_exchanges=0, counts=counts)
+    assert counts["last_resort"] > 0  # the Lawson-Hanson fallback really ran
     assert_matches_scipy(stack, s, out, every=3)
 
 
@@ -194,7 +206,27 @@ def test_inputs_untouched_integer_input_and_matrix_object(physics):
     np.testing.assert_array_equal(counts, before)
     assert out.dtype == np.float32
     np.testing.assert_allclose(out, compensate(stack, s), rtol=1e-6, atol=1e-5)
-    np.testing.assert_array_equal(compensate(stack, s), compensate(stack, s))  # deterministic
+
+
+
+def test_result_does_not_depend_on_the_thread_count(physics):
+    """Deterministic across settings that could change it: numba's thread count (1, 2 and
+    the machine's) and the serial kernel that dask's threads call."""
+    import numba
+
+    s, stack = physics
+    before = numba.get_num_threads()
+    results = []
+    try:
+        for threads in sorted({1, min(2, numba.config.NUMBA_NUM_THREADS),
+                               numba.config.NUMBA_NUM_THREADS}):
+            numba.set_num_threads(threads)
+            results.append(_compensate_array(stack, s, method="nnls", parallel=True))
+    finally:
+        numba.set_num_threads(before)
+    results.append(_compensate_array(stack, s, method="nnls", parallel=False))
+    for other in results[1:]:
+        np.testing.assert_array_equal(other, results[0])
 
 
 def test_bad_matrix_or_method_refused(physics):

@@ -7,6 +7,7 @@ own output for the same settings.
 from __future__ import annotations
 
 import dataclasses
+import threading
 
 import numpy as np
 import pytest
@@ -269,9 +270,38 @@ def test_spillover_estimate_from_controls_and_tissue(make_napari_viewer, qtbot, 
 # --------------------------------------------------------------------------- Run
 
 
-def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohort, tmp_path):
+class BlockedWash:
+    """A hook in place of ``run.wash_one``: the ROI number ``block`` (1-based) enters the hook
+    and waits there, running Python (where the studio's cancel interrupt lands), until an
+    interrupt ends it; every other ROI is washed as usual. Records what happened."""
+
+    def __init__(self, real, block: int):
+        self.real, self.block = real, block
+        self.calls: list[str] = []
+        self.interrupted: list[str] = []
+        self.release = threading.Event()  # never set: only an interrupt ends the wait
+
+    def __call__(self, job):
+        self.calls.append(job["roi"])
+        if len(self.calls) == self.block:
+            try:
+                for _ in range(WAIT_MS // 10):  # bounded, so a broken cancel fails, not hangs
+                    if self.release.wait(0.01):
+                        break
+            except KeyboardInterrupt:
+                self.interrupted.append(job["roi"])
+                raise
+        return self.real(job)
+
+
+def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohort, tmp_path,
+                                                monkeypatch):
+    """Cancel while the first ROI is in flight: nothing is recorded; a rerun washes both."""
+    import plexwash.qc.run as run_module
     from plexwash.qc.run import read_ledger
 
+    hook = BlockedWash(run_module.wash_one, block=1)
+    monkeypatch.setattr(run_module, "wash_one", hook)
     viewer = make_napari_viewer()
     cohort_widget = dock(viewer, "Cohort")
     run = dock(viewer, "Run")
@@ -282,16 +312,18 @@ def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohor
     run.output.set_path(out)
     worker = run.run()
     assert not run.run_button.isEnabled() and run.cancel_button.isEnabled()
+    qtbot.waitUntil(lambda: len(hook.calls) == 1, timeout=WAIT_MS)  # first ROI in flight
     run.cancel()
     wait(qtbot, worker)
+    assert hook.interrupted == [hook.calls[0]] and len(hook.calls) == 1
     assert run.summary is None and "cancelled" in run.status.text()
     assert run.run_button.isEnabled() and not run.cancel_button.isEnabled()
-    done_before = [r for r in read_ledger(out) if r["status"] == "done"]
-    assert len(done_before) < 2
+    assert read_ledger(out) == []
 
+    monkeypatch.setattr(run_module, "wash_one", hook.real)
     wait(qtbot, run.run())  # rerun: resumes, finishes
-    assert run.summary is not None and run.summary.done + run.summary.skipped == 2
-    assert run.summary.failed == 0
+    assert run.summary is not None
+    assert (run.summary.done, run.summary.skipped, run.summary.failed) == (2, 0, 0)
     for path in list_cohort(cohort / "cohort"):
         assert (out / path.name).is_file()
     assert cohort_widget.table.item(0, 2).text() not in ("—", "")  # washed flags arrived
@@ -300,40 +332,28 @@ def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohor
 def test_cancel_interrupts_a_run_between_rois(make_napari_viewer, qtbot, cohort, tmp_path, monkeypatch):
     """Cancel while the second ROI is in flight: the first stays done, the second is not
     recorded and leaves no temporary file; a rerun skips the first and washes the second."""
-    import time
-
     import plexwash.qc.run as run_module
     from plexwash.qc.run import read_ledger
 
-    real = run_module.wash_one
-    calls = []
-
-    def slow_second(job):  # the second ROI takes long enough to be cancelled in flight
-        calls.append(job["roi"])
-        if len(calls) == 2:
-            end = time.monotonic() + 30
-            while time.monotonic() < end:
-                time.sleep(0.01)
-        return real(job)
-
-    monkeypatch.setattr(run_module, "wash_one", slow_second)
+    hook = BlockedWash(run_module.wash_one, block=2)
+    monkeypatch.setattr(run_module, "wash_one", hook)
     viewer = make_napari_viewer()
     run = dock(viewer, "Run")
     run.cohort.set_path(cohort / "cohort")
     out = tmp_path / "run"
     run.output.set_path(out)
     worker = run.run()
-    qtbot.waitUntil(lambda: len(calls) == 2, timeout=WAIT_MS)
-    started = time.monotonic()
+    qtbot.waitUntil(lambda: len(hook.calls) == 2, timeout=WAIT_MS)
     run.cancel()
     wait(qtbot, worker)
-    assert time.monotonic() - started < 10  # not the 30 s of the slow ROI
+    # the blocked ROI was ended by the interrupt, not by its wait running out
+    assert hook.interrupted == [hook.calls[1]] and not hook.release.is_set()
     assert "cancelled" in run.status.text() and run.summary is None
     records = read_ledger(out)
-    assert [r["status"] for r in records] == ["done"]
+    assert [(r["roi"], r["status"]) for r in records] == [(hook.calls[0], "done")]
     assert not [p for p in out.iterdir() if ".partial-" in p.name or ".spill-" in p.name]
 
-    monkeypatch.setattr(run_module, "wash_one", real)
+    monkeypatch.setattr(run_module, "wash_one", hook.real)
     wait(qtbot, run.run())
     assert (run.summary.done, run.summary.skipped, run.summary.failed) == (1, 1, 0)
 

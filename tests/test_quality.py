@@ -100,6 +100,31 @@ def _cells_image(seed, *, size=256, background=10.0, foreground=100.0, n=25, rad
     return rng.poisson(np.where(mask, foreground, background)).astype(np.uint16), mask
 
 
+def otsu_by_exhaustive_search(image, nbins: int = 256) -> float:
+    """Otsu's threshold found by trying every split of the histogram one by one.
+
+    Otsu (1979), IEEE Trans. Systems, Man, and Cybernetics 9(1):62-66: the threshold
+    maximises the between-class variance w0 w1 (mu0 - mu1)^2 of the grey-level histogram.
+    Here the histogram has ``nbins`` equal bins over [min, max], each split is scored from
+    its own sums (no cumulative shortcut) and the threshold is the centre of the last bin
+    of the lower class (the convention of skimage.filters.threshold_otsu, whose pixels
+    above the threshold are foreground). Independent of skimage and of the engine.
+    """
+    counts, edges = np.histogram(np.ravel(image), bins=nbins)
+    centres = (edges[:-1] + edges[1:]) / 2
+    best_score, best = -1.0, None
+    for k in range(1, nbins):
+        n0, n1 = counts[:k].sum(), counts[k:].sum()
+        if n0 == 0 or n1 == 0:
+            continue
+        mu0 = (counts[:k] * centres[:k]).sum() / n0
+        mu1 = (counts[k:] * centres[k:]).sum() / n1
+        score = n0 * n1 * (mu0 - mu1) ** 2
+        if score > best_score:
+            best_score, best = score, centres[k - 1]
+    return float(best)
+
+
 # --------------------------------------------------------------------------- split, SBR, SNR
 
 
@@ -114,6 +139,8 @@ def test_threshold_is_otsu_of_smoothed_log(sigma):
         transformed = ndimage.gaussian_filter(transformed, sigma, mode="reflect")
     expected = threshold_otsu(transformed)  # reference: skimage.filters.threshold_otsu
     assert q.threshold == pytest.approx(np.expm1(expected), rel=1e-12)
+    # and Otsu's own definition, by exhaustive search (Otsu 1979), independent of skimage
+    assert q.threshold == pytest.approx(np.expm1(otsu_by_exhaustive_search(transformed)), rel=1e-6)
     assert q.foreground_fraction == pytest.approx(np.mean(transformed > expected))
     # ... and the float64 split of the same image gives the same threshold to float32
     # rounding: far inside one of the histogram's 256 bins
@@ -146,8 +173,8 @@ def test_two_level_image_sbr_within_3_percent(levels):
         q = measure_channel(img)
         # SBR = mean(fg) / mean(bg): the ratio of the two levels
         assert q.sbr == pytest.approx(foreground / background, rel=0.03)
-        # SNR = (mean(fg) - mean(bg)) / std(bg) (Murphy, Fundamentals of Light Microscopy
-        # and Electronic Imaging); std(bg) = sqrt(bg) for Poisson counts.
+        # SNR = (mean(fg) - mean(bg)) / std(bg): the project's own definition (quality.py);
+        # std(bg) = sqrt(bg) because Poisson counts have variance = mean.
         assert q.snr == pytest.approx((foreground - background) / np.sqrt(background), rel=0.05)
         assert q.foreground_fraction == pytest.approx(mask.mean(), rel=0.03)
 
@@ -518,6 +545,9 @@ def test_otsu_without_copy_equals_skimage():
     image = np.random.default_rng(4).gamma(2.0, 3.0, (311, 257))
     expected = threshold_otsu(image)  # reference: skimage.filters.threshold_otsu
     assert _otsu(image, image.min(), image.max()) == expected
+    # Otsu (1979) by exhaustive search over the 256-bin histogram, independent of skimage
+    assert _otsu(image, image.min(), image.max()) == pytest.approx(
+        otsu_by_exhaustive_search(image), rel=1e-9)
 
 
 def test_measure_stack_does_not_depend_on_threads_or_dask():

@@ -509,11 +509,44 @@ def test_same_pixels_whatever_the_scheduler(reference, cohort, tmp_path):
 
 
 _DRIVER = textwrap.dedent("""
-    import sys
+    import os, sys, threading
+    from pathlib import Path
+    import numpy as np
+    import tifffile
     from plexwash.qc import io
     from plexwash.qc.run import run_cohort
     if sys.argv[5:] == ["lazy"]:  # every ROI read as dask: the staged wash
         io.LAZY_BYTES = 0
+    block, marker = os.environ["BLOCK_ROI"], Path(os.environ["BLOCK_MARKER"])
+    real_imwrite = tifffile.imwrite
+
+    def tiles(data, tile):
+        for c in range(data.shape[0]):
+            for y in range(0, data.shape[1], tile[0]):
+                for x in range(0, data.shape[2], tile[1]):
+                    yield np.ascontiguousarray(data[c, y:y + tile[0], x:x + tile[1]])
+
+    def blocking_imwrite(path, data, *args, **kwargs):
+        # The hook: the write of the blocked ROI stops half way through its tiles, says so
+        # in the marker file (naming the file being written) and waits until a signal ends it.
+        if not Path(path).name.startswith("." + block):
+            return real_imwrite(path, data, *args, **kwargs)
+        if isinstance(data, np.ndarray):
+            kwargs.update(shape=data.shape, dtype=data.dtype)
+            data = tiles(data, kwargs["tile"])
+        total = kwargs["shape"][0] * -(-kwargs["shape"][1] // kwargs["tile"][0]) \\
+            * -(-kwargs["shape"][2] // kwargs["tile"][1])
+
+        def half_then_block():
+            for k, tile in enumerate(data):
+                if k == total // 2:
+                    marker.write_text(str(path))
+                    threading.Event().wait()  # until SIGKILL, or SIGINT's KeyboardInterrupt
+                yield tile
+
+        return real_imwrite(path, half_then_block(), *args, **kwargs)
+
+    tifffile.imwrite = blocking_imwrite
     try:
         s = run_cohort(sys.argv[1], sys.argv[2], spillover=sys.argv[3], panel=sys.argv[4],
                        progress=False)
@@ -530,8 +563,10 @@ def bigger_cohort(tmp_path_factory, generator):
                         random_state=5)
 
 
-def _start_driver(cohort, out, *, lazy=False):
-    env = {**os.environ, "OMP_WAIT_POLICY": "PASSIVE"}
+def _start_driver(cohort, out, *, block, marker, lazy=False):
+    """A run in a child process whose write of ROI ``block`` stops half way and waits."""
+    env = {**os.environ, "OMP_WAIT_POLICY": "PASSIVE", "BLOCK_ROI": block,
+           "BLOCK_MARKER": str(marker)}
     return subprocess.Popen(
         [sys.executable, "-c", _DRIVER, str(cohort / "cohort"), str(out),
          str(cohort / "truth" / "spillover.csv"), str(cohort / "panel.csv"),
@@ -539,15 +574,21 @@ def _start_driver(cohort, out, *, lazy=False):
         env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
 
 
-def _wait_for_done_records(out, n, process, timeout=120):
+def _wait_for_blocked_write(marker: Path, process, timeout=300) -> Path:
+    """The path of the half-written file, once the child's hook has blocked in the write.
+
+    Polls for the hook's marker file; the timeout only bounds a broken run (the test
+    then fails), no test result depends on it.
+    """
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
-        if sum(r["status"] == "done" for r in read_ledger(out)) >= n:
-            return
+        if marker.exists() and marker.read_text():
+            return Path(marker.read_text())
         if process.poll() is not None:
-            raise AssertionError(f"run ended early: {process.communicate()}")
+            raise AssertionError(f"run ended before the blocked write: {process.communicate()}")
         time.sleep(0.02)
-    raise AssertionError("no ledger record appeared")
+    process.kill()
+    raise AssertionError("the run never reached the blocked write")
 
 
 def _check_no_false_record(out):
@@ -573,22 +614,26 @@ def bigger_reference(tmp_path_factory, bigger_cohort):
 def test_kill_9_loses_only_the_rois_in_flight(bigger_cohort, bigger_reference, tmp_path, lazy):
     before = _hashes(bigger_cohort / "cohort")
     out = tmp_path / "run"
-    process = _start_driver(bigger_cohort, out, lazy=lazy)
-    _wait_for_done_records(out, 2, process)
-    time.sleep(0.15)  # let the next ROI get well into its wash
+    marker = tmp_path / "blocked"
+    process = _start_driver(bigger_cohort, out, block="roi_03", marker=marker, lazy=lazy)
+    torn = _wait_for_blocked_write(marker, process)
+    # a write is in flight: roi_03's temporary file exists, half written, not yet renamed
+    assert torn.parent == out and torn.is_file() and torn.name != "roi_03.ome.tiff"
+    assert not (out / "roi_03.ome.tiff").exists()
     process.send_signal(signal.SIGKILL)
     process.wait(timeout=30)
     assert process.returncode == -signal.SIGKILL
+    assert torn.is_file()  # the killed writer left its torn file behind
     _check_no_false_record(out)
-    done_before = sum(r["status"] == "done" for r in latest_records(read_ledger(out)).values())
-    assert 2 <= done_before < 8
-    # plant leftovers of the kind a killed writer leaves, to see them swept
-    (out / ".roi_08.ome.tiff.partial-999999").write_bytes(b"torn")
+    latest = latest_records(read_ledger(out))
+    assert sorted(r for r, rec in latest.items() if rec["status"] == "done") == ["roi_01", "roi_02"]
+    # plant a leftover of the other kind a killed writer leaves, to see it swept too
     (out / ".roi_08.ome.tiff.spill-zz" / "stack.zarr").mkdir(parents=True)
     summary = run_cohort(bigger_cohort / "cohort", out,
                          spillover=bigger_cohort / "truth" / "spillover.csv",
                          panel=bigger_cohort / "panel.csv", progress=False)
-    assert (summary.done, summary.skipped, summary.failed) == (8 - done_before, done_before, 0)
+    assert (summary.done, summary.skipped, summary.failed) == (6, 2, 0)
+    assert not torn.exists()
     assert not [p for p in out.iterdir() if p.name.startswith(".") and ("partial" in p.name
                                                                           or "spill" in p.name)]
     names = [f"roi_{k:02d}" for k in range(1, 9)]
@@ -602,17 +647,18 @@ def test_kill_9_loses_only_the_rois_in_flight(bigger_cohort, bigger_reference, t
 @pytest.mark.parametrize("lazy", [False, True], ids=["in-memory", "staged"])
 def test_ctrl_c_stops_cleanly(bigger_cohort, tmp_path, lazy):
     out = tmp_path / "run"
-    process = _start_driver(bigger_cohort, out, lazy=lazy)
-    _wait_for_done_records(out, 1, process)
-    time.sleep(0.1)
+    marker = tmp_path / "blocked"
+    process = _start_driver(bigger_cohort, out, block="roi_02", marker=marker, lazy=lazy)
+    torn = _wait_for_blocked_write(marker, process)
+    assert torn.is_file()  # roi_02 is being written when Ctrl-C comes
     process.send_signal(signal.SIGINT)
     process.wait(timeout=60)
     assert process.returncode == 130
     _check_no_false_record(out)
     records = read_ledger(out)
-    assert records and all(r["status"] == "done" for r in records)
-    recorded = {r["output"] for r in records}
-    assert {p.name for p in out.glob("*.ome.tiff")} <= recorded  # no unrecorded output
+    assert [(r["roi"], r["status"]) for r in records] == [("roi_01", "done")]
+    assert not torn.exists()  # the interrupted write cleaned up after itself
+    assert {p.name for p in out.glob("*.ome.tiff")} == {"roi_01.ome.tiff"}
     assert not [p for p in out.iterdir() if p.name.startswith(".") and "plexwash-run" not in p.name]
     assert "interrupted" in (out / "run.log").read_text()
 
@@ -638,12 +684,11 @@ def test_run_demo_on_a_generated_stack(cohort, tmp_path):
         run_demo(tmp_path / "none", stack=tmp_path / "missing", progress=False)
 
 
-def test_cancel_event_stops_after_the_roi_in_flight(tmp_path):
+def test_cancel_event_stops_after_the_roi_in_flight(tmp_path, monkeypatch):
     import threading
 
-    import numpy as np
+    import plexwash.qc.run as run_module
     from plexwash.qc.io import write_ome_tiff
-    from plexwash.qc.run import read_ledger, run_cohort
 
     cohort = tmp_path / "cohort"
     cohort.mkdir()
@@ -651,9 +696,19 @@ def test_cancel_event_stops_after_the_roi_in_flight(tmp_path):
     for name in ("a", "b", "c"):
         write_ome_tiff(cohort / f"{name}.ome.tiff", stack, ["Nd145", "Nd146"])
     cancel = threading.Event()
-    cancel.set()  # as if Cancel was pressed while the first ROI was washing
+    real, started = run_module.wash_one, []
+
+    def cancel_pressed_during_the_first(job):  # the hook: Cancel is pressed inside ROI "a"
+        started.append(job["roi"])
+        if job["roi"] == "a":
+            cancel.set()
+        return real(job)
+
+    monkeypatch.setattr(run_module, "wash_one", cancel_pressed_during_the_first)
     with pytest.raises(KeyboardInterrupt):
         run_cohort(cohort, tmp_path / "run", progress=False, cancel=cancel)
-    assert [r["roi"] for r in read_ledger(tmp_path / "run")] == ["a"]
+    assert started == ["a"]  # the ROI in flight finished; no other began
+    assert [(r["roi"], r["status"]) for r in read_ledger(tmp_path / "run")] == [("a", "done")]
+    monkeypatch.setattr(run_module, "wash_one", real)
     summary = run_cohort(cohort, tmp_path / "run", progress=False)  # a rerun resumes
     assert (summary.done, summary.skipped) == (2, 1)
