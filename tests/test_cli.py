@@ -184,7 +184,7 @@ def test_spill_controls_writes_matrix_intervals_and_heatmap(tmp_path):
     big = truth.values >= 0.003
     np.fill_diagonal(big, False)
     rel = np.abs(matrix.values[big] - truth.values[big]) / truth.values[big]
-    assert np.median(rel) < 0.10
+    assert np.median(rel) < 0.02  # measured 0.80 % on the demo's controls; about 2.5x
 
 
 def test_run_exit_code_3_when_an_roi_fails(tmp_path):

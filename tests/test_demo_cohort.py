@@ -159,7 +159,7 @@ def test_roi_shapes_and_dtypes(info):
 
 
 def _kind(src, dst):
-    """Pair kinds as described in docs METHODS.md (Chevrier et al., Cell Systems 2018):
+    """Pair kinds of mass-cytometry spillover (Chevrier et al., Cell Systems 2018):
     isotopic impurity (same element), oxide (M+16), neighbour (M+-1)."""
     (e1, m1), (e2, m2) = src, dst
     if e1 == e2 and 0 < abs(m2 - m1) <= 2:
@@ -178,8 +178,10 @@ def test_spillover_truth_obeys_the_physics(spill, info):
     assert np.all(s >= 0)
     masses = [MASS.match(n) for n in sources]
     parsed = [(m.group(1), int(m.group(2))) for m in masses]
-    # size ranges: common practice, from memory (METHODS.md): M+-1 well under 1 %,
-    # oxides about 1-3 %, isotopic impurities up to a few %
+    # Size ranges written out here, not read from the generator, so a change to the
+    # generator's ranges fails this test. The magnitudes are common practice, from memory
+    # (no source checked): M+-1 well under 1 %, oxides about 1-3 %, isotopic impurities
+    # up to a few %. This checks the generator against its own design, not against data.
     ranges = {"neighbour": (0.003, 0.008), "oxide": (0.01, 0.03), "impurity": (0.01, 0.04)}
     seen = set()
     for i, j in zip(*np.nonzero(s - np.eye(len(s))), strict=True):

@@ -33,10 +33,24 @@ def test_default_recipe_written_with_comments_reads_back_identically(tmp_path):
 
 
 def test_every_setting_has_doc_and_a_default_within_its_range():
+    """Each default checked here against its declared range and choices (not through the
+    recipe's own validator, which could share a mistake with the declaration)."""
+    checked = 0
     for cls in section_classes().values():
         for field in dataclasses.fields(cls):
-            assert field.metadata.get("doc"), f"{cls.__name__}.{field.name} has no doc"
-            recipe_from_dict({})  # defaults validate
+            meta, value, name = field.metadata, field.default, f"{cls.__name__}.{field.name}"
+            assert meta.get("doc"), f"{name} has no doc"
+            if meta.get("choices"):
+                assert value in meta["choices"], name
+                checked += 1
+            if meta.get("low") is not None:
+                assert value > meta["low"] if meta["low_open"] else value >= meta["low"], name
+                checked += 1
+            if meta.get("high") is not None:
+                assert value < meta["high"] if meta["high_open"] else value <= meta["high"], name
+                checked += 1
+    assert checked >= 20  # the ranges are declared, not missing
+    assert recipe_from_dict({}) == default_recipe()  # and the validator accepts them
 
 
 def test_per_channel_overrides(tmp_path):

@@ -219,6 +219,16 @@ def test_combined_removed_fraction():
     assert combined_removed_fraction([]) == 0.0
 
 
+def _refuse_constant(name):
+    raise ValueError(f"not strict JSON: {name}")
+
+
 def test_report_json_safe_ledger(run_dir):
-    for line in (run_dir / "ledger.jsonl").read_text().splitlines():
-        json.loads(line)  # strict JSON: no NaN
+    # strict JSON (RFC 8259 has no NaN or Infinity): json.loads accepts them silently,
+    # so any such constant raises here
+    with pytest.raises(ValueError, match="NaN"):
+        json.loads('{"a": NaN}', parse_constant=_refuse_constant)
+    lines = (run_dir / "ledger.jsonl").read_text().splitlines()
+    assert lines
+    for line in lines:
+        assert isinstance(json.loads(line, parse_constant=_refuse_constant), dict)

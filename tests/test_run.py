@@ -386,8 +386,12 @@ def test_ledger_survives_a_torn_last_line(tmp_path):
     Ledger(path).append({"roi": "c", "status": "failed", "value": float("nan")})
     assert [r["roi"] for r in read_ledger(tmp_path)] == ["a", "c"]
     assert read_ledger(tmp_path)[-1]["value"] is None  # NaN is not JSON: written as null
-    for line in path.read_text().splitlines()[2:]:
-        json.loads(line)
+    (line,) = path.read_text().splitlines()[2:]
+
+    def refuse(name):  # strict JSON (RFC 8259): json.loads would accept NaN silently
+        raise ValueError(f"not strict JSON: {name}")
+
+    assert json.loads(line, parse_constant=refuse)["value"] is None
 
 
 def test_sweep_removes_only_temporary_names(tmp_path):

@@ -185,7 +185,8 @@ def test_compensation_settings_declared_for_the_recipe():
     ],
 )
 def test_channel_mass(name, expected):
-    # element symbols and atomic numbers: IUPAC periodic table (from memory)
+    # expected (element symbol, mass number) read off each name by hand; the symbols are
+    # those of the IUPAC periodic table (from memory)
     assert channel_mass(name) == expected
 
 
@@ -250,8 +251,9 @@ def write_controls(tmp_path, rng, s, names, sources):
 # ----------------------------------------------------------------------- controls
 
 
-def test_controls_recover_a_known_matrix_and_beat_the_median_of_ratios(tmp_path):
-    rng = np.random.default_rng(3)
+@pytest.mark.parametrize("seed", [3, 4])
+def test_controls_recover_a_known_matrix_and_beat_the_median_of_ratios(tmp_path, seed):
+    rng = np.random.default_rng(seed)
     names = SPOT_CHANNELS
     s = known_matrix(names, rng)
     sources = range(len(names) - 1)
@@ -263,8 +265,11 @@ def test_controls_recover_a_known_matrix_and_beat_the_median_of_ratios(tmp_path)
     np.fill_diagonal(estimated, False)
     big = estimated & (s >= 0.003)
     rel = np.abs(m.values - s)[big] / s[big]
-    assert np.median(rel) <= 0.10  # targets of the brief: median within 10 %,
-    assert np.abs(m.values - s)[estimated].max() <= 0.003  # no entry off by more than 0.003
+    # Measured over seeds 1-5: median relative error 0.39-1.29 %, largest entry error
+    # 0.00029-0.00047. Bounds about 2.3x the worst, far inside the brief's targets
+    # (median within 10 %, no entry off by more than 0.003), so a 5x regression fails.
+    assert np.median(rel) <= 0.03
+    assert np.abs(m.values - s)[estimated].max() <= 0.001
     assert np.all(m.values[~plausible_pairs(names) & ~np.eye(len(names), dtype=bool)] == 0)
     assert m.values[-1].tolist() == np.eye(len(names))[-1].tolist()  # no control: identity row
     assert np.all(m.low <= m.values + 1e-12) and np.all(m.values <= m.high + 1e-12)
@@ -280,13 +285,15 @@ def test_controls_recover_a_known_matrix_and_beat_the_median_of_ratios(tmp_path)
         for j in np.flatnonzero(big[i]):
             ratio = np.median((counts[j][spots] - b[j]) / (counts[i][spots] - b[i]))
             median_rel.append(abs(max(ratio, 0.0) - s[i, j]) / s[i, j])
-    assert np.median(median_rel) > 3 * np.median(rel)
+    # measured over seeds 1-5: the median of ratios is 1.8x (seed 4) to 8.9x worse
+    assert np.median(median_rel) > 1.5 * np.median(rel)
 
 
-def test_controls_on_an_unseen_generated_cohort(tmp_path, generator):
+@pytest.mark.parametrize("seed", [4242, 3])
+def test_controls_on_an_unseen_generated_cohort(tmp_path, generator, seed):
     names = ["Nd142", "Nd143", "Nd144", "Nd145", "Nd146", "Sm147", "Nd148", "Sm149", "Gd158",
              "Tb159", "Gd160", "Dy161", "Dy162", "Ir191"]
-    rng = np.random.default_rng(4242)
+    rng = np.random.default_rng(seed)
     s = generator.build_spillover(names, rng)
     panel = generator.random_panel(names, rng)
     rates = generator.draw_background_rates(len(names), rng)
@@ -300,7 +307,8 @@ def test_controls_on_an_unseen_generated_cohort(tmp_path, generator):
     off[-1] = False
     big = off & (s >= 0.003)
     rel = np.abs(m.values - s)[big] / s[big]
-    assert np.median(rel) <= 0.10 and np.abs(m.values - s)[off].max() <= 0.003
+    # measured over seeds 4242, 1, 2, 3: median 0.42-0.75 %, largest error 0.00034-0.00046
+    assert np.median(rel) <= 0.02 and np.abs(m.values - s)[off].max() <= 0.001
 
 
 @pytest.mark.parametrize(
