@@ -67,7 +67,6 @@ from plexwash.qc import (  # noqa: E402
     measure_stack,
     quality_rows,
     read_roi,
-    read_spillover,
     wash,
 )
 
