@@ -1,31 +1,34 @@
-"""Tissue vs glass, and a background rate that varies over the ROI.
+"""Tissue vs glass, and a background rate that varies over the ROI (computed once per ROI).
 
-Tissue lies on glass: inside the tissue every channel's background counts are several
-times those on the glass, and they drift over the tissue. One rate per channel is wrong
-in both places. This module computes, once per ROI:
+Tissue lies on glass: inside it every channel's background counts are several times those
+on the glass, and they drift over the tissue. One rate per channel is wrong in both places.
 
-- :func:`tissue_mask`: where the tissue lies. Rule: the counts of the used channels are
-  summed per pixel, isolated spikes (hot pixels) are cut to their largest neighbour, the
-  sum is smoothed with a Gaussian and log-scaled, and split by Otsu's threshold (N. Otsu,
-  "A threshold selection method from gray-level histograms", IEEE Trans. Syst. Man
-  Cybern. 9(1):62-66, 1979; computed with ``skimage.filters.threshold_otsu``). The split
-  is accepted only when the lower class looks like glass (a low rate per channel, and
-  the upper class several times brighter); otherwise the whole ROI is tissue. Pieces of
-  tissue and holes of glass smaller than ``min_area`` are merged into their surroundings
-  (morphological clean-up, common practice).
-- :func:`local_background`: one channel's background rate per pixel. Likely signal is
-  left out first: a pixel lies in likely signal when the counts of a small box around
-  it are improbable under the current background rate (one-sided Poisson test at
-  ``signal_alpha``; the upper tail ``P(N >= n)`` is the regularised incomplete gamma
-  function, Abramowitz & Stegun 6.5.2 / 26.4.21). The rate is then the mean of the
-  remaining pixels over a large box (box sums, ``scipy.ndimage.uniform_filter``: cost
-  independent of the box), computed within each region (tissue, glass) so that the two
-  do not mix across the tissue edge, shrunk towards the region's own rate where the box
-  holds few usable pixels. Test and rate are repeated a few times, since the first rate
-  still holds the signal. A floor keeps the rate positive.
-- :func:`background_model`: both, for every channel of a stack.
+- :func:`tissue_mask`. Rule: the used channels' counts are summed per pixel, isolated
+  spikes (hot pixels) cut to their largest neighbour, the sum Gaussian-smoothed and
+  log-scaled, then split by Otsu's threshold (N. Otsu, IEEE Trans. Syst. Man Cybern.
+  9(1):62-66, 1979; ``skimage.filters.threshold_otsu``). The split stands only when the
+  lower class looks like glass (a low rate per channel, the upper class several times
+  brighter); otherwise the whole ROI is tissue. Pieces and holes smaller than ``min_area``
+  are merged into their surroundings (morphological clean-up, common practice).
+- :func:`likely_signal`: pixels of a small box whose counts are improbable under the
+  current rate (one-sided Poisson test; ``P(N >= n)`` is the regularised incomplete gamma
+  function, Abramowitz & Stegun 6.5.2, 26.4.21). Such pixels are left out of every rate.
+- :func:`local_background`: one channel's rate per pixel, estimated within each region
+  (tissue, glass) so the two never mix across the tissue edge, by box sums
+  (``scipy.ndimage.uniform_filter``, cost independent of the box). Alone, a channel gets
+  the mean of its remaining pixels over a large box; given the shared variation
+  (:func:`shared_modulation`), it gets ``scale * variation`` with the scale matched on the
+  lower tail of its box counts (:func:`lower_tail_scale`), so that a stain covering most
+  of a region is not read as background. The first rate is deliberately low so that such
+  a stain tests as signal; test and estimate then alternate ``passes`` times.
+- :func:`background_model`: both for a whole stack. Background is modelled as a rate per
+  channel and region times one variation over the ROI shared by every channel (tissue
+  density drives the non-specific counts of all channels alike; a stain does not).
 
-Nothing here is wired into the wash steps yet; each function works on plain numpy arrays.
+Known limit: a channel whose raw counts hold a stain or spillover ghosts over nearly all of
+its tissue (a diffuse stain whose free pixels carry ghosts) has no pixel of plain
+background, and its rate comes out high; computing the model on compensated counts helps.
+Nothing here is wired into the wash steps yet; every function takes plain numpy arrays.
 """
 
 from __future__ import annotations
@@ -45,19 +48,13 @@ OTSU_BINS = 256
 
 @dataclasses.dataclass(frozen=True)
 class BackgroundSettings:
-    """Settings of the tissue mask and the local background model.
-
-    Examples
-    --------
-    >>> BackgroundSettings().window
-    41
-    """
+    """Settings of the tissue mask and the local background model."""
 
     smoothing_sigma: float = setting(
         3.0, "Gaussian sigma in pixels of the summed counts before the tissue/glass split",
         low=0.0, high=100.0)
     glass_rate: float = setting(
-        0.05, "the split finds glass only when its mean counts per pixel and channel are at most this",
+        0.05, "glass is found only where its mean counts per pixel and channel are at most this",
         low=0.0, low_open=True, high=1e9)
     min_contrast: float = setting(
         2.0, "... and the tissue's median summed counts are at least this times the glass mean",
@@ -96,62 +93,21 @@ class BackgroundSettings:
 
 @dataclasses.dataclass(frozen=True)
 class BackgroundModel:
-    """The tissue mask and every channel's local background rate of one ROI.
-
-    Attributes
-    ----------
-    tissue : numpy.ndarray
-        (Y, X) bool, True on tissue.
-    rates : numpy.ndarray
-        (C, Y, X) float32, background counts per pixel expected at each pixel.
-    region_rates : numpy.ndarray
-        (C, 2) float64: each channel's rate on glass (column 0) and in tissue (column 1);
-        NaN where the region is absent.
-    modulation : numpy.ndarray
-        (Y, X) float32, the relative variation shared by every channel (mean 1 per region).
-    """
+    """One ROI's ``tissue`` mask (Y, X) bool, background ``rates`` (C, Y, X) float32 in
+    counts per pixel, ``region_rates`` (C, 2): mean rate on glass and in tissue (NaN where
+    absent), and the shared variation ``modulation`` (Y, X) float32, mean 1 per region."""
 
     tissue: np.ndarray
     rates: np.ndarray
     region_rates: np.ndarray
     modulation: np.ndarray
 
-    @property
-    def tissue_fraction(self) -> float:
-        return float(np.mean(self.tissue))
-
-
-def total_counts(stack, *, used=None) -> np.ndarray:
-    """Per-pixel sum over the used channels of a (C, Y, X) stack, float64.
-
-    Examples
-    --------
-    >>> total_counts(np.ones((3, 2, 2)), used=[True, False, True]).tolist()
-    [[2.0, 2.0], [2.0, 2.0]]
-    """
-    stack = np.asarray(stack)
-    if stack.ndim != 3:
-        raise InputError("stack", f"expected a (C, Y, X) stack, got shape {stack.shape}")
-    used = np.ones(stack.shape[0], bool) if used is None else np.asarray(used, bool)
-    if used.shape != (stack.shape[0],):
-        raise InputError("used", f"{used.size} flags for a stack of {stack.shape[0]} channels")
-    total = np.zeros(stack.shape[1:], np.float64)
-    for c in np.flatnonzero(used):
-        total += stack[c]
-    return total
-
 
 def cut_spikes(image: np.ndarray, *, ratio: float = 5.0, excess: float = 20.0) -> np.ndarray:
-    """A copy of ``image`` with isolated spikes cut to the largest of their 8 neighbours.
+    """A copy of ``image`` with spikes cut to the largest of their 8 neighbours.
 
-    A pixel is a spike when it exceeds ``ratio`` times that neighbour and by at least
-    ``excess`` (thresholded neighbour replacement, common practice).
-
-    Examples
-    --------
-    >>> image = np.ones((5, 5)); image[2, 2] = 900.0
-    >>> float(cut_spikes(image)[2, 2])
-    1.0
+    A spike exceeds ``ratio`` times that neighbour and by at least ``excess`` (thresholded
+    neighbour replacement, common practice).
     """
     image = np.asarray(image, np.float64)
     footprint = np.ones((3, 3), bool)
@@ -159,17 +115,6 @@ def cut_spikes(image: np.ndarray, *, ratio: float = 5.0, excess: float = 20.0) -
     largest = ndimage.maximum_filter(image, footprint=footprint, mode="nearest")
     spike = (image > ratio * largest) & (image - largest >= excess)
     return np.where(spike, largest, image)
-
-
-def split_level(total: np.ndarray, *, sigma: float) -> np.ndarray:
-    """The image the tissue/glass split is made on: Gaussian-smoothed counts, log-scaled.
-
-    ``log(smoothed + eps)``, with ``eps`` one thousandth of the mean (at least 1e-9), so
-    an empty glass region does not reach minus infinity.
-    """
-    smoothed = ndimage.gaussian_filter(total, sigma, mode="reflect") if sigma > 0 else total
-    eps = max(1e-3 * float(np.mean(smoothed)), 1e-9)
-    return np.log(np.maximum(smoothed, 0.0) + eps)
 
 
 def otsu_threshold(values: np.ndarray) -> float:
@@ -190,18 +135,8 @@ def tissue_mask(stack, *, used=None, settings: BackgroundSettings = BackgroundSe
                 ) -> np.ndarray:
     """Where the tissue lies in a ROI: (Y, X) bool, True on tissue.
 
-    Parameters
-    ----------
-    stack : (C, Y, X) array_like
-        Raw counts.
-    used : sequence of bool, optional
-        Channels summed (default all); leave out channels that do not carry counts.
-    settings : BackgroundSettings
-
-    Returns
-    -------
-    numpy.ndarray
-        True on tissue. All True when no glass is found (see the module notes).
+    ``used`` (bool per channel, default all) picks the channels summed. All True when no
+    glass is found (see the module notes).
 
     Examples
     --------
@@ -213,14 +148,23 @@ def tissue_mask(stack, *, used=None, settings: BackgroundSettings = BackgroundSe
     (True, False)
     """
     stack = np.asarray(stack)
-    total = cut_spikes(total_counts(stack, used=used), ratio=settings.spike_ratio,
-                       excess=settings.spike_excess)
-    n_used = stack.shape[0] if used is None else int(np.count_nonzero(used))
-    level = split_level(total, sigma=settings.smoothing_sigma)
+    if stack.ndim != 3:
+        raise InputError("stack", f"expected a (C, Y, X) stack, got shape {stack.shape}")
+    used = np.ones(stack.shape[0], bool) if used is None else np.asarray(used, bool)
+    if used.shape != (stack.shape[0],):
+        raise InputError("used", f"{used.size} flags for a stack of {stack.shape[0]} channels")
+    total = np.zeros(stack.shape[1:], np.float64)
+    for c in np.flatnonzero(used):
+        total += stack[c]
+    total = cut_spikes(total, ratio=settings.spike_ratio, excess=settings.spike_excess)
+    n_used = int(used.sum())
+    sigma = settings.smoothing_sigma
+    smoothed = ndimage.gaussian_filter(total, sigma, mode="reflect") if sigma > 0 else total
+    smoothed = np.maximum(smoothed, 0.0) + max(1e-3 * float(np.mean(smoothed)), 1e-9)
+    level = np.log(smoothed)  # the offset keeps empty glass from minus infinity
     above = level > otsu_threshold(level)
     if not above.any() or above.all():
         return np.ones(total.shape, bool)
-    smoothed = np.exp(level)  # smoothed counts (+ eps)
     glass_mean = float(smoothed[~above].mean())
     tissue_median = float(np.median(smoothed[above]))
     if (glass_mean > settings.glass_rate * max(n_used, 1)
@@ -230,15 +174,7 @@ def tissue_mask(stack, *, used=None, settings: BackgroundSettings = BackgroundSe
 
 
 def clean_mask(mask: np.ndarray, *, min_area: int) -> np.ndarray:
-    """``mask`` with pieces and holes smaller than ``min_area`` pixels merged away.
-
-    Examples
-    --------
-    >>> mask = np.zeros((20, 20), bool); mask[2:18, 2:18] = True; mask[9, 9] = False
-    >>> mask[0, 19] = True
-    >>> cleaned = clean_mask(mask, min_area=4)
-    >>> bool(cleaned[9, 9]), bool(cleaned[0, 19])
-    (True, False)
+    """``mask`` with pieces, then holes, smaller than ``min_area`` pixels merged away.
     """
     out = np.array(mask, bool)
     if min_area <= 1:
@@ -260,11 +196,6 @@ def poisson_upper_tail(n: np.ndarray, mu: np.ndarray) -> np.ndarray:
     """``P(N >= n)`` for ``N ~ Poisson(mu)``: the regularised lower incomplete gamma ``P(n, mu)``.
 
     Reference check: equals ``scipy.stats.poisson.sf(n - 1, mu)``.
-
-    Examples
-    --------
-    >>> round(float(poisson_upper_tail(np.array(3.0), np.array(1.0))), 6)
-    0.080301
     """
     n = np.asarray(n, np.float64)
     mu = np.maximum(np.asarray(mu, np.float64), 1e-300)
@@ -272,18 +203,14 @@ def poisson_upper_tail(n: np.ndarray, mu: np.ndarray) -> np.ndarray:
 
 
 def likely_signal(image: np.ndarray, rate, *, box: int, alpha: float) -> np.ndarray:
-    """(Y, X) bool: pixels inside a ``box`` x ``box`` window whose counts are improbable.
-
-    A window centred at a pixel is improbable when its count sum ``n`` has ``P(N >= n) <
-    alpha`` under ``N ~ Poisson(box**2 * rate)``; every pixel of such a window is
-    returned (signal reaches beyond the pixels that made the window improbable).
-    """
+    """(Y, X) bool: every pixel of a ``box`` x ``box`` window whose count sum ``n`` has
+    ``P(N >= n) < alpha`` under ``N ~ Poisson(box**2 * rate)``."""
     area = float(box * box)
     sums = np.rint(ndimage.uniform_filter(np.asarray(image, np.float64), box, mode="reflect")
                    * area)
     mean = np.broadcast_to(area * np.asarray(rate, np.float64), sums.shape)
-    # P(N >= n) >= 1/2 for n <= mean (the median of a Poisson law is at least mean - ln 2,
-    # Choi 1994): only windows above their mean can be improbable, the tail is computed there
+    # n <= mean implies P(N >= n) > 1/2 >= alpha (a Poisson median is >= mean - ln 2, Choi
+    # 1994): only windows above their mean can be improbable, the tail is computed there
     above = sums > mean
     improbable = np.zeros(sums.shape, bool)
     improbable[above] = poisson_upper_tail(sums[above], mean[above]) < alpha
@@ -292,17 +219,13 @@ def likely_signal(image: np.ndarray, rate, *, box: int, alpha: float) -> np.ndar
     return improbable
 
 
-def local_background(image, *, mask=None, modulation=None,
-                     settings: BackgroundSettings = BackgroundSettings(), return_regions: bool = False):
-    """A channel's background rate at every pixel, in counts per pixel.
+def local_background(image, *, mask=None, modulation=None, return_regions: bool = False,
+                     settings: BackgroundSettings = BackgroundSettings()):
+    """A channel's background rate at every pixel, in counts per pixel (see the module notes).
 
-    Within each region (glass, tissue) the rate starts at a low quantile (a quarter) of
-    the region's box means, low enough that a diffuse stain covering most of the region
-    still tests as signal. Then, ``passes`` times: pixels in likely signal
-    (:func:`likely_signal`) are left out and the rate is re-estimated from the rest,
-    either as the box mean of the remaining pixels (shrunk towards the region's rate by
-    ``prior_pixels``) or, when ``modulation`` is given, as the region's scale times that
-    shared pattern (scale = remaining counts / remaining modulation).
+    Without ``modulation`` the rate starts at the ``scale_quantile`` of the region's box
+    means and is then the mean of the pixels left over a ``window`` box, shrunk towards
+    their region mean by ``prior_pixels``.
 
     Parameters
     ----------
@@ -312,9 +235,7 @@ def local_background(image, *, mask=None, modulation=None,
         Tissue mask (:func:`tissue_mask`); the rate is estimated separately on tissue
         and glass. Default: one region.
     modulation : (Y, X) array_like, optional
-        The relative variation of the background over the ROI shared by every channel
-        (mean 1 in each region; :func:`shared_modulation`). Default: the channel's own box
-        means.
+        Variation shared by every channel (:func:`shared_modulation`).
     settings : BackgroundSettings
     return_regions : bool
         Also return the mean rate of each region, ``(glass, tissue)`` (NaN where absent).
@@ -352,7 +273,7 @@ def local_background(image, *, mask=None, modulation=None,
                 scale = lower_tail_scale(image, pattern, keep, window=settings.scale_window,
                                          quantile=settings.scale_quantile)
                 rate[region] = scale * pattern[region]
-            elif step == 0:  # a low start, so that a stain covering most of a region tests as signal
+            elif step == 0:  # low, so that a stain covering most of a region tests as signal
                 boxes = _box_mean(image, keep, region, 0.0, 0.0, settings.window)
                 rate[region] = float(np.quantile(boxes[region], settings.scale_quantile))
             else:
@@ -365,15 +286,13 @@ def local_background(image, *, mask=None, modulation=None,
 
 
 def lower_tail_scale(image, pattern, keep, *, window: int, quantile: float) -> float:
-    """The scale ``s`` of a background ``s * pattern`` matched on the lower tail of box counts.
+    """Scale ``s`` of a background ``s * pattern``, matched on the lower tail of box counts.
 
-    Over ``window`` x ``window`` boxes (kept pixels only), the count ``n`` of a box of pure
-    background is about normal with mean and variance ``s * m`` (Poisson; ``m`` = the sum
-    of ``pattern`` over the box's kept pixels). ``s`` is chosen so that the ``quantile``
-    of the standardised boxes ``(n - s m) / sqrt(s m)`` over the kept pixels equals the
-    normal quantile ``Phi^-1(quantile)`` (found by bisection on ``log s``; the quantile
-    decreases as ``s`` grows). Only the lower tail is matched, so a stain that raises the
-    counts over most of the region (up to ``1 - quantile`` of it) does not raise ``s``.
+    A box of pure background (kept pixels only) holds ``n`` counts, about normal with mean
+    and variance ``s m`` (Poisson; ``m`` = the box's sum of ``pattern``). ``s`` makes the
+    ``quantile`` of ``(n - s m) / sqrt(s m)`` over the boxes equal ``Phi^-1(quantile)``
+    (bisection on ``log s``). A stain raising up to ``1 - quantile`` of the boxes does
+    not raise ``s``.
     """
     area = float(window) ** 2
     kept = keep.astype(np.float64)
@@ -420,11 +339,10 @@ def _box_mean(image, keep, region, prior: float, weight: float, window: int) -> 
 
 
 def shared_modulation(rates: np.ndarray, region_rates: np.ndarray, mask) -> np.ndarray:
-    """The background's relative variation shared by all channels: (Y, X) float32, mean 1 per region.
+    """Variation shared by all channels, (Y, X) float32 with mean 1 per region.
 
-    Per pixel, the median over channels of each channel's local rate over its region's
-    rate (channels with a zero region rate left out): a stain that raises one channel's
-    rate over a large area (a diffuse stain) does not move the median.
+    Per pixel, the median over channels of local rate / region rate: a stain raising one
+    channel over a large area does not move it.
     """
     rates = np.asarray(rates, np.float64)
     regions = _regions(rates.shape[1:], mask)
@@ -441,25 +359,11 @@ def shared_modulation(rates: np.ndarray, region_rates: np.ndarray, mask) -> np.n
 
 def background_model(stack, *, used=None, settings: BackgroundSettings = BackgroundSettings()
                      ) -> BackgroundModel:
-    """Tissue mask and local background rates of every channel of one ROI.
+    """Tissue mask and local background rates of every channel of one (C, Y, X) raw stack.
 
-    The background is modelled as a rate per channel and region (glass, tissue) times a
-    variation over the ROI shared by every channel (:func:`shared_modulation`, from a
-    first estimate of each channel on its own): tissue density drives the non-specific
-    counts of all channels alike, while a stain does not.
-
-    Parameters
-    ----------
-    stack : (C, Y, X) array_like
-        Raw counts.
-    used : sequence of bool, optional
-        Channels that form the tissue mask and the shared variation (all by default);
-        every channel gets a rate.
-    settings : BackgroundSettings
-
-    Returns
-    -------
-    BackgroundModel
+    The shared variation comes from a first estimate of each channel on its own. ``used``
+    (bool per channel, default all) picks the channels that form the mask and the shared
+    variation; every channel gets a rate.
 
     Examples
     --------
@@ -474,7 +378,7 @@ def background_model(stack, *, used=None, settings: BackgroundSettings = Backgro
     tissue = tissue_mask(stack, used=used, settings=settings)
     first = np.empty(stack.shape, np.float32)
     region_rates = np.full((stack.shape[0], 2), np.nan)
-    rough = dataclasses.replace(settings, passes=1)  # the median over channels forgives a rough start
+    rough = dataclasses.replace(settings, passes=1)  # the median over channels forgives it
     for c in np.flatnonzero(used):
         first[c], region_rates[c] = local_background(stack[c], mask=tissue, settings=rough,
                                                      return_regions=True)
