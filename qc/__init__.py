@@ -22,15 +22,20 @@ from .quality import (
     quality_rows,
 )
 from .recipe import Recipe, default_recipe, load_recipe, write_recipe
-from .speckle import HotPixelSettings, SpeckleSettings, remove_hot_pixels, remove_speckle
 from .spillover import (
-    CompensationSettings,
     SpilloverMatrix,
     compensate,
     estimate_from_controls,
     estimate_from_tissue,
     read_spillover,
     write_spillover,
+)
+from .steps import (
+    CompensationSettings,
+    HotPixelSettings,
+    SpeckleSettings,
+    remove_hot_pixels,
+    remove_speckle,
 )
 from .wash import Washed, wash, wash_to_file
 

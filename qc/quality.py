@@ -87,8 +87,8 @@ from skimage.filters import threshold_otsu
 from threadpoolctl import threadpool_limits
 
 from . import _quality_kernels as _k
+from ._arrays import channel_plane
 from .errors import InputError
-from .io import channel_plane
 from .settings import setting
 
 #: Channel-level flags, in the order they are listed.

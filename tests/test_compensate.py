@@ -8,9 +8,9 @@ from plexwash.qc import _nnls
 from plexwash.qc.errors import InputError
 from plexwash.qc.spillover import (
     SpilloverMatrix,
-    _compensate_array,
     _prepare_components,
     compensate,
+    compensate_array,
     plausible_pairs,
 )
 from scipy.optimize import nnls
@@ -117,7 +117,7 @@ def test_strong_spillover_uses_pivoting_and_matches_scipy():
 def test_sweeps_handing_pixels_to_pivoting_stay_exact(physics):
     s, stack = physics
     # One sweep cannot converge: every unfinished pixel goes to the pivoting solver.
-    out = _compensate_array(stack, s, method="nnls", parallel=True, max_sweeps=1)
+    out = compensate_array(stack, s, method="nnls", parallel=True, max_sweeps=1)
     assert_matches_scipy(stack, s, out)
     np.testing.assert_allclose(out, compensate(stack, s), rtol=1e-5, atol=1e-4)
 
@@ -126,7 +126,7 @@ def test_lawson_hanson_last_resort_is_exact(physics):
     s, stack = physics
     # no sweeps to speak of and no pivoting exchanges: pixels whose first partition guess
     # is wrong are solved by Lawson-Hanson from scratch
-    out = _compensate_array(stack, s, method="nnls", parallel=False, max_sweeps=1, max_exchanges=0)
+    out = compensate_array(stack, s, method="nnls", parallel=False, max_sweeps=1, max_exchanges=0)
     assert_matches_scipy(stack, s, out, every=3)
 
 
