@@ -30,13 +30,9 @@ from .spillover import (
     read_spillover,
     write_spillover,
 )
-from .steps import (
-    CompensationSettings,
-    HotPixelSettings,
-    SpeckleSettings,
-    remove_hot_pixels,
-    remove_speckle,
-)
+from .steps.compensation import CompensationSettings
+from .steps.hot_pixels import HotPixelSettings, remove_hot_pixels
+from .steps.speckle import SpeckleSettings, remove_speckle
 from .wash import Washed, wash, wash_to_file
 
 __all__ = [

@@ -145,7 +145,7 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
 
 
 def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tmp_path):
-    from plexwash.qc.steps import remove_hot_pixels, remove_speckle
+    from plexwash.qc import remove_hot_pixels, remove_speckle
     from plexwash.qc.wash import wash
 
     viewer = make_napari_viewer()
