@@ -1003,7 +1003,7 @@ def estimate_from_tissue(
     sources (:func:`plausible_pairs`) are fitted together, so that co-located sources do
     not take each other's share:
 
-    1. hot pixels are restored (:func:`plexwash.qc.speckle.remove_hot_pixels`) and
+    1. hot pixels are restored (:func:`plexwash.qc.steps.hot_pixels.remove_hot_pixels`) and
        counts are summed over ``bin_size`` x ``bin_size`` blocks, so the Poisson noise of
        a block is closer to normal, with its variance equal to its mean;
     2. a low *quantile* regression (``tau = 0.1``, residuals in Poisson standard
