@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import dataclasses
 import time
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 
 import numpy as np
@@ -113,71 +113,74 @@ def wash(roi: Roi, recipe: Recipe | None = None, *, spillover=None, channels=Non
     """
     recipe = recipe or default_recipe()
     recipe.check_channels(roi.channels, roi=roi.path)
+    plan = _plan(roi, recipe, spillover, channels)
+    if cache is not None:
+        cache.start(roi)
+        source = _Source.cached(cache, roi, plan)
+    else:
+        source = _Source.of(roi, recipe)
+    stack, work, records = _run(plan, source, cache)
+    return _assemble(roi, plan, source, stack, work, records)
+
+
+@dataclasses.dataclass(frozen=True)
+class _Plan:
+    """What a wash will do, in ROI channel indices.
+
+    ``wanted``: the channels of the result, in its order; ``used``: the channels that take
+    part in the wash; ``own``: the used channels among the wanted (ROI order); ``steps``:
+    per registry step its settings by channel and whether it runs; ``shared``: index of
+    the last running step that needs every used channel (-1: none), up to which the wash
+    works on all used channels.
+    """
+
+    wanted: list[int]
+    used: list[int]
+    own: list[int]
+    steps: list[tuple[Step, dict, bool]]
+    shared: int
+    matrix: np.ndarray | None
+    notes: tuple[str, ...]
+
+
+def _plan(roi: Roi, recipe: Recipe, spillover, channels) -> _Plan:
     wanted = _wanted(roi, channels)
     used = used_channels(roi.use)
     names = [roi.channels[i] for i in used]
     matrix = compensation_matrix(names, recipe.compensation, spillover, recipe_matrix=recipe.spillover_path())
-    plan = [(step, recipe.for_channels(step.name, names)) for step in STEPS]
-    running = [step.runs(settings, matrix) for step, settings in plan]
-    # steps up to the last one that needs every used channel run on all of them
-    shared = max((k for k, (step, _) in enumerate(plan) if running[k] and step.scope == "pixels"), default=-1)
-    wanted_set = set(wanted)
-    own = [i for i in used if i in wanted_set]
-    settings_of = {step.name: dict(zip(used, settings, strict=True)) for step, settings in plan}
-    notes = [step.skipped_note for step, runs in zip(STEPS, running, strict=True) if not runs and step.skipped_note]
+    steps, notes = [], []
+    for step in STEPS:
+        settings = recipe.for_channels(step.name, names)
+        runs = step.runs(settings, matrix)
+        steps.append((step, dict(zip(used, settings, strict=True)), runs))
+        if not runs and step.skipped_note:
+            notes.append(step.skipped_note)
+    shared = max((k for k, (step, _, runs) in enumerate(steps) if runs and step.scope == "pixels"), default=-1)
+    own = [i for i in used if i in set(wanted)]
+    return _Plan(wanted, used, own, steps, shared, matrix, tuple(notes))
 
-    if cache is not None:
-        planes = cache.planes(roi, sorted(wanted_set | set(used if shared >= 0 else ())))
 
-        def take(indices):
-            return stack_planes([planes[i] for i in indices]) if indices else None
+@dataclasses.dataclass(frozen=True)
+class _Source:
+    """The ROI's pixels as float32: ``stack(indices)`` (C', Y, X) and ``plane(i)``."""
 
-        raw = planes.__getitem__
-        cache.start(roi)
-    else:
-        data = _as_float32(roi.data, tile=recipe.output.tile)
+    stack: Callable
+    plane: Callable
 
-        def take(indices):
-            return _select(data, indices) if indices else None
+    @classmethod
+    def of(cls, roi: Roi, recipe: Recipe) -> _Source:
+        if is_dask(roi.data):
+            data = _as_float32(roi.data, tile=recipe.output.tile)
+            return cls(lambda indices: _select(data, indices), data.__getitem__)
+        # in memory: only the planes a wash of some channels needs are converted
+        data = roi.data if isinstance(roi.data, np.ndarray) else np.asarray(roi.data)
+        return cls(lambda indices: np.asarray(_select(data, indices), dtype=np.float32),
+                   lambda i: np.asarray(data[i], dtype=np.float32))
 
-        raw = data.__getitem__
-    work = used if shared >= 0 else own
-    key: tuple = (tuple(work), _matrix_key(matrix))
-    stack, records, started = None, [], False
-    for k, (step, _) in enumerate(plan):
-        if running[k] and work:
-            key += ((step.name, tuple(settings_of[step.name][i] for i in work)),)
-            kept = cache.result(k, key) if cache is not None else None
-            if kept is None:
-                before = stack if started else take(work)
-                stack, _, step_stats = step.run(before, [settings_of[step.name][i] for i in work], matrix)
-                removed_map = before - stack
-                records = records + [_StepRecord(step, tuple(work), removed_map,
-                                                 before.sum(axis=(1, 2), dtype=np.float64), step_stats)]
-                if cache is not None:
-                    cache.keep(k, key, (stack, records))
-            else:
-                stack, records = kept
-            started = True
-        elif running[k]:  # runs, on none of the channels asked for (pass-through ones)
-            records = records + [_StepRecord(step, (), None, (), [])]
-        if k == shared and own != work:  # later steps run only on the channels asked for
-            stack = _select(stack, [work.index(i) for i in own]) if own else None
-            work = own
-            key += (("channels", tuple(own)),)
-    if not started:
-        stack = take(work)
-
-    zeros = _zeros_like_plane(raw(wanted[0]))
-    removed, stats = {}, {}
-    for record in records:
-        removed[record.step.name] = _gather(record.removed, record.work, wanted, lambda i: zeros)
-        sums = (record.removed.sum(axis=(1, 2), dtype=np.float64) if record.work else (), record.before_sum)
-        stats[record.step.name] = step_rows(record.stats, *sums, worked=record.work,
-                                            channels=wanted, all_names=roi.channels)
-    washed = _gather(stack, work, wanted, raw)
-    return Washed(washed, tuple(roi.channels[i] for i in wanted), tuple(roi.labels[i] for i in wanted),
-                  roi.pixel_size, removed, stats, tuple(notes), roi.name)
+    @classmethod
+    def cached(cls, cache: WashCache, roi: Roi, plan: _Plan) -> _Source:
+        planes = cache.planes(roi, sorted(set(plan.wanted) | set(plan.used if plan.shared >= 0 else ())))
+        return cls(lambda indices: stack_planes([planes[i] for i in indices]), planes.__getitem__)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -189,6 +192,56 @@ class _StepRecord:
     removed: object
     before_sum: object
     stats: list
+
+
+def _run(plan: _Plan, source: _Source, cache: WashCache | None):
+    """Run the planned steps; returns the last stack, the channels it holds and the records.
+
+    Steps up to ``plan.shared`` work on every used channel, later ones on ``plan.own``.
+    With a cache, a step whose inputs are unchanged (same channels, matrix and settings
+    of it and of every step before) is taken from it.
+    """
+    work = plan.used if plan.shared >= 0 else plan.own
+    key: tuple = (tuple(work), _matrix_key(plan.matrix))
+    stack, records = None, []
+    for k, (step, settings, runs) in enumerate(plan.steps):
+        if runs and work:
+            key += ((step.name, tuple(settings[i] for i in work)),)
+            kept = cache.result(k, key) if cache is not None else None
+            if kept is None:
+                before = source.stack(work) if stack is None else stack
+                stack, _, step_stats = step.run(before, [settings[i] for i in work], plan.matrix)
+                record = _StepRecord(step, tuple(work), before - stack,
+                                     before.sum(axis=(1, 2), dtype=np.float64), step_stats)
+                records = records + [record]
+                if cache is not None:
+                    cache.keep(k, key, (stack, records))
+            else:
+                stack, records = kept
+        elif runs:  # the step runs, but on none of the channels asked for (pass-through ones)
+            records = records + [_StepRecord(step, (), None, (), [])]
+        if k == plan.shared and plan.own != work:  # later steps: only the channels asked for
+            stack = _select(stack, [work.index(i) for i in plan.own]) if plan.own else None
+            work = plan.own
+            key += (("channels", tuple(work)),)
+    if stack is None and work:
+        stack = source.stack(work)
+    return stack, work, records
+
+
+def _assemble(roi: Roi, plan: _Plan, source: _Source, stack, work, records) -> Washed:
+    """The :class:`Washed` of the wanted channels: washed planes, removed maps, stats rows."""
+    wanted = plan.wanted
+    zeros = _zeros_like_plane(source.plane(wanted[0]))
+    removed, stats = {}, {}
+    for record in records:
+        removed[record.step.name] = _gather(record.removed, record.work, wanted, lambda i: zeros)
+        removed_sum = record.removed.sum(axis=(1, 2), dtype=np.float64) if record.work else ()
+        stats[record.step.name] = step_rows(record.stats, removed_sum, record.before_sum, worked=record.work,
+                                            channels=wanted, all_names=roi.channels)
+    washed = _gather(stack, work, wanted, source.plane)
+    return Washed(washed, tuple(roi.channels[i] for i in wanted), tuple(roi.labels[i] for i in wanted),
+                  roi.pixel_size, removed, stats, plan.notes, roi.name)
 
 
 def _wanted(roi: Roi, channels) -> list[int]:
