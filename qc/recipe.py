@@ -80,6 +80,10 @@ class Recipe:
             return steps[name]
         raise AttributeError(f"{type(self).__name__!r} object has no attribute {name!r}")
 
+    def __reduce__(self):  # mapping proxies do not pickle: rebuild from plain dicts
+        channels = {section: dict(table) for section, table in self.channels.items()}
+        return _rebuild, (dict(self.steps), self.quality, self.output, channels, self.source)
+
     def _with_section(self, section: str, settings, **changes) -> Recipe:
         if section in OTHER_SECTIONS:
             return dataclasses.replace(self, **{section: settings}, **changes)
@@ -178,6 +182,10 @@ def _recipe(sections: Mapping[str, object], **extra) -> Recipe:
     """A :class:`Recipe` from every section's settings (steps and the others)."""
     steps = MappingProxyType({name: sections[name] for name in STEP_NAMES})
     return Recipe(steps=steps, **{name: sections[name] for name in OTHER_SECTIONS}, **extra)
+
+
+def _rebuild(steps: dict, quality, output, channels: dict, source) -> Recipe:
+    return _recipe({**steps, "quality": quality, "output": output}, channels=_freeze(channels), source=source)
 
 
 def default_recipe() -> Recipe:

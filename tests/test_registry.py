@@ -54,3 +54,13 @@ def test_stats_rows_carry_the_declared_numbers_in_both_washes(demo_dir, tmp_path
             assert set(s.stats) <= set(row) and {"channel", "ran", "removed_fraction"} <= set(row)
             assert row.keys() == other.keys()
             assert row["removed_fraction"] == pytest.approx(other["removed_fraction"], rel=1e-6, abs=1e-12)
+
+
+def test_a_recipe_pickles_and_copies_with_its_overrides():
+    import copy
+    import pickle
+
+    recipe = default_recipe().with_channel("speckle", "Nd145", radius=3).replace("hot_pixels", flat_sigmas=2.0)
+    for again in (pickle.loads(pickle.dumps(recipe)), copy.deepcopy(recipe)):
+        assert again == recipe and again.sha256() == recipe.sha256()
+        assert again.for_channel("speckle", "Nd145").radius == 3 and again.hot_pixels.flat_sigmas == 2.0
