@@ -3,13 +3,7 @@
 Research software: keep raw data; cleaned images are not for clinical diagnosis.
 """
 
-from importlib.metadata import PackageNotFoundError, version
-
-try:
-    __version__ = version("plexwash")
-except PackageNotFoundError:  # running from a source tree that is not installed
-    __version__ = "0.0.0+unknown"
-
+from ._version import __version__
 from .errors import InputError
 from .io import OutputSettings, Panel, Roi, read_panel, read_roi, write_ome_tiff, write_ome_zarr
 from .quality import (

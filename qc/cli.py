@@ -25,7 +25,7 @@ class _Parser(argparse.ArgumentParser):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from . import __version__
+    from ._version import __version__
 
     parser = _Parser(
         prog="plexwash",

@@ -268,7 +268,7 @@ def _toml_key(name: str) -> str:
 
 
 def _render(recipe: Recipe) -> str:
-    from . import __version__
+    from ._version import __version__
 
     lines = [
         f"# plexwash recipe (written by plexwash {__version__}).",

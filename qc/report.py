@@ -187,7 +187,7 @@ def _names(latest: Mapping) -> list[str]:
 
 
 def _render(ctx: dict, *, thumbnail_rois: int) -> str:
-    from . import __version__
+    from ._version import __version__
 
     latest = ctx["latest"]
     names = _names(latest)
