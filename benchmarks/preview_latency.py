@@ -52,7 +52,7 @@ def _percentiles(values_ms):
 
 
 def _engine_floor(plane, repeats: int):
-    from plexwash.qc.speckle import remove_hot_pixels, remove_speckle
+    from plexwash.qc import remove_hot_pixels, remove_speckle
 
     hot = remove_hot_pixels(plane).image
     remove_speckle(hot)  # compile / warm

@@ -24,12 +24,8 @@ from concurrent.futures import ThreadPoolExecutor
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import numpy as np  # noqa: E402
-from plexwash.qc.speckle import (  # noqa: E402
-    HotPixelSettings,
-    SpeckleSettings,
-    hot_pixels_stack,
-    speckle_stack,
-)
+from plexwash.qc.steps.hot_pixels import HotPixelSettings, hot_pixels_stack  # noqa: E402
+from plexwash.qc.steps.speckle import SpeckleSettings, speckle_stack  # noqa: E402
 from scipy import ndimage as ndi  # noqa: E402
 
 

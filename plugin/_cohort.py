@@ -209,7 +209,7 @@ class CohortWidget(StudioWidget):
     def _measure_flags(self, rois):
         if self._flag_worker is not None:
             self._flag_worker.quit()
-        recipe = self.state.recipe
+        recipe, spillover = self.state.recipe, self.state.spillover
 
         @thread_worker
         def flags():
@@ -219,7 +219,7 @@ class CohortWidget(StudioWidget):
                 except Exception as exc:  # one bad ROI must not stop the others
                     yield path, exc
                     continue
-                yield roi.name, measure_rows(roi, recipe)
+                yield roi.name, measure_rows(roi, recipe, spillover=spillover)
 
         from plexwash.qc.io import roi_stem
 

@@ -35,24 +35,17 @@ STAGES = ("raw", "washed")
 
 
 def measure_rows(roi, recipe, *, stage: str = "raw", data=None, spillover=None) -> list[dict]:
-    """Quality rows of an ROI (``data`` replaces its pixels, e.g. a washed stack).
+    """Quality rows of an ROI as a run measures them (:func:`plexwash.qc.quality.measure_roi`).
 
-    Thresholds come from the recipe's ``[quality]`` section (per channel where it
-    overrides them); each row gets the channel's panel ``label``.
+    ``stage="washed"`` measures ``data`` (the washed stack) against the raw ROI, so that
+    the rows equal those of the run's ``quality.csv``; ``spillover`` (the studio's
+    matrix) feeds the raw stage's ghost model, as in a run.
     """
-    from plexwash.qc.quality import measure_stack, quality_rows
+    from plexwash.qc.quality import measure_roi
 
-    stack = roi.data if data is None else data
-    dtype_max = None
-    if data is not None and np.dtype(roi.data.dtype).kind in "ui":
-        dtype_max = float(np.iinfo(roi.data.dtype).max)  # washed float data keep the detector range
-    quality = measure_stack(stack, list(roi.channels), settings=recipe.quality,
-                            channel_settings=recipe.for_channels("quality", roi.channels),
-                            dtype_max=dtype_max, spillover=spillover, threads=os.cpu_count() or 1)
-    rows = quality_rows(quality, roi=roi.name, stage=stage)
-    for row, label in zip(rows, roi.labels, strict=True):
-        row["label"] = label
-    return rows
+    measured = measure_roi(roi, recipe, spillover=spillover, washed=data if stage == "washed" else None,
+                           threads=os.cpu_count() or 1)
+    return measured.washed_rows if stage == "washed" else measured.raw_rows
 
 
 def cell_text(value, fmt) -> str:
@@ -147,11 +140,11 @@ class QualityWidget(StudioWidget):
         @thread_worker
         def job():
             if stage == "raw":
-                return stage, measure_rows(roi, recipe)
+                return stage, measure_rows(roi, recipe, spillover=spillover)
             from plexwash.qc.wash import compute, wash
 
             washed = compute(wash(roi, recipe, spillover=spillover))
-            return stage, measure_rows(roi, recipe, stage="washed", data=washed.data)
+            return stage, measure_rows(roi, recipe, stage="washed", data=washed.data, spillover=spillover)
 
         return self.start(job(), on_return=lambda result: self._show(roi, *result))
 

@@ -1,9 +1,11 @@
-"""Speckle dock widget: tune hot-pixel and speckle settings per channel with a live preview.
+"""Speckle dock widget: tune the per-channel cleaning settings with a live preview.
 
-The preview shows the chosen channel three times side by side: raw, washed, and the
-removed map (raw - washed), and says what fraction of the channel's signal went. It is
-the wash of :mod:`plexwash.qc.wash` restricted to one channel: hot pixels, then (when the
-Spillover widget holds a matrix) compensation of the whole stack, then speckle.
+The forms are those of the per-channel steps of the engine's step registry (hot pixels,
+speckle). The preview shows the chosen channel three times side by side: raw, washed,
+and the removed map (raw - washed), and says what fraction of the channel's signal went.
+It is the engine's wash of that one channel (:func:`plexwash.qc.wash` with
+``channels=[channel]``), bit for bit the channel of a full wash; the engine's
+:class:`~plexwash.qc.wash.WashCache` keeps what a settings change does not touch.
 """
 
 from __future__ import annotations
@@ -24,8 +26,13 @@ from ._common import PathRow, SettingsForm, StudioWidget
 from ._layers import channel_layer, fit_visible, grid_of, studio_layers
 from ._preview import LatestOnly
 
-#: The per-channel sections this widget edits, in step order.
-SECTIONS = ("hot_pixels", "speckle")
+
+def _sections() -> tuple[str, ...]:
+    """The per-channel steps this widget edits, in step order (from the engine's registry)."""
+    from plexwash.qc.steps.registry import per_channel_steps
+
+    return tuple(step.name for step in per_channel_steps())
+
 #: Gap between the raw, washed and removed copies, as a fraction of the ROI width.
 SIDE_GAP = 0.04
 
@@ -62,11 +69,6 @@ class ChannelPreview:
     notes: tuple[str, ...] = ()
 
 
-def _fraction(removed: np.ndarray, entering: np.ndarray) -> float:
-    total = float(entering.sum(dtype=np.float64))
-    return float(removed.sum(dtype=np.float64)) / total if total > 0 else 0.0
-
-
 def _removed_limits(removed: np.ndarray) -> tuple[float, float]:
     """0 to the 99th percentile of the removed pixels (a sparse map: most pixels are 0).
 
@@ -83,110 +85,37 @@ def _removed_limits(removed: np.ndarray) -> tuple[float, float]:
 
 
 class PreviewEngine:
-    """One-channel wash previews that redo only the steps whose inputs changed.
+    """One-channel previews: the engine's wash of that channel, with its cache.
 
-    Without a spillover matrix a channel's wash is independent of the others: hot pixels
-    then speckle on that channel alone (the hot-pixel result is kept while only speckle
-    settings change). With a matrix, compensation needs every channel, so the whole stack
-    is washed once up to compensation (:func:`plexwash.qc.wash.wash` with speckle off)
-    and kept until the ROI, the matrix or a hot-pixel / compensation setting changes.
-    Not thread-safe: the studio runs one computation at a time.
+    Holds a :class:`plexwash.qc.wash.WashCache`, so that the ROI's planes are read once
+    and a change of a later step's settings reuses the earlier steps (with a spillover
+    matrix: hot pixels and compensation of the whole stack). Not thread-safe: the studio
+    runs one computation at a time.
     """
 
     def __init__(self):
-        self._hot_key = None
-        self._hot = None
-        self._raw_sum = (None, 0.0)
-        self._stack_key = None
-        self._stack = None
-        self._planes: dict[int, tuple] = {}
+        from plexwash.qc.wash import WashCache
 
-    def compute(self, roi, recipe, channel: str, *, spillover=None, plane=None) -> ChannelPreview:
+        self.cache = WashCache()
+
+    def compute(self, roi, recipe, channel: str, *, spillover=None) -> ChannelPreview:
         """Wash one channel of ``roi`` with ``recipe`` (and ``spillover``) up to the end."""
-        from plexwash.qc.speckle import remove_hot_pixels, remove_speckle
+        from plexwash.qc import wash
 
         index = roi.channel_index(channel)
-        channel = roi.channels[index]
-        label = roi.labels[index]
-        raw = plane if plane is not None else np.asarray(roi.data[index], dtype=np.float32)
-        raw = np.asarray(raw, dtype=np.float32)
-        if not roi.use[index]:
-            zeros = np.zeros_like(raw)
-            return ChannelPreview(channel, label, index, raw, zeros, {}, 0.0, (0.0, 1.0),
-                                  ("the panel marks this channel use = no: it passes through",))
-        hot = recipe.for_channel("hot_pixels", channel)
-        speckle = recipe.for_channel("speckle", channel)
-        fractions, notes = {}, []
-        if spillover is not None and recipe.compensation.enabled:
-            before, fractions = self._compensated(roi, recipe, spillover, index, raw)
-        else:
-            if spillover is None:
-                notes.append("no spillover matrix: compensation left out")
-            before = raw
-            if hot.enabled:
-                key = (id(raw), hot)
-                if key != self._hot_key:
-                    self._hot = remove_hot_pixels(raw, ratio=hot.ratio, min_excess=hot.min_excess)
-                    self._hot_key = key
-                before = self._hot.image
-                fractions["hot_pixels"] = float(self._hot.stats["removed_fraction"])
-        if speckle.enabled:
-            kwargs = {f.name: getattr(speckle, f.name) for f in dataclasses.fields(speckle)
-                      if f.name != "enabled"}
-            result = remove_speckle(before, **kwargs)
-            washed = result.image
-            fractions["speckle"] = float(result.stats["removed_fraction"])
-        else:
-            washed = before
-        removed = raw - washed
-        if self._raw_sum[0] is not raw:  # the raw total is the same for every preview of a channel
-            self._raw_sum = (raw, float(raw.sum(dtype=np.float64)))
-        total = self._raw_sum[1]
+        washed = wash(roi, recipe, spillover=spillover, channels=[roi.channels[index]], cache=self.cache)
+        raw = self.cache.planes(roi, [index])[index]
+        plane = washed.data[0]
+        removed = raw - plane
+        fractions = {step: row["removed_fraction"] for step, (row,) in washed.stats.items()
+                     if row["ran"] and row.get("enabled", True)}
+        total = float(raw.sum(dtype=np.float64))
         fraction = float(removed.sum(dtype=np.float64)) / total if total > 0 else 0.0
-        return ChannelPreview(channel, label, index, washed, removed, fractions, fraction,
+        notes = list(washed.notes)
+        if not roi.use[index]:
+            notes.insert(0, "the panel marks this channel use = no: it passes through")
+        return ChannelPreview(washed.channels[0], washed.labels[0], index, plane, removed, fractions, fraction,
                               _removed_limits(removed), tuple(notes))
-
-    def _compensated(self, roi, recipe, spillover, index: int, raw):
-        from plexwash.qc.wash import wash
-
-        key = (id(roi), id(spillover), _canonical(recipe, "hot_pixels"), _canonical(recipe, "compensation"))
-        if key != self._stack_key:
-            self._stack = wash(roi, _without_speckle(recipe), spillover=spillover)
-            self._stack_key = key
-            self._planes = {}
-        if index not in self._planes:
-            stack = self._stack
-            parts = [stack.data[index]] + [stack.removed[s][index] for s in ("hot_pixels", "compensation")
-                                           if s in stack.removed]
-            if stack.is_lazy:
-                import dask
-
-                parts = list(dask.compute(*parts))
-            self._planes[index] = tuple(np.asarray(p, dtype=np.float32) for p in parts)
-        before, *removed = self._planes[index]
-        fractions = {}
-        entering = raw
-        steps = [s for s in ("hot_pixels", "compensation") if s in self._stack.removed]
-        for step, taken in zip(steps, removed, strict=True):
-            fractions[step] = _fraction(taken, entering)
-            entering = entering - taken
-        return before, fractions
-
-
-def _canonical(recipe, section: str) -> str:
-    from plexwash.qc.io import canonical_json
-
-    data = recipe.to_dict()[section]
-    return canonical_json(data)
-
-
-def _without_speckle(recipe):
-    """The recipe with the speckle step off for every channel."""
-    from plexwash.qc.recipe import recipe_from_dict
-
-    data = recipe.to_dict()
-    data["speckle"] = {"enabled": False}
-    return recipe_from_dict(data, source=recipe.source)
 
 
 def recipe_apply_to_all(recipe, channel: str):
@@ -203,7 +132,7 @@ def recipe_apply_to_all(recipe, channel: str):
     from plexwash.qc.recipe import recipe_from_dict
 
     data = recipe.to_dict()
-    for section in SECTIONS:
+    for section in _sections():
         data[section] = dataclasses.asdict(recipe.for_channel(section, channel))
     return recipe_from_dict(data, source=recipe.source)
 
@@ -213,7 +142,7 @@ def recipe_reset_channel(recipe, channel: str):
     from plexwash.qc.recipe import recipe_from_dict
 
     data = recipe.to_dict()
-    for section in SECTIONS:
+    for section in _sections():
         overrides = data[section].get("channels", {})
         overrides.pop(channel, None)
         if not overrides:
@@ -225,7 +154,7 @@ class SpeckleWidget(StudioWidget):
     """Per-channel hot-pixel and speckle settings, live preview, apply to all, save the recipe."""
 
     def __init__(self, napari_viewer, parent=None, *, delay_ms: int = 0):
-        from plexwash.qc.speckle import HotPixelSettings, SpeckleSettings
+        from plexwash.qc.steps.registry import per_channel_steps
 
         super().__init__(napari_viewer, parent)
         self.engine = PreviewEngine()
@@ -248,13 +177,15 @@ class SpeckleWidget(StudioWidget):
         row.addWidget(self.live)
         layout.addLayout(row)
 
-        layout.addWidget(self.caption("Hot pixels"))
-        self.forms = {"hot_pixels": SettingsForm(HotPixelSettings), "speckle": SettingsForm(SpeckleSettings)}
-        self.forms["hot_pixels"].changed.connect(lambda k, v: self.change("hot_pixels", k, v))
-        layout.addWidget(self.forms["hot_pixels"])
-        layout.addWidget(self.caption("Speckle"))
-        self.forms["speckle"].changed.connect(lambda k, v: self.change("speckle", k, v))
-        layout.addWidget(self.forms["speckle"])
+        self.forms = {}
+        self.step_labels = {}
+        for step in per_channel_steps():  # one form per per-channel step of the registry
+            layout.addWidget(self.caption(step.label))
+            form = SettingsForm(step.settings)
+            form.changed.connect(lambda k, v, name=step.name: self.change(name, k, v))
+            layout.addWidget(form)
+            self.forms[step.name] = form
+            self.step_labels[step.name] = step.label
 
         self.removed_text = QLabel("—")
         self.removed_text.setObjectName("removed_fraction")
@@ -367,7 +298,7 @@ class SpeckleWidget(StudioWidget):
         for section, form in self.forms.items():
             settings = recipe.for_channel(section, channel) if channel else getattr(recipe, section)
             form.set_values(settings)
-        own = channel is not None and any(channel in recipe.channels.get(s, {}) for s in SECTIONS)
+        own = channel is not None and any(channel in recipe.channels.get(s, {}) for s in self.forms)
         self.reset_button.setEnabled(own)
 
     # ------------------------------------------------------------------ channels
@@ -409,11 +340,11 @@ class SpeckleWidget(StudioWidget):
             return
         state = self.state
         channel = self.current_channel
-        self.runner.request((state.roi, state.recipe, channel, state.spillover, state.plane(channel)))
+        self.runner.request((state.roi, state.recipe, channel, state.spillover))
 
     def _compute(self, payload) -> ChannelPreview:
-        roi, recipe, channel, spillover, plane = payload
-        return self.engine.compute(roi, recipe, channel, spillover=spillover, plane=plane)
+        roi, recipe, channel, spillover = payload
+        return self.engine.compute(roi, recipe, channel, spillover=spillover)
 
     def _deliver(self, result: ChannelPreview) -> None:
         roi = self.state.roi
@@ -461,8 +392,9 @@ class SpeckleWidget(StudioWidget):
 
     def _show_fractions(self, result: ChannelPreview) -> None:
         self.removed_text.setText(f"removed {100 * result.total_fraction:.3g} % of the signal")
-        names = {"hot_pixels": "hot pixels", "compensation": "compensation", "speckle": "speckle"}
-        parts = [f"{names[k]} {100 * v:.3g} %" for k, v in result.fractions.items()]
+        from plexwash.qc.steps.registry import step
+
+        parts = [f"{step(k).label} {100 * v:.3g} %" for k, v in result.fractions.items()]
         self.removed_detail.setText(" · ".join(parts + list(result.notes)))
         self.removed_text.setToolTip("of the raw channel's total counts; each step's share is of "
                                      "the signal entering that step")

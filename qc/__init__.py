@@ -3,13 +3,7 @@
 Research software: keep raw data; cleaned images are not for clinical diagnosis.
 """
 
-from importlib.metadata import PackageNotFoundError, version
-
-try:
-    __version__ = version("plexwash")
-except PackageNotFoundError:  # running from a source tree that is not installed
-    __version__ = "0.0.0+unknown"
-
+from ._version import __version__
 from .errors import InputError
 from .io import OutputSettings, Panel, Roi, read_panel, read_roi, write_ome_tiff, write_ome_zarr
 from .quality import (
@@ -22,9 +16,7 @@ from .quality import (
     quality_rows,
 )
 from .recipe import Recipe, default_recipe, load_recipe, write_recipe
-from .speckle import HotPixelSettings, SpeckleSettings, remove_hot_pixels, remove_speckle
 from .spillover import (
-    CompensationSettings,
     SpilloverMatrix,
     compensate,
     estimate_from_controls,
@@ -32,6 +24,9 @@ from .spillover import (
     read_spillover,
     write_spillover,
 )
+from .steps.compensation import CompensationSettings
+from .steps.hot_pixels import HotPixelSettings, remove_hot_pixels
+from .steps.speckle import SpeckleSettings, remove_speckle
 from .wash import Washed, wash, wash_to_file
 
 __all__ = [

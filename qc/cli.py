@@ -25,7 +25,7 @@ class _Parser(argparse.ArgumentParser):
 
 
 def build_parser() -> argparse.ArgumentParser:
-    from . import __version__
+    from ._version import __version__
 
     parser = _Parser(
         prog="plexwash",
@@ -162,15 +162,16 @@ def _inspect(args) -> int:
 
 def inspection(roi, recipe) -> dict:
     """Per-channel quality of one raw ROI as the ``inspect --json`` document."""
-    from .quality import measure_stack, quality_rows
+    from .quality import measure_roi
 
     recipe.check_channels(roi.channels, roi=roi.path)
-    measured = measure_stack(
-        roi.data, roi.channels, settings=recipe.quality,
-        channel_settings=recipe.for_channels("quality", roi.channels),
-        threads=os.cpu_count() or 1,
-    )
-    rows = quality_rows(measured, roi=roi.name, stage="raw")
+    matrix = None
+    if recipe.spillover_path() is not None and recipe.compensation.enabled:
+        from .spillover import read_spillover
+
+        matrix = read_spillover(recipe.spillover_path())
+    measured = measure_roi(roi, recipe, spillover=matrix, threads=os.cpu_count() or 1)
+    rows = measured.raw_rows
     channels = []
     for row, label, use in zip(rows, roi.labels, roi.use, strict=True):
         entry = {"name": row["channel"], "label": label, "use": bool(use)}
@@ -182,7 +183,7 @@ def inspection(roi, recipe) -> dict:
         "shape": list(roi.shape),
         "dtype": str(roi.data.dtype),
         "pixel_size": list(roi.pixel_size) if roi.pixel_size else None,
-        "flags": list(measured.flags),
+        "flags": measured.flags["raw"],
         "channels": channels,
     }
 

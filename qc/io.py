@@ -22,6 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ._arrays import is_dask
 from .errors import InputError
 from .settings import setting
 
@@ -179,7 +180,7 @@ def read_panel(path: str | Path) -> Panel:
         channels.append(name)
         labels.append((row.get("label") or "").strip() or name)
         use.append(flag == "yes")
-    _refuse_duplicates(path, channels, "channel")
+    refuse_duplicates(path, channels, "channel")
     return Panel(tuple(channels), tuple(labels), tuple(use), path)
 
 
@@ -214,7 +215,7 @@ def _read_csv_rows(path: Path, *, required: Sequence[str]) -> list[tuple[int, di
     return body
 
 
-def _refuse_duplicates(path, names: Sequence[str], what: str, *,
+def refuse_duplicates(path, names: Sequence[str], what: str, *,
                        message: str = "duplicate {what} name(s): {names}") -> None:
     """Raise InputError naming every name that occurs more than once, in first-seen order."""
     seen, dups = set(), []
@@ -307,7 +308,7 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
         labels, use = (), ()
     if any(not c.strip() for c in channels):
         raise InputError(path, "a channel has an empty name")
-    _refuse_duplicates(path, channels, "channel")
+    refuse_duplicates(path, channels, "channel")
 
     nbytes = int(np.prod(data.shape)) * np.dtype(data.dtype).itemsize
     if lazy is None:
@@ -320,23 +321,6 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
         array = np.asarray(data[...])
     _refuse_non_finite(path, array)
     return Roi(array, tuple(channels), path, tuple(labels), tuple(use), pixel_size)
-
-
-def channel_plane(data, c: int, *, dtype=None, scheduler=None) -> np.ndarray:
-    """Channel ``c`` of a (C, Y, X) stack as a numpy array (of ``dtype`` when given).
-
-    The chunks of a dask stack are stored straight into the new array, without the
-    copy that concatenating them would make. ``scheduler`` is dask's (e.g.
-    ``"synchronous"`` inside a task that already runs on dask's threads).
-    """
-    if not _is_dask(data):
-        return np.asarray(data[c], dtype=dtype)
-    import dask.array as da
-
-    plane = np.empty(tuple(data.shape[1:]), dtype or data.dtype)
-    source = data[c] if plane.dtype == data.dtype else data[c].astype(plane.dtype)
-    da.store(source, plane, lock=False, scheduler=scheduler)
-    return plane
 
 
 def _refuse_non_finite(path: Path, array) -> None:
@@ -679,10 +663,10 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> P
     spill_dir = None
     try:
         kwargs = {"shape": tuple(data.shape), "dtype": np.dtype(data.dtype)}
-        if _is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
+        if is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
             spill_dir = Path(tempfile.mkdtemp(prefix=f".{path.name}.spill-", dir=path.parent))
             content = _tiles(_spill_to_zarr(data, spill_dir), tile)
-        elif _is_dask(data) or isinstance(data, np.ndarray):
+        elif is_dask(data) or isinstance(data, np.ndarray):
             content, kwargs = np.asarray(data), {}
         else:  # an array store: read band by band
             content = _tiles(data, tile)
@@ -710,10 +694,6 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> P
 
 def _round_up16(n: int) -> int:
     return int(-(-n // 16) * 16)
-
-
-def _is_dask(data) -> bool:
-    return type(data).__module__.startswith("dask")
 
 
 def _nbytes(data) -> int:
@@ -802,7 +782,7 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None) -> P
         if isinstance(data, np.ndarray):
             array[...] = data
         else:
-            if not _is_dask(data):  # an array store: read in bands of whole rows
+            if not is_dask(data):  # an array store: read in bands of whole rows
                 import dask.array as da
 
                 data = da.from_array(data, chunks=(1, array.chunks[1], data.shape[2]),

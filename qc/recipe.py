@@ -1,53 +1,53 @@
 """Recipes: every cleaning setting, global and per channel, parsed once into frozen objects.
 
-A recipe is a TOML file with the sections ``[hot_pixels]``, ``[compensation]``,
-``[speckle]``, ``[quality]`` and ``[output]``. Each step declares its own settings
+A recipe is a TOML file with one section per cleaning step of the registry
+(:mod:`plexwash.qc.steps.registry`: ``[hot_pixels]``, ``[compensation]``,
+``[speckle]``), then ``[quality]`` and ``[output]``. Each declares its own settings
 dataclass (with docs and ranges, see :mod:`plexwash.qc.settings`); this module
-validates TOML against those declarations, writes the commented default, and hashes
-the canonical settings for provenance. Per-channel overrides live under
-``[<section>.channels.<channel name>]`` for the per-channel steps.
+validates TOML against those declarations (:func:`plexwash.qc.settings.build_settings`),
+writes the commented default, and hashes the canonical settings for provenance.
+Per-channel overrides live under ``[<section>.channels.<channel name>]`` for the
+per-channel steps and ``[quality]``.
 """
 
 from __future__ import annotations
 
 import dataclasses
 import hashlib
-import math
 import tomllib
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from types import MappingProxyType
+from typing import TYPE_CHECKING
 
 from .errors import InputError
-from .settings import describe_range
+from .settings import build_settings, describe_range
+from .steps.registry import STEP_NAMES, STEPS
 
+if TYPE_CHECKING:
+    from .io import OutputSettings
+    from .quality import QualitySettings
+
+#: Sections that are not cleaning steps, after the steps.
+OTHER_SECTIONS = ("quality", "output")
 #: Sections whose settings may be overridden channel by channel.
-PER_CHANNEL = ("hot_pixels", "speckle", "quality")
-SECTION_ORDER = ("hot_pixels", "compensation", "speckle", "quality", "output")
+PER_CHANNEL = tuple(s.name for s in STEPS if s.per_channel) + ("quality",)
+SECTION_ORDER = STEP_NAMES + OTHER_SECTIONS
 
 _SECTION_TITLES = {
-    "hot_pixels": "Hot pixels: single-pixel spikes, detected then restored from their neighbours.",
-    "compensation": "Spillover compensation: exact per-pixel NNLS with the spillover matrix.",
-    "speckle": "Speckle: isolated background counts removed by a local-density test.",
+    **{s.name: s.title for s in STEPS},
     "quality": "Quality flags: thresholds for empty, low-sbr, saturated and striped.",
     "output": "Output: how washed stacks are written.",
 }
 
 
 def section_classes() -> dict[str, type]:
-    """The settings dataclass of each recipe section, in step order."""
+    """The settings dataclass of each recipe section: the registry's steps in order, then
+    ``quality`` and ``output``."""
     from .io import OutputSettings
     from .quality import QualitySettings
-    from .speckle import HotPixelSettings, SpeckleSettings
-    from .spillover import CompensationSettings
 
-    return {
-        "hot_pixels": HotPixelSettings,
-        "compensation": CompensationSettings,
-        "speckle": SpeckleSettings,
-        "quality": QualitySettings,
-        "output": OutputSettings,
-    }
+    return {**{s.name: s.settings for s in STEPS}, "quality": QualitySettings, "output": OutputSettings}
 
 
 @dataclasses.dataclass(frozen=True)
@@ -56,8 +56,11 @@ class Recipe:
 
     Attributes
     ----------
-    hot_pixels, compensation, speckle, quality, output
-        The global settings of each section.
+    steps : mapping
+        Step name -> the step's global settings, for every step of the registry; each is
+        also an attribute (``recipe.hot_pixels``, ``recipe.compensation``, ``recipe.speckle``).
+    quality, output
+        The global settings of those sections.
     channels : mapping
         ``{section: {channel: settings}}``: complete per-channel settings (global values
         with the channel's overrides applied) for channels that have overrides.
@@ -65,13 +68,27 @@ class Recipe:
         The file the recipe was read from (relative paths in it resolve against its folder).
     """
 
-    hot_pixels: object
-    compensation: object
-    speckle: object
-    quality: object
-    output: object
+    steps: Mapping[str, object]
+    quality: QualitySettings
+    output: OutputSettings
     channels: Mapping[str, Mapping[str, object]] = dataclasses.field(default_factory=dict)
     source: Path | None = None
+
+    def __getattr__(self, name: str):
+        steps = self.__dict__.get("steps")
+        if steps is not None and name in steps:
+            return steps[name]
+        raise AttributeError(f"{type(self).__name__!r} object has no attribute {name!r}")
+
+    def __reduce__(self):  # mapping proxies do not pickle: rebuild from plain dicts
+        channels = {section: dict(table) for section, table in self.channels.items()}
+        return _rebuild, (dict(self.steps), self.quality, self.output, channels, self.source)
+
+    def _with_section(self, section: str, settings, **changes) -> Recipe:
+        if section in OTHER_SECTIONS:
+            return dataclasses.replace(self, **{section: settings}, **changes)
+        steps = MappingProxyType({**self.steps, section: settings})
+        return dataclasses.replace(self, steps=steps, **changes)
 
     def for_channel(self, section: str, channel: str):
         """Settings of ``section`` that apply to one channel."""
@@ -130,15 +147,15 @@ class Recipe:
         cls = section_classes()[section]
         current = dataclasses.asdict(getattr(self, section))
         current.update(changes)
-        new = _build(cls, current, where=self.source or "recipe", section=section)
+        new = build_settings(cls, current, where=self.source or "recipe", section=section)
         channels = {s: dict(t) for s, t in self.channels.items()}
         if section in channels:  # overrides keep their own values on top of the new globals
             overrides = self.to_dict()[section].get("channels", {})
             channels[section] = {
-                ch: _build(cls, {**dataclasses.asdict(new), **ov}, where="recipe", section=section)
+                ch: build_settings(cls, {**dataclasses.asdict(new), **ov}, where="recipe", section=section)
                 for ch, ov in overrides.items()
             }
-        return dataclasses.replace(self, **{section: new}, channels=_freeze(channels))
+        return self._with_section(section, new, channels=_freeze(channels))
 
     def with_channel(self, section: str, channel: str, **changes) -> Recipe:
         """A copy with per-channel overrides of one section for one channel."""
@@ -147,7 +164,7 @@ class Recipe:
         cls = section_classes()[section]
         current = dataclasses.asdict(self.for_channel(section, channel))
         current.update(changes)
-        obj = _build(cls, current, where="recipe", section=f"{section}.channels.{channel}")
+        obj = build_settings(cls, current, where="recipe", section=f"{section}.channels.{channel}")
         channels = {s: dict(t) for s, t in self.channels.items()}
         channels.setdefault(section, {})[channel] = obj
         return dataclasses.replace(self, channels=_freeze(channels))
@@ -161,10 +178,19 @@ def _freeze(channels: dict) -> Mapping:
     return MappingProxyType({s: MappingProxyType(dict(t)) for s, t in channels.items() if t})
 
 
+def _recipe(sections: Mapping[str, object], **extra) -> Recipe:
+    """A :class:`Recipe` from every section's settings (steps and the others)."""
+    steps = MappingProxyType({name: sections[name] for name in STEP_NAMES})
+    return Recipe(steps=steps, **{name: sections[name] for name in OTHER_SECTIONS}, **extra)
+
+
+def _rebuild(steps: dict, quality, output, channels: dict, source) -> Recipe:
+    return _recipe({**steps, "quality": quality, "output": output}, channels=_freeze(channels), source=source)
+
+
 def default_recipe() -> Recipe:
     """The recipe used when none is given."""
-    classes = section_classes()
-    return Recipe(**{name: cls() for name, cls in classes.items()})
+    return _recipe({name: cls() for name, cls in section_classes().items()})
 
 
 def load_recipe(path: str | Path | None) -> Recipe:
@@ -203,7 +229,7 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
         if not isinstance(data.get(name, {}), Mapping):
             raise InputError(where, f"{name} must be a table [{name}]")
         overrides = table.pop("channels", None)
-        sections[name] = _build(cls, table, where=where, section=name)
+        sections[name] = build_settings(cls, table, where=where, section=name)
         if overrides is None:
             continue
         if name not in PER_CHANNEL:
@@ -215,61 +241,10 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
         for channel, values in overrides.items():
             if not isinstance(values, Mapping):
                 raise InputError(where, f"{name}.channels.{channel} must be a table")
-            per[channel] = _build(cls, {**base, **values}, where=where, section=f"{name}.channels.{channel}")
+            per[channel] = build_settings(cls, {**base, **values}, where=where,
+                                          section=f"{name}.channels.{channel}")
         channels[name] = per
-    return Recipe(**sections, channels=_freeze(channels), source=source)
-
-
-def _build(cls: type, values: Mapping, *, where, section: str):
-    """Construct one settings dataclass from a mapping, validating names, types and ranges."""
-    fields = {f.name: f for f in dataclasses.fields(cls)}
-    for key in values:
-        if key not in fields:
-            raise InputError(where, f"unknown key {section}.{key}; known: {', '.join(fields)}")
-    checked = {}
-    for key, value in values.items():
-        checked[key] = _check_value(fields[key], value, where=where, key=f"{section}.{key}")
-    return cls(**checked)
-
-
-def _check_value(field: dataclasses.Field, value, *, where, key: str):
-    default = field.default
-    meta = field.metadata
-    kind = type(default)
-    if kind is bool:
-        if not isinstance(value, bool):
-            raise InputError(where, f"{key} must be true or false, got {value!r}")
-        return value
-    if kind is str:
-        if not isinstance(value, str):
-            raise InputError(where, f"{key} must be a string, got {value!r}")
-        if meta.get("choices") and value not in meta["choices"]:
-            raise InputError(where, f"{key} = {value!r} is not allowed; allowed: {describe_range(meta)}")
-        return value
-    if kind is int:
-        if isinstance(value, bool) or not isinstance(value, int):
-            if isinstance(value, float) and value.is_integer():
-                value = int(value)
-            else:
-                raise InputError(where, f"{key} must be a whole number, got {value!r}")
-    elif kind is float:
-        if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise InputError(where, f"{key} must be a number, got {value!r}")
-        value = float(value)
-        if not math.isfinite(value):
-            raise InputError(where, f"{key} must be finite, got {value!r}")
-    if not _in_range(value, meta):
-        raise InputError(where, f"{key} = {value!r} is out of range; allowed: {describe_range(meta)}")
-    return value
-
-
-def _in_range(value, meta) -> bool:
-    low, high = meta.get("low"), meta.get("high")
-    if low is not None and (value < low or (meta.get("low_open") and value == low)):
-        return False
-    if high is not None and (value > high or (meta.get("high_open") and value == high)):
-        return False
-    return True
+    return _recipe(sections, channels=_freeze(channels), source=source)
 
 
 # --------------------------------------------------------------------------- TOML text
@@ -293,11 +268,11 @@ def _toml_key(name: str) -> str:
 
 
 def _render(recipe: Recipe) -> str:
-    from . import __version__
+    from ._version import __version__
 
     lines = [
         f"# plexwash recipe (written by plexwash {__version__}).",
-        "# Every cleaning setting of a wash. Steps run in this order: hot_pixels, compensation, speckle.",
+        f"# Every cleaning setting of a wash. Steps run in this order: {', '.join(STEP_NAMES)}.",
         "# Per-channel overrides: add a table [<section>.channels.<channel>] with the keys to change,",
         "# e.g. [speckle.channels.Nd145] radius = 3, or enabled = false to skip a step for a channel.",
         "",

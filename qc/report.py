@@ -25,6 +25,8 @@ from pathlib import Path
 
 import numpy as np
 
+from .steps.registry import STEPS
+
 #: ROIs that get raw / washed / removed thumbnails (cohort outliers and flagged ROIs first).
 THUMBNAIL_ROIS = 4
 #: Longest side of a thumbnail, pixels.
@@ -34,8 +36,8 @@ CONTRAST_PERCENTILES = (1.0, 99.5)
 #: Heatmaps show at most this many ROIs (the rest are listed in the tables).
 HEATMAP_ROIS = 120
 
-_STEPS = ("hot_pixels", "compensation", "speckle")
-_STEP_TITLES = {"hot_pixels": "hot pixels", "compensation": "compensation", "speckle": "speckle"}
+_STEPS = tuple(s.name for s in STEPS)
+_STEP_TITLES = {s.name: s.label for s in STEPS}
 CAUTIONS = (
     "Research use only. Washed images are not for clinical diagnosis.",
     "Keep the raw data: the washed stacks are derived from it and never replace it.",
@@ -185,7 +187,7 @@ def _names(latest: Mapping) -> list[str]:
 
 
 def _render(ctx: dict, *, thumbnail_rois: int) -> str:
-    from . import __version__
+    from ._version import __version__
 
     latest = ctx["latest"]
     names = _names(latest)

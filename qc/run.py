@@ -621,50 +621,12 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
 
 
 def _measure_quality(roi, washed_path: Path, recipe, matrix, *, threads: int = 1):
-    """Quality rows of the raw ROI and of the washed stack as written.
-
-    Raw first, then washed with the raw result as reference (empty verdicts carry over).
-    """
-    import numpy as np
-
+    """Quality rows of the raw ROI and of the washed stack as written (quality.measure_roi)."""
     from .io import read_roi
-    from .quality import measure_stack, quality_rows
+    from .quality import measure_roi
 
-    settings = recipe.quality
-    per_channel = recipe.for_channels("quality", roi.channels)
-    dtype = np.dtype(roi.data.dtype)
-    dtype_max = float(np.iinfo(dtype).max) if dtype.kind in "ui" else None
-    known = _aligned_matrix(matrix, roi.channels)
-    washed_roi = read_roi(washed_path)
-
-    def measure(stack, **extra):
-        return measure_stack(stack, roi.channels, settings=settings, channel_settings=per_channel,
-                             dtype_max=dtype_max, threads=threads, **extra)
-
-    # The washed stage is judged against the raw one: a wash removes signal and cannot
-    # create a stain, so a channel empty in raw stays empty (quality.measure_stack notes).
-    raw = measure(roi.data, spillover=known)
-    washed = measure(washed_roi.data, reference=raw)
-    rows = []
-    for stage, result in (("raw", raw), ("washed", washed)):
-        stage_rows = quality_rows(result, roi=roi.name, stage=stage)
-        for row, label in zip(stage_rows, roi.labels, strict=True):
-            row["label"] = label
-        rows.append(stage_rows)
-    return rows[0], rows[1], {"raw": list(raw.flags), "washed": list(washed.flags)}
-
-
-def _aligned_matrix(matrix, channels):
-    """The spillover values over all of the ROI's channels, or None when not all are covered."""
-    if matrix is None:
-        return None
-    import numpy as np
-
-    index = {c: i for i, c in enumerate(matrix.channels)}
-    if any(c not in index for c in channels):
-        return None
-    order = [index[c] for c in channels]
-    return np.asarray(matrix.values, float)[np.ix_(order, order)]
+    measured = measure_roi(roi, recipe, spillover=matrix, washed=read_roi(washed_path).data, threads=threads)
+    return measured.raw_rows, measured.washed_rows, measured.flags
 
 
 def _median_sbr(raw_rows, washed_rows) -> dict:
@@ -1043,7 +1005,7 @@ def _now() -> str:
 
 
 def _version() -> str:
-    from . import __version__
+    from ._version import __version__
 
     return __version__
 

@@ -39,8 +39,8 @@ from pathlib import Path
 import numpy as np
 from plexwash.qc import _nnls  # absolute: one numba cache, whatever imported us
 
+from ._arrays import is_dask
 from .errors import InputError
-from .settings import setting
 
 #: Matrices whose 2-norm condition number exceeds this are refused. Compensation can
 #: amplify noise by up to the condition number; physical spillover matrices (entries of
@@ -58,22 +58,6 @@ _CONTRACTION_LIMIT = 0.5
 _SWEEP_TOLERANCE = 1e-10
 _MAX_EXCHANGES = 200
 _VALUE_FORMAT = ".10g"
-
-
-# ============================================================================ settings
-
-
-@dataclasses.dataclass(frozen=True)
-class CompensationSettings:
-    """Compensation step settings (recipe section ``[compensation]``)."""
-
-    enabled: bool = setting(True, "compensate spillover (needs a spillover matrix)")
-    method: str = setting(
-        "nnls",
-        "nnls: exact non-negative least squares per pixel; linear: solve, then clip at 0",
-        choices=("nnls", "linear"),
-    )
-    spillover: str = setting("", "spillover matrix CSV (relative to the recipe); empty: none")
 
 
 # ============================================================================ the matrix
@@ -230,9 +214,9 @@ def _read_matrix_csv(path: Path, *, channels: tuple[str, ...] | None = None):
 
 
 def _refuse_duplicate_names(path, names: Sequence[str], what: str) -> None:
-    from .io import _refuse_duplicates
+    from .io import refuse_duplicates
 
-    _refuse_duplicates(path, names, what, message="channel named twice ({what}s): {names}")
+    refuse_duplicates(path, names, what, message="channel named twice ({what}s): {names}")
 
 
 def write_spillover(path: str | Path, matrix: SpilloverMatrix, *, heatmap: str | Path | None = None) -> Path:
@@ -588,13 +572,13 @@ def compensate(stack, spillover, *, method: str = "nnls"):
     """
     if method not in ("nnls", "linear"):
         raise InputError("method", f"unknown compensation method {method!r} (nnls or linear)")
-    array = stack if _is_dask(stack) else np.asarray(stack)
+    array = stack if is_dask(stack) else np.asarray(stack)
     if array.ndim != 3:
         raise InputError("stack", f"expected a C x Y x X stack, got {array.ndim}-D data")
     values = _spillover_values(spillover, array)
-    if _is_dask(array):
+    if is_dask(array):
         return _compensate_dask(array, values, method)
-    return _compensate_array(array, values, method=method, parallel=True)
+    return compensate_array(array, values, method=method, parallel=True)
 
 
 def _spillover_values(spillover, stack) -> np.ndarray:
@@ -608,10 +592,6 @@ def _spillover_values(spillover, stack) -> np.ndarray:
         raise InputError("spillover", f"matrix is {values.shape[0]} x {values.shape[0]} but the stack has {n_channels} channels")
     _check_values(values, names, "spillover")
     return np.array(values, dtype=np.float64)
-
-
-def _is_dask(array) -> bool:
-    return type(array).__module__.split(".")[0] == "dask"
 
 
 def _compensate_dask(stack, values: np.ndarray, method: str):
@@ -629,7 +609,7 @@ def _compensate_dask(stack, values: np.ndarray, method: str):
 
 def _compensate_block(block, values, method):
     # dask runs blocks on its own threads: the serial kernel avoids oversubscription.
-    return _compensate_array(np.asarray(block), values, method=method, parallel=False)
+    return compensate_array(np.asarray(block), values, method=method, parallel=False)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -705,9 +685,9 @@ def _csr(matrix: np.ndarray):
     return np.cumsum(ptr), cols.astype(np.int64), np.ascontiguousarray(matrix[rows, cols], dtype=np.float64)
 
 
-def _compensate_array(array: np.ndarray, values: np.ndarray, *, method: str, parallel: bool,
-                      max_sweeps: int | None = None, max_exchanges: int = _MAX_EXCHANGES,
-                      counts: dict | None = None) -> np.ndarray:
+def compensate_array(array: np.ndarray, values: np.ndarray, *, method: str, parallel: bool,
+                       max_sweeps: int | None = None, max_exchanges: int = _MAX_EXCHANGES,
+                       counts: dict | None = None) -> np.ndarray:
     """numpy kernel driver; ``max_sweeps``/``max_exchanges`` exist to test the fallbacks.
 
     ``counts``, when given, gains the pixels solved by pivoting (``"pivoted"``) and, of
@@ -956,7 +936,7 @@ def _read_controls(controls_csv: Path, panel):
 
 
 def _hot_mask(plane: np.ndarray, ratio: float, min_excess: float) -> np.ndarray:
-    from .speckle import remove_hot_pixels
+    from .steps.hot_pixels import remove_hot_pixels
 
     return np.asarray(remove_hot_pixels(plane, ratio=ratio, min_excess=min_excess).removed) != 0
 
@@ -1032,7 +1012,7 @@ def estimate_from_tissue(
     sources (:func:`plausible_pairs`) are fitted together, so that co-located sources do
     not take each other's share:
 
-    1. hot pixels are restored (:func:`plexwash.qc.speckle.remove_hot_pixels`) and
+    1. hot pixels are restored (:func:`plexwash.qc.steps.hot_pixels.remove_hot_pixels`) and
        counts are summed over ``bin_size`` x ``bin_size`` blocks, so the Poisson noise of
        a block is closer to normal, with its variance equal to its mean;
     2. a low *quantile* regression (``tau = 0.1``, residuals in Poisson standard
@@ -1191,7 +1171,7 @@ def _bonferroni_z(level: float, n_tests: int) -> float:
 def _binned_tissue(rois, panel, bin_size, tile, hot_ratio, hot_min_excess):
     """Block sums (C, blocks) per ROI after hot-pixel restoration, and each block's tile."""
     from .io import Roi, read_roi
-    from .speckle import remove_hot_pixels
+    from .steps.hot_pixels import remove_hot_pixels
 
     if isinstance(rois, (str, Path, Roi)):
         rois = [rois]

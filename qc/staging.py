@@ -6,20 +6,20 @@ alive at once: with 50 channels one row of (C, tile, tile) chunks alone is a few
 hundred MB. The steps here do not need that: hot pixels and speckle look at one channel
 at a time, and compensation looks at one pixel (all channels) at a time. So the wash
 runs in passes, each a set of independent dask tasks, over two staging files of float32
-pixels in (C, Y, X) order beside the output:
+pixels in (C, Y, X) order beside the output. The passes are generated from the step
+registry (:mod:`plexwash.qc.steps.registry`), one per step that runs, in its order:
 
-0. copy: the source is copied into file A as float32, chunk by chunk (only when its
-   chunks hold several channels; a source chunked by channel is read plane by plane
-   in pass 1 directly, so its tiles are decoded once);
-1. hot pixels, one task per channel: the whole plane is read, cleaned, written to A;
-2. compensation, one task per band of rows (all used channels x a few rows x the full
-   width): read from A, NNLS, written to B;
-3. speckle, one task per channel: the whole compensated plane (B) is read, its
-   background estimated from the whole plane and the filter applied; written to A,
-   whose content is no longer needed after pass 2.
+* a copy first, only when the source's chunks hold several channels: the source is
+  copied into file A as float32, chunk by chunk (a source chunked by channel is read
+  plane by plane by the first pass directly, so its tiles are decoded once);
+* a ``"plane"`` step (hot pixels, speckle): one task per channel; the whole plane is
+  read, cleaned (speckle estimates its background from the whole plane) and written to
+  A (the first pass also copies pass-through channels there);
+* a ``"pixels"`` step (compensation): one task per band of rows (all used channels x a
+  few rows x the full width), read from one file and written to the other.
 
-A then holds the washed stack and is written to the output (OME-TIFF tiles or OME-Zarr
-chunks) band by band. Every pass works on whole planes or on whole pixels, as the
+The last file written then holds the washed stack and is written to the output
+(OME-TIFF tiles or OME-Zarr chunks) band by band. Every pass works on whole planes or on whole pixels, as the
 in-memory wash does, so the pixels are bit for bit those of :func:`plexwash.qc.wash` on
 the same stack, whatever the chunking. The removed-signal sums of each step come from
 the same passes.
@@ -45,15 +45,16 @@ from pathlib import Path
 
 import numpy as np
 
+from ._arrays import channel_plane, is_dask, used_channels
+from .steps.registry import STEPS
+from .steps.stats import step_rows
+
 #: Bytes of one compensation band (all used channels x rows x full width, float32).
 BAND_BYTES = 8 * 2**20
 #: Bytes the planes in flight in one pass may take: a pass runs at most
 #: ``STAGE_WORKING_BYTES // (copies x plane bytes)`` channels at once (and never more
 #: than dask's threads), so a 2000 x 2000 ROI's speckle pass runs one channel at a time.
 STAGE_WORKING_BYTES = 96 * 2**20
-#: Plane-sized float32 arrays a task of pass 1 (plane, cleaned, removed) and of pass 3
-#: (plus the uint16 window counts) holds.
-HOT_COPIES, SPECKLE_COPIES = 3.0, 3.5
 
 _ITEM = np.dtype(np.float32).itemsize
 
@@ -252,102 +253,105 @@ def band_rows(n_channels: int, width: int, height: int) -> int:
     return int(min(max(rows, 1), height))
 
 
-def wash_staged(roi, recipe, values, *, staging: Staging, notes: list) -> tuple[StagedStack, dict]:
+def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[StagedStack | MemoryStack, dict]:
     """Wash an ROI (lazy, or numpy with in-memory staging) into a staged stack; return it
     and the per-step stats rows.
 
-    ``values`` is the spillover matrix aligned to the used channels (None: no
-    compensation). The stats rows are those of the in-memory wash (see
-    ``wash._step_rows``), with sums accumulated over planes and bands.
+    The passes follow the step registry: a ``"plane"`` step is one task per used channel
+    (a whole plane), a ``"pixels"`` step one task per band of rows of all used channels.
+    The first pass also copies the source into staging as float32. ``matrix`` is the
+    spillover matrix aligned to the used channels (None: no compensation). The stats rows
+    are those of the in-memory wash (:func:`plexwash.qc.steps.stats.step_rows`), with
+    sums accumulated over planes and bands.
     """
     import dask
 
-    from .io import _is_dask, channel_plane
-    from .speckle import hot_pixels_stack, speckle_stack
-    from .wash import _step_rows
-
     n_c, n_y, n_x = (int(n) for n in roi.data.shape)
-    used = [i for i, u in enumerate(roi.use) if u]
+    used = used_channels(roi.use)
     names = [roi.channels[i] for i in used]
-    hot = recipe.for_channels("hot_pixels", names)
-    speckle = recipe.for_channels("speckle", names)
-    run_hot = any(s.enabled for s in hot)
-    run_speckle = any(s.enabled for s in speckle)
-    settings_of = dict(zip(used, zip(hot, speckle, strict=True), strict=True))
+    plan = [(step, recipe.for_channels(step.name, names)) for step in STEPS]
+    running = [(step, settings) for step, settings in plan if step.runs(settings, matrix)]
+    notes.extend(step.skipped_note for step, settings in plan
+                 if step.skipped_note and not step.runs(settings, matrix))
 
-    a = staging.stack("a", (n_c, n_y, n_x))
-    lazy = _is_dask(roi.data)  # else any array: numpy, zarr
+    stacks = {"a": staging.stack("a", (n_c, n_y, n_x))}
+    lazy = is_dask(roi.data)  # else any array: numpy, zarr
     by_channel = not lazy or len(roi.data.chunks[0]) == n_c  # one channel per source chunk
+    current = None  # None: the source itself, read plane by plane
     if not by_channel:
         import dask.array as da
 
-        dask.compute(da.store(roi.data.astype(np.float32), a, lock=False, compute=False))
+        dask.compute(da.store(roi.data.astype(np.float32), stacks["a"], lock=False, compute=False))
+        current = "a"
 
-    def source_plane(c):
-        if not by_channel:
-            return a.read_plane(c)
-        return channel_plane(roi.data, c, dtype=np.float32, scheduler="synchronous")
+    def read_plane(where, c):
+        if where is None:
+            return channel_plane(roi.data, c, dtype=np.float32, scheduler="synchronous")
+        return stacks[where].read_plane(c)
 
-    # pass 1: hot pixels (and the float32 copy of pass-through channels)
-    def pass_hot(c):
-        plane = source_plane(c)
-        if c not in settings_of or not run_hot:
-            if by_channel:
-                a.write_plane(c, plane)
-            return None
-        cleaned, _, stats = hot_pixels_stack(plane[None], [settings_of[c][0]])
-        a.write_plane(c, cleaned[0])
-        return stats[0], _sums(plane[None], cleaned)
+    def target(name):
+        if name not in stacks:
+            stacks[name] = staging.stack(name, (n_c, n_y, n_x))
+        return stacks[name]
 
     plane_bytes = n_y * n_x * _ITEM
-    hot_results = _in_chains(pass_hot, range(n_c), _chains(HOT_COPIES * plane_bytes))
     stats = {}
-    if run_hot:
-        stats["hot_pixels"] = _step_rows([hot_results[c][0] for c in used],
-                                         *_stacked([hot_results[c][1] for c in used]),
-                                         names, used, roi.channels)
+    copied = current  # the stack holding the pass-through channels
+    for step, settings in running:
+        settings_of = dict(zip(used, settings, strict=True))
+        source = current
+        if step.scope == "plane":
+            # written to A (in place when reading A): a plane is read whole before it is written
+            dest = "a"
+            channels = used if copied is not None else range(n_c)
 
-    # pass 2: compensation, band by band
-    current = a
-    if values is not None:
-        from .spillover import _compensate_array
+            def plane_task(c, step=step, source=source, dest=dest, settings_of=settings_of):
+                plane = read_plane(source, c)
+                if c not in settings_of:  # a pass-through channel, copied once
+                    target(dest).write_plane(c, plane)
+                    return None
+                cleaned, _, step_stats = step.run(plane[None], [settings_of[c]], None, parallel=False)
+                target(dest).write_plane(c, cleaned[0])
+                return step_stats[0], _sums(plane[None], cleaned)
 
-        b = staging.stack("b", (n_c, n_y, n_x))
-        rows = band_rows(len(used), n_x, n_y)
-        method = recipe.compensation.method
+            results = _in_chains(plane_task, channels, _chains(step.plane_copies * plane_bytes))
+            done = dict(zip(channels, results, strict=True))
+            stats[step.name] = step_rows([done[c][0] for c in used], *_stacked([done[c][1] for c in used]),
+                                         worked=used, channels=range(n_c), all_names=roi.channels)
+            if copied is None:
+                copied = dest
+        else:
+            if source is None:  # bands need the source staged first
+                _in_chains(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c),
+                           _chains(2.0 * plane_bytes))
+                source = copied = "a"
+            dest = "b" if source == "a" else "a"
+            rows = band_rows(len(used), n_x, n_y)
+            band_settings = [settings_of[c] for c in used]
 
-        def pass_compensate(y0):
-            y1 = min(y0 + rows, n_y)
-            band = a.read_rows(used, y0, y1)
-            out = _compensate_array(band, values, method=method, parallel=False)
-            b.write_rows(used, y0, out)
-            return _sums(band, out)
+            def band_task(y0, step=step, source=source, dest=dest, band_settings=band_settings, rows=rows):
+                y1 = min(y0 + rows, n_y)
+                band = stacks[source].read_rows(used, y0, y1)
+                out, _, step_stats = step.run(band, band_settings, matrix, parallel=False)
+                target(dest).write_rows(used, y0, out)
+                return _sums(band, out), step_stats
 
-        sums = dask.compute(*[dask.delayed(pass_compensate, pure=False)(y) for y in range(0, n_y, rows)])
-        removed_sum = np.sum([s[0] for s in sums], axis=0)
-        input_sum = np.sum([s[1] for s in sums], axis=0)
-        stats["compensation"] = _step_rows([{"method": method} for _ in used], removed_sum, input_sum,
-                                           names, used, roi.channels)
-        current = b
-    else:
-        notes.append("compensation skipped: no spillover matrix given")
-
-    # pass 3: speckle, channel by channel on whole planes; the result goes to A
-    def pass_speckle(c):
-        plane = current.read_plane(c)
-        if not run_speckle:
-            a.write_plane(c, plane)
-            return None
-        cleaned, _, step_stats = speckle_stack(plane[None], [settings_of[c][1]])
-        a.write_plane(c, cleaned[0])
-        return step_stats[0], _sums(plane[None], cleaned)
-
-    if run_speckle or current is not a:
-        results = _in_chains(pass_speckle, used, _chains(SPECKLE_COPIES * plane_bytes))
-        if run_speckle:
-            stats["speckle"] = _step_rows([r[0] for r in results], *_stacked([r[1] for r in results]),
-                                          names, used, roi.channels)
-    return a, stats
+            target(dest)  # made before the tasks run
+            sums = dask.compute(*[dask.delayed(band_task, pure=False)(y) for y in range(0, n_y, rows)])
+            removed_sum = np.sum([s[0][0] for s in sums], axis=0)
+            input_sum = np.sum([s[0][1] for s in sums], axis=0)
+            # a pixels step's own numbers are per channel and the same in every band
+            stats[step.name] = step_rows(sums[0][1], removed_sum, input_sum,
+                                         worked=used, channels=range(n_c), all_names=roi.channels)
+        current = dest
+    if current is None:  # no step runs: the source, as float32
+        _in_chains(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c), _chains(2.0 * plane_bytes))
+        current = copied = "a"
+    passing = [c for c in range(n_c) if c not in set(used)]
+    if passing and copied != current:
+        _in_chains(lambda c: stacks[current].write_plane(c, stacks[copied].read_plane(c)), passing,
+                   _chains(2.0 * plane_bytes))
+    return stacks[current], stats
 
 
 def _chains(task_bytes: float) -> int:

@@ -1,10 +1,17 @@
 """The wash: one ROI through the cleaning steps, in order, as one computation.
 
-Steps always run in this order: ``hot_pixels`` -> ``compensation`` -> ``speckle``.
-Each step is a pure function of the previous step's output; the wash records what each
-step removed (a removed map per channel) and the fraction of each channel's signal that
-went, so over-cleaning is visible. Channels that the panel marks ``use = no`` pass
-through untouched and take no part in compensation.
+The steps and their order come from the registry (:mod:`plexwash.qc.steps.registry`):
+``hot_pixels`` -> ``compensation`` -> ``speckle``. Each step is a pure function of the
+previous step's output; the wash records what each step removed (a removed map per
+channel) and the fraction of each channel's signal that went, so over-cleaning is
+visible. Channels that the panel marks ``use = no`` pass through untouched and
+take no part in compensation.
+
+A wash of some channels (``channels=[...]``, the studio's preview) is the same
+computation restricted to what those channels need: the steps up to the last one that
+works on all used channels at once (compensation, when it runs) run on every used
+channel, the later ones only on the requested channels. Plane steps treat channels
+independently, so the requested channels are bit for bit those of the full wash.
 
 A numpy ROI is washed in memory; for a dask ROI :func:`wash` returns a lazy graph
 (chunks of all channels x tile x tile) for notebooks and previews. Writing a wash
@@ -16,16 +23,19 @@ from __future__ import annotations
 
 import dataclasses
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping
 from pathlib import Path
 
 import numpy as np
 
+from ._arrays import channel_plane, is_dask, stack_planes, used_channels
 from .errors import InputError
-from .io import Roi, _is_dask, write_stack
+from .io import Roi, write_stack
 from .recipe import Recipe, default_recipe
-
-STEPS = ("hot_pixels", "compensation", "speckle")
+from .staging import MemoryStack, Staging, wash_staged
+from .steps.compensation import compensation_matrix
+from .steps.registry import STEPS, Step
+from .steps.stats import finish_stats, step_rows
 
 
 @dataclasses.dataclass(frozen=True)
@@ -37,11 +47,12 @@ class Washed:
     data : numpy.ndarray or dask.array.Array
         Washed stack (C, Y, X), float32.
     channels, labels : tuple of str
-        As in the ROI.
+        As in the ROI (or the channels asked for, in that order).
     pixel_size : (float, float) or None
         As in the ROI.
     removed : mapping
-        Step name -> removed map (C, Y, X): what the step took away (input - output).
+        Step name -> removed map (C, Y, X): what the step took away (input - output);
+        zeros for channels the step did not touch.
         Steps that did not run are absent.
     stats : mapping
         Step name -> one dict per channel with at least ``removed_fraction`` (the
@@ -61,11 +72,12 @@ class Washed:
 
     @property
     def is_lazy(self) -> bool:
-        return _is_dask(self.data)
+        return is_dask(self.data)
 
 
-def wash(roi: Roi, recipe: Recipe | None = None, *, spillover=None) -> Washed:
-    """Wash one ROI with a recipe.
+def wash(roi: Roi, recipe: Recipe | None = None, *, spillover=None, channels=None,
+         cache: WashCache | None = None) -> Washed:
+    """Wash one ROI (or some of its channels) with a recipe.
 
     Parameters
     ----------
@@ -76,6 +88,13 @@ def wash(roi: Roi, recipe: Recipe | None = None, *, spillover=None) -> Washed:
     spillover : SpilloverMatrix, str or Path, optional
         The spillover matrix (or its CSV). Overrides the recipe's ``[compensation]
         spillover``. Without any matrix, compensation is skipped and a note says so.
+    channels : sequence of str, optional
+        Channel names (or labels): the result holds only these, in this order, bit for
+        bit as in the full wash. Compensation still uses every used channel.
+    cache : WashCache, optional
+        Keeps the ROI's float32 planes and the result of the steps that need every used
+        channel between calls, keyed on what they depend on (the studio's preview, one
+        channel after another). The result is computed in memory (numpy).
 
     Returns
     -------
@@ -89,77 +108,232 @@ def wash(roi: Roi, recipe: Recipe | None = None, *, spillover=None) -> Washed:
     >>> washed = wash(Roi(stack, ("Nd145", "Nd146"), Path("demo.ome.tiff")))
     >>> float(washed.data[0, 10, 10]), washed.stats["hot_pixels"][0]["removed_fraction"]
     (0.0, 1.0)
+    >>> wash(Roi(stack, ("Nd145", "Nd146"), Path("demo.ome.tiff")), channels=["Nd146"]).channels
+    ('Nd146',)
     """
     recipe = recipe or default_recipe()
     recipe.check_channels(roi.channels, roi=roi.path)
-    data = _as_float32(roi.data, tile=recipe.output.tile)
-    used = [i for i, u in enumerate(roi.use) if u]
+    plan = _plan(roi, recipe, spillover, channels)
+    if cache is not None:
+        cache.start(roi)
+        source = _Source.cached(cache, roi, plan)
+    else:
+        source = _Source.of(roi, recipe)
+    stack, work, records = _run(plan, source, cache)
+    return _assemble(roi, plan, source, stack, work, records)
+
+
+@dataclasses.dataclass(frozen=True)
+class _Plan:
+    """What a wash will do, in ROI channel indices.
+
+    ``wanted``: the channels of the result, in its order; ``used``: the channels that take
+    part in the wash; ``own``: the used channels among the wanted (ROI order); ``steps``:
+    per registry step its settings by channel and whether it runs; ``shared``: index of
+    the last running step that needs every used channel (-1: none), up to which the wash
+    works on all used channels.
+    """
+
+    wanted: list[int]
+    used: list[int]
+    own: list[int]
+    steps: list[tuple[Step, dict, bool]]
+    shared: int
+    matrix: np.ndarray | None
+    notes: tuple[str, ...]
+
+
+def _plan(roi: Roi, recipe: Recipe, spillover, channels) -> _Plan:
+    wanted = _wanted(roi, channels)
+    used = used_channels(roi.use)
     names = [roi.channels[i] for i in used]
-    stack = data[used] if len(used) < len(roi.channels) else data
-    removed, stats, notes = {}, {}, []
-
+    matrix = compensation_matrix(names, recipe.compensation, spillover, recipe_matrix=recipe.spillover_path())
+    steps, notes = [], []
     for step in STEPS:
-        before = stack
-        if step == "compensation":
-            result = _compensation_step(stack, names, recipe, spillover, roi)
-            if result is None:
-                notes.append("compensation skipped: no spillover matrix given")
-                continue
-            stack, step_stats = result
-        else:
-            settings = recipe.for_channels(step, names)
-            if not any(s.enabled for s in settings):
-                continue
-            stack, _, step_stats = _STEP_FUNCTIONS[step]()(stack, settings)
-        removed_map = before - stack
-        removed[step] = _expand(removed_map, used, len(roi.channels), zeros=True)
-        stats[step] = _with_fractions(step_stats, removed_map, before, names, used, roi.channels)
-
-    washed = _expand(stack, used, len(roi.channels), original=data)
-    return Washed(washed, tuple(roi.channels), tuple(roi.labels), roi.pixel_size,
-                  removed, stats, tuple(notes), roi.name)
+        settings = recipe.for_channels(step.name, names)
+        runs = step.runs(settings, matrix)
+        steps.append((step, dict(zip(used, settings, strict=True)), runs))
+        if not runs and step.skipped_note:
+            notes.append(step.skipped_note)
+    shared = max((k for k, (step, _, runs) in enumerate(steps) if runs and step.scope == "pixels"), default=-1)
+    own = [i for i in used if i in set(wanted)]
+    return _Plan(wanted, used, own, steps, shared, matrix, tuple(notes))
 
 
-def _step_hot_pixels():
-    from .speckle import hot_pixels_stack
+@dataclasses.dataclass(frozen=True)
+class _Source:
+    """The ROI's pixels as float32: ``stack(indices)`` (C', Y, X) and ``plane(i)``."""
 
-    return hot_pixels_stack
+    stack: Callable
+    plane: Callable
 
+    @classmethod
+    def of(cls, roi: Roi, recipe: Recipe) -> _Source:
+        if is_dask(roi.data):
+            data = _as_float32(roi.data, tile=recipe.output.tile)
+            return cls(lambda indices: _select(data, indices), data.__getitem__)
+        # in memory: only the planes a wash of some channels needs are converted
+        data = roi.data if isinstance(roi.data, np.ndarray) else np.asarray(roi.data)
+        return cls(lambda indices: np.asarray(_select(data, indices), dtype=np.float32),
+                   lambda i: np.asarray(data[i], dtype=np.float32))
 
-def _step_speckle():
-    from .speckle import speckle_stack
-
-    return speckle_stack
-
-
-_STEP_FUNCTIONS = {"hot_pixels": _step_hot_pixels, "speckle": _step_speckle}
-
-
-def _compensation_step(stack, names, recipe: Recipe, spillover, roi: Roi):
-    """Compensated stack and per-channel stats, or None when there is no matrix."""
-    values = _compensation_values(names, recipe, spillover)
-    if values is None:
-        return None
-    from .spillover import compensate
-
-    method = recipe.compensation.method
-    out = compensate(stack, values, method=method)
-    return out, [{"method": method} for _ in names]
+    @classmethod
+    def cached(cls, cache: WashCache, roi: Roi, plan: _Plan) -> _Source:
+        planes = cache.planes(roi, sorted(set(plan.wanted) | set(plan.used if plan.shared >= 0 else ())))
+        return cls(lambda indices: stack_planes([planes[i] for i in indices]), planes.__getitem__)
 
 
-def _compensation_values(names, recipe: Recipe, spillover):
-    """The spillover matrix over the used channels, or None when compensation does not run."""
-    if not recipe.compensation.enabled:
-        return None
-    if spillover is None:
-        spillover = recipe.spillover_path()
-    if spillover is None:
-        return None
-    from .spillover import SpilloverMatrix, align_spillover, read_spillover
+@dataclasses.dataclass(frozen=True)
+class _StepRecord:
+    """What one step of a wash did, over the ROI channels ``work`` (in that order)."""
 
-    source = spillover if isinstance(spillover, (str, Path)) else "spillover matrix"
-    matrix = spillover if isinstance(spillover, SpilloverMatrix) else read_spillover(spillover)
-    return align_spillover(matrix, names, source=source)
+    step: Step
+    work: tuple[int, ...]
+    removed: object
+    before_sum: object
+    stats: list
+
+
+def _run(plan: _Plan, source: _Source, cache: WashCache | None):
+    """Run the planned steps; returns the last stack, the channels it holds and the records.
+
+    Steps up to ``plan.shared`` work on every used channel, later ones on ``plan.own``.
+    With a cache, a step whose inputs are unchanged (same channels, matrix and settings
+    of it and of every step before) is taken from it.
+    """
+    work = plan.used if plan.shared >= 0 else plan.own
+    key: tuple = (tuple(work), _matrix_key(plan.matrix))
+    stack, records = None, []
+    for k, (step, settings, runs) in enumerate(plan.steps):
+        if runs and work:
+            key += ((step.name, tuple(settings[i] for i in work)),)
+            kept = cache.result(k, key) if cache is not None else None
+            if kept is None:
+                before = source.stack(work) if stack is None else stack
+                stack, _, step_stats = step.run(before, [settings[i] for i in work], plan.matrix)
+                record = _StepRecord(step, tuple(work), before - stack,
+                                     before.sum(axis=(1, 2), dtype=np.float64), step_stats)
+                records = records + [record]
+                if cache is not None:
+                    cache.keep(k, key, (stack, records))
+            else:
+                stack, records = kept
+        elif runs:  # the step runs, but on none of the channels asked for (pass-through ones)
+            records = records + [_StepRecord(step, (), None, (), [])]
+        if k == plan.shared and plan.own != work:  # later steps: only the channels asked for
+            stack = _select(stack, [work.index(i) for i in plan.own]) if plan.own else None
+            work = plan.own
+            key += (("channels", tuple(work)),)
+    if stack is None and work:
+        stack = source.stack(work)
+    return stack, work, records
+
+
+def _assemble(roi: Roi, plan: _Plan, source: _Source, stack, work, records) -> Washed:
+    """The :class:`Washed` of the wanted channels: washed planes, removed maps, stats rows."""
+    wanted = plan.wanted
+    zeros = _zeros_like_plane(source.plane(wanted[0]))
+    removed, stats = {}, {}
+    for record in records:
+        removed[record.step.name] = _gather(record.removed, record.work, wanted, lambda i: zeros)
+        removed_sum = record.removed.sum(axis=(1, 2), dtype=np.float64) if record.work else ()
+        stats[record.step.name] = step_rows(record.stats, removed_sum, record.before_sum, worked=record.work,
+                                            channels=wanted, all_names=roi.channels)
+    washed = _gather(stack, work, wanted, source.plane)
+    return Washed(washed, tuple(roi.channels[i] for i in wanted), tuple(roi.labels[i] for i in wanted),
+                  roi.pixel_size, removed, stats, plan.notes, roi.name)
+
+
+def _wanted(roi: Roi, channels) -> list[int]:
+    """ROI indices of the channels asked for (all, in ROI order, when None)."""
+    if channels is None:
+        return list(range(len(roi.channels)))
+    if isinstance(channels, str):
+        raise InputError("channels", "expected a list of channel names, got one string")
+    wanted = [roi.channel_index(c) for c in channels]
+    if len(set(wanted)) != len(wanted):
+        raise InputError("channels", "a channel is asked for twice")
+    if not wanted:
+        raise InputError("channels", "no channel asked for")
+    return wanted
+
+
+def _matrix_key(matrix):
+    return None if matrix is None else (matrix.shape, np.ascontiguousarray(matrix, np.float64).tobytes())
+
+
+def _select(stack, positions):
+    """``stack[positions]`` (no copy when that is every channel in order)."""
+    positions = list(positions)
+    if positions == list(range(stack.shape[0])):
+        return stack
+    return stack[positions]
+
+
+def _zeros_like_plane(plane):
+    if is_dask(plane):
+        import dask.array as da
+
+        return da.zeros_like(plane)
+    return np.zeros(plane.shape, np.float32)
+
+
+def _gather(stack, work, wanted, fallback):
+    """(len(wanted), Y, X): ``stack``'s planes (over ``work``) for wanted channels, ``fallback(i)`` otherwise."""
+    work = list(work)
+    if work == list(wanted):
+        return stack
+    position = {i: k for k, i in enumerate(work)}
+    return stack_planes([stack[position[i]] if i in position else fallback(i) for i in wanted])
+
+
+class WashCache:
+    """What a wash of some channels may reuse for the next call (the studio's preview).
+
+    Holds the ROI's float32 planes (read once) and, for each step, the stack after it
+    with the records of the steps so far, keyed on everything they depend on: the
+    channels worked on, the spillover matrix and the settings of that step and of every
+    step before it. Changing a later step's settings (speckle) reuses the earlier ones
+    (hot pixels, compensation of every used channel); changing anything they depend on
+    recomputes them. ``reused`` names the steps the last wash took from the cache. Not
+    thread-safe: one wash at a time.
+    """
+
+    def __init__(self):
+        self._source = None
+        self._planes: dict[int, np.ndarray] = {}
+        self._results: dict[int, tuple] = {}
+        self.reused: tuple[str, ...] = ()
+
+    def _for(self, roi: Roi) -> None:
+        if self._source is not roi.data:
+            self._source = roi.data
+            self._planes = {}
+            self._results = {}
+
+    def planes(self, roi: Roi, indices) -> dict[int, np.ndarray]:
+        """The ROI's planes ``indices`` as float32 numpy (read once): ROI index -> plane."""
+        self._for(roi)
+        for i in indices:
+            if i not in self._planes:
+                self._planes[i] = np.ascontiguousarray(channel_plane(roi.data, i, dtype=np.float32))
+        return self._planes
+
+    def start(self, roi: Roi) -> None:
+        """A wash of ``roi`` begins."""
+        self._for(roi)
+        self.reused = ()
+
+    def result(self, k: int, key):
+        """The kept result after step ``k`` when it was made under ``key``, else None."""
+        kept = self._results.get(k)
+        if kept is None or kept[0] != key:
+            return None
+        self.reused += (kept[1][1][-1].step.name,)
+        return kept[1]
+
+    def keep(self, k: int, key, value) -> None:
+        self._results[k] = (key, value)
 
 
 #: Bytes of one chunk of the lazy graph :func:`wash` returns for a dask ROI (all channels
@@ -168,82 +342,12 @@ CHUNK_BYTES = 64 * 2**20
 
 
 def _as_float32(data, *, tile: int):
-    if _is_dask(data):
+    if is_dask(data):
         n_c, n_y, n_x = data.shape
         budget = int((CHUNK_BYTES / (4 * n_c)) ** 0.5) // 64 * 64
         edge = max(64, min(tile, budget))
         return data.astype(np.float32).rechunk((n_c, min(edge, n_y), min(edge, n_x)))
     return np.asarray(data, dtype=np.float32)
-
-
-def _expand(sub, used: Sequence[int], n_channels: int, *, original=None, zeros: bool = False):
-    """Put the used channels back among the pass-through ones (or zeros for removed maps)."""
-    if len(used) == n_channels:
-        return sub
-    if _is_dask(sub):
-        import dask.array as da
-
-        fill = da.zeros_like(sub[0]) if zeros or original is None else None
-        planes, k = [], 0
-        for i in range(n_channels):
-            if i in used:
-                planes.append(sub[k])
-                k += 1
-            else:
-                planes.append(fill if fill is not None else original[i])
-        return da.stack(planes)
-    out = np.zeros((n_channels,) + sub.shape[1:], np.float32)
-    if not zeros and original is not None:
-        out[...] = original
-    out[list(used)] = sub
-    return out
-
-
-def _with_fractions(step_stats, removed_map, before, names, used, all_channels):
-    """Per-channel stats of a step from its removed map and its input (numpy or dask)."""
-    removed_sum = removed_map.sum(axis=(1, 2), dtype=np.float64)
-    input_sum = before.sum(axis=(1, 2), dtype=np.float64)
-    return _step_rows(step_stats, removed_sum, input_sum, names, used, all_channels)
-
-
-def _step_rows(step_stats, removed_sum, input_sum, names, used, all_channels):
-    """Per-channel stats (one dict per channel of the ROI) with the removed fraction.
-
-    The fraction is the channel's removed signal over its signal entering the step
-    (sums over the used channels, in their order), so the numbers do not depend on
-    chunking or on the step's own bookkeeping. Dask sums stay lazy until computed.
-    """
-    rows = []
-    k = 0
-    for i, name in enumerate(all_channels):
-        if i not in used:
-            rows.append({"channel": name, "ran": False, "removed_fraction": 0.0})
-            continue
-        row = {"channel": name, "ran": True}
-        row.update(_plain(step_stats[k]) if step_stats is not None else {})
-        row["removed_sum"] = removed_sum[k]
-        row["input_sum"] = input_sum[k]
-        rows.append(row)
-        k += 1
-    if not _is_dask(removed_sum):
-        finish_stats(rows)
-    return rows
-
-
-def _plain(stats) -> dict:
-    return dict(stats) if isinstance(stats, Mapping) else dict(vars(stats))
-
-
-def finish_stats(rows: list[dict]) -> list[dict]:
-    """Turn computed sums into ``removed_fraction`` (in place) and plain Python numbers."""
-    for row in rows:
-        if "removed_sum" in row:
-            removed, total = float(row.pop("removed_sum")), float(row.pop("input_sum"))
-            row["removed_fraction"] = removed / total if total > 0 else 0.0
-        for key, value in list(row.items()):
-            if isinstance(value, np.generic):
-                row[key] = value.item()
-    return rows
 
 
 def compute(washed: Washed) -> Washed:
@@ -280,15 +384,13 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
     out_path = Path(out_path)
     if out_path.exists() and roi.path.exists() and out_path.resolve() == roi.path.resolve():
         raise InputError(out_path, "output path is the input; refusing to overwrite raw data")
-    from .staging import MemoryStack, Staging, wash_staged
-
     recipe.check_channels(roi.channels, roi=roi.path)
     names = [c for c, u in zip(roi.channels, roi.use, strict=True) if u]
-    values = _compensation_values(names, recipe, spillover)
+    matrix = compensation_matrix(names, recipe.compensation, spillover, recipe_matrix=recipe.spillover_path())
     notes: list[str] = []
     # a numpy ROI is staged in memory; no removed maps are kept, only their sums
-    with Staging(out_path if _is_dask(roi.data) else None) as staging:
-        staged, stats = wash_staged(roi, recipe, values, staging=staging, notes=notes)
+    with Staging(out_path if is_dask(roi.data) else None) as staging:
+        staged, stats = wash_staged(roi, recipe, matrix, staging=staging, notes=notes)
         data = staged.array if isinstance(staged, MemoryStack) else staged
         write_stack(out_path, data, roi.channels, pixel_size=roi.pixel_size, settings=recipe.output)
     return {"output": str(out_path), "seconds": time.perf_counter() - started,

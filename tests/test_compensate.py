@@ -8,9 +8,9 @@ from plexwash.qc import _nnls
 from plexwash.qc.errors import InputError
 from plexwash.qc.spillover import (
     SpilloverMatrix,
-    _compensate_array,
     _prepare_components,
     compensate,
+    compensate_array,
     plausible_pairs,
 )
 from scipy.optimize import nnls
@@ -111,7 +111,7 @@ def test_strong_spillover_uses_pivoting_and_matches_scipy():
     stack = count_stack(s, (20, 19), rng)
     out = compensate(stack, s)
     counts = {}
-    again = _compensate_array(stack, s, method="nnls", parallel=True, counts=counts)
+    again = compensate_array(stack, s, method="nnls", parallel=True, counts=counts)
     np.testing.assert_array_equal(again, out)
     assert counts["pivoted"] > 0 and counts["last_resort"] == 0  # the pivoting path ran
     assert_matches_scipy(stack, s, out)
@@ -122,10 +122,10 @@ def test_sweeps_handing_pixels_to_pivoting_stay_exact(physics):
     s, stack = physics
     assert {c.mode for c in _prepare_components(s) if c.idx.size > 1} == {_nnls.MODE_SWEEP}
     normal = {}
-    _compensate_array(stack, s, method="nnls", parallel=True, counts=normal)
+    compensate_array(stack, s, method="nnls", parallel=True, counts=normal)
     # One sweep cannot converge: every unfinished pixel goes to the pivoting solver.
     counts = {}
-    out = _compensate_array(stack, s, method="nnls", parallel=True, max_sweeps=1, counts=counts)
+    out = compensate_array(stack, s, method="nnls", parallel=True, max_sweeps=1, counts=counts)
     assert counts["pivoted"] > 10 * max(normal["pivoted"], 1)  # the hand-over really ran
     assert_matches_scipy(stack, s, out)
     np.testing.assert_allclose(out, compensate(stack, s), rtol=1e-5, atol=1e-4)
@@ -136,8 +136,8 @@ def test_lawson_hanson_last_resort_is_exact(physics):
     # no sweeps to speak of and no pivoting exchanges: pixels whose first partition guess
     # is wrong are solved by Lawson-Hanson from scratch
     counts = {}
-    out = _compensate_array(stack, s, method="nnls", parallel=False, max_sweeps=1,
-                            max_exchanges=0, counts=counts)
+    out = compensate_array(stack, s, method="nnls", parallel=False, max_sweeps=1,
+                           max_exchanges=0, counts=counts)
     assert counts["last_resort"] > 0  # the Lawson-Hanson fallback really ran
     assert_matches_scipy(stack, s, out, every=3)
 
@@ -221,10 +221,10 @@ def test_result_does_not_depend_on_the_thread_count(physics):
         for threads in sorted({1, min(2, numba.config.NUMBA_NUM_THREADS),
                                numba.config.NUMBA_NUM_THREADS}):
             numba.set_num_threads(threads)
-            results.append(_compensate_array(stack, s, method="nnls", parallel=True))
+            results.append(compensate_array(stack, s, method="nnls", parallel=True))
     finally:
         numba.set_num_threads(before)
-    results.append(_compensate_array(stack, s, method="nnls", parallel=False))
+    results.append(compensate_array(stack, s, method="nnls", parallel=False))
     for other in results[1:]:
         np.testing.assert_array_equal(other, results[0])
 

@@ -217,24 +217,22 @@ def test_preview_with_spillover_equals_the_wash(demo_roi, demo_dir):
         for step in ("hot_pixels", "compensation", "speckle"):
             assert preview.fractions[step] == pytest.approx(washed.stats[step][index]["removed_fraction"],
                                                             rel=1e-6, abs=1e-12)
-    stack = engine._stack
-    engine.compute(demo_roi, recipe.with_channel("speckle", demo_roi.channels[9], radius=3),
-                   demo_roi.channels[9], spillover=matrix)
-    assert engine._stack is stack  # a speckle change keeps the compensated stack
+    changed = recipe.with_channel("speckle", demo_roi.channels[9], radius=3)
+    preview = engine.compute(demo_roi, changed, demo_roi.channels[9], spillover=matrix)
+    assert engine.cache.reused == ("hot_pixels", "compensation")  # a speckle change keeps the compensated stack
+    np.testing.assert_array_equal(preview.washed, wash(demo_roi, changed, spillover=matrix).data[9])
 
 
 def test_preview_reuses_hot_pixels_while_only_speckle_changes(demo_roi):
     roi = demo_roi
     engine = PreviewEngine()
-    plane = roi.data[2].astype(np.float32)
     recipe = default_recipe()
-    engine.compute(roi, recipe, roi.channels[2], plane=plane)
-    hot = engine._hot
-    engine.compute(roi, recipe.with_channel("speckle", roi.channels[2], radius=4), roi.channels[2], plane=plane)
-    assert engine._hot is hot
-    engine.compute(roi, recipe.with_channel("hot_pixels", roi.channels[2], ratio=8.0), roi.channels[2],
-                   plane=plane)
-    assert engine._hot is not hot
+    engine.compute(roi, recipe, roi.channels[2])
+    assert engine.cache.reused == ()
+    engine.compute(roi, recipe.with_channel("speckle", roi.channels[2], radius=4), roi.channels[2])
+    assert engine.cache.reused == ("hot_pixels",)
+    engine.compute(roi, recipe.with_channel("hot_pixels", roi.channels[2], ratio=8.0), roi.channels[2])
+    assert engine.cache.reused == ()
 
 
 def test_lazy_rois_give_the_same_layers_and_previews(small_stack, tmp_path):

@@ -19,7 +19,7 @@ from plexwash.plugin._reader import read_with_panel
 from plexwash.plugin._run import Cancelled
 from plexwash.qc import default_recipe, load_recipe
 from plexwash.qc.io import list_cohort
-from plexwash.qc.speckle import SpeckleSettings
+from plexwash.qc.steps.speckle import SpeckleSettings
 
 pytestmark = pytest.mark.gui
 
@@ -146,7 +146,7 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
 
 
 def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tmp_path):
-    from plexwash.qc.speckle import remove_hot_pixels, remove_speckle
+    from plexwash.qc import remove_hot_pixels, remove_speckle
     from plexwash.qc.wash import wash
 
     viewer = make_napari_viewer()
@@ -186,6 +186,42 @@ def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tm
     saved = speckle.save_recipe(tmp_path / "tuned")
     assert saved.name == "tuned.toml"
     assert load_recipe(saved).sha256() == speckle.state.recipe.sha256()
+
+
+def test_speckle_preview_is_the_wash_for_non_default_recipes(make_napari_viewer, qtbot, cohort):
+    """Every setting of every step moved, per-channel overrides, a spillover matrix: the
+    preview layers equal the full wash (the preview once dropped hot_pixels.flat_sigmas)."""
+    from plexwash.qc.spillover import estimate_from_controls
+    from plexwash.qc.wash import wash
+
+    viewer = make_napari_viewer()
+    speckle = dock(viewer, "Speckle")
+    open_first_roi(qtbot, viewer, cohort)
+    wait_preview(qtbot, speckle)
+    roi = speckle.state.roi
+    matrix = estimate_from_controls(cohort / "controls" / "controls.csv")
+    rng = np.random.default_rng(11)
+    for round_ in range(2):
+        recipe = (speckle.state.recipe
+                  .replace("hot_pixels", ratio=float(rng.uniform(2, 4)), min_excess=float(rng.uniform(2, 6)),
+                           flat_sigmas=float(rng.uniform(2, 4)))
+                  .replace("compensation", method=("linear", "nnls")[round_])
+                  .replace("speckle", threshold=0.3, radius=3, alpha=0.05, value_alpha=1e-7, keep_touching=True,
+                           min_area=3)
+                  .with_channel("hot_pixels", roi.channels[1], flat_sigmas=0.0)
+                  .with_channel("speckle", roi.channels[2], radius=1, min_area=1))
+        with qtbot.waitSignal(speckle.runner.delivered, timeout=WAIT_MS):
+            speckle.state.set_spillover(matrix if round_ else None)
+            speckle.state.set_recipe(recipe)
+        wait_preview(qtbot, speckle)
+        whole = wash(roi, recipe, spillover=matrix if round_ else None)
+        for index in (1, 2, 4):
+            speckle.channel.setCurrentIndex(index)
+            wait_preview(qtbot, speckle)
+            label = roi.labels[index]
+            raw = np.asarray(roi.data[index], dtype=np.float32)
+            np.testing.assert_array_equal(viewer.layers[f"{label} · washed"].data, whole.data[index])
+            np.testing.assert_array_equal(viewer.layers[f"{label} · removed"].data, raw - whole.data[index])
 
 
 def test_speckle_rejects_out_of_range_values(make_napari_viewer, qtbot, cohort):

@@ -527,7 +527,7 @@ def test_bad_input_is_reported():
 @pytest.mark.parametrize("alpha", [0.05, 1e-6, 1e-12])
 def test_poisson_tail_test_equals_the_incomplete_gamma(alpha):
     """The bounds only skip work: the verdicts are those of scipy.special.gammainc."""
-    from plexwash.qc.quality import _poisson_tail_below
+    from plexwash.qc.quality.excess import poisson_tail_below as _poisson_tail_below
     from scipy import special
 
     rng = np.random.default_rng(12)
@@ -540,7 +540,7 @@ def test_poisson_tail_test_equals_the_incomplete_gamma(alpha):
 
 
 def test_otsu_without_copy_equals_skimage():
-    from plexwash.qc.quality import _otsu
+    from plexwash.qc.quality.channel import _otsu
 
     image = np.random.default_rng(4).gamma(2.0, 3.0, (311, 257))
     expected = threshold_otsu(image)  # reference: skimage.filters.threshold_otsu
@@ -565,7 +565,7 @@ def test_measure_stack_does_not_depend_on_threads_or_dask():
 
 
 def test_channel_threads_follow_the_memory_budget(monkeypatch):
-    from plexwash.qc import quality
+    from plexwash.qc.quality import stack as quality
 
     # 128 MiB for channels of 6 float32 copies: 5 of 1000 x 1000, 1 of 2000 x 2000
     assert quality.channel_threads((1000, 1000), 4) == 4

@@ -13,15 +13,14 @@ import dask.array as da
 import numpy as np
 import pytest
 import tifffile
-from plexwash.qc import speckle
 from plexwash.qc.errors import InputError
-from plexwash.qc.speckle import (
+from plexwash.qc.settings import build_settings
+from plexwash.qc.steps import hot_pixels, lifting, speckle
+from plexwash.qc.steps.hot_pixels import HotPixelSettings, hot_pixels_stack, remove_hot_pixels
+from plexwash.qc.steps.speckle import (
     BackgroundEstimate,
-    HotPixelSettings,
     SpeckleSettings,
     estimate_background,
-    hot_pixels_stack,
-    remove_hot_pixels,
     remove_speckle,
     speckle_depth,
     speckle_stack,
@@ -431,7 +430,7 @@ def test_chunked_hot_pixel_depth_is_needed(monkeypatch):
     lazy = da.from_array(img[None], chunks=(1, 32, 16))
     assert eager[0, 10, 15] == 300.0  # no flat structure around it: not hot
     np.testing.assert_array_equal(hot_pixels_stack(lazy).image.compute(), eager)
-    monkeypatch.setattr(speckle, "HOT_PIXEL_DEPTH", 1)  # the ring two steps out is then cut
+    monkeypatch.setattr(hot_pixels, "HOT_PIXEL_DEPTH", 1)  # the ring two steps out is then cut
     assert not np.array_equal(hot_pixels_stack(lazy).image.compute(), eager)
 
 
@@ -512,15 +511,19 @@ def test_settings_are_frozen_documented_and_defaults_in_range():
             assert field.metadata["doc"]
         # the functions' own defaults are the settings' defaults
         values = {f.name: f.default for f in dataclasses.fields(cls) if f.name != "enabled"}
-        assert speckle._settings(cls, "x", **values) == obj
+        assert build_settings(cls, values, section="x") == obj
     assert speckle_depth(SpeckleSettings()) == 2 + 2  # radius + min_area
     assert speckle_depth(SpeckleSettings(radius=5, min_area=1)) == 6
     assert BackgroundEstimate._fields[:4] == ("rate", "level", "count_threshold", "value_threshold")
 
 
 def test_docstring_examples_run():
-    result = doctest.testmod(speckle, verbose=False)
-    assert result.attempted >= 6 and result.failed == 0
+    attempted = 0
+    for module in (hot_pixels, speckle, lifting):
+        result = doctest.testmod(module, verbose=False)
+        assert result.failed == 0, module.__name__
+        attempted += result.attempted
+    assert attempted >= 6
 
 
 # --------------------------------------------------------------------------- the demo cohort

@@ -13,7 +13,6 @@ from plexwash.qc.errors import InputError
 from plexwash.qc.io import write_ome_tiff
 from plexwash.qc.spillover import (
     CONDITION_LIMIT,
-    CompensationSettings,
     SpilloverMatrix,
     align_spillover,
     channel_mass,
@@ -25,6 +24,7 @@ from plexwash.qc.spillover import (
     read_spillover,
     write_spillover,
 )
+from plexwash.qc.steps.compensation import CompensationSettings
 
 NAMES = ("Nd142", "Nd143", "Nd144", "Gd158", "Ir191")
 

@@ -12,7 +12,8 @@ from plexwash.qc import staging
 from plexwash.qc.io import Roi, read_roi
 from plexwash.qc.recipe import default_recipe
 from plexwash.qc.staging import StagedStack, Staging, band_rows
-from plexwash.qc.wash import STEPS, wash, wash_to_file
+from plexwash.qc.steps.registry import STEP_NAMES as STEPS
+from plexwash.qc.wash import wash, wash_to_file
 
 
 def _lazy(roi, chunks):

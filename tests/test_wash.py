@@ -9,9 +9,11 @@ import numpy as np
 import pytest
 from plexwash.qc.io import Roi, read_roi
 from plexwash.qc.recipe import default_recipe
-from plexwash.qc.speckle import hot_pixels_stack, speckle_stack
 from plexwash.qc.spillover import compensate
-from plexwash.qc.wash import STEPS, compute, wash, wash_to_file
+from plexwash.qc.steps.hot_pixels import hot_pixels_stack
+from plexwash.qc.steps.registry import STEP_NAMES as STEPS
+from plexwash.qc.steps.speckle import speckle_stack
+from plexwash.qc.wash import compute, wash, wash_to_file
 
 from tests.conftest import load_example_module
 

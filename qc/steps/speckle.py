@@ -1,16 +1,4 @@
-"""Hot pixels and sparse speckle: two cleaning steps that remove isolated counts.
-
-Hot pixels
-    Single-pixel spikes. A pixel is hot when it exceeds the maximum of its 8 neighbours by
-    at least ``min_excess`` counts and either exceeds ``ratio`` times that maximum
-    (thresholded median replacement, common practice) or sits on a flat structure with
-    an excess that Poisson noise cannot explain: its brightest neighbour is not
-    significantly brighter than the brightest pixel two steps out (so it is no peak of a
-    small object) and it exceeds that neighbour by more than ``flat_sigmas`` Poisson
-    standard deviations. The second test finds spikes on or beside bright cells, where
-    the ratio test is blind; the peak of a tiny Gaussian-ish speck falls off steeply
-    from ring 1 to ring 2 and is left alone. Only detected pixels are restored, with the
-    (low) median of their 8 neighbours (detect, then restore: Chan, Ho & Nikolova 2005).
+"""Speckle: sparse background counts removed by a local-density test.
 
 Speckle
     Isolated background counts are sparse and spatially independent; real signal is
@@ -62,10 +50,7 @@ Chunked stacks
 
 References
 ----------
-.. [1] R. H. Chan, C.-W. Ho and M. Nikolova, "Salt-and-pepper noise removal by
-   median-type noise detectors and detail-preserving regularization", IEEE Trans.
-   Image Process. 14(10):1479-1485, 2005.
-.. [2] M. Ester, H.-P. Kriegel, J. Sander and X. Xu, "A density-based algorithm for
+.. [1] M. Ester, H.-P. Kriegel, J. Sander and X. Xu, "A density-based algorithm for
    discovering clusters in large spatial databases with noise", Proc. KDD-96, 226-231.
 """
 
@@ -73,62 +58,40 @@ from __future__ import annotations
 
 import dataclasses
 import functools
-import os
 from collections.abc import Sequence
-from concurrent.futures import ThreadPoolExecutor
-from typing import Any, NamedTuple
+from typing import NamedTuple
 
 import numpy as np
-from plexwash.qc import _speckle_kernels as _k  # absolute: one numba cache, whatever imported us
+from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
 from scipy import special
 
-from .errors import InputError
-from .settings import describe_range, setting
+from .._arrays import as_channel, as_stack, is_dask
+from ..errors import InputError
+from ..settings import build_settings, setting
+from .lifting import (
+    StepResult,
+    kernel_outputs,
+    lift_channel,
+    per_channel_settings,
+    removed_fraction,
+    run_stack,
+)
 
 __all__ = [
-    "HOT_PIXEL_DEPTH",
     "BackgroundEstimate",
-    "HotPixelSettings",
     "SpeckleSettings",
-    "StepResult",
     "estimate_background",
-    "hot_pixels_stack",
-    "remove_hot_pixels",
     "remove_speckle",
     "speckle_depth",
     "speckle_stack",
 ]
 
-#: Depth of the hot-pixel rule under ``map_overlap``: the 8 neighbours and the ring beyond.
-HOT_PIXEL_DEPTH = 2
 #: Quantile of all neighbour counts where the background fit starts.
 _FIT_START_QUANTILE = 0.01
 #: The background fit uses windows with up to the (1 - this) point of Binomial(m, p) positive
 #: neighbours: 0.5, the median, keeps windows centred in cells out.
 _FIT_UPPER_TAIL = 0.5
 
-
-# ----------------------------------------------------------------------------- settings
-
-
-@dataclasses.dataclass(frozen=True)
-class HotPixelSettings:
-    """Hot-pixel step settings (recipe section ``[hot_pixels]``)."""
-
-    enabled: bool = setting(True, "restore single-pixel spikes from their neighbours")
-    ratio: float = setting(
-        5.0, "a hot pixel exceeds this many times the brightest of its 8 neighbours", low=1.0, high=1000.0
-    )
-    min_excess: float = setting(
-        10.0, "and exceeds that neighbour by at least this many counts", low=0.0, high=1e6
-    )
-    flat_sigmas: float = setting(
-        6.0,
-        "on flat structures a pixel is also hot when it exceeds its brightest neighbour by this many"
-        " Poisson standard deviations (0: off)",
-        low=0.0,
-        high=100.0,
-    )
 
 
 @dataclasses.dataclass(frozen=True)
@@ -155,28 +118,6 @@ class SpeckleSettings:
     )
     min_area: int = setting(2, "drop kept groups of fewer pixels (8-connected)", low=1, high=100)
 
-
-# ----------------------------------------------------------------------------- results
-
-
-class StepResult(NamedTuple):
-    """What a cleaning step returns.
-
-    Attributes
-    ----------
-    image : numpy.ndarray or dask.array.Array
-        Cleaned data, float32 (one channel, or a C x Y x X stack for the stack functions).
-    removed : numpy.ndarray or dask.array.Array
-        The removed map: input - output, float32, same shape.
-    stats : dict or list of dict
-        Numbers about the step (one dict per channel for stacks). For dask input the
-        entries measured on the output (``n_pixels``, ``n_removed``, ``removed_fraction``)
-        are 0-d dask arrays; compute them together with the output.
-    """
-
-    image: Any
-    removed: Any
-    stats: Any
 
 
 class BackgroundEstimate(NamedTuple):
@@ -207,106 +148,6 @@ class BackgroundEstimate(NamedTuple):
     alpha: float
     value_alpha: float
 
-
-# ----------------------------------------------------------------------------- hot pixels
-
-
-def remove_hot_pixels(
-    image, *, ratio: float = 5.0, min_excess: float = 10.0, flat_sigmas: float = 6.0
-) -> StepResult:
-    """Restore hot pixels of one channel from the median of their 8 neighbours.
-
-    With ``v`` the pixel, ``m1`` the brightest of its 8 neighbours and ``m2`` the
-    brightest of the 16 pixels two steps out, a pixel is hot when ``v - m1 >=
-    min_excess`` and either
-
-    * ``v > ratio * max(m1, 0)``, or
-    * ``m1 - m2 <= s * sqrt(m1 + m2)`` (no peak of a small object around it) and
-      ``v - m1 > s * sqrt(v + m1)`` (more than Poisson noise), ``s = flat_sigmas``.
-
-    Detection uses the input only; then each detected pixel, and only those, is replaced
-    by the median of its 8 neighbours: the low median (rank 3 of 0..7), so that a spike
-    on the edge of a cell, with four cell and four background neighbours, is restored to
-    background rather than given a cell value it never had. Image edges are mirrored (the
-    edge pixel is not its own neighbour). Two adjacent bright pixels of similar value are never hot, so real
-    specks of two or more pixels are left alone; a tiny Gaussian-ish speck (sigma >= 0.65
-    px) has its peak at most ~2.6 times its brightest neighbour and falls off steeply
-    beyond, so neither test touches it.
-
-    Parameters
-    ----------
-    image : (Y, X) array_like or dask array
-        One channel. Not modified.
-    ratio : float, optional
-        How many times the brightest neighbour a hot pixel exceeds (>= 1).
-    min_excess : float, optional
-        By how many counts at least a hot pixel exceeds its brightest neighbour (>= 0).
-    flat_sigmas : float, optional
-        Poisson standard deviations of the flat-structure test; 0 turns it off (the
-        plain ratio rule).
-
-    Returns
-    -------
-    StepResult
-        ``image`` cleaned (float32), ``removed`` = input - output, ``stats`` with
-        ``n_pixels`` (pixels restored) and ``removed_fraction`` (fraction of the
-        channel's signal removed).
-
-    References
-    ----------
-    .. [1] R. H. Chan, C.-W. Ho and M. Nikolova, IEEE Trans. Image Process. 14(10),
-       2005 (two-phase detect-then-restore).
-
-    Examples
-    --------
-    >>> import numpy as np
-    >>> img = np.ones((5, 5), np.float32); img[2, 2] = 400.0
-    >>> out, removed, st = remove_hot_pixels(img)
-    >>> float(out[2, 2]), float(removed[2, 2]), st["n_pixels"]
-    (1.0, 399.0, 1)
-    """
-    settings = _settings(HotPixelSettings, "hot_pixels", ratio=ratio, min_excess=min_excess,
-                         flat_sigmas=flat_sigmas)
-    if _is_dask(image):
-        return _hot_pixels_dask(_channel(image, "image"), settings)
-    return _hot_pixels_numpy(_channel(image, "image"), settings)
-
-
-def _hot_pixels_numpy(image: np.ndarray, settings: HotPixelSettings, out=None, removed=None) -> StepResult:
-    out, removed = _outputs(image, out, removed)
-    n = _k.hot_pixels(image, *_hot_parameters(settings), out, removed)
-    return StepResult(out, removed, {"n_pixels": int(n), "removed_fraction": _fraction(removed, image)})
-
-
-def _outputs(image: np.ndarray, out, removed):
-    """The arrays a kernel fills: given views (planes of a stack) or new ones."""
-    if out is None:
-        out, removed = np.empty(image.shape, np.float32), np.empty(image.shape, np.float32)
-    return out, removed
-
-
-def _hot_parameters(settings: HotPixelSettings) -> tuple[float, float, float]:
-    return float(settings.ratio), float(settings.min_excess), float(settings.flat_sigmas)
-
-
-def _hot_pixels_block(block, parameters):
-    out = np.empty(block.shape, np.float32)
-    _k.hot_pixels(np.ascontiguousarray(block), *parameters, out, np.empty_like(out))
-    return out
-
-
-def _hot_pixels_dask(image, settings: HotPixelSettings) -> StepResult:
-    block_step = functools.partial(_hot_pixels_block, parameters=_hot_parameters(settings))
-    out = image.map_overlap(
-        block_step,
-        depth=HOT_PIXEL_DEPTH,
-        boundary="none",
-        dtype=np.float32,
-        meta=np.empty((0, 0), np.float32),
-    )
-    removed = image - out
-    stats = {"n_pixels": (removed > 0).sum(), "removed_fraction": _fraction(removed, image)}
-    return StepResult(out, removed, stats)
 
 
 # ----------------------------------------------------------------------------- background
@@ -361,13 +202,12 @@ def estimate_background(
     >>> round(bg.rate, 2), round(bg.level, 1), bg.count_threshold, bg.value_threshold
     (0.18, 0.2, 10, 6.0)
     """
-    settings = _settings(
-        SpeckleSettings, "speckle", threshold=threshold, radius=radius, alpha=alpha, value_alpha=value_alpha
-    )
-    if _is_dask(image):
-        histogram = np.asarray(_centre_histogram_dask(_channel(image, "image"), settings).compute())
+    settings = build_settings(SpeckleSettings, {"threshold": threshold, "radius": radius, "alpha": alpha,
+                                                "value_alpha": value_alpha}, section="speckle")
+    if is_dask(image):
+        histogram = np.asarray(_centre_histogram_dask(as_channel(image), settings).compute())
     else:
-        image = _channel(image, "image")
+        image = as_channel(image)
         _check_window(image.shape, settings.radius)
         counts = _counts(image, settings)
         histogram = _centre_histogram(image, counts, settings)
@@ -604,23 +444,16 @@ def remove_speckle(
     >>> float(out[5, 5]), float(out[22, 22]), st["n_removed"]
     (0.0, 2.0, 1)
     """
-    settings = _settings(
-        SpeckleSettings,
-        "speckle",
-        threshold=threshold,
-        radius=radius,
-        alpha=alpha,
-        value_alpha=value_alpha,
-        keep_touching=keep_touching,
-        min_area=min_area,
-    )
+    values = {"threshold": threshold, "radius": radius, "alpha": alpha, "value_alpha": value_alpha,
+              "keep_touching": keep_touching, "min_area": min_area}
+    settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
             "background", f"estimated with threshold {background.threshold:g}, filter uses {settings.threshold:g}"
         )
-    image = _channel(image, "image")
+    image = as_channel(image)
     _check_window(image.shape, settings.radius)
-    if _is_dask(image):
+    if is_dask(image):
         if background is None:
             histogram = _centre_histogram_dask(image, settings).compute()
             background = _background_from_histogram(np.asarray(histogram), settings)
@@ -632,10 +465,10 @@ def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out
     counts = _counts(image, settings)
     if background is None:
         background = _background_from_histogram(_centre_histogram(image, counts, settings), settings)
-    out, removed = _outputs(image, out, removed)
+    out, removed = kernel_outputs(image, out, removed)
     n_removed = _speckle_apply(image, counts, _filter_parameters(settings, background), out, removed)
     stats = _speckle_stats(settings, background)
-    stats.update(n_removed=int(n_removed), removed_fraction=_fraction(removed, image))
+    stats.update(n_removed=int(n_removed), removed_fraction=removed_fraction(removed, image))
     return StepResult(out, removed, stats)
 
 
@@ -672,16 +505,11 @@ def _speckle_block(block, params: dict):
 
 
 def _speckle_dask(image, settings: SpeckleSettings, background: BackgroundEstimate) -> StepResult:
-    out = image.map_overlap(
-        functools.partial(_speckle_block, params=_filter_parameters(settings, background)),
-        depth=speckle_depth(settings),
-        boundary="none",
-        dtype=np.float32,
-        meta=np.empty((0, 0), np.float32),
-    )
+    out = lift_channel(image, _speckle_block, speckle_depth(settings),
+                       params=_filter_parameters(settings, background))
     removed = image - out
     stats = _speckle_stats(settings, background)
-    stats.update(n_removed=(removed > 0).sum(), removed_fraction=_fraction(removed, image))
+    stats.update(n_removed=(removed > 0).sum(), removed_fraction=removed_fraction(removed, image))
     return StepResult(out, removed, stats)
 
 
@@ -697,49 +525,6 @@ def _speckle_stats(settings: SpeckleSettings, background: BackgroundEstimate) ->
 
 def _finite_or_none(value: float):
     return value if np.isfinite(value) else None
-
-
-# ----------------------------------------------------------------------------- stacks
-
-
-def hot_pixels_stack(stack, settings: HotPixelSettings | Sequence[HotPixelSettings] | None = None) -> StepResult:
-    """Hot-pixel step on a (C, Y, X) stack, numpy or dask.
-
-    Parameters
-    ----------
-    stack : (C, Y, X) array_like or dask array
-        Not modified.
-    settings : HotPixelSettings or sequence of them, optional
-        One for all channels, or one per channel. A channel whose settings have
-        ``enabled=False`` passes through unchanged (zero removed map).
-
-    Returns
-    -------
-    StepResult
-        ``(cleaned, removed, stats)``: float32 stacks (numpy in -> numpy out, dask in ->
-        dask out, same chunks) and one stats dict per channel (``enabled``, ``n_pixels``,
-        ``removed_fraction``).
-
-    Examples
-    --------
-    >>> import numpy as np
-    >>> stack = np.zeros((2, 8, 8), np.float32); stack[:, 4, 4] = 300.0
-    >>> off = HotPixelSettings(enabled=False)
-    >>> cleaned, removed, st = hot_pixels_stack(stack, [HotPixelSettings(), off])
-    >>> cleaned[:, 4, 4].tolist(), [s["n_pixels"] for s in st]
-    ([0.0, 300.0], [1, 0])
-    """
-    stack = _stack(stack)
-    per_channel = _per_channel(settings, HotPixelSettings, stack.shape[0])
-
-    def channel_step(c, image, s, out, removed):
-        return _hot_pixels_numpy(image, s, out, removed)
-
-    def block_kernel(c, s):
-        return functools.partial(_hot_pixels_block, parameters=_hot_parameters(s)), HOT_PIXEL_DEPTH, {}
-
-    return _run_stack(stack, per_channel, channel_step, passive={"n_pixels": 0},
-                      block_kernel=block_kernel, count_key="n_pixels")
 
 
 def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] | None = None) -> StepResult:
@@ -771,13 +556,13 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
     >>> float(removed[0, 3, 3]), st[0]["n_removed"]
     (1.0, 1)
     """
-    stack = _stack(stack)
-    per_channel = _per_channel(settings, SpeckleSettings, stack.shape[0])
+    stack = as_stack(stack)
+    per_channel = per_channel_settings(settings, SpeckleSettings, stack.shape[0])
     for s in per_channel:
         if s.enabled:
             _check_window(stack.shape, s.radius)
     backgrounds = {}
-    if _is_dask(stack):
+    if is_dask(stack):
         import dask
 
         enabled = [c for c, s in enumerate(per_channel) if s.enabled]
@@ -793,116 +578,9 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
         return kernel, speckle_depth(s), _speckle_stats(s, backgrounds[c])
 
     passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None, "n_removed": 0}
-    return _run_stack(stack, per_channel, channel_step, passive=passive,
-                      block_kernel=block_kernel, count_key="n_removed")
+    return run_stack(stack, per_channel, channel_step, passive=passive,
+                     block_kernel=block_kernel, count_key="n_removed")
 
-
-def _run_stack(stack, per_channel: list, channel_step, *, passive: dict, block_kernel,
-               count_key: str) -> StepResult:
-    """Apply a step to every enabled channel of a numpy or dask stack.
-
-    numpy: ``channel_step(c, channel, settings, out, removed)`` writes straight into the
-    planes of the result stacks, channels in parallel threads (the kernels release the GIL).
-    dask: ``block_kernel(c, settings) -> (kernel, depth, stats)`` gives each channel's 2-D
-    block kernel; one ``map_overlap`` over whole (C, y, x) blocks applies them all, with
-    the largest depth any channel needs (a larger halo never changes a kernel's result).
-    One graph over whole blocks keeps memory bounded by a few blocks plus their halos.
-    """
-    if _is_dask(stack):
-        return _run_stack_dask(stack, per_channel, block_kernel, passive=passive, count_key=count_key)
-    n_channels = stack.shape[0]
-
-    def one(c, out=None, removed=None) -> StepResult:
-        s, image = per_channel[c], stack[c]
-        if s.enabled:
-            result = channel_step(c, image, s, out, removed)
-            return result._replace(stats={"enabled": True, **result.stats})
-        stats = {"enabled": False, **passive, "removed_fraction": 0.0}
-        if _is_dask(image):
-            return StepResult(image, image * np.float32(0), stats)
-        out[...] = image
-        removed[...] = 0.0
-        return StepResult(out, removed, stats)
-
-    from threadpoolctl import threadpool_limits
-
-    cleaned = np.empty(stack.shape, np.float32)
-    removed = np.empty(stack.shape, np.float32)
-
-    def store(c):
-        return one(c, cleaned[c], removed[c]).stats
-
-    workers = min(n_channels, os.cpu_count() or 1)
-    with threadpool_limits(limits=1):  # kernels run in parallel threads; keep BLAS pools out of their way
-        if workers <= 1:
-            stats = [store(c) for c in range(n_channels)]
-        else:
-            with ThreadPoolExecutor(max_workers=workers) as pool:
-                stats = list(pool.map(store, range(n_channels)))
-    return StepResult(cleaned, removed, stats)
-
-
-def _run_stack_dask(stack, per_channel: list, block_kernel, *, passive: dict, count_key: str) -> StepResult:
-    chunks = stack.chunks
-    stack = stack.rechunk({0: -1})  # every block holds all channels: kernels index them
-    kernels = [block_kernel(c, s) if s.enabled else None for c, s in enumerate(per_channel)]
-    depth = max((k[1] for k in kernels if k is not None), default=0)
-
-    def apply(block):
-        out = np.empty(block.shape, np.float32)
-        for c, kernel in enumerate(kernels):
-            out[c] = kernel[0](block[c]) if kernel is not None else block[c]
-        return out
-
-    if depth:
-        cleaned = stack.map_overlap(apply, depth={0: 0, 1: depth, 2: depth}, boundary="none",
-                                    dtype=np.float32, meta=np.empty((0, 0, 0), np.float32))
-    else:
-        cleaned = stack
-    removed = stack - cleaned
-    if chunks[0] != stack.chunks[0]:  # dask in, dask out with the caller's chunks
-        cleaned, removed = cleaned.rechunk(chunks), removed.rechunk(chunks)
-    stats = []
-    for c, kernel in enumerate(kernels):
-        if kernel is None:
-            stats.append({"enabled": False, **passive, "removed_fraction": 0.0})
-            continue
-        stats.append({"enabled": True, **kernel[2], count_key: (removed[c] > 0).sum(),
-                      "removed_fraction": _fraction(removed[c], stack[c])})
-    return StepResult(cleaned, removed, stats)
-
-
-# ----------------------------------------------------------------------------- helpers
-
-
-def _is_dask(array) -> bool:
-    return type(array).__module__.startswith("dask.")
-
-
-def _as_float32(array, what: str, ndim: int):
-    if _is_dask(array):
-        dtype = array.dtype
-    else:
-        array = np.asarray(array)
-        dtype = array.dtype
-    if array.ndim != ndim:
-        shape = "x".join(str(n) for n in array.shape) or "scalar"
-        raise InputError(what, f"expected a {ndim}-D array, got shape {shape}")
-    if not (np.issubdtype(dtype, np.integer) or np.issubdtype(dtype, np.floating)):
-        raise InputError(what, f"expected real numbers, got dtype {dtype}")
-    if any(n < 3 for n in array.shape[-2:]):
-        raise InputError(what, f"needs at least 3 x 3 pixels, got {array.shape[-2]} x {array.shape[-1]}")
-    if _is_dask(array):
-        return array.astype(np.float32)
-    return np.ascontiguousarray(array, dtype=np.float32)
-
-
-def _channel(image, what: str):
-    return _as_float32(image, what, 2)
-
-
-def _stack(stack):
-    return _as_float32(stack, "stack", 3)
 
 
 def _check_window(shape, radius: int) -> None:
@@ -913,58 +591,3 @@ def _check_window(shape, radius: int) -> None:
         )
 
 
-def _fraction(removed, image):
-    """Fraction of the channel's signal that was removed (0 when the channel has none).
-
-    For dask input a 0-d dask array (array arithmetic only: in dask 2026.8 computing
-    ``Delayed`` objects together with arrays in one ``dask.compute`` misorders results).
-    """
-    part, total = removed.sum(dtype=np.float64), image.sum(dtype=np.float64)
-    if _is_dask(removed):
-        return part * (total > 0) / np.maximum(total, np.finfo(np.float64).tiny)
-    return float(part) / float(total) if total > 0 else 0.0
-
-
-def _per_channel(settings, kind, n_channels: int) -> list:
-    if settings is None:
-        settings = kind()
-    if isinstance(settings, kind):
-        return [settings] * n_channels
-    settings = list(settings)
-    if len(settings) != n_channels:
-        raise InputError("settings", f"{len(settings)} settings for {n_channels} channels")
-    for s in settings:
-        if not isinstance(s, kind):
-            raise InputError("settings", f"expected {kind.__name__}, got {type(s).__name__}")
-    return settings
-
-
-def _settings(kind, section: str, **values):
-    """Build a settings object from keyword arguments, checking types and ranges."""
-    fields = {f.name: f for f in dataclasses.fields(kind)}
-    for name, value in values.items():
-        meta = fields[name].metadata
-        expected = type(fields[name].default)
-        key = f"{section}.{name}"
-        if expected is bool:
-            if not isinstance(value, (bool, np.bool_)):
-                raise InputError(key, f"must be true or false, got {value!r}")
-            values[name] = bool(value)
-            continue
-        if isinstance(value, bool) or not isinstance(value, (int, float, np.integer, np.floating)):
-            raise InputError(key, f"must be a number, got {value!r}")
-        if expected is int:
-            if float(value) != int(value):
-                raise InputError(key, f"must be a whole number, got {value!r}")
-            value = int(value)
-        else:
-            value = float(value)
-            if not np.isfinite(value):
-                raise InputError(key, f"must be finite, got {value!r}")
-        low, high = meta.get("low"), meta.get("high")
-        if (low is not None and (value < low or (meta.get("low_open") and value == low))) or (
-            high is not None and (value > high or (meta.get("high_open") and value == high))
-        ):
-            raise InputError(key, f"= {value!r} is out of range; allowed: {describe_range(meta)}")
-        values[name] = value
-    return kind(**values)

@@ -1,4 +1,6 @@
-"""Compiled kernels behind :mod:`plexwash.qc.speckle` (numba, exact float32 arithmetic).
+"""Compiled kernels of the plane steps (numba, exact float32 arithmetic).
+
+Used by :mod:`plexwash.qc.steps.hot_pixels` and :mod:`plexwash.qc.steps.speckle`.
 
 Every kernel works on one 2-D float32 channel, releases the GIL (``nogil``) so that
 channels or dask blocks run in parallel threads, and is cached on disk (``cache=True``).

@@ -1,0 +1,183 @@
+"""The excess test behind ``empty``: a Poisson model of background (+ ghosts) fitted to binned counts.
+
+See the notes of :mod:`plexwash.qc.quality` (step 5 of how a channel is measured).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import linalg, ndimage, optimize, special
+
+from . import _kernels as _k
+from .settings import QualitySettings
+
+# Largest number of refits of the background / ghost model while leaving out bins.
+_MAX_FIT_ROUNDS = 12
+
+
+# Bins per block when Gram matrices are updated (bounds the temporary copies).
+_GRAM_BLOCK = 8192
+
+
+def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarray:
+    """Where ``P(N >= n) < alpha`` for N ~ Poisson(mu) (``alpha`` below 0.159).
+
+    ``P(N >= n)`` is the regularised lower incomplete gamma ``P(n, mu)``
+    (``scipy.special.gammainc``), which interpolates smoothly for non-integer counts
+    (compensated data). Only the bins the answer is not obvious for pay for it:
+
+    * ``n <= mu + sqrt(mu)``: ``P >= 0.159 > alpha`` (checked numerically for
+      1e-3 <= mu <= 1e5), so not below;
+    * the Chernoff bound ``P(n, mu) <= exp(-(n log(n / mu) - n + mu))`` for ``n > mu``
+      (the lower tail of a Gamma(n) variable; it holds for non-integer n too) is
+      already below ``alpha``: below. These are the bright bins of a stain, most of
+      a stained channel's bins;
+    * the series ``P(n, mu) = mu^n e^-mu / Gamma(n + 1) * (1 + mu / (n + 1) + mu^2 /
+      ((n + 1)(n + 2)) + ...)`` (Abramowitz & Stegun 6.5.29), cut after three terms, is a
+      lower bound; where it is at least ``alpha``: not below. These are the background
+      bins that fluctuate up;
+    * the rest: ``gammainc`` itself.
+
+    The answer is that of ``gammainc(n, mu) < alpha`` everywhere (the bounds keep a
+    margin far above their rounding).
+    """
+    n = np.ascontiguousarray(n, dtype=np.float64)
+    mu = np.ascontiguousarray(np.broadcast_to(mu, n.shape), dtype=np.float64)
+    verdict = np.empty(n.shape, np.int8)
+    _k.poisson_tail_screen(n.ravel(), mu.ravel(), math.log(alpha), verdict.ravel())
+    out = verdict == 1
+    hard = verdict == 2
+    if hard.any():
+        out[hard] = special.gammainc(n[hard], mu[hard]) < alpha
+    return out
+
+
+def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
+               settings: QualitySettings, *, gram: np.ndarray | None = None,
+               cross: np.ndarray | None = None):
+    """Fit target ~ design.T @ coef, leaving out bins the model cannot explain.
+
+    ``design`` row 0 holds the bins' areas (its coefficient is the background per
+    pixel, >= 0, unbounded above), the other rows the sources (coefficients
+    ``0 <= s_i <= upper_i``; an upper bound of 0 leaves a row out). Least squares on
+    the bins kept; bins with ``P(N >= n | mu) < fit_alpha`` (counts ``n`` and
+    ``mu`` = values times ``counts_per_unit``) are left out and the fit repeated
+    until the set is stable. ``gram`` / ``cross`` (``design @ design.T`` and
+    ``design @ target`` over all bins) may be passed precomputed; between rounds
+    they are updated with the bins that changed side only.
+
+    Returns mu (model counts per bin, floored), the coefficients (in the data's
+    units) and the mask of bins kept.
+    """
+    unit = settings.counts_per_unit
+    if gram is None:
+        gram = gram_matrix(design)
+        cross = _cross(design, target)
+    n = target * unit
+    floor = settings.background_floor * unit * design[0].astype(np.float64)
+    kept = np.ones(n.shape, bool)
+    lower = np.zeros(design.shape[0])
+    g, h = gram, cross
+    for _ in range(_MAX_FIT_ROUNDS):
+        coef = _box_least_squares(g, h, lower, upper)
+        mu = np.maximum(unit * combine_rows(coef, design), floor)
+        new_kept = ~poisson_tail_below(n, mu, settings.fit_alpha)
+        if not new_kept.any() or np.array_equal(new_kept, kept):
+            break
+        g_out, h_out = _partial_gram(design, target, kept & ~new_kept)
+        g_in, h_in = _partial_gram(design, target, new_kept & ~kept)
+        g, h = g - g_out + g_in, h - h_out + h_in
+        kept = new_kept
+    return mu, coef, kept
+
+
+def gram_matrix(design: np.ndarray) -> np.ndarray:
+    """``D D^T`` in float64, a block of bins (columns) at a time."""
+    g = np.zeros((design.shape[0], design.shape[0]))
+    for start in range(0, design.shape[1], _GRAM_BLOCK):
+        d = design[:, start:start + _GRAM_BLOCK].astype(np.float64)
+        g += d @ d.T
+    return g
+
+
+def _cross(design: np.ndarray, target: np.ndarray) -> np.ndarray:
+    """``D t`` in float64, a block of bins at a time."""
+    h = np.zeros(design.shape[0])
+    for start in range(0, design.shape[1], _GRAM_BLOCK):
+        h += design[:, start:start + _GRAM_BLOCK].astype(np.float64) @ target[start:start + _GRAM_BLOCK]
+    return h
+
+
+def combine_rows(coef: np.ndarray, design: np.ndarray) -> np.ndarray:
+    """``coef @ design`` in float64, a block of columns at a time (no float64 copy of ``design``)."""
+    out = np.empty(design.shape[1])
+    for start in range(0, design.shape[1], _GRAM_BLOCK):
+        out[start:start + _GRAM_BLOCK] = coef @ design[:, start:start + _GRAM_BLOCK].astype(np.float64)
+    return out
+
+
+def _partial_gram(design: np.ndarray, target: np.ndarray, mask: np.ndarray):
+    """``D D^T`` and ``D t`` over the bins in ``mask``, a block of bins at a time."""
+    index = np.flatnonzero(mask)
+    g = np.zeros((design.shape[0], design.shape[0]))
+    h = np.zeros(design.shape[0])
+    for start in range(0, index.size, _GRAM_BLOCK):
+        part = index[start:start + _GRAM_BLOCK]
+        d = design[:, part].astype(np.float64)
+        g += d @ d.T
+        h += d @ target[part]
+    return g, h
+
+
+def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
+                       upper: np.ndarray) -> np.ndarray:
+    """argmin c^T G c - 2 c^T h subject to lower <= c <= upper (G = D D^T, h = D n).
+
+    Variables with ``upper <= lower`` are fixed at ``lower``; the others are
+    solved as the equivalent bounded least-squares problem ||L^T c - L^-1 h||
+    (G = L L^T) with ``scipy.optimize.lsq_linear`` (BVLS), on a diagonally scaled
+    G with a tiny ridge so that dependent or all-zero sources do no harm.
+    """
+    coef = lower.astype(np.float64).copy()
+    free = (upper > lower) & (np.diag(gram) > 0)
+    if not free.any():
+        return coef
+    idx = np.flatnonzero(free)
+    fixed = np.flatnonzero(~free)
+    h = cross[idx] - gram[np.ix_(idx, fixed)] @ coef[fixed]
+    scale = np.sqrt(np.diag(gram)[idx])
+    g = gram[np.ix_(idx, idx)] / np.outer(scale, scale)
+    g[np.diag_indices_from(g)] += 1e-9
+    h = h / scale
+    lo = lower[idx] * scale
+    hi = upper[idx] * scale
+    if len(idx) == 1:  # one unknown: clip the unconstrained minimum
+        coef[idx] = np.clip(h / g[0, 0], lo, hi) / scale
+        return coef
+    chol = linalg.cholesky(g, lower=True)
+    rhs = linalg.solve_triangular(chol, h, lower=True)
+    result = optimize.lsq_linear(chol.T, rhs, bounds=(lo, hi), method="bvls")
+    coef[idx] = result.x / scale
+    return coef
+
+
+def measure_excess_area(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
+                 settings: QualitySettings) -> float:
+    """Pixels of the bins with excess over the model, judged per bin and per 3 x 3 bins.
+
+    The window test adds power for faint stains spread over several bins; the
+    largest single-bin excess in a window is left out of it, so one stray bright
+    bin (a hot pixel that escaped) cannot lend excess to its eight neighbours.
+    """
+    unit = settings.counts_per_unit
+    excess = poisson_tail_below(n, mu, settings.empty_alpha) & (
+        n - mu >= settings.min_excess * unit * area)
+    if min(n.shape) >= 3:
+        n_w, mu_w, a_w = (ndimage.uniform_filter(v, 3, mode="constant") * 9 for v in (n, mu, area))
+        largest = ndimage.maximum_filter(n - mu, 3, mode="constant", cval=0.0)
+        n_w = n_w - np.maximum(largest, 0.0)
+        excess |= poisson_tail_below(n_w, mu_w, settings.empty_alpha) & (
+            n_w - mu_w >= settings.min_excess * unit * a_w)
+    return float(area[excess].sum())
