@@ -321,9 +321,9 @@ def _render(recipe: Recipe) -> str:
 
 def write_recipe(path: str | Path, recipe: Recipe | None = None) -> Path:
     """Write a recipe (the commented default when ``recipe`` is None), atomically."""
-    from .io import write_text_atomic
+    from .files import write_atomic
 
     recipe = recipe or default_recipe()
     path = Path(path)
-    write_text_atomic(path, recipe.to_toml())
+    write_atomic(path, recipe.to_toml())
     return path
