@@ -326,6 +326,7 @@ def _wash(args) -> int:
 
     bound_heap()  # as a run does: threads share one malloc arena
     roi = read_roi(args.roi, panel=args.panel)
+    recipe.check_size(roi)
     result = wash_to_file(roi, out, recipe, spillover=args.spillover)
     print(f"washed {roi.name} -> {out} in {result['seconds']:.1f} s")
     for note in result["notes"]:

@@ -142,6 +142,8 @@ def list_cohort(folder: str | Path) -> list[Path]:
         When the folder does not exist or holds no ROI.
     """
     folder = Path(folder)
+    if folder.is_file():
+        raise InputError(folder, "is a file; give the folder that holds the cohort's ROIs")
     if not folder.is_dir():
         raise InputError(folder, "cohort folder not found")
     rois = sorted(p for p in folder.iterdir() if is_roi_path(p))

@@ -660,6 +660,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     if recipe.sha256() != job["recipe_sha256"]:
         raise InputError(job["recipe"], "recipe changed while the run was going")
     roi = read_roi(job["input"], panel=job.get("panel"))
+    recipe.check_size(roi)
     matrix = None
     if job.get("spillover"):
         from .spillover import read_spillover
