@@ -901,8 +901,15 @@ class Ledger:
                 mark_written(self.path)
                 if _ends_torn(self.path):
                     line = "\n" + line
-                os.write(fd, line.encode())
-                os.fsync(fd)
+                size = os.fstat(fd).st_size
+                data = line.encode()
+                try:
+                    while data:  # a nearly full disk may take only part of the line
+                        data = data[os.write(fd, data):]
+                    os.fsync(fd)
+                except OSError:
+                    os.ftruncate(fd, size)  # no half record: the ledger stays as it was
+                    raise
             finally:
                 os.close(fd)
         except OSError as exc:

@@ -507,7 +507,7 @@ def test_a_full_disk_ends_with_one_line_and_no_partial_file(command, world, smal
     assert "no space left on device" in line and "Errno" not in line
     if command == "run":
         last = read_ledger(target)[-1]
-        assert code == (3 if last["roi"] == "roi_01" and last["status"] == "failed" else 1), err
+        assert code == (3 if last["roi"] == "roi_01" and last["status"] == "failed" else 1), (err, last)
     else:
         assert code == 1 and str(target) in line, err
     assert _snapshot(inp) == before
