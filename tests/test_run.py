@@ -18,8 +18,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 from plexwash.qc.errors import InputError
-from plexwash.qc.io import read_roi
 from plexwash.qc.files import sweep_leftovers
+from plexwash.qc.io import read_roi
 from plexwash.qc.run import (
     LEDGER,
     QUALITY,
