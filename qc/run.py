@@ -52,7 +52,6 @@ import contextlib
 import dataclasses
 import datetime as _dt
 import fcntl
-import json
 import math
 import os
 import signal
@@ -69,15 +68,14 @@ from .files import (
     check_output_folder,
     interval_paths,
     mark_written,
-    output_error,
     reached_inputs,
     remove_path,
     sweep_leftovers,
     temporary_path,
     write_atomic,
 )
+from .ledger import LEDGER, Ledger, json_ready, latest_records, read_ledger, repair_ledger
 
-LEDGER = "ledger.jsonl"
 QUALITY = "quality.csv"
 REPORT = "report.html"
 RECIPE = "recipe.toml"
@@ -685,7 +683,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     lap("quality")
     if job["output"] is None:
         remove_path(target)
-    stats = _json_ready(result.get("stats", {}))
+    stats = json_ready(result.get("stats", {}))
     removed = {step: {row["channel"]: row.get("removed_fraction") for row in rows}
                for step, rows in stats.items()}
     shape = [int(n) for n in roi.shape]
@@ -696,7 +694,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
         channels=list(roi.channels), labels=list(roi.labels), used=[bool(u) for u in roi.use],
         removed_fraction=removed, steps=stats, notes=list(result.get("notes", [])),
         roi_flags=roi_flags, median_sbr=_median_sbr(raw_rows, washed_rows),
-        timings=timings, quality=_json_ready(raw_rows + washed_rows))
+        timings=timings, quality=json_ready(raw_rows + washed_rows))
     return record
 
 
@@ -880,115 +878,6 @@ def _interrupts():
             signal.signal(number, handler)
 
 
-# --------------------------------------------------------------------------- ledger
-
-
-class Ledger:
-    """Append-only ``ledger.jsonl``: one JSON object per line, each append fsynced.
-
-    A line torn by a killed process (no final newline) is closed off before the next
-    append, and readers skip it.
-    """
-
-    def __init__(self, path):
-        self.path = Path(path)
-
-    def append(self, record: Mapping) -> None:
-        line = json.dumps(_json_ready(dict(record)), ensure_ascii=True, allow_nan=False) + "\n"
-        try:
-            fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o666)
-            try:
-                mark_written(self.path)
-                if _ends_torn(self.path):
-                    line = "\n" + line
-                size = os.fstat(fd).st_size
-                data = line.encode()
-                try:
-                    while data:  # a nearly full disk may take only part of the line
-                        data = data[os.write(fd, data):]
-                    os.fsync(fd)
-                except OSError:
-                    os.ftruncate(fd, size)  # no half record: the ledger stays as it was
-                    raise
-            finally:
-                os.close(fd)
-        except OSError as exc:
-            raise output_error(exc, self.path) from None
-
-
-def repair_ledger(path) -> bool:
-    """Rewrite a ledger atomically without lines that are not complete records.
-
-    A process killed while appending leaves a torn last line (tools such as ``jq`` stop
-    there); every complete record is kept, in order. Returns True when a line was dropped.
-    """
-    path = Path(path)
-    if not path.is_file():
-        return False
-    lines = path.read_bytes().splitlines(keepends=True)
-    keep = [line for line in lines if line.endswith(b"\n") and _is_record(line)]
-    if len(keep) == len(lines):
-        return False
-    write_atomic(path, b"".join(keep))
-    return True
-
-
-def _is_record(line: bytes) -> bool:
-    try:
-        record = json.loads(line)
-    except (ValueError, UnicodeDecodeError):
-        return False
-    return isinstance(record, dict) and "roi" in record
-
-
-def _ends_torn(path: Path) -> bool:
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(0, os.SEEK_END)
-            if fh.tell() == 0:
-                return False
-            fh.seek(-1, os.SEEK_END)
-            return fh.read(1) != b"\n"
-    except FileNotFoundError:
-        return False
-
-
-def read_ledger(out_dir) -> list[dict]:
-    """Every complete record of a run folder's ledger, in order (torn lines skipped).
-
-    Examples
-    --------
-    >>> import tempfile, pathlib
-    >>> tmp = pathlib.Path(tempfile.mkdtemp())
-    >>> Ledger(tmp / "ledger.jsonl").append({"roi": "a", "status": "done"})
-    >>> [r["roi"] for r in read_ledger(tmp)]
-    ['a']
-    """
-    path = Path(out_dir) / LEDGER
-    if not path.is_file():
-        return []
-    records = []
-    with open(path, encoding="utf-8", errors="replace") as fh:
-        for line in fh:
-            if not line.endswith("\n"):
-                break  # torn last line
-            try:
-                record = json.loads(line)
-            except json.JSONDecodeError:
-                continue
-            if isinstance(record, dict) and "roi" in record:
-                records.append(record)
-    return records
-
-
-def latest_records(records: Iterable[Mapping]) -> dict[str, dict]:
-    """The last record of each ROI (later attempts supersede earlier ones)."""
-    out: dict[str, dict] = {}
-    for record in records:
-        out[record["roi"]] = dict(record)
-    return out
-
-
 # --------------------------------------------------------------------------- quality table
 
 
@@ -1096,28 +985,6 @@ def _csv_cell(value) -> str:
 
 
 # --------------------------------------------------------------------------- small helpers
-
-
-def _json_ready(value):
-    """Plain JSON values: numpy numbers to Python, non-finite floats to None."""
-    import numpy as np
-
-    if isinstance(value, Mapping):
-        return {str(k): _json_ready(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_ready(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _json_ready(value.tolist())
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        value = float(value)
-        return value if math.isfinite(value) else None
-    if isinstance(value, Path):
-        return str(value)
-    return value
 
 
 def _now() -> str:
