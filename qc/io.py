@@ -273,8 +273,9 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     Raises
     ------
     InputError
-        Missing, empty, unreadable or truncated file; a 2-D image or unknown axes;
-        duplicate channel names; panel not matching; NaN or Inf pixels.
+        Missing, empty, unreadable or truncated file; unknown axes; metadata claiming
+        more pixels than the file holds; duplicate channel names; panel not matching;
+        NaN, Inf or negative pixels. A single-channel image reads as a 1 x Y x X stack.
 
     Examples
     --------

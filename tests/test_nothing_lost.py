@@ -13,6 +13,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -441,10 +442,20 @@ def test_messages_name_the_file(world, capsys):
 
 
 def test_removed_fractions_stay_within_0_and_100_percent(world, capsys):
-    out = _run_folder(world, capsys)
-    for record in read_ledger(out):
+    out = world / "run"
+    code, printed, err = _cli(capsys, "run", world / "in" / "cohort", "-o", out, "--quiet",
+                              "--spillover", world / "in" / "spill.csv")
+    assert code == 0, err
+    records = read_ledger(out)
+    assert {"hot_pixels", "compensation", "speckle"} <= set(records[0]["removed_fraction"])
+    for record in records:
         for values in record["removed_fraction"].values():
             assert all(0.0 <= v <= 1.0 for v in values.values() if v is not None)
+    code, printed, err = _cli(capsys, "wash", world / "in" / "cohort" / "roi_01.ome.tiff", "-o",
+                              world / "w.ome.tiff", "--spillover", world / "in" / "spill.csv")
+    assert code == 0, err
+    percents = [float(p) for p in re.findall(r"(-?[0-9.]+) %", printed)]
+    assert percents and all(0.0 <= p <= 100.0 for p in percents), printed
 
 
 # --------------------------------------------------------------------------- a full disk
@@ -505,9 +516,11 @@ def test_a_full_disk_ends_with_one_line_and_no_partial_file(command, world, smal
     code, _, err = _cli(capsys, *args)
     line = _one_line(err, [])
     assert "no space left on device" in line and "Errno" not in line
-    if command == "run":
+    if command == "run":  # the failure is recorded, so the exit code is the run's: 3
         last = read_ledger(target)[-1]
-        assert code == (3 if last["roi"] == "roi_01" and last["status"] == "failed" else 1), (err, last)
+        assert (last["roi"], last["status"]) == ("roi_01", "failed"), last
+        assert "no space left on device" in last["error"] and "Errno" not in last["error"]
+        assert code == 3, err
     else:
         assert code == 1 and str(target) in line, err
     assert _snapshot(inp) == before
