@@ -68,6 +68,7 @@ from .files import (
     check_output_folder,
     interval_paths,
     mark_written,
+    output_error,
     reached_inputs,
     remove_path,
     sweep_leftovers,
@@ -262,6 +263,7 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
         except OutputError as exc:  # a full disk: the ROIs recorded stay recorded
             error = str(exc)
             log.line(f"error: {error}")
+        error = error or log.error
         seconds = time.perf_counter() - started
         log.line(f"finished in {seconds:.1f} s: {done} done, {len(skipped)} skipped, "
                  f"{len(failed)} failed" + (f" ({', '.join(failed)})" if failed else "")
@@ -1007,7 +1009,8 @@ class _RunLog:
         self.path = path
         self.progress = progress
         self.fancy = progress and sys.stderr.isatty()
-        self._fh = None
+        self._fd = None
+        self.error: str | None = None  # set when run.log could not be written (a full disk)
         self._bar = None
         self._task = None
         self._total = 0
@@ -1015,25 +1018,44 @@ class _RunLog:
         self._t0 = time.perf_counter()
 
     def __enter__(self):
-        self._fh = open(self.path, "a", encoding="utf-8")
+        self._fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o666)
         mark_written(self.path)
         return self
 
     def __exit__(self, *exc):
         self.stop()
-        self._fh.close()
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
         return False
 
     def line(self, text: str) -> None:
         stamped = f"{_dt.datetime.now().astimezone().isoformat(timespec='seconds')} {text}"
-        self._fh.write(stamped + "\n")
-        self._fh.flush()
+        self._append(stamped + "\n")
         if not self.progress:
             return
         if self._bar is not None:
             self._bar.console.print(text, highlight=False, markup=False)
         else:
             print(stamped, file=sys.stderr, flush=True)
+
+    def _append(self, text: str) -> None:
+        """One whole line onto run.log; on a full disk the log stops (the run goes on)."""
+        if self._fd is None:
+            return
+        size = os.fstat(self._fd).st_size
+        data = text.encode("utf-8")
+        try:
+            while data:
+                data = data[os.write(self._fd, data):]
+        except OSError as exc:
+            error = output_error(exc, self.path)
+            if not isinstance(error, OutputError):
+                raise
+            os.ftruncate(self._fd, size)
+            os.close(self._fd)
+            self._fd = None
+            self.error = str(error)
 
     def start(self, total: int) -> None:
         self._total = total
