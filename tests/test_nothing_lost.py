@@ -504,9 +504,13 @@ def test_a_full_disk_ends_with_one_line_and_no_partial_file(command, world, smal
         code, _, err = _cli(capsys, "run", inp / "cohort", "-o", out, "--quiet")
         assert code == 0, err
     if command == "run":  # a changed input is redone on a full disk: recorded failed, exit 3
-        _user_tiff(roi, _stack(11))
+        noise = np.random.default_rng(11).uniform(0, 100, (3, 40, 40)).astype(np.float32)
+        _user_tiff(roi, noise)  # 19 KB that no compressor packs into the 8 KB left
     before = _snapshot(inp)
     _fill(small_disk)
+    if command == "run":  # room for a ledger record and log lines, none for a washed stack
+        filler = small_disk / "filler"
+        os.truncate(filler, filler.stat().st_size - 8192)
     target = {"wash": small_disk / "w.ome.tiff", "report": small_disk / "again.html",
               "recipe": small_disk / "r.toml", "spill": small_disk / "s.csv", "run": small_disk / "run"}[command]
     args = {"wash": ["wash", roi, "-o", target], "report": ["report", small_disk / "run", "-o", target],
