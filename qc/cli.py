@@ -7,12 +7,13 @@ stderr, no traceback); 3 a run finished but some ROIs failed; 1 anything else.
 from __future__ import annotations
 
 import argparse
+import errno
 import json
 import os
 import sys
 from pathlib import Path
 
-from .errors import InputError
+from .errors import InputError, OutputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_SOME_FAILED = 0, 1, 2, 3
 
@@ -64,7 +65,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = commands.add_parser("wash", help="wash one ROI")
     p.add_argument("roi", type=Path)
-    p.add_argument("-o", "--output", type=Path, required=True,
+    p.add_argument("-o", "--output", required=True,
                    help="washed file (.ome.tiff or .ome.zarr) or a folder to write <roi>.ome.tiff into")
     _wash_options(p)
     p.set_defaults(handler=_wash)
@@ -75,12 +76,14 @@ def build_parser() -> argparse.ArgumentParser:
     _wash_options(p)
     p.add_argument("--workers", type=int, help="start a local dask.distributed cluster of N workers")
     p.add_argument("--scheduler", help="join a running dask.distributed scheduler (tcp://host:port)")
+    p.add_argument("--connect-timeout", type=float, default=5.0, metavar="SECONDS",
+                   help="how long to try reaching --scheduler before giving up (default 5)")
     p.add_argument("--quiet", action="store_true", help="no progress on the terminal (run.log still written)")
     p.set_defaults(handler=_run)
 
     p = commands.add_parser("report", help="(re)write the HTML report of a run folder")
     p.add_argument("run_dir", type=Path)
-    p.add_argument("-o", "--output", type=Path, help="report file (default RUN_DIR/report.html)")
+    p.add_argument("-o", "--output", help="report file (.html) or folder (default RUN_DIR/report.html)")
     p.set_defaults(handler=_report)
 
     p = commands.add_parser("demo", help="the main job on the demo cohort: spillover, run, report")
@@ -124,6 +127,9 @@ def main(argv: list[str] | None = None) -> int:
     except InputError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_INPUT
+    except OutputError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return EXIT_INTERNAL
     except KeyboardInterrupt:
         print("error: interrupted", file=sys.stderr)
         return 130
@@ -132,6 +138,10 @@ def main(argv: list[str] | None = None) -> int:
     except Exception as exc:  # report, without a traceback unless asked for
         if os.environ.get("PLEXWASH_DEBUG"):
             raise
+        if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+            where = exc.filename or getattr(args, "output", None) or "output"
+            print(f"error: {where}: no space left on device", file=sys.stderr)
+            return EXIT_INTERNAL
         print(f"error: internal error: {exc.__class__.__name__}: {exc} "
               "(set PLEXWASH_DEBUG=1 for a traceback)", file=sys.stderr)
         return EXIT_INTERNAL
@@ -230,10 +240,10 @@ def _num(value) -> str:
 
 
 def _recipe_new(args) -> int:
-    from .io import check_output_path
+    from .files import check_output, reached_inputs
     from .recipe import default_recipe, write_recipe
 
-    out = check_output_path(args.output)
+    out = check_output(args.output, reached_inputs([args.spillover]), kind="toml")
     recipe = default_recipe()
     if args.spillover is not None:
         from .spillover import read_spillover
@@ -249,7 +259,7 @@ def _recipe_new(args) -> int:
 def _spill_controls(args) -> int:
     from .spillover import estimate_from_controls
 
-    out = _spill_output(args, [args.controls])
+    out = _spill_output(args, [args.controls, args.panel])
     matrix = estimate_from_controls(args.controls, all_pairs=args.all_pairs, panel=args.panel)
     return _write_matrix(args, out, matrix)
 
@@ -258,18 +268,22 @@ def _spill_tissue(args) -> int:
     from .io import read_roi
     from .spillover import estimate_from_tissue
 
-    out = _spill_output(args, args.rois)
+    out = _spill_output(args, [*args.rois, args.panel])
     rois = [read_roi(path, panel=args.panel) for path in args.rois]
     matrix = estimate_from_tissue(rois, all_pairs=args.all_pairs)
     return _write_matrix(args, out, matrix)
 
 
 def _spill_output(args, inputs) -> Path:
-    from .io import check_output_path
+    """Check every file a spillover estimate writes: the CSV, its interval files, the heatmap."""
+    from .files import check_output, interval_paths, reached_inputs
 
-    out = check_output_path(args.output, inputs)
+    inputs = reached_inputs(inputs)
+    out = check_output(args.output, inputs, kind="csv")
+    for extra in interval_paths(out):
+        check_output(extra, inputs, kind="csv")
     if args.heatmap is not None:
-        check_output_path(args.heatmap, inputs)
+        check_output(args.heatmap, inputs, kind="png")
     return out
 
 
@@ -290,27 +304,30 @@ def _write_matrix(args, out: Path, matrix) -> int:
 def _wash(args) -> int:
     import dataclasses
 
-    from .io import ZARR_SUFFIXES, check_output_path, output_name, read_roi
+    from .files import check_output, reached_inputs
+    from .io import ZARR_SUFFIXES, output_name, read_roi
     from .wash import wash_to_file
 
     recipe = _load_recipe(args)
-    out = args.output
+    out = Path(args.output)
     name = out.name.lower()
     if name.endswith(ZARR_SUFFIXES):
         recipe = dataclasses.replace(recipe, output=dataclasses.replace(recipe.output, format="ome-zarr"))
     elif name.endswith((".tif", ".tiff")):
         recipe = dataclasses.replace(recipe, output=dataclasses.replace(recipe.output, format="ome-tiff"))
-    elif out.is_dir() or str(args.output).endswith("/"):
+    elif out.is_dir() or args.output.endswith(("/", os.sep)):
         out = out / output_name(_roi_stem(args.roi), recipe.output)
     else:
         from .errors import InputError
 
         raise InputError(out, "output must end in .ome.tiff or .ome.zarr, or be a folder")
-    check_output_path(out, [args.roi])
+    check_output(out, reached_inputs([args.roi, args.recipe, recipe.spillover_path(), args.spillover,
+                                      args.panel]), kind="stack")
     from .run import bound_heap
 
     bound_heap()  # as a run does: threads share one malloc arena
     roi = read_roi(args.roi, panel=args.panel)
+    recipe.check_size(roi)
     result = wash_to_file(roi, out, recipe, spillover=args.spillover)
     print(f"washed {roi.name} -> {out} in {result['seconds']:.1f} s")
     for note in result["notes"]:
@@ -335,7 +352,7 @@ def _run(args) -> int:
 
     summary = run_cohort(args.cohort, args.output, recipe=args.recipe, spillover=args.spillover,
                          panel=args.panel, workers=args.workers, scheduler=args.scheduler,
-                         progress=not args.quiet)
+                         connect_timeout=args.connect_timeout, progress=not args.quiet)
     _print_summary(summary)
     return summary.exit_code
 
@@ -348,12 +365,21 @@ def _print_summary(summary) -> None:
     print(f"washed stacks, ledger.jsonl and quality.csv in {summary.out_dir}")
     if summary.report is not None:
         print(f"report: {summary.report}")
+    if summary.error:
+        print(f"error: {summary.error}", file=sys.stderr)
 
 
 def _report(args) -> int:
+    from .files import check_output, reached_inputs
     from .report import write_report
+    from .run import LEDGER, REPORT
 
-    path = write_report(args.run_dir, output=args.output)
+    output = Path(args.output) if args.output is not None else args.run_dir / REPORT
+    if args.output is not None and (output.is_dir() or args.output.endswith(("/", os.sep))):
+        output = output / REPORT
+    inputs = [p for p in reached_inputs([args.run_dir]) if p != args.run_dir]
+    check_output(output, [args.run_dir / LEDGER, *inputs], kind="html")
+    path = write_report(args.run_dir, output=output)
     print(f"wrote {path}")
     return EXIT_OK
 

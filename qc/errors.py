@@ -28,3 +28,23 @@ class InputError(ValueError):
         self.path = str(path)
         self.problem = " ".join(str(problem).split())
         super().__init__(f"{self.path}: {self.problem}")
+
+
+class OutputError(Exception):
+    """An output could not be written (a full disk): the CLI prints ``error: <file>: <problem>``.
+
+    Not bad input, so the exit status is 1; the file named is the one being written.
+
+    Examples
+    --------
+    >>> str(OutputError("out/report.html", "no space left on device"))
+    'out/report.html: no space left on device'
+    """
+
+    def __init__(self, path: str | Path, problem: str):
+        self.path = str(path)
+        self.problem = " ".join(str(problem).split())
+        super().__init__(f"{self.path}: {self.problem}")
+
+    def __str__(self) -> str:
+        return f"{self.path}: {self.problem}"

@@ -12,10 +12,7 @@ import dataclasses
 import hashlib
 import json
 import logging
-import os
-import shutil
 import struct
-import tempfile
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -23,7 +20,9 @@ from pathlib import Path
 import numpy as np
 
 from ._arrays import is_dask
+from ._version import __version__
 from .errors import InputError
+from .files import remove_path, temporary_path, write_atomic
 from .settings import setting
 
 #: Stacks bigger than this are read lazily (dask) instead of into memory.
@@ -145,6 +144,8 @@ def list_cohort(folder: str | Path) -> list[Path]:
         When the folder does not exist or holds no ROI.
     """
     folder = Path(folder)
+    if folder.is_file():
+        raise InputError(folder, "is a file; give the folder that holds the cohort's ROIs")
     if not folder.is_dir():
         raise InputError(folder, "cohort folder not found")
     rois = sorted(p for p in folder.iterdir() if is_roi_path(p))
@@ -274,8 +275,9 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     Raises
     ------
     InputError
-        Missing, empty, unreadable or truncated file; a 2-D image or unknown axes;
-        duplicate channel names; panel not matching; NaN or Inf pixels.
+        Missing, empty, unreadable or truncated file; unknown axes; metadata claiming
+        more pixels than the file holds; duplicate channel names; panel not matching;
+        NaN, Inf or negative pixels. A single-channel image reads as a 1 x Y x X stack.
 
     Examples
     --------
@@ -319,21 +321,36 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
         array = data if isinstance(data, da.Array) else da.from_zarr(data)
     else:
         array = np.asarray(data[...])
-    _refuse_non_finite(path, array)
+    _refuse_bad_values(path, array)
     return Roi(array, tuple(channels), path, tuple(labels), tuple(use), pixel_size)
 
 
-def _refuse_non_finite(path: Path, array) -> None:
-    if np.dtype(array.dtype).kind != "f":
+def _refuse_bad_values(path: Path, array) -> None:
+    """Refuse NaN / Inf and negative pixels, counted in one pass.
+
+    Pixels are counts (ions, photons): a negative value is an offset or a signed
+    conversion, and every fraction of signal removed would then be meaningless. The
+    user subtracts or clips it knowingly before cleaning.
+    """
+    kind = np.dtype(array.dtype).kind
+    if kind not in "fi":
         return
     if isinstance(array, np.ndarray):
-        bad = int(array.size - np.count_nonzero(np.isfinite(array)))
+        finite = np.isfinite(array) if kind == "f" else True
+        bad = int(array.size - np.count_nonzero(finite)) if kind == "f" else 0
+        negative = int(np.count_nonzero(array < 0))
     else:
         import dask.array as da
 
-        bad = int((~da.isfinite(array)).sum().compute())
+        bad_lazy = (~da.isfinite(array)).sum() if kind == "f" else 0
+        bad, negative = (int(v) for v in da.compute(bad_lazy, (array < 0).sum()))
     if bad:
         raise InputError(path, f"{bad} pixel(s) are NaN or Inf; refusing to clean non-finite data")
+    if negative:
+        total = int(np.prod(array.shape))
+        raise InputError(path, f"{negative} of {total} pixels ({100 * negative / total:.3g} %) are "
+                         "negative; pixel values are counts and cannot be below 0 (subtract the "
+                         "offset or clip to 0 first)")
 
 
 def _open_tiff(path: Path, *, has_panel: bool):
@@ -347,7 +364,12 @@ def _open_tiff(path: Path, *, has_panel: bool):
     with _TiffWarnings() as warnings:
         try:
             tif = tifffile.TiffFile(path)
+            if tif.is_ome:
+                _refuse_absurd_ome(path, tif)
             series = tif.series[0] if tif.series else None
+        except InputError:
+            tif.close()
+            raise
         except (tifffile.TiffFileError, ValueError, OSError, struct.error, IndexError) as exc:
             if _has_tiff_header(path):
                 raise InputError(path, f"file is truncated or damaged ({_short(exc)})") from None
@@ -374,10 +396,12 @@ def _open_tiff(path: Path, *, has_panel: bool):
 
             lazy = da.from_zarr(data)
             data = lazy.reshape(tuple(shape[i] for i in keep))
-        if len(keep) == 2:
-            raise InputError(path, "2-D image: expected a multi-channel C x Y x X stack")
-        if len(keep) == 3 and channels is not None and len(channels) == 0:
+        if channels is not None and len(channels) == 0:
             channels = None
+        if len(keep) == 2:  # one channel: a C x Y x X stack with C = 1
+            data = _one_channel(data)
+        if channels is None and not has_panel:
+            raise InputError(path, "OME-XML names no channels; give its panel (--panel panel.csv)")
         return data, channels, pixel_size
     except InputError:
         tif.close()
@@ -385,6 +409,67 @@ def _open_tiff(path: Path, *, has_panel: bool):
     except Exception as exc:  # tifffile raises many types on damaged files
         tif.close()
         raise InputError(path, f"cannot read TIFF ({_short(exc)})") from None
+
+
+def _refuse_absurd_ome(path: Path, tif) -> None:
+    """Refuse OME-XML that claims more pixels than the file holds, before anything is allocated.
+
+    Every plane of an OME-TIFF is one page of the main chain, of the size ``SizeX`` x
+    ``SizeY`` (OME-TIFF specification); a claim beyond the pages would make the reader
+    allocate for data that is not there.
+    """
+    try:
+        root = ET.fromstring(tif.ome_metadata or "")
+    except ET.ParseError:
+        return  # reported with the channel names
+    first = tif.pages.first
+    planes_held = len(tif.pages)
+    planes_claimed = 0
+    for pixels in (el for el in root.iter() if el.tag.endswith("}Pixels") or el.tag == "Pixels"):
+        try:
+            sizes = {k: int(pixels.get(f"Size{k}", "1")) for k in "XYCZT"}
+        except ValueError:
+            raise InputError(path, "OME-XML Pixels sizes are not whole numbers") from None
+        if min(sizes.values()) < 1:
+            raise InputError(path, f"OME-XML claims an empty image ({_sizes(sizes)})")
+        samples = int(getattr(first, "samplesperpixel", 1) or 1)
+        planes_claimed += sizes["C"] * sizes["Z"] * sizes["T"] // max(1, samples)
+        if planes_claimed == sizes["C"] * sizes["Z"] * sizes["T"] // max(1, samples) and (
+                sizes["X"] != int(first.imagewidth) or sizes["Y"] != int(first.imagelength)):
+            raise InputError(path, f"OME-XML claims {_sizes(sizes)} but the file's images are "
+                             f"{first.imagewidth} x {first.imagelength} px; refusing the damaged metadata")
+    if planes_claimed > planes_held:
+        raise InputError(path, f"OME-XML claims {planes_claimed} image planes but the file holds "
+                         f"{planes_held}; refusing the damaged metadata")
+
+
+def _sizes(sizes: dict) -> str:
+    return f"{sizes['C']} channel(s) of {sizes['X']} x {sizes['Y']} px"
+
+
+#: A stack that claims more than this many bytes, and more than ``ABSURD_RATIO`` times
+#: the bytes it stores, is refused as damaged metadata (no compressor packs real
+#: images that tightly; common practice).
+ABSURD_BYTES, ABSURD_RATIO = 16 * 2**30, 10_000
+
+
+def _refuse_absurd_zarr(path: Path, array) -> None:
+    claimed = int(np.prod([int(n) for n in array.shape], dtype=object)) * np.dtype(array.dtype).itemsize
+    if claimed <= ABSURD_BYTES:
+        return
+    stored = sum(f.stat().st_size for f in path.rglob("*") if f.is_file())
+    if claimed > ABSURD_RATIO * stored:
+        shape = " x ".join(str(int(n)) for n in array.shape)
+        raise InputError(path, f"metadata claims a {shape} array ({claimed / 2**30:.3g} GiB) but the "
+                         f"folder holds {stored} bytes; refusing the damaged metadata")
+
+
+def _one_channel(data):
+    """A (Y, X) array (zarr or dask) as a lazy (1, Y, X) stack."""
+    import dask.array as da
+
+    lazy = data if is_dask(data) else da.from_zarr(data)
+    return lazy[None]
 
 
 def _has_tiff_header(path: Path) -> bool:
@@ -501,16 +586,17 @@ def _open_zarr(path: Path):
         array = group[datasets[0]["path"]]
     except Exception:
         raise InputError(path, f"OME-Zarr dataset {datasets[0].get('path')!r} missing") from None
+    _refuse_absurd_zarr(path, array)
     if not axes:
         axes = ["c", "y", "x"][-array.ndim :]
     keep = _squeeze_axes(path, "".join(a.upper() for a in axes), tuple(array.shape))
-    if len(keep) == 2:
-        raise InputError(path, "2-D image: expected a multi-channel C x Y x X stack")
     data = array
     if keep != tuple(range(array.ndim)):
         import dask.array as da
 
         data = da.from_zarr(array).reshape(tuple(array.shape[i] for i in keep))
+    if len(keep) == 2:  # one channel: a C x Y x X stack with C = 1
+        data = _one_channel(data)
     channels = [c.get("label", "") for c in meta.get("omero", {}).get("channels", [])]
     if not channels:
         raise InputError(path, "OME-Zarr has no channel labels (omero.channels[].label)")
@@ -524,77 +610,6 @@ def _open_zarr(path: Path):
 
 
 # --------------------------------------------------------------------------- writing
-
-
-def check_output_path(out: str | Path, inputs: Sequence[str | Path] = ()) -> Path:
-    """Refuse an output that would overwrite an input or cannot be written.
-
-    Returns the output path; creates nothing.
-    """
-    out = Path(out)
-    for item in inputs:
-        item = Path(item)
-        if item.exists() and out.exists() and os.path.samefile(out, item):
-            raise InputError(out, "output path is the input; refusing to overwrite raw data")
-        if os.path.abspath(out) == os.path.abspath(item):
-            raise InputError(out, "output path is the input; refusing to overwrite raw data")
-    parent = out.parent if str(out.parent) else Path(".")
-    existing = parent
-    while not existing.exists() and existing != existing.parent:
-        existing = existing.parent
-    if not existing.is_dir():
-        raise InputError(out, f"output folder {existing} is not a folder")
-    try:  # os.access says yes to root even where writing fails: really try
-        fd, probe = tempfile.mkstemp(prefix=".plexwash-probe-", dir=existing)
-    except OSError as exc:
-        raise InputError(out, f"output folder {existing} is not writable ({exc.strerror})") from None
-    os.close(fd)
-    os.unlink(probe)
-    return out
-
-
-def _temporary_sibling(path: Path) -> Path:
-    return path.with_name(f".{path.name}.partial-{os.getpid()}")
-
-
-def _replace(tmp: Path, final: Path) -> None:
-    """Move a finished temporary file or folder onto its final name."""
-    if tmp.is_dir():
-        if final.exists():
-            old = final.with_name(f".{final.name}.old-{os.getpid()}")
-            os.replace(final, old)
-            os.replace(tmp, final)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, final)
-    else:
-        os.replace(tmp, final)
-    _fsync_dir(final.parent)
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
-
-
-def write_text_atomic(path: str | Path, text: str) -> None:
-    """Write a small text file under a temporary name, fsync it, then rename it."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = _temporary_sibling(path)
-    with open(tmp, "w", encoding="utf-8") as fh:
-        fh.write(text)
-        fh.flush()
-        os.fsync(fh.fileno())
-    _replace(tmp, path)
 
 
 def write_stack(path, data, channels, *, pixel_size=None, settings=None) -> Path:
@@ -658,38 +673,38 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> P
             PhysicalSizeXUnit="µm",
         )
     compression = None if settings.compression == "none" else settings.compression
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = _temporary_sibling(path)
-    spill_dir = None
-    try:
-        kwargs = {"shape": tuple(data.shape), "dtype": np.dtype(data.dtype)}
-        if is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
-            spill_dir = Path(tempfile.mkdtemp(prefix=f".{path.name}.spill-", dir=path.parent))
-            content = _tiles(_spill_to_zarr(data, spill_dir), tile)
-        elif is_dask(data) or isinstance(data, np.ndarray):
-            content, kwargs = np.asarray(data), {}
-        else:  # an array store: read band by band
-            content = _tiles(data, tile)
-        tifffile.imwrite(
-            tmp,
-            content,
-            ome=True,
-            photometric="minisblack",
-            tile=(tile, tile),
-            compression=compression,
-            metadata=metadata,
-            buffersize=WRITE_BUFFER_BYTES,
-            **kwargs,
-        )
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
-        _replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-        if spill_dir is not None:
-            shutil.rmtree(spill_dir, ignore_errors=True)
-    return path
+
+    def build(tmp: Path) -> None:
+        spill_dir = None
+        try:
+            kwargs = {"shape": tuple(data.shape), "dtype": np.dtype(data.dtype)}
+            if is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
+                spill_dir = temporary_path(path, "spill")
+                spill_dir.mkdir()
+                content = _tiles(_spill_to_zarr(data, spill_dir), tile)
+            elif is_dask(data) or isinstance(data, np.ndarray):
+                content, kwargs = np.asarray(data), {}
+            else:  # an array store: read band by band
+                content = _tiles(data, tile)
+            tifffile.imwrite(
+                tmp,
+                content,
+                ome=True,
+                photometric="minisblack",
+                tile=(tile, tile),
+                compression=compression,
+                metadata=metadata,
+                software=f"plexwash {__version__}",
+                buffersize=WRITE_BUFFER_BYTES,
+                **kwargs,
+            )
+        finally:
+            if spill_dir is not None:
+                remove_path(spill_dir)
+
+    return write_atomic(path, build)
+
+
 
 
 def _round_up16(n: int) -> int:
@@ -760,11 +775,8 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None) -> P
     channels = list(channels)
     _check_stack_shape(path, data, channels)
     tile = settings.tile
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = _temporary_sibling(path)
-    if tmp.exists():
-        shutil.rmtree(tmp)
-    try:
+
+    def build(tmp: Path) -> None:
         group = zarr.open_group(str(tmp), mode="w", zarr_format=3)
         compressors = None if settings.compression == "none" else [ZstdCodec(level=3)]
         if settings.compression == "zlib":
@@ -779,21 +791,20 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None) -> P
             compressors=compressors,
             dimension_names=["c", "y", "x"],
         )
-        if isinstance(data, np.ndarray):
-            array[...] = data
+        stack = data
+        if isinstance(stack, np.ndarray):
+            array[...] = stack
         else:
-            if not is_dask(data):  # an array store: read in bands of whole rows
+            if not is_dask(stack):  # an array store: read in bands of whole rows
                 import dask.array as da
 
-                data = da.from_array(data, chunks=(1, array.chunks[1], data.shape[2]),
-                                     lock=False, asarray=True, fancy=False)
-            _store(data.rechunk(array.chunks), array)
+                stack = da.from_array(stack, chunks=(1, array.chunks[1], stack.shape[2]),
+                                      lock=False, asarray=True, fancy=False)
+            _store(stack.rechunk(array.chunks), array)
         group.attrs["ome"] = ngff_metadata(path.name, channels, data, pixel_size)
-        _replace(tmp, path)
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
-    return path
+        group.attrs["plexwash"] = {"version": __version__}
+
+    return write_atomic(path, build)
 
 
 def ngff_metadata(name: str, channels: Sequence[str], data, pixel_size=None) -> dict:

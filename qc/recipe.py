@@ -109,6 +109,22 @@ class Recipe:
                     f"[{section}.channels] names channel(s) not in {Path(roi).name}: {', '.join(unknown)}",
                 )
 
+    def check_size(self, roi) -> None:
+        """Refuse an ROI too small for the cleaning this recipe asks for, naming its file.
+
+        Hot pixels compare a pixel with its 8 neighbours (at least 3 x 3 pixels); speckle
+        counts neighbours in a (2 radius + 1)-pixel window that must fit in the image.
+        """
+        height, width = int(roi.shape[-2]), int(roi.shape[-1])
+        if height < 3 or width < 3:
+            raise InputError(roi.path, f"image is {height} x {width} px; cleaning needs at least 3 x 3")
+        used = [c for c, u in zip(roi.channels, roi.use, strict=True) if u]
+        sides = [2 * s.radius + 1 for s in self.for_channels("speckle", used)
+                 if getattr(s, "enabled", True)] if getattr(self.speckle, "enabled", True) else []
+        if sides and max(sides) > min(height, width):
+            raise InputError(roi.path, f"image is {height} x {width} px, smaller than the speckle window "
+                             f"of {max(sides)} px (speckle.radius in the recipe); lower it or turn speckle off")
+
     def spillover_path(self) -> Path | None:
         """The spillover CSV named by ``[compensation] spillover``, resolved against the recipe."""
         name = getattr(self.compensation, "spillover", "")
@@ -296,9 +312,9 @@ def _render(recipe: Recipe) -> str:
 
 def write_recipe(path: str | Path, recipe: Recipe | None = None) -> Path:
     """Write a recipe (the commented default when ``recipe`` is None), atomically."""
-    from .io import write_text_atomic
+    from .files import write_atomic
 
     recipe = recipe or default_recipe()
     path = Path(path)
-    write_text_atomic(path, recipe.to_toml())
+    write_atomic(path, recipe.to_toml())
     return path

@@ -129,7 +129,7 @@ def write_report(out_dir, *, output=None, thumbnail_rois: int = THUMBNAIL_ROIS) 
     True
     """
     from .errors import InputError
-    from .io import write_text_atomic
+    from .files import write_atomic
     from .run import LEDGER, REPORT
 
     out_dir = Path(out_dir)
@@ -138,7 +138,7 @@ def write_report(out_dir, *, output=None, thumbnail_rois: int = THUMBNAIL_ROIS) 
     context = _gather(out_dir)
     page = _render(context, thumbnail_rois=thumbnail_rois)
     target = Path(output) if output is not None else out_dir / REPORT
-    write_text_atomic(target, page)
+    write_atomic(target, page)
     return target
 
 
@@ -203,6 +203,7 @@ def _render(ctx: dict, *, thumbnail_rois: int) -> str:
     parts = [
         "<!DOCTYPE html>",
         '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="generator" content="plexwash">',
         '<meta name="viewport" content="width=device-width, initial-scale=1">',
         f"<title>plexwash report: {_e(ctx['out_dir'].name)}</title>",
         f"<style>{_CSS}</style></head><body>",

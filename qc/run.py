@@ -52,10 +52,8 @@ import contextlib
 import dataclasses
 import datetime as _dt
 import fcntl
-import json
 import math
 import os
-import shutil
 import signal
 import socket
 import sys
@@ -65,9 +63,21 @@ import traceback
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 
-from .errors import InputError
+from ._version import __version__
+from .errors import InputError, OutputError
+from .files import (
+    check_output_folder,
+    interval_paths,
+    mark_written,
+    output_error,
+    reached_inputs,
+    remove_path,
+    sweep_leftovers,
+    temporary_path,
+    write_atomic,
+)
+from .ledger import LEDGER, Ledger, json_ready, latest_records, read_ledger, repair_ledger
 
-LEDGER = "ledger.jsonl"
 QUALITY = "quality.csv"
 REPORT = "report.html"
 RECIPE = "recipe.toml"
@@ -76,10 +86,7 @@ PANEL_COPY = "panel.csv"
 RUN_LOG = "run.log"
 _LOCK = ".plexwash-run.lock"
 
-EXIT_OK, EXIT_SOME_FAILED = 0, 3
-#: Name fragments of the temporary files and folders that the writers of
-#: :mod:`plexwash.qc.io` (and this module) leave behind when a process is killed.
-_TEMPORARY_MARKERS = (".partial-", ".spill-", ".old-", ".measure-", ".plexwash-probe-")
+EXIT_OK, EXIT_ERROR, EXIT_SOME_FAILED = 0, 1, 3
 #: Quality-table columns written first, in this order; the others follow as measured.
 QUALITY_FIRST_COLUMNS = ("roi", "channel", "label", "stage", "sbr", "snr", "flags", "sbr_modified_z")
 #: Cohort outliers: modified z-score of log(SBR) per channel and stage, |M| > 3.5
@@ -115,6 +122,7 @@ class RunSummary:
     failed_rois: tuple[str, ...] = ()
     seconds: float = 0.0
     report: Path | None = None
+    error: str | None = None
 
     @property
     def total(self) -> int:
@@ -122,15 +130,17 @@ class RunSummary:
 
     @property
     def exit_code(self) -> int:
-        """0 when every ROI is done, 3 when some failed (the CLI's exit status)."""
-        return EXIT_SOME_FAILED if self.failed else EXIT_OK
+        """0 when every ROI is done, 3 when some failed, 1 when only the closing files failed."""
+        if self.failed:
+            return EXIT_SOME_FAILED
+        return EXIT_ERROR if self.error else EXIT_OK
 
 
 # --------------------------------------------------------------------------- the run
 
 
 def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, workers=None,
-               scheduler=None, progress=True, cancel=None) -> RunSummary:
+               scheduler=None, connect_timeout=5.0, progress=True, cancel=None) -> RunSummary:
     """Wash every ROI of a cohort folder into a run folder, resuming an earlier run.
 
     Parameters
@@ -148,7 +158,10 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
     workers : int, optional
         Start a local cluster of this many worker processes.
     scheduler : str, optional
-        Address of a running dask scheduler to use (``tcp://host:port``).
+        Address of a running dask scheduler to use (``tcp://host:port``). It is reached
+        before anything is written: an unreachable one leaves nothing behind.
+    connect_timeout : float
+        Seconds to try reaching ``scheduler`` before giving up.
     progress : bool
         Show progress on stderr (a bar on a terminal, timestamped lines otherwise).
         ``run.log`` is always written.
@@ -188,13 +201,26 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
         raise InputError("--workers", f"must be a whole number >= 1, got {workers!r}")
     inputs = _check_inputs(cohort_dir, out_dir, recipe=recipe, spillover=spillover, panel=panel)
     out = inputs["out_dir"]
-    with _run_lock(out), _RunLog(out / RUN_LOG, progress=progress) as log, _interrupts() as stop:
-        plan = _write_run_files(inputs)
-        removed = sweep_temporary(out)
+    client = _connect(scheduler, connect_timeout) if scheduler is not None else None
+    with contextlib.ExitStack() as stack:
+        if client is not None:
+            stack.callback(client.close)
+        stack.enter_context(_run_lock(out))
+        return _run_locked(inputs, out, started=started, workers=workers, client=client,
+                           progress=progress, cancel=cancel)
+
+
+def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel) -> RunSummary:
+    """The run, once its folder is locked (see :func:`run_cohort`)."""
+    with _RunLog(out / RUN_LOG, progress=progress) as log, _interrupts() as stop:
+        removed = sweep_leftovers(out)
         if removed:
             log.line(f"removed {len(removed)} leftover temporary file(s) of an interrupted run")
+        if repair_ledger(out / LEDGER):
+            log.line(f"removed the torn last line of {LEDGER} (a run was killed while writing it)")
+        plan = _write_run_files(inputs)
         jobs, skipped = _plan_jobs(plan, log)
-        log.line(f"plexwash {_version()} run of {plan.cohort_dir} into {out}: {len(plan.rois)} ROI(s), "
+        log.line(f"plexwash {__version__} run of {plan.cohort_dir} into {out}: {len(plan.rois)} ROI(s), "
                  f"{len(skipped)} already done, {len(jobs)} to wash"
                  + (f" (recipe {plan.recipe_sha256[:12]})" if plan.recipe_sha256 else ""))
         ledger = Ledger(out / LEDGER)
@@ -203,9 +229,12 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
         done = 0
         log.start(len(jobs))
         try:
-            results = contextlib.closing(_execute(jobs, workers=workers, scheduler=scheduler, log=log))
+            results = contextlib.closing(_execute(jobs, workers=workers, client=client, log=log))
+            by_name = {job["roi"]: job for job in jobs}
             with results as records:
                 for record in records:
+                    if record["status"] != "done":
+                        _drop_stale_output(out, by_name.get(record["roi"]), record, log)
                     ledger.append(record)
                     if record["status"] == "done":
                         done += 1
@@ -220,21 +249,54 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
             # are removed, so every stack in the folder is one the ledger vouches for
             for job in jobs:
                 if job["output"] and job["roi"] not in recorded:
-                    _remove(out / job["output"])
-            sweep_temporary(out)
+                    remove_path(out / job["output"])
+            sweep_leftovers(out)
             log.line("interrupted: stopped; ROIs in flight were not recorded and will be redone")
             raise
         finally:
             log.stop()
-        write_quality_table(out)
-        from .report import write_report
+        report = error = None
+        try:
+            write_quality_table(out)
+            from .report import write_report
 
-        report = write_report(out)
+            report = write_report(out)
+        except OutputError as exc:  # a full disk: the ROIs recorded stay recorded
+            error = str(exc)
+            log.line(f"error: {error}")
+        error = error or log.error
         seconds = time.perf_counter() - started
         log.line(f"finished in {seconds:.1f} s: {done} done, {len(skipped)} skipped, "
                  f"{len(failed)} failed" + (f" ({', '.join(failed)})" if failed else "")
-                 + f"; report {report}")
-    return RunSummary(out, done, len(skipped), len(failed), tuple(failed), seconds, report)
+                 + (f"; report {report}" if report else ""))
+    return RunSummary(out, done, len(skipped), len(failed), tuple(failed), seconds, report, error)
+
+
+def _drop_stale_output(out: Path, job, record: dict, log) -> None:
+    """A failed redo leaves no earlier washed stack under the ROI's output name; the record says so."""
+    if not job or not job.get("output"):
+        return
+    stale = out / job["output"]
+    if os.path.lexists(stale):
+        remove_path(stale)
+        record["stale_output_removed"] = job["output"]
+        log.line(f"{record['roi']}: removed the earlier {job['output']}: its redo failed, "
+                 "so it no longer matches the input or recipe")
+
+
+def _connect(scheduler: str, timeout: float):
+    """A client of a running dask scheduler, or InputError when it cannot be reached in time."""
+    try:
+        from distributed import Client
+    except ImportError:  # pragma: no cover - the cluster extra is not installed
+        raise InputError("--scheduler", "needs dask.distributed (pip install 'plexwash[cluster]')") from None
+    if not timeout > 0:
+        raise InputError("--connect-timeout", f"must be a positive number of seconds, got {timeout!r}")
+    try:
+        return Client(scheduler, timeout=timeout)
+    except (OSError, TimeoutError, ValueError, TypeError) as exc:
+        raise InputError(scheduler, f"cannot reach the dask scheduler in {timeout:g} s "
+                         f"({' '.join(str(exc).split()) or exc.__class__.__name__})") from None
 
 
 #: The demo data of a source checkout: ``example_stack/`` beside the ``qc`` folder.
@@ -294,7 +356,7 @@ class _Plan:
 
 def _check_inputs(cohort_dir, out_dir, *, recipe, spillover, panel) -> dict:
     """Read and check everything a run needs, writing nothing."""
-    from .io import check_output_path, list_cohort, read_panel, roi_stem
+    from .io import list_cohort, output_name, read_panel, roi_stem
     from .recipe import Recipe, load_recipe
 
     cohort_dir = Path(cohort_dir).absolute()
@@ -302,12 +364,12 @@ def _check_inputs(cohort_dir, out_dir, *, recipe, spillover, panel) -> dict:
     inputs = list_cohort(cohort_dir)
     if out.exists() and not out.is_dir():
         raise InputError(out, "output folder is a file")
-    if out == cohort_dir or (out.exists() and os.path.samefile(out, cohort_dir)):
-        raise InputError(out, "output folder is the cohort folder; refusing to overwrite raw data")
-    check_output_path(out / LEDGER)
-
+    given = [cohort_dir, recipe if isinstance(recipe, (str, Path)) else None,
+             spillover if isinstance(spillover, (str, Path)) else None,
+             panel if isinstance(panel, (str, Path)) else None]
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe)
+    given.append(recipe.spillover_path())
     names: dict[str, Path] = {}
     for path in inputs:
         name = roi_stem(path)
@@ -322,15 +384,35 @@ def _check_inputs(cohort_dir, out_dir, *, recipe, spillover, panel) -> dict:
     if panel is not None:
         panel_obj = panel if not isinstance(panel, (str, Path)) else read_panel(panel)
         panel_text = _panel_csv(panel_obj)
+    check_run_folder(out, reached_inputs(given), [output_name(n, recipe.output) for n in names])
     return {"cohort_dir": cohort_dir, "out_dir": out, "rois": sorted(names.items()),
             "recipe": recipe, "matrix": _spillover_matrix(spillover, recipe),
             "panel_text": panel_text}
 
 
+def check_run_folder(out: Path, inputs, roi_outputs) -> None:
+    """Refuse a run folder that would overwrite an input or a file plexwash did not write.
+
+    A folder an earlier run wrote (it holds the run lock) vouches for its log, ledger and
+    the outputs its ledger records.
+    """
+    names = [LEDGER, RUN_LOG, QUALITY, REPORT, RECIPE, SPILLOVER_COPY, PANEL_COPY,
+             *(p.name for p in interval_paths(SPILLOVER_COPY)), *roi_outputs]
+    ours: list[str] = []
+    if (out / _LOCK).is_file():
+        ours = [LEDGER, RUN_LOG, *(r["output"] for r in read_ledger(out) if r.get("output"))]
+        # the run's own hand-off copies may be given back to it (a rerun with its recipe):
+        # they are read in full before the run rewrites them from what was read
+        own = {os.path.realpath(out / n) for n in (RECIPE, SPILLOVER_COPY, PANEL_COPY)}
+        own.update(os.path.realpath(p) for p in interval_paths(out / SPILLOVER_COPY))
+        inputs = [p for p in inputs if os.path.realpath(p) not in own]
+    check_output_folder(out, inputs, names, ours=ours)
+
+
 def _write_run_files(inputs: dict) -> _Plan:
     """Write the self-contained recipe copy (and its spillover matrix and panel) of a run."""
-    from .io import sha256_path, write_text_atomic
-    from .recipe import load_recipe, write_recipe
+    from .io import sha256_path
+    from .recipe import load_recipe
 
     out, recipe, matrix, panel_text = (inputs[k] for k in ("out_dir", "recipe", "matrix", "panel_text"))
     spillover_path = panel_path = None
@@ -343,9 +425,11 @@ def _write_run_files(inputs: dict) -> _Plan:
     if panel_text is not None:
         panel_path = out / PANEL_COPY
         if not panel_path.is_file() or panel_path.read_text(encoding="utf-8") != panel_text:
-            write_text_atomic(panel_path, panel_text)
+            write_atomic(panel_path, panel_text)
     run_recipe = dataclasses.replace(recipe.replace("compensation", **changes), source=out / RECIPE)
-    write_recipe(out / RECIPE, run_recipe)
+    text = run_recipe.to_toml()
+    if not (out / RECIPE).is_file() or (out / RECIPE).read_text(encoding="utf-8") != text:
+        write_atomic(out / RECIPE, text)
     if load_recipe(out / RECIPE).sha256() != run_recipe.sha256():  # the copy must say the same
         raise RuntimeError("the written recipe does not read back identically")
     return _Plan(
@@ -428,7 +512,7 @@ def _why_redo(record: Mapping | None, job: Mapping) -> str | None:
                       ("panel_sha256", "panel"), ("output", "output format")):
         if record.get(key) != job[key]:
             return f"{what} changed"
-    if record.get("version") != _version():
+    if record.get("version") != __version__:
         return "plexwash version changed"
     if job["output"] is not None and not (Path(job["out_dir"]) / job["output"]).exists():
         return "output missing"
@@ -438,14 +522,14 @@ def _why_redo(record: Mapping | None, job: Mapping) -> str | None:
 # --------------------------------------------------------------------------- execution
 
 
-def _execute(jobs: list[dict], *, workers, scheduler, log) -> Iterable[dict]:
+def _execute(jobs: list[dict], *, workers, client, log) -> Iterable[dict]:
     """Run the jobs and yield their ledger records as they finish."""
     if not jobs:
         return
-    if workers is None and scheduler is None:
+    if workers is None and client is None:
         yield from _execute_here(jobs)
         return
-    yield from _execute_on_cluster(jobs, workers=workers, scheduler=scheduler, log=log)
+    yield from _execute_on_cluster(jobs, workers=workers, client=client, log=log)
 
 
 def _execute_here(jobs: list[dict]) -> Iterable[dict]:
@@ -469,7 +553,7 @@ def _execute_here(jobs: list[dict]) -> Iterable[dict]:
         pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _execute_on_cluster(jobs: list[dict], *, workers, scheduler, log) -> Iterable[dict]:
+def _execute_on_cluster(jobs: list[dict], *, workers, client, log) -> Iterable[dict]:
     """Whole ROIs as tasks on a dask.distributed cluster (local processes or a running one)."""
     try:
         from distributed import Client, LocalCluster, as_completed
@@ -491,12 +575,8 @@ def _execute_on_cluster(jobs: list[dict], *, workers, scheduler, log) -> Iterabl
         log.line(f"started a local cluster: {workers} worker process(es), {threads} thread(s) each")
         for job in jobs:
             job["threads"] = threads
-    else:
-        try:
-            client = Client(scheduler, timeout=30)
-        except (OSError, TimeoutError, ValueError) as exc:
-            raise InputError(scheduler, f"cannot reach the dask scheduler ({exc})") from None
-        log.line(f"joined the dask cluster at {scheduler} "
+    else:  # joined before the run folder was touched (run_cohort)
+        log.line(f"joined the dask cluster at {client.scheduler.address} "
                  f"({len(client.scheduler_info().get('workers', {}))} worker(s))")
     futures = {}
     try:
@@ -553,7 +633,7 @@ def wash_one(job: Mapping) -> dict:
             record = _wash_and_measure(job, out_dir, written)
     except BaseException as exc:
         for path in written:  # a result that is not recorded done is not left under its name
-            _remove(path)
+            remove_path(path)
         if not isinstance(exc, Exception):  # KeyboardInterrupt, SystemExit: stop the run
             raise
         return _failed_record(job, exc, seconds=time.perf_counter() - t0, started=started)
@@ -581,6 +661,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     if recipe.sha256() != job["recipe_sha256"]:
         raise InputError(job["recipe"], "recipe changed while the run was going")
     roi = read_roi(job["input"], panel=job.get("panel"))
+    recipe.check_size(roi)
     matrix = None
     if job.get("spillover"):
         from .spillover import read_spillover
@@ -592,7 +673,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     else:  # quality only: the washed stack lives under a temporary name until measured
         from .io import output_name
 
-        target = out_dir / f".{output_name(job['roi'])}.measure-{os.getpid()}"
+        target = temporary_path(out_dir / output_name(job["roi"]), "measure")
     result = wash_to_file(roi, target, recipe, spillover=matrix)
     written.append(target)
     release_memory()
@@ -604,8 +685,8 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
     release_memory()
     lap("quality")
     if job["output"] is None:
-        _remove(target)
-    stats = _json_ready(result.get("stats", {}))
+        remove_path(target)
+    stats = json_ready(result.get("stats", {}))
     removed = {step: {row["channel"]: row.get("removed_fraction") for row in rows}
                for step, rows in stats.items()}
     shape = [int(n) for n in roi.shape]
@@ -616,7 +697,7 @@ def _wash_and_measure(job: Mapping, out_dir: Path, written: list) -> dict:
         channels=list(roi.channels), labels=list(roi.labels), used=[bool(u) for u in roi.use],
         removed_fraction=removed, steps=stats, notes=list(result.get("notes", [])),
         roi_flags=roi_flags, median_sbr=_median_sbr(raw_rows, washed_rows),
-        timings=timings, quality=_json_ready(raw_rows + washed_rows))
+        timings=timings, quality=json_ready(raw_rows + washed_rows))
     return record
 
 
@@ -701,14 +782,14 @@ def _base_record(job: Mapping) -> dict:
         "roi": job["roi"], "status": None, "input": job["input"],
         "input_sha256": job.get("input_sha256"), "output": None, "output_sha256": None,
         "recipe_sha256": job["recipe_sha256"], "spillover_sha256": job.get("spillover_sha256"),
-        "panel_sha256": job.get("panel_sha256"), "version": _version(),
+        "panel_sha256": job.get("panel_sha256"), "version": __version__,
         "host": socket.gethostname(), "pid": os.getpid(),
     }
 
 
 def _failed_record(job: Mapping, exc: BaseException, *, seconds: float, started: str) -> dict:
     record = _base_record(job)
-    if isinstance(exc, InputError):
+    if isinstance(exc, (InputError, OutputError)):
         error = str(exc)
     else:
         error = f"{exc.__class__.__name__}: {exc}"
@@ -716,38 +797,6 @@ def _failed_record(job: Mapping, exc: BaseException, *, seconds: float, started:
     record.update(status="failed", error=" ".join(error.split()), seconds=round(seconds, 3),
                   started=started, finished=_now())
     return record
-
-
-def _remove(path: Path) -> None:
-    path = Path(path)
-    if path.is_dir():
-        shutil.rmtree(path, ignore_errors=True)
-    else:
-        with contextlib.suppress(FileNotFoundError):
-            path.unlink()
-
-
-def sweep_temporary(out_dir) -> list[Path]:
-    """Remove the temporary files and folders that interrupted writers left in a run folder.
-
-    Only hidden names carrying a writer's temporary marker (``.partial-``, ``.spill-``,
-    ``.old-``, ``.measure-``) are touched. Call it only while no writer is active
-    (:func:`run_cohort` holds the folder's lock).
-
-    Returns
-    -------
-    list of Path
-        What was removed.
-    """
-    out_dir = Path(out_dir)
-    removed = []
-    if not out_dir.is_dir():
-        return removed
-    for item in out_dir.iterdir():
-        if item.name.startswith(".") and any(m in item.name for m in _TEMPORARY_MARKERS):
-            _remove(item)
-            removed.append(item)
-    return removed
 
 
 @contextlib.contextmanager
@@ -794,79 +843,6 @@ def _interrupts():
             signal.signal(number, handler)
 
 
-# --------------------------------------------------------------------------- ledger
-
-
-class Ledger:
-    """Append-only ``ledger.jsonl``: one JSON object per line, each append fsynced.
-
-    A line torn by a killed process (no final newline) is closed off before the next
-    append, and readers skip it.
-    """
-
-    def __init__(self, path):
-        self.path = Path(path)
-
-    def append(self, record: Mapping) -> None:
-        line = json.dumps(_json_ready(dict(record)), ensure_ascii=True, allow_nan=False) + "\n"
-        fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
-        try:
-            if _ends_torn(self.path):
-                line = "\n" + line
-            os.write(fd, line.encode())
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-
-
-def _ends_torn(path: Path) -> bool:
-    try:
-        with open(path, "rb") as fh:
-            fh.seek(0, os.SEEK_END)
-            if fh.tell() == 0:
-                return False
-            fh.seek(-1, os.SEEK_END)
-            return fh.read(1) != b"\n"
-    except FileNotFoundError:
-        return False
-
-
-def read_ledger(out_dir) -> list[dict]:
-    """Every complete record of a run folder's ledger, in order (torn lines skipped).
-
-    Examples
-    --------
-    >>> import tempfile, pathlib
-    >>> tmp = pathlib.Path(tempfile.mkdtemp())
-    >>> Ledger(tmp / "ledger.jsonl").append({"roi": "a", "status": "done"})
-    >>> [r["roi"] for r in read_ledger(tmp)]
-    ['a']
-    """
-    path = Path(out_dir) / LEDGER
-    if not path.is_file():
-        return []
-    records = []
-    with open(path, encoding="utf-8", errors="replace") as fh:
-        for line in fh:
-            if not line.endswith("\n"):
-                break  # torn last line
-            try:
-                record = json.loads(line)
-            except json.JSONDecodeError:
-                continue
-            if isinstance(record, dict) and "roi" in record:
-                records.append(record)
-    return records
-
-
-def latest_records(records: Iterable[Mapping]) -> dict[str, dict]:
-    """The last record of each ROI (later attempts supersede earlier ones)."""
-    out: dict[str, dict] = {}
-    for record in records:
-        out[record["roi"]] = dict(record)
-    return out
-
-
 # --------------------------------------------------------------------------- quality table
 
 
@@ -906,11 +882,9 @@ def quality_table(out_dir) -> list[dict]:
 
 def write_quality_table(out_dir) -> Path:
     """Write ``quality.csv`` of a run folder from its ledger, atomically."""
-    from .io import write_text_atomic
-
     rows = quality_table(out_dir)
     path = Path(out_dir) / QUALITY
-    write_text_atomic(path, quality_csv_text(rows))
+    write_atomic(path, quality_csv_text(rows))
     return path
 
 
@@ -978,36 +952,8 @@ def _csv_cell(value) -> str:
 # --------------------------------------------------------------------------- small helpers
 
 
-def _json_ready(value):
-    """Plain JSON values: numpy numbers to Python, non-finite floats to None."""
-    import numpy as np
-
-    if isinstance(value, Mapping):
-        return {str(k): _json_ready(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json_ready(v) for v in value]
-    if isinstance(value, np.ndarray):
-        return _json_ready(value.tolist())
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        value = float(value)
-        return value if math.isfinite(value) else None
-    if isinstance(value, Path):
-        return str(value)
-    return value
-
-
 def _now() -> str:
     return _dt.datetime.now(_dt.UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")
-
-
-def _version() -> str:
-    from ._version import __version__
-
-    return __version__
 
 
 # --------------------------------------------------------------------------- progress
@@ -1020,7 +966,8 @@ class _RunLog:
         self.path = path
         self.progress = progress
         self.fancy = progress and sys.stderr.isatty()
-        self._fh = None
+        self._fd = None
+        self.error: str | None = None  # set when run.log could not be written (a full disk)
         self._bar = None
         self._task = None
         self._total = 0
@@ -1028,24 +975,44 @@ class _RunLog:
         self._t0 = time.perf_counter()
 
     def __enter__(self):
-        self._fh = open(self.path, "a", encoding="utf-8")
+        self._fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o666)
+        mark_written(self.path)
         return self
 
     def __exit__(self, *exc):
         self.stop()
-        self._fh.close()
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
         return False
 
     def line(self, text: str) -> None:
         stamped = f"{_dt.datetime.now().astimezone().isoformat(timespec='seconds')} {text}"
-        self._fh.write(stamped + "\n")
-        self._fh.flush()
+        self._append(stamped + "\n")
         if not self.progress:
             return
         if self._bar is not None:
             self._bar.console.print(text, highlight=False, markup=False)
         else:
             print(stamped, file=sys.stderr, flush=True)
+
+    def _append(self, text: str) -> None:
+        """One whole line onto run.log; on a full disk the log stops (the run goes on)."""
+        if self._fd is None:
+            return
+        size = os.fstat(self._fd).st_size
+        data = text.encode("utf-8")
+        try:
+            while data:
+                data = data[os.write(self._fd, data):]
+        except OSError as exc:
+            error = output_error(exc, self.path)
+            if not isinstance(error, OutputError):
+                raise
+            os.ftruncate(self._fd, size)
+            os.close(self._fd)
+            self._fd = None
+            self.error = str(error)
 
     def start(self, total: int) -> None:
         self._total = total

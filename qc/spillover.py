@@ -30,9 +30,7 @@ import dataclasses
 import functools
 import io
 import math
-import os
 import re
-import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -41,6 +39,7 @@ from plexwash.qc import _nnls  # absolute: one numba cache, whatever imported us
 
 from ._arrays import is_dask
 from .errors import InputError
+from .files import interval_paths, write_atomic
 
 #: Matrices whose 2-norm condition number exceeds this are refused. Compensation can
 #: amplify noise by up to the condition number; physical spillover matrices (entries of
@@ -108,19 +107,6 @@ class SpilloverMatrix:
 
 
 # ============================================================================ CSV files
-
-
-def interval_paths(path: str | Path) -> tuple[Path, Path]:
-    """The files holding the lower and upper interval bounds of a spillover CSV.
-
-    Examples
-    --------
-    >>> [p.name for p in interval_paths("runs/spill.csv")]
-    ['spill.low.csv', 'spill.high.csv']
-    """
-    path = Path(path)
-    stem = path.name[: -len(".csv")] if path.name.lower().endswith(".csv") else path.name
-    return path.with_name(stem + ".low.csv"), path.with_name(stem + ".high.csv")
 
 
 def read_spillover(path: str | Path) -> SpilloverMatrix:
@@ -250,12 +236,12 @@ def write_spillover(path: str | Path, matrix: SpilloverMatrix, *, heatmap: str |
     """
     path = Path(path)
     check_spillover(matrix, source=path)
-    _write_atomic(path, _matrix_csv_text(matrix.channels, matrix.values).encode())
+    write_atomic(path, _matrix_csv_text(matrix.channels, matrix.values).encode())
     if matrix.low is not None and matrix.high is not None:
         for bound_path, bound in zip(interval_paths(path), (matrix.low, matrix.high), strict=True):
-            _write_atomic(bound_path, _matrix_csv_text(matrix.channels, bound).encode())
+            write_atomic(bound_path, _matrix_csv_text(matrix.channels, bound).encode())
     if heatmap is not None:
-        _write_atomic(Path(heatmap), _heatmap_png(matrix))
+        write_atomic(Path(heatmap), _heatmap_png(matrix))
     return path
 
 
@@ -268,28 +254,10 @@ def _matrix_csv_text(channels: Sequence[str], values: np.ndarray) -> str:
     return buffer.getvalue()
 
 
-def _write_atomic(path: Path, data: bytes) -> None:
-    folder = path.parent if str(path.parent) else Path(".")
-    if not folder.is_dir():
-        raise InputError(path, f"output folder {folder} does not exist")
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=folder)
-    except OSError as exc:
-        raise InputError(path, f"cannot write in {folder} ({exc.strerror})") from None
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def _heatmap_png(matrix: SpilloverMatrix) -> bytes:
     import matplotlib
+
+    from ._version import __version__
 
     matplotlib.use("Agg", force=False)
     from matplotlib.figure import Figure
@@ -308,7 +276,7 @@ def _heatmap_png(matrix: SpilloverMatrix) -> bytes:
     fig.colorbar(image, ax=ax, shrink=0.8, label="%")
     fig.tight_layout()
     buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=110)
+    fig.savefig(buffer, format="png", dpi=110, metadata={"Software": f"plexwash {__version__}"})
     return buffer.getvalue()
 
 

@@ -157,7 +157,7 @@ def test_bad_inputs_give_one_line_and_write_nothing(tmp_path):
          ["bad.toml", "speckle.radius", "allowed: >= 1"]),
         (["wash", good, "-o", tmp_path / "w.ome.tiff", "--recipe", unknown],
          ["unknown.toml", "speckle.window"]),
-        (["wash", good, "-o", good], ["good.ome.tiff", "is the input"]),
+        (["wash", good, "-o", good], ["good.ome.tiff", "is an input"]),
         (["wash", good, "-o", "/proc/plexwash/w.ome.tiff"], ["not writable"]),
         (["wash", good, "-o", tmp_path / "w.ome.tiff", "--spillover", tmp_path / "nope.csv"],
          ["nope.csv"]),

@@ -14,8 +14,8 @@ import tifffile
 import zarr
 from plexwash.qc import io
 from plexwash.qc.errors import InputError
+from plexwash.qc.files import check_output
 from plexwash.qc.io import (
-    check_output_path,
     list_cohort,
     read_panel,
     read_roi,
@@ -205,10 +205,12 @@ def test_truncated_file_detected(tmp_path, small_stack, keep):
     check_error("truncated", read_roi, cut)
 
 
-def test_two_d_image_refused(tmp_path, small_stack):
+def test_one_channel_image_reads_as_a_one_channel_stack(tmp_path, small_stack):
     path = tmp_path / "flat.ome.tiff"
     tifffile.imwrite(path, small_stack[0], ome=True, photometric="minisblack", metadata={"axes": "YX"})
-    check_error("2-D image", read_roi, path)
+    roi = read_roi(path)
+    assert roi.shape == (1, *small_stack.shape[1:]) and len(roi.channels) == 1
+    np.testing.assert_array_equal(np.asarray(roi.data[0]), small_stack[0])
 
 
 def test_unknown_axes_refused(tmp_path):
@@ -272,9 +274,9 @@ def test_non_finite_pixels_refused_with_count(tmp_path, small_stack, lazy):
 
 
 def test_output_equal_to_input_refused(small_roi):
-    check_error("is the input", check_output_path, small_roi, [small_roi])
+    check_error("is an input", check_output, small_roi, [small_roi])
     other = small_roi.parent / "." / small_roi.name
-    check_error("is the input", check_output_path, other, [small_roi])
+    check_error("is an input", check_output, other, [small_roi])
 
 
 @pytest.mark.skipif(os.geteuid() == 0, reason="root can write into read-only folders")
@@ -283,19 +285,19 @@ def test_unwritable_output_folder_non_root(tmp_path):
     locked.mkdir()
     locked.chmod(stat.S_IRUSR | stat.S_IXUSR)
     try:
-        check_error("not writable", check_output_path, locked / "out.ome.tiff")
+        check_error("not writable", check_output, locked / "out.ome.tiff")
     finally:
         locked.chmod(stat.S_IRWXU)
 
 
 def test_unwritable_output_folder(tmp_path):
     # /proc refuses new files even to root (Linux procfs), so this runs everywhere.
-    check_error("not writable", check_output_path, "/proc/plexwash-out/out.ome.tiff")
+    check_error("not writable", check_output, "/proc/plexwash-out/out.ome.tiff")
 
 
 def test_output_under_a_file_refused(tmp_path, small_roi):
     # Even root cannot create a folder below a regular file: always testable.
-    check_error("is not a folder", check_output_path, small_roi / "sub" / "out.ome.tiff")
+    check_error("is not a folder", check_output, small_roi / "sub" / "out.ome.tiff")
 
 
 def test_inputs_are_never_modified(tmp_path, small_roi):

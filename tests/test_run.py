@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from plexwash.qc.errors import InputError
+from plexwash.qc.files import sweep_leftovers
 from plexwash.qc.io import read_roi
 from plexwash.qc.run import (
     LEDGER,
@@ -29,7 +30,6 @@ from plexwash.qc.run import (
     read_ledger,
     read_quality_csv,
     run_cohort,
-    sweep_temporary,
 )
 
 REQUIRED_LEDGER_KEYS = ("roi", "status", "input_sha256", "output", "output_sha256",
@@ -355,7 +355,7 @@ def test_unreadable_roi_is_recorded_and_the_others_finish(cohort, tmp_path):
 
 
 def test_bad_run_arguments_are_input_errors(cohort, tmp_path):
-    with pytest.raises(InputError, match="cohort folder"):
+    with pytest.raises(InputError, match="is an input"):
         run_cohort(cohort / "cohort", cohort / "cohort", progress=False)
     with pytest.raises(InputError, match="not found"):
         run_cohort(tmp_path / "missing", tmp_path / "out", progress=False)
@@ -401,7 +401,7 @@ def test_sweep_removes_only_temporary_names(tmp_path):
         p.write_text("x")
     spill = tmp_path / ".roi_02.ome.tiff.spill-abc"
     (spill / "stack.zarr").mkdir(parents=True)
-    assert sorted(sweep_temporary(tmp_path)) == sorted(gone + [spill])
+    assert sorted(sweep_leftovers(tmp_path)) == sorted(gone + [spill])
     assert all(p.exists() for p in keep)
 
 

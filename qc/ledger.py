@@ -1,0 +1,147 @@
+"""The run's ledger: ``ledger.jsonl``, one JSON record per line and ROI attempt.
+
+Appends are fsynced one line at a time and never leave half a record (a failed write is
+cut back); a line torn by a killed process is skipped by readers and dropped by
+:func:`repair_ledger` when the next run starts.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+
+from .files import mark_written, output_error, write_atomic
+
+LEDGER = "ledger.jsonl"
+
+
+class Ledger:
+    """Append-only ``ledger.jsonl``: one JSON object per line, each append fsynced.
+
+    A line torn by a killed process (no final newline) is closed off before the next
+    append, and readers skip it.
+    """
+
+    def __init__(self, path):
+        self.path = Path(path)
+
+    def append(self, record: Mapping) -> None:
+        line = json.dumps(json_ready(dict(record)), ensure_ascii=True, allow_nan=False) + "\n"
+        try:
+            fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o666)
+            try:
+                mark_written(self.path)
+                if _ends_torn(self.path):
+                    line = "\n" + line
+                size = os.fstat(fd).st_size
+                data = line.encode()
+                try:
+                    while data:  # a nearly full disk may take only part of the line
+                        data = data[os.write(fd, data):]
+                    os.fsync(fd)
+                except OSError:
+                    os.ftruncate(fd, size)  # no half record: the ledger stays as it was
+                    raise
+            finally:
+                os.close(fd)
+        except OSError as exc:
+            raise output_error(exc, self.path) from None
+
+
+def repair_ledger(path) -> bool:
+    """Rewrite a ledger atomically without lines that are not complete records.
+
+    A process killed while appending leaves a torn last line (tools such as ``jq`` stop
+    there); every complete record is kept, in order. Returns True when a line was dropped.
+    """
+    path = Path(path)
+    if not path.is_file():
+        return False
+    lines = path.read_bytes().splitlines(keepends=True)
+    keep = [line for line in lines if line.endswith(b"\n") and _is_record(line)]
+    if len(keep) == len(lines):
+        return False
+    write_atomic(path, b"".join(keep))
+    return True
+
+
+def _is_record(line: bytes) -> bool:
+    try:
+        record = json.loads(line)
+    except (ValueError, UnicodeDecodeError):
+        return False
+    return isinstance(record, dict) and "roi" in record
+
+
+def _ends_torn(path: Path) -> bool:
+    try:
+        with open(path, "rb") as fh:
+            fh.seek(0, os.SEEK_END)
+            if fh.tell() == 0:
+                return False
+            fh.seek(-1, os.SEEK_END)
+            return fh.read(1) != b"\n"
+    except FileNotFoundError:
+        return False
+
+
+def read_ledger(out_dir) -> list[dict]:
+    """Every complete record of a run folder's ledger, in order (torn lines skipped).
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> tmp = pathlib.Path(tempfile.mkdtemp())
+    >>> Ledger(tmp / "ledger.jsonl").append({"roi": "a", "status": "done"})
+    >>> [r["roi"] for r in read_ledger(tmp)]
+    ['a']
+    """
+    path = Path(out_dir) / LEDGER
+    if not path.is_file():
+        return []
+    records = []
+    with open(path, encoding="utf-8", errors="replace") as fh:
+        for line in fh:
+            if not line.endswith("\n"):
+                break  # torn last line
+            try:
+                record = json.loads(line)
+            except json.JSONDecodeError:
+                continue
+            if isinstance(record, dict) and "roi" in record:
+                records.append(record)
+    return records
+
+
+def latest_records(records: Iterable[Mapping]) -> dict[str, dict]:
+    """The last record of each ROI (later attempts supersede earlier ones)."""
+    out: dict[str, dict] = {}
+    for record in records:
+        out[record["roi"]] = dict(record)
+    return out
+
+
+
+def json_ready(value):
+    """Plain JSON values: numpy numbers to Python, non-finite floats to None."""
+    import numpy as np
+
+    if isinstance(value, Mapping):
+        return {str(k): json_ready(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [json_ready(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return json_ready(value.tolist())
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        value = float(value)
+        return value if math.isfinite(value) else None
+    if isinstance(value, Path):
+        return str(value)
+    return value
