@@ -90,7 +90,7 @@ _BREAKDOWN_CHILD = textwrap.dedent("""
     from plexwash.qc import io, spillover
     from plexwash.qc.recipe import default_recipe
     from plexwash.qc.report import downsample
-    from plexwash.qc.run import _measure_quality, bound_heap, release_memory
+    from plexwash.qc.run import bound_heap, measure_quality, release_memory
     from plexwash.qc.wash import wash_to_file
     bound_heap()  # as the run does
     part("imports", t)
@@ -107,7 +107,7 @@ _BREAKDOWN_CHILD = textwrap.dedent("""
     wash_to_file(roi, target, recipe, spillover=matrix)
     part("wash_to_file", t)
     t = time.perf_counter()
-    _measure_quality(roi, target, recipe, matrix, threads=2)
+    measure_quality(roi, target, recipe, matrix, threads=2)
     part("quality raw + washed", t)
     t = time.perf_counter()
     downsample(io.read_roi(target).data)

@@ -16,6 +16,8 @@ from pathlib import Path
 from .errors import InputError, OutputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_SOME_FAILED = 0, 1, 2, 3
+#: Folder for the wash's staging files instead of the output's folder (e.g. local scratch).
+STAGING_ENV = "PLEXWASH_STAGING_DIR"
 
 
 class _Parser(argparse.ArgumentParser):
@@ -328,11 +330,12 @@ def _wash(args) -> int:
     bound_heap()  # as a run does: threads share one malloc arena
     roi = read_roi(args.roi, panel=args.panel)
     recipe.check_size(roi)
-    result = wash_to_file(roi, out, recipe, spillover=args.spillover)
-    print(f"washed {roi.name} -> {out} in {result['seconds']:.1f} s")
-    for note in result["notes"]:
+    result = wash_to_file(roi, out, recipe, spillover=args.spillover,
+                          staging_dir=os.environ.get(STAGING_ENV) or None)
+    print(f"washed {roi.name} -> {out} in {result.seconds:.1f} s")
+    for note in result.notes:
         print(f"  note: {note}")
-    for step, rows in result["stats"].items():
+    for step, rows in result.stats.items():
         fractions = [r["removed_fraction"] for r in rows if r.get("ran", True)]
         if fractions:
             worst = max(rows, key=lambda r: r.get("removed_fraction", 0.0))
@@ -352,7 +355,8 @@ def _run(args) -> int:
 
     summary = run_cohort(args.cohort, args.output, recipe=args.recipe, spillover=args.spillover,
                          panel=args.panel, workers=args.workers, scheduler=args.scheduler,
-                         connect_timeout=args.connect_timeout, progress=not args.quiet)
+                         connect_timeout=args.connect_timeout, progress=not args.quiet,
+                         staging_dir=os.environ.get(STAGING_ENV) or None)
     _print_summary(summary)
     return summary.exit_code
 
@@ -387,7 +391,7 @@ def _report(args) -> int:
 def _demo(args) -> int:
     from .run import run_demo
 
-    summary = run_demo(args.out, workers=args.workers)
+    summary = run_demo(args.out, workers=args.workers, staging_dir=os.environ.get(STAGING_ENV) or None)
     _print_summary(summary)
     return summary.exit_code
 

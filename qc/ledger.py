@@ -1,5 +1,9 @@
 """The run's ledger: ``ledger.jsonl``, one JSON record per line and ROI attempt.
 
+Also the names of a run folder's files, so that the run (:mod:`plexwash.qc.run`), which
+writes them, and the report (:mod:`plexwash.qc.report`), which reads them, share them
+without importing each other.
+
 Appends are fsynced one line at a time and never leave half a record (a failed write is
 cut back); a line torn by a killed process is skipped by readers and dropped by
 :func:`repair_ledger` when the next run starts.
@@ -15,7 +19,16 @@ from pathlib import Path
 
 from .files import mark_written, output_error, write_atomic
 
+#: The files of a run folder besides the washed stacks (see :mod:`plexwash.qc.run`).
 LEDGER = "ledger.jsonl"
+QUALITY = "quality.csv"
+REPORT = "report.html"
+RECIPE = "recipe.toml"
+SPILLOVER_COPY = "spillover.csv"
+PANEL_COPY = "panel.csv"
+RUN_LOG = "run.log"
+#: Held by a run while it writes; its presence also marks a folder a run wrote.
+RUN_LOCK = ".plexwash-run.lock"
 
 
 class Ledger:

@@ -27,7 +27,8 @@ the same passes.
 Memory is a few planes of one channel per thread (16 MB for 2000 x 2000 float32),
 whatever the number of channels; disk is two float32 copies of the stack, in a hidden
 ``.NAME.spill-*`` folder beside the output that is removed when the wash ends (a run
-sweeps leftovers of a killed one), or under ``$PLEXWASH_STAGING_DIR`` when set.
+sweeps leftovers of a killed one), or in another folder given as ``staging_dir`` (the
+CLI passes ``$PLEXWASH_STAGING_DIR``).
 
 An ROI held in memory (numpy) goes through the same passes with two numpy arrays as
 staging (:class:`MemoryStack`): no removed map is kept, only its sums, which is faster
@@ -201,23 +202,19 @@ class MemoryStack:
         pass
 
 
-#: Environment variable naming a folder for the staging files instead of the output's
-#: folder (e.g. a node's local scratch disk when the outputs go to network storage).
-STAGING_ENV = "PLEXWASH_STAGING_DIR"
-
-
 class Staging:
     """A hidden ``.NAME.spill-*`` folder for staging files; removed on exit.
 
     It is made beside ``out_path`` (where a rerun sweeps what a killed run left), or in
-    the folder named by ``$PLEXWASH_STAGING_DIR`` when that is set.
+    ``staging_dir`` when given (e.g. a node's local scratch disk when the outputs go to
+    network storage).
     """
 
-    def __init__(self, out_path: Path | None):
+    def __init__(self, out_path: Path | None, *, staging_dir: str | Path | None = None):
         """``out_path=None``: the stacks are numpy arrays (an ROI held in memory), no folder."""
         self.folder = None
         if out_path is not None:
-            parent = Path(os.environ.get(STAGING_ENV) or out_path.parent)
+            parent = Path(staging_dir or out_path.parent)
             parent.mkdir(parents=True, exist_ok=True)
             self.folder = Path(tempfile.mkdtemp(prefix=f".{out_path.name}.spill-", dir=parent))
         self._stacks: list = []

@@ -75,6 +75,29 @@ class Washed:
         return is_dask(self.data)
 
 
+@dataclasses.dataclass(frozen=True)
+class WashedFile:
+    """What :func:`wash_to_file` wrote.
+
+    Attributes
+    ----------
+    output : Path
+        The washed stack (OME-TIFF or OME-Zarr), written atomically.
+    seconds : float
+        Wall time of the wash and the write.
+    stats : mapping
+        Step name -> one dict per channel with at least ``removed_fraction``, as in
+        :attr:`Washed.stats`.
+    notes : tuple of str
+        Human-readable remarks, as in :attr:`Washed.notes`.
+    """
+
+    output: Path
+    seconds: float
+    stats: Mapping[str, list]
+    notes: tuple[str, ...] = ()
+
+
 def wash(roi: Roi, recipe: Recipe | None = None, *, spillover=None, channels=None,
          cache: WashCache | None = None) -> Washed:
     """Wash one ROI (or some of its channels) with a recipe.
@@ -365,7 +388,8 @@ def compute(washed: Washed) -> Washed:
                                stats=stats)
 
 
-def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *, spillover=None) -> dict:
+def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *, spillover=None,
+                 staging_dir: str | Path | None = None) -> WashedFile:
     """Wash one ROI and write it atomically; the pixels and the stats come from the same passes.
 
     The wash runs in passes (:mod:`plexwash.qc.staging`): a lazy (dask) ROI over two
@@ -373,11 +397,24 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
     thread whatever the number of channels; a numpy ROI over two arrays in memory. No
     removed map is kept, only its sums. The pixels equal those of :func:`wash`.
 
+    Parameters
+    ----------
+    roi : Roi
+        The ROI to wash.
+    out_path : str or Path
+        The washed stack to write (``.ome.tiff`` or ``.ome.zarr``, as the recipe's output says).
+    recipe : Recipe, optional
+        Defaults apply when omitted.
+    spillover : SpilloverMatrix, str or Path, optional
+        Overrides the recipe's ``[compensation] spillover``.
+    staging_dir : str or Path, optional
+        Folder for the staging files of a lazy ROI instead of the output's folder (e.g.
+        a node's local scratch disk when the output goes to network storage).
+
     Returns
     -------
-    dict
-        ``output`` (path), ``seconds``, ``stats`` (step -> per-channel dicts with
-        ``removed_fraction``) and ``notes``.
+    WashedFile
+        The output path, the time taken, the per-step stats and the notes.
     """
     started = time.perf_counter()
     recipe = recipe or default_recipe()
@@ -389,9 +426,9 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
     matrix = compensation_matrix(names, recipe.compensation, spillover, recipe_matrix=recipe.spillover_path())
     notes: list[str] = []
     # a numpy ROI is staged in memory; no removed maps are kept, only their sums
-    with Staging(out_path if is_dask(roi.data) else None) as staging:
+    with Staging(out_path if is_dask(roi.data) else None, staging_dir=staging_dir) as staging:
         staged, stats = wash_staged(roi, recipe, matrix, staging=staging, notes=notes)
         data = staged.array if isinstance(staged, MemoryStack) else staged
         write_stack(out_path, data, roi.channels, pixel_size=roi.pixel_size, settings=recipe.output)
-    return {"output": str(out_path), "seconds": time.perf_counter() - started,
-            "stats": stats, "notes": notes}
+    return WashedFile(output=out_path, seconds=time.perf_counter() - started, stats=stats,
+                      notes=tuple(notes))

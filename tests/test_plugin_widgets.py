@@ -318,14 +318,14 @@ class BlockedWash:
         self.release = threading.Event()  # never set: only an interrupt ends the wait
 
     def __call__(self, job):
-        self.calls.append(job["roi"])
+        self.calls.append(job.roi)
         if len(self.calls) == self.block:
             try:
                 for _ in range(WAIT_MS // 10):  # bounded, so a broken cancel fails, not hangs
                     if self.release.wait(0.01):
                         break
             except KeyboardInterrupt:
-                self.interrupted.append(job["roi"])
+                self.interrupted.append(job.roi)
                 raise
         return self.real(job)
 
@@ -333,7 +333,7 @@ class BlockedWash:
 def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohort, tmp_path,
                                                 monkeypatch):
     """Cancel while the first ROI is in flight: nothing is recorded; a rerun washes both."""
-    import plexwash.qc.run as run_module
+    import plexwash.qc.run.execute as run_module
     from plexwash.qc.run import read_ledger
 
     hook = BlockedWash(run_module.wash_one, block=1)
@@ -368,7 +368,7 @@ def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohor
 def test_cancel_interrupts_a_run_between_rois(make_napari_viewer, qtbot, cohort, tmp_path, monkeypatch):
     """Cancel while the second ROI is in flight: the first stays done, the second is not
     recorded and leaves no temporary file; a rerun skips the first and washes the second."""
-    import plexwash.qc.run as run_module
+    import plexwash.qc.run.execute as run_module
     from plexwash.qc.run import read_ledger
 
     hook = BlockedWash(run_module.wash_one, block=2)

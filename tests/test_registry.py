@@ -7,8 +7,9 @@ import dataclasses
 import numpy as np
 import pytest
 from plexwash.qc.io import read_roi
+from plexwash.qc.ledger import Ledger
 from plexwash.qc.recipe import PER_CHANNEL, SECTION_ORDER, default_recipe, section_classes
-from plexwash.qc.report import _STEP_TITLES, _STEPS
+from plexwash.qc.report import write_report
 from plexwash.qc.spillover import read_spillover
 from plexwash.qc.steps.registry import STEP_NAMES, STEPS, per_channel_steps, step
 from plexwash.qc.wash import wash, wash_to_file
@@ -38,7 +39,19 @@ def test_recipe_report_and_studio_follow_the_registry():
     for s in STEPS:
         assert getattr(recipe, s.name) == s.settings() == recipe.steps[s.name]
         assert f"# {s.title}\n[{s.name}]" in text
-    assert _STEPS == STEP_NAMES and all(_STEP_TITLES[s.name] == s.label for s in STEPS)
+
+
+def test_report_sections_follow_the_registry(tmp_path):
+    """The report's removed-signal table has one column per registry step, in its order,
+    titled with the step's label, whatever order the ledger record lists them in."""
+    Ledger(tmp_path / "ledger.jsonl").append(
+        {"roi": "a", "status": "done", "channels": ["X1"],
+         "removed_fraction": {s.name: {"X1": 0.1} for s in reversed(STEPS)}})
+    page = write_report(tmp_path, thumbnail_rois=0).read_text(encoding="utf-8")
+    removed = page[page.index('<section id="removed">'):]
+    removed = removed[:removed.index("</section>")]
+    where = [removed.index(f"<th>{s.label}: mean / max %</th>") for s in STEPS]
+    assert where == sorted(where) and len(set(where)) == len(STEPS)
 
 
 def test_stats_rows_carry_the_declared_numbers_in_both_washes(demo_dir, tmp_path):
@@ -47,7 +60,7 @@ def test_stats_rows_carry_the_declared_numbers_in_both_washes(demo_dir, tmp_path
     matrix = read_spillover(demo_dir / "truth" / "spillover.csv")
     recipe = default_recipe().with_channel("speckle", roi.channels[0], enabled=False)
     in_memory = wash(roi, recipe, spillover=matrix)
-    staged = wash_to_file(roi, tmp_path / "w.ome.tiff", recipe, spillover=matrix)["stats"]
+    staged = wash_to_file(roi, tmp_path / "w.ome.tiff", recipe, spillover=matrix).stats
     assert list(in_memory.stats) == list(staged) == list(STEP_NAMES)
     for s in STEPS:
         for row, other in zip(in_memory.stats[s.name], staged[s.name], strict=True):

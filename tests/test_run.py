@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import fcntl
 import hashlib
 import json
 import math
@@ -373,8 +372,9 @@ def test_bad_run_arguments_are_input_errors(cohort, tmp_path):
 def test_a_second_run_into_the_same_folder_is_refused(cohort, tmp_path):
     out = tmp_path / "run"
     out.mkdir()
-    with open(out / ".plexwash-run.lock", "a") as fh:
-        fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+    from filelock import FileLock
+
+    with FileLock(out / ".plexwash-run.lock", timeout=0):  # another run holds the folder
         with pytest.raises(InputError, match="another plexwash run"):
             run_cohort(cohort / "cohort", out, progress=False)
 
@@ -691,7 +691,7 @@ def test_run_demo_on_a_generated_stack(cohort, tmp_path):
 def test_cancel_event_stops_after_the_roi_in_flight(tmp_path, monkeypatch):
     import threading
 
-    import plexwash.qc.run as run_module
+    import plexwash.qc.run.execute as run_module
     from plexwash.qc.io import write_ome_tiff
 
     cohort = tmp_path / "cohort"
@@ -703,8 +703,8 @@ def test_cancel_event_stops_after_the_roi_in_flight(tmp_path, monkeypatch):
     real, started = run_module.wash_one, []
 
     def cancel_pressed_during_the_first(job):  # the hook: Cancel is pressed inside ROI "a"
-        started.append(job["roi"])
-        if job["roi"] == "a":
+        started.append(job.roi)
+        if job.roi == "a":
             cancel.set()
         return real(job)
 
@@ -716,3 +716,39 @@ def test_cancel_event_stops_after_the_roi_in_flight(tmp_path, monkeypatch):
     monkeypatch.setattr(run_module, "wash_one", real)
     summary = run_cohort(cohort, tmp_path / "run", progress=False)  # a rerun resumes
     assert (summary.done, summary.skipped) == (2, 1)
+
+
+def test_staging_dir_is_passed_down_and_the_cli_reads_it_from_the_environment(tmp_path, monkeypatch):
+    """``staging_dir`` reaches every staged wash of a run; the CLI (the only place that reads
+    the environment) takes it from ``PLEXWASH_STAGING_DIR``."""
+    from plexwash.qc import io as io_module
+    from plexwash.qc.cli import main
+    from plexwash.qc.io import write_ome_tiff
+    from plexwash.qc.staging import Staging
+
+    cohort = tmp_path / "cohort"
+    cohort.mkdir()
+    stack = np.random.default_rng(5).poisson(3.0, (2, 40, 40)).astype(np.uint16)
+    for name in ("a", "b"):
+        write_ome_tiff(cohort / f"{name}.ome.tiff", stack, ["Nd145", "Nd146"])
+    folders = []
+
+    class Recorded(Staging):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+            folders.append(self.folder)
+
+    monkeypatch.setattr(sys.modules["plexwash.qc.wash"], "Staging", Recorded)
+    monkeypatch.setattr(io_module, "LAZY_BYTES", 0)  # read lazily: the wash stages on disk
+    scratch = tmp_path / "scratch"
+    run_cohort(cohort, tmp_path / "api", progress=False, staging_dir=scratch)
+    assert len(folders) == 2 and all(f.parent == scratch for f in folders)
+    folders.clear()
+    monkeypatch.setenv("PLEXWASH_STAGING_DIR", str(tmp_path / "from-env"))
+    assert main(["run", str(cohort), "-o", str(tmp_path / "cli"), "--quiet"]) == 0
+    assert len(folders) == 2 and all(f.parent == tmp_path / "from-env" for f in folders)
+    assert list((tmp_path / "from-env").iterdir()) == []  # removed when each ROI is done
+    folders.clear()
+    monkeypatch.delenv("PLEXWASH_STAGING_DIR")
+    assert main(["run", str(cohort), "-o", str(tmp_path / "beside"), "--quiet"]) == 0
+    assert len(folders) == 2 and all(f.parent == tmp_path / "beside" for f in folders)

@@ -23,9 +23,9 @@ def _lazy(roi, chunks):
 
 
 def _same_stats(result, eager):
-    assert set(result["stats"]) == set(eager.stats)
+    assert set(result.stats) == set(eager.stats)
     for step in eager.stats:
-        for got, want in zip(result["stats"][step], eager.stats[step], strict=True):
+        for got, want in zip(result.stats[step], eager.stats[step], strict=True):
             assert got["channel"] == want["channel"] and got["ran"] == want["ran"]
             assert got["removed_fraction"] == pytest.approx(want["removed_fraction"], rel=1e-6, abs=1e-12)
             for key in ("n_pixels", "n_removed", "rate", "count_threshold", "method"):
@@ -67,11 +67,10 @@ def test_staging_folder_is_hidden_and_removed(tmp_path):
     assert list(tmp_path.iterdir()) == []
 
 
-def test_staging_can_go_to_another_folder(tmp_path, monkeypatch):
+def test_staging_can_go_to_another_folder(tmp_path):
     scratch = tmp_path / "scratch"
-    monkeypatch.setenv(staging.STAGING_ENV, str(scratch))
     out = tmp_path / "out" / "roi.ome.tiff"
-    with Staging(out) as folder:
+    with Staging(out, staging_dir=scratch) as folder:
         assert folder.folder.parent == scratch
     assert list(scratch.iterdir()) == [] and not out.parent.exists()
 
@@ -116,7 +115,7 @@ def test_staged_wash_with_steps_off_and_no_matrix(unseen, tmp_path):
     eager = wash(roi, recipe)
     result = wash_to_file(_lazy(roi, (1, 128, 128)), tmp_path / "w.ome.tiff", recipe)
     np.testing.assert_array_equal(read_roi(tmp_path / "w.ome.tiff", lazy=False).data, eager.data)
-    assert set(result["stats"]) == {"speckle"} and result["notes"] == list(eager.notes)
+    assert set(result.stats) == {"speckle"} and result.notes == tuple(eager.notes)
     _same_stats(result, eager)
 
 
@@ -151,5 +150,5 @@ def test_a_failed_staged_wash_leaves_nothing(unseen, tmp_path, monkeypatch):
 def test_stats_of_every_step_are_present(unseen, tmp_path):
     roi, matrix, _ = unseen
     result = wash_to_file(_lazy(roi, (1, 128, 128)), tmp_path / "w.ome.tiff", spillover=matrix)
-    assert list(result["stats"]) == list(STEPS)
-    assert all(0.0 <= r["removed_fraction"] <= 1.0 for rows in result["stats"].values() for r in rows)
+    assert list(result.stats) == list(STEPS)
+    assert all(0.0 <= r["removed_fraction"] <= 1.0 for rows in result.stats.values() for r in rows)

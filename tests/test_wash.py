@@ -100,7 +100,7 @@ def test_wash_to_file_round_trip_and_stats_in_one_pass(unseen, tmp_path, monkeyp
     assert back.channels == roi.channels
     np.testing.assert_array_equal(back.data, eager.data)
     for step in STEPS:
-        got = [r["removed_fraction"] for r in result["stats"][step]]
+        got = [r["removed_fraction"] for r in result.stats[step]]
         want = [r["removed_fraction"] for r in eager.stats[step]]
         np.testing.assert_allclose(got, want, rtol=1e-5, atol=1e-9)
 

@@ -1,14 +1,7 @@
-"""The cohort report: one self-contained static HTML page from a run folder.
+"""The report page: :func:`write_report` gathers a run folder and renders its sections.
 
-:func:`write_report` reads a run folder (``ledger.jsonl``, ``quality.csv``,
-``recipe.toml`` and the spillover matrix beside it, the raw inputs and washed outputs)
-and writes ``report.html``: a single file with every image embedded as base64 PNG and
-all styling inline, so it opens offline and can be mailed or archived as it is.
-
-Contents: the cautions; a summary per ROI; heatmaps of the signal-to-background ratio
-(SBR) per ROI and channel, raw and washed; the flags; cohort outliers by the modified
-z-score; the spillover matrix used; the fraction of signal each step removed; small raw,
-washed and removed thumbnails per channel; provenance (versions and hashes).
+Each section is a function returning HTML text; plots come from :mod:`.plots` and
+thumbnails from :mod:`.thumbnails`, both embedded as base64 PNG.
 """
 
 from __future__ import annotations
@@ -16,28 +9,36 @@ from __future__ import annotations
 import base64
 import datetime as _dt
 import html
-import io
 import math
-import struct
-import zlib
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
 
-from .steps.registry import STEPS
+from .._version import __version__
+from ..errors import InputError
+from ..files import write_atomic
+from ..ledger import LEDGER, QUALITY, RECIPE, REPORT, latest_records, read_ledger
+from ..quality import ROI_FLAGS
+from ..steps.registry import STEP_NAMES, step
+from ..table import OUTLIER_CUTOFF, OUTLIER_MIN_ROIS, quality_table, read_quality_csv
+from .plots import plot_removed, plot_sbr, plot_spillover
+from .style import CSS
+from .thumbnails import (
+    CONTRAST_PERCENTILES,
+    THUMBNAIL_SIZE,
+    combined_removed_fraction,
+    downsample,
+    png_grey,
+    robust_range,
+    to_grey,
+)
 
 #: ROIs that get raw / washed / removed thumbnails (cohort outliers and flagged ROIs first).
 THUMBNAIL_ROIS = 4
-#: Longest side of a thumbnail, pixels.
-THUMBNAIL_SIZE = 96
-#: Robust contrast: these percentiles of the raw thumbnail map to black and white.
-CONTRAST_PERCENTILES = (1.0, 99.5)
 #: Heatmaps show at most this many ROIs (the rest are listed in the tables).
 HEATMAP_ROIS = 120
 
-_STEPS = tuple(s.name for s in STEPS)
-_STEP_TITLES = {s.name: s.label for s in STEPS}
 CAUTIONS = (
     "Research use only. Washed images are not for clinical diagnosis.",
     "Keep the raw data: the washed stacks are derived from it and never replace it.",
@@ -45,52 +46,6 @@ CAUTIONS = (
     "below before trusting a washed channel, above all for rare or dim markers.",
     "Quality flags and outliers are prompts to look, not verdicts.",
 )
-
-_CSS = """
-:root { --ink: #1d2430; --muted: #5f6b7a; --line: #d9dee5; --panel: #f6f7f9;
-        --band: #23395b; --accent: #b5651d; --good: #2e7d5b; --bad: #a4343a; }
-* { box-sizing: border-box; }
-body { margin: 0; font: 14px/1.45 system-ui, -apple-system, "Segoe UI", sans-serif;
-       color: var(--ink); background: #fff; }
-header { background: var(--band); color: #fff; padding: 18px 28px; }
-header h1 { margin: 0 0 4px 0; font-size: 22px; font-weight: 600; letter-spacing: .2px; }
-header p { margin: 0; color: #d6deea; }
-main { padding: 8px 28px 40px; max-width: 1500px; }
-h2 { font-size: 17px; margin: 28px 0 8px; padding-bottom: 4px; border-bottom: 2px solid var(--line); }
-h3 { font-size: 15px; margin: 18px 0 6px; }
-p.note { color: var(--muted); margin: 4px 0 10px; }
-.cautions { border-left: 5px solid var(--accent); background: #fbf4ec; padding: 10px 16px; margin: 16px 0; }
-.cautions ul { margin: 4px 0; padding-left: 20px; }
-.tiles { display: flex; gap: 14px; flex-wrap: wrap; margin: 10px 0; }
-.tile { background: var(--panel); border: 1px solid var(--line); padding: 8px 14px; min-width: 120px; }
-.tile b { display: block; font-size: 20px; }
-table { border-collapse: collapse; margin: 6px 0 12px; font-size: 13px; }
-th, td { border: 1px solid var(--line); padding: 3px 8px; text-align: left; vertical-align: top;
-         overflow-wrap: anywhere; }
-th { background: var(--panel); font-weight: 600; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; }
-td.hash, span.hash { font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: 12px; }
-.ok { color: var(--good); font-weight: 600; } .failed { color: var(--bad); font-weight: 600; }
-.chip { display: inline-block; padding: 0 7px; margin: 1px 2px; border-radius: 9px; font-size: 12px;
-        background: #e8ebf0; border: 1px solid #c6ccd6; }
-.chip.empty { background: #ece6f5; border-color: #b9a8d6; }
-.chip.low-sbr { background: #fdf0d8; border-color: #e0b66a; }
-.chip.saturated { background: #fde2e0; border-color: #d98c86; }
-.chip.striped { background: #dff0f2; border-color: #86bcc4; }
-.chip.outlier { background: #f6dcea; border-color: #cf8db1; }
-img.plot { max-width: 100%; height: auto; border: 1px solid var(--line); }
-.cards { display: flex; flex-wrap: wrap; gap: 10px; }
-figure.card { margin: 0; padding: 6px 8px; border: 1px solid var(--line); background: var(--panel); }
-figure.card figcaption { display: flex; justify-content: space-between; gap: 10px; font-size: 12px; }
-figure.card figcaption span { color: var(--muted); }
-figure.card div { display: flex; gap: 3px; align-items: flex-start; }
-figure.card img { image-rendering: pixelated; background: #000; }
-figure.card .kinds span { flex: 1; text-align: center; font-size: 11px; color: var(--muted); }
-span.missing { display: inline-block; width: 60px; text-align: center; }
-details { margin: 6px 0 12px; } summary { cursor: pointer; color: var(--band); }
-pre { background: var(--panel); border: 1px solid var(--line); padding: 8px; overflow-x: auto; font-size: 12px; }
-footer { color: var(--muted); font-size: 12px; padding: 14px 28px; border-top: 1px solid var(--line); }
-"""
 
 
 def write_report(out_dir, *, output=None, thumbnail_rois: int = THUMBNAIL_ROIS) -> Path:
@@ -128,10 +83,6 @@ def write_report(out_dir, *, output=None, thumbnail_rois: int = THUMBNAIL_ROIS) 
     >>> "<img" in path.read_text()
     True
     """
-    from .errors import InputError
-    from .files import write_atomic
-    from .run import LEDGER, REPORT
-
     out_dir = Path(out_dir)
     if not (out_dir / LEDGER).is_file():
         raise InputError(out_dir, f"no {LEDGER}: not a plexwash run folder")
@@ -146,8 +97,6 @@ def write_report(out_dir, *, output=None, thumbnail_rois: int = THUMBNAIL_ROIS) 
 
 
 def _gather(out_dir: Path) -> dict:
-    from .run import QUALITY, RECIPE, latest_records, quality_table, read_ledger, read_quality_csv
-
     records = read_ledger(out_dir)
     latest = latest_records(records)
     rows = read_quality_csv(out_dir / QUALITY) if (out_dir / QUALITY).is_file() else []
@@ -159,7 +108,7 @@ def _gather(out_dir: Path) -> dict:
     recipe_text, recipe = None, None
     matrix, matrix_error = None, None
     if (out_dir / RECIPE).is_file():
-        from .recipe import load_recipe
+        from ..recipe import load_recipe
 
         recipe_text = (out_dir / RECIPE).read_text(encoding="utf-8")
         try:
@@ -169,7 +118,7 @@ def _gather(out_dir: Path) -> dict:
         spill = recipe.spillover_path() if recipe is not None else None
         if spill is not None:
             try:
-                from .spillover import read_spillover
+                from ..spillover import read_spillover
 
                 matrix = read_spillover(spill)
             except Exception as exc:
@@ -187,15 +136,11 @@ def _names(latest: Mapping) -> list[str]:
 
 
 def _render(ctx: dict, *, thumbnail_rois: int) -> str:
-    from ._version import __version__
-
     latest = ctx["latest"]
     names = _names(latest)
     done = [n for n in names if latest[n].get("status") == "done"]
     failed = [n for n in names if latest[n].get("status") != "done"]
     rows = ctx["rows"]
-    from .quality import ROI_FLAGS
-
     flagged = {(r["roi"], r["channel"]) for r in rows
                if any(f not in ROI_FLAGS for f in r.get("flags") or [])}
     outliers = [r for r in rows if "outlier" in (r.get("flags") or [])]
@@ -206,7 +151,7 @@ def _render(ctx: dict, *, thumbnail_rois: int) -> str:
         '<meta name="generator" content="plexwash">',
         '<meta name="viewport" content="width=device-width, initial-scale=1">',
         f"<title>plexwash report: {_e(ctx['out_dir'].name)}</title>",
-        f"<style>{_CSS}</style></head><body>",
+        f"<style>{CSS}</style></head><body>",
         "<header><h1>plexwash cohort report</h1>",
         f"<p>Run folder {_e(ctx['out_dir'])} &middot; written {_e(now)} by plexwash {_e(__version__)}</p>",
         "</header><main>",
@@ -284,7 +229,7 @@ def _section_sbr(rows, done) -> str:
     out.append('<p class="note">SBR = mean(foreground) / mean(background), foreground split by '
                "Otsu's threshold on the log-scaled channel; colour is log<sub>10</sub> SBR, the "
                "same scale in both panels. Grey cells: not measured.</p>")
-    out.append(_img(_plot_sbr(raw, washed, rois, channels, channels_w), "SBR heatmaps raw and washed"))
+    out.append(_img(plot_sbr(raw, washed, rois, channels, channels_w), "SBR heatmaps raw and washed"))
     if len(done) > HEATMAP_ROIS:
         out.append(f'<p class="note">Showing the first {HEATMAP_ROIS} of {len(done)} ROIs.</p>')
     out.append("</section>")
@@ -292,8 +237,6 @@ def _section_sbr(rows, done) -> str:
 
 
 def _section_flags(rows) -> str:
-    from .quality import ROI_FLAGS
-
     out = ['<section id="flags"><h2>Flags</h2>',
            '<p class="note"><span class="chip empty">empty</span> no foreground distinguishable '
            'from background and spillover ghosts; <span class="chip low-sbr">low-sbr</span> SBR '
@@ -325,8 +268,6 @@ def _section_flags(rows) -> str:
 
 
 def _section_outliers(outliers, rows) -> str:
-    from .run import OUTLIER_CUTOFF, OUTLIER_MIN_ROIS
-
     out = ['<section id="outliers"><h2>Cohort outliers</h2>',
            '<p class="note">For each channel and stage, the modified z-score of log(SBR) across '
            "ROIs, M = 0.6745 (x &minus; median) / MAD (MAD: median absolute deviation); an ROI is "
@@ -373,16 +314,16 @@ def _section_removed(latest, done) -> str:
            "removed map summed over the ROI, over the signal entering the step). Large values "
            "on a real stain mean over-cleaning: check the removed maps below.</p>"]
     rois = done[:HEATMAP_ROIS]
-    steps = [s for s in _STEPS if any(s in (latest[n].get("removed_fraction") or {}) for n in rois)]
+    steps = [s for s in STEP_NAMES if any(s in (latest[n].get("removed_fraction") or {}) for n in rois)]
     if not rois or not steps:
         out.append("<p>No step ran.</p></section>")
         return "\n".join(out)
     out.append("<table><tr><th>ROI</th>" + "".join(
-        f"<th>{_e(_STEP_TITLES[s])}: mean / max %</th>" for s in steps) + "</tr>")
+        f"<th>{_e(step(s).label)}: mean / max %</th>" for s in steps) + "</tr>")
     for name in rois:
         cells = []
-        for step in steps:
-            values = [v for v in ((latest[name].get("removed_fraction") or {}).get(step) or {}).values()
+        for s in steps:
+            values = [v for v in ((latest[name].get("removed_fraction") or {}).get(s) or {}).values()
                       if v is not None]
             if values:
                 cells.append(f"<td class=\"num\">{100 * np.mean(values):.2f} / {100 * max(values):.2f}</td>")
@@ -390,8 +331,8 @@ def _section_removed(latest, done) -> str:
                 cells.append("<td>&ndash;</td>")
         out.append(f"<tr><td>{_e(name)}</td>{''.join(cells)}</tr>")
     out.append("</table>")
-    grids = [(step, *_removed_grid(latest, rois, step)) for step in steps]
-    out.append(_img(_plot_removed(grids, rois), "removed fraction heatmaps per step"))
+    grids = [(s, *_removed_grid(latest, rois, s)) for s in steps]
+    out.append(_img(plot_removed(grids, rois), "removed fraction heatmaps per step"))
     out.append("</section>")
     return "\n".join(out)
 
@@ -414,7 +355,7 @@ def _section_spillover(matrix, error, recipe) -> str:
                "in channel j, in percent; the diagonal (1) is left blank. "
                f"Largest off-diagonal entry {100 * off.max():.3g} %; "
                f"{int(np.count_nonzero(off > 0))} non-zero pairs.</p>")
-    out.append(_img(_plot_spillover(off, list(matrix.channels)), "spillover matrix heatmap"))
+    out.append(_img(plot_spillover(off, list(matrix.channels)), "spillover matrix heatmap"))
     pairs = sorted(((values[i, j], matrix.channels[i], matrix.channels[j])
                     for i in range(len(values)) for j in range(len(values))
                     if i != j and values[i, j] > 0), reverse=True)
@@ -459,7 +400,7 @@ def _section_thumbnails(ctx, done, rows, limit) -> str:
 
 
 def _roi_thumbnails(ctx, name) -> str:
-    from .io import read_roi
+    from ..io import read_roi
 
     rec = ctx["latest"][name]
     out = [f"<h3>{_e(name)}</h3>"]
@@ -493,7 +434,7 @@ def _roi_thumbnails(ctx, name) -> str:
         else:
             images.append(_thumb(None, 0.0, 1.0, ""))
         total = combined_removed_fraction(
-            [(removed_fraction.get(s) or {}).get(channel) for s in _STEPS])
+            [(removed_fraction.get(s) or {}).get(channel) for s in STEP_NAMES])
         label = labels[c] if c < len(labels) else channel
         title = _e(channel) + (f" &middot; {_e(label)}" if label != channel else "")
         out.append(f'<figure class="card"><figcaption><b>{title}</b><span>removed '
@@ -547,206 +488,9 @@ def _section_provenance(ctx, names, now) -> str:
     return "\n".join(out)
 
 
-# --------------------------------------------------------------------------- plots
-
-
-def _figure(width, height):
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(width, height), dpi=100)
-    fig.patch.set_facecolor("white")
-    return fig
-
-
-def _png_of(fig) -> bytes:
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-
-    FigureCanvasAgg(fig)
-    buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=100, bbox_inches="tight")
-    return buffer.getvalue()
-
-
-def _grid_size(n_rows, n_cols, panels):
-    width = min(24.0, max(6.0, panels * (1.6 + 0.24 * n_cols)))
-    height = min(30.0, max(2.4, 1.4 + 0.22 * n_rows))
-    return width, height
-
-
-def _heat(ax, grid, rows, cols, *, cmap, vmin, vmax, title):
-    import matplotlib as mpl
-
-    if grid.size == 0:
-        ax.set_axis_off()
-        ax.text(0.5, 0.5, "not measured", ha="center", va="center", transform=ax.transAxes)
-        ax.set_title(title, fontsize=10)
-        return None
-    colormap = mpl.colormaps[cmap].with_extremes(bad="#cfd3d9")
-    image = ax.imshow(np.ma.masked_invalid(grid), cmap=colormap, vmin=vmin, vmax=vmax,
-                      aspect="auto", interpolation="nearest")
-    ax.set_xticks(range(len(cols)))
-    ax.set_xticklabels(cols, rotation=90, fontsize=7)
-    ax.set_yticks(range(len(rows)))
-    ax.set_yticklabels(rows, fontsize=7)
-    ax.set_title(title, fontsize=10)
-    return image
-
-
-def _plot_sbr(raw, washed, rois, channels, channels_w) -> bytes:
-    logs = [np.log10(g) for g in (raw, washed)]
-    finite = np.concatenate([g[np.isfinite(g)] for g in logs]) if raw.size else np.array([])
-    vmin, vmax = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
-    if vmax <= vmin:
-        vmax = vmin + 1.0
-    fig = _figure(*_grid_size(len(rois), max(len(channels), 1), 2))
-    axes = fig.subplots(1, 2, sharey=True)
-    image = None
-    for ax, grid, cols, title in zip(axes, logs, (channels, channels_w), ("raw", "washed"), strict=True):
-        image = _heat(ax, grid, rois, cols, cmap="cividis", vmin=vmin, vmax=vmax, title=title) or image
-    if image is not None:
-        fig.colorbar(image, ax=list(axes), shrink=0.9, label="log10 SBR")
-    return _png_of(fig)
-
-
-def _plot_removed(grids, rois) -> bytes:
-    n_cols = max(max((len(c) for _, _, c in grids), default=1), 1)
-    fig = _figure(*_grid_size(len(rois), n_cols, len(grids)))
-    axes = np.atleast_1d(fig.subplots(1, len(grids), sharey=True))
-    top = max([float(np.nanmax(g)) for _, g, _ in grids if np.isfinite(g).any()] + [1e-4])
-    image = None
-    for ax, (step, grid, channels) in zip(axes, grids, strict=True):
-        image = _heat(ax, 100 * grid, rois, channels, cmap="PuBuGn", vmin=0.0, vmax=100 * top,
-                      title=_STEP_TITLES[step]) or image
-    if image is not None:
-        fig.colorbar(image, ax=list(axes), shrink=0.9, label="% of signal removed")
-    return _png_of(fig)
-
-
-def _plot_spillover(off, channels) -> bytes:
-    n = len(channels)
-    side = min(14.0, max(4.0, 0.24 * n + 2.0))
-    fig = _figure(side + 1.2, side)
-    ax = fig.subplots()
-    grid = 100 * off
-    grid = np.where(np.eye(n, dtype=bool), np.nan, grid)
-    top = float(np.nanmax(grid)) if n > 1 and np.isfinite(grid).any() else 1.0
-    image = _heat(ax, grid, channels, channels, cmap="YlOrBr", vmin=0.0, vmax=max(top, 1e-6),
-                  title="spillover into column channel (%)")
-    if image is None:
-        return _png_of(fig)
-    ax.set_xlabel("receiving channel", fontsize=8)
-    ax.set_ylabel("source channel", fontsize=8)
-    if n <= 30:
-        for i in range(n):
-            for j in range(n):
-                if i != j and grid[i, j] >= 0.1:
-                    ax.text(j, i, f"{grid[i, j]:.1f}", ha="center", va="center", fontsize=5,
-                            color="black" if grid[i, j] < 0.6 * top else "white")
-    fig.colorbar(image, ax=ax, shrink=0.8, label="%")
-    return _png_of(fig)
-
-
 def _img(png: bytes, alt: str) -> str:
     data = base64.b64encode(png).decode("ascii")
     return f'<img class="plot" src="data:image/png;base64,{data}" alt="{_e(alt)}">'
-
-
-# --------------------------------------------------------------------------- thumbnails
-
-
-def downsample(stack, size: int = THUMBNAIL_SIZE) -> np.ndarray:
-    """Block means of a (C, Y, X) stack so the longer side is at most ``size`` pixels.
-
-    A dask stack is reduced chunk by chunk (``dask.array.coarsen``), so memory stays
-    bounded; the edge rows / columns that do not fill a block are dropped.
-
-    Examples
-    --------
-    >>> downsample(np.arange(16.0).reshape(1, 4, 4), 2)[0].tolist()
-    [[2.5, 4.5], [10.5, 12.5]]
-    """
-    n_c, n_y, n_x = stack.shape
-    factor = max(1, math.ceil(max(n_y, n_x) / size))
-    ny, nx = (n_y // factor) * factor, (n_x // factor) * factor
-    if type(stack).__module__.startswith("dask"):
-        import dask.array as da
-
-        cropped = stack[:, :ny, :nx].astype(np.float64)
-        return np.asarray(da.coarsen(np.mean, cropped, {1: factor, 2: factor}).compute())
-    cropped = np.asarray(stack[:, :ny, :nx], dtype=np.float64)
-    return cropped.reshape(n_c, ny // factor, factor, nx // factor, factor).mean(axis=(2, 4))
-
-
-def combined_removed_fraction(fractions) -> float:
-    """Fraction of a channel's raw signal that a chain of steps removed in all.
-
-    Each step's fraction is relative to the signal entering it, so the remainder after
-    all steps is the product of ``1 - f`` (missing steps count as 0).
-
-    Examples
-    --------
-    >>> round(combined_removed_fraction([0.5, None, 0.5]), 6)
-    0.75
-    """
-    kept = 1.0
-    for f in fractions:
-        kept *= 1.0 - (f or 0.0)
-    return 1.0 - kept
-
-
-def robust_range(image, percentiles=CONTRAST_PERCENTILES) -> tuple[float, float]:
-    """Display range from two percentiles (robust to hot pixels); never empty.
-
-    Examples
-    --------
-    >>> robust_range(np.arange(101.0), (0, 100))
-    (0.0, 100.0)
-    """
-    lo, hi = (float(v) for v in np.percentile(np.asarray(image, float), percentiles))
-    if hi <= lo:
-        hi = lo + 1.0
-    return lo, hi
-
-
-def to_grey(image, lo: float, hi: float) -> np.ndarray:
-    """Map ``lo .. hi`` linearly to 0 .. 255 (clipped), as uint8."""
-    scaled = (np.asarray(image, float) - lo) / (hi - lo)
-    return np.clip(np.round(255.0 * scaled), 0, 255).astype(np.uint8)
-
-
-def png_grey(image) -> bytes:
-    """Encode a 2-D uint8 array as an 8-bit greyscale PNG (no dependency beyond zlib).
-
-    Each scanline uses the "Up" filter (difference to the row above), which suits smooth
-    images (PNG specification, ISO/IEC 15948, filter type 2).
-
-    Examples
-    --------
-    >>> png_grey(np.zeros((2, 3), np.uint8))[:8] == b"\\x89PNG\\r\\n\\x1a\\n"
-    True
-    """
-    image = np.ascontiguousarray(image, dtype=np.uint8)
-    if image.ndim != 2:
-        raise ValueError("png_grey needs a 2-D array")
-    h, w = image.shape
-    up = image.astype(np.int16)
-    up[1:] -= image[:-1]
-    filtered = np.empty((h, w + 1), np.uint8)
-    filtered[:, 0] = 2
-    filtered[0, 0] = 0  # the first row has no row above: filter "None"
-    filtered[:, 1:] = (up % 256).astype(np.uint8)
-    filtered[0, 1:] = image[0]
-
-    def chunk(kind: bytes, payload: bytes) -> bytes:
-        return (struct.pack(">I", len(payload)) + kind + payload
-                + struct.pack(">I", zlib.crc32(kind + payload) & 0xFFFFFFFF))
-
-    header = struct.pack(">IIBBBBB", w, h, 8, 0, 0, 0, 0)
-    return (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", header)
-            + chunk(b"IDAT", zlib.compress(filtered.tobytes(), 9)) + chunk(b"IEND", b""))
-
-
-# --------------------------------------------------------------------------- text helpers
 
 
 def _e(value) -> str:

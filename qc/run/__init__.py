@@ -1,0 +1,124 @@
+"""The run: wash a whole cohort with one recipe, with a ledger, resume and a scheduler of choice.
+
+What a run writes into its output folder
+----------------------------------------
+- one washed stack per ROI, same stem as the input (``<roi>.ome.tiff``, or ``.ome.zarr``
+  when the recipe's ``[output] format = "ome-zarr"``);
+- ``ledger.jsonl``: one JSON object per line and ROI attempt (status, hashes, timings,
+  removed fractions, quality rows); the single source of truth of the run;
+- ``quality.csv``: one row per ROI x channel x stage (``raw`` / ``washed``), rebuilt from
+  the ledger at the end of every run, with cohort outliers flagged (modified z-score);
+- ``report.html``: the cohort's QC report (:func:`plexwash.qc.report.write_report`);
+- ``recipe.toml`` (+ ``spillover.csv`` and ``panel.csv`` when used): the recipe exactly as
+  applied, self-contained (its ``[compensation] spillover`` names the copy beside it);
+- ``run.log``: timestamped progress lines of every run into this folder.
+
+Scheduling
+----------
+The unit of work is one whole ROI: a task reads the ROI, washes it, writes the washed
+stack atomically, hashes it and measures quality on raw and washed. Whole ROIs keep every
+write local to the process that computed it (no pixels travel between processes), make a
+task's result all-or-nothing, and let the ledger stay a single writer (this process).
+Inside a task the ROI's chunks run on dask's threaded scheduler.
+
+- default: in this process, one ROI after the other, each ROI's chunks on all cores;
+- ``workers=N``: a ``dask.distributed.LocalCluster`` of N worker processes, one ROI per
+  worker at a time, each with ``cores // N`` threads for its chunks;
+- ``scheduler="tcp://host:port"``: join a running cluster (``Client(address)``); its
+  workers must see the same paths (a shared file system).
+
+The pixels do not depend on the scheduler or the number of workers: every ROI is washed
+by the same code with the same chunking, whichever process runs it.
+
+Resume and safety
+-----------------
+A rerun skips an ROI whose latest ledger record is ``done`` when its output still exists
+and hashes to the recorded ``output_sha256``, and the input, recipe, spillover matrix,
+panel and plexwash version are unchanged; everything else is (re)done. Outputs are written
+under a temporary name and renamed, ledger lines are appended one at a time and fsynced,
+so ``kill -9`` loses only the ROIs in flight; leftover temporary files are removed when
+the next run starts. Ctrl-C (or SIGTERM) stops the run: nothing is recorded for the ROIs
+in flight, their temporary files and any output they finished without being recorded are
+removed, and ``KeyboardInterrupt`` propagates (with a remote scheduler, a task already
+running on a worker may still finish writing; the next run redoes it). One
+unreadable ROI is recorded ``failed`` with its error; the others go on; the exit code is
+then 3. Inputs are only ever opened for reading. A lock file keeps two runs from writing
+into the same folder at once.
+
+Modules
+-------
+- :mod:`.cohort`: :func:`run_cohort`, :class:`RunSummary`, the order of a run;
+- :mod:`.plan`: checking the inputs, the hand-off files, the jobs (:class:`~.plan.Job`)
+  and the resume decisions;
+- :mod:`.execute`: one ROI (:func:`~.execute.wash_one`), threads or dask.distributed;
+- :mod:`.folder`: the output guard, the lock, interrupts, heap tuning;
+- :mod:`.progress`: ``run.log`` and the progress bar;
+- :mod:`.demo`: :func:`run_demo`.
+
+The ledger (:mod:`plexwash.qc.ledger`) and the quality table (:mod:`plexwash.qc.table`)
+live outside this package: the report reads them too, and the run calls the report.
+"""
+
+from ..ledger import (
+    LEDGER,
+    PANEL_COPY,
+    QUALITY,
+    RECIPE,
+    REPORT,
+    RUN_LOG,
+    SPILLOVER_COPY,
+    Ledger,
+    json_ready,
+    latest_records,
+    read_ledger,
+    repair_ledger,
+)
+from ..table import (
+    OUTLIER_CUTOFF,
+    OUTLIER_MIN_ROIS,
+    QUALITY_FIRST_COLUMNS,
+    quality_csv_text,
+    quality_table,
+    read_quality_csv,
+    write_quality_table,
+)
+from .cohort import EXIT_ERROR, EXIT_OK, EXIT_SOME_FAILED, RunSummary, run_cohort
+from .demo import DEMO_STACK, run_demo
+from .execute import measure_quality, wash_one
+from .folder import bound_heap, check_run_folder, release_memory
+from .plan import Job
+
+__all__ = [
+    "DEMO_STACK",
+    "EXIT_ERROR",
+    "EXIT_OK",
+    "EXIT_SOME_FAILED",
+    "LEDGER",
+    "OUTLIER_CUTOFF",
+    "OUTLIER_MIN_ROIS",
+    "PANEL_COPY",
+    "QUALITY",
+    "QUALITY_FIRST_COLUMNS",
+    "RECIPE",
+    "REPORT",
+    "RUN_LOG",
+    "SPILLOVER_COPY",
+    "Job",
+    "Ledger",
+    "RunSummary",
+    "bound_heap",
+    "check_run_folder",
+    "json_ready",
+    "latest_records",
+    "measure_quality",
+    "quality_csv_text",
+    "quality_table",
+    "read_ledger",
+    "read_quality_csv",
+    "release_memory",
+    "repair_ledger",
+    "run_cohort",
+    "run_demo",
+    "wash_one",
+    "write_quality_table",
+]

@@ -1,0 +1,283 @@
+"""Executing a run's jobs: in this process on threads, or on dask.distributed.
+
+The unit of work is one whole ROI (:func:`wash_one`): read, wash, write atomically, hash,
+measure quality on raw and washed, and return the ROI's ledger record. By default the
+jobs run in this process one after the other, each ROI's chunks on a thread pool of all
+cores; with ``workers=N`` on a ``LocalCluster`` of N worker processes; with a scheduler
+address on a running cluster (``Client(address)``, reached first by :func:`connect`).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as _dt
+import math
+import os
+import socket
+import time
+import traceback
+from collections.abc import Iterable
+from pathlib import Path
+
+from .._version import __version__
+from ..errors import InputError, OutputError
+from ..files import remove_path, temporary_path
+from ..ledger import json_ready
+from .folder import bound_heap, release_memory
+from .plan import Job
+
+
+def connect(scheduler: str, timeout: float):
+    """A client of a running dask scheduler, or InputError when it cannot be reached in time."""
+    try:
+        from distributed import Client
+    except ImportError:  # pragma: no cover - the cluster extra is not installed
+        raise InputError("--scheduler", "needs dask.distributed (pip install 'plexwash[cluster]')") from None
+    if not timeout > 0:
+        raise InputError("--connect-timeout", f"must be a positive number of seconds, got {timeout!r}")
+    try:
+        return Client(scheduler, timeout=timeout)
+    except (OSError, TimeoutError, ValueError, TypeError) as exc:
+        raise InputError(scheduler, f"cannot reach the dask scheduler in {timeout:g} s "
+                         f"({' '.join(str(exc).split()) or exc.__class__.__name__})") from None
+
+
+def execute(jobs: list[Job], *, workers, client, log) -> Iterable[dict]:
+    """Run the jobs and yield their ledger records as they finish."""
+    if not jobs:
+        return
+    if workers is None and client is None:
+        yield from _execute_here(jobs)
+        return
+    yield from _execute_on_cluster(jobs, workers=workers, client=client, log=log)
+
+
+def _execute_here(jobs: list[Job]) -> Iterable[dict]:
+    """One ROI after the other in this process; each ROI's chunks on a pool we own.
+
+    Owning the pool lets an interrupt wait for the chunk tasks already running to end
+    before the temporary files are swept (so none is recreated afterwards).
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    import dask
+
+    threads = _cpu_count()
+    bound_heap()  # before the pool's threads exist
+    pool = ThreadPoolExecutor(threads, thread_name_prefix="plexwash-chunk")
+    try:
+        with dask.config.set(scheduler="threads", pool=pool):
+            for job in jobs:
+                yield wash_one(dataclasses.replace(job, threads=threads))
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _execute_on_cluster(jobs: list[Job], *, workers, client, log) -> Iterable[dict]:
+    """Whole ROIs as tasks on a dask.distributed cluster (local processes or a running one)."""
+    try:
+        from distributed import Client, LocalCluster, as_completed
+    except ImportError:  # pragma: no cover - the cluster extra is not installed
+        raise InputError("--workers" if workers else "--scheduler",
+                         "needs dask.distributed (pip install 'plexwash[cluster]')") from None
+
+    cluster = None
+    cpus = _cpu_count()
+    if workers is not None:
+        workers = int(workers)
+        threads = max(1, cpus // workers)
+        env = {"OMP_NUM_THREADS": str(threads), "OMP_WAIT_POLICY": "PASSIVE",
+               "NUMBA_NUM_THREADS": str(threads), "OPENBLAS_NUM_THREADS": str(threads),
+               "MKL_NUM_THREADS": str(threads)}
+        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                               host="127.0.0.1", dashboard_address=None, env=env)
+        client = Client(cluster)
+        log.line(f"started a local cluster: {workers} worker process(es), {threads} thread(s) each")
+        jobs = [dataclasses.replace(job, threads=threads) for job in jobs]
+    else:  # joined before the run folder was touched (run_cohort)
+        log.line(f"joined the dask cluster at {client.scheduler.address} "
+                 f"({len(client.scheduler_info().get('workers', {}))} worker(s))")
+    futures = {}
+    try:
+        for job in jobs:
+            key = f"plexwash-wash-{job.roi}-{os.urandom(4).hex()}"
+            futures[client.submit(wash_one, job, key=key, pure=False, retries=0)] = job
+        for future in as_completed(futures):
+            job = futures.pop(future)
+            try:
+                yield future.result()
+            except Exception as exc:  # the worker died (KilledWorker) or the task could not run
+                yield _failed_record(job, exc, seconds=0.0, started=_now())
+    finally:
+        if futures:
+            client.cancel(list(futures))
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def wash_one(job: Job) -> dict:
+    """Wash one ROI of a run and return its ledger record (never raises for a bad ROI).
+
+    Reads the input, washes it with the run's recipe, writes the washed stack atomically,
+    hashes it and measures quality on raw and washed. Runs in this process or on a dask
+    worker (the job holds only paths and hashes, so it pickles small).
+
+    Parameters
+    ----------
+    job : Job
+        One ROI as planned by :func:`plexwash.qc.run.plan.plan_jobs`.
+
+    Returns
+    -------
+    dict
+        The ledger record: ``status`` ``done`` with hashes, timings, removed fractions and
+        quality rows, or ``failed`` with ``error``.
+    """
+    import dask
+
+    bound_heap()
+    started = _now()
+    t0 = time.perf_counter()
+    out_dir = job.out_dir
+    written: list[Path] = []
+    try:
+        threads = job.threads or _worker_threads()
+        config = {"scheduler": "threads"}
+        if dask.config.get("pool", None) is None:
+            config["num_workers"] = threads
+        with dask.config.set(config):
+            record = _wash_and_measure(job, out_dir, written)
+    except BaseException as exc:
+        for path in written:  # a result that is not recorded done is not left under its name
+            remove_path(path)
+        if not isinstance(exc, Exception):  # KeyboardInterrupt, SystemExit: stop the run
+            raise
+        return _failed_record(job, exc, seconds=time.perf_counter() - t0, started=started)
+    record.update(seconds=round(time.perf_counter() - t0, 3), started=started, finished=_now())
+    return record
+
+
+def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
+    from ..io import read_roi, sha256_path
+    from ..recipe import load_recipe
+    from ..wash import wash_to_file
+
+    timings = {}
+    clock = time.perf_counter()
+
+    def lap(name):
+        nonlocal clock
+        now = time.perf_counter()
+        timings[name] = round(now - clock, 3)
+        clock = now
+
+    input_sha256 = job.input_sha256 or sha256_path(job.input)
+    lap("hash_input")
+    recipe = load_recipe(job.recipe)
+    if recipe.sha256() != job.recipe_sha256:
+        raise InputError(job.recipe, "recipe changed while the run was going")
+    roi = read_roi(job.input, panel=job.panel)
+    recipe.check_size(roi)
+    matrix = None
+    if job.spillover:
+        from ..spillover import read_spillover
+
+        matrix = read_spillover(job.spillover)
+    lap("read")
+    if job.output is not None:
+        target = out_dir / job.output
+    else:  # quality only: the washed stack lives under a temporary name until measured
+        from ..io import output_name
+
+        target = temporary_path(out_dir / output_name(job.roi), "measure")
+    result = wash_to_file(roi, target, recipe, spillover=matrix, staging_dir=job.staging_dir)
+    written.append(target)
+    release_memory()
+    lap("wash_write")
+    output_sha256 = sha256_path(target) if job.output is not None else None
+    lap("hash_output")
+    raw_rows, washed_rows, roi_flags = measure_quality(
+        roi, target, recipe, matrix, threads=job.threads or _worker_threads())
+    release_memory()
+    lap("quality")
+    if job.output is None:
+        remove_path(target)
+    stats = json_ready(result.stats)
+    removed = {step: {row["channel"]: row.get("removed_fraction") for row in rows}
+               for step, rows in stats.items()}
+    shape = [int(n) for n in roi.shape]
+    record = _base_record(job)
+    record.update(
+        status="done", input_sha256=input_sha256, output=job.output,
+        output_sha256=output_sha256, shape=shape, dtype=str(roi.data.dtype),
+        channels=list(roi.channels), labels=list(roi.labels), used=[bool(u) for u in roi.use],
+        removed_fraction=removed, steps=stats, notes=list(result.notes),
+        roi_flags=roi_flags, median_sbr=_median_sbr(raw_rows, washed_rows),
+        timings=timings, quality=json_ready(raw_rows + washed_rows))
+    return record
+
+
+def measure_quality(roi, washed_path: Path, recipe, matrix, *, threads: int = 1):
+    """Quality rows of the raw ROI and of the washed stack as written (quality.measure_roi)."""
+    from ..io import read_roi
+    from ..quality import measure_roi
+
+    measured = measure_roi(roi, recipe, spillover=matrix, washed=read_roi(washed_path).data, threads=threads)
+    return measured.raw_rows, measured.washed_rows, measured.flags
+
+
+def _median_sbr(raw_rows, washed_rows) -> dict:
+    import numpy as np
+
+    out = {}
+    for stage, rows in (("raw", raw_rows), ("washed", washed_rows)):
+        values = [r["sbr"] for r in rows if r.get("sbr") is not None and math.isfinite(r["sbr"])]
+        out[stage] = float(np.median(values)) if values else None
+    return out
+
+
+def _cpu_count() -> int:
+    """Cores this process may use (the batch system's allocation, not the whole node)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):
+        return max(1, os.cpu_count() or 1)
+
+
+def _worker_threads() -> int:
+    """Threads for one ROI's chunks on a dask worker: its cores shared by its task slots."""
+    try:
+        from distributed import get_worker
+
+        slots = get_worker().state.nthreads
+    except (ImportError, ValueError, AttributeError):
+        slots = 1
+    return max(1, _cpu_count() // max(1, slots))
+
+
+def _base_record(job: Job) -> dict:
+    return {
+        "roi": job.roi, "status": None, "input": str(job.input),
+        "input_sha256": job.input_sha256, "output": None, "output_sha256": None,
+        "recipe_sha256": job.recipe_sha256, "spillover_sha256": job.spillover_sha256,
+        "panel_sha256": job.panel_sha256, "version": __version__,
+        "host": socket.gethostname(), "pid": os.getpid(),
+    }
+
+
+def _failed_record(job: Job, exc: BaseException, *, seconds: float, started: str) -> dict:
+    record = _base_record(job)
+    if isinstance(exc, (InputError, OutputError)):
+        error = str(exc)
+    else:
+        error = f"{exc.__class__.__name__}: {exc}"
+        record["traceback"] = "".join(traceback.format_exception(exc))[-4000:]
+    record.update(status="failed", error=" ".join(error.split()), seconds=round(seconds, 3),
+                  started=started, finished=_now())
+    return record
+
+
+def _now() -> str:
+    """The time now, UTC, ISO 8601 with milliseconds (``2026-01-02T03:04:05.678Z``)."""
+    return _dt.datetime.now(_dt.UTC).isoformat(timespec="milliseconds").replace("+00:00", "Z")

@@ -1,0 +1,240 @@
+"""Planning a run: check its inputs, write its hand-off files, decide which ROIs to (re)do.
+
+Nothing here washes pixels. :func:`check_inputs` reads and checks everything a run
+needs without writing anything; :func:`write_run_files` writes the self-contained recipe
+copy (and the spillover matrix and panel beside it); :func:`plan_jobs` compares each ROI
+with its latest ledger record and returns a :class:`Job` for every ROI that is not
+already done.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Mapping
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from .._version import __version__
+from ..errors import InputError
+from ..files import reached_inputs, write_atomic
+from ..ledger import PANEL_COPY, RECIPE, SPILLOVER_COPY, latest_records, read_ledger
+from .folder import check_run_folder
+
+if TYPE_CHECKING:  # typing only: these modules load when a run starts
+    from ..io import OutputSettings
+    from ..recipe import Recipe
+    from ..spillover import SpilloverMatrix
+
+
+@dataclasses.dataclass(frozen=True)
+class Job:
+    """One ROI of a run to wash: only paths, hashes and numbers, so it pickles small.
+
+    Attributes
+    ----------
+    roi : str
+        The ROI's name (its stem in the cohort).
+    input : Path
+        The raw ROI.
+    out_dir : Path
+        The run folder.
+    output : str or None
+        The washed stack's name in the run folder; None when the recipe writes no stacks
+        (quality only).
+    recipe : Path
+        The run's recipe copy; ``recipe_sha256`` is its hash when planned.
+    spillover, panel : Path or None
+        The run's copies of the spillover matrix and the panel, with their hashes.
+    input_sha256 : str or None
+        The input's hash when planning already computed it.
+    threads : int or None
+        Threads for the ROI's chunks (None: the worker's share of its cores).
+    staging_dir : Path or None
+        Folder for the staging files instead of the output's folder.
+    """
+
+    roi: str
+    input: Path
+    out_dir: Path
+    output: str | None
+    recipe: Path
+    recipe_sha256: str
+    spillover: Path | None = None
+    spillover_sha256: str | None = None
+    panel: Path | None = None
+    panel_sha256: str | None = None
+    input_sha256: str | None = None
+    threads: int | None = None
+    staging_dir: Path | None = None
+
+
+@dataclasses.dataclass(frozen=True)
+class RunInputs:
+    """Everything a run needs, read and checked (:func:`check_inputs`); nothing written yet."""
+
+    cohort_dir: Path
+    out_dir: Path
+    rois: list[tuple[str, Path]]  # (name, input path), sorted by name
+    recipe: Recipe
+    matrix: SpilloverMatrix | None  # None without compensation
+    panel_text: str | None  # the panel as the run's panel.csv will hold it
+
+
+@dataclasses.dataclass(frozen=True)
+class Plan:
+    """A run's inputs once its hand-off files are written (:func:`write_run_files`)."""
+
+    cohort_dir: Path
+    out_dir: Path
+    rois: list[tuple[str, Path]]  # (name, input path), sorted by name
+    recipe_path: Path
+    recipe_sha256: str
+    output_settings: OutputSettings
+    spillover_path: Path | None
+    spillover_sha256: str | None
+    panel_path: Path | None
+    panel_sha256: str | None
+
+
+def check_inputs(cohort_dir, out_dir, *, recipe, spillover, panel) -> RunInputs:
+    """Read and check everything a run needs, writing nothing."""
+    from ..io import list_cohort, output_name, read_panel, roi_stem
+    from ..recipe import Recipe, load_recipe
+
+    cohort_dir = Path(cohort_dir).absolute()
+    out = Path(out_dir).absolute()
+    inputs = list_cohort(cohort_dir)
+    if out.exists() and not out.is_dir():
+        raise InputError(out, "output folder is a file")
+    given = [cohort_dir, recipe if isinstance(recipe, (str, Path)) else None,
+             spillover if isinstance(spillover, (str, Path)) else None,
+             panel if isinstance(panel, (str, Path)) else None]
+    if not isinstance(recipe, Recipe):
+        recipe = load_recipe(recipe)
+    given.append(recipe.spillover_path())
+    names: dict[str, Path] = {}
+    for path in inputs:
+        name = roi_stem(path)
+        if name in names:
+            raise InputError(path, f"two ROIs share the name {name!r} ({names[name].name}); "
+                             "their outputs would collide")
+        names[name] = path
+
+    if panel is None and (cohort_dir / "panel.csv").is_file():
+        panel = cohort_dir / "panel.csv"
+    panel_text = None
+    if panel is not None:
+        panel_obj = panel if not isinstance(panel, (str, Path)) else read_panel(panel)
+        panel_text = _panel_csv(panel_obj)
+    check_run_folder(out, reached_inputs(given), [output_name(n, recipe.output) for n in names])
+    return RunInputs(cohort_dir=cohort_dir, out_dir=out, rois=sorted(names.items()),
+                     recipe=recipe, matrix=_spillover_matrix(spillover, recipe),
+                     panel_text=panel_text)
+
+
+def write_run_files(inputs: RunInputs) -> Plan:
+    """Write the self-contained recipe copy (and its spillover matrix and panel) of a run."""
+    from ..io import sha256_path
+    from ..recipe import load_recipe
+
+    out, recipe, matrix, panel_text = inputs.out_dir, inputs.recipe, inputs.matrix, inputs.panel_text
+    spillover_path = panel_path = None
+    changes = {"spillover": ""}
+    if matrix is not None:
+        from ..spillover import write_spillover
+
+        spillover_path = write_spillover(out / SPILLOVER_COPY, matrix)
+        changes["spillover"] = SPILLOVER_COPY
+    if panel_text is not None:
+        panel_path = out / PANEL_COPY
+        if not panel_path.is_file() or panel_path.read_text(encoding="utf-8") != panel_text:
+            write_atomic(panel_path, panel_text)
+    run_recipe = dataclasses.replace(recipe.replace("compensation", **changes), source=out / RECIPE)
+    text = run_recipe.to_toml()
+    if not (out / RECIPE).is_file() or (out / RECIPE).read_text(encoding="utf-8") != text:
+        write_atomic(out / RECIPE, text)
+    if load_recipe(out / RECIPE).sha256() != run_recipe.sha256():  # the copy must say the same
+        raise RuntimeError("the written recipe does not read back identically")
+    return Plan(
+        cohort_dir=inputs.cohort_dir, out_dir=out, rois=inputs.rois, recipe_path=out / RECIPE,
+        recipe_sha256=run_recipe.sha256(), output_settings=run_recipe.output,
+        spillover_path=spillover_path,
+        spillover_sha256=sha256_path(spillover_path) if spillover_path else None,
+        panel_path=panel_path, panel_sha256=sha256_path(panel_path) if panel_path else None)
+
+
+def _spillover_matrix(spillover, recipe):
+    """The spillover matrix to use (read and checked), or None without compensation."""
+    from ..spillover import SpilloverMatrix, check_spillover, read_spillover
+
+    if not recipe.compensation.enabled:
+        return None
+    if spillover is None:
+        spillover = recipe.spillover_path()
+    if spillover is None:
+        return None
+    if isinstance(spillover, SpilloverMatrix):
+        check_spillover(spillover)
+        return spillover
+    return read_spillover(spillover)
+
+
+def _panel_csv(panel) -> str:
+    import csv
+    import io
+
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(["channel", "label", "use"])
+    for channel, label, use in zip(panel.channels, panel.labels, panel.use, strict=True):
+        writer.writerow([channel, label, "yes" if use else "no"])
+    return buffer.getvalue()
+
+
+def plan_jobs(plan: Plan, log, *, staging_dir=None) -> tuple[list[Job], list[str]]:
+    """The ROIs to wash (as jobs) and the names of those that can be skipped."""
+    from ..io import output_name, sha256_path
+
+    latest = latest_records(read_ledger(plan.out_dir))
+    jobs, skipped = [], []
+    enabled = plan.output_settings.enabled
+    for name, path in plan.rois:
+        output = output_name(name, plan.output_settings) if enabled else None
+        job = Job(
+            roi=name, input=Path(path), out_dir=plan.out_dir, output=output,
+            recipe=plan.recipe_path, recipe_sha256=plan.recipe_sha256,
+            spillover=plan.spillover_path, spillover_sha256=plan.spillover_sha256,
+            panel=plan.panel_path, panel_sha256=plan.panel_sha256,
+            staging_dir=Path(staging_dir) if staging_dir is not None else None)
+        record = latest.get(name)
+        why = _why_redo(record, job)
+        if why is None:
+            job = dataclasses.replace(job, input_sha256=sha256_path(path))
+            if job.input_sha256 != record.get("input_sha256"):
+                why = "input changed"
+            elif output is not None and sha256_path(plan.out_dir / output) != record.get("output_sha256"):
+                why = "output changed or torn"
+        if why is None:
+            skipped.append(name)
+            continue
+        if record is not None:
+            log.line(f"{name}: redo ({why})")
+        jobs.append(job)
+    return jobs, skipped
+
+
+def _why_redo(record: Mapping | None, job: Job) -> str | None:
+    """Why an earlier record does not cover the job (None: it may, if the hashes still match)."""
+    if record is None:
+        return "not washed yet"
+    if record.get("status") != "done":
+        return f"last attempt {record.get('status')}"
+    for key, what in (("recipe_sha256", "recipe"), ("spillover_sha256", "spillover matrix"),
+                      ("panel_sha256", "panel"), ("output", "output format")):
+        if record.get(key) != getattr(job, key):
+            return f"{what} changed"
+    if record.get("version") != __version__:
+        return "plexwash version changed"
+    if job.output is not None and not (job.out_dir / job.output).exists():
+        return "output missing"
+    return None
