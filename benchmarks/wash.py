@@ -1,7 +1,7 @@
 """Speed of a wash against its floor: reading the ROI and writing it back.
 
 One 40 x 1000 x 1000 ROI (float32 counts from the demo generator, ~160 MB; read lazily
-as dask because it is over ``io.LAZY_BYTES``, so the wash goes through the staged passes
+as dask because it is over ``io.roi.LAZY_BYTES``, so the wash goes through the staged passes
 of ``qc/staging.py``) is written once as OME-TIFF. Then, each timed ``--repeats`` times
 (medians printed):
 

@@ -12,10 +12,10 @@ import numpy as np
 import pytest
 import tifffile
 import zarr
-from plexwash.qc import io
 from plexwash.qc.errors import InputError
 from plexwash.qc.files import check_output
 from plexwash.qc.io import (
+    OutputSettings,
     list_cohort,
     read_panel,
     read_roi,
@@ -23,6 +23,8 @@ from plexwash.qc.io import (
     write_ome_tiff,
     write_ome_zarr,
 )
+from plexwash.qc.io import roi as roi_module
+from plexwash.qc.io import tiff as tiff_module
 
 NAMES = ["Nd145", "Nd146", "Ir191"]
 
@@ -93,19 +95,49 @@ def test_reads_stripped_and_tiled_ome_tiff_written_by_tifffile(tmp_path, small_s
 def test_big_stacks_read_lazily_as_dask(tmp_path, small_stack, monkeypatch):
     path = tmp_path / "big.ome.tiff"
     write_ome_tiff(path, small_stack, NAMES)
-    monkeypatch.setattr(io, "LAZY_BYTES", 100)
+    monkeypatch.setattr(roi_module, "LAZY_BYTES", 100)
     roi = read_roi(path)
     assert isinstance(roi.data, da.Array)
     np.testing.assert_array_equal(roi.data.compute(), small_stack)
 
 
-def test_dask_stack_written_through_spill_matches(tmp_path, small_stack, monkeypatch):
-    monkeypatch.setattr(io, "IN_MEMORY_WRITE_BYTES", 10)
-    lazy = da.from_array(small_stack, chunks=(3, 20, 17))
+@pytest.mark.parametrize("dtype", [np.float32, np.uint16, np.int32, np.float64])
+def test_big_dask_stack_written_through_a_staging_file_matches(tmp_path, small_stack, monkeypatch, dtype):
+    """A dask stack over IN_MEMORY_WRITE_BYTES is computed into a StagedStack of its own
+    pixel type beside the output and written from it band by band: same pixels, bit for
+    bit (float64 values that float32 cannot hold included), and nothing left behind."""
+    from plexwash.qc.io.staged import StagedStack
+
+    made = []
+
+    class Spy(StagedStack):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+            made.append((self.path.parent.parent, self.path.parent.name, self.dtype))
+
+    monkeypatch.setattr(tiff_module, "StagedStack", Spy)
+    monkeypatch.setattr(tiff_module, "IN_MEMORY_WRITE_BYTES", 10)
+    stack = small_stack.astype(dtype) * 2
+    if dtype == np.float64:
+        stack += 1e-9  # not representable in float32
+    lazy = da.from_array(stack, chunks=(3, 20, 17))  # chunks span channels and cut rows
     path = tmp_path / "w.ome.tiff"
-    write_ome_tiff(path, lazy * 2, NAMES)
-    np.testing.assert_array_equal(tifffile.imread(path), small_stack * 2)
+    write_ome_tiff(path, lazy, NAMES, settings=OutputSettings(tile=64))
+    back = tifffile.imread(path)
+    assert back.dtype == np.dtype(dtype)
+    np.testing.assert_array_equal(back, stack)
+    assert [(m[0], m[1].startswith(".w.ome.tiff.spill-"), m[2]) for m in made] == [
+        (tmp_path, True, np.dtype(dtype))]
     assert sorted(p.name for p in tmp_path.iterdir()) == ["w.ome.tiff"]  # no temporary left
+
+
+def test_small_dask_stack_written_in_memory(tmp_path, small_stack, monkeypatch):
+    def refuse(*args, **kwargs):
+        raise AssertionError("a small stack needs no staging file")
+
+    monkeypatch.setattr(tiff_module, "StagedStack", refuse)
+    write_ome_tiff(tmp_path / "s.ome.tiff", da.from_array(small_stack, chunks=(1, 32, 32)), NAMES)
+    np.testing.assert_array_equal(tifffile.imread(tmp_path / "s.ome.tiff"), small_stack)
 
 
 def test_plain_multipage_tiff_with_panel(tmp_path, small_stack):

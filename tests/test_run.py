@@ -445,7 +445,7 @@ def test_ome_zarr_output_and_resume(cohort, tmp_path):
 
 
 def test_chunking_does_not_change_the_pixels(reference, cohort, tmp_path, monkeypatch):
-    from plexwash.qc import io as io_module
+    from plexwash.qc.io import roi as io_module
     from plexwash.qc.recipe import load_recipe
 
     monkeypatch.setattr(io_module, "LAZY_BYTES", 0)  # every ROI read lazily, as dask
@@ -517,7 +517,7 @@ _DRIVER = textwrap.dedent("""
     from pathlib import Path
     import numpy as np
     import tifffile
-    from plexwash.qc import io
+    from plexwash.qc.io import roi as io
     from plexwash.qc.run import run_cohort
     if sys.argv[5:] == ["lazy"]:  # every ROI read as dask: the staged wash
         io.LAZY_BYTES = 0
@@ -721,7 +721,7 @@ def test_cancel_event_stops_after_the_roi_in_flight(tmp_path, monkeypatch):
 def test_staging_dir_is_passed_down_and_the_cli_reads_it_from_the_environment(tmp_path, monkeypatch):
     """``staging_dir`` reaches every staged wash of a run; the CLI (the only place that reads
     the environment) takes it from ``PLEXWASH_STAGING_DIR``."""
-    from plexwash.qc import io as io_module
+    from plexwash.qc.io import roi as io_module
     from plexwash.qc.cli import main
     from plexwash.qc.io import write_ome_tiff
     from plexwash.qc.staging import Staging

@@ -88,10 +88,10 @@ def test_lazy_wash_equals_in_memory_across_chunk_borders(unseen):
 @pytest.mark.parametrize("spill", [False, True], ids=["in-memory", "spilled"])
 def test_wash_to_file_round_trip_and_stats_in_one_pass(unseen, tmp_path, monkeypatch, spill):
     roi, matrix, _ = unseen
-    if spill:  # force the bounded-memory path through a temporary zarr store
-        from plexwash.qc import io
+    if spill:  # the writer's spill threshold at its lowest (a staged stack is written band by band)
+        from plexwash.qc.io import tiff
 
-        monkeypatch.setattr(io, "IN_MEMORY_WRITE_BYTES", 1)
+        monkeypatch.setattr(tiff, "IN_MEMORY_WRITE_BYTES", 1)
     out = tmp_path / "w.ome.tiff"
     lazy_roi = Roi(da.from_array(roi.data, chunks=(18, 128, 128)), roi.channels, roi.path)
     result = wash_to_file(lazy_roi, out, spillover=matrix)

@@ -13,7 +13,7 @@ from scipy import ndimage
 from skimage.filters import threshold_otsu
 
 from ..errors import InputError
-from . import _kernels as _k
+from ._kernels import masked_mean_std, suppress_spikes
 from .excess import fit_model, measure_excess_area
 from .settings import DEFAULT_QUALITY, QualitySettings
 
@@ -264,7 +264,7 @@ def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name)
 
 def _masked_mean_std(values: np.ndarray, mask: np.ndarray, inside: bool) -> tuple[float, float]:
     """Mean and standard deviation of the pixels where ``mask == inside``, without copies."""
-    mean, std = _k.masked_mean_std(values, mask, inside)
+    mean, std = masked_mean_std(values, mask, inside)
     return float(mean), float(std)
 
 
@@ -295,7 +295,7 @@ def _suppress_spikes(image: np.ndarray, ratio: float, excess: float) -> tuple[np
     image = np.ascontiguousarray(image)
     exact32 = image.dtype == np.float32 or (image.dtype.kind in "ui" and image.dtype.itemsize <= 2)
     clean = np.empty(image.shape, np.float32 if exact32 else np.float64)
-    n = _k.suppress_spikes(image, float(ratio), float(excess), clean)
+    n = suppress_spikes(image, float(ratio), float(excess), clean)
     return clean, int(n)
 
 

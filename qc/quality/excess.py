@@ -10,7 +10,7 @@ import math
 import numpy as np
 from scipy import linalg, ndimage, optimize, special
 
-from . import _kernels as _k
+from ._kernels import poisson_tail_screen
 from .settings import QualitySettings
 
 # Largest number of refits of the background / ghost model while leaving out bins.
@@ -46,7 +46,7 @@ def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarra
     n = np.ascontiguousarray(n, dtype=np.float64)
     mu = np.ascontiguousarray(np.broadcast_to(mu, n.shape), dtype=np.float64)
     verdict = np.empty(n.shape, np.int8)
-    _k.poisson_tail_screen(n.ravel(), mu.ravel(), math.log(alpha), verdict.ravel())
+    poisson_tail_screen(n.ravel(), mu.ravel(), math.log(alpha), verdict.ravel())
     out = verdict == 1
     hard = verdict == 2
     if hard.any():

@@ -1,0 +1,53 @@
+"""Reading ROIs (OME-TIFF, TIFF + panel, OME-Zarr) and writing washed stacks atomically.
+
+The modules, by topic:
+
+* :mod:`.roi`: the :class:`Roi`, :func:`read_roi` (any format) and :func:`write_stack`;
+* :mod:`.tiff`: opening an (OME-)TIFF with its damage checks, the tiled OME-TIFF writer;
+* :mod:`.zarr`: opening an OME-Zarr with its damage check, the OME-Zarr writer;
+* :mod:`.panel`: ``panel.csv`` and the small-CSV helpers;
+* :mod:`.cohort`: which files are ROIs, their names, the output names and format;
+* :mod:`.checks`: shape helpers shared by the readers and writers;
+* :mod:`.hashing`: SHA-256 of files and folders, canonical JSON.
+
+The tunable thresholds stay in their modules (``roi.LAZY_BYTES``,
+``tiff.IN_MEMORY_WRITE_BYTES``): set them there, not here.
+"""
+
+from .cohort import (
+    TIFF_SUFFIXES,
+    ZARR_SUFFIXES,
+    OutputSettings,
+    is_roi_path,
+    list_cohort,
+    output_name,
+    roi_stem,
+)
+from .hashing import canonical_json, sha256_path
+from .panel import Panel, read_csv_cells, read_panel, refuse_duplicates
+from .roi import SUPPORTED_DTYPES, Roi, read_roi, write_stack
+from .tiff import write_ome_tiff
+from .zarr import ngff_metadata, write_ome_zarr
+
+__all__ = [
+    "SUPPORTED_DTYPES",
+    "TIFF_SUFFIXES",
+    "ZARR_SUFFIXES",
+    "OutputSettings",
+    "Panel",
+    "Roi",
+    "canonical_json",
+    "is_roi_path",
+    "list_cohort",
+    "ngff_metadata",
+    "output_name",
+    "read_csv_cells",
+    "read_panel",
+    "read_roi",
+    "refuse_duplicates",
+    "roi_stem",
+    "sha256_path",
+    "write_ome_tiff",
+    "write_ome_zarr",
+    "write_stack",
+]

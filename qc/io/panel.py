@@ -1,0 +1,91 @@
+"""The panel (``panel.csv``: channel, label, use) and the small-CSV helpers other readers share."""
+
+from __future__ import annotations
+
+import csv
+import dataclasses
+from collections.abc import Sequence
+from pathlib import Path
+
+from ..errors import InputError
+
+
+@dataclasses.dataclass(frozen=True)
+class Panel:
+    """The panel: acquisition channel names, readable labels and whether each is cleaned."""
+
+    channels: tuple[str, ...]
+    labels: tuple[str, ...]
+    use: tuple[bool, ...]
+    path: Path | None = None
+
+
+def read_panel(path: str | Path) -> Panel:
+    """Read ``panel.csv`` (columns ``channel,label,use``; ``use`` is ``yes`` or ``no``).
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "panel.csv"
+    >>> _ = p.write_text("channel,label,use\\nNd145,membrane,yes\\nIr191,DNA,no\\n")
+    >>> read_panel(p).use
+    (True, False)
+    """
+    path = Path(path)
+    rows = _read_csv_rows(path, required=("channel", "label", "use"))
+    channels, labels, use = [], [], []
+    for number, row in rows:
+        name = (row.get("channel") or "").strip()
+        if not name:
+            raise InputError(path, f"row {number}: empty channel name")
+        flag = (row.get("use") or "").strip().lower()
+        if flag not in ("yes", "no"):
+            raise InputError(path, f"row {number}: use must be 'yes' or 'no', got {flag!r}")
+        channels.append(name)
+        labels.append((row.get("label") or "").strip() or name)
+        use.append(flag == "yes")
+    refuse_duplicates(path, channels, "channel")
+    return Panel(tuple(channels), tuple(labels), tuple(use), path)
+
+
+def read_csv_cells(path: Path) -> list[tuple[int, list[str]]]:
+    """The non-blank rows of a small CSV file as (line number, cells).
+
+    One-line errors for a missing, unreadable or empty file; the callers check the cells.
+    """
+    if not path.exists():
+        raise InputError(path, "file not found")
+    try:
+        text = path.read_text(encoding="utf-8-sig")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(path, f"cannot read ({exc})") from None
+    rows = [(line, cells) for line, cells in enumerate(csv.reader(text.splitlines()), start=1)
+            if any(cell.strip() for cell in cells)]
+    if not rows:
+        raise InputError(path, "file is empty")
+    return rows
+
+
+def _read_csv_rows(path: Path, *, required: Sequence[str]) -> list[tuple[int, dict]]:
+    """Rows of a small CSV as (line number, dict), checking the header names ``required``."""
+    rows = read_csv_cells(path)
+    header = [h.strip() for h in rows[0][1]]
+    missing = [c for c in required if c not in header]
+    if missing:
+        raise InputError(path, f"missing column(s) {', '.join(missing)}; expected {','.join(required)}")
+    body = [(line, dict(zip(header, cells, strict=False))) for line, cells in rows[1:]]
+    if not body:
+        raise InputError(path, "no rows below the header")
+    return body
+
+
+def refuse_duplicates(path, names: Sequence[str], what: str, *,
+                       message: str = "duplicate {what} name(s): {names}") -> None:
+    """Raise InputError naming every name that occurs more than once, in first-seen order."""
+    seen, dups = set(), []
+    for name in names:
+        if name in seen and name not in dups:
+            dups.append(name)
+        seen.add(name)
+    if dups:
+        raise InputError(path, message.format(what=what, names=", ".join(dups)))

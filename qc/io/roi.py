@@ -1,0 +1,210 @@
+"""One ROI in and out: the :class:`Roi`, :func:`read_roi` (any format, panel applied, pixels
+checked) and :func:`write_stack` (the output format of the recipe).
+
+Every problem with an input is raised as :class:`~plexwash.qc.errors.InputError`
+naming the file, so the CLI can print one line and exit 2. Inputs are opened read-only;
+outputs are written to a temporary name in the destination folder and renamed at the end.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+from .cohort import OutputSettings, roi_stem
+from .panel import Panel, read_panel, refuse_duplicates
+from .tiff import open_tiff, write_ome_tiff
+from .zarr import open_zarr, write_ome_zarr
+
+#: Stacks bigger than this are read lazily (dask) instead of into memory.
+LAZY_BYTES = 128 * 2**20
+
+SUPPORTED_DTYPES = (np.uint8, np.uint16, np.uint32, np.int16, np.int32, np.float32, np.float64)
+
+
+@dataclasses.dataclass(frozen=True)
+class Roi:
+    """One region of interest: a C x Y x X stack with channel names.
+
+    Attributes
+    ----------
+    data : numpy.ndarray or dask.array.Array
+        Pixel values, axes (C, Y, X); dask for inputs larger than ``LAZY_BYTES``.
+    channels : tuple of str
+        Acquisition channel names, in stack order.
+    path : Path
+        The file or folder the ROI was read from.
+    labels : tuple of str
+        Readable target names (from the panel; the channel names otherwise).
+    use : tuple of bool
+        False for channels the panel marks ``no``: they pass through untouched.
+    pixel_size : tuple of float or None
+        Physical (y, x) pixel size in micrometres, when the file records it.
+    """
+
+    data: object
+    channels: tuple[str, ...]
+    path: Path
+    labels: tuple[str, ...] = ()
+    use: tuple[bool, ...] = ()
+    pixel_size: tuple[float, float] | None = None
+
+    def __post_init__(self):
+        if not self.labels:
+            object.__setattr__(self, "labels", tuple(self.channels))
+        if not self.use:
+            object.__setattr__(self, "use", (True,) * len(self.channels))
+
+    @property
+    def name(self) -> str:
+        """The ROI's name: its file name without the image suffixes."""
+        return roi_stem(self.path)
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return tuple(int(n) for n in self.data.shape)
+
+    def channel_index(self, channel: str) -> int:
+        """Index of a channel by name (or by panel label)."""
+        if channel in self.channels:
+            return self.channels.index(channel)
+        if channel in self.labels:
+            return self.labels.index(channel)
+        raise InputError(self.path, f"no channel named {channel!r}")
+
+
+def _apply_panel(path: Path, channels: tuple[str, ...] | None, n_channels: int, panel: Panel):
+    """Channel names, labels and use flags of an ROI given its panel."""
+    where = panel.path or path
+    if channels is None:  # plain TIFF: the panel names the pages in order
+        if len(panel.channels) != n_channels:
+            raise InputError(
+                where,
+                f"panel lists {len(panel.channels)} channels but {path.name} has {n_channels}",
+            )
+        return panel.channels, panel.labels, panel.use
+    unknown = [c for c in panel.channels if c not in channels]
+    absent = [c for c in channels if c not in panel.channels]
+    if unknown or absent:
+        parts = []
+        if unknown:
+            parts.append(f"not in {path.name}: {', '.join(unknown)}")
+        if absent:
+            parts.append(f"missing from the panel: {', '.join(absent)}")
+        raise InputError(where, "panel rows do not match the ROI's channels (" + "; ".join(parts) + ")")
+    order = [panel.channels.index(c) for c in channels]
+    return channels, tuple(panel.labels[i] for i in order), tuple(panel.use[i] for i in order)
+
+
+def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy: bool | None = None) -> Roi:
+    """Read one ROI: OME-TIFF, plain multipage TIFF with a panel, or OME-Zarr (NGFF 0.4/0.5).
+
+    Parameters
+    ----------
+    path : str or Path
+        The image file (``.ome.tiff``, ``.tiff``) or OME-Zarr folder.
+    panel : str, Path or Panel, optional
+        ``panel.csv``: required for a plain TIFF (it names the pages in order); for
+        OME files it adds labels and ``use`` flags and must list the same channels.
+    lazy : bool, optional
+        Force a dask array (True) or numpy (False). By default stacks over
+        ``LAZY_BYTES`` are read lazily, chunk by chunk.
+
+    Returns
+    -------
+    Roi
+
+    Raises
+    ------
+    InputError
+        Missing, empty, unreadable or truncated file; unknown axes; metadata claiming
+        more pixels than the file holds; duplicate channel names; panel not matching;
+        NaN, Inf or negative pixels. A single-channel image reads as a 1 x Y x X stack.
+
+    Examples
+    --------
+    >>> import numpy as np, tempfile, pathlib
+    >>> path = pathlib.Path(tempfile.mkdtemp()) / "tiny.ome.tiff"
+    >>> _ = write_ome_tiff(path, np.ones((2, 8, 8), np.float32), ["Nd145", "Ir191"])
+    >>> roi = read_roi(path)
+    >>> roi.channels, roi.shape
+    (('Nd145', 'Ir191'), (2, 8, 8))
+    """
+    path = Path(path)
+    if isinstance(panel, (str, Path)):
+        panel = read_panel(panel)
+    if not path.exists():
+        raise InputError(path, "file not found")
+    if path.is_dir():
+        data, channels, pixel_size = open_zarr(path)
+    else:
+        data, channels, pixel_size = open_tiff(path, has_panel=panel is not None)
+    if data.ndim != 3:
+        raise InputError(path, f"expected a C x Y x X stack, got {data.ndim}-D data")
+    if np.dtype(data.dtype).type not in SUPPORTED_DTYPES:
+        raise InputError(path, f"unsupported pixel type {data.dtype}")
+    n_channels = int(data.shape[0])
+    if channels is not None and len(channels) != n_channels:
+        raise InputError(path, f"metadata names {len(channels)} channels but the stack has {n_channels}")
+    if panel is not None:
+        channels, labels, use = _apply_panel(path, channels, n_channels, panel)
+    else:
+        labels, use = (), ()
+    if any(not c.strip() for c in channels):
+        raise InputError(path, "a channel has an empty name")
+    refuse_duplicates(path, channels, "channel")
+
+    nbytes = int(np.prod(data.shape)) * np.dtype(data.dtype).itemsize
+    if lazy is None:
+        lazy = nbytes > LAZY_BYTES
+    import dask.array as da
+
+    if lazy:
+        array = data if isinstance(data, da.Array) else da.from_zarr(data)
+    else:
+        array = np.asarray(data[...])
+    _refuse_bad_values(path, array)
+    return Roi(array, tuple(channels), path, tuple(labels), tuple(use), pixel_size)
+
+
+def _refuse_bad_values(path: Path, array) -> None:
+    """Refuse NaN / Inf and negative pixels, counted in one pass.
+
+    Pixels are counts (ions, photons): a negative value is an offset or a signed
+    conversion, and every fraction of signal removed would then be meaningless. The
+    user subtracts or clips it knowingly before cleaning.
+    """
+    kind = np.dtype(array.dtype).kind
+    if kind not in "fi":
+        return
+    if isinstance(array, np.ndarray):
+        finite = np.isfinite(array) if kind == "f" else True
+        bad = int(array.size - np.count_nonzero(finite)) if kind == "f" else 0
+        negative = int(np.count_nonzero(array < 0))
+    else:
+        import dask.array as da
+
+        bad_lazy = (~da.isfinite(array)).sum() if kind == "f" else 0
+        bad, negative = (int(v) for v in da.compute(bad_lazy, (array < 0).sum()))
+    if bad:
+        raise InputError(path, f"{bad} pixel(s) are NaN or Inf; refusing to clean non-finite data")
+    if negative:
+        total = int(np.prod(array.shape))
+        raise InputError(path, f"{negative} of {total} pixels ({100 * negative / total:.3g} %) are "
+                         "negative; pixel values are counts and cannot be below 0 (subtract the "
+                         "offset or clip to 0 first)")
+
+
+def write_stack(path, data, channels, *, pixel_size=None, settings=None) -> Path:
+    """Write a stack in the format of ``settings`` (an :class:`OutputSettings`).
+
+    ``data`` is a numpy array, a dask array (computed chunk by chunk) or any array store
+    that can be sliced ``data[c, y0:y1, x0:x1]`` (a zarr array, a staged stack), read
+    band by band. Returns the final path.
+    """
+    settings = settings or OutputSettings()
+    writer = write_ome_zarr if settings.format == "ome-zarr" else write_ome_tiff
+    return writer(path, data, channels, pixel_size=pixel_size, settings=settings)
