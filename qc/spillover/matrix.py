@@ -116,6 +116,12 @@ def check_spillover(matrix: SpilloverMatrix, *, source: str | Path = "spillover 
 
 
 def check_values(values: np.ndarray, channels: Sequence[str], source) -> None:
+    """The value checks of :func:`check_spillover` on a bare (C, C) array.
+
+    Square and named by ``channels``; finite; diagonal 1; off-diagonal entries in
+    [0, 1); 2-norm condition number at most :data:`CONDITION_LIMIT`. Raises
+    :class:`~plexwash.qc.errors.InputError` naming ``source`` and the first problem.
+    """
     values = np.asarray(values)
     n = len(channels)
     if values.ndim != 2 or values.shape[0] != values.shape[1]:
