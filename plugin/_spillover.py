@@ -24,6 +24,8 @@ from ._layers import channel_layer, find_panel, fit_visible, grid_of, robust_lim
 HEATMAP_VIEWS = ("spillover %", "interval width %")
 #: Heatmap colours: the studio's own ramp, dark slate through teal to pale straw.
 HEATMAP_COLOURS = ("#1e2228", "#1f4f5a", "#2f8f84", "#8fd6a0", "#f4f1bb")
+#: What an edit's error names (the engine's own name for a matrix it is handed).
+SPILLOVER_SOURCE = "spillover matrix"
 
 
 def heatmap_values(matrix, view: str = HEATMAP_VIEWS[0]) -> np.ndarray:
@@ -65,22 +67,25 @@ def _interval(matrix) -> tuple[np.ndarray, np.ndarray]:
 def edit_entry(matrix, source: str, receiver: str, value: float):
     """A copy of a spillover matrix with one entry set by hand (its interval collapses to it).
 
+    The copy goes through the engine's matrix check
+    (:func:`plexwash.qc.spillover.check_spillover`, the one that reading a matrix file and
+    compensating with a matrix use), so the editor refuses exactly what the engine
+    refuses, with the engine's message.
+
     Raises
     ------
     InputError
-        A diagonal entry, an unknown channel, or a value outside [0, 1].
+        An unknown channel, or a matrix the engine refuses: a diagonal entry other than
+        1, an off-diagonal entry outside [0, 1), a singular or ill-conditioned matrix.
     """
     from plexwash.qc.errors import InputError
+    from plexwash.qc.spillover import check_spillover
 
     channels = list(matrix.channels)
     for name in (source, receiver):
         if name not in channels:
-            raise InputError("spillover", f"no channel named {name!r}")
+            raise InputError(SPILLOVER_SOURCE, f"no channel named {name!r}")
     i, j = channels.index(source), channels.index(receiver)
-    if i == j:
-        raise InputError("spillover", "diagonal entries are 1 by definition")
-    if not 0.0 <= value <= 1.0:
-        raise InputError("spillover", f"entry {source} -> {receiver} must be in [0, 1], got {value:g}")
     values = np.array(matrix.values, dtype=np.float64)
     values[i, j] = value
     changes = {"values": values}
@@ -90,7 +95,9 @@ def edit_entry(matrix, source: str, receiver: str, value: float):
             bound = np.array(bound, dtype=np.float64)
             bound[i, j] = value
             changes[name] = bound
-    return dataclasses.replace(matrix, **changes)
+    edited = dataclasses.replace(matrix, **changes)
+    check_spillover(edited, source=SPILLOVER_SOURCE)
+    return edited
 
 
 def compensated_stack(roi, matrix, *, method: str | None = None):
@@ -103,7 +110,7 @@ def compensated_stack(roi, matrix, *, method: str | None = None):
 
     used = [i for i, u in enumerate(roi.use) if u]
     names = [roi.channels[i] for i in used]
-    values = align_spillover(matrix, names, source="spillover matrix")
+    values = align_spillover(matrix, names, source=SPILLOVER_SOURCE)
     stack = np.asarray(roi.data[used] if len(used) < len(roi.channels) else roi.data, dtype=np.float32)
     kwargs = {"method": method} if method else {}
     return used, np.asarray(compensate(stack, values, **kwargs))
@@ -127,7 +134,8 @@ class SpilloverWidget(StudioWidget):
 
         self.controls_path = PathRow("controls.csv (single-stain controls)", file_types="Controls (*.csv)")
         estimate_controls = QPushButton("Estimate")
-        estimate_controls.setToolTip("median spillover ratios over each control's stained pixels")
+        estimate_controls.setToolTip("per channel pair, the ratio of background-subtracted sums over each "
+                                     "control's stained pixels (hot pixels left out), with a bootstrap interval")
         estimate_controls.clicked.connect(lambda: self.estimate_controls(self.controls_path.path()))
         self.controls_path.layout().addWidget(estimate_controls)
         layout.addWidget(self.controls_path)

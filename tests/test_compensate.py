@@ -4,15 +4,15 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from plexwash.qc import _nnls
 from plexwash.qc.errors import InputError
 from plexwash.qc.spillover import (
     SpilloverMatrix,
-    _prepare_components,
+    _nnls,
     compensate,
     compensate_array,
     plausible_pairs,
 )
+from plexwash.qc.spillover.solver import _prepare_components
 from scipy.optimize import nnls
 
 MASS_CHANNELS = ["Y89", "Pr141", "Nd142", "Nd143", "Nd144", "Nd145", "Nd146", "Sm147", "Nd148",

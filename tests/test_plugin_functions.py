@@ -291,6 +291,43 @@ def test_edit_entry_and_heatmap_values():
             edit_entry(matrix, *bad)
 
 
+EDIT_VALUES = np.array([[1.0, 0.01, 0.0], [0.0, 1.0, 0.02], [0.005, 0.0, 1.0]])
+
+
+@pytest.mark.parametrize(
+    ("edits", "problem"),
+    [
+        ([("A", "B", -0.01)], "off-diagonal entries must be in [0, 1)"),
+        ([("A", "B", 1.0)], "off-diagonal entries must be in [0, 1)"),  # 1 is not < 1
+        ([("A", "A", 0.5)], "must be 1"),
+        ([("A", "C", float("nan"))], "not a finite number"),
+        # each edit alone is fine; together rows A and B are near copies (condition 1.9e3)
+        ([("A", "B", 0.999), ("B", "A", 0.999)], "ill-conditioned"),
+    ],
+)
+def test_edit_entry_refuses_what_the_engine_refuses_with_its_message(edits, problem):
+    from plexwash.plugin._spillover import SPILLOVER_SOURCE, edit_entry
+    from plexwash.qc.spillover import SpilloverMatrix, check_spillover, compensate
+
+    matrix = SpilloverMatrix(("A", "B", "C"), EDIT_VALUES, EDIT_VALUES * 0.5, EDIT_VALUES * 1.5)
+    *fine, (source, receiver, value) = edits
+    for edit in fine:
+        matrix = edit_entry(matrix, *edit)
+    refused = np.array(matrix.values)
+    refused[matrix.channels.index(source), matrix.channels.index(receiver)] = value
+    refused = SpilloverMatrix(matrix.channels, refused)
+    with pytest.raises(InputError) as engine:
+        check_spillover(refused, source=SPILLOVER_SOURCE)
+    with pytest.raises(InputError) as editor:
+        edit_entry(matrix, source, receiver, value)
+    assert str(editor.value) == str(engine.value)
+    assert problem in str(editor.value)
+    # and compensating with that matrix is refused for the same reason
+    with pytest.raises(InputError) as used:
+        compensate(np.ones((3, 4, 4), np.float32), refused)
+    assert str(used.value).split(": ", 1)[1] == str(engine.value).split(": ", 1)[1]
+
+
 # --------------------------------------------------------------------------- cancelling
 
 

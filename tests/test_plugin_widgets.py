@@ -240,7 +240,14 @@ def test_speckle_rejects_out_of_range_values(make_napari_viewer, qtbot, cohort):
 
 def test_spillover_load_edit_preview_save(make_napari_viewer, qtbot, cohort, tmp_path):
     from plexwash.plugin._spillover import compensated_stack, heatmap_values
-    from plexwash.qc.spillover import align_spillover, compensate, read_spillover
+    from plexwash.qc.errors import InputError
+    from plexwash.qc.spillover import (
+        SpilloverMatrix,
+        align_spillover,
+        check_spillover,
+        compensate,
+        read_spillover,
+    )
 
     viewer = make_napari_viewer()
     spill = dock(viewer, "Spillover")
@@ -254,6 +261,14 @@ def test_spillover_load_edit_preview_save(make_napari_viewer, qtbot, cohort, tmp
     names = list(truth.channels)
     spill.set_entry(names[0], names[1], 0.0123)
     assert spill.state.spillover.values[0, 1] == 0.0123
+    # a value the engine refuses (off-diagonal entries must be < 1) is refused, in its words
+    spill.set_entry(names[0], names[1], 1.0)
+    assert spill.state.spillover.values[0, 1] == 0.0123
+    refused = np.array(spill.state.spillover.values)
+    refused[0, 1] = 1.0
+    with pytest.raises(InputError) as engine:
+        check_spillover(SpilloverMatrix(names, refused))
+    assert spill.status.text() == f"error: {engine.value}"
     spill.source.setCurrentText(names[3])
     spill.receiver.setCurrentText(names[4])
     assert spill.value.value() == pytest.approx(100 * truth.values[3, 4])

@@ -420,3 +420,16 @@ def test_tissue_inputs_checked(tmp_path, tissue_case):
         estimate_from_tissue([tmp_path / "a.ome.tiff"], max_value=1.5)
     with pytest.raises(InputError, match="file not found"):
         estimate_from_tissue([tmp_path / "none.ome.tiff"])
+
+
+def test_docstring_examples_run():
+    import doctest
+    import importlib
+
+    attempted = 0
+    for name in ("matrix", "files", "masses", "solver"):
+        module = importlib.import_module(f"plexwash.qc.spillover.{name}")
+        result = doctest.testmod(module, verbose=False)
+        assert result.failed == 0, module.__name__
+        attempted += result.attempted
+    assert attempted >= 15

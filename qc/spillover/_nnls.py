@@ -1,7 +1,7 @@
 """Compiled per-pixel NNLS for spillover compensation (numba kernels).
 
 The public entry point is :func:`plexwash.qc.spillover.compensate`, which prepares the
-matrices (:func:`plexwash.qc.spillover._prepare_components`) and calls the kernels here
+matrices (:func:`plexwash.qc.spillover.solver._prepare_components`) and calls the kernels here
 once per connected component of the spillover graph.
 
 Each pixel is ``min ||A x - y||_2`` subject to ``x >= 0`` with ``A = S^T`` square,
