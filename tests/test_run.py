@@ -721,8 +721,8 @@ def test_cancel_event_stops_after_the_roi_in_flight(tmp_path, monkeypatch):
 def test_staging_dir_is_passed_down_and_the_cli_reads_it_from_the_environment(tmp_path, monkeypatch):
     """``staging_dir`` reaches every staged wash of a run; the CLI (the only place that reads
     the environment) takes it from ``PLEXWASH_STAGING_DIR``."""
-    from plexwash.qc.io import roi as io_module
     from plexwash.qc.cli import main
+    from plexwash.qc.io import roi as io_module
     from plexwash.qc.io import write_ome_tiff
     from plexwash.qc.staging import Staging
 
