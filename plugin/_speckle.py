@@ -126,7 +126,7 @@ def recipe_apply_to_all(recipe, channel: str):
     >>> from plexwash.qc import default_recipe
     >>> r = default_recipe().with_channel("speckle", "Nd145", radius=4)
     >>> r2 = recipe_apply_to_all(r, "Nd145")
-    >>> r2.speckle.radius, dict(r2.channels)
+    >>> r2.speckle.radius, dict(r2.overrides)
     (4, {})
     """
     from plexwash.qc.recipe import recipe_from_dict
@@ -298,7 +298,7 @@ class SpeckleWidget(StudioWidget):
         for section, form in self.forms.items():
             settings = recipe.for_channel(section, channel) if channel else getattr(recipe, section)
             form.set_values(settings)
-        own = channel is not None and any(channel in recipe.channels.get(s, {}) for s in self.forms)
+        own = channel is not None and any(channel in recipe.overrides.get(s, {}) for s in self.forms)
         self.reset_button.setEnabled(own)
 
     # ------------------------------------------------------------------ channels

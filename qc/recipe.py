@@ -61,7 +61,7 @@ class Recipe:
         also an attribute (``recipe.hot_pixels``, ``recipe.compensation``, ``recipe.speckle``).
     quality, output
         The global settings of those sections.
-    channels : mapping
+    overrides : mapping
         ``{section: {channel: settings}}``: complete per-channel settings (global values
         with the channel's overrides applied) for channels that have overrides.
     source : Path or None
@@ -71,7 +71,7 @@ class Recipe:
     steps: Mapping[str, object]
     quality: QualitySettings
     output: OutputSettings
-    channels: Mapping[str, Mapping[str, object]] = dataclasses.field(default_factory=dict)
+    overrides: Mapping[str, Mapping[str, object]] = dataclasses.field(default_factory=dict)
     source: Path | None = None
 
     def __getattr__(self, name: str):
@@ -81,8 +81,8 @@ class Recipe:
         raise AttributeError(f"{type(self).__name__!r} object has no attribute {name!r}")
 
     def __reduce__(self):  # mapping proxies do not pickle: rebuild from plain dicts
-        channels = {section: dict(table) for section, table in self.channels.items()}
-        return _rebuild, (dict(self.steps), self.quality, self.output, channels, self.source)
+        overrides = {section: dict(table) for section, table in self.overrides.items()}
+        return _rebuild, (dict(self.steps), self.quality, self.output, overrides, self.source)
 
     def _with_section(self, section: str, settings, **changes) -> Recipe:
         if section in OTHER_SECTIONS:
@@ -92,7 +92,7 @@ class Recipe:
 
     def for_channel(self, section: str, channel: str):
         """Settings of ``section`` that apply to one channel."""
-        return self.channels.get(section, {}).get(channel, getattr(self, section))
+        return self.overrides.get(section, {}).get(channel, getattr(self, section))
 
     def for_channels(self, section: str, channels: Sequence[str]) -> list:
         """Settings of ``section`` for each channel, in order."""
@@ -100,7 +100,7 @@ class Recipe:
 
     def check_channels(self, channels: Sequence[str], *, roi: str | Path) -> None:
         """Refuse overrides that name channels the ROI does not have (likely typos)."""
-        for section, table in self.channels.items():
+        for section, table in self.overrides.items():
             unknown = [c for c in table if c not in channels]
             if unknown:
                 where = self.source or "recipe"
@@ -138,7 +138,7 @@ class Recipe:
     def to_dict(self) -> dict:
         """Plain nested dict of every setting (the canonical form that is hashed)."""
         out = {s: dataclasses.asdict(getattr(self, s)) for s in SECTION_ORDER}
-        for section, table in self.channels.items():
+        for section, table in self.overrides.items():
             base = dataclasses.asdict(getattr(self, section))
             out[section]["channels"] = {
                 ch: {k: v for k, v in dataclasses.asdict(obj).items() if v != base[k]}
@@ -164,14 +164,14 @@ class Recipe:
         current = dataclasses.asdict(getattr(self, section))
         current.update(changes)
         new = build_settings(cls, current, where=self.source or "recipe", section=section)
-        channels = {s: dict(t) for s, t in self.channels.items()}
-        if section in channels:  # overrides keep their own values on top of the new globals
-            overrides = self.to_dict()[section].get("channels", {})
-            channels[section] = {
+        overrides = {s: dict(t) for s, t in self.overrides.items()}
+        if section in overrides:  # overrides keep their own values on top of the new globals
+            changed = self.to_dict()[section].get("channels", {})
+            overrides[section] = {
                 ch: build_settings(cls, {**dataclasses.asdict(new), **ov}, where="recipe", section=section)
-                for ch, ov in overrides.items()
+                for ch, ov in changed.items()
             }
-        return self._with_section(section, new, channels=_freeze(channels))
+        return self._with_section(section, new, overrides=_freeze(overrides))
 
     def with_channel(self, section: str, channel: str, **changes) -> Recipe:
         """A copy with per-channel overrides of one section for one channel."""
@@ -181,17 +181,17 @@ class Recipe:
         current = dataclasses.asdict(self.for_channel(section, channel))
         current.update(changes)
         obj = build_settings(cls, current, where="recipe", section=f"{section}.channels.{channel}")
-        channels = {s: dict(t) for s, t in self.channels.items()}
-        channels.setdefault(section, {})[channel] = obj
-        return dataclasses.replace(self, channels=_freeze(channels))
+        overrides = {s: dict(t) for s, t in self.overrides.items()}
+        overrides.setdefault(section, {})[channel] = obj
+        return dataclasses.replace(self, overrides=_freeze(overrides))
 
     def to_toml(self) -> str:
         """The recipe as commented TOML text that :func:`load_recipe` reads back identically."""
         return _render(self)
 
 
-def _freeze(channels: dict) -> Mapping:
-    return MappingProxyType({s: MappingProxyType(dict(t)) for s, t in channels.items() if t})
+def _freeze(overrides: dict) -> Mapping:
+    return MappingProxyType({s: MappingProxyType(dict(t)) for s, t in overrides.items() if t})
 
 
 def _recipe(sections: Mapping[str, object], **extra) -> Recipe:
@@ -200,8 +200,8 @@ def _recipe(sections: Mapping[str, object], **extra) -> Recipe:
     return Recipe(steps=steps, **{name: sections[name] for name in OTHER_SECTIONS}, **extra)
 
 
-def _rebuild(steps: dict, quality, output, channels: dict, source) -> Recipe:
-    return _recipe({**steps, "quality": quality, "output": output}, channels=_freeze(channels), source=source)
+def _rebuild(steps: dict, quality, output, overrides: dict, source) -> Recipe:
+    return _recipe({**steps, "quality": quality, "output": output}, overrides=_freeze(overrides), source=source)
 
 
 def default_recipe() -> Recipe:
@@ -239,7 +239,7 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
     unknown = [k for k in data if k not in classes]
     if unknown:
         raise InputError(where, f"unknown recipe section [{unknown[0]}]; known: {', '.join(classes)}")
-    sections, channels = {}, {}
+    sections, all_overrides = {}, {}
     for name, cls in classes.items():
         table = dict(data.get(name, {}))
         if not isinstance(data.get(name, {}), Mapping):
@@ -259,8 +259,8 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
                 raise InputError(where, f"{name}.channels.{channel} must be a table")
             per[channel] = build_settings(cls, {**base, **values}, where=where,
                                           section=f"{name}.channels.{channel}")
-        channels[name] = per
-    return _recipe(sections, channels=_freeze(channels), source=source)
+        all_overrides[name] = per
+    return _recipe(sections, overrides=_freeze(all_overrides), source=source)
 
 
 # --------------------------------------------------------------------------- TOML text

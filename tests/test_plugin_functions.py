@@ -264,7 +264,7 @@ def test_apply_to_all_and_reset_channel():
     everywhere = recipe_apply_to_all(recipe, "A")
     assert everywhere.speckle.radius == 5 and everywhere.hot_pixels.ratio == 9.0
     assert everywhere.for_channel("speckle", "B").alpha == default_recipe().speckle.alpha
-    assert "speckle" not in everywhere.channels
+    assert "speckle" not in everywhere.overrides
     reset = recipe_reset_channel(recipe, "A")
     assert reset.for_channel("speckle", "A") == default_recipe().speckle
     assert reset.for_channel("speckle", "B").alpha == 0.05

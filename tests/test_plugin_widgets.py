@@ -182,7 +182,7 @@ def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tm
 
     speckle.apply_to_all()
     wait_preview(qtbot, speckle)
-    assert speckle.state.recipe.speckle.radius == 7 and not speckle.state.recipe.channels
+    assert speckle.state.recipe.speckle.radius == 7 and not speckle.state.recipe.overrides
     saved = speckle.save_recipe(tmp_path / "tuned")
     assert saved.name == "tuned.toml"
     assert load_recipe(saved).sha256() == speckle.state.recipe.sha256()

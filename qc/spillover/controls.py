@@ -19,7 +19,7 @@ def estimate_from_controls(
     panel=None,
     n_boot: int = 200,
     level: float = 0.95,
-    tile: int = 16,
+    block: int = 16,
     hot_ratio: float = 5.0,
     hot_min_excess: float = 10.0,
     seed: int = 0,
@@ -61,11 +61,11 @@ def estimate_from_controls(
     panel : str, Path or Panel, optional
         Needed for plain TIFF controls (see :func:`plexwash.qc.io.read_roi`).
     n_boot : int
-        Bootstrap replicates for the interval (resampling ``tile`` x ``tile`` pixel
+        Bootstrap replicates for the interval (resampling ``block`` x ``block`` pixel
         blocks with replacement, so spatially correlated signal is respected).
     level : float
         Coverage of each entry's percentile interval.
-    tile : int
+    block : int
         Block size of the bootstrap, in pixels.
     hot_ratio, hot_min_excess : float
         The hot-pixel rule.
@@ -107,7 +107,7 @@ def estimate_from_controls(
     ('Pr141', 'Nd142') (22, 22)
     """
     controls_csv = Path(controls_csv)
-    check_bootstrap(n_boot, level, tile)
+    check_bootstrap(n_boot, level, block)
     channels, controls = _read_controls(controls_csv, panel)
     n = len(channels)
     pairs = plausible_pairs(channels, all_pairs=all_pairs)
@@ -117,17 +117,17 @@ def estimate_from_controls(
         receivers = np.flatnonzero(pairs[source])
         if receivers.size == 0:
             continue
-        tile_num, tile_den = _control_tile_sums(data, source, receivers, path, channels,
-                                                tile, hot_ratio, hot_min_excess)
+        block_num, block_den = _control_block_sums(data, source, receivers, path, channels,
+                                                block, hot_ratio, hot_min_excess)
         for k, j in enumerate(receivers):
-            if tile_num[k].sum() >= tile_den[k].sum():
+            if block_num[k].sum() >= block_den[k].sum():
                 raise InputError(
                     path,
                     f"{channels[j]} measures as much as the stained channel {channels[source]}: "
                     "is the control's stained channel right?",
                 )
-            num[source][j].append(tile_num[k])
-            den[source][j].append(tile_den[k])
+            num[source][j].append(block_num[k])
+            den[source][j].append(block_den[k])
     values, low, high = np.eye(n), np.eye(n), np.eye(n)
     rng = np.random.default_rng(seed)
     alpha = (1.0 - level) / 2.0
@@ -198,8 +198,8 @@ def _neighbour_mean(plane: np.ndarray) -> np.ndarray:
     return (uniform_filter(plane, size=3, mode="mirror") * 9.0 - plane) / 8.0
 
 
-def _control_tile_sums(data, source, receivers, path, channels, tile, hot_ratio, hot_min_excess):
-    """Per-tile sums of (y_j - b_j) and (y_i - b_i) over the clean stained pixels."""
+def _control_block_sums(data, source, receivers, path, channels, block, hot_ratio, hot_min_excess):
+    """Per-block sums of (y_j - b_j) and (y_i - b_i) over the clean stained pixels."""
     from scipy.ndimage import binary_dilation
     from skimage.filters import threshold_otsu
 
@@ -215,10 +215,10 @@ def _control_tile_sums(data, source, receivers, path, channels, tile, hot_ratio,
     b_i = y_i[off & clean_i].mean()
     excess_i = y_i - b_i
     rows, cols = np.indices(y_i.shape)
-    tiles = (rows // tile) * (-(-y_i.shape[1] // tile)) + cols // tile
-    n_tiles = int(tiles.max()) + 1
-    tile_num = np.zeros((len(receivers), n_tiles))
-    tile_den = np.zeros((len(receivers), n_tiles))
+    blocks = (rows // block) * (-(-y_i.shape[1] // block)) + cols // block
+    n_blocks = int(blocks.max()) + 1
+    block_num = np.zeros((len(receivers), n_blocks))
+    block_den = np.zeros((len(receivers), n_blocks))
     for k, j in enumerate(receivers):
         y_j = data[j].astype(np.float64)
         keep = clean_i & ~_hot_mask(data[j], hot_ratio, hot_min_excess)
@@ -230,6 +230,6 @@ def _control_tile_sums(data, source, receivers, path, channels, tile, hot_ratio,
             keep = keep & (y_j <= expected + 6.0 * np.sqrt(expected) + 6.0)
         b_j = y_j[off & keep].mean() if (off & keep).any() else 0.0
         use = on & keep
-        tile_num[k] = np.bincount(tiles[use], weights=y_j[use] - b_j, minlength=n_tiles)
-        tile_den[k] = np.bincount(tiles[use], weights=excess_i[use], minlength=n_tiles)
-    return tile_num, tile_den
+        block_num[k] = np.bincount(blocks[use], weights=y_j[use] - b_j, minlength=n_blocks)
+        block_den[k] = np.bincount(blocks[use], weights=excess_i[use], minlength=n_blocks)
+    return block_num, block_den

@@ -21,11 +21,11 @@ def rounded_estimate(channels, values, low, high) -> SpilloverMatrix:
     return SpilloverMatrix(channels, r(values), np.minimum(r(low), r(values)), np.maximum(r(high), r(values)))
 
 
-def check_bootstrap(n_boot, level, tile) -> None:
-    """Refuse bootstrap settings an estimator cannot use (replicates, interval level, tile)."""
+def check_bootstrap(n_boot, level, block) -> None:
+    """Refuse bootstrap settings an estimator cannot use (replicates, interval level, block)."""
     if not (isinstance(n_boot, (int, np.integer)) and n_boot >= 10):
         raise InputError("n_boot", f"need at least 10 bootstrap replicates, got {n_boot!r}")
     if not 0.5 <= level < 1.0:
         raise InputError("level", f"interval level must be in [0.5, 1), got {level!r}")
-    if not (isinstance(tile, (int, np.integer)) and tile >= 2):
-        raise InputError("tile", f"tile must be an integer >= 2 pixels, got {tile!r}")
+    if not (isinstance(block, (int, np.integer)) and block >= 2):
+        raise InputError("block", f"block must be an integer >= 2 pixels, got {block!r}")

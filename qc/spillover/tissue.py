@@ -21,7 +21,7 @@ def estimate_from_tissue(
     all_pairs: bool = False,
     panel=None,
     bin_size: int = 4,
-    tile: int = 64,
+    block: int = 64,
     n_boot: int = 200,
     level: float = 0.95,
     max_value: float = 0.2,
@@ -62,8 +62,8 @@ def estimate_from_tissue(
     5. ``refinements`` times, the whole matrix is estimated again with the sources'
        counts compensated by the previous estimate (linear solve), because a source's
        counts hold spillover from third channels that does not spill on into ``j``;
-    6. the interval is estimate +/- z * SE, the SE from a bootstrap over ``tile`` x
-       ``tile`` pixel tiles within each ROI (final weights held fixed), ``z``
+    6. the interval is estimate +/- z * SE, the SE from a bootstrap over ``block`` x
+       ``block`` pixel blocks within each ROI (final weights held fixed), ``z``
        Bonferroni-corrected over all estimated pairs so the intervals hold jointly at
        ``level``. A pair is kept when its interval excludes 0 and its value is at least
        ``min_value``; other entries are 0.
@@ -86,8 +86,8 @@ def estimate_from_tissue(
         For plain TIFF ROIs.
     bin_size : int
         Block edge in pixels for step 1.
-    tile : int
-        Bootstrap tile edge in pixels.
+    block : int
+        Bootstrap block edge in pixels.
     n_boot : int
         Bootstrap replicates.
     level : float
@@ -131,9 +131,9 @@ def estimate_from_tissue(
     ...     print((22, 22), True)
     (22, 22) True
     """
-    check_bootstrap(n_boot, level, tile)
-    if not (isinstance(bin_size, (int, np.integer)) and 1 <= bin_size <= tile):
-        raise InputError("bin_size", f"bin_size must be an integer in [1, tile], got {bin_size!r}")
+    check_bootstrap(n_boot, level, block)
+    if not (isinstance(bin_size, (int, np.integer)) and 1 <= bin_size <= block):
+        raise InputError("bin_size", f"bin_size must be an integer in [1, block], got {bin_size!r}")
     if not 0.0 < max_value < 1.0:
         raise InputError("max_value", f"max_value must be in (0, 1), got {max_value!r}")
     if not 0.0 <= min_value < max_value:
@@ -142,14 +142,14 @@ def estimate_from_tissue(
         raise InputError("neighbourhood", f"neighbourhood must be an odd integer >= 1, got {neighbourhood!r}")
     if not (isinstance(refinements, (int, np.integer)) and 0 <= refinements <= 5):
         raise InputError("refinements", f"refinements must be an integer in [0, 5], got {refinements!r}")
-    channels, binned, tiles, grids = _binned_tissue(rois, panel, bin_size, tile, hot_ratio, hot_min_excess)
+    channels, binned, blocks, grids = _binned_tissue(rois, panel, bin_size, block, hot_ratio, hot_min_excess)
     smooth = functools.partial(_smooth_blocks, grids=grids, size=neighbourhood)
     n = len(channels)
     pairs = plausible_pairs(channels, all_pairs=all_pairs)
     n_rois = len(binned)
     counts = np.concatenate(binned, axis=1)  # (C, blocks)
     roi_of = np.concatenate([np.full(b.shape[1], r) for r, b in enumerate(binned)])
-    tile_of = np.concatenate(tiles)
+    block_of = np.concatenate(blocks)
     intercepts = (roi_of[:, None] == np.arange(n_rois)[None, :]).astype(np.float64)
     z = _bonferroni_z(level, max(int(pairs.sum()), 1))
     values = low = high = np.eye(n)
@@ -157,12 +157,12 @@ def estimate_from_tissue(
         for _round in range(1 + refinements):
             # Sources are the stains' own signal: undo the spillover found so far in them.
             sources_signal = counts if _round == 0 else np.linalg.solve(values.T, counts)
-            values, low, high = _tissue_round(counts, sources_signal, pairs, intercepts, tile_of,
+            values, low, high = _tissue_round(counts, sources_signal, pairs, intercepts, block_of,
                                               roi_of, n_boot, z, max_value, min_value, seed, smooth)
     return rounded_estimate(channels, values, low, high)
 
 
-def _tissue_round(counts, signal, pairs, intercepts, tile_of, roi_of, n_boot, z, max_value, min_value, seed,
+def _tissue_round(counts, signal, pairs, intercepts, block_of, roi_of, n_boot, z, max_value, min_value, seed,
                   smooth):
     """One pass of the lower-layer fits, every receiver; returns values, low, high."""
     n = counts.shape[0]
@@ -184,7 +184,7 @@ def _tissue_round(counts, signal, pairs, intercepts, tile_of, roi_of, n_boot, z,
             del sources[int(np.argmax(badness))]
         if not sources:
             continue
-        se = _tile_bootstrap_se(design, target, weights, tile_of, roi_of, n_rois, n_boot, rng)[n_rois:]
+        se = _block_bootstrap_se(design, target, weights, block_of, roi_of, n_rois, n_boot, rng)[n_rois:]
         for k, s, e in zip(sources, slopes, se, strict=True):
             if s - z * e > 0 and s >= min_value:
                 values[k, j], low[k, j], high[k, j] = s, s - z * e, s + z * e
@@ -197,8 +197,8 @@ def _bonferroni_z(level: float, n_tests: int) -> float:
     return float(norm.ppf(1.0 - (1.0 - level) / (2.0 * n_tests)))
 
 
-def _binned_tissue(rois, panel, bin_size, tile, hot_ratio, hot_min_excess):
-    """Block sums (C, blocks) per ROI after hot-pixel restoration, and each block's tile."""
+def _binned_tissue(rois, panel, bin_size, block, hot_ratio, hot_min_excess):
+    """Bin sums (C, bins) per ROI after hot-pixel restoration, and each bin's bootstrap block."""
     from ..io import Roi, read_roi
     from ..steps.hot_pixels import remove_hot_pixels
 
@@ -208,15 +208,15 @@ def _binned_tissue(rois, panel, bin_size, tile, hot_ratio, hot_min_excess):
     if not rois:
         raise InputError("rois", "no ROI given")
     channels = rois[0].channels
-    per_tile = tile // bin_size
-    binned, tiles, grids = [], [], []
+    per_block = block // bin_size
+    binned, blocks, grids = [], [], []
     for roi in rois:
         if set(roi.channels) != set(channels):
             raise InputError(roi.path, f"has other channels than {rois[0].path.name}")
         order = [roi.channels.index(c) for c in channels]
         n_y, n_x = roi.data.shape[1] // bin_size, roi.data.shape[2] // bin_size
         if n_y == 0 or n_x == 0:
-            raise InputError(roi.path, f"smaller than one {bin_size} x {bin_size} block")
+            raise InputError(roi.path, f"smaller than one {bin_size} x {bin_size} bin")
         sums = np.empty((len(channels), n_y * n_x))
         for c, k in enumerate(order):
             plane = np.asarray(roi.data[k], dtype=np.float32)
@@ -224,12 +224,12 @@ def _binned_tissue(rois, panel, bin_size, tile, hot_ratio, hot_min_excess):
             crop = clean[: n_y * bin_size, : n_x * bin_size].astype(np.float64)
             sums[c] = crop.reshape(n_y, bin_size, n_x, bin_size).sum(axis=(1, 3)).ravel()
         rows, cols = np.divmod(np.arange(n_y * n_x), n_x)
-        tile_id = (rows // per_tile) * (-(-n_x // per_tile)) + cols // per_tile
-        offset = sum(int(t.max()) + 1 for t in tiles)
+        block_id = (rows // per_block) * (-(-n_x // per_block)) + cols // per_block
+        offset = sum(int(t.max()) + 1 for t in blocks)
         binned.append(sums)
-        tiles.append(tile_id + offset)
+        blocks.append(block_id + offset)
         grids.append((n_y, n_x))
-    return tuple(channels), binned, tiles, grids
+    return tuple(channels), binned, blocks, grids
 
 
 def _weighted_solve(design, target, weights):
@@ -309,8 +309,8 @@ def _lower_layer_fit(design, target, *, smooth=None, tau: float = 0.1, c: float 
     return coef, weights
 
 
-def _tile_bootstrap_se(design, target, weights, tile_of, roi_of, n_rois, n_boot, rng):
-    """Bootstrap SE of a weighted fit, resampling tiles within each ROI (weights fixed).
+def _block_bootstrap_se(design, target, weights, block_of, roi_of, n_rois, n_boot, rng):
+    """Bootstrap SE of a weighted fit, resampling blocks within each ROI (weights fixed).
 
     Efron & Tibshirani (1993), ch. 6 and 13: the SE is read from the replicates'
     central 68 % interval (a robust form of their standard deviation).
@@ -318,16 +318,16 @@ def _tile_bootstrap_se(design, target, weights, tile_of, roi_of, n_rois, n_boot,
     from scipy.sparse import csr_matrix
 
     n, p = design.shape
-    n_tiles = int(tile_of.max()) + 1
+    n_blocks = int(block_of.max()) + 1
     weighted = design * weights[:, None]
-    per_tile = csr_matrix((np.ones(n), (tile_of, np.arange(n))), shape=(n_tiles, n))
-    gram_t = (per_tile @ (weighted[:, :, None] * design[:, None, :]).reshape(n, p * p)).reshape(n_tiles, p, p)
-    rhs_t = per_tile @ (weighted * target[:, None])
-    tile_roi = np.zeros(n_tiles, dtype=np.int64)
-    tile_roi[tile_of] = roi_of
-    counts = np.zeros((n_boot, n_tiles))
+    per_block = csr_matrix((np.ones(n), (block_of, np.arange(n))), shape=(n_blocks, n))
+    gram_t = (per_block @ (weighted[:, :, None] * design[:, None, :]).reshape(n, p * p)).reshape(n_blocks, p, p)
+    rhs_t = per_block @ (weighted * target[:, None])
+    block_roi = np.zeros(n_blocks, dtype=np.int64)
+    block_roi[block_of] = roi_of
+    counts = np.zeros((n_boot, n_blocks))
     for r in range(n_rois):
-        members = np.flatnonzero(tile_roi == r)
+        members = np.flatnonzero(block_roi == r)
         draws = rng.integers(0, members.size, size=(n_boot, members.size))
         for b in range(n_boot):
             counts[b, members] = np.bincount(draws[b], minlength=members.size)
@@ -343,6 +343,6 @@ def _tile_bootstrap_se(design, target, weights, tile_of, roi_of, n_rois, n_boot,
     if replicates.shape[0] < 10:
         return np.full(p, np.inf)
     # Half the central 68 % range: the SE of a normal estimate, but not blown up by the
-    # few replicates that happen to leave out the only tiles where a source is bright.
+    # few replicates that happen to leave out the only blocks where a source is bright.
     low, high = np.quantile(replicates, [0.158655, 0.841345], axis=0)
     return (high - low) / 2.0
