@@ -32,6 +32,8 @@ CONTRAST_SAMPLE = 262_144
 
 STAGE_SEPARATOR = " · "
 STAGES = ("raw", "washed", "removed", "compensated")
+#: Stages of the Speckle preview: two layers, kept for the session, their data swapped.
+PREVIEW_STAGES = ("washed", "removed")
 
 
 def colormap_for(index: int):
@@ -47,6 +49,11 @@ def colormap_for(index: int):
     name, hexcode = PALETTE[index % len(PALETTE)]
     rgb = tuple(int(hexcode[i : i + 2], 16) / 255 for i in (1, 3, 5))
     return _colormap(f"plexwash {name}", name, rgb)
+
+
+def grey_colormap():
+    """Black to white: single channels judged alike, whatever their hue."""
+    return _colormap("plexwash grey", "grey", (0.92, 0.92, 0.92))
 
 
 def removed_colormap():
@@ -212,6 +219,58 @@ def set_layer(viewer, layer_tuple: tuple):
         layer.contrast_limits = kwargs["contrast_limits"]
         return layer
     return viewer.add_image(data, **kwargs)
+
+
+def swap_layer(layer, data, kwargs: dict) -> None:
+    """Give a kept layer new pixels, contrast, name, metadata and scale (no remove / add).
+
+    Removing and re-adding layers while the canvas draws leaves GPU objects for the garbage
+    collector, which may run on any thread (a preview worker); swapping data does not.
+    """
+    name = kwargs["name"]
+    if layer.name != name:
+        layer.name = name
+    layer.metadata = kwargs["metadata"]
+    scale = kwargs.get("scale")
+    if scale is not None and tuple(layer.scale) != tuple(scale):
+        layer.scale = scale
+    if "translate" in kwargs and tuple(layer.translate) != tuple(kwargs["translate"]):
+        layer.translate = kwargs["translate"]
+    layer.data = data
+    limits = tuple(kwargs["contrast_limits"])
+    if tuple(layer.contrast_limits) != limits:
+        layer.contrast_limits = limits
+
+
+def show_roi_layers(viewer, layers: list[tuple]) -> bool:
+    """Put an ROI's channel layers on the viewer; returns True when the layers were kept.
+
+    When the raw layers already on the viewer are the same channels in the same order (ROIs
+    of a cohort share a panel), each keeps its place and gets the new ROI's data. Otherwise
+    the raw layers are replaced in one batch (one scene-graph update, one garbage collection).
+    Layers of other stages (previews, compensated) are kept: their owners swap their data.
+    """
+    raw = studio_layers(viewer, stage="raw")
+    channels = [kwargs["metadata"]["plexwash"]["channel"] for _, kwargs, _ in layers]
+    if [layer.metadata["plexwash"]["channel"] for layer in raw] == channels:
+        for layer, (data, kwargs, _) in zip(raw, layers, strict=True):
+            swap_layer(layer, data, kwargs)
+        return True
+    from napari.layers import Image
+
+    made = [Image(data, **kwargs) for data, kwargs, _ in layers]
+    with viewer.layers.batched_update():
+        for layer in studio_layers(viewer):
+            if layer.metadata["plexwash"]["stage"] in ("raw", "compensated"):
+                viewer.layers.remove(layer)
+        viewer.layers.extend(made)
+        for layer in studio_layers(viewer):  # previews stay on top of the raw channels
+            if layer.metadata["plexwash"]["stage"] in PREVIEW_STAGES:
+                viewer.layers.move(viewer.layers.index(layer), len(viewer.layers))
+    import gc
+
+    gc.collect()  # here, on the GUI thread, between draws: not later on a worker's thread
+    return False
 
 
 def grid_of(viewer):

@@ -103,6 +103,36 @@ def test_cohort_lists_flags_loads_and_views(make_napari_viewer, qtbot, cohort):
     assert tuple(raw[3].contrast_limits) == pytest.approx(robust_limits(roi.data[3], low=5, high=95))
 
 
+def test_roi_switches_keep_the_layers_and_swap_their_data(make_napari_viewer, qtbot, cohort):
+    """ROIs of a cohort share their channels: a switch keeps every layer (the same objects,
+    the preview's two layers included) and swaps their data; nothing is removed while the
+    canvas draws (removing layers there crashed the studio with the live preview on)."""
+    viewer = make_napari_viewer(show=True)
+    speckle = dock(viewer, "Speckle")
+    widget = open_first_roi(qtbot, viewer, cohort)
+    wait_preview(qtbot, speckle)
+    widget.set_view("preview")
+    wait_preview(qtbot, speckle)
+    before = list(viewer.layers)
+    assert len(studio_layers(viewer, stage="washed")) == len(studio_layers(viewer, stage="removed")) == 1
+    removed = []
+    viewer.layers.events.removed.connect(lambda event: removed.append(event.value))
+    paths = list_cohort(cohort / "cohort")
+    for row in (1, 0, 1):
+        speckle.last = None
+        wait(qtbot, widget.load(row))
+        wait_preview(qtbot, speckle)
+        roi = read_with_panel(paths[row])
+        assert list(viewer.layers) == before and not removed
+        for i, layer in enumerate(studio_layers(viewer, stage="raw")):
+            np.testing.assert_array_equal(layer.data, roi.data[i])
+            assert layer.metadata["plexwash"]["roi"] == str(paths[row])
+            assert tuple(layer.contrast_limits) == pytest.approx(robust_limits(roi.data[i]))
+        (washed,) = studio_layers(viewer, stage="washed")
+        assert washed.metadata["plexwash"]["roi"] == str(paths[row]) and washed.visible
+        assert grid_of(viewer).enabled and [layer.visible for layer in viewer.layers].count(True) == 3
+
+
 def test_cohort_refuses_a_folder_without_rois(make_napari_viewer, tmp_path):
     viewer = make_napari_viewer()
     widget = dock(viewer, "Cohort")
@@ -125,10 +155,17 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
     assert quality.table.rowCount() == len(expected)
     assert len(quality.figure.axes[0].patches) == len(expected)  # one bar per channel
 
-    sbr_column = 2
-    quality.table.sortItems(sbr_column, order=quality.table.horizontalHeader().sortIndicatorOrder().DescendingOrder)
+    from plexwash.plugin._quality import COLUMNS
+    from qtpy.QtCore import Qt
+
+    keys = [c[0] for c in COLUMNS]
+    channel_column, sbr_column = keys.index("channel"), keys.index("sbr")
+    assert keys.index("flags") < sbr_column  # the flags are not pushed off a narrow dock
+    # panel order first, as the plot
+    assert [quality.table.item(r, channel_column).text() for r in range(len(expected))] == list(roi.channels)
+    quality.table.sortItems(sbr_column, Qt.SortOrder.DescendingOrder)
     top = max(expected, key=lambda r: r["sbr"])
-    assert quality.table.item(0, 0).text() == top["channel"]
+    assert quality.table.item(0, channel_column).text() == top["channel"]
     quality.table.selectRow(0)
     assert quality.state.channel == top["channel"]
 
