@@ -68,6 +68,13 @@ def launch_studio(cohort_dir: str | Path | None = None, *, viewer=None, show: bo
     _give_cohort_room(main, docks["Cohort"])
     QTimer.singleShot(0, lambda: _give_cohort_room(main, docks["Cohort"]))  # once laid out
     docks["Speckle"].raise_()
+    if made_here:
+        import gc
+
+        # napari collects garbage on the GUI thread after layer changes: 0.3 s per collection
+        # over the half a million objects of a started studio. They live as long as the window,
+        # so move them out of the collector's sight (later objects are still collected).
+        gc.freeze()
     if cohort_dir is not None:
         cohort = widgets["Cohort"]
         cohort.open_cohort(cohort_dir)

@@ -30,11 +30,16 @@ from ._layers import (
     fit_visible,
     grey_colormap,
     grid_of,
+    hide_labels,
+    place,
     robust_limits,
+    roi_extent,
     roi_layer_data,
     set_colormap,
+    show_labels,
     show_roi_layers,
     studio_layers,
+    tile_origins,
 )
 from ._quality import measure_rows
 from ._reader import read_with_panel
@@ -217,6 +222,7 @@ class CohortWidget(StudioWidget):
         self.finish_layout()
         self.state.run_finished.connect(lambda summary: self.use_run_folder(summary.out_dir))
         self.state.view_requested.connect(lambda view: view != self.view and self.set_view(view))
+        self.state.preview_shown.connect(lambda: self.view == "preview" and self.set_view("preview"))
 
     # ------------------------------------------------------------------ cohort
 
@@ -409,43 +415,55 @@ class CohortWidget(StudioWidget):
         self.view = self.state.view = view
         for button in self.view_buttons.buttons():
             button.setChecked(button.objectName() == f"view_{view}")
-        if not studio_layers(self.viewer, stage="raw"):
+        if not studio_layers(self.viewer, stage="raw") or self.state.roi is None:
             return
         hues = overlay_hues(self.ticked(), self._marker_index()) if view == "overlay" else {}
-        grid = grid_of(self.viewer)
-        was_grid = grid.enabled
-        gridded = view in ("grid", "preview")
-        if not gridded:
-            grid.enabled = False  # leave the grid first: each change inside it relays out every cell
+        roi = self.state.roi
+        extent = roi_extent(roi)
+        raw = studio_layers(self.viewer, stage="raw")
         channel = self.state.channel
+        tiles = dict(zip((layer.metadata["plexwash"]["channel"] for layer in raw),
+                         tile_origins(len(raw), extent), strict=True)) if view == "grid" else {}
+        grid = grid_of(self.viewer)
+        if grid.enabled:
+            grid.enabled = False  # the studio tiles layers itself: napari's grid relays out per layer
+        labels = []
         for layer in studio_layers(self.viewer):
             meta = layer.metadata["plexwash"]
             stage = meta["stage"]
+            origin = (0.0, 0.0)
             if stage == "raw":
                 if view == "grid":
-                    show = True
+                    show, origin = True, tiles[meta["channel"]]
+                    labels.append((origin, layer.name))
                 elif view == "overlay":
                     show = meta["channel"] in hues
                 else:
                     show = meta["channel"] == channel
+                    if view == "preview" and show:
+                        labels.insert(0, (origin, f"{layer.name} · raw"))
                 set_colormap(layer, self._colormap(meta, hues.get(meta["channel"]), view))
             elif stage in PREVIEW_STAGES:
                 show = view == "preview" and meta["channel"] == channel
+                origin = tuple(layer.translate)
+                if show:
+                    labels.append((origin, layer.name))
             else:
-                show = False
+                show, origin = False, tuple(layer.translate)
             if layer.visible != show:
                 layer.visible = show
-            if layer.name_overlay.visible != gridded:
-                layer.name_overlay.visible = gridded
-        if gridded:
-            shape = (1, 3) if view == "preview" else (-1, -1)
-            if tuple(grid.shape) != shape:
-                grid.shape = shape
-            grid.enabled = True
-        if changed or was_grid != grid.enabled:
+            if show:
+                place(layer, origin)
+        if labels:
+            show_labels(self.viewer, labels, extent)
+        else:
+            hide_labels(self.viewer)
+        if changed:
             fit_visible(self.viewer)
         if view == "preview" and changed:
             self.state.view_requested.emit("preview")  # the Speckle widget makes one if needed
+        if view == "overlay" and len(hues) > len(PALETTE):
+            self.say(f"more than {len(PALETTE)} channels ticked: hues repeat", warn=True)
 
     def _marker_index(self) -> dict[str, int]:
         roi = self.state.roi

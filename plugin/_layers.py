@@ -273,6 +273,69 @@ def show_roi_layers(viewer, layers: list[tuple]) -> bool:
     return False
 
 
+#: Gap between tiles (grid cells, preview panels) as a fraction of the ROI's size.
+TILE_GAP = 0.05
+#: Name of the layer that labels and frames the tiles (not a studio layer: no metadata).
+LABELS_LAYER = "plexwash labels"
+
+
+def roi_extent(roi) -> tuple[float, float]:
+    """Height and width of an ROI in world units (pixels times the pixel size)."""
+    size = roi.pixel_size or (1.0, 1.0)
+    return roi.shape[1] * float(size[0]), roi.shape[2] * float(size[1])
+
+
+def tile_origins(n: int, extent: tuple[float, float]) -> list[tuple[float, float]]:
+    """Top-left corners of ``n`` tiles of one ROI's size, in rows, near square overall.
+
+    Examples
+    --------
+    >>> tile_origins(3, (10.0, 10.0))
+    [(0.0, 0.0), (0.0, 10.5), (10.5, 0.0)]
+    """
+    import math
+
+    height, width = extent
+    columns = max(1, math.ceil(math.sqrt(n * height / width))) if n else 1
+    pitch_y, pitch_x = height * (1 + TILE_GAP), width * (1 + TILE_GAP)
+    return [(float((k // columns) * pitch_y), float((k % columns) * pitch_x)) for k in range(n)]
+
+
+def place(layer, origin) -> None:
+    """Move a layer's top-left corner (only when it moves: each move redraws)."""
+    origin = tuple(float(v) for v in origin)
+    if tuple(float(v) for v in layer.translate) != origin:
+        layer.translate = origin
+
+
+def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) -> None:
+    """Frame and label tiles: one kept Shapes layer (rectangles with text), data swapped."""
+    height, width = extent
+    boxes = [np.array([[y, x], [y + height, x + width]]) for (y, x), _ in tiles]
+    features = {"label": [text for _, text in tiles]}
+    if LABELS_LAYER in viewer.layers:
+        layer = viewer.layers[LABELS_LAYER]
+        layer.data = boxes
+        layer.shape_type = ["rectangle"] * len(boxes)
+        layer.features = features
+        layer.edge_width = max(height, width) * 0.004
+        if not layer.visible:
+            layer.visible = True
+    else:
+        active = viewer.layers.selection.active
+        viewer.add_shapes(boxes, shape_type="rectangle", name=LABELS_LAYER, features=features,
+                          edge_color="#59616b", face_color="transparent", edge_width=max(height, width) * 0.004,
+                          text={"string": "{label}", "anchor": "upper_left", "color": "#e6e9ed", "size": 9,
+                                "translation": [max(height, width) * 0.01, max(height, width) * 0.01]},
+                          blending="translucent_no_depth")
+        viewer.layers.selection.active = active  # the labels never take the layer controls
+
+
+def hide_labels(viewer) -> None:
+    if LABELS_LAYER in viewer.layers and viewer.layers[LABELS_LAYER].visible:
+        viewer.layers[LABELS_LAYER].visible = False
+
+
 def grid_of(viewer):
     """The viewer's grid settings (``viewer.canvas.grid`` since napari 0.9, ``viewer.grid`` before)."""
     canvas = getattr(viewer, "canvas", None)

@@ -23,7 +23,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._common import PathRow, SettingsForm, StudioWidget
-from ._layers import channel_layer, studio_layers, swap_layer
+from ._layers import TILE_GAP, channel_layer, roi_extent, studio_layers, swap_layer
 from ._preview import LatestOnly
 
 
@@ -379,33 +379,29 @@ class SpeckleWidget(StudioWidget):
         self.last = result
         limits = tuple(raw[0].contrast_limits)
         removed, removed_limits, removed_name = self._removed_view(result)
-        show = self.state.view == "preview"
+        step = roi_extent(roi)[1] * (1 + TILE_GAP)  # beside the raw channel: raw | washed | removed
         made = []
-        for stage, data, lims, name in (("washed", result.washed, limits, "washed"),
-                                         ("removed", removed, removed_limits, removed_name)):
+        for k, (stage, data, lims, name) in enumerate((("washed", result.washed, limits, "washed"),
+                                                       ("removed", removed, removed_limits, removed_name)), 1):
             _, kwargs, _ = channel_layer(data, roi_path=roi.path, channel=result.channel,
                                          label=result.label, index=result.index, stage=stage,
-                                         pixel_size=roi.pixel_size, limits=lims, visible=show)
+                                         pixel_size=roi.pixel_size, limits=lims, visible=False)
             kwargs["name"] = f"{result.label} · {name}"
-            kwargs["translate"] = (0.0, 0.0)
+            kwargs["translate"] = (0.0, k * step)
             kept = studio_layers(self.viewer, stage=stage)
             if kept:
                 swap_layer(kept[0], data, kwargs)
-                if kept[0].visible != show:
-                    kept[0].visible = show
             else:
                 from napari.layers import Image
 
                 made.append(Image(data, **kwargs))
         if made:  # the first preview of the session: both layers at once, on top
             active = self.viewer.layers.selection.active
-            with self.viewer.layers.batched_update():
-                self.viewer.layers.extend(made)
-            for layer in made:
-                layer.name_overlay.visible = show
+            self.viewer.layers.extend(made)
             if active is not None:  # the raw channel stays the active layer (contrast controls)
                 self.viewer.layers.selection.active = active
         self._show_fractions(result)
+        self.state.preview_shown.emit()  # the Preview view shows and labels them
 
     def _removed_view(self, result: ChannelPreview):
         """The removed map chosen below the form: all steps, or what one step took away."""

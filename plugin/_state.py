@@ -55,6 +55,7 @@ class StudioState:
     run_finished = Signal(object)
     quality_changed = Signal(str)
     view_requested = Signal(str)
+    preview_shown = Signal()
     run_quality_changed = Signal(object)
 
     def __init__(self):

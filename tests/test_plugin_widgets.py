@@ -85,13 +85,21 @@ def test_cohort_lists_flags_loads_and_views(make_napari_viewer, qtbot, cohort):
         assert layer.blending == "additive"
 
     widget.set_view("grid")
-    assert grid_of(viewer).enabled and all(layer.visible for layer in raw)
+    assert all(layer.visible for layer in raw)  # tiled side by side, each framed and labelled
+    corners = {tuple(layer.translate) for layer in raw}
+    assert len(corners) == len(raw)
+    labels = viewer.layers["plexwash labels"]
+    assert labels.visible and list(labels.features["label"]) == list(roi.labels)
+    widget.look.setCurrentText("grey")
+    assert {layer.colormap.name for layer in raw} == {"plexwash grey"}
+    widget.look.setCurrentText("hues")
     chosen = [roi.channels[1], roi.channels[4], roi.channels[6]]
     widget.set_ticked(chosen)
     widget.set_view("overlay")
     assert not grid_of(viewer).enabled
     shown = [layer for layer in raw if layer.visible]
     assert [layer.metadata["plexwash"]["channel"] for layer in shown] == chosen
+    assert not labels.visible and {tuple(layer.translate) for layer in shown} == {(0.0, 0.0)}
     assert len({tuple(layer.colormap.colors[-1]) for layer in shown}) == 3  # distinct hues
     widget.channels.setCurrentRow(4)
     widget.set_view("single")
@@ -114,6 +122,7 @@ def test_roi_switches_keep_the_layers_and_swap_their_data(make_napari_viewer, qt
     widget.set_view("preview")
     wait_preview(qtbot, speckle)
     before = list(viewer.layers)
+    assert "plexwash labels" in viewer.layers
     assert len(studio_layers(viewer, stage="washed")) == len(studio_layers(viewer, stage="removed")) == 1
     removed = []
     viewer.layers.events.removed.connect(lambda event: removed.append(event.value))
@@ -130,7 +139,12 @@ def test_roi_switches_keep_the_layers_and_swap_their_data(make_napari_viewer, qt
             assert tuple(layer.contrast_limits) == pytest.approx(robust_limits(roi.data[i]))
         (washed,) = studio_layers(viewer, stage="washed")
         assert washed.metadata["plexwash"]["roi"] == str(paths[row]) and washed.visible
-        assert grid_of(viewer).enabled and [layer.visible for layer in viewer.layers].count(True) == 3
+        shown = [layer for layer in viewer.layers if layer.visible]
+        assert [layer.name for layer in shown] == [roi.labels[0], f"{roi.labels[0]} · washed",
+                                                   f"{roi.labels[0]} · removed", "plexwash labels"]
+        assert len({tuple(layer.translate) for layer in shown[:3]}) == 3  # side by side
+        assert list(viewer.layers["plexwash labels"].features["label"]) == [
+            f"{roi.labels[0]} · raw", f"{roi.labels[0]} · washed", f"{roi.labels[0]} · removed"]
 
 
 def test_cohort_refuses_a_folder_without_rois(make_napari_viewer, tmp_path):
