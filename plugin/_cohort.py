@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 from pathlib import Path
 
 from napari.qt.threading import thread_worker
@@ -427,7 +428,7 @@ class CohortWidget(StudioWidget):
         grid = grid_of(self.viewer)
         if grid.enabled:
             grid.enabled = False  # the studio tiles layers itself: napari's grid relays out per layer
-        labels = []
+        labels, plan = [], []
         for layer in studio_layers(self.viewer):
             meta = layer.metadata["plexwash"]
             stage = meta["stage"]
@@ -450,10 +451,16 @@ class CohortWidget(StudioWidget):
                     labels.append((origin, layer.name))
             else:
                 show, origin = False, tuple(layer.translate)
-            if layer.visible != show:
-                layer.visible = show
-            if show:
-                place(layer, origin)
+            plan.append((layer, show, origin))
+        changes = sum(layer.visible != show for layer, show, _ in plan)
+        # many layers shown or hidden: one scene-graph update at the end, not one per layer
+        batch = self.viewer.layers.batched_update() if changes > 2 else contextlib.nullcontext()
+        with batch:
+            for layer, show, origin in plan:
+                if layer.visible != show:
+                    layer.visible = show
+                if show:
+                    place(layer, origin)
         if labels:
             show_labels(self.viewer, labels, extent)
         else:
