@@ -360,7 +360,11 @@ class CohortWidget(StudioWidget):
     def _show_roi(self, path, roi, layers):
         if path != self._loading:
             return  # a later click won
-        show_roi_layers(self.viewer, layers)
+        kept = show_roi_layers(self.viewer, layers)
+        if not kept and self.state.owns_process:
+            import gc
+
+            gc.freeze()  # the new layers live as long as the window: later collections skip them
         self.state.set_roi(roi)
         self._fill_channels(roi)
         self.set_view(self.view)

@@ -130,6 +130,7 @@ class QualityWidget(StudioWidget):
         self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.verticalHeader().setVisible(False)
+        self.table.verticalHeader().setDefaultSectionSize(self.fontMetrics().height() + 6)  # compact rows
         self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
         self.table.horizontalHeader().setStretchLastSection(True)
         self.table.setSortingEnabled(True)
@@ -281,6 +282,11 @@ class QualityWidget(StudioWidget):
                 self.table.setItem(r, c, item)
         self.table.setSortingEnabled(True)
         self.table.sortItems(0, Qt.SortOrder.AscendingOrder)  # panel order, as the plot
+        flags = [c[0] for c in COLUMNS].index("flags")
+        flagged = [r for r in range(len(rows)) if self.table.item(r, flags).text()]
+        if flagged:  # bring the first flagged channel into view
+            self.table.scrollToItem(self.table.item(flagged[0], flags),
+                                    QAbstractItemView.ScrollHint.PositionAtCenter)
         self._plot()
 
     def _plot(self):
@@ -300,7 +306,8 @@ class QualityWidget(StudioWidget):
             ax.set_xticklabels([r.get("label") or r["channel"] for r in self.rows], rotation=90,
                                fontsize=6)
             ax.set_xlim(-0.6, len(self.rows) - 0.4)
-        self.figure.tight_layout(pad=0.4)
+        # fixed margins: tight_layout measures every label (a few hundred ms on the GUI thread)
+        self.figure.subplots_adjust(left=0.12, right=0.98, top=0.95, bottom=0.38)
         self.canvas.draw_idle()
 
     def _row_chosen(self):

@@ -138,6 +138,24 @@ def recipe_apply_to_all(recipe, channel: str):
     return recipe_from_dict(data, source=recipe.source)
 
 
+def own_settings(recipe, section: str, channel: str) -> dict:
+    """The settings of ``section`` that ``channel`` overrides: ``{name: global value}``.
+
+    Examples
+    --------
+    >>> from plexwash.qc import default_recipe
+    >>> r = default_recipe().with_channel("speckle", "Nd145", radius=4)
+    >>> own_settings(r, "speckle", "Nd145"), own_settings(r, "speckle", "Nd146")
+    ({'radius': 2}, {})
+    """
+    own = recipe.channels.get(section, {}).get(channel)
+    if own is None:
+        return {}
+    base = getattr(recipe, section)
+    return {f.name: getattr(base, f.name) for f in dataclasses.fields(own)
+            if getattr(own, f.name) != getattr(base, f.name)}
+
+
 def recipe_reset_channel(recipe, channel: str):
     """A recipe without ``channel``'s hot-pixel and speckle overrides."""
     from plexwash.qc.recipe import recipe_from_dict
@@ -215,7 +233,7 @@ class SpeckleWidget(StudioWidget):
         buttons = QHBoxLayout()
         self.all_button = QPushButton("Apply to all channels")
         self.all_button.setToolTip("make this channel's settings the global ones and drop per-channel changes")
-        self.all_button.clicked.connect(self.apply_to_all)
+        self.all_button.clicked.connect(lambda: self.apply_to_all())
         self.reset_button = QPushButton("Use global")
         self.reset_button.setToolTip("drop this channel's own settings")
         self.reset_button.clicked.connect(self.reset_channel)
@@ -265,12 +283,32 @@ class SpeckleWidget(StudioWidget):
         self.state.set_recipe(recipe)
         self.state.request_view("preview")  # tuning: show what the setting does
 
-    def apply_to_all(self) -> None:
+    def apply_to_all(self, *, ask: bool = True) -> bool:
+        """Make this channel's settings the global ones, dropping every per-channel setting.
+
+        When other channels have settings of their own, asks first (``ask=False``: does not).
+        Returns whether the recipe changed.
+        """
         channel = self.current_channel
         if channel is None:
-            return
+            return False
+        others = sorted({c for s in self.forms for c in self.state.recipe.channels.get(s, {}) if c != channel})
+        if others and ask:
+            from qtpy.QtWidgets import QMessageBox
+
+            names = ", ".join(self.state.label(c) if self.state.roi and c in self.state.roi.channels else c
+                              for c in others[:6]) + (f" and {len(others) - 6} more" if len(others) > 6 else "")
+            answer = QMessageBox.question(
+                self, "Apply to all channels",
+                f"Make the settings of {self.state.label(channel)} the global ones?\n\n"
+                f"This drops the own settings of {len(others)} other channel(s): {names}.")
+            if answer != QMessageBox.StandardButton.Yes:
+                self.say("nothing changed")
+                return False
         self.state.set_recipe(recipe_apply_to_all(self.state.recipe, channel))
-        self.say(f"settings of {self.state.label(channel)} now apply to every channel")
+        dropped = f"; own settings of {len(others)} other channel(s) dropped" if others else ""
+        self.say(f"settings of {self.state.label(channel)} now apply to every channel{dropped}")
+        return True
 
     def reset_channel(self) -> None:
         channel = self.current_channel
@@ -317,8 +355,17 @@ class SpeckleWidget(StudioWidget):
         for section, form in self.forms.items():
             settings = recipe.for_channel(section, channel) if channel else getattr(recipe, section)
             form.set_values(settings)
-        own = channel is not None and any(channel in recipe.channels.get(s, {}) for s in self.forms)
-        self.reset_button.setEnabled(own)
+        marked = []
+        for section, form in self.forms.items():
+            own = own_settings(recipe, section, channel) if channel else {}
+            form.mark(own)
+            marked += [f"{self.step_labels[section]} {name.replace('_', ' ')}" for name in own]
+        has_own = channel is not None and any(channel in recipe.channels.get(s, {}) for s in self.forms)
+        self.reset_button.setEnabled(has_own)
+        if channel is not None and self.state.roi is not None and channel in self.state.roi.channels:
+            label = self.state.label(channel)
+            self.say(f"{label}: own " + ", ".join(marked) + " (highlighted)" if marked
+                     else f"{label}: global settings")
 
     # ------------------------------------------------------------------ channels
 

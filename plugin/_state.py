@@ -72,6 +72,9 @@ class StudioState:
         self.pending_quality: set[str] = set()
         self.run_quality: dict[str, dict[str, list[dict]]] = {}
         self.view = "single"
+        #: True when ``launch_studio`` made the window (the studio owns the process): long-lived
+        #: objects may then be moved out of the garbage collector's sight (``gc.freeze``).
+        self.owns_process = False
         self._planes: dict[int, np.ndarray] = {}
 
     # ------------------------------------------------------------------ setters

@@ -231,8 +231,11 @@ def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tm
     wait_preview(qtbot, speckle)
     np.testing.assert_array_equal(washed_layer.data, remove_speckle(hot.image, radius=7).image)
 
-    speckle.apply_to_all()
+    label = speckle.forms["speckle"].layout().labelForField(speckle.forms["speckle"].editors["radius"])
+    assert "bold" in label.styleSheet() and "own speckle radius" in speckle.status.text()
+    assert speckle.apply_to_all(ask=False)
     wait_preview(qtbot, speckle)
+    assert "bold" not in label.styleSheet()
     assert speckle.state.recipe.speckle.radius == 7 and not speckle.state.recipe.channels
     saved = speckle.save_recipe(tmp_path / "tuned")
     assert saved.name == "tuned.toml"
