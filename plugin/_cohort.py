@@ -143,6 +143,7 @@ class CohortWidget(StudioWidget):
         self.run_quality: dict[str, dict[str, list[dict]]] = {}  # the state's, also kept here
         self._flag_worker = None
         self._loading: Path | None = None
+        self._framing: tuple | None = None
         layout = self.layout()
 
         layout.addWidget(self.caption("Cohort folder"))
@@ -367,8 +368,8 @@ class CohortWidget(StudioWidget):
             gc.freeze()  # the new layers live as long as the window: later collections skip them
         self.state.set_roi(roi)
         self._fill_channels(roi)
+        self._framing = None  # a new ROI: fit it
         self.set_view(self.view)
-        fit_visible(self.viewer)
         self.say(f"{roi.name}: {len(roi.channels)} channels, {roi.shape[1]} x {roi.shape[2]} px")
 
     def _fill_channels(self, roi):
@@ -450,6 +451,8 @@ class CohortWidget(StudioWidget):
                 set_colormap(layer, self._colormap(meta, hues.get(meta["channel"]), view))
             elif stage in PREVIEW_STAGES:
                 show = view == "preview" and meta["channel"] == channel
+                if stage == "washed":  # washed in the raw channel's look, to compare like with like
+                    set_colormap(layer, self._colormap(meta, None, view))
                 origin = tuple(layer.translate)
                 if show:
                     labels.append((origin, layer.name))
@@ -469,7 +472,11 @@ class CohortWidget(StudioWidget):
             show_labels(self.viewer, labels, extent)
         else:
             hide_labels(self.viewer)
-        if changed:
+        # refit when what is shown changes shape (another view, the preview's panels arriving,
+        # another ROI size), not on a channel switch: the user's zoom stays for comparing channels
+        framing = (view, sum(show for _, show, _ in plan), extent)
+        if changed or framing != self._framing:
+            self._framing = framing
             fit_visible(self.viewer)
         if view == "preview" and changed:
             self.state.view_requested.emit("preview")  # the Speckle widget makes one if needed

@@ -231,12 +231,17 @@ def swap_layer(layer, data, kwargs: dict) -> None:
     if layer.name != name:
         layer.name = name
     layer.metadata = kwargs["metadata"]
+    if "colormap" in kwargs:
+        set_colormap(layer, kwargs["colormap"])
     scale = kwargs.get("scale")
     if scale is not None and tuple(layer.scale) != tuple(scale):
         layer.scale = scale
     if "translate" in kwargs and tuple(layer.translate) != tuple(kwargs["translate"]):
         layer.translate = kwargs["translate"]
     layer.data = data
+    if not layer.visible:  # napari skips a hidden layer's refresh, extent included, and the
+        # camera would later fit the old ROI's size; setting a transform renews the extent only
+        layer.translate = tuple(layer.translate)
     limits = tuple(kwargs["contrast_limits"])
     if tuple(layer.contrast_limits) != limits:
         layer.contrast_limits = limits
@@ -315,10 +320,10 @@ def label_size(texts, width: float) -> float:
     Examples
     --------
     >>> label_size(["CD3"], 300.0), label_size(["a-very-long-marker-name"], 300.0)
-    (36.0, 14.347826086956522)
+    (36.0, 12.391304347826088)
     """
     longest = max([len(t) for t in texts] + [1])
-    return float(min(0.12 * width, 1.1 * width / longest))
+    return float(min(0.12 * width, 0.95 * width / longest))
 
 
 def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) -> None:
@@ -330,14 +335,14 @@ def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) ->
     edge = max(height, width) * 0.004
     if LABELS_LAYER in viewer.layers:
         layer = viewer.layers[LABELS_LAYER]
+        if not layer.visible:  # first: a hidden layer's extent is not renewed with its data
+            layer.visible = True
         layer.data = boxes
         layer.shape_type = ["rectangle"] * len(boxes)
         layer.features = {"label": texts}
         layer.edge_width = edge
         if layer.text.size != size:
             layer.text.size = size
-        if not layer.visible:
-            layer.visible = True
     else:
         active = viewer.layers.selection.active
         viewer.add_shapes(boxes, shape_type="rectangle", name=LABELS_LAYER, features={"label": texts},
@@ -362,7 +367,7 @@ def grid_of(viewer):
 
 def fit_visible(viewer) -> None:
     """Fit the camera to the visible layers (hidden side-by-side previews do not count)."""
-    shown = [layer for layer in viewer.layers if layer.visible]
+    shown = [layer for layer in viewer.layers if layer.visible and layer.name != LABELS_LAYER]
     try:
         viewer.reset_view(layers=shown or None)
     except TypeError:  # napari before 0.9 fits every layer

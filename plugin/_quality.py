@@ -284,9 +284,8 @@ class QualityWidget(StudioWidget):
         self.table.sortItems(0, Qt.SortOrder.AscendingOrder)  # panel order, as the plot
         flags = [c[0] for c in COLUMNS].index("flags")
         flagged = [r for r in range(len(rows)) if self.table.item(r, flags).text()]
-        if flagged:  # bring the first flagged channel into view
-            self.table.scrollToItem(self.table.item(flagged[0], flags),
-                                    QAbstractItemView.ScrollHint.PositionAtCenter)
+        if flagged:  # bring the first flagged channel into view (its row; the columns from the left)
+            self.table.scrollToItem(self.table.item(flagged[0], 0), QAbstractItemView.ScrollHint.PositionAtCenter)
         self._plot()
 
     def _plot(self):

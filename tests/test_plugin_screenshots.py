@@ -30,6 +30,7 @@ def test_screenshots_of_each_mode(make_napari_viewer, qtbot, demo_dir):
     ARTIFACTS.mkdir(exist_ok=True)
     viewer = make_napari_viewer(show=True)
     launch_studio(demo_dir / "cohort", viewer=viewer, run=False)
+    viewer.window.resize(1280, 1000)  # the whole test screen: a canvas wide enough to judge
     widgets = {name.split(" (")[0]: w for name, w in viewer.window.dock_widgets.items()}
     cohort, speckle, quality = widgets["Cohort"], widgets["Speckle"], widgets["Quality"]
     qtbot.waitUntil(lambda: cohort.state.roi is not None, timeout=WAIT_MS)
@@ -54,7 +55,7 @@ def test_screenshots_of_each_mode(make_napari_viewer, qtbot, demo_dir):
         f"{roi.labels[2]} · washed", f"{roi.labels[2]} · removed"]
 
     # Quality: an ROI with flags (the failed stain), its table with the flags column in view
-    widgets["Quality"].parent().raise_() if hasattr(widgets["Quality"].parent(), "raise_") else None
+    quality.parent().raise_()  # its tab in front, for the window screenshot
     wait(qtbot, quality.measure())
     quality.stage.setCurrentIndex(1)
     wait(qtbot, quality.measure())
@@ -64,6 +65,8 @@ def test_screenshots_of_each_mode(make_napari_viewer, qtbot, demo_dir):
 
     flags = [c[0] for c in COLUMNS].index("flags")
     table = quality.table
+    flagged = [r for r in range(table.rowCount()) if table.item(r, flags).text()]
+    assert table.visualItemRect(table.item(flagged[0], flags)).intersects(table.viewport().rect())
     right = table.columnViewportPosition(flags) + min(table.columnWidth(flags), 60)
     assert 0 <= table.columnViewportPosition(flags) and right <= table.viewport().width()
     quality.grab().save(str(ARTIFACTS / "studio_quality.png"))
