@@ -1,9 +1,10 @@
 """Screenshots of each mode of the studio, for a reviewer to open.
 
-Written to the ``artifacts`` folder beside this file (ignored by git): the labelled grid, the one-channel view,
-the preview (raw | washed | removed, labelled), and the Quality widget with its flags
-column in view. Each is also checked: the canvas is drawn (not one flat colour), and the
-flags column of the quality table lies inside the visible part of the table.
+Written to the ``artifacts`` folder beside this file (ignored by git): the labelled grid,
+the one-channel view, the preview (raw | washed | removed, labelled), and the Quality
+widget with its flags column in view. Each is also checked: the canvas is drawn (not one
+flat colour), and the flags column of the quality table lies inside the visible part of
+the table.
 """
 
 from __future__ import annotations
