@@ -53,14 +53,15 @@ def launch_studio(cohort_dir: str | Path | None = None, *, viewer=None, show: bo
     else:
         made_here = False
     widgets, docks = {}, {}
+    classes = _widget_classes()
     for title in WIDGETS:
-        # Cohort goes left on its own; the others share one tabbed column on the right
+        # Cohort goes left on its own; the others share one tabbed column on the right. Docked
+        # by name (not through the plugin menu) so that titles read "Speckle", not "Speckle (plexwash)"
         tabify = title not in ("Cohort", "Spillover")
-        dock, widget = viewer.window.add_plugin_dock_widget(PLUGIN, title, tabify=tabify)
+        widget = classes[title](viewer)
+        dock = viewer.window.add_dock_widget(widget, name=title, area="left" if title == "Cohort" else "right",
+                                             tabify=tabify)
         widgets[title], docks[title] = widget, dock
-        if title == "Cohort":
-            dock.parent().addDockWidget(Qt.DockWidgetArea.LeftDockWidgetArea, dock)
-        dock.setWindowTitle(title)  # tabs read "Speckle", not "Speckle (plexwash)"
     main = docks["Cohort"].parent()
     if made_here:
         _roomy(main)
@@ -68,6 +69,14 @@ def launch_studio(cohort_dir: str | Path | None = None, *, viewer=None, show: bo
     _give_cohort_room(main, docks["Cohort"])
     QTimer.singleShot(0, lambda: _give_cohort_room(main, docks["Cohort"]))  # once laid out
     docks["Speckle"].raise_()
+    if made_here:
+        import gc
+
+        # napari collects garbage on the GUI thread after layer changes: 0.3 s per collection
+        # over the half a million objects of a started studio. They live as long as the window,
+        # so move them out of the collector's sight (later objects are still collected).
+        gc.freeze()
+        widgets["Cohort"].state.owns_process = True
     if cohort_dir is not None:
         cohort = widgets["Cohort"]
         cohort.open_cohort(cohort_dir)
@@ -76,6 +85,21 @@ def launch_studio(cohort_dir: str | Path | None = None, *, viewer=None, show: bo
     if run:
         napari.run()
     return viewer
+
+
+def _widget_classes() -> dict:
+    """Dock title -> widget class, from the npe2 manifest (the one list of the widgets)."""
+    import importlib
+
+    import yaml
+
+    manifest = yaml.safe_load((Path(__file__).with_name("napari.yaml")).read_text(encoding="utf-8"))
+    commands = {c["id"]: c["python_name"] for c in manifest["contributions"]["commands"]}
+    out = {}
+    for entry in manifest["contributions"]["widgets"]:
+        module, _, name = commands[entry["command"]].partition(":")
+        out[entry["display_name"]] = getattr(importlib.import_module(module), name)
+    return out
 
 
 def _give_cohort_room(main, cohort_dock) -> None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 from pathlib import Path
 
 from napari.qt.threading import thread_worker
@@ -9,6 +10,7 @@ from qtpy.QtCore import Qt
 from qtpy.QtWidgets import (
     QAbstractItemView,
     QButtonGroup,
+    QComboBox,
     QDoubleSpinBox,
     QHBoxLayout,
     QHeaderView,
@@ -24,18 +26,27 @@ from ._common import WARN, PathRow, StudioWidget, qcolor
 from ._layers import (
     CONTRAST_PERCENTILES,
     PALETTE,
+    PREVIEW_STAGES,
     colormap_for,
     fit_visible,
+    grey_colormap,
     grid_of,
+    hide_labels,
+    place,
     robust_limits,
+    roi_extent,
     roi_layer_data,
     set_colormap,
+    show_labels,
+    show_roi_layers,
     studio_layers,
+    tile_origins,
 )
 from ._quality import measure_rows
 from ._reader import read_with_panel
 
-VIEWS = ("single", "grid", "overlay")
+VIEWS = ("single", "grid", "overlay", "preview")
+LOOKS = ("hues", "grey", "one hue")
 
 
 # --------------------------------------------------------------------------- plain functions
@@ -84,6 +95,33 @@ def summarize_flags(rows: list[dict]) -> str:
     return " · ".join(parts) if parts else "ok"
 
 
+def overlay_hues(ticked: list[str], marker_index: dict[str, int]) -> dict[str, int]:
+    """Palette position of each ticked channel: its marker's own hue, the next free one on a clash.
+
+    A marker keeps its colour from one overlay to the next unless another ticked marker
+    already has it.
+
+    Examples
+    --------
+    >>> overlay_hues(["A", "I"], {"A": 0, "B": 1, "I": 8})  # 8 wraps onto 0: the next free hue
+    {'A': 0, 'I': 1}
+    >>> overlay_hues(["B", "I"], {"A": 0, "B": 1, "I": 8})
+    {'B': 1, 'I': 0}
+    """
+    taken: set[int] = set()
+    out = {}
+    for channel in ticked:
+        hue = marker_index.get(channel, 0) % len(PALETTE)
+        for step in range(len(PALETTE)):
+            candidate = (hue + step) % len(PALETTE)
+            if candidate not in taken:
+                hue = candidate
+                break
+        taken.add(hue)
+        out[channel] = hue
+    return out
+
+
 def load_roi(path, *, low: float = CONTRAST_PERCENTILES[0], high: float = CONTRAST_PERCENTILES[1]):
     """Read an ROI with its panel and make its channel layers with robust contrast."""
     roi = read_with_panel(path)
@@ -102,9 +140,10 @@ class CohortWidget(StudioWidget):
     def __init__(self, napari_viewer, parent=None):
         super().__init__(napari_viewer, parent)
         self.view = "single"
-        self.run_quality: dict[str, dict[str, list[dict]]] = {}
+        self.run_quality: dict[str, dict[str, list[dict]]] = {}  # the state's, also kept here
         self._flag_worker = None
         self._loading: Path | None = None
+        self._framing: tuple | None = None
         layout = self.layout()
 
         layout.addWidget(self.caption("Cohort folder"))
@@ -147,7 +186,8 @@ class CohortWidget(StudioWidget):
         for key, text, tip in (
             ("single", "One", "only the chosen channel"),
             ("grid", "Grid", "every channel side by side"),
-            ("overlay", "Overlay", "ticked channels blended, one hue each"),
+            ("overlay", "Overlay", "ticked channels blended, one hue per marker"),
+            ("preview", "Preview", "the chosen channel raw | washed | removed (Speckle widget settings)"),
         ):
             button = QPushButton(text)
             button.setCheckable(True)
@@ -156,8 +196,18 @@ class CohortWidget(StudioWidget):
             button.clicked.connect(lambda _=False, k=key: self.set_view(k))
             self.view_buttons.addButton(button)
             views.addWidget(button)
+        self.view_buttons.setExclusive(True)
         self.view_buttons.buttons()[0].setChecked(True)
         layout.addLayout(views)
+        look_row = QHBoxLayout()
+        look_row.addWidget(QLabel("one / grid in"))
+        self.look = QComboBox()
+        self.look.setObjectName("view_look")
+        self.look.addItems(list(LOOKS))
+        self.look.setToolTip("hues: one per marker · grey or one hue: judge single channels alike")
+        self.look.currentTextChanged.connect(lambda _t: self.set_view(self.view))
+        look_row.addWidget(self.look, 1)
+        layout.addLayout(look_row)
 
         contrast = QHBoxLayout()
         contrast.addWidget(QLabel("contrast %"))
@@ -173,6 +223,8 @@ class CohortWidget(StudioWidget):
         layout.addLayout(contrast)
         self.finish_layout()
         self.state.run_finished.connect(lambda summary: self.use_run_folder(summary.out_dir))
+        self.state.view_requested.connect(lambda view: view != self.view and self.set_view(view))
+        self.state.preview_shown.connect(lambda: self.view == "preview" and self.set_view("preview"))
 
     # ------------------------------------------------------------------ cohort
 
@@ -192,16 +244,18 @@ class CohortWidget(StudioWidget):
         self.table.setRowCount(len(rois))
         from plexwash.qc.io import roi_stem
 
+        own_table = folder / "quality.csv"
         for r, path in enumerate(rois):
             item = QTableWidgetItem(roi_stem(path))
             item.setData(Qt.ItemDataRole.UserRole, str(path))
             self.table.setItem(r, 0, item)
-            self.table.setItem(r, 1, QTableWidgetItem("measuring…"))
+            self.table.setItem(r, 1, QTableWidgetItem("—" if own_table.is_file() else "measuring…"))
             self.table.setItem(r, 2, QTableWidgetItem("—"))
-        own_table = folder / "quality.csv"
-        if own_table.is_file():  # a run's output folder opened as a cohort
-            self.use_run_folder(folder)
-        elif self.state.run_dir is not None:
+        if own_table.is_file():  # a run's output folder opened as a cohort: its ROIs are washed
+            self.use_run_folder(folder)  # the run's own table, raw and washed; nothing re-measured
+            self.say(f"{len(rois)} washed ROIs in {folder}: flags from its quality.csv")
+            return None
+        if self.state.run_dir is not None:
             self.use_run_folder(self.state.run_dir)
         self.say(f"{len(rois)} ROIs in {folder}")
         return self._measure_flags(rois)
@@ -252,7 +306,7 @@ class CohortWidget(StudioWidget):
     def use_run_folder(self, folder):
         """Show washed flags from ``<folder>/quality.csv`` (raw ones too when it holds them)."""
         if folder is None:
-            self.run_quality = {}
+            self.run_quality = self.state.run_quality = {}
             return
         folder = Path(folder)
         table = folder / "quality.csv"
@@ -261,15 +315,17 @@ class CohortWidget(StudioWidget):
             return
         self.run_folder.set_path(folder)
         self.state.run_dir = folder
-        self.run_quality = read_quality_table(table)
+        self.run_quality = self.state.run_quality = read_quality_table(table)
+        own = self.state.cohort is not None and self.state.cohort.resolve() == folder.resolve()
         for name, stages in self.run_quality.items():
             row = self._row_of(name)
             if row is None:
                 continue
             if "washed" in stages:
                 self._set_flag_cell(row, 2, stages["washed"])
-            if "raw" in stages and self.table.item(row, 1).text() == "measuring…":
+            if "raw" in stages and (own or self.table.item(row, 1).text() == "measuring…"):
                 self._set_flag_cell(row, 1, stages["raw"])
+        self.state.run_quality_changed.emit(folder)
 
     def _row_of(self, name: str):
         for r in range(self.table.rowCount()):
@@ -305,14 +361,15 @@ class CohortWidget(StudioWidget):
     def _show_roi(self, path, roi, layers):
         if path != self._loading:
             return  # a later click won
-        for layer in studio_layers(self.viewer):
-            self.viewer.layers.remove(layer)
-        for data, kwargs, _ in layers:
-            self.viewer.add_image(data, **kwargs)
+        kept = show_roi_layers(self.viewer, layers)
+        if not kept and self.state.owns_process:
+            import gc
+
+            gc.freeze()  # the new layers live as long as the window: later collections skip them
         self.state.set_roi(roi)
         self._fill_channels(roi)
+        self._framing = None  # a new ROI: fit it
         self.set_view(self.view)
-        fit_visible(self.viewer)
         self.say(f"{roi.name}: {len(roi.channels)} channels, {roi.shape[1]} x {roi.shape[2]} px")
 
     def _fill_channels(self, roi):
@@ -356,43 +413,89 @@ class CohortWidget(StudioWidget):
     # ------------------------------------------------------------------ views
 
     def set_view(self, view: str) -> None:
-        """``single`` (the chosen channel), ``grid`` (all channels) or ``overlay`` (ticked ones)."""
+        """``single`` (the chosen channel), ``grid`` (all channels, labelled), ``overlay`` (ticked
+        ones blended) or ``preview`` (the chosen channel raw | washed | removed, labelled)."""
         if view not in VIEWS:
             raise ValueError(f"view must be one of {VIEWS}, got {view!r}")
         changed = view != self.view
-        self.view = view
+        self.view = self.state.view = view
         for button in self.view_buttons.buttons():
             button.setChecked(button.objectName() == f"view_{view}")
-        if not studio_layers(self.viewer, stage="raw"):
+        if not studio_layers(self.viewer, stage="raw") or self.state.roi is None:
             return
-        order = {c: k for k, c in enumerate(self.ticked())} if view == "overlay" else {}
+        hues = overlay_hues(self.ticked(), self._marker_index()) if view == "overlay" else {}
+        roi = self.state.roi
+        extent = roi_extent(roi)
+        raw = studio_layers(self.viewer, stage="raw")
+        channel = self.state.channel
+        tiles = dict(zip((layer.metadata["plexwash"]["channel"] for layer in raw),
+                         tile_origins(len(raw), extent), strict=True)) if view == "grid" else {}
         grid = grid_of(self.viewer)
-        was_grid = grid.enabled
-        if view != "grid":
-            grid.enabled = False  # leave the grid first: each change inside it relays out every cell
+        if grid.enabled:
+            grid.enabled = False  # the studio tiles layers itself: napari's grid relays out per layer
+        labels, plan = [], []
         for layer in studio_layers(self.viewer):
             meta = layer.metadata["plexwash"]
-            channel, stage = meta["channel"], meta["stage"]
+            stage = meta["stage"]
+            origin = (0.0, 0.0)
             if stage == "raw":
                 if view == "grid":
-                    show, hue = True, meta["index"]
-                elif view == "overlay":  # hues follow tick order: any combination gets distinct ones
-                    show, hue = channel in order, order.get(channel, meta["index"])
+                    show, origin = True, tiles[meta["channel"]]
+                    labels.append((origin, layer.name))
+                elif view == "overlay":
+                    show = meta["channel"] in hues
                 else:
-                    show, hue = channel == self.state.channel, meta["index"]
-                set_colormap(layer, colormap_for(hue))
-            elif stage in ("washed", "removed"):  # the Speckle preview sits beside its raw channel
-                show = view == "single" and channel == self.state.channel
+                    show = meta["channel"] == channel
+                    if view == "preview" and show:
+                        labels.insert(0, (origin, f"{layer.name} · raw"))
+                set_colormap(layer, self._colormap(meta, hues.get(meta["channel"]), view))
+            elif stage in PREVIEW_STAGES:
+                show = view == "preview" and meta["channel"] == channel
+                if stage == "washed":  # washed in the raw channel's look, to compare like with like
+                    set_colormap(layer, self._colormap(meta, None, view))
+                origin = tuple(layer.translate)
+                if show:
+                    labels.append((origin, layer.name))
             else:
-                show = False
-            if layer.visible != show:
-                layer.visible = show
-        if view == "grid":
-            grid.enabled = True
-        if changed or was_grid != grid.enabled:
+                show, origin = False, tuple(layer.translate)
+            plan.append((layer, show, origin))
+        changes = sum(layer.visible != show for layer, show, _ in plan)
+        # many layers shown or hidden: one scene-graph update at the end, not one per layer
+        batch = self.viewer.layers.batched_update() if changes > 2 else contextlib.nullcontext()
+        with batch:
+            for layer, show, origin in plan:
+                if layer.visible != show:
+                    layer.visible = show
+                if show:
+                    place(layer, origin)
+        if labels:
+            show_labels(self.viewer, labels, extent)
+        else:
+            hide_labels(self.viewer)
+        # refit when what is shown changes shape (another view, the preview's panels arriving,
+        # another ROI size), not on a channel switch: the user's zoom stays for comparing channels
+        framing = (view, sum(show for _, show, _ in plan), extent)
+        if changed or framing != self._framing:
+            self._framing = framing
             fit_visible(self.viewer)
-        if view == "overlay" and len(self.ticked()) > len(PALETTE):
+        if view == "preview" and changed:
+            self.state.view_requested.emit("preview")  # the Speckle widget makes one if needed
+        if view == "overlay" and len(hues) > len(PALETTE):
             self.say(f"more than {len(PALETTE)} channels ticked: hues repeat", warn=True)
+
+    def _marker_index(self) -> dict[str, int]:
+        roi = self.state.roi
+        return {} if roi is None else {c: i for i, c in enumerate(roi.channels)}
+
+    def _colormap(self, meta: dict, hue: int | None, view: str):
+        if view == "overlay":
+            return colormap_for(hue if hue is not None else meta["index"])
+        look = self.look.currentText()
+        if look == "grey":
+            return grey_colormap()
+        if look == "one hue":
+            return colormap_for(0)
+        return colormap_for(meta["index"])
 
     def rescale(self) -> None:
         """Contrast of every studio layer from the percentile boxes."""

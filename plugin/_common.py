@@ -224,6 +224,21 @@ class SettingsForm(QWidget):
         finally:
             self._quiet = False
 
+    def mark(self, own: dict) -> None:
+        """Show which settings are this channel's own: ``{name: global value}`` rows in the accent
+        colour, bold, with the global value in the tooltip; every other row plain."""
+        form = self.layout()
+        for name, editor in self.editors.items():
+            label = form.labelForField(editor)
+            if label is None:
+                continue
+            if name in own:
+                label.setStyleSheet(f"color: {ACCENT}; font-weight: bold;")
+                label.setToolTip(f"this channel's own value; the global one is {own[name]!r}")
+            else:
+                label.setStyleSheet("")
+                label.setToolTip("")
+
     def values(self) -> dict:
         out = {}
         for name, editor in self.editors.items():

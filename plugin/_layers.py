@@ -32,6 +32,8 @@ CONTRAST_SAMPLE = 262_144
 
 STAGE_SEPARATOR = " · "
 STAGES = ("raw", "washed", "removed", "compensated")
+#: Stages of the Speckle preview: two layers, kept for the session, their data swapped.
+PREVIEW_STAGES = ("washed", "removed")
 
 
 def colormap_for(index: int):
@@ -47,6 +49,11 @@ def colormap_for(index: int):
     name, hexcode = PALETTE[index % len(PALETTE)]
     rgb = tuple(int(hexcode[i : i + 2], 16) / 255 for i in (1, 3, 5))
     return _colormap(f"plexwash {name}", name, rgb)
+
+
+def grey_colormap():
+    """Black to white: single channels judged alike, whatever their hue."""
+    return _colormap("plexwash grey", "grey", (0.92, 0.92, 0.92))
 
 
 def removed_colormap():
@@ -214,6 +221,143 @@ def set_layer(viewer, layer_tuple: tuple):
     return viewer.add_image(data, **kwargs)
 
 
+def swap_layer(layer, data, kwargs: dict) -> None:
+    """Give a kept layer new pixels, contrast, name, metadata and scale (no remove / add).
+
+    Removing and re-adding layers while the canvas draws leaves GPU objects for the garbage
+    collector, which may run on any thread (a preview worker); swapping data does not.
+    """
+    name = kwargs["name"]
+    if layer.name != name:
+        layer.name = name
+    layer.metadata = kwargs["metadata"]
+    if "colormap" in kwargs:
+        set_colormap(layer, kwargs["colormap"])
+    scale = kwargs.get("scale")
+    if scale is not None and tuple(layer.scale) != tuple(scale):
+        layer.scale = scale
+    if "translate" in kwargs and tuple(layer.translate) != tuple(kwargs["translate"]):
+        layer.translate = kwargs["translate"]
+    layer.data = data
+    if not layer.visible:  # napari skips a hidden layer's refresh, extent included, and the
+        # camera would later fit the old ROI's size; setting a transform renews the extent only
+        layer.translate = tuple(layer.translate)
+    limits = tuple(kwargs["contrast_limits"])
+    if tuple(layer.contrast_limits) != limits:
+        layer.contrast_limits = limits
+
+
+def show_roi_layers(viewer, layers: list[tuple]) -> bool:
+    """Put an ROI's channel layers on the viewer; returns True when the layers were kept.
+
+    When the raw layers already on the viewer are the same channels in the same order (ROIs
+    of a cohort share a panel), each keeps its place and gets the new ROI's data. Otherwise
+    the raw layers are replaced in one batch (one scene-graph update, one garbage collection).
+    Layers of other stages (previews, compensated) are kept: their owners swap their data.
+    """
+    raw = studio_layers(viewer, stage="raw")
+    channels = [kwargs["metadata"]["plexwash"]["channel"] for _, kwargs, _ in layers]
+    if [layer.metadata["plexwash"]["channel"] for layer in raw] == channels:
+        for layer, (data, kwargs, _) in zip(raw, layers, strict=True):
+            swap_layer(layer, data, kwargs)
+        return True
+    from napari.layers import Image
+
+    made = [Image(data, **kwargs) for data, kwargs, _ in layers]
+    with viewer.layers.batched_update():
+        for layer in studio_layers(viewer):
+            if layer.metadata["plexwash"]["stage"] in ("raw", "compensated"):
+                viewer.layers.remove(layer)
+        viewer.layers.extend(made)
+        for layer in studio_layers(viewer):  # previews stay on top of the raw channels
+            if layer.metadata["plexwash"]["stage"] in PREVIEW_STAGES:
+                viewer.layers.move(viewer.layers.index(layer), len(viewer.layers))
+    import gc
+
+    gc.collect()  # here, on the GUI thread, between draws: not later on a worker's thread
+    return False
+
+
+#: Gap between tiles (grid cells, preview panels) as a fraction of the ROI's size.
+TILE_GAP = 0.05
+#: Name of the layer that labels and frames the tiles (not a studio layer: no metadata).
+LABELS_LAYER = "plexwash labels"
+
+
+def roi_extent(roi) -> tuple[float, float]:
+    """Height and width of an ROI in world units (pixels times the pixel size)."""
+    size = roi.pixel_size or (1.0, 1.0)
+    return roi.shape[1] * float(size[0]), roi.shape[2] * float(size[1])
+
+
+def tile_origins(n: int, extent: tuple[float, float]) -> list[tuple[float, float]]:
+    """Top-left corners of ``n`` tiles of one ROI's size, in rows, near square overall.
+
+    Examples
+    --------
+    >>> tile_origins(3, (10.0, 10.0))
+    [(0.0, 0.0), (0.0, 10.5), (10.5, 0.0)]
+    """
+    import math
+
+    height, width = extent
+    columns = max(1, math.ceil(math.sqrt(n * height / width))) if n else 1
+    pitch_y, pitch_x = height * (1 + TILE_GAP), width * (1 + TILE_GAP)
+    return [(float((k // columns) * pitch_y), float((k % columns) * pitch_x)) for k in range(n)]
+
+
+def place(layer, origin) -> None:
+    """Move a layer's top-left corner (only when it moves: each move redraws)."""
+    origin = tuple(float(v) for v in origin)
+    if tuple(float(v) for v in layer.translate) != origin:
+        layer.translate = origin
+
+
+def label_size(texts, width: float) -> float:
+    """Text size of tile labels in world units (the text zooms with the image): the longest
+    label fills at most about nine tenths of a tile's width, and never more than 12 %.
+
+    Examples
+    --------
+    >>> label_size(["CD3"], 300.0), label_size(["a-very-long-marker-name"], 300.0)
+    (36.0, 12.391304347826088)
+    """
+    longest = max([len(t) for t in texts] + [1])
+    return float(min(0.12 * width, 0.95 * width / longest))
+
+
+def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) -> None:
+    """Frame and label tiles: one kept Shapes layer (rectangles with text), data swapped."""
+    height, width = extent
+    boxes = [np.array([[y, x], [y + height, x + width]]) for (y, x), _ in tiles]
+    texts = [text for _, text in tiles]
+    size = label_size(texts, width)
+    edge = max(height, width) * 0.004
+    if LABELS_LAYER in viewer.layers:
+        layer = viewer.layers[LABELS_LAYER]
+        if not layer.visible:  # first: a hidden layer's extent is not renewed with its data
+            layer.visible = True
+        layer.data = boxes
+        layer.shape_type = ["rectangle"] * len(boxes)
+        layer.features = {"label": texts}
+        layer.edge_width = edge
+        if layer.text.size != size:
+            layer.text.size = size
+    else:
+        active = viewer.layers.selection.active
+        viewer.add_shapes(boxes, shape_type="rectangle", name=LABELS_LAYER, features={"label": texts},
+                          edge_color="#59616b", face_color="transparent", edge_width=edge,
+                          text={"string": "{label}", "anchor": "upper_left", "color": "#e6e9ed", "size": size,
+                                "scaling": True, "translation": [0.02 * height, 0.02 * width]},
+                          blending="translucent_no_depth")
+        viewer.layers.selection.active = active  # the labels never take the layer controls
+
+
+def hide_labels(viewer) -> None:
+    if LABELS_LAYER in viewer.layers and viewer.layers[LABELS_LAYER].visible:
+        viewer.layers[LABELS_LAYER].visible = False
+
+
 def grid_of(viewer):
     """The viewer's grid settings (``viewer.canvas.grid`` since napari 0.9, ``viewer.grid`` before)."""
     canvas = getattr(viewer, "canvas", None)
@@ -223,7 +367,7 @@ def grid_of(viewer):
 
 def fit_visible(viewer) -> None:
     """Fit the camera to the visible layers (hidden side-by-side previews do not count)."""
-    shown = [layer for layer in viewer.layers if layer.visible]
+    shown = [layer for layer in viewer.layers if layer.visible and layer.name != LABELS_LAYER]
     try:
         viewer.reset_view(layers=shown or None)
     except TypeError:  # napari before 0.9 fits every layer

@@ -23,7 +23,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._common import PathRow, SettingsForm, StudioWidget
-from ._layers import channel_layer, fit_visible, grid_of, studio_layers
+from ._layers import TILE_GAP, channel_layer, roi_extent, studio_layers, swap_layer
 from ._preview import LatestOnly
 
 
@@ -32,9 +32,6 @@ def _sections() -> tuple[str, ...]:
     from plexwash.qc.steps.registry import per_channel_steps
 
     return tuple(step.name for step in per_channel_steps())
-
-#: Gap between the raw, washed and removed copies, as a fraction of the ROI width.
-SIDE_GAP = 0.04
 
 
 @dataclasses.dataclass(frozen=True)
@@ -56,6 +53,8 @@ class ChannelPreview:
     removed_limits : (float, float)
         Contrast for the removed map.
     notes : tuple of str
+    removed_by_step : dict
+        Step -> what that step alone took away from this channel (its removed map).
     """
 
     channel: str
@@ -67,6 +66,7 @@ class ChannelPreview:
     total_fraction: float
     removed_limits: tuple[float, float]
     notes: tuple[str, ...] = ()
+    removed_by_step: dict = dataclasses.field(default_factory=dict)
 
 
 def _removed_limits(removed: np.ndarray) -> tuple[float, float]:
@@ -114,8 +114,9 @@ class PreviewEngine:
         notes = list(washed.notes)
         if not roi.use[index]:
             notes.insert(0, "the panel marks this channel use = no: it passes through")
+        by_step = {step: np.asarray(maps[0]) for step, maps in washed.removed.items()}
         return ChannelPreview(washed.channels[0], washed.labels[0], index, plane, removed, fractions, fraction,
-                              _removed_limits(removed), tuple(notes))
+                              _removed_limits(removed), tuple(notes), by_step)
 
 
 def recipe_apply_to_all(recipe, channel: str):
@@ -135,6 +136,24 @@ def recipe_apply_to_all(recipe, channel: str):
     for section in _sections():
         data[section] = dataclasses.asdict(recipe.for_channel(section, channel))
     return recipe_from_dict(data, source=recipe.source)
+
+
+def own_settings(recipe, section: str, channel: str) -> dict:
+    """The settings of ``section`` that ``channel`` overrides: ``{name: global value}``.
+
+    Examples
+    --------
+    >>> from plexwash.qc import default_recipe
+    >>> r = default_recipe().with_channel("speckle", "Nd145", radius=4)
+    >>> own_settings(r, "speckle", "Nd145"), own_settings(r, "speckle", "Nd146")
+    ({'radius': 2}, {})
+    """
+    own = recipe.overrides.get(section, {}).get(channel)
+    if own is None:
+        return {}
+    base = getattr(recipe, section)
+    return {f.name: getattr(base, f.name) for f in dataclasses.fields(own)
+            if getattr(own, f.name) != getattr(base, f.name)}
 
 
 def recipe_reset_channel(recipe, channel: str):
@@ -161,7 +180,6 @@ class SpeckleWidget(StudioWidget):
         self.runner = LatestOnly(self._compute, self._deliver, delay_ms=delay_ms, parent=self)
         self.runner.failed.connect(self.fail)
         self.last: ChannelPreview | None = None
-        self._framed: tuple | None = None
         layout = self.layout()
 
         layout.addWidget(self.caption("Channel"))
@@ -173,8 +191,12 @@ class SpeckleWidget(StudioWidget):
         self.live.setChecked(True)
         self.live.setToolTip("recompute the preview after every change")
         self.live.toggled.connect(lambda on: self.preview() if on else None)
+        self.show_button = QPushButton("Show")
+        self.show_button.setToolTip("the Preview view: raw | washed | removed of this channel")
+        self.show_button.clicked.connect(lambda: self.state.request_view("preview"))
         row.addWidget(self.channel, 1)
         row.addWidget(self.live)
+        row.addWidget(self.show_button)
         layout.addLayout(row)
 
         self.forms = {}
@@ -194,11 +216,24 @@ class SpeckleWidget(StudioWidget):
         self.removed_detail.setWordWrap(True)
         layout.addWidget(self.removed_text)
         layout.addWidget(self.removed_detail)
+        removed_row = QHBoxLayout()
+        removed_row.addWidget(QLabel("removed map of"))
+        self.removed_step = QComboBox()
+        self.removed_step.setObjectName("removed_step")
+        self.removed_step.addItem("all steps", "")
+        from plexwash.qc.steps.registry import STEPS
+
+        for entry in STEPS:
+            self.removed_step.addItem(entry.label, entry.name)
+        self.removed_step.setToolTip("which step's removed map the preview shows")
+        self.removed_step.currentIndexChanged.connect(lambda _i: self.last is not None and self._deliver(self.last))
+        removed_row.addWidget(self.removed_step, 1)
+        layout.addLayout(removed_row)
 
         buttons = QHBoxLayout()
         self.all_button = QPushButton("Apply to all channels")
         self.all_button.setToolTip("make this channel's settings the global ones and drop per-channel changes")
-        self.all_button.clicked.connect(self.apply_to_all)
+        self.all_button.clicked.connect(lambda: self.apply_to_all())
         self.reset_button = QPushButton("Use global")
         self.reset_button.setToolTip("drop this channel's own settings")
         self.reset_button.clicked.connect(self.reset_channel)
@@ -223,6 +258,7 @@ class SpeckleWidget(StudioWidget):
         self.state.channel_changed.connect(self._select_channel)
         self.state.recipe_changed.connect(self._recipe_changed)
         self.state.spillover_changed.connect(lambda _m: self.preview())
+        self.state.view_requested.connect(lambda view: view == "preview" and self.preview(force=True))
         self._roi_changed(self.state.roi)
 
     # ------------------------------------------------------------------ settings
@@ -245,13 +281,34 @@ class SpeckleWidget(StudioWidget):
             self.fail(exc)
             return
         self.state.set_recipe(recipe)
+        self.state.request_view("preview")  # tuning: show what the setting does
 
-    def apply_to_all(self) -> None:
+    def apply_to_all(self, *, ask: bool = True) -> bool:
+        """Make this channel's settings the global ones, dropping every per-channel setting.
+
+        When other channels have settings of their own, asks first (``ask=False``: does not).
+        Returns whether the recipe changed.
+        """
         channel = self.current_channel
         if channel is None:
-            return
+            return False
+        others = sorted({c for s in self.forms for c in self.state.recipe.channels.get(s, {}) if c != channel})
+        if others and ask:
+            from qtpy.QtWidgets import QMessageBox
+
+            names = ", ".join(self.state.label(c) if self.state.roi and c in self.state.roi.channels else c
+                              for c in others[:6]) + (f" and {len(others) - 6} more" if len(others) > 6 else "")
+            answer = QMessageBox.question(
+                self, "Apply to all channels",
+                f"Make the settings of {self.state.label(channel)} the global ones?\n\n"
+                f"This drops the own settings of {len(others)} other channel(s): {names}.")
+            if answer != QMessageBox.StandardButton.Yes:
+                self.say("nothing changed")
+                return False
         self.state.set_recipe(recipe_apply_to_all(self.state.recipe, channel))
-        self.say(f"settings of {self.state.label(channel)} now apply to every channel")
+        dropped = f"; own settings of {len(others)} other channel(s) dropped" if others else ""
+        self.say(f"settings of {self.state.label(channel)} now apply to every channel{dropped}")
+        return True
 
     def reset_channel(self) -> None:
         channel = self.current_channel
@@ -298,8 +355,17 @@ class SpeckleWidget(StudioWidget):
         for section, form in self.forms.items():
             settings = recipe.for_channel(section, channel) if channel else getattr(recipe, section)
             form.set_values(settings)
-        own = channel is not None and any(channel in recipe.overrides.get(s, {}) for s in self.forms)
-        self.reset_button.setEnabled(own)
+        marked = []
+        for section, form in self.forms.items():
+            own = own_settings(recipe, section, channel) if channel else {}
+            form.mark(own)
+            marked += [f"{self.step_labels[section]} {name.replace('_', ' ')}" for name in own]
+        has_own = channel is not None and any(channel in recipe.overrides.get(s, {}) for s in self.forms)
+        self.reset_button.setEnabled(has_own)
+        if channel is not None and self.state.roi is not None and channel in self.state.roi.channels:
+            label = self.state.label(channel)
+            self.say(f"{label}: own " + ", ".join(marked) + " (highlighted)" if marked
+                     else f"{label}: global settings")
 
     # ------------------------------------------------------------------ channels
 
@@ -314,7 +380,6 @@ class SpeckleWidget(StudioWidget):
             wanted = self.state.channel if self.state.channel in roi.channels else roi.channels[0]
             self.channel.setCurrentIndex(roi.channels.index(wanted))
         self.channel.blockSignals(False)
-        self._framed = None
         self._show_settings()
         if roi is not None:
             self.preview()
@@ -334,9 +399,12 @@ class SpeckleWidget(StudioWidget):
 
     # ------------------------------------------------------------------ preview
 
-    def preview(self) -> None:
-        """Ask for a fresh preview of the current channel (coalesced, latest wins)."""
-        if not self.live.isChecked() or self.state.roi is None or self.current_channel is None:
+    def preview(self, *, force: bool = False) -> None:
+        """Ask for a fresh preview of the current channel (coalesced, latest wins).
+
+        Runs when "live" is ticked, or when asked (``force``: the Preview view was chosen).
+        """
+        if not (self.live.isChecked() or force) or self.state.roi is None or self.current_channel is None:
             return
         state = self.state
         channel = self.current_channel
@@ -347,48 +415,48 @@ class SpeckleWidget(StudioWidget):
         return self.engine.compute(roi, recipe, channel, spillover=spillover)
 
     def _deliver(self, result: ChannelPreview) -> None:
+        """Swap the preview into the two kept preview layers (made once, never removed)."""
         roi = self.state.roi
         if not self.alive() or roi is None or result.channel not in roi.channels:
             return
-        if result.label not in self.viewer.layers:
-            return  # the ROI's layers were removed (or the viewer is closing): nothing to preview beside
+        raw = [layer for layer in studio_layers(self.viewer, stage="raw")
+               if layer.metadata["plexwash"]["channel"] == result.channel]
+        if not raw:
+            return  # the ROI's layers are gone (or the viewer is closing): nothing to preview beside
         self.last = result
-        raw = self.viewer.layers[result.label]
-        limits = tuple(raw.contrast_limits)
-        width = roi.shape[2] * (roi.pixel_size[1] if roi.pixel_size else 1.0)
-        step = width * (1 + SIDE_GAP)
-        for layer in studio_layers(self.viewer):  # previews of another channel go
-            meta = layer.metadata["plexwash"]
-            if meta["stage"] in ("washed", "removed") and meta["channel"] != result.channel:
-                self.viewer.layers.remove(layer)
-        for stage, data, lims, k in (("washed", result.washed, limits, 1),
-                                     ("removed", result.removed, result.removed_limits, 2)):
-            name = f"{result.label} · {stage}"
-            if name in self.viewer.layers:
-                layer = self.viewer.layers[name]
-                layer.data = data
-                if tuple(layer.contrast_limits) != tuple(lims):
-                    layer.contrast_limits = lims
+        limits = tuple(raw[0].contrast_limits)
+        removed, removed_limits, removed_name = self._removed_view(result)
+        step = roi_extent(roi)[1] * (1 + TILE_GAP)  # beside the raw channel: raw | washed | removed
+        made = []
+        for k, (stage, data, lims, name) in enumerate((("washed", result.washed, limits, "washed"),
+                                                       ("removed", removed, removed_limits, removed_name)), 1):
+            _, kwargs, _ = channel_layer(data, roi_path=roi.path, channel=result.channel,
+                                         label=result.label, index=result.index, stage=stage,
+                                         pixel_size=roi.pixel_size, limits=lims, visible=False)
+            kwargs["name"] = f"{result.label} · {name}"
+            kwargs["translate"] = (0.0, k * step)
+            kept = studio_layers(self.viewer, stage=stage)
+            if kept:
+                swap_layer(kept[0], data, kwargs)
             else:
-                _, kwargs, _ = channel_layer(data, roi_path=roi.path, channel=result.channel,
-                                             label=result.label, index=result.index, stage=stage,
-                                             pixel_size=roi.pixel_size, limits=lims)
-                kwargs["translate"] = (0.0, k * step)
-                self.viewer.add_image(data, **kwargs)
-        self._frame(result)
-        self._show_fractions(result)
+                from napari.layers import Image
 
-    def _frame(self, result: ChannelPreview) -> None:
-        """First preview of a channel: show raw | washed | removed side by side."""
-        key = (id(self.state.roi), result.channel)
-        if self._framed == key:
-            return
-        self._framed = key
-        grid_of(self.viewer).enabled = False
-        for layer in studio_layers(self.viewer):
-            meta = layer.metadata["plexwash"]
-            layer.visible = meta["channel"] == result.channel and meta["stage"] in ("raw", "washed", "removed")
-        fit_visible(self.viewer)
+                made.append(Image(data, **kwargs))
+        if made:  # the first preview of the session: both layers at once, on top
+            active = self.viewer.layers.selection.active
+            self.viewer.layers.extend(made)
+            if active is not None:  # the raw channel stays the active layer (contrast controls)
+                self.viewer.layers.selection.active = active
+        self._show_fractions(result)
+        self.state.preview_shown.emit()  # the Preview view shows and labels them
+
+    def _removed_view(self, result: ChannelPreview):
+        """The removed map chosen below the form: all steps, or what one step took away."""
+        step = self.removed_step.currentData()
+        if step and step in result.removed_by_step:
+            removed = result.removed_by_step[step]
+            return removed, _removed_limits(removed), f"removed by {self.removed_step.currentText()}"
+        return result.removed, result.removed_limits, "removed"
 
     def _show_fractions(self, result: ChannelPreview) -> None:
         self.removed_text.setText(f"removed {100 * result.total_fraction:.3g} % of the signal")

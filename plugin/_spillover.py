@@ -421,9 +421,10 @@ class SpilloverWidget(StudioWidget):
         if receiver not in roi.channels:
             return
         grid_of(self.viewer).enabled = False
-        for layer in studio_layers(self.viewer):
-            meta = layer.metadata["plexwash"]
-            layer.visible = meta["channel"] == receiver and meta["stage"] in ("raw", "compensated")
+        with self.viewer.layers.batched_update():  # one scene-graph update, not one per layer
+            for layer in studio_layers(self.viewer):
+                meta = layer.metadata["plexwash"]
+                layer.visible = meta["channel"] == receiver and meta["stage"] in ("raw", "compensated")
         if not self._fitted:
             self._fitted = True
             fit_visible(self.viewer)

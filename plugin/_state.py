@@ -40,6 +40,11 @@ class StudioState:
         ROI name -> quality rows (raw stage) measured in the studio.
     pending_quality : set of str
         ROI names whose raw quality a background measurement will still deliver.
+    run_quality : dict
+        ROI name -> stage -> rows of the run's ``quality.csv`` (a run folder chosen or opened).
+    view : str
+        What the canvas shows (the Cohort widget's view buttons): ``single``, ``grid``,
+        ``overlay`` or ``preview``.
     """
 
     cohort_changed = Signal(object)
@@ -49,6 +54,9 @@ class StudioState:
     channel_changed = Signal(object)
     run_finished = Signal(object)
     quality_changed = Signal(str)
+    view_requested = Signal(str)
+    preview_shown = Signal()
+    run_quality_changed = Signal(object)
 
     def __init__(self):
         from plexwash.qc import default_recipe
@@ -62,6 +70,11 @@ class StudioState:
         self.run_dir: Path | None = None
         self.quality: dict[str, list[dict]] = {}
         self.pending_quality: set[str] = set()
+        self.run_quality: dict[str, dict[str, list[dict]]] = {}
+        self.view = "single"
+        #: True when ``launch_studio`` made the window (the studio owns the process): long-lived
+        #: objects may then be moved out of the garbage collector's sight (``gc.freeze``).
+        self.owns_process = False
         self._planes: dict[int, np.ndarray] = {}
 
     # ------------------------------------------------------------------ setters
@@ -70,6 +83,7 @@ class StudioState:
         self.cohort = Path(folder)
         self.rois = list(rois)
         self.quality = {}
+        self.pending_quality = set()
         self.cohort_changed.emit(self.cohort)
 
     def set_roi(self, roi) -> None:
@@ -91,6 +105,11 @@ class StudioState:
         if channel != self.channel:
             self.channel = channel
             self.channel_changed.emit(channel)
+
+    def request_view(self, view: str) -> None:
+        """Ask the Cohort widget to show another view (e.g. the Speckle widget: ``preview``)."""
+        if view != self.view:
+            self.view_requested.emit(view)
 
     def set_quality(self, roi_name: str, rows: list[dict]) -> None:
         self.quality[roi_name] = rows

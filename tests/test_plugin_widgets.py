@@ -85,13 +85,21 @@ def test_cohort_lists_flags_loads_and_views(make_napari_viewer, qtbot, cohort):
         assert layer.blending == "additive"
 
     widget.set_view("grid")
-    assert grid_of(viewer).enabled and all(layer.visible for layer in raw)
+    assert all(layer.visible for layer in raw)  # tiled side by side, each framed and labelled
+    corners = {tuple(layer.translate) for layer in raw}
+    assert len(corners) == len(raw)
+    labels = viewer.layers["plexwash labels"]
+    assert labels.visible and list(labels.features["label"]) == list(roi.labels)
+    widget.look.setCurrentText("grey")
+    assert {layer.colormap.name for layer in raw} == {"plexwash grey"}
+    widget.look.setCurrentText("hues")
     chosen = [roi.channels[1], roi.channels[4], roi.channels[6]]
     widget.set_ticked(chosen)
     widget.set_view("overlay")
     assert not grid_of(viewer).enabled
     shown = [layer for layer in raw if layer.visible]
     assert [layer.metadata["plexwash"]["channel"] for layer in shown] == chosen
+    assert not labels.visible and {tuple(layer.translate) for layer in shown} == {(0.0, 0.0)}
     assert len({tuple(layer.colormap.colors[-1]) for layer in shown}) == 3  # distinct hues
     widget.channels.setCurrentRow(4)
     widget.set_view("single")
@@ -101,6 +109,42 @@ def test_cohort_lists_flags_loads_and_views(make_napari_viewer, qtbot, cohort):
     widget.high.setValue(95.0)
     widget.rescale()
     assert tuple(raw[3].contrast_limits) == pytest.approx(robust_limits(roi.data[3], low=5, high=95))
+
+
+def test_roi_switches_keep_the_layers_and_swap_their_data(make_napari_viewer, qtbot, cohort):
+    """ROIs of a cohort share their channels: a switch keeps every layer (the same objects,
+    the preview's two layers included) and swaps their data; nothing is removed while the
+    canvas draws (removing layers there crashed the studio with the live preview on)."""
+    viewer = make_napari_viewer(show=True)
+    speckle = dock(viewer, "Speckle")
+    widget = open_first_roi(qtbot, viewer, cohort)
+    wait_preview(qtbot, speckle)
+    widget.set_view("preview")
+    wait_preview(qtbot, speckle)
+    before = list(viewer.layers)
+    assert "plexwash labels" in viewer.layers
+    assert len(studio_layers(viewer, stage="washed")) == len(studio_layers(viewer, stage="removed")) == 1
+    removed = []
+    viewer.layers.events.removed.connect(lambda event: removed.append(event.value))
+    paths = list_cohort(cohort / "cohort")
+    for row in (1, 0, 1):
+        speckle.last = None
+        wait(qtbot, widget.load(row))
+        wait_preview(qtbot, speckle)
+        roi = read_with_panel(paths[row])
+        assert list(viewer.layers) == before and not removed
+        for i, layer in enumerate(studio_layers(viewer, stage="raw")):
+            np.testing.assert_array_equal(layer.data, roi.data[i])
+            assert layer.metadata["plexwash"]["roi"] == str(paths[row])
+            assert tuple(layer.contrast_limits) == pytest.approx(robust_limits(roi.data[i]))
+        (washed,) = studio_layers(viewer, stage="washed")
+        assert washed.metadata["plexwash"]["roi"] == str(paths[row]) and washed.visible
+        shown = [layer for layer in viewer.layers if layer.visible]
+        assert [layer.name for layer in shown] == [roi.labels[0], f"{roi.labels[0]} · washed",
+                                                   f"{roi.labels[0]} · removed", "plexwash labels"]
+        assert len({tuple(layer.translate) for layer in shown[:3]}) == 3  # side by side
+        assert list(viewer.layers["plexwash labels"].features["label"]) == [
+            f"{roi.labels[0]} · raw", f"{roi.labels[0]} · washed", f"{roi.labels[0]} · removed"]
 
 
 def test_cohort_refuses_a_folder_without_rois(make_napari_viewer, tmp_path):
@@ -125,10 +169,17 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
     assert quality.table.rowCount() == len(expected)
     assert len(quality.figure.axes[0].patches) == len(expected)  # one bar per channel
 
-    sbr_column = 2
-    quality.table.sortItems(sbr_column, order=quality.table.horizontalHeader().sortIndicatorOrder().DescendingOrder)
+    from plexwash.plugin._quality import COLUMNS
+    from qtpy.QtCore import Qt
+
+    keys = [c[0] for c in COLUMNS]
+    channel_column, sbr_column = keys.index("channel"), keys.index("sbr")
+    assert keys.index("flags") < sbr_column  # the flags are not pushed off a narrow dock
+    # panel order first, as the plot
+    assert [quality.table.item(r, channel_column).text() for r in range(len(expected))] == list(roi.channels)
+    quality.table.sortItems(sbr_column, Qt.SortOrder.DescendingOrder)
     top = max(expected, key=lambda r: r["sbr"])
-    assert quality.table.item(0, 0).text() == top["channel"]
+    assert quality.table.item(0, channel_column).text() == top["channel"]
     quality.table.selectRow(0)
     assert quality.state.channel == top["channel"]
 
@@ -180,8 +231,11 @@ def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tm
     wait_preview(qtbot, speckle)
     np.testing.assert_array_equal(washed_layer.data, remove_speckle(hot.image, radius=7).image)
 
-    speckle.apply_to_all()
+    label = speckle.forms["speckle"].layout().labelForField(speckle.forms["speckle"].editors["radius"])
+    assert "bold" in label.styleSheet() and "own speckle radius" in speckle.status.text()
+    assert speckle.apply_to_all(ask=False)
     wait_preview(qtbot, speckle)
+    assert "bold" not in label.styleSheet()
     assert speckle.state.recipe.speckle.radius == 7 and not speckle.state.recipe.overrides
     saved = speckle.save_recipe(tmp_path / "tuned")
     assert saved.name == "tuned.toml"
