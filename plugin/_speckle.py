@@ -292,7 +292,7 @@ class SpeckleWidget(StudioWidget):
         channel = self.current_channel
         if channel is None:
             return False
-        others = sorted({c for s in self.forms for c in self.state.recipe.channels.get(s, {}) if c != channel})
+        others = sorted({c for s in self.forms for c in self.state.recipe.overrides.get(s, {}) if c != channel})
         if others and ask:
             from qtpy.QtWidgets import QMessageBox
 
