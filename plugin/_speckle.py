@@ -322,9 +322,17 @@ class SpeckleWidget(StudioWidget):
         if path is None:
             self.say("choose where to save the recipe", warn=True)
             return None
+        from plexwash.qc.errors import InputError
+        from plexwash.qc.files import check_output
+
         path = Path(path)
         if path.suffix.lower() != ".toml":
             path = path.with_suffix(".toml")
+        try:  # never over a file the studio read, nor one plexwash did not write
+            check_output(path, self.state.inputs(), kind="toml")
+        except InputError as exc:
+            self.fail(exc)
+            return None
         write_recipe(path, self.state.recipe)
         self.recipe_path.set_path(path)
         self.say(f"recipe saved: {path}")

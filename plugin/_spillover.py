@@ -126,6 +126,7 @@ class SpilloverWidget(StudioWidget):
         layout = self.layout()
 
         layout.addWidget(self.caption("Matrix"))
+        self.read_from: list[Path] = []  # matrices and controls CSVs loaded: never saved over
         self.matrix_path = PathRow("spillover.csv", file_types="Spillover matrix (*.csv)")
         load = QPushButton("Load")
         load.clicked.connect(lambda: self.load(self.matrix_path.path()))
@@ -228,8 +229,10 @@ class SpilloverWidget(StudioWidget):
         except InputError as exc:
             self.fail(exc)
             return
-        self.save_path.set_path(path)
-        self.use(matrix, f"loaded {Path(path).name}")
+        path = Path(path)
+        self.read_from.append(path)
+        self.save_path.set_path(path.with_name(f"{path.stem}_edited.csv"))  # never the input itself
+        self.use(matrix, f"loaded {path.name}")
 
     def estimate_controls(self, controls_csv):
         """Estimate from single-stain controls in the background; returns the worker."""
@@ -238,6 +241,7 @@ class SpilloverWidget(StudioWidget):
         if controls_csv is None:
             self.say("choose the controls.csv", warn=True)
             return None
+        self.read_from.append(Path(controls_csv))
         self.say("estimating from controls…")
         worker = thread_worker(estimate_from_controls)(controls_csv, all_pairs=self.all_pairs.isChecked())
         return self.start(worker, on_return=lambda m: self.use(m, "estimated from controls"))
@@ -285,7 +289,15 @@ class SpilloverWidget(StudioWidget):
         if self.matrix is None or path is None:
             self.say("nothing to save yet" if self.matrix is None else "choose where to save", warn=True)
             return None
+        from plexwash.qc.errors import InputError
+        from plexwash.qc.files import check_output
+
         path = Path(path)
+        try:  # never over a file the studio read (a control image, say), nor one plexwash did not write
+            check_output(path, self.state.inputs(*self.read_from), kind="csv")
+        except InputError as exc:
+            self.fail(exc)
+            return None
         write_spillover(path, self.matrix)
         self.state.set_recipe(self.state.recipe.replace("compensation", spillover=str(path)))
         self.say(f"saved {path}; the recipe now names it")

@@ -77,6 +77,22 @@ class StudioState:
         self.owns_process = False
         self._planes: dict[int, np.ndarray] = {}
 
+    # ------------------------------------------------------------------ inputs
+
+    def inputs(self, *extra) -> list[Path]:
+        """Every file the studio reads data from: the cohort's ROIs (and its panel), the
+        recipe's spillover matrix and ``extra`` (files a widget loaded), with the files
+        reached through them (the engine's :func:`plexwash.qc.files.reached_inputs`). A save
+        button's output may be none of these (:func:`plexwash.qc.files.check_output`). The
+        recipe being tuned is not among them: saving it back where it came from is allowed
+        when plexwash wrote that file."""
+        from plexwash.qc.files import reached_inputs
+
+        named = [*self.rois, self.recipe.spillover_path(), *extra]
+        if self.cohort is not None:
+            named.append(self.cohort / "panel.csv")
+        return reached_inputs(p for p in named if p is not None)
+
     # ------------------------------------------------------------------ setters
 
     def set_cohort(self, folder: Path, rois: list[Path]) -> None:

@@ -7,6 +7,7 @@ own output for the same settings.
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import threading
 
 import numpy as np
@@ -237,6 +238,10 @@ def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tm
     wait_preview(qtbot, speckle)
     assert "bold" not in label.styleSheet()
     assert speckle.state.recipe.speckle.radius == 7 and not speckle.state.recipe.overrides
+    mine = tmp_path / "mine.toml"  # a file plexwash did not write is never replaced
+    mine.write_text("# my notes\n")
+    assert speckle.save_recipe(mine) is None and speckle.status.text().startswith(f"error: {mine}")
+    assert mine.read_text() == "# my notes\n"
     saved = speckle.save_recipe(tmp_path / "tuned")
     assert saved.name == "tuned.toml"
     assert load_recipe(saved).sha256() == speckle.state.recipe.sha256()
@@ -339,6 +344,14 @@ def test_spillover_load_edit_preview_save(make_napari_viewer, qtbot, cohort, tmp
     assert visible == [names[4]]
     used, stack = compensated_stack(roi, spill.state.spillover)
     np.testing.assert_array_equal(stack, expected)
+
+    # never saved over a file the studio read: the loaded matrix, a control image, an ROI
+    loaded = cohort / "truth" / "spillover.csv"
+    before = {p: hashlib.sha256(p.read_bytes()).hexdigest() for p in (loaded, *spill.state.rois)}
+    assert spill.save(loaded) is None and spill.status.text().startswith(f"error: {loaded}")
+    assert spill.save(spill.state.rois[0]) is None  # an ROI, and not a .csv either
+    assert {p: hashlib.sha256(p.read_bytes()).hexdigest() for p in before} == before
+    assert spill.save_path.path() != loaded  # the suggested name is not the input
 
     path = spill.save(tmp_path / "edited.csv")
     back = read_spillover(path)
