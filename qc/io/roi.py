@@ -16,8 +16,8 @@ import numpy as np
 from ..errors import InputError
 from .cohort import OutputSettings, roi_stem
 from .panel import Panel, read_panel, refuse_duplicates
-from .tiff import open_tiff, write_ome_tiff
-from .zarr import open_zarr, write_ome_zarr
+from .tiff import open_tiff, tiff_levels, write_ome_tiff
+from .zarr import open_zarr, write_ome_zarr, zarr_levels
 
 #: Stacks bigger than this are read lazily (dask) instead of into memory.
 LAZY_BYTES = 128 * 2**20
@@ -198,13 +198,29 @@ def _refuse_bad_values(path: Path, array) -> None:
                          "offset or clip to 0 first)")
 
 
-def write_stack(path, data, channels, *, pixel_size=None, settings=None) -> Path:
-    """Write a stack in the format of ``settings`` (an :class:`OutputSettings`).
+def write_stack(path, data, channels, *, pixel_size=None, settings=None, labels=None,
+                provenance=None) -> Path:
+    """Write a stack in the format of ``settings`` (an :class:`OutputSettings`), with its pyramid.
 
     ``data`` is a numpy array, a dask array (computed chunk by chunk) or any array store
     that can be sliced ``data[c, y0:y1, x0:x1]`` (a zarr array, a staged stack), read
-    band by band. Returns the final path.
+    band by band. ``labels`` are the readable marker names (the tags when omitted),
+    ``provenance`` a mapping written into the file's metadata. Returns the final path.
     """
     settings = settings or OutputSettings()
     writer = write_ome_zarr if settings.format == "ome-zarr" else write_ome_tiff
-    return writer(path, data, channels, pixel_size=pixel_size, settings=settings)
+    return writer(path, data, channels, pixel_size=pixel_size, settings=settings, labels=labels,
+                  provenance=provenance)
+
+
+def read_levels(path: str | Path) -> list:
+    """The resolution levels of an ROI file, level 0 first, as lazy dask arrays.
+
+    One entry for a file without a pyramid. :func:`read_roi` reads level 0 only; viewers
+    use the whole list (a multiscale image). The arrays keep the file's own axes.
+    """
+    path = Path(path)
+    try:
+        return zarr_levels(path) if path.is_dir() else tiff_levels(path)
+    except Exception as exc:  # a file read_roi accepted but whose levels cannot be listed
+        raise InputError(path, f"cannot list resolution levels ({exc})") from None
