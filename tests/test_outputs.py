@@ -119,6 +119,7 @@ def test_ome_zarr_multiscale_validates(tmp_path, dtype):
         assert w["min"] <= w["start"] < w["end"] <= w["max"]
     roi = read_roi(path)
     assert roi.channels == tuple(TAGS)  # the tags come back as channel names
+    assert roi.labels == tuple(MARKERS)
     assert roi.pixel_size == (pytest.approx(0.5), pytest.approx(0.25))
     assert [lv.shape for lv in read_levels(path)] == level_shapes(stack.shape)
 
@@ -183,7 +184,8 @@ def test_marker_names_and_provenance_in_ome_xml(tmp_path):
     maps = {a.namespace: {m.k: m.value for m in a.value.ms} for a in ome.structured_annotations.map_annotations}
     assert maps["plexwash.channel-tags"] == {f"Channel:0:{i}": t for i, t in enumerate(TAGS)}
     assert maps["plexwash.provenance"] == prov
-    assert read_roi(path).channels == tuple(TAGS)
+    roi = read_roi(path)
+    assert roi.channels == tuple(TAGS) and roi.labels == tuple(MARKERS)
 
 
 def test_wash_writes_provenance(tmp_path):
@@ -216,3 +218,18 @@ def test_independent_reader_opens_both(tmp_path):
         assert list(image.channel_names) == MARKERS
         assert image.physical_pixel_sizes.X == pytest.approx(0.5)
         np.testing.assert_array_equal(np.asarray(image.get_image_data("CYX")), stack)
+
+
+@pytest.mark.parametrize("name", ["r.ome.tiff", "r.ome.zarr"])
+def test_studio_reader_opens_pyramids_as_multiscale_layers(tmp_path, name):
+    from plexwash.plugin import _reader
+
+    stack = _stack(np.uint16, (2, 1100, 600))
+    path = write_ome_zarr if name.endswith("zarr") else write_ome_tiff
+    path = path(tmp_path / name, stack, TAGS[:2], labels=MARKERS[:2])
+    layers = _reader.napari_get_reader(str(path))(str(path))
+    assert [kw["name"] for _, kw, _ in layers] == MARKERS[:2]
+    for i, (data, kwargs, kind) in enumerate(layers):
+        assert kind == "image" and kwargs["multiscale"] is True
+        assert [tuple(level.shape) for level in data] == [(1100, 600), (550, 300), (275, 150)]
+        np.testing.assert_array_equal(np.asarray(data[0]), stack[i])

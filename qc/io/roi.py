@@ -38,11 +38,13 @@ class Roi:
     path : Path
         The file or folder the ROI was read from.
     labels : tuple of str
-        Readable target names (from the panel; the channel names otherwise).
+        Readable target names: from the panel; else the marker names a plexwash output
+        keeps beside its tags; else the channel names.
     use : tuple of bool
         False for channels the panel marks ``no``: they pass through untouched.
     pixel_size : tuple of float or None
-        Physical (y, x) pixel size in micrometres, when the file records it.
+        Physical (y, x) pixel size in micrometres (converted from the file's length
+        unit), when the file records it.
     """
 
     data: object
@@ -139,9 +141,9 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     if not path.exists():
         raise InputError(path, "file not found")
     if path.is_dir():
-        data, channels, pixel_size = open_zarr(path)
+        data, channels, pixel_size, markers = open_zarr(path)
     else:
-        data, channels, pixel_size = open_tiff(path, has_panel=panel is not None)
+        data, channels, pixel_size, markers = open_tiff(path, has_panel=panel is not None)
     if data.ndim != 3:
         raise InputError(path, f"expected a C x Y x X stack, got {data.ndim}-D data")
     if np.dtype(data.dtype).type not in SUPPORTED_DTYPES:
@@ -151,8 +153,8 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
         raise InputError(path, f"metadata names {len(channels)} channels but the stack has {n_channels}")
     if panel is not None:
         channels, labels, use = _apply_panel(path, channels, n_channels, panel)
-    else:
-        labels, use = (), ()
+    else:  # a washed stack keeps the marker names beside its tags
+        labels, use = (markers or ()), ()
     if any(not c.strip() for c in channels):
         raise InputError(path, "a channel has an empty name")
     refuse_duplicates(path, channels, "channel")

@@ -29,7 +29,8 @@ WRITE_BUFFER_BYTES = 32 * 2**20
 
 
 def open_tiff(path: Path, *, has_panel: bool):
-    """A zarr view of the first image series, its channel names (None: plain TIFF), pixel size."""
+    """A zarr view of level 0 of the first image series, its channel names (None: plain
+    TIFF), pixel size (µm) and marker names (None unless plexwash kept the tags beside them)."""
     import tifffile
     import zarr
 
@@ -58,10 +59,10 @@ def open_tiff(path: Path, *, has_panel: bool):
         axes = series.axes.upper()
         shape = tuple(series.shape)
         keep = squeeze_axes(path, axes, shape, plain=not tif.is_ome)
-        channels = None
+        channels = markers = None
         pixel_size = None
         if tif.is_ome:
-            channels, pixel_size = _ome_channels(path, tif.ome_metadata)
+            channels, markers, pixel_size = _ome_channels(path, tif.ome_metadata)
         elif not has_panel:
             raise InputError(path, "plain TIFF has no channel names; give its panel (--panel panel.csv)")
         store = series.aszarr(level=0)
@@ -77,7 +78,7 @@ def open_tiff(path: Path, *, has_panel: bool):
             data = one_channel(data)
         if channels is None and not has_panel:
             raise InputError(path, "OME-XML names no channels; give its panel (--panel panel.csv)")
-        return data, channels, pixel_size
+        return data, channels, pixel_size, markers
     except InputError:
         tif.close()
         raise
@@ -166,7 +167,8 @@ class _TiffWarnings(logging.Handler):
 
 
 def _ome_channels(path: Path, xml: str | None):
-    """Channel names (acquisition tags) and (y, x) physical pixel size in µm from OME-XML."""
+    """Channel names (acquisition tags), marker names (None unless plexwash's tag map is
+    there) and (y, x) physical pixel size in µm from OME-XML."""
     if not xml:
         raise InputError(path, "OME-TIFF without OME-XML")
     try:
@@ -177,10 +179,12 @@ def _ome_channels(path: Path, xml: str | None):
     if pixels is None:
         raise InputError(path, "OME-XML has no Pixels element")
     tags = _channel_tags(root)
-    names = []
+    names, markers = [], []
     for i, ch in enumerate(el for el in pixels if el.tag.endswith("Channel")):
-        name = tags.get(ch.get("ID", "")) or ch.get("Name") or ch.get("Fluor") or ""
+        marker = (ch.get("Name") or ch.get("Fluor") or "").strip()
+        name = tags.get(ch.get("ID", "")) or marker
         names.append(name.strip() or f"channel_{i}")
+        markers.append(marker or names[-1])
     pixel_size = None
     try:
         sizes = [to_micrometres(pixels.get(f"PhysicalSize{a}"), pixels.get(f"PhysicalSize{a}Unit"))
@@ -189,7 +193,7 @@ def _ome_channels(path: Path, xml: str | None):
             pixel_size = (sizes[0], sizes[1])
     except ValueError:
         pixel_size = None
-    return tuple(names), pixel_size
+    return tuple(names), (tuple(markers) if tags else None), pixel_size
 
 
 def _channel_tags(root) -> dict[str, str]:

@@ -33,7 +33,8 @@ def _refuse_absurd_zarr(path: Path, array) -> None:
 
 
 def open_zarr(path: Path):
-    """Array, channel labels and pixel size of an OME-Zarr image (NGFF 0.4 or 0.5)."""
+    """Array, channel names, pixel size (µm) and marker names (None unless plexwash kept the
+    tags) of level 0 of an OME-Zarr image (NGFF 0.4 or 0.5)."""
     import zarr
 
     try:
@@ -67,8 +68,10 @@ def open_zarr(path: Path):
         data = one_channel(data)
     channels = [c.get("label", "") for c in meta.get("omero", {}).get("channels", [])]
     tags = attrs.get("plexwash", {}).get("channels") if isinstance(attrs.get("plexwash"), dict) else None
+    markers = None
     if isinstance(tags, list) and len(tags) == len(channels):
-        channels = tags  # plexwash's own output: labels are markers, the tags name the channels
+        # plexwash's own output: labels are markers, the tags name the channels
+        channels, markers = tags, tuple(str(c) for c in channels)
     if not channels:
         raise InputError(path, "OME-Zarr has no channel labels (omero.channels[].label)")
     units = {a.get("name"): a.get("unit") for a in image.get("axes", []) if isinstance(a, dict)}
@@ -80,7 +83,7 @@ def open_zarr(path: Path):
                 # NGFF units are optional: no unit is read as micrometres (common practice)
                 sizes = [to_micrometres(scale[a], units.get(a) or "micrometer") for a in "yx"]
                 pixel_size = None if None in sizes else (sizes[0], sizes[1])
-    return data, tuple(str(c) for c in channels), pixel_size
+    return data, tuple(str(c) for c in channels), pixel_size, markers
 
 
 def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, labels=None,
