@@ -32,6 +32,7 @@ import numpy as np
 from ._arrays import channel_plane, is_dask, stack_planes, used_channels
 from .errors import InputError
 from .io import Roi, write_stack
+from .io.tiff import source_ome_xml
 from .recipe import Recipe, default_recipe
 from .staging import MemoryStack, Staging, wash_staged
 from .steps.compensation import compensation_matrix
@@ -434,7 +435,8 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
         staged, stats = wash_staged(roi, recipe, matrix, staging=staging, notes=notes)
         data = staged.array if isinstance(staged, MemoryStack) else staged
         write_stack(out_path, data, roi.channels, pixel_size=roi.pixel_size, settings=recipe.output,
-                    labels=roi.labels, provenance=_provenance(provenance))
+                    labels=roi.labels, provenance=_provenance(provenance),
+                    source_xml=source_ome_xml(roi.path))
     return WashedFile(output=out_path, seconds=time.perf_counter() - started, stats=stats,
                       notes=tuple(notes))
 

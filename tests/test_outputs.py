@@ -233,3 +233,40 @@ def test_studio_reader_opens_pyramids_as_multiscale_layers(tmp_path, name):
         assert kind == "image" and kwargs["multiscale"] is True
         assert [tuple(level.shape) for level in data] == [(1100, 600), (550, 300), (275, 150)]
         np.testing.assert_array_equal(np.asarray(data[0]), stack[i])
+
+
+def test_acquisition_metadata_carried_over(tmp_path):
+    """The input's instrument, objective and acquisition date reach the washed OME-TIFF; the
+    result validates against the OME schema (ome_types, validate=True)."""
+    from datetime import datetime
+
+    import ome_types
+    from ome_types.model import (
+        OME,
+        Image,
+        Instrument,
+        InstrumentRef,
+        Objective,
+        ObjectiveSettings,
+        Pixels,
+    )
+    from plexwash.qc.wash import wash_to_file
+
+    source = ome_types.to_xml(OME(
+        instruments=[Instrument(id="Instrument:0", objectives=[
+            Objective(id="Objective:0:0", nominal_magnification=20.0, model="Plan 20x")])],
+        images=[Image(id="Image:0", acquisition_date=datetime(2024, 1, 2, 3, 4, 5),
+                      instrument_ref=InstrumentRef(id="Instrument:0"),
+                      objective_settings=ObjectiveSettings(id="Objective:0:0"),
+                      pixels=Pixels(id="Pixels:0", dimension_order="XYCZT", type="float", size_c=3,
+                                    size_x=48, size_y=48, size_z=1, size_t=1))]))
+    raw = write_ome_tiff(tmp_path / "raw.ome.tiff", _stack(np.float32, (3, 48, 48)), TAGS, source_xml=source)
+    out = wash_to_file(read_roi(raw), tmp_path / "out" / "r.ome.tiff").output
+    with tifffile.TiffFile(out) as tif:
+        ome = ome_types.from_xml(tif.ome_metadata, validate=True)
+    image = ome.images[0]
+    assert image.acquisition_date == datetime(2024, 1, 2, 3, 4, 5)
+    assert ome.instruments[0].objectives[0].model == "Plan 20x"
+    assert image.instrument_ref.id == "Instrument:0" and image.objective_settings.id == "Objective:0:0"
+    maps = {a.namespace: {m.k: m.value for m in a.value.ms} for a in ome.structured_annotations.map_annotations}
+    assert maps["plexwash.provenance"]["software"] == "plexwash"

@@ -70,8 +70,15 @@ def display_windows(smallest) -> list[dict]:
 
 
 def ome_xml(name: str, shape, dtype, channels: Sequence[str], labels: Sequence[str],
-            pixel_size=None, provenance: Mapping[str, str] | None = None) -> str:
-    """OME-XML (7-bit ASCII) for a C x Y x X stack stored one plane per IFD, channel order."""
+            pixel_size=None, provenance: Mapping[str, str] | None = None,
+            source_xml: str | None = None) -> str:
+    """OME-XML (7-bit ASCII) for a C x Y x X stack stored one plane per IFD, channel order.
+
+    ``source_xml``, the input's OME-XML, lends its instruments and its first image's
+    acquisition date, description, instrument and objective settings (what the OME model
+    keeps about the acquisition); annotation links inside the instruments are dropped,
+    as the annotations are not carried.
+    """
     from ome_types import to_xml
     from ome_types.model import (
         OME,
@@ -108,11 +115,45 @@ def ome_xml(name: str, shape, dtype, channels: Sequence[str], labels: Sequence[s
         tiff_data_blocks=[TiffData(ifd=i, first_c=i, first_z=0, first_t=0, plane_count=1)
                           for i in range(n_c)],
     )
-    ome = OME(images=[Image(id="Image:0", name=name, pixels=pixels, annotation_refs=refs)],
-              structured_annotations=StructuredAnnotations(map_annotations=annotations),
+    image = Image(id="Image:0", name=name, pixels=pixels, annotation_refs=refs)
+    ome = OME(images=[image], structured_annotations=StructuredAnnotations(map_annotations=annotations),
               creator=f"plexwash {provenance.get('version', '') if provenance else ''}".strip())
+    _carry_acquisition(ome, image, source_xml)
     xml = '<?xml version="1.0" encoding="UTF-8"?>\n' + to_xml(ome)
     return xml.encode("ascii", "xmlcharrefreplace").decode("ascii")
+
+
+def _carry_acquisition(ome, image, source_xml: str | None) -> None:
+    """Copy the instruments and acquisition fields of the input's OME-XML (when it parses)."""
+    import warnings
+
+    from ome_types import from_xml
+
+    if not source_xml:
+        return
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            source = from_xml(source_xml, validate=False)
+    except Exception:  # the input's metadata was read already; what cannot be parsed is not carried
+        return
+    if not source.images:
+        return
+    first = source.images[0]
+    ome.instruments = list(source.instruments)
+    for instrument in ome.instruments:
+        parts = [instrument, instrument.microscope, *instrument.objectives, *instrument.detectors,
+                 *instrument.filters, *instrument.filter_sets, *instrument.dichroics,
+                 *instrument.light_source_group]
+        for part in parts:
+            if part is not None and hasattr(part, "annotation_refs"):
+                part.annotation_refs = []
+    image.acquisition_date = first.acquisition_date
+    image.description = first.description
+    known = {i.id for i in ome.instruments}
+    if first.instrument_ref is not None and first.instrument_ref.id in known:
+        image.instrument_ref = first.instrument_ref
+        image.objective_settings = first.objective_settings
 
 
 def _rgba(hex_rgb: str) -> int:

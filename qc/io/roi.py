@@ -201,18 +201,20 @@ def _refuse_bad_values(path: Path, array) -> None:
 
 
 def write_stack(path, data, channels, *, pixel_size=None, settings=None, labels=None,
-                provenance=None) -> Path:
+                provenance=None, source_xml=None) -> Path:
     """Write a stack in the format of ``settings`` (an :class:`OutputSettings`), with its pyramid.
 
     ``data`` is a numpy array, a dask array (computed chunk by chunk) or any array store
     that can be sliced ``data[c, y0:y1, x0:x1]`` (a zarr array, a staged stack), read
     band by band. ``labels`` are the readable marker names (the tags when omitted),
-    ``provenance`` a mapping written into the file's metadata. Returns the final path.
+    ``provenance`` a mapping written into the file's metadata, ``source_xml`` the input's
+    OME-XML (its instruments and acquisition date carried into an OME-TIFF). Returns the
+    final path.
     """
     settings = settings or OutputSettings()
     writer = write_ome_zarr if settings.format == "ome-zarr" else write_ome_tiff
     return writer(path, data, channels, pixel_size=pixel_size, settings=settings, labels=labels,
-                  provenance=provenance)
+                  provenance=provenance, source_xml=source_xml)
 
 
 def read_levels(path: str | Path) -> list:

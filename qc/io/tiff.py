@@ -208,7 +208,7 @@ def _channel_tags(root) -> dict[str, str]:
 
 
 def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, labels=None,
-                   provenance=None) -> Path:
+                   provenance=None, source_xml=None) -> Path:
     """Write a C x Y x X stack as a tiled, compressed, pyramidal OME-TIFF, atomically.
 
     Level 0 is one page per channel; the lower resolution levels
@@ -240,6 +240,8 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, labe
         Readable marker names, written as ``Channel/@Name`` (the tags when omitted).
     provenance : mapping of str to str, optional
         Written as a ``MapAnnotation`` (tool version, hashes, date).
+    source_xml : str, optional
+        The input's OME-XML: its instruments and acquisition date are carried over.
     """
     import tifffile
 
@@ -254,7 +256,8 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, labe
     compression = None if settings.compression == "none" else settings.compression
     shape = tuple(int(n) for n in data.shape)
     dtype = np.dtype(data.dtype)
-    xml = ome_xml(roi_stem(path.name), shape, dtype, channels, labels, pixel_size, provenance)
+    xml = ome_xml(roi_stem(path.name), shape, dtype, channels, labels, pixel_size, provenance,
+                  source_xml)
 
     def build(tmp: Path) -> None:
         spill = temporary_path(path, "spill")
@@ -320,6 +323,20 @@ def _tiles(array, tile: int) -> Iterator[np.ndarray]:
             band = np.asarray(array[c, y : y + tile, 0:n_x])
             for x in range(0, n_x, tile):
                 yield np.ascontiguousarray(band[:, x : x + tile])
+
+
+def source_ome_xml(path: str | Path) -> str | None:
+    """The OME-XML of an OME-TIFF (None for anything else, or a file that cannot be read)."""
+    import tifffile
+
+    path = Path(path)
+    if not path.is_file():
+        return None
+    try:
+        with tifffile.TiffFile(path) as tif:
+            return tif.ome_metadata if tif.is_ome else None
+    except Exception:  # read_roi has already judged the file; nothing to carry
+        return None
 
 
 def tiff_levels(path: Path) -> list:

@@ -87,7 +87,7 @@ def open_zarr(path: Path):
 
 
 def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, labels=None,
-                   provenance=None) -> Path:
+                   provenance=None, source_xml=None) -> Path:
     """Write a C x Y x X stack as a multiscale OME-Zarr image (NGFF 0.5, Zarr v3), atomically.
 
     Level ``"0"`` holds the pixels; levels ``"1"``, ``"2"``, ... are 2 x 2 block means of
@@ -95,7 +95,9 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, labe
     written, band by band. Chunks are one channel by ``settings.tile`` pixels; the
     codec is gzip (deflate) for ``zlib`` and ``lzw`` (Zarr has no LZW codec), zstd for
     ``zstd``. Marker names go to ``omero.channels[].label``, the acquisition tags to
-    ``plexwash.channels``, the provenance to ``plexwash.provenance``.
+    ``plexwash.channels``, the provenance to ``plexwash.provenance``. NGFF has no model
+    for instruments: ``source_xml`` (accepted for the same call as the OME-TIFF writer) is
+    not carried.
     """
     import zarr
     from zarr.codecs import GzipCodec, ZstdCodec
