@@ -28,7 +28,8 @@ def _tiff_levels(path):
 
 def _zarr_levels(path):
     group = zarr.open_group(path, mode="r")
-    return [group[d["path"]][...] for d in group.attrs["ome"]["multiscales"][0]["datasets"]]
+    meta = group.attrs.get("ome", group.attrs)
+    return [group[d["path"]][...] for d in meta["multiscales"][0]["datasets"]]
 
 
 def _check_block_means(levels, dtype):
@@ -93,19 +94,22 @@ def test_big_dask_stack_pyramid_is_staged_and_equal(tmp_path, monkeypatch):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["a.ome.tiff", "b.ome.tiff"]  # no spill left
 
 
-@pytest.mark.parametrize("dtype", [np.float32, np.uint16])
-def test_ome_zarr_multiscale_validates(tmp_path, dtype):
-    from ome_zarr_models.v05.image import Image
+@pytest.mark.parametrize(("dtype", "ngff"), [(np.float32, "0.5"), (np.uint16, "0.5"), (np.uint16, "0.4")])
+def test_ome_zarr_multiscale_validates(tmp_path, dtype, ngff):
+    from ome_zarr_models.v04.image import Image as Image04
+    from ome_zarr_models.v05.image import Image as Image05
 
     stack = _stack(dtype)
     path = write_ome_zarr(tmp_path / "r.ome.zarr", stack, TAGS, pixel_size=(0.5, 0.25), labels=MARKERS,
-                          settings=OutputSettings(format="ome-zarr"))
+                          settings=OutputSettings(format="ome-zarr", ngff=ngff))
     group = zarr.open_group(path, mode="r")
-    Image.from_zarr(group)  # ome-zarr-models validates the NGFF 0.5 image (metadata and arrays)
+    assert group.metadata.zarr_format == (2 if ngff == "0.4" else 3)
+    # ome-zarr-models validates the NGFF image (metadata and arrays) of the chosen version
+    (Image04 if ngff == "0.4" else Image05).from_zarr(group)
     levels = _zarr_levels(path)
     np.testing.assert_array_equal(levels[0], stack)
     _check_block_means(levels, dtype)
-    meta = group.attrs["ome"]
+    meta = dict(group.attrs) if ngff == "0.4" else group.attrs["ome"]
     scales = [d["coordinateTransformations"][0]["scale"] for d in meta["multiscales"][0]["datasets"]]
     assert scales == [[1.0, 0.5, 0.25], [1.0, 1.0, 0.5], [1.0, 2.0, 1.0]]
     assert group["0"].chunks == (1, 512, 512)

@@ -25,6 +25,8 @@ class OutputSettings:
         choices=("zlib", "zstd", "lzw", "none"),
     )
     tile: int = setting(512, "tile / chunk edge in pixels", low=64, high=4096)
+    ngff: str = setting("0.5", "OME-Zarr version (0.4: Zarr v2, for readers without Zarr v3)",
+                        choices=("0.5", "0.4"))
 
 
 

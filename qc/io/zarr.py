@@ -88,7 +88,8 @@ def open_zarr(path: Path):
 
 def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, labels=None,
                    provenance=None, source_xml=None) -> Path:
-    """Write a C x Y x X stack as a multiscale OME-Zarr image (NGFF 0.5, Zarr v3), atomically.
+    """Write a C x Y x X stack as a multiscale OME-Zarr image, atomically: NGFF 0.5 (Zarr v3),
+    or NGFF 0.4 (Zarr v2) when ``settings.ngff`` is ``"0.4"``.
 
     Level ``"0"`` holds the pixels; levels ``"1"``, ``"2"``, ... are 2 x 2 block means of
     the level above (:mod:`~plexwash.qc.io.pyramid`), each computed from the one just
@@ -100,7 +101,6 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, labe
     not carried.
     """
     import zarr
-    from zarr.codecs import GzipCodec, ZstdCodec
 
     from .pyramid import build_levels
 
@@ -110,16 +110,18 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, labe
     labels = list(labels) if labels else channels
     check_stack_shape(path, data, channels)
     tile = settings.tile
-    compressors = {"none": None, "zstd": [ZstdCodec(level=3)]}.get(settings.compression, [GzipCodec(level=6)])
+    v2 = settings.ngff == "0.4"
+    compressors = _compressors(settings.compression, v2)
 
     def build(tmp: Path) -> None:
-        group = zarr.open_group(str(tmp), mode="w", zarr_format=3)
+        group = zarr.open_group(str(tmp), mode="w", zarr_format=2 if v2 else 3)
 
         def new_level(shape, dtype=data.dtype):
+            names = {} if v2 else {"dimension_names": ["c", "y", "x"]}
             return group.create_array(
                 str(len(group)), shape=shape, dtype=dtype,
                 chunks=(1, min(tile, shape[1]), min(tile, shape[2])),
-                compressors=compressors, dimension_names=["c", "y", "x"])
+                compressors=compressors, **names)
 
         array = new_level(tuple(data.shape))
         stack = data
@@ -133,11 +135,30 @@ def write_ome_zarr(path, data, channels, *, pixel_size=None, settings=None, labe
                                       lock=False, asarray=True, fancy=False)
             _store(stack.rechunk(array.chunks), array)
         levels = [array, *build_levels(array, lambda shape, dtype: new_level(shape, dtype))]
-        group.attrs["ome"] = ngff_metadata(path.name, labels, levels, pixel_size)
+        meta = ngff_metadata(path.name, labels, levels, pixel_size)
+        if v2:  # NGFF 0.4: the keys at the top, the version in each multiscale
+            del meta["version"]
+            meta["multiscales"][0]["version"] = "0.4"
+            group.attrs.update(meta)
+        else:
+            group.attrs["ome"] = meta
         group.attrs["plexwash"] = {"version": __version__, "channels": channels,
                                    "provenance": dict(provenance or {})}
 
     return write_atomic(path, build)
+
+
+def _compressors(compression: str, v2: bool):
+    """Codecs for a compression choice: gzip (deflate) for zlib and lzw, zstd for zstd."""
+    if compression == "none":
+        return None
+    if v2:
+        from numcodecs import GZip, Zstd
+
+        return [Zstd(level=3)] if compression == "zstd" else [GZip(level=6)]
+    from zarr.codecs import GzipCodec, ZstdCodec
+
+    return [ZstdCodec(level=3)] if compression == "zstd" else [GzipCodec(level=6)]
 
 
 def ngff_metadata(name: str, labels: Sequence[str], levels, pixel_size=None) -> dict:
