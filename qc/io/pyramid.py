@@ -7,8 +7,8 @@ has an odd number of rows or columns, the last row or column of the level is the
 the pixels present (1 or 2 of them), so a level covers the whole image and is
 ``ceil(n / 2)`` pixels on a side. Integer stacks round the mean to the nearest integer.
 
-Levels are built from bands of whole rows of the level above, so memory stays bounded
-by one band; each level holds a quarter of the pixels of the one above.
+Levels are built from one channel's bands of whole rows of the level above, so memory
+stays bounded by one band; each level holds a quarter of the pixels of the one above.
 """
 
 from __future__ import annotations
@@ -74,9 +74,9 @@ def build_levels(level0, new_level: Callable[[tuple[int, int, int], np.dtype], o
     for shape in shapes[1:]:
         above, below = levels[-1], new_level(shape, dtype)
         n_c, n_y, n_x = above.shape
-        for y0 in range(0, n_y, BAND_ROWS):
-            band = np.asarray(above[0:n_c, y0 : min(n_y, y0 + BAND_ROWS), 0:n_x])
-            half = halve(band)
-            below[0:n_c, y0 // 2 : y0 // 2 + half.shape[1], 0 : shape[2]] = half
+        for c in range(n_c):  # one channel's band at a time: a few MB whatever the channel count
+            for y0 in range(0, n_y, BAND_ROWS):
+                half = halve(np.asarray(above[c : c + 1, y0 : min(n_y, y0 + BAND_ROWS), 0:n_x]))
+                below[c : c + 1, y0 // 2 : y0 // 2 + half.shape[1], 0 : shape[2]] = half
         levels.append(below)
     return levels[1:]
