@@ -1,4 +1,5 @@
-"""npe2 reader: an ROI (OME-TIFF, OME-Zarr, or TIFF with its panel) as one layer per channel."""
+"""npe2 reader: an ROI (OME-TIFF, OME-Zarr, or TIFF with its panel) as one layer per channel
+(multiscale when the file holds a pyramid)."""
 
 from __future__ import annotations
 
@@ -61,4 +62,16 @@ def read_roi_layers(path) -> list[tuple]:
     """Read one ROI (or several) into image layer data, one layer per channel."""
     if isinstance(path, (list, tuple)):
         return [layer for p in path for layer in read_roi_layers(p)]
-    return roi_layer_data(read_with_panel(path))
+    return multiscale_layers(read_with_panel(path))
+
+
+def multiscale_layers(roi) -> list[tuple]:
+    """One layer per channel; a file with a pyramid gives multiscale layers (level 0 first)."""
+    from plexwash.qc.io import read_levels
+
+    layers = roi_layer_data(roi)
+    levels = read_levels(roi.path)
+    if len(levels) < 2 or tuple(levels[0].shape) != tuple(roi.shape):
+        return layers
+    return [([level[i] for level in levels], {**kwargs, "multiscale": True}, kind)
+            for i, (_, kwargs, kind) in enumerate(layers)]

@@ -24,6 +24,7 @@ from __future__ import annotations
 import dataclasses
 import time
 from collections.abc import Callable, Mapping
+from datetime import UTC
 from pathlib import Path
 
 import numpy as np
@@ -31,6 +32,7 @@ import numpy as np
 from ._arrays import channel_plane, is_dask, stack_planes, used_channels
 from .errors import InputError
 from .io import Roi, write_stack
+from .io.tiff import source_ome_xml
 from .recipe import Recipe, default_recipe
 from .staging import MemoryStack, Staging, wash_staged
 from .steps.compensation import compensation_matrix
@@ -389,7 +391,7 @@ def compute(washed: Washed) -> Washed:
 
 
 def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *, spillover=None,
-                 staging_dir: str | Path | None = None) -> WashedFile:
+                 staging_dir: str | Path | None = None, provenance=None) -> WashedFile:
     """Wash one ROI and write it atomically; the pixels and the stats come from the same passes.
 
     The wash runs in passes (:mod:`plexwash.qc.staging`): a lazy (dask) ROI over two
@@ -410,6 +412,9 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
     staging_dir : str or Path, optional
         Folder for the staging files of a lazy ROI instead of the output's folder (e.g.
         a node's local scratch disk when the output goes to network storage).
+    provenance : mapping, optional
+        Written into the output's metadata (hashes of the input, recipe, spillover).
+        The tool, its version and the date are always added.
 
     Returns
     -------
@@ -429,6 +434,20 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
     with Staging(out_path if is_dask(roi.data) else None, staging_dir=staging_dir) as staging:
         staged, stats = wash_staged(roi, recipe, matrix, staging=staging, notes=notes)
         data = staged.array if isinstance(staged, MemoryStack) else staged
-        write_stack(out_path, data, roi.channels, pixel_size=roi.pixel_size, settings=recipe.output)
+        write_stack(out_path, data, roi.channels, pixel_size=roi.pixel_size, settings=recipe.output,
+                    labels=roi.labels, provenance=_provenance(provenance),
+                    source_xml=source_ome_xml(roi.path))
     return WashedFile(output=out_path, seconds=time.perf_counter() - started, stats=stats,
                       notes=tuple(notes))
+
+
+def _provenance(extra) -> dict[str, str]:
+    """Tool, version and date, then the caller's entries (hashes), as text."""
+    from datetime import datetime
+
+    from ._version import __version__
+
+    record = {"software": "plexwash", "version": __version__,
+              "date": datetime.now(UTC).isoformat(timespec="seconds")}
+    record.update({str(k): str(v) for k, v in (extra or {}).items() if v is not None})
+    return record

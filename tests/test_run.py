@@ -522,7 +522,7 @@ _DRIVER = textwrap.dedent("""
     if sys.argv[5:] == ["lazy"]:  # every ROI read as dask: the staged wash
         io.LAZY_BYTES = 0
     block, marker = os.environ["BLOCK_ROI"], Path(os.environ["BLOCK_MARKER"])
-    real_imwrite = tifffile.imwrite
+    real_write = tifffile.TiffWriter.write
 
     def tiles(data, tile):
         for c in range(data.shape[0]):
@@ -530,11 +530,13 @@ _DRIVER = textwrap.dedent("""
                 for x in range(0, data.shape[2], tile[1]):
                     yield np.ascontiguousarray(data[c, y:y + tile[0], x:x + tile[1]])
 
-    def blocking_imwrite(path, data, *args, **kwargs):
-        # The hook: the write of the blocked ROI stops half way through its tiles, says so
-        # in the marker file (naming the file being written) and waits until a signal ends it.
-        if not Path(path).name.startswith("." + block):
-            return real_imwrite(path, data, *args, **kwargs)
+    def blocking_write(self, data, *args, **kwargs):
+        # The hook: the write of level 0 of the blocked ROI stops half way through its tiles,
+        # says so in the marker file (naming the file being written) and waits until a
+        # signal ends it.
+        path = self._fh.path
+        if not Path(path).name.startswith("." + block) or kwargs.get("subfiletype"):
+            return real_write(self, data, *args, **kwargs)
         if isinstance(data, np.ndarray):
             kwargs.update(shape=data.shape, dtype=data.dtype)
             data = tiles(data, kwargs["tile"])
@@ -548,9 +550,9 @@ _DRIVER = textwrap.dedent("""
                     threading.Event().wait()  # until SIGKILL, or SIGINT's KeyboardInterrupt
                 yield tile
 
-        return real_imwrite(path, half_then_block(), *args, **kwargs)
+        return real_write(self, half_then_block(), *args, **kwargs)
 
-    tifffile.imwrite = blocking_imwrite
+    tifffile.TiffWriter.write = blocking_write
     try:
         s = run_cohort(sys.argv[1], sys.argv[2], spillover=sys.argv[3], panel=sys.argv[4],
                        progress=False)

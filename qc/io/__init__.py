@@ -25,7 +25,7 @@ from .cohort import (
 )
 from .hashing import canonical_json, sha256_path
 from .panel import Panel, read_csv_cells, read_panel, refuse_duplicates
-from .roi import SUPPORTED_DTYPES, Roi, read_roi, write_stack
+from .roi import SUPPORTED_DTYPES, Roi, read_levels, read_roi, write_stack
 from .tiff import write_ome_tiff
 from .zarr import ngff_metadata, write_ome_zarr
 
@@ -42,6 +42,7 @@ __all__ = [
     "ngff_metadata",
     "output_name",
     "read_csv_cells",
+    "read_levels",
     "read_panel",
     "read_roi",
     "refuse_duplicates",

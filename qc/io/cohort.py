@@ -19,9 +19,14 @@ class OutputSettings:
     enabled: bool = setting(True, "write washed stacks (false: measure quality only)")
     format: str = setting("ome-tiff", "file format of washed stacks", choices=("ome-tiff", "ome-zarr"))
     compression: str = setting(
-        "zstd", "lossless compression (zstd: fastest measured here)", choices=("zstd", "zlib", "none")
+        "zlib",
+        "lossless compression (zlib = deflate: read by every OME-TIFF reader; zstd: faster, needs a "
+        "reader built with zstd; lzw: widely read, larger files; OME-Zarr writes gzip for zlib and lzw)",
+        choices=("zlib", "zstd", "lzw", "none"),
     )
     tile: int = setting(512, "tile / chunk edge in pixels", low=64, high=4096)
+    ngff: str = setting("0.5", "OME-Zarr version (0.4: Zarr v2, for readers without Zarr v3)",
+                        choices=("0.5", "0.4"))
 
 
 

@@ -16,8 +16,8 @@ import numpy as np
 from ..errors import InputError
 from .cohort import OutputSettings, roi_stem
 from .panel import Panel, read_panel, refuse_duplicates
-from .tiff import open_tiff, write_ome_tiff
-from .zarr import open_zarr, write_ome_zarr
+from .tiff import open_tiff, tiff_levels, write_ome_tiff
+from .zarr import open_zarr, write_ome_zarr, zarr_levels
 
 #: Stacks bigger than this are read lazily (dask) instead of into memory.
 LAZY_BYTES = 128 * 2**20
@@ -38,11 +38,13 @@ class Roi:
     path : Path
         The file or folder the ROI was read from.
     labels : tuple of str
-        Readable target names (from the panel; the channel names otherwise).
+        Readable target names: from the panel; else the marker names a plexwash output
+        keeps beside its tags; else the channel names.
     use : tuple of bool
         False for channels the panel marks ``no``: they pass through untouched.
     pixel_size : tuple of float or None
-        Physical (y, x) pixel size in micrometres, when the file records it.
+        Physical (y, x) pixel size in micrometres (converted from the file's length
+        unit), when the file records it.
     """
 
     data: object
@@ -139,9 +141,9 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     if not path.exists():
         raise InputError(path, "file not found")
     if path.is_dir():
-        data, channels, pixel_size = open_zarr(path)
+        data, channels, pixel_size, markers = open_zarr(path)
     else:
-        data, channels, pixel_size = open_tiff(path, has_panel=panel is not None)
+        data, channels, pixel_size, markers = open_tiff(path, has_panel=panel is not None)
     if data.ndim != 3:
         raise InputError(path, f"expected a C x Y x X stack, got {data.ndim}-D data")
     if np.dtype(data.dtype).type not in SUPPORTED_DTYPES:
@@ -151,8 +153,8 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
         raise InputError(path, f"metadata names {len(channels)} channels but the stack has {n_channels}")
     if panel is not None:
         channels, labels, use = _apply_panel(path, channels, n_channels, panel)
-    else:
-        labels, use = (), ()
+    else:  # a washed stack keeps the marker names beside its tags
+        labels, use = (markers or ()), ()
     if any(not c.strip() for c in channels):
         raise InputError(path, "a channel has an empty name")
     refuse_duplicates(path, channels, "channel")
@@ -198,13 +200,31 @@ def _refuse_bad_values(path: Path, array) -> None:
                          "offset or clip to 0 first)")
 
 
-def write_stack(path, data, channels, *, pixel_size=None, settings=None) -> Path:
-    """Write a stack in the format of ``settings`` (an :class:`OutputSettings`).
+def write_stack(path, data, channels, *, pixel_size=None, settings=None, labels=None,
+                provenance=None, source_xml=None) -> Path:
+    """Write a stack in the format of ``settings`` (an :class:`OutputSettings`), with its pyramid.
 
     ``data`` is a numpy array, a dask array (computed chunk by chunk) or any array store
     that can be sliced ``data[c, y0:y1, x0:x1]`` (a zarr array, a staged stack), read
-    band by band. Returns the final path.
+    band by band. ``labels`` are the readable marker names (the tags when omitted),
+    ``provenance`` a mapping written into the file's metadata, ``source_xml`` the input's
+    OME-XML (its instruments and acquisition date carried into an OME-TIFF). Returns the
+    final path.
     """
     settings = settings or OutputSettings()
     writer = write_ome_zarr if settings.format == "ome-zarr" else write_ome_tiff
-    return writer(path, data, channels, pixel_size=pixel_size, settings=settings)
+    return writer(path, data, channels, pixel_size=pixel_size, settings=settings, labels=labels,
+                  provenance=provenance, source_xml=source_xml)
+
+
+def read_levels(path: str | Path) -> list:
+    """The resolution levels of an ROI file, level 0 first, as lazy dask arrays.
+
+    One entry for a file without a pyramid. :func:`read_roi` reads level 0 only; viewers
+    use the whole list (a multiscale image). The arrays keep the file's own axes.
+    """
+    path = Path(path)
+    try:
+        return zarr_levels(path) if path.is_dir() else tiff_levels(path)
+    except Exception as exc:  # a file read_roi accepted but whose levels cannot be listed
+        raise InputError(path, f"cannot list resolution levels ({exc})") from None

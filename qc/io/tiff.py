@@ -15,7 +15,8 @@ from .._version import __version__
 from ..errors import InputError
 from ..files import remove_path, temporary_path, write_atomic
 from .checks import check_stack_shape, one_channel, short_reason, squeeze_axes
-from .cohort import OutputSettings
+from .cohort import OutputSettings, roi_stem
+from .ome import CHANNEL_TAGS, to_micrometres
 from .staged import StagedStack
 
 #: Dask stacks bigger than this are computed into a staging file (a
@@ -28,7 +29,8 @@ WRITE_BUFFER_BYTES = 32 * 2**20
 
 
 def open_tiff(path: Path, *, has_panel: bool):
-    """A zarr view of the first image series, its channel names (None: plain TIFF), pixel size."""
+    """A zarr view of level 0 of the first image series, its channel names (None: plain
+    TIFF), pixel size (µm) and marker names (None unless plexwash kept the tags beside them)."""
     import tifffile
     import zarr
 
@@ -57,13 +59,13 @@ def open_tiff(path: Path, *, has_panel: bool):
         axes = series.axes.upper()
         shape = tuple(series.shape)
         keep = squeeze_axes(path, axes, shape, plain=not tif.is_ome)
-        channels = None
+        channels = markers = None
         pixel_size = None
         if tif.is_ome:
-            channels, pixel_size = _ome_channels(path, tif.ome_metadata)
+            channels, markers, pixel_size = _ome_channels(path, tif.ome_metadata)
         elif not has_panel:
             raise InputError(path, "plain TIFF has no channel names; give its panel (--panel panel.csv)")
-        store = series.aszarr()
+        store = series.aszarr(level=0)
         data = zarr.open(store, mode="r")
         if keep != tuple(range(len(shape))):
             import dask.array as da
@@ -76,7 +78,7 @@ def open_tiff(path: Path, *, has_panel: bool):
             data = one_channel(data)
         if channels is None and not has_panel:
             raise InputError(path, "OME-XML names no channels; give its panel (--panel panel.csv)")
-        return data, channels, pixel_size
+        return data, channels, pixel_size, markers
     except InputError:
         tif.close()
         raise
@@ -114,7 +116,7 @@ def _refuse_absurd_ome(path: Path, tif) -> None:
                              f"{first.imagewidth} x {first.imagelength} px; refusing the damaged metadata")
     if planes_claimed > planes_held:
         raise InputError(path, f"OME-XML claims {planes_claimed} image planes but the file holds "
-                         f"{planes_held}; refusing the damaged metadata")
+                         f"{planes_held}; the file is truncated or its metadata damaged")
 
 
 def _sizes(sizes: dict) -> str:
@@ -165,7 +167,8 @@ class _TiffWarnings(logging.Handler):
 
 
 def _ome_channels(path: Path, xml: str | None):
-    """Channel names and (y, x) physical pixel size from OME-XML."""
+    """Channel names (acquisition tags), marker names (None unless plexwash's tag map is
+    there) and (y, x) physical pixel size in µm from OME-XML."""
     if not xml:
         raise InputError(path, "OME-TIFF without OME-XML")
     try:
@@ -175,28 +178,51 @@ def _ome_channels(path: Path, xml: str | None):
     pixels = next((el for el in root.iter() if el.tag.endswith("}Pixels") or el.tag == "Pixels"), None)
     if pixels is None:
         raise InputError(path, "OME-XML has no Pixels element")
-    names = []
+    tags = _channel_tags(root)
+    names, markers = [], []
     for i, ch in enumerate(el for el in pixels if el.tag.endswith("Channel")):
-        name = ch.get("Name") or ch.get("Fluor") or ""
+        marker = (ch.get("Name") or ch.get("Fluor") or "").strip()
+        name = tags.get(ch.get("ID", "")) or marker
         names.append(name.strip() or f"channel_{i}")
+        markers.append(marker or names[-1])
     pixel_size = None
     try:
-        px, py = pixels.get("PhysicalSizeX"), pixels.get("PhysicalSizeY")
-        if px and py:
-            pixel_size = (float(py), float(px))
+        sizes = [to_micrometres(pixels.get(f"PhysicalSize{a}"), pixels.get(f"PhysicalSize{a}Unit"))
+                 for a in "YX"]
+        if None not in sizes:
+            pixel_size = (sizes[0], sizes[1])
     except ValueError:
         pixel_size = None
-    return tuple(names), pixel_size
+    return tuple(names), (tuple(markers) if tags else None), pixel_size
 
 
-def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> Path:
-    """Write a C x Y x X stack as a tiled, compressed OME-TIFF, atomically.
+def _channel_tags(root) -> dict[str, str]:
+    """Channel ID to acquisition tag, from plexwash's ``MapAnnotation`` (empty if none)."""
+    tags: dict[str, str] = {}
+    for el in root.iter():
+        if el.tag.endswith("MapAnnotation") and el.get("Namespace") == CHANNEL_TAGS:
+            for m in el.iter():
+                if m.tag.endswith("}M") or m.tag == "M":
+                    tags[m.get("K", "")] = (m.text or "").strip()
+    return tags
+
+
+def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, labels=None,
+                   provenance=None, source_xml=None) -> Path:
+    """Write a C x Y x X stack as a tiled, compressed, pyramidal OME-TIFF, atomically.
+
+    Level 0 is one page per channel; the lower resolution levels
+    (:mod:`~plexwash.qc.io.pyramid`: 2 x 2 block means, halving until the longer side is
+    at most 512 px) are SubIFDs of each page, as the OME-TIFF specification describes
+    pyramids. The OME-XML (:func:`~plexwash.qc.io.ome.ome_xml`) names each channel by its
+    marker, keeps the acquisition tags and the provenance in ``MapAnnotation`` s, and
+    gives the pixel size in micrometres.
 
     A dask array is computed chunk by chunk: small stacks in memory, big ones (over
     ``IN_MEMORY_WRITE_BYTES``) into a staging file beside the output
     (:class:`~plexwash.qc.io.staged.StagedStack`, removed when done), so memory stays
-    bounded by chunks and bands. An array store (zarr array, staged stack) is read band
-    by band.
+    bounded by chunks and bands; big pyramid levels are staged the same way. An array
+    store (zarr array, staged stack) is read band by band.
 
     Parameters
     ----------
@@ -205,67 +231,80 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None) -> P
     data : numpy.ndarray, dask.array.Array or array store
         The stack, axes (C, Y, X).
     channels : sequence of str
-        Channel names, written to OME-XML ``Channel/@Name``.
+        Acquisition channel names (tags).
     pixel_size : (float, float), optional
         Physical (y, x) pixel size in micrometres.
     settings : OutputSettings, optional
         Compression and tile size.
+    labels : sequence of str, optional
+        Readable marker names, written as ``Channel/@Name`` (the tags when omitted).
+    provenance : mapping of str to str, optional
+        Written as a ``MapAnnotation`` (tool version, hashes, date).
+    source_xml : str, optional
+        The input's OME-XML: its instruments and acquisition date are carried over.
     """
     import tifffile
+
+    from .ome import ome_xml
+    from .pyramid import build_levels
 
     settings = settings or OutputSettings()
     path = Path(path)
     channels = list(channels)
+    labels = list(labels) if labels else channels
     check_stack_shape(path, data, channels)
-    tile = min(settings.tile, _round_up16(max(data.shape[1], data.shape[2])))
-    tile = max(16, tile - tile % 16)
-    metadata = {"axes": "CYX", "Channel": {"Name": channels}}
-    if pixel_size is not None:
-        metadata.update(
-            PhysicalSizeY=float(pixel_size[0]),
-            PhysicalSizeX=float(pixel_size[1]),
-            PhysicalSizeYUnit="µm",
-            PhysicalSizeXUnit="µm",
-        )
     compression = None if settings.compression == "none" else settings.compression
+    shape = tuple(int(n) for n in data.shape)
+    dtype = np.dtype(data.dtype)
+    xml = ome_xml(roi_stem(path.name), shape, dtype, channels, labels, pixel_size, provenance,
+                  source_xml)
 
     def build(tmp: Path) -> None:
-        def write(content, **kwargs) -> None:
-            tifffile.imwrite(
-                tmp,
-                content,
-                ome=True,
-                photometric="minisblack",
-                tile=(tile, tile),
-                compression=compression,
-                metadata=metadata,
-                software=f"plexwash {__version__}",
-                buffersize=WRITE_BUFFER_BYTES,
-                **kwargs,
-            )
+        spill = temporary_path(path, "spill")
+        staged: list[StagedStack] = []
 
-        shape = {"shape": tuple(data.shape), "dtype": np.dtype(data.dtype)}
-        if is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
-            # computed once, chunk by chunk, into a staging file beside the output
-            # (the staged wash's own mechanism), then read back band by band
-            import dask.array as da
+        def stage(level_shape, level_dtype):
+            if int(np.prod(level_shape)) * level_dtype.itemsize <= IN_MEMORY_WRITE_BYTES:
+                return np.empty(level_shape, level_dtype)
+            spill.mkdir(exist_ok=True)
+            staged.append(StagedStack(spill / f"level{len(staged)}.raw", level_shape, dtype=level_dtype))
+            return staged[-1]
 
-            spill = temporary_path(path, "spill")
-            spill.mkdir()
-            try:
-                with StagedStack(spill / "stack.raw", data.shape, dtype=data.dtype) as staged:
-                    da.store(data, staged, lock=False)
-                    write(_tiles(staged, tile), **shape)
-            finally:
-                remove_path(spill)
-        elif is_dask(data) or isinstance(data, np.ndarray):
-            write(np.asarray(data))
-        else:  # an array store: read band by band
-            write(_tiles(data, tile), **shape)
+        try:
+            if is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
+                # computed once, chunk by chunk, into a staging file beside the output
+                # (the staged wash's own mechanism), then read back band by band
+                import dask.array as da
+
+                source = stage(shape, dtype)
+                da.store(data, source, lock=False)
+            elif is_dask(data) or isinstance(data, np.ndarray):
+                source = np.asarray(data)
+            else:  # an array store: read band by band
+                source = data
+            levels = [source, *build_levels(source, stage)]
+            total = sum(_nbytes(level) for level in levels)
+            with tifffile.TiffWriter(tmp, bigtiff=total > 2**32 - 2**25) as tif:
+                for i, level in enumerate(levels):
+                    tile = _tile_for(settings.tile, level.shape)
+                    content = level if isinstance(level, np.ndarray) else _tiles(level, tile)
+                    first = {"subifds": len(levels) - 1, "description": xml,
+                             "software": f"plexwash {__version__}"} if i == 0 else {"subfiletype": 1}
+                    tif.write(content, shape=tuple(level.shape), dtype=dtype, photometric="minisblack",
+                              tile=(tile, tile), compression=compression, metadata=None,
+                              buffersize=WRITE_BUFFER_BYTES, **first)
+        finally:
+            for stack in staged:
+                stack.close()
+            remove_path(spill)
 
     return write_atomic(path, build)
 
 
+def _tile_for(tile: int, shape) -> int:
+    """The tile edge for a level: the setting, no bigger than the level needs, a multiple of 16."""
+    tile = min(tile, _round_up16(max(shape[1], shape[2])))
+    return max(16, tile - tile % 16)
 
 
 def _round_up16(n: int) -> int:
@@ -284,3 +323,32 @@ def _tiles(array, tile: int) -> Iterator[np.ndarray]:
             band = np.asarray(array[c, y : y + tile, 0:n_x])
             for x in range(0, n_x, tile):
                 yield np.ascontiguousarray(band[:, x : x + tile])
+
+
+def source_ome_xml(path: str | Path) -> str | None:
+    """The OME-XML of an OME-TIFF (None for anything else, or a file that cannot be read)."""
+    import tifffile
+
+    path = Path(path)
+    if not path.is_file():
+        return None
+    try:
+        with tifffile.TiffFile(path) as tif:
+            return tif.ome_metadata if tif.is_ome else None
+    except Exception:  # read_roi has already judged the file; nothing to carry
+        return None
+
+
+def tiff_levels(path: Path) -> list:
+    """Every resolution level of the first series (level 0 first), as lazy dask arrays."""
+    import dask.array as da
+    import tifffile
+    import zarr
+
+    with tifffile.TiffFile(path) as tif:
+        n_levels = len(tif.series[0].levels)
+    levels = []
+    for level in range(n_levels):
+        store = tifffile.imread(path, aszarr=True, series=0, level=level)
+        levels.append(da.from_zarr(zarr.open(store, mode="r")))
+    return levels

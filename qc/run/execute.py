@@ -191,7 +191,10 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
         from ..io import output_name
 
         target = temporary_path(out_dir / output_name(job.roi), "measure")
-    result = wash_to_file(roi, target, recipe, spillover=matrix, staging_dir=job.staging_dir)
+    provenance = {"input_sha256": input_sha256, "recipe_sha256": job.recipe_sha256,
+                  "spillover_sha256": job.spillover_sha256, "panel_sha256": job.panel_sha256}
+    result = wash_to_file(roi, target, recipe, spillover=matrix, staging_dir=job.staging_dir,
+                          provenance=provenance)
     written.append(target)
     release_memory()
     lap("wash_write")
