@@ -1,9 +1,13 @@
-"""Pieces every benchmark uses: the example_stack modules and a median timer."""
+"""Pieces every benchmark uses: the example_stack modules, a median timer, a display."""
 
 from __future__ import annotations
 
 import importlib.util
+import os
+import shutil
 import statistics
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -31,3 +35,20 @@ def median_time(fn, repeats: int) -> float:
         fn()
         times.append(time.perf_counter() - start)
     return statistics.median(times)
+
+
+def rerun_under_xvfb(script: str, argv: list[str]) -> int | None:
+    """Run ``script`` again under ``xvfb-run`` when there is no display; None when there is one.
+
+    Returns the child's exit code (2 when neither a display nor ``xvfb-run`` exists).
+    ``QT_QPA_PLATFORM`` is dropped: the offscreen platform renders black under Xvfb.
+    """
+    if os.environ.get("DISPLAY") or os.environ.get("PLEXWASH_BENCH_CHILD"):
+        return None
+    if shutil.which("xvfb-run") is None:
+        print("error: no display and no xvfb-run; run under an X server", file=sys.stderr)
+        return 2
+    env = dict(os.environ, PLEXWASH_BENCH_CHILD="1")
+    env.pop("QT_QPA_PLATFORM", None)
+    command = ["xvfb-run", "-a", "-s", "-screen 0 1600x1200x24", sys.executable, script, *argv]
+    return subprocess.call(command, env=env)

@@ -16,12 +16,11 @@ from __future__ import annotations
 
 import argparse
 import os
-import shutil
-import subprocess
 import sys
 import time
 
 import numpy as np
+from _common import rerun_under_xvfb
 
 SIZE = 1000
 
@@ -72,15 +71,9 @@ def main(argv=None) -> int:
     parser.add_argument("--repeats", type=int, default=30)
     args = parser.parse_args(argv)
 
-    if not os.environ.get("DISPLAY") and not os.environ.get("PLEXWASH_BENCH_CHILD"):
-        if shutil.which("xvfb-run") is None:
-            print("error: no display and no xvfb-run; run under an X server", file=sys.stderr)
-            return 2
-        env = dict(os.environ, PLEXWASH_BENCH_CHILD="1")
-        env.pop("QT_QPA_PLATFORM", None)  # offscreen renders black under Xvfb
-        command = ["xvfb-run", "-a", "-s", "-screen 0 1600x1200x24", sys.executable, __file__,
-                   "--repeats", str(args.repeats)]
-        return subprocess.call(command, env=env)
+    code = rerun_under_xvfb(__file__, ["--repeats", str(args.repeats)])
+    if code is not None:
+        return code
 
     os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
     import napari
