@@ -52,6 +52,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("out", type=Path, help="run output folder (shared file system)")
     parser.add_argument("--recipe", type=Path, help="recipe TOML")
     parser.add_argument("--spillover", type=Path, help="spillover matrix CSV")
+    parser.add_argument("--stains", type=Path, help="stain sheet (stains.csv: tag,marker,wash[,role])")
     parser.add_argument("--queue", help="SLURM partition")
     parser.add_argument("--account", help="SLURM account to charge")
     parser.add_argument("--jobs", type=int, default=2, help="SLURM jobs to start (default 2)")
@@ -103,6 +104,8 @@ def plexwash_command(args, address: str) -> list[str]:
         command += ["--recipe", str(args.recipe)]
     if args.spillover:
         command += ["--spillover", str(args.spillover)]
+    if args.stains:
+        command += ["--stains", str(args.stains)]
     return command
 
 
