@@ -1,4 +1,4 @@
-"""npe2 sample data: ROIs of the demo cohort (``example_stack/`` in the source tree)."""
+"""npe2 sample data: ROIs of the demo cohort (``example_stack/`` of the source tree or the wheel)."""
 
 from __future__ import annotations
 
@@ -10,10 +10,15 @@ DEMO_ENV = "PLEXWASH_DEMO_DIR"
 
 
 def demo_dir() -> Path:
-    """The demo folder: ``$PLEXWASH_DEMO_DIR`` if set, else ``example_stack/`` of the source tree."""
-    from plexwash.qc.errors import InputError
+    """The demo folder: ``$PLEXWASH_DEMO_DIR`` if set, else the engine's demo data.
 
-    folder = Path(os.environ.get(DEMO_ENV) or Path(__file__).resolve().parents[1] / "example_stack")
+    That is ``example_stack/`` of a source checkout, or the copy an installed wheel ships
+    (:func:`plexwash.qc.run.demo.demo_folder`).
+    """
+    from plexwash.qc.errors import InputError
+    from plexwash.qc.run.demo import demo_folder
+
+    folder = Path(os.environ.get(DEMO_ENV) or demo_folder())
     if not (folder / "cohort").is_dir():
         raise InputError(folder, "demo cohort not found (make it with: python example_stack/generate.py, "
                                  f"or point {DEMO_ENV} at a folder holding cohort/ and stains.csv)")
