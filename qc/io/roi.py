@@ -45,6 +45,9 @@ class Roi:
     pixel_size : tuple of float or None
         Physical (y, x) pixel size in micrometres (converted from the file's length
         unit), when the file records it.
+    roles : tuple of str
+        The stain sheet's segmentation role of each channel (``nuclear``, ``membrane`` or
+        ``""``); all empty without a stain sheet.
     """
 
     data: object
@@ -53,8 +56,11 @@ class Roi:
     labels: tuple[str, ...] = ()
     use: tuple[bool, ...] = ()
     pixel_size: tuple[float, float] | None = None
+    roles: tuple[str, ...] = ()
 
     def __post_init__(self):
+        if not self.roles:
+            object.__setattr__(self, "roles", ("",) * len(self.channels))
         if not self.labels:
             object.__setattr__(self, "labels", tuple(self.channels))
         if not self.use:
@@ -79,7 +85,7 @@ class Roi:
 
 
 def _apply_stains(path: Path, channels: tuple[str, ...] | None, n_channels: int, stains: StainSheet):
-    """Channel names, labels and use flags of an ROI given its stains."""
+    """Channel names, marker names, wash flags and roles of an ROI given its stain sheet."""
     where = stains.path or path
     if channels is None:  # plain TIFF: the stain sheet names the pages in order
         if len(stains.tags) != n_channels:
@@ -87,7 +93,7 @@ def _apply_stains(path: Path, channels: tuple[str, ...] | None, n_channels: int,
                 where,
                 f"stain sheet lists {len(stains.tags)} channels but {path.name} has {n_channels}",
             )
-        return stains.tags, stains.markers, stains.wash
+        return stains.tags, stains.markers, stains.wash, stains.roles
     unknown = [c for c in stains.tags if c not in channels]
     absent = [c for c in channels if c not in stains.tags]
     if unknown or absent:
@@ -98,7 +104,8 @@ def _apply_stains(path: Path, channels: tuple[str, ...] | None, n_channels: int,
             parts.append(f"missing from the stain sheet: {', '.join(absent)}")
         raise InputError(where, "stain sheet rows do not match the ROI's channels (" + "; ".join(parts) + ")")
     order = [stains.tags.index(c) for c in channels]
-    return channels, tuple(stains.markers[i] for i in order), tuple(stains.wash[i] for i in order)
+    return (channels, tuple(stains.markers[i] for i in order), tuple(stains.wash[i] for i in order),
+            tuple(stains.roles[i] for i in order))
 
 
 def read_roi(path: str | Path, *, stains: str | Path | StainSheet | None = None, lazy: bool | None = None) -> Roi:
@@ -152,9 +159,9 @@ def read_roi(path: str | Path, *, stains: str | Path | StainSheet | None = None,
     if channels is not None and len(channels) != n_channels:
         raise InputError(path, f"metadata names {len(channels)} channels but the stack has {n_channels}")
     if stains is not None:
-        channels, labels, use = _apply_stains(path, channels, n_channels, stains)
+        channels, labels, use, roles = _apply_stains(path, channels, n_channels, stains)
     else:  # a washed stack keeps the marker names beside its tags
-        labels, use = (markers or ()), ()
+        labels, use, roles = (markers or ()), (), ()
     if any(not c.strip() for c in channels):
         raise InputError(path, "a channel has an empty name")
     refuse_duplicates(path, channels, "channel")
@@ -169,7 +176,7 @@ def read_roi(path: str | Path, *, stains: str | Path | StainSheet | None = None,
     else:
         array = np.asarray(data[...])
     _refuse_bad_values(path, array)
-    return Roi(array, tuple(channels), path, tuple(labels), tuple(use), pixel_size)
+    return Roi(array, tuple(channels), path, tuple(labels), tuple(use), pixel_size, tuple(roles))
 
 
 def _refuse_bad_values(path: Path, array) -> None:

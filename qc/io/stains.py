@@ -1,4 +1,4 @@
-"""The stain sheet (``stains.csv``: tag, marker, wash) and the small-CSV helpers other readers share."""
+"""The stain sheet (``stains.csv``: tag, marker, wash[, role]) and the small-CSV helpers other readers share."""
 
 from __future__ import annotations
 
@@ -12,16 +12,30 @@ from ..errors import InputError
 
 @dataclasses.dataclass(frozen=True)
 class StainSheet:
-    """The stain sheet: acquisition channel names, readable labels and whether each is cleaned."""
+    """The stain sheet: acquisition tags, readable marker names, whether each is washed, and
+    the segmentation role of each (``nuclear``, ``membrane`` or ``""``)."""
 
     tags: tuple[str, ...]
     markers: tuple[str, ...]
     wash: tuple[bool, ...]
     path: Path | None = None
+    roles: tuple[str, ...] = ()
+
+    def __post_init__(self):
+        if not self.roles:
+            object.__setattr__(self, "roles", ("",) * len(self.tags))
+
+
+#: The values of the stain sheet's optional ``role`` column (empty: no role).
+ROLES = ("nuclear", "membrane")
 
 
 def read_stains(path: str | Path) -> StainSheet:
-    """Read ``stains.csv`` (columns ``tag,marker,wash``; ``wash`` is ``yes`` or ``no``).
+    """Read ``stains.csv`` (columns ``tag,marker,wash[,role]``; ``wash`` is ``yes`` or ``no``).
+
+    The optional ``role`` column marks the channels that make the segmentation composites:
+    ``nuclear``, ``membrane`` or empty. A role needs ``wash = yes`` (the composites are
+    built from washed channels).
 
     Examples
     --------
@@ -33,7 +47,7 @@ def read_stains(path: str | Path) -> StainSheet:
     """
     path = Path(path)
     rows = _read_csv_rows(path, required=("tag", "marker", "wash"))
-    channels, labels, use = [], [], []
+    channels, labels, use, roles = [], [], [], []
     for number, row in rows:
         name = (row.get("tag") or "").strip()
         if not name:
@@ -44,8 +58,15 @@ def read_stains(path: str | Path) -> StainSheet:
         channels.append(name)
         labels.append((row.get("marker") or "").strip() or name)
         use.append(flag == "yes")
+        role = (row.get("role") or "").strip().lower()
+        if role and role not in ROLES:
+            raise InputError(path, f"row {number}: role must be {' or '.join(ROLES)} or empty, got {role!r}")
+        if role and flag != "yes":
+            raise InputError(path, f"row {number}: {name} has role {role} but wash = no "
+                             "(composites are built from washed channels)")
+        roles.append(role)
     refuse_duplicates(path, channels, "tag")
-    return StainSheet(tuple(channels), tuple(labels), tuple(use), path)
+    return StainSheet(tuple(channels), tuple(labels), tuple(use), path, tuple(roles))
 
 
 def read_csv_cells(path: Path) -> list[tuple[int, list[str]]]:

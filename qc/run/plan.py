@@ -185,9 +185,11 @@ def _stains_csv(stains) -> str:
 
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(["tag", "marker", "wash"])
-    for tag, marker, wash in zip(stains.tags, stains.markers, stains.wash, strict=True):
-        writer.writerow([tag, marker, "yes" if wash else "no"])
+    with_roles = any(stains.roles)
+    writer.writerow(["tag", "marker", "wash"] + (["role"] if with_roles else []))
+    for tag, marker, wash, role in zip(stains.tags, stains.markers, stains.wash, stains.roles,
+                                       strict=True):
+        writer.writerow([tag, marker, "yes" if wash else "no"] + ([role] if with_roles else []))
     return buffer.getvalue()
 
 
