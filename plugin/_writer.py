@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from datetime import UTC
 from pathlib import Path
 
 import numpy as np
@@ -67,7 +68,7 @@ def write_washed_stack(path: str, layer_data: list[tuple]) -> list[str]:
     metadata) go into the file beside the tags, and a provenance record names the studio
     as the writer, the plexwash version, the date and the ROI file(s) the layers came from.
     """
-    from datetime import datetime, timezone
+    from datetime import datetime
 
     from plexwash.qc import __version__
     from plexwash.qc.files import check_output
@@ -77,7 +78,7 @@ def write_washed_stack(path: str, layer_data: list[tuple]) -> list[str]:
     planes, names, markers, pixel_size, sources = _collect(layer_data)
     stack = _stack(planes)
     provenance = {"software": "plexwash studio", "version": __version__,
-                  "date": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+                  "date": datetime.now(UTC).isoformat(timespec="seconds"),
                   "source": "; ".join(sources) or "napari layers"}
     fmt = "ome-zarr" if path.name.lower().endswith(".zarr") else "ome-tiff"
     if fmt == "ome-tiff" and not path.name.lower().endswith((".tif", ".tiff")):

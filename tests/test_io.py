@@ -17,8 +17,8 @@ from plexwash.qc.files import check_output
 from plexwash.qc.io import (
     OutputSettings,
     list_cohort,
-    read_stains,
     read_roi,
+    read_stains,
     sha256_path,
     write_ome_tiff,
     write_ome_zarr,

@@ -21,7 +21,7 @@ def roi_with_sheet(tmp_path):
     path = tmp_path / "r.ome.tiff"
     write_ome_tiff(path, stack, TAGS, pixel_size=(0.5, 0.5))
     (tmp_path / "stains.csv").write_text(
-        "tag,marker,wash\n" + "".join(f"{t},{m},yes\n" for t, m in zip(TAGS, MARKERS)))
+        "tag,marker,wash\n" + "".join(f"{t},{m},yes\n" for t, m in zip(TAGS, MARKERS, strict=True)))
     return path, stack
 
 

@@ -24,8 +24,8 @@ from .cohort import (
     roi_stem,
 )
 from .hashing import canonical_json, sha256_path
-from .stains import StainSheet, read_csv_cells, read_stains, refuse_duplicates
 from .roi import SUPPORTED_DTYPES, Roi, read_levels, read_roi, write_stack
+from .stains import StainSheet, read_csv_cells, read_stains, refuse_duplicates
 from .tiff import write_ome_tiff
 from .zarr import ngff_metadata, write_ome_zarr
 

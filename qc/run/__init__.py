@@ -61,12 +61,12 @@ live outside this package: the report reads them too, and the run calls the repo
 
 from ..ledger import (
     LEDGER,
-    STAINS_COPY,
     QUALITY,
     RECIPE,
     REPORT,
     RUN_LOG,
     SPILLOVER_COPY,
+    STAINS_COPY,
     Ledger,
     json_ready,
     latest_records,

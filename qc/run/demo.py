@@ -8,7 +8,6 @@ from ..errors import InputError
 from .cohort import RunSummary, run_cohort
 
 
-
 def demo_folder() -> Path:
     """The demo data: ``example_stack/`` of a source checkout, else the copy in the wheel.
 

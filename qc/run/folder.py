@@ -21,13 +21,13 @@ from ..errors import InputError
 from ..files import check_output_folder, interval_paths
 from ..ledger import (
     LEDGER,
-    STAINS_COPY,
     QUALITY,
     RECIPE,
     REPORT,
     RUN_LOCK,
     RUN_LOG,
     SPILLOVER_COPY,
+    STAINS_COPY,
     read_ledger,
 )
 

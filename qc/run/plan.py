@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING
 from .._version import __version__
 from ..errors import InputError
 from ..files import reached_inputs, write_atomic
-from ..ledger import STAINS_COPY, RECIPE, SPILLOVER_COPY, latest_records, read_ledger
+from ..ledger import RECIPE, SPILLOVER_COPY, STAINS_COPY, latest_records, read_ledger
 from .folder import check_run_folder
 
 if TYPE_CHECKING:  # typing only: these modules load when a run starts

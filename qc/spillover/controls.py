@@ -149,7 +149,7 @@ def estimate_from_controls(
 
 def _read_controls(controls_csv: Path, stains):
     """Rows of controls.csv, each control read and put in the first control's channel order."""
-    from ..io import read_csv_cells, read_stains, read_roi
+    from ..io import read_csv_cells, read_roi, read_stains
 
     rows = read_csv_cells(controls_csv)
     header = [c.strip().lower() for c in rows[0][1]]
