@@ -6,7 +6,8 @@ wash's speckle step tests against), so the next step (segmentation, the studio, 
 notebook) sees where the engine found tissue. Written atomically through the output guard
 (never over an input, nor over a file plexwash did not write), as a pyramidal OME-TIFF
 whatever the washed stacks' format. A run writes it beside each washed stack when the
-recipe's ``[output] tissue_mask`` is on (the default).
+recipe's ``[output] tissue_mask`` is on (off by default: a run folder then holds exactly the
+files it held before).
 """
 
 from __future__ import annotations

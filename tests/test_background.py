@@ -216,7 +216,7 @@ def test_docstring_examples_run():
 
 def test_a_run_writes_the_tissue_mask_beside_each_washed_stack(tmp_path):
     """``<roi>.mask.ome.tiff``: one uint8 channel ``tissue`` (1 on tissue), the mask the wash used;
-    ``[output] tissue_mask = false`` leaves it out. Read back with tifffile (reference reader)."""
+    off (the default) leaves it out. Read back with tifffile (reference reader)."""
     import tifffile
     from plexwash.qc import default_recipe, read_roi
     from plexwash.qc.mask_file import mask_path, tissue_mask_of
@@ -230,7 +230,8 @@ def test_a_run_writes_the_tissue_mask_beside_each_washed_stack(tmp_path):
     tifffile.imwrite(cohort / "a.ome.tiff", rng.poisson(np.broadcast_to(rate, (5, 96, 128)))
                      .astype(np.uint16), ome=True, photometric="minisblack",
                      metadata={"axes": "CYX", "Channel": {"Name": [f"X{k}" for k in range(5)]}})
-    summary = run_cohort(cohort, tmp_path / "run", progress=False)
+    summary = run_cohort(cohort, tmp_path / "run", recipe=default_recipe().replace("output", tissue_mask=True),
+                         progress=False)
     assert summary.exit_code == 0
     written = tmp_path / "run" / "a.mask.ome.tiff"
     assert mask_path(tmp_path / "run" / "a.ome.tiff") == written
@@ -241,7 +242,6 @@ def test_a_run_writes_the_tissue_mask_beside_each_washed_stack(tmp_path):
     mask = mask.reshape(96, 128)
     assert set(np.unique(mask)) == {0, 1} and mask[:, 70:].all() and not mask[:, :40].any()
     np.testing.assert_array_equal(mask, tissue_mask_of(read_roi(cohort / "a.ome.tiff")))
-    recipe = default_recipe().replace("output", tissue_mask=False)
-    assert run_cohort(cohort, tmp_path / "run2", recipe=recipe, progress=False).exit_code == 0
+    assert run_cohort(cohort, tmp_path / "run2", progress=False).exit_code == 0
     assert (tmp_path / "run2" / "a.ome.tiff").exists()
     assert not (tmp_path / "run2" / "a.mask.ome.tiff").exists()
