@@ -74,10 +74,10 @@ def _figures(counts, truth, spill, names, recipe=None):
 def cases():
     tc = _generator()
     rng = np.random.default_rng(3)
-    names = [p[0] for p in tc.PANEL]
+    names = [p[0] for p in tc.STAINS]
     spill, _ = tc.physical_spillover(names, rng)
     roles: dict[str, list[str]] = {}
-    for p in tc.PANEL:
+    for p in tc.STAINS:
         roles.setdefault(p[2], []).append(p[0])
     out = {}
     for kind, shape in (("plain", (300, 330)), ("low", (260, 260))):
