@@ -20,7 +20,13 @@ Targets (issue "hot pixels and sparse speckle"): speckle removed >= 90 %, hot pi
 >= 90 %, ghost left <= 20 %. The script exits 1 when any target is missed with either
 matrix (a metric that cannot be computed on an ROI counts as missed).
 
-Run: python benchmarks/accuracy.py [--cohort example_stack]
+Then the same wash (default recipe, true matrix) is scored on the independent tissue-on-glass
+cohort (benchmarks/tissue_cohort.py, seed 12; figures as benchmarks/tissue_accuracy.py defines
+them: background removed in tissue and on glass, kept fractions, ghost left in the failed
+stain) and on the demo in those terms, for information (tissue_accuracy.py holds their
+targets and exit status; ``--skip-tissue`` leaves them out).
+
+Run: python benchmarks/accuracy.py [--cohort example_stack] [--skip-tissue]
 """
 
 from __future__ import annotations
@@ -103,6 +109,7 @@ def missed_targets(worst: dict) -> list[str]:
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--cohort", type=Path, default=ROOT / "example_stack")
+    parser.add_argument("--skip-tissue", action="store_true", help="only the demo's own figures")
     args = parser.parse_args(argv)
 
     from plexwash.qc import estimate_from_controls
@@ -135,7 +142,30 @@ def main(argv=None) -> int:
             failed = True
             print(f"  MISSED with the {label} matrix: " + "; ".join(missed))
     print("all targets met with both matrices" if not failed else "some targets missed: exit 1")
+    if not args.skip_tissue:
+        print_issue12_figures(args.cohort)
     return 1 if failed else 0
+
+
+def print_issue12_figures(demo: Path) -> None:
+    """The wash figures of ``tissue_accuracy.py`` on the tissue cohort (seed 12) and the demo."""
+    import tempfile
+
+    import tissue_accuracy
+    import tissue_cohort
+
+    print()
+    print("issue 12 figures (default recipe, true matrix; definitions in tissue_accuracy.py):")
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = Path(tmp) / "tissue"
+        tissue_cohort.write_cohort(folder, seed=tissue_cohort.DEFAULT_SEED)
+        for label, rois in ((f"tissue (seed {tissue_cohort.DEFAULT_SEED})", tissue_accuracy.tissue_rois(folder)),
+                            ("demo", tissue_accuracy.demo_rois(demo))):
+            figures = tissue_accuracy.wash_figures(rois, lambda text: None)
+            for _, name, value, target, met, detail in tissue_accuracy.report(label, figures, None):
+                if not name.startswith("false"):
+                    verdict = "-" if met is None else ("met" if met else "missed")
+                    print(f"  {label:18} {name:34} {value:>7} (target {target}, {verdict}) {detail}")
 
 
 if __name__ == "__main__":

@@ -44,8 +44,9 @@ from pathlib import Path
 import numpy as np
 
 from ._arrays import channel_plane, is_dask, used_channels
+from .background import roi_background
 from .io.staged import StagedStack
-from .steps.registry import STEPS
+from .steps.registry import STEPS, context_wanted
 from .steps.stats import step_rows
 
 #: Bytes of one compensation band (all used channels x rows x full width, float32).
@@ -177,8 +178,12 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
         return stacks[name]
 
     plane_bytes = n_y * n_x * _ITEM
+    context = None  # the ROI's background context, from the raw used planes (as the in-memory wash)
+    if used and context_wanted(running):
+        context = roi_background(lambda c: read_plane(current, c), used, (n_y, n_x))
     stats = {}
     copied = current  # the stack holding the pass-through channels
+    compensated = None  # the stack that entered the last pixels step (compensation), while it is kept
     for step, settings in running:
         settings_of = dict(zip(used, settings, strict=True))
         source = current
@@ -187,12 +192,16 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
             dest = "a"
             channels = used if copied is not None else range(n_c)
 
-            def plane_task(c, step=step, source=source, dest=dest, settings_of=settings_of):
+            def plane_task(c, step=step, source=source, dest=dest, settings_of=settings_of, compensated=compensated):
                 plane = read_plane(source, c)
                 if c not in settings_of:  # a pass-through channel, copied once
                     target(dest).write_plane(c, plane)
                     return None
-                cleaned, _, step_stats = step.run(plane[None], [settings_of[c]], None, parallel=False)
+                extra = {}
+                if step.uses_background:  # what compensation removed: its input (still in A) minus its output
+                    spilled = None if compensated is None else (read_plane(compensated, c) - plane)[None]
+                    extra = {"background": context, "spilled": spilled}
+                cleaned, _, step_stats = step.run(plane[None], [settings_of[c]], None, parallel=False, **extra)
                 target(dest).write_plane(c, cleaned[0])
                 return step_stats[0], _sums(plane[None], cleaned)
 
@@ -202,6 +211,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
                                          worked=used, channels=range(n_c), all_names=roi.channels)
             if copied is None:
                 copied = dest
+            compensated = None  # A has been written over
         else:
             if source is None:  # bands need the source staged first
                 _in_chains(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c),
@@ -225,6 +235,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
             # a pixels step's own numbers are per channel and the same in every band
             stats[step.name] = step_rows(sums[0][1], removed_sum, input_sum,
                                          worked=used, channels=range(n_c), all_names=roi.channels)
+            compensated = source
         current = dest
     if current is None:  # no step runs: the source, as float32
         _in_chains(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c), _chains(2.0 * plane_bytes))

@@ -30,13 +30,14 @@ from pathlib import Path
 import numpy as np
 
 from ._arrays import channel_plane, is_dask, stack_planes, used_channels
+from .background import roi_background
 from .errors import InputError
 from .io import Roi, write_stack
 from .io.tiff import source_ome_xml
 from .recipe import Recipe, default_recipe
 from .staging import MemoryStack, Staging, wash_staged
 from .steps.compensation import compensation_matrix
-from .steps.registry import STEPS, Step
+from .steps.registry import STEPS, Step, context_wanted
 from .steps.stats import finish_stats, step_rows
 
 
@@ -229,13 +230,15 @@ def _run(plan: _Plan, source: _Source, cache: WashCache | None):
     work = plan.used if plan.shared >= 0 else plan.own
     key: tuple = (tuple(work), _matrix_key(plan.matrix))
     stack, records = None, []
+    context = _background(plan, source, cache)
     for k, (step, settings, runs) in enumerate(plan.steps):
         if runs and work:
             key += ((step.name, tuple(settings[i] for i in work)),)
             kept = cache.result(k, key) if cache is not None else None
             if kept is None:
                 before = source.stack(work) if stack is None else stack
-                stack, _, step_stats = step.run(before, [settings[i] for i in work], plan.matrix)
+                extra = {"background": context, "spilled": _spilled(records, work)} if step.uses_background else {}
+                stack, _, step_stats = step.run(before, [settings[i] for i in work], plan.matrix, **extra)
                 record = _StepRecord(step, tuple(work), before - stack,
                                      before.sum(axis=(1, 2), dtype=np.float64), step_stats)
                 records = records + [record]
@@ -252,6 +255,28 @@ def _run(plan: _Plan, source: _Source, cache: WashCache | None):
     if stack is None and work:
         stack = source.stack(work)
     return stack, work, records
+
+
+def _spilled(records, work):
+    """What the last step before took away from the channels ``work`` when that step was
+    compensation (a "pixels" step), else None."""
+    if not records or records[-1].step.scope != "pixels" or records[-1].removed is None:
+        return None
+    last = records[-1]
+    return _select(last.removed, [list(last.work).index(i) for i in work])
+
+
+def _background(plan: _Plan, source: _Source, cache: WashCache | None):
+    """The ROI's background context (from the raw used channels, whatever channels are asked
+    for, so a wash of some channels tests against the same model), or None when no running
+    step uses it."""
+    running = [(step, [settings[i] for i in plan.used]) for step, settings, runs in plan.steps if runs]
+    if not plan.used or not context_wanted(running):
+        return None
+    if cache is not None:
+        return cache.background(plan.used)
+    shape = source.plane(plan.used[0]).shape
+    return roi_background(lambda i: np.asarray(source.plane(i)), plan.used, shape)
 
 
 def _assemble(roi: Roi, plan: _Plan, source: _Source, stack, work, records) -> Washed:
@@ -328,13 +353,16 @@ class WashCache:
         self._source = None
         self._planes: dict[int, np.ndarray] = {}
         self._results: dict[int, tuple] = {}
+        self._background: dict[tuple, object] = {}
         self.reused: tuple[str, ...] = ()
 
     def _for(self, roi: Roi) -> None:
+        self._roi = roi
         if self._source is not roi.data:
             self._source = roi.data
             self._planes = {}
             self._results = {}
+            self._background = {}
 
     def planes(self, roi: Roi, indices) -> dict[int, np.ndarray]:
         """The ROI's planes ``indices`` as float32 numpy (read once): ROI index -> plane."""
@@ -343,6 +371,15 @@ class WashCache:
             if i not in self._planes:
                 self._planes[i] = np.ascontiguousarray(channel_plane(roi.data, i, dtype=np.float32))
         return self._planes
+
+    def background(self, used) -> object:
+        """The background context of the current ROI over the ``used`` channels (made once)."""
+        key = tuple(used)
+        if key not in self._background:
+            planes = self.planes(self._roi, key)
+            shape = planes[key[0]].shape
+            self._background[key] = roi_background(planes.__getitem__, key, shape)
+        return self._background[key]
 
     def start(self, roi: Roi) -> None:
         """A wash of ``roi`` begins."""

@@ -212,3 +212,36 @@ def test_bad_shapes_are_one_line_errors():
 def test_docstring_examples_run():
     result = doctest.testmod(background, verbose=False)
     assert result.failed == 0 and result.attempted >= 8
+
+
+def test_a_run_writes_the_tissue_mask_beside_each_washed_stack(tmp_path):
+    """``<roi>.mask.ome.tiff``: one uint8 channel ``tissue`` (1 on tissue), the mask the wash used;
+    off (the default) leaves it out. Read back with tifffile (reference reader)."""
+    import tifffile
+    from plexwash.qc import default_recipe, read_roi
+    from plexwash.qc.mask_file import mask_path, tissue_mask_of
+    from plexwash.qc.run import run_cohort
+
+    rng = np.random.default_rng(8)
+    rate = np.full((96, 128), 0.01)
+    rate[:, 56:] = 0.15
+    cohort = tmp_path / "cohort"
+    cohort.mkdir()
+    tifffile.imwrite(cohort / "a.ome.tiff", rng.poisson(np.broadcast_to(rate, (5, 96, 128)))
+                     .astype(np.uint16), ome=True, photometric="minisblack",
+                     metadata={"axes": "CYX", "Channel": {"Name": [f"X{k}" for k in range(5)]}})
+    summary = run_cohort(cohort, tmp_path / "run", recipe=default_recipe().replace("output", tissue_mask=True),
+                         progress=False)
+    assert summary.exit_code == 0
+    written = tmp_path / "run" / "a.mask.ome.tiff"
+    assert mask_path(tmp_path / "run" / "a.ome.tiff") == written
+    with tifffile.TiffFile(written) as tif:
+        mask = tif.series[0].asarray()
+        assert 'Name="tissue"' in tif.ome_metadata
+    assert mask.dtype == np.uint8 and mask.shape in ((96, 128), (1, 96, 128))
+    mask = mask.reshape(96, 128)
+    assert set(np.unique(mask)) == {0, 1} and mask[:, 70:].all() and not mask[:, :40].any()
+    np.testing.assert_array_equal(mask, tissue_mask_of(read_roi(cohort / "a.ome.tiff")))
+    assert run_cohort(cohort, tmp_path / "run2", progress=False).exit_code == 0
+    assert (tmp_path / "run2" / "a.ome.tiff").exists()
+    assert not (tmp_path / "run2" / "a.mask.ome.tiff").exists()

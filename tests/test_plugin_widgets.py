@@ -198,7 +198,9 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
 
 
 def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tmp_path):
-    from plexwash.qc import remove_hot_pixels, remove_speckle
+    from plexwash.qc import remove_hot_pixels
+    from plexwash.qc.background import roi_background
+    from plexwash.qc.steps.speckle import speckle_stack
     from plexwash.qc.wash import wash
 
     viewer = make_napari_viewer()
@@ -214,7 +216,10 @@ def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tm
         speckle.forms["speckle"].editors["radius"].setValue(4)
     raw = roi.data[5].astype(np.float32)
     hot = remove_hot_pixels(raw, ratio=5.0, min_excess=10.0)
-    expected = remove_speckle(hot.image, radius=4)
+    used = [i for i, u in enumerate(roi.use) if u]  # speckle tests against the ROI's background context
+    context = roi_background(lambda i: np.asarray(roi.data[i], np.float32), used, raw.shape)
+    expected = speckle_stack(hot.image[None], SpeckleSettings(radius=4), context=context)
+    expected = expected._replace(image=expected.image[0])
     washed_layer = viewer.layers[f"{roi.labels[5]} · washed"]
     removed_layer = viewer.layers[f"{roi.labels[5]} · removed"]
     np.testing.assert_array_equal(washed_layer.data, expected.image)
@@ -230,7 +235,8 @@ def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tm
     for value in (5, 6, 7):
         speckle.forms["speckle"].editors["radius"].setValue(value)
     wait_preview(qtbot, speckle)
-    np.testing.assert_array_equal(washed_layer.data, remove_speckle(hot.image, radius=7).image)
+    latest = speckle_stack(hot.image[None], SpeckleSettings(radius=7), context=context).image[0]
+    np.testing.assert_array_equal(washed_layer.data, latest)
 
     label = speckle.forms["speckle"].layout().labelForField(speckle.forms["speckle"].editors["radius"])
     assert "bold" in label.styleSheet() and "own speckle radius" in speckle.status.text()

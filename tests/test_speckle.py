@@ -15,7 +15,7 @@ import pytest
 import tifffile
 from plexwash.qc.errors import InputError
 from plexwash.qc.settings import build_settings
-from plexwash.qc.steps import hot_pixels, lifting, speckle
+from plexwash.qc.steps import hot_pixels, lifting, speckle, speckle_tests
 from plexwash.qc.steps.hot_pixels import HotPixelSettings, hot_pixels_stack, remove_hot_pixels
 from plexwash.qc.steps.speckle import (
     BackgroundEstimate,
@@ -26,7 +26,7 @@ from plexwash.qc.steps.speckle import (
     speckle_stack,
 )
 from scipy import ndimage as ndi
-from scipy import stats
+from scipy import special, stats
 
 RING = np.ones((3, 3), bool)
 RING[1, 1] = False  # the 8 neighbours
@@ -184,7 +184,7 @@ def test_count_thresholds_equal_scipy_binom_isf():
     for trials in (3, 8, 24, 48, 120, 168):
         for rate in (0.0, 0.004, 0.05, 0.2, 0.3, 0.7, 0.99):
             for alpha in (0.2, 0.01, 1e-4, 1e-7):
-                k = int(speckle._binomial_min_count(np.array([trials]), rate, alpha)[0])
+                k = int(speckle_tests.binomial_min_count(np.array([trials]), rate, alpha)[0])
                 # scipy.stats.binom.isf(q) = smallest k with P(N > k) <= q, so P(N >= isf + 1) <= q
                 assert k == int(stats.binom.isf(alpha, trials, rate)) + 1, (trials, rate, alpha)
                 assert stats.binom.sf(k - 1, trials, rate) < alpha <= stats.binom.sf(k - 2, trials, rate)
@@ -193,7 +193,7 @@ def test_count_thresholds_equal_scipy_binom_isf():
 def test_value_thresholds_equal_scipy_poisson_isf():
     for level in (0.005, 0.02, 0.1, 0.3, 1.0, 4.0):
         for value_alpha in (1e-2, 1e-4, 1e-6, 1e-9):
-            v = speckle._poisson_min_value(level, value_alpha)
+            v = speckle_tests.poisson_min_value(level, value_alpha)
             # scipy.stats.poisson.isf(q) = smallest k with P(Y > k) <= q
             assert v == stats.poisson.isf(value_alpha, level) + 1, (level, value_alpha)
             assert stats.poisson.sf(v - 1, level) < value_alpha
@@ -202,7 +202,7 @@ def test_value_thresholds_equal_scipy_poisson_isf():
 def test_fit_upper_point_equals_scipy_binom_isf():
     for trials, rate in ((25, 0.02), (25, 0.3), (49, 0.26), (169, 0.1)):
         # scipy.stats.binom.isf
-        assert speckle._binomial_upper_point(trials, rate, 0.1) == stats.binom.isf(0.1, trials, rate)
+        assert speckle_tests.binomial_upper_point(trials, rate, 0.1) == stats.binom.isf(0.1, trials, rate)
 
 
 def test_background_rate_is_the_fraction_of_positive_centres_among_sparse_windows():
@@ -265,7 +265,8 @@ def test_background_rate_recovered_and_not_inflated_by_cells(rate):
 # --------------------------------------------------------------------------- the speckle rule
 
 
-def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False):
+def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False,
+                      wide_radius=0, support_alpha=0.2, edge_alpha=0.0):
     """The documented rule, written with scipy building blocks."""
     side = 2 * radius + 1
     positive = img > np.float32(threshold)
@@ -273,8 +274,24 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
     n = ndi.convolve(positive.astype(np.int64), box, mode="constant") - positive  # scipy.ndimage.convolve
     trials = ndi.convolve(np.ones(img.shape, np.int64), box, mode="constant") - 1  # neighbours in the image
     min_count = stats.binom.isf(alpha, trials, rate) + 1  # scipy.stats.binom.isf
-    core = positive & (n >= min_count)
+    dense = n >= min_count
     min_value = stats.poisson.isf(value_alpha, level) + 1  # scipy.stats.poisson.isf
+    if wide_radius:  # dim positives (not above the value cut) in the wide window, the centre counted as one
+        wide_box = np.ones((2 * wide_radius + 1,) * 2, np.int64)
+        dim = positive & (img <= min_value - 1)
+        n_wide = ndi.convolve(dim.astype(np.int64), wide_box, mode="constant") - 1
+        wide_trials = ndi.convolve(np.ones(img.shape, np.int64), wide_box, mode="constant") - 1
+        support = n >= stats.binom.isf(support_alpha, trials, rate) + 1
+        dense |= support & (n_wide >= stats.binom.isf(alpha, wide_trials, rate) + 1)
+    if edge_alpha > 0:  # lower Poisson tail against the mean of the 8 neighbours
+        ring = np.ones((3, 3))
+        ring[1, 1] = 0
+        total = ndi.convolve(img.astype(np.float64), ring, mode="constant")
+        count = ndi.convolve(np.ones(img.shape), ring, mode="constant")
+        whole = np.floor(img)
+        cut = special.gammainccinv(whole + 1, edge_alpha)  # P(Y <= v) = Q(v + 1, mu), scipy.special
+        dense &= ~((whole <= 255) & (total > cut * count))
+    core = positive & dense
     keep = core | (positive & (img > min_value - 1))
     if keep_touching:
         keep |= positive & ndi.binary_dilation(core, structure=np.ones((3, 3), bool))  # scipy.ndimage.binary_dilation
@@ -285,17 +302,18 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
     return np.where(positive & ~keep, np.float32(0), img)
 
 
-@pytest.mark.parametrize("radius, min_area, threshold, keep_touching",
-                         [(1, 1, 0.0, False), (2, 2, 0.5, False), (3, 5, 1.5, True), (2, 12, 0.0, True),
-                          (2, 1, 0.5, True)])
-def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold, keep_touching):
+@pytest.mark.parametrize("radius, min_area, threshold, keep_touching, wide_radius, edge_alpha",
+                         [(1, 1, 0.0, False, 0, 0.0), (2, 2, 0.5, False, 0, 0.0), (3, 5, 1.5, True, 0, 0.0),
+                          (2, 12, 0.0, True, 0, 0.0), (2, 1, 0.5, True, 0, 0.0), (2, 2, 0.5, False, 5, 1e-3),
+                          (1, 3, 0.0, True, 4, 1e-2)])
+def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold, keep_touching, wide_radius, edge_alpha):
     d = synthetic_channel((150, 170), background=0.15, seed=radius + min_area, n_cells=40, n_dim=10,
                           n_specks=15, n_processes=4, n_hot=0)
     img = d["counts"]
     img[0, :6] = 3.0  # objects on the image edge, where windows are clipped
     img[-3:, -1] = 4.0
     settings = dict(threshold=threshold, radius=radius, alpha=0.01, value_alpha=1e-5, min_area=min_area,
-                    keep_touching=keep_touching)
+                    keep_touching=keep_touching, wide_radius=wide_radius, edge_alpha=edge_alpha)
     out, removed, st = remove_speckle(img, **settings)
     expected = reference_speckle(img, rate=st["rate"], level=st["level"], **settings)
     np.testing.assert_array_equal(out, expected)
@@ -367,7 +385,7 @@ def test_background_given_is_used_and_must_match_threshold():
     out, _, st = remove_speckle(crop, threshold=0.0, background=whole)
     assert st["rate"] == whole.rate
     expected = reference_speckle(crop, threshold=0.0, radius=2, alpha=0.01, value_alpha=1e-6, min_area=2,
-                                 rate=whole.rate, level=whole.level)
+                                 rate=whole.rate, level=whole.level, wide_radius=5, edge_alpha=1e-3)
     np.testing.assert_array_equal(out, expected)
     with pytest.raises(InputError, match="background: estimated with threshold 0, filter uses 1"):
         remove_speckle(crop, threshold=1.0, background=whole)
@@ -446,7 +464,7 @@ def test_per_channel_settings_and_disabled_channel():
     cleaned, removed, st = speckle_stack(stack, PER_CHANNEL)
     for c in (0, 1):
         kwargs = {f.name: getattr(PER_CHANNEL[c], f.name) for f in dataclasses.fields(SpeckleSettings)
-                  if f.name != "enabled"}
+                  if f.name not in ("enabled", "local_rates", "residue_alpha")}  # those two: stacks only
         single = remove_speckle(stack[c], **kwargs)
         np.testing.assert_array_equal(cleaned[c], single.image)
         assert st[c] == {"enabled": True, **single.stats}
@@ -512,7 +530,7 @@ def test_settings_are_frozen_documented_and_defaults_in_range():
         # the functions' own defaults are the settings' defaults
         values = {f.name: f.default for f in dataclasses.fields(cls) if f.name != "enabled"}
         assert build_settings(cls, values, section="x") == obj
-    assert speckle_depth(SpeckleSettings()) == 2 + 2  # radius + min_area
+    assert speckle_depth(SpeckleSettings()) == 5 + 2  # wide_radius + min_area
     assert speckle_depth(SpeckleSettings(radius=5, min_area=1)) == 6
     assert BackgroundEstimate._fields[:4] == ("rate", "level", "count_threshold", "value_threshold")
 

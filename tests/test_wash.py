@@ -7,6 +7,7 @@ import statistics
 import dask.array as da
 import numpy as np
 import pytest
+from plexwash.qc.background import roi_background
 from plexwash.qc.io import Roi, read_roi
 from plexwash.qc.recipe import default_recipe
 from plexwash.qc.spillover import compensate
@@ -31,7 +32,9 @@ def test_steps_run_in_order_and_removed_maps_add_up(unseen):
     recipe = default_recipe()
     step1 = hot_pixels_stack(roi.data.astype(np.float32), recipe.hot_pixels).image
     step2 = compensate(step1, matrix.values)
-    step3 = speckle_stack(step2, recipe.speckle).image
+    raw = roi.data.astype(np.float32)
+    context = roi_background(raw.__getitem__, range(raw.shape[0]), raw.shape[1:])  # once per ROI, raw counts
+    step3 = speckle_stack(step2, recipe.speckle, context=context, spilled=step1 - step2).image
     np.testing.assert_array_equal(washed.data, step3)
     total_removed = sum(washed.removed[s] for s in STEPS)
     np.testing.assert_allclose(roi.data - washed.data, total_removed, atol=1e-3)

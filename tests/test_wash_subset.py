@@ -46,18 +46,21 @@ def random_recipe(seed: int, channels):
     recipe = recipe.replace("compensation", method=("linear", "nnls")[seed % 2])
     recipe = recipe.replace("speckle", threshold=float(rng.uniform(0.1, 0.45)), radius=int(rng.integers(3, 5)),
                             alpha=float(rng.uniform(0.02, 0.1)), value_alpha=float(10 ** rng.uniform(-8, -6.5)),
-                            keep_touching=True, min_area=int(rng.integers(3, 5)))
+                            keep_touching=True, min_area=int(rng.integers(3, 5)),
+                            wide_radius=int(rng.integers(3, 7)), support_alpha=float(rng.uniform(0.05, 0.3)),
+                            edge_alpha=float(10 ** rng.uniform(-4, -2)), residue_alpha=float(rng.uniform(0.02, 0.2)))
     a, b, c, d = rng.choice(len(channels), 4, replace=False)
     recipe = recipe.with_channel("hot_pixels", channels[a], flat_sigmas=0.0, ratio=9.0)
     recipe = recipe.with_channel("hot_pixels", channels[b], enabled=False)
-    recipe = recipe.with_channel("speckle", channels[c], radius=1, min_area=1, keep_touching=False)
+    recipe = recipe.with_channel("speckle", channels[c], radius=1, min_area=1, keep_touching=False,
+                                 local_rates=False)
     recipe = recipe.with_channel("speckle", channels[d], enabled=False)
     for step in STEPS:
         if step.per_channel:  # every setting of the step moved (enabled: in an override)
             moved = getattr(recipe, step.name)
             base = step.settings()
             assert all(getattr(moved, f.name) != getattr(base, f.name)
-                       for f in dataclasses.fields(step.settings) if f.name != "enabled")
+                       for f in dataclasses.fields(step.settings) if f.name not in ("enabled", "local_rates"))
     return recipe
 
 

@@ -27,6 +27,8 @@ class OutputSettings:
     tile: int = setting(512, "tile / chunk edge in pixels", low=64, high=4096)
     ngff: str = setting("0.5", "OME-Zarr version (0.4: Zarr v2, for readers without Zarr v3)",
                         choices=("0.5", "0.4"))
+    tissue_mask: bool = setting(False, "also write <roi>.mask.ome.tiff beside each washed stack: the tissue mask"
+                                " the wash used (uint8, 1 = tissue)")
 
 
 

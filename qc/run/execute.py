@@ -196,6 +196,10 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     result = wash_to_file(roi, target, recipe, spillover=matrix, staging_dir=job.staging_dir,
                           provenance=provenance)
     written.append(target)
+    if job.output is not None and recipe.output.tissue_mask:
+        from ..mask_file import mask_path, write_tissue_mask
+
+        written.append(write_tissue_mask(roi, mask_path(target), recipe, provenance=provenance))
     release_memory()
     lap("wash_write")
     output_sha256 = sha256_path(target) if job.output is not None else None

@@ -114,8 +114,9 @@ def _low_median8(values):
 
 
 @nb.njit(cache=True, nogil=True)
-def window_counts(image, threshold, radius, counts):
-    """Number of pixels ``> threshold`` in the (2r+1)^2 window around each pixel, centre included.
+def window_counts(image, threshold, radius, counts, upper=np.inf):
+    """Number of pixels ``> threshold`` (and ``<= upper``) in the (2r+1)^2 window around each
+    pixel, centre included.
 
     Running sums down the columns, then along each row: the cost does not depend on
     ``radius``. Windows are clipped to the array. ``counts`` is uint16.
@@ -124,7 +125,7 @@ def window_counts(image, threshold, radius, counts):
     column = np.zeros(width, np.int32)
     for y in range(min(radius, height - 1) + 1):
         for x in range(width):
-            if image[y, x] > threshold:
+            if threshold < image[y, x] <= upper:
                 column[x] += 1
     for y in range(height):
         total = 0
@@ -143,12 +144,12 @@ def window_counts(image, threshold, radius, counts):
         if entering < height:
             row = image[entering]
             for x in range(width):
-                if row[x] > threshold:
+                if threshold < row[x] <= upper:
                     column[x] += 1
         if leaving >= 0 and y + 1 < height:
             row = image[leaving]
             for x in range(width):
-                if row[x] > threshold:
+                if threshold < row[x] <= upper:
                     column[x] -= 1
 
 
@@ -167,7 +168,8 @@ def centre_histogram(image, counts, threshold, radius, histogram):
 
 
 @nb.njit(cache=True, nogil=True)
-def speckle_filter(image, counts, threshold, radius, min_count, value_cut, keep_touching, min_area, out, removed):
+def speckle_filter(image, counts, wide, zone, threshold, radius, min_count, wide_radius, wide_min_count,
+                   support_min_count, value_cut, low_mean, keep_touching, min_area, out, removed):
     """Local-density speckle filter of one channel; return how many pixels were set to 0.
 
     Parameters (all arrays C-contiguous)
@@ -175,10 +177,19 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, keep_
     image : float32 (H, W)
     counts : uint16 (H, W), from :func:`window_counts` (centre included)
     threshold : float32, a pixel is positive when ``value > threshold``
+    wide : uint16 (H, W), :func:`window_counts` with ``wide_radius``
+    zone : uint8 (H, W), the background zone of each pixel (indexes the tables below)
     radius : int, window half-width
-    min_count : int32 (2r+2, 2r+2); ``min_count[a, b]`` = smallest neighbour count kept for
-        a window clipped to ``a`` rows and ``b`` columns
-    value_cut : float64; a positive pixel with ``value > value_cut`` is kept by value
+    min_count : int32 (Z, 2r+2, 2r+2); ``min_count[z, a, b]`` = smallest neighbour count kept
+        in zone ``z`` for a window clipped to ``a`` rows and ``b`` columns
+    wide_radius : int, half-width of the wide window
+    wide_min_count, support_min_count : int32 (Z, 2R+2, 2R+2) and (Z, 2r+2, 2r+2); a pixel is
+        also dense when its wide window holds at least ``wide_min_count`` positive neighbours
+        and its own window at least ``support_min_count``
+    value_cut : float64 (Z,); a positive pixel with ``value > value_cut[zone]`` is kept by value
+    low_mean : float64 (V + 1,); a dense pixel of value ``v <= V`` whose 8 neighbours (those
+        inside the array) have a mean above ``low_mean[floor(v)]`` is too low for their
+        structure and is not kept by density
     keep_touching : bool; also keep positive pixels touching a core pixel (DBSCAN border points)
     min_area : int; kept 8-connected components smaller than this are dropped
     out, removed : float32 (H, W), filled completely
@@ -191,9 +202,16 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, keep_
             v = image[y, x]
             if v > threshold:
                 cols = min(width - 1, x + radius) - max(0, x - radius) + 1
-                if np.int32(counts[y, x]) - 1 >= min_count[rows, cols]:
+                z = zone[y, x]
+                n = np.int32(counts[y, x]) - 1
+                dense = n >= min_count[z, rows, cols]
+                if not dense and n >= support_min_count[z, rows, cols]:
+                    wrows = min(height - 1, y + wide_radius) - max(0, y - wide_radius) + 1
+                    wcols = min(width - 1, x + wide_radius) - max(0, x - wide_radius) + 1
+                    dense = np.int32(wide[y, x]) - 1 >= wide_min_count[z, wrows, wcols]
+                if dense and not _below_neighbours(image, y, x, v, low_mean):
                     state[y, x] = _CORE
-                elif v > value_cut:
+                elif v > value_cut[z]:
                     state[y, x] = _KEPT
                 else:
                     state[y, x] = _DROPPED
@@ -213,6 +231,23 @@ def speckle_filter(image, counts, threshold, radius, min_count, value_cut, keep_
                 out[y, x] = v
                 removed[y, x] = 0.0
     return n_removed
+
+
+@nb.njit(cache=True, nogil=True)
+def _below_neighbours(image, y, x, v, low_mean):
+    """Whether ``v`` is improbably low for the mean of the 8 neighbours of (y, x) (see ``low_mean``)."""
+    k = np.int64(np.floor(np.float64(v)))
+    if k >= low_mean.shape[0]:
+        return False
+    height, width = image.shape
+    total = 0.0
+    n = 0
+    for yy in range(max(0, y - 1), min(height, y + 2)):
+        for xx in range(max(0, x - 1), min(width, x + 2)):
+            if yy != y or xx != x:
+                total += np.float64(image[yy, xx])
+                n += 1
+    return n > 0 and total > low_mean[k] * n
 
 
 @nb.njit(cache=True, nogil=True)

@@ -63,7 +63,7 @@ def lift_channel(image, kernel: Callable, depth: int, **parameters):
 
 
 def run_stack(stack, per_channel: list, channel_step, *, passive: dict, block_kernel,
-               count_key: str) -> StepResult:
+               count_key: str, zone=None, spilled=None) -> StepResult:
     """Apply a step to every enabled channel of a numpy or dask stack.
 
     numpy: ``channel_step(c, channel, settings, out, removed)`` writes straight into the
@@ -72,9 +72,14 @@ def run_stack(stack, per_channel: list, channel_step, *, passive: dict, block_ke
     block kernel; one ``map_overlap`` over whole (C, y, x) blocks applies them all, with
     the largest depth any channel needs (a larger halo never changes a kernel's result).
     One graph over whole blocks keeps memory bounded by a few blocks plus their halos.
+    With a ``zone`` map (numpy, (Y, X): the ROI's background zones) each dask block kernel
+    is called as ``kernel(block, zone_block)``, and with ``spilled`` (dask, the stack's
+    shape) as ``kernel(block, zone_block, spilled_block)``; numpy steps take both from their
+    closure.
     """
     if is_dask(stack):
-        return _run_stack_dask(stack, per_channel, block_kernel, passive=passive, count_key=count_key)
+        return _run_stack_dask(stack, per_channel, block_kernel, passive=passive, count_key=count_key,
+                               zone=zone, spilled=spilled)
     n_channels = stack.shape[0]
 
     def one(c, out=None, removed=None) -> StepResult:
@@ -107,21 +112,32 @@ def run_stack(stack, per_channel: list, channel_step, *, passive: dict, block_ke
     return StepResult(cleaned, removed, stats)
 
 
-def _run_stack_dask(stack, per_channel: list, block_kernel, *, passive: dict, count_key: str) -> StepResult:
+def _run_stack_dask(stack, per_channel: list, block_kernel, *, passive: dict, count_key: str,
+                    zone=None, spilled=None) -> StepResult:
     chunks = stack.chunks
     stack = stack.rechunk({0: -1})  # every block holds all channels: kernels index them
     kernels = [block_kernel(c, s) if s.enabled else None for c, s in enumerate(per_channel)]
     depth = max((k[1] for k in kernels if k is not None), default=0)
 
-    def apply(block):
+    def apply(block, zone_block=None, spilled_block=None):
         out = np.empty(block.shape, np.float32)
         for c, kernel in enumerate(kernels):
-            out[c] = kernel[0](block[c]) if kernel is not None else block[c]
+            extra = () if zone_block is None else (zone_block[0],)
+            if spilled_block is not None:
+                extra += (spilled_block[c],)
+            out[c] = kernel[0](block[c], *extra) if kernel is not None else block[c]
         return out
 
     if depth:
-        cleaned = stack.map_overlap(apply, depth={0: 0, 1: depth, 2: depth}, boundary="none",
-                                    dtype=np.float32, meta=np.empty((0, 0, 0), np.float32))
+        arrays = [stack]
+        if zone is not None or spilled is not None:
+            import dask.array as da
+
+            plane = np.zeros(stack.shape[1:], np.uint8) if zone is None else np.asarray(zone)
+            arrays.append(da.from_array(plane[None], chunks=((1,),) + tuple(stack.chunks[1:])))
+        if spilled is not None:
+            arrays.append(spilled.rechunk(stack.chunks))
+        cleaned = da_map_overlap(apply, arrays, depth={0: 0, 1: depth, 2: depth})
     else:
         cleaned = stack
     removed = stack - cleaned
@@ -136,6 +152,14 @@ def _run_stack_dask(stack, per_channel: list, block_kernel, *, passive: dict, co
                       "removed_fraction": removed_fraction(removed[c], stack[c])})
     return StepResult(cleaned, removed, stats)
 
+
+
+def da_map_overlap(function, arrays: list, *, depth: dict):
+    """``dask.array.map_overlap`` of ``function`` over ``arrays`` (boundary 'none', float32 out)."""
+    import dask.array as da
+
+    return da.map_overlap(function, *arrays, depth=depth, boundary="none", dtype=np.float32,
+                          meta=np.empty((0, 0, 0), np.float32))
 
 
 def removed_fraction(removed, image):

@@ -31,13 +31,15 @@ from .compensation import CompensationSettings, compensation_stack
 from .hot_pixels import HotPixelSettings, hot_pixels_stack
 from .speckle import SpeckleSettings, speckle_stack
 
-__all__ = ["STEPS", "STEP_NAMES", "Step", "per_channel_steps", "step"]
+__all__ = ["STEPS", "STEP_NAMES", "Step", "context_wanted", "per_channel_steps", "step"]
 
 
-def _plane_stack(function: Callable) -> Callable:
+def _plane_stack(function: Callable, *, uses_background: bool = False) -> Callable:
     """A plane step's stack function with the registry's signature (the matrix unused)."""
 
-    def run(stack, settings, matrix=None, *, parallel: bool = True):
+    def run(stack, settings, matrix=None, *, parallel: bool = True, background=None, spilled=None):
+        if uses_background:
+            return function(stack, list(settings), context=background, spilled=spilled)
         return function(stack, list(settings))
 
     run.__doc__ = function.__doc__
@@ -75,6 +77,12 @@ class Step:
     stats : tuple of str
         Keys of the step's own per-channel numbers (besides ``channel``, ``ran`` and
         ``removed_fraction``, which every step has).
+    uses_background : bool
+        ``run`` takes ``spilled=`` (what compensation removed from the channels it works
+        on, None when compensation did not run) and ``background=``, the ROI's background context
+        (:func:`plexwash.qc.background.roi_background`), which the wash computes once per
+        ROI from the raw used channels, before the first step, whenever a running step
+        uses it (:func:`context_wanted`).
     """
 
     name: str
@@ -87,6 +95,7 @@ class Step:
     needs_matrix: bool = False
     plane_copies: float = 3.0
     stats: tuple[str, ...] = ()
+    uses_background: bool = False
 
     def runs(self, settings, matrix) -> bool:
         """Whether the step does anything with these per-channel settings (and matrix)."""
@@ -129,9 +138,10 @@ STEPS: tuple[Step, ...] = (
         settings=SpeckleSettings,
         per_channel=True,
         scope="plane",
-        run=_plane_stack(speckle_stack),
-        plane_copies=3.5,  # plane, cleaned, removed and the uint16 window counts
-        stats=("enabled", "rate", "level", "count_threshold", "value_threshold", "n_removed"),
+        run=_plane_stack(speckle_stack, uses_background=True),
+        plane_copies=4.0,  # plane, cleaned, removed, the uint16 window counts and the zone map
+        stats=("enabled", "rate", "level", "count_threshold", "value_threshold", "level_glass", "n_removed"),
+        uses_background=True,
     ),
 )
 
@@ -150,3 +160,11 @@ def step(name: str) -> Step:
 def per_channel_steps() -> tuple[Step, ...]:
     """The steps whose settings may differ channel by channel (the studio's forms)."""
     return tuple(s for s in STEPS if s.per_channel)
+
+
+def context_wanted(running) -> bool:
+    """Whether a wash running ``running`` (pairs of step and its per-channel settings) needs
+    the ROI's background context: a step uses it and one of its enabled channels asks for
+    local rates."""
+    return any(step.uses_background and any(s.enabled and s.local_rates for s in settings)
+               for step, settings in running)

@@ -63,9 +63,9 @@ from typing import NamedTuple
 
 import numpy as np
 from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
-from scipy import special
 
 from .._arrays import as_channel, as_stack, is_dask
+from ..background import PARTS, ZONES_PER_PART, zone_factors
 from ..errors import InputError
 from ..settings import build_settings, setting
 from .lifting import (
@@ -75,6 +75,23 @@ from .lifting import (
     per_channel_settings,
     removed_fraction,
     run_stack,
+)
+from .speckle_counts import (
+    centre_histogram,
+    centre_histogram_dask,
+    check_window,
+    region_histogram,
+    window_counts,
+)
+from .speckle_tests import (
+    MIN_REGION_WINDOWS,
+    binomial_min_count,
+    drop_residue,
+    fit_rate,
+    low_mean_table,
+    poisson_level,
+    poisson_min_value,
+    zone_tables,
 )
 
 __all__ = [
@@ -86,11 +103,6 @@ __all__ = [
     "speckle_stack",
 ]
 
-#: Quantile of all neighbour counts where the background fit starts.
-_FIT_START_QUANTILE = 0.01
-#: The background fit uses windows with up to the (1 - this) point of Binomial(m, p) positive
-#: neighbours: 0.5, the median, keeps windows centred in cells out.
-_FIT_UPPER_TAIL = 0.5
 
 
 
@@ -117,6 +129,28 @@ class SpeckleSettings:
         False, "also keep positive pixels touching a dense pixel (more of thin processes, more background beside cells)"
     )
     min_area: int = setting(2, "drop kept groups of fewer pixels (8-connected)", low=1, high=100)
+    wide_radius: int = setting(
+        5, "half-width of a wider window: a pixel is also kept when it is dense there (alpha) and at least"
+        " mildly dense in its own window (support_alpha); keeps dim diffuse stains and thin fibres (0: off)",
+        low=0, high=50,
+    )
+    support_alpha: float = setting(
+        0.2, "how improbable for background the own window's count must be for the wider window to count",
+        low=0.0, high=1.0, low_open=True,
+    )
+    residue_alpha: float = setting(
+        0.1, "after compensation, counts left where the removed spillover is at least the local background are"
+        " kept only when their 3 x 3 window is this improbable under Poisson(spillover + background) (0: off)",
+        low=0.0, high=0.5,
+    )
+    edge_alpha: float = setting(
+        1e-3, "a dense pixel is not kept by density when its value is this improbably low for the mean of its"
+        " 8 neighbours (background on the rim of bright cells; 0: off)", low=0.0, high=0.5
+    )
+    local_rates: bool = setting(
+        True, "test against the background where the pixel lies (tissue or glass, and its local variation)"
+        " rather than one rate for the whole channel"
+    )
 
 
 
@@ -137,6 +171,12 @@ class BackgroundEstimate(NamedTuple):
         are kept; ``inf`` when none are).
     threshold, radius, alpha, value_alpha
         The settings the estimate was made with.
+    glass_level : float
+        With a background context, the background mean on glass (NaN without glass or
+        without a context); ``rate`` and ``level`` are then those of the tissue.
+    zone_levels : numpy.ndarray or None
+        With a background context, the background mean of every zone code (see
+        :class:`plexwash.qc.background.BackgroundContext`); None: ``level`` everywhere.
     """
 
     rate: float
@@ -147,6 +187,8 @@ class BackgroundEstimate(NamedTuple):
     radius: int
     alpha: float
     value_alpha: float
+    glass_level: float = float("nan")
+    zone_levels: np.ndarray | None = None
 
 
 
@@ -205,158 +247,36 @@ def estimate_background(
     settings = build_settings(SpeckleSettings, {"threshold": threshold, "radius": radius, "alpha": alpha,
                                                 "value_alpha": value_alpha}, section="speckle")
     if is_dask(image):
-        histogram = np.asarray(_centre_histogram_dask(as_channel(image), settings).compute())
+        histogram = np.asarray(centre_histogram_dask(as_channel(image), settings.threshold, settings.radius).compute())
     else:
         image = as_channel(image)
-        _check_window(image.shape, settings.radius)
+        check_window(image.shape, settings.radius)
         counts = _counts(image, settings)
-        histogram = _centre_histogram(image, counts, settings)
+        histogram = centre_histogram(image, counts, settings.threshold, settings.radius)
     return _background_from_histogram(histogram, settings)
 
 
 def _counts(image: np.ndarray, settings: SpeckleSettings) -> np.ndarray:
-    counts = np.empty(image.shape, np.uint16)
-    _k.window_counts(image, np.float32(settings.threshold), int(settings.radius), counts)
-    return counts
+    return window_counts(image, settings.threshold, settings.radius)
 
 
-def _centre_histogram(image: np.ndarray, counts: np.ndarray, settings: SpeckleSettings) -> np.ndarray:
-    """``histogram[c, n]``: full windows with centre positive (c = 1) or not and n positive neighbours."""
-    radius = int(settings.radius)
-    histogram = np.zeros((2, (2 * radius + 1) ** 2), np.int64)
-    _k.centre_histogram(image, counts, np.float32(settings.threshold), radius, histogram)
-    return histogram
-
-
-def _codes_block(block, threshold, radius):
-    """Per pixel ``n + c * (2r+1)^2`` (uint16), to histogram a dask channel block by block."""
-    block = np.ascontiguousarray(block)
-    counts = np.empty(block.shape, np.uint16)
-    _k.window_counts(block, threshold, radius, counts)
-    positive = block > threshold
-    return (counts - positive + positive * np.uint16((2 * radius + 1) ** 2)).astype(np.uint16)
-
-
-def _histogram_block(block, size):
-    return np.bincount(block.ravel(), minlength=size).reshape(1, 1, size)
-
-
-def _centre_histogram_dask(image, settings: SpeckleSettings):
-    """:func:`_centre_histogram` of a dask channel (lazy, independent of chunking)."""
-    import dask.array as da
-
-    radius = int(settings.radius)
-    _check_window(image.shape, radius)
-    codes = image.map_overlap(
-        functools.partial(_codes_block, threshold=np.float32(settings.threshold), radius=radius),
-        depth=radius,
-        boundary="none",
-        dtype=np.uint16,
-        meta=np.empty((0, 0), np.uint16),
-    )
-    inner = codes[radius : image.shape[0] - radius, radius : image.shape[1] - radius]
-    size = 2 * (2 * radius + 1) ** 2
-    per_block = da.map_blocks(
-        functools.partial(_histogram_block, size=size),
-        inner,
-        new_axis=2,
-        chunks=(1, 1, size),
-        dtype=np.int64,
-        meta=np.empty((0, 0, 0), np.int64),
-    )
-    return per_block.sum(axis=(0, 1)).reshape(2, size // 2)
-
-
-def _background_from_histogram(histogram: np.ndarray, settings: SpeckleSettings) -> BackgroundEstimate:
+def _background_from_histogram(histogram: np.ndarray | None, settings: SpeckleSettings, *,
+                               rate: float | None = None) -> BackgroundEstimate:
+    """The estimate from a centre histogram (or from a ``rate`` already fitted)."""
     window = (2 * int(settings.radius) + 1) ** 2
-    rate = _fit_rate(histogram)
-    level = _poisson_level(rate, settings.threshold)
-    count_threshold = int(_binomial_min_count(np.array([window - 1]), rate, settings.alpha)[0])
+    rate = fit_rate(histogram) if rate is None else rate
+    level = poisson_level(rate, settings.threshold)
+    count_threshold = int(binomial_min_count(np.array([window - 1]), rate, settings.alpha)[0])
     return BackgroundEstimate(
         rate=rate,
         level=level,
         count_threshold=count_threshold,
-        value_threshold=_poisson_min_value(level, settings.value_alpha),
+        value_threshold=poisson_min_value(level, settings.value_alpha),
         threshold=float(settings.threshold),
         radius=int(settings.radius),
         alpha=float(settings.alpha),
         value_alpha=float(settings.value_alpha),
     )
-
-
-def _fit_rate(histogram: np.ndarray) -> float:
-    """Background positive rate from ``histogram[centre positive, n]`` (see :func:`estimate_background`)."""
-    histogram = np.asarray(histogram, np.float64)
-    neighbours = histogram.shape[1] - 1
-    cumulative = np.cumsum(histogram.sum(axis=0))
-    if cumulative[-1] == 0:
-        raise InputError("image", "no window lies wholly inside the image")
-    upper = int(np.searchsorted(cumulative, _FIT_START_QUANTILE * cumulative[-1]))
-    seen = set()
-    rate = 0.0
-    while upper not in seen:
-        seen.add(upper)
-        positive, negative = histogram[1, : upper + 1].sum(), histogram[0, : upper + 1].sum()
-        rate = float(positive / (positive + negative))
-        upper = _binomial_upper_point(neighbours, rate, _FIT_UPPER_TAIL)
-    return rate
-
-
-def _binomial_upper_point(trials: int, rate: float, tail: float) -> int:
-    """Smallest ``k`` with ``P(N > k) <= tail``, ``N ~ Binomial(trials, rate)`` (scipy's ``isf``)."""
-    survival = special.bdtrc(np.arange(trials + 1), trials, rate)  # P(N > k)
-    return int(np.argmax(survival <= tail))
-
-
-def _poisson_level(rate: float, threshold: float) -> float:
-    """Mean ``lambda`` of a Poisson count with ``P(Y > threshold) = rate``."""
-    if rate <= 0.0:
-        return 0.0
-    if rate >= 1.0:
-        return float("inf")
-    # P(Y > k) = P(Y >= k + 1) = regularised lower incomplete gamma P(k + 1, lambda)
-    return float(special.gammaincinv(np.floor(threshold) + 1.0, rate))
-
-
-def _poisson_min_value(level: float, value_alpha: float) -> float:
-    """Smallest whole ``v >= 1`` with ``P(Y >= v) < value_alpha``, ``Y ~ Poisson(level)``."""
-    if not np.isfinite(level):
-        return float("inf")
-
-    def tail(v):  # P(Y >= v) = P(Y > v - 1)
-        return special.pdtrc(v - 1, level)
-
-    low, high = 0, 1  # invariant: tail(low) >= value_alpha > tail(high)
-    while tail(high) >= value_alpha:
-        low, high = high, 2 * high
-    while high - low > 1:
-        mid = (low + high) // 2
-        low, high = (low, mid) if tail(mid) < value_alpha else (mid, high)
-    return float(high)
-
-
-def _binomial_min_count(trials: np.ndarray, rate: float, alpha: float) -> np.ndarray:
-    """Smallest ``k`` with ``P(N >= k) < alpha``, ``N ~ Binomial(trials, rate)``, per entry.
-
-    ``k = trials + 1`` (never kept) when even ``P(N = trials)`` is not below ``alpha``.
-    """
-    trials = np.asarray(trials, np.int64)
-    low = np.zeros_like(trials)  # P(N >= 0) = 1 >= alpha
-    high = trials + 1  # P(N >= trials + 1) = 0 < alpha
-    while np.any(high - low > 1):
-        mid = (low + high) // 2
-        below = special.bdtrc(mid - 1, trials, rate) < alpha  # P(N >= mid) = P(N > mid - 1)
-        low = np.where(below, low, mid)
-        high = np.where(below, mid, high)
-    return high
-
-
-def _min_count_table(radius: int, rate: float, alpha: float) -> np.ndarray:
-    """``table[a, b]``: smallest kept neighbour count for a window of ``a`` x ``b`` pixels."""
-    side = 2 * radius + 1
-    a, b = np.meshgrid(np.arange(side + 1), np.arange(side + 1), indexing="ij")
-    trials = np.maximum(a * b - 1, 0)
-    return _binomial_min_count(trials, rate, alpha).astype(np.int32)
 
 
 # ----------------------------------------------------------------------------- speckle
@@ -365,15 +285,16 @@ def _min_count_table(radius: int, rate: float, alpha: float) -> np.ndarray:
 def speckle_depth(settings: SpeckleSettings) -> int:
     """Overlap that makes the chunked speckle filter equal the whole-image filter.
 
-    ``radius`` for the window counts, 1 for the ``keep_touching`` rule, ``min_area - 1`` for the
-    component-size rule (see the module notes).
+    The larger of ``radius`` and ``wide_radius`` for the window counts, 1 for the neighbour
+    mean and the ``keep_touching`` rule, ``min_area - 1`` for the component-size rule (see the
+    module notes).
 
     Examples
     --------
-    >>> speckle_depth(SpeckleSettings(radius=2, min_area=2))
+    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=0, min_area=2))
     4
     """
-    return int(settings.radius) + 1 + max(int(settings.min_area) - 1, 0)
+    return max(int(settings.radius), int(settings.wide_radius)) + 1 + max(int(settings.min_area) - 1, 0)
 
 
 def remove_speckle(
@@ -385,6 +306,9 @@ def remove_speckle(
     value_alpha: float = 1e-6,
     keep_touching: bool = False,
     min_area: int = 2,
+    wide_radius: int = 5,
+    support_alpha: float = 0.2,
+    edge_alpha: float = 1e-3,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
     """Remove sparse background counts of one channel by a local-density test.
@@ -419,6 +343,14 @@ def remove_speckle(
         beside cells.
     min_area : int, optional
         Smallest kept component, in pixels (1: no size rule).
+    wide_radius, support_alpha : optional
+        A pixel is also dense when its ``(2R+1)^2`` window holds improbably many dim
+        positive neighbours (binomial test at ``alpha``; dim: not above the value test's
+        cut) and its own window at least ``P(N >= n) < support_alpha`` (``wide_radius=0``:
+        off).
+    edge_alpha : float, optional
+        A dense pixel whose value is this improbably low for the mean of its 8 neighbours
+        (lower Poisson tail) is not kept by density (0: off; see :mod:`.speckle_tests`).
     background : BackgroundEstimate, optional
         Use this estimate (e.g. made once on a whole channel) instead of estimating
         from ``image``. Its ``threshold`` must equal ``threshold``.
@@ -445,62 +377,147 @@ def remove_speckle(
     (0.0, 2.0, 1)
     """
     values = {"threshold": threshold, "radius": radius, "alpha": alpha, "value_alpha": value_alpha,
-              "keep_touching": keep_touching, "min_area": min_area}
+              "keep_touching": keep_touching, "min_area": min_area, "edge_alpha": edge_alpha,
+              "wide_radius": wide_radius, "support_alpha": support_alpha}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
             "background", f"estimated with threshold {background.threshold:g}, filter uses {settings.threshold:g}"
         )
     image = as_channel(image)
-    _check_window(image.shape, settings.radius)
+    check_window(image.shape, settings.radius)
     if is_dask(image):
         if background is None:
-            histogram = _centre_histogram_dask(image, settings).compute()
+            histogram = centre_histogram_dask(image, settings.threshold, settings.radius).compute()
             background = _background_from_histogram(np.asarray(histogram), settings)
         return _speckle_dask(image, settings, background)
     return _speckle_numpy(image, settings, background)
 
 
-def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out=None, removed=None) -> StepResult:
+def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out=None, removed=None,
+                   zone=None, spilled=None) -> StepResult:
     counts = _counts(image, settings)
     if background is None:
-        background = _background_from_histogram(_centre_histogram(image, counts, settings), settings)
+        background = _estimate(image, counts, settings, zone)
+    params = _filter_parameters(settings, background)
+    tested = _without_residue(image, spilled, zone, params, settings)
+    if tested is not image:
+        counts = _counts(tested, settings)
     out, removed = kernel_outputs(image, out, removed)
-    n_removed = _speckle_apply(image, counts, _filter_parameters(settings, background), out, removed)
+    _speckle_apply(tested, counts, zone, params, out, removed)
+    if tested is not image:
+        np.subtract(image, out, out=removed)
     stats = _speckle_stats(settings, background)
-    stats.update(n_removed=int(n_removed), removed_fraction=removed_fraction(removed, image))
+    stats.update(n_removed=int(np.count_nonzero(removed > 0)), removed_fraction=removed_fraction(removed, image))
     return StepResult(out, removed, stats)
 
 
+def _without_residue(image, spilled, zone, params: dict, settings: SpeckleSettings):
+    """``image`` with the residue of removed spillover set to 0 (:func:`.speckle_tests.drop_residue`),
+    or ``image`` itself when there is nothing to test."""
+    if spilled is None or settings.residue_alpha <= 0:
+        return image
+    levels = params["levels"]
+    if params["zoned"] and zone is not None:
+        local = levels[zone]
+    else:
+        local = np.full(image.shape, levels[0])
+    return drop_residue(image, spilled, np.nan_to_num(local, posinf=1e30), float(settings.residue_alpha))
+
+
+def _estimate(image: np.ndarray, counts: np.ndarray, settings: SpeckleSettings, zone) -> BackgroundEstimate:
+    """The channel's background: per region of the context's zones, or one for the whole channel."""
+    if zone is None or not settings.local_rates:
+        return _background_from_histogram(centre_histogram(image, counts, settings.threshold, settings.radius), settings)
+    return _regional_background(region_histogram(image, counts, settings.threshold, settings.radius, zone), settings)
+
+
+def _regional_background(histogram: np.ndarray, settings: SpeckleSettings) -> BackgroundEstimate:
+    """The background of each region (glass, tissue) fitted on its own windows.
+
+    A region's rate is fitted on the windows centred away from the tissue edge (parts 0 and
+    3), or on all its windows when those are fewer than ``MIN_REGION_WINDOWS``; a region
+    with fewer windows still takes the fit of all windows. Each zone's level is its
+    region's level times the zone's shared variation.
+    """
+    rates = []
+    for inner, edge in ((0, 1), (3, 2)):
+        chosen = histogram[inner]
+        if chosen.sum() < MIN_REGION_WINDOWS:
+            chosen = histogram[inner] + histogram[edge]
+        if chosen.sum() < MIN_REGION_WINDOWS:
+            chosen = histogram.sum(axis=0)
+        rates.append(fit_rate(chosen, lowest=1))
+    levels = [poisson_level(rate, settings.threshold) for rate in rates]
+    part = np.arange(len(PARTS) * ZONES_PER_PART) // ZONES_PER_PART
+    with np.errstate(invalid="ignore"):  # an infinite level stays infinite
+        zone_levels = np.where(part < 2, levels[0], levels[1]) * zone_factors()
+    base = _background_from_histogram(None, settings, rate=rates[1])
+    has_glass = histogram[:2].sum() >= MIN_REGION_WINDOWS
+    return base._replace(glass_level=float(levels[0] if has_glass else np.nan), zone_levels=zone_levels)
+
+
 def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate) -> dict:
-    """Everything the kernel needs besides the pixels."""
-    value_threshold = _poisson_min_value(background.level, settings.value_alpha)
+    """Everything the kernel needs besides the pixels (and the zone map)."""
+    zoned = background.zone_levels is not None
+    if zoned:
+        levels, rates = background.zone_levels, None
+    else:
+        levels, rates = np.array([background.level]), np.array([background.rate])
+    tables = {"threshold": settings.threshold, "value_alpha": settings.value_alpha}
+    min_count, value_cut = zone_tables(levels, rates=rates, radius=int(settings.radius), alpha=settings.alpha,
+                                       **tables)
+    wide_radius = int(settings.wide_radius)
+    if wide_radius > 0:
+        support, _ = zone_tables(levels, rates=rates, radius=int(settings.radius),
+                                 alpha=settings.support_alpha, **tables)
+        wide, _ = zone_tables(levels, rates=rates, radius=wide_radius, alpha=settings.alpha, **tables)
+    else:  # never: more neighbours than any window has
+        support = np.full_like(min_count, np.iinfo(np.int32).max)
+        wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
     return {
         "threshold": np.float32(settings.threshold),
         "radius": int(settings.radius),
-        "min_count": _min_count_table(int(settings.radius), background.rate, settings.alpha),
-        "value_cut": float(value_threshold - 1.0),
+        "min_count": min_count,
+        "wide_radius": wide_radius,
+        "wide_upper": float(poisson_min_value(float(np.max(levels[np.isfinite(levels)], initial=0.0)),
+                                              settings.value_alpha) - 1.0),
+        "wide_min_count": wide,
+        "support_min_count": support,
+        "value_cut": value_cut,
+        "low_mean": low_mean_table(float(settings.edge_alpha)),
         "min_area": int(settings.min_area),
-        "pass_through": background.rate >= 1.0,
+        "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
         "keep_touching": bool(settings.keep_touching),
+        "zoned": zoned,
+        "levels": np.asarray(levels, np.float64),
     }
 
 
-def _speckle_apply(image, counts, params: dict, out, removed) -> int:
+def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
     if params["pass_through"]:  # every window is full: no pixel is sparser than background
         out[...] = image
         removed[...] = 0.0
         return 0
-    kernel_args = {k: v for k, v in params.items() if k != "pass_through"}
-    return _k.speckle_filter(image, counts, out=out, removed=removed, **kernel_args)
+    if not params["zoned"] or zone is None:
+        zone = np.zeros(image.shape, np.uint8)
+    wide = counts
+    if params["wide_radius"] > 0:
+        wide = np.empty(image.shape, np.uint16)
+        _k.window_counts(image, params["threshold"], params["wide_radius"], wide, params["wide_upper"])
+    kernel_args = {k: v for k, v in params.items() if k not in ("pass_through", "zoned", "wide_upper", "levels")}
+    return _k.speckle_filter(image, counts, wide, np.ascontiguousarray(zone, np.uint8), out=out,
+                             removed=removed, **kernel_args)
 
 
-def _speckle_block(block, params: dict):
+def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: SpeckleSettings | None = None):
     block = np.ascontiguousarray(block)
+    if spilled is not None and settings is not None:
+        block = _without_residue(block, np.ascontiguousarray(spilled), zone, params, settings)
     counts = np.empty(block.shape, np.uint16)
     _k.window_counts(block, params["threshold"], params["radius"], counts)
     out = np.empty(block.shape, np.float32)
-    _speckle_apply(block, counts, params, out, np.empty_like(out))
+    _speckle_apply(block, counts, zone, params, out, np.empty_like(out))
     return out
 
 
@@ -518,8 +535,9 @@ def _speckle_stats(settings: SpeckleSettings, background: BackgroundEstimate) ->
     return {
         "rate": float(background.rate),
         "level": _finite_or_none(float(background.level)),
-        "count_threshold": int(_binomial_min_count(np.array([window - 1]), background.rate, settings.alpha)[0]),
-        "value_threshold": _finite_or_none(_poisson_min_value(background.level, settings.value_alpha)),
+        "count_threshold": int(binomial_min_count(np.array([window - 1]), background.rate, settings.alpha)[0]),
+        "value_threshold": _finite_or_none(poisson_min_value(background.level, settings.value_alpha)),
+        "level_glass": _finite_or_none(float(background.glass_level)),
     }
 
 
@@ -527,11 +545,15 @@ def _finite_or_none(value: float):
     return value if np.isfinite(value) else None
 
 
-def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] | None = None) -> StepResult:
+def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] | None = None, *,
+                  context=None, spilled=None) -> StepResult:
     """Speckle step on a (C, Y, X) stack, numpy or dask.
 
     Each channel's background is estimated once on the whole channel (for dask, all
-    channels in one pass, computed here), so results do not depend on chunking.
+    channels in one pass, computed here), so results do not depend on chunking. With a
+    background ``context`` (:func:`plexwash.qc.background.roi_background`, computed once
+    per ROI) a channel whose settings have ``local_rates`` is fitted per region and tested
+    against the background where each pixel lies (see :mod:`.speckle_tests`).
 
     Parameters
     ----------
@@ -540,13 +562,21 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
     settings : SpeckleSettings or sequence of them, optional
         One for all channels, or one per channel. A channel whose settings have
         ``enabled=False`` passes through unchanged (zero removed map).
+    context : BackgroundContext, optional
+        The ROI's background context (same Y, X as the stack). Without it every channel
+        has one background rate.
+    spilled : (C, Y, X) array_like or dask array, optional
+        What compensation removed from each channel (its input minus its output). With it,
+        the residue of removed spillover is set to 0 first (``residue_alpha``,
+        :func:`.speckle_tests.drop_residue`); the background is estimated before that.
 
     Returns
     -------
     StepResult
         ``(cleaned, removed, stats)``: float32 stacks and one stats dict per channel
         (``enabled``, ``rate``, ``level``, ``count_threshold``, ``value_threshold``,
-        ``n_removed``, ``removed_fraction``).
+        ``level_glass``, ``n_removed``, ``removed_fraction``; with a context the rate and
+        level are the tissue's).
 
     Examples
     --------
@@ -560,34 +590,39 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
     per_channel = per_channel_settings(settings, SpeckleSettings, stack.shape[0])
     for s in per_channel:
         if s.enabled:
-            _check_window(stack.shape, s.radius)
+            check_window(stack.shape, s.radius)
+    zone = None
+    if context is not None:
+        zone = np.ascontiguousarray(context.zone, np.uint8)
+        if zone.shape != tuple(stack.shape[1:]):
+            raise InputError("context", f"zone map {zone.shape} differs from the stack's {tuple(stack.shape[1:])}")
     backgrounds = {}
     if is_dask(stack):
         import dask
 
         enabled = [c for c, s in enumerate(per_channel) if s.enabled]
-        histograms = dask.compute(*[_centre_histogram_dask(stack[c], per_channel[c]) for c in enabled])
+        zoned = {c: zone is not None and per_channel[c].local_rates for c in enabled}
+        histograms = dask.compute(*[centre_histogram_dask(stack[c], per_channel[c].threshold, per_channel[c].radius,
+                                                          zone if zoned[c] else None)
+                                    for c in enabled])
         for c, histogram in zip(enabled, histograms, strict=True):
-            backgrounds[c] = _background_from_histogram(np.asarray(histogram), per_channel[c])
+            backgrounds[c] = (_regional_background if zoned[c] else _background_from_histogram)(
+                np.asarray(histogram), per_channel[c])
+
+    if spilled is not None and tuple(spilled.shape) != tuple(stack.shape):
+        raise InputError("spilled", f"shape {tuple(spilled.shape)} differs from the stack's {tuple(stack.shape)}")
 
     def channel_step(c, image, s, out, removed):
-        return _speckle_numpy(image, s, None, out, removed)
+        ghost = None if spilled is None else np.asarray(spilled[c], np.float32)
+        return _speckle_numpy(image, s, None, out, removed, zone=zone if s.local_rates else None, spilled=ghost)
 
     def block_kernel(c, s):
-        kernel = functools.partial(_speckle_block, params=_filter_parameters(s, backgrounds[c]))
+        kernel = functools.partial(_speckle_block, params=_filter_parameters(s, backgrounds[c]), settings=s)
         return kernel, speckle_depth(s), _speckle_stats(s, backgrounds[c])
 
-    passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None, "n_removed": 0}
+    passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None,
+               "level_glass": None, "n_removed": 0}
     return run_stack(stack, per_channel, channel_step, passive=passive,
-                     block_kernel=block_kernel, count_key="n_removed")
-
-
-
-def _check_window(shape, radius: int) -> None:
-    side = 2 * int(radius) + 1
-    if shape[-2] < side or shape[-1] < side:
-        raise InputError(
-            "speckle.radius", f"window of {side} px is larger than the image ({shape[-2]} x {shape[-1]})"
-        )
+                     block_kernel=block_kernel, count_key="n_removed", zone=zone, spilled=spilled)
 
 

@@ -1,0 +1,247 @@
+"""The statistical tests of the speckle step, and their thresholds as tables for the kernel.
+
+Density test
+    Binomial test on a window's positive neighbours: a positive pixel whose ``n`` positive
+    neighbours (of ``m``) have ``P(N >= n) < alpha`` under ``N ~ Binomial(m, p)`` is dense
+    (an exact one-sided binomial test; ``P(N >= n)`` is the regularised incomplete beta
+    function, Abramowitz & Stegun 26.5.24, via ``scipy.special.bdtrc``). ``p`` is the
+    background's positive rate *where the pixel lies*.
+Value test
+    Poisson upper tail: a pixel whose value ``v`` has ``P(Y >= v) < value_alpha`` under
+    ``Y ~ Poisson(lambda)`` is too bright for background (``P(Y >= v)`` is the regularised
+    lower incomplete gamma function, Abramowitz & Stegun 6.5.2 and 26.4.21, via
+    ``scipy.special.pdtrc``).
+Low against the neighbours
+    Lower Poisson tail against the neighbourhood: a dense pixel of value ``v`` with
+    ``P(Y <= v) < edge_alpha`` under ``Y ~ Poisson(mu)``, ``mu`` the mean of its 8
+    neighbours, cannot belong to the structure it touches (a one-count pixel beside a cell
+    of thirty counts a pixel); it is not kept by density, so background counts on the rim
+    of bright cells go while dim cells and thin fibres, whose neighbours are dim too, stay.
+    ``P(Y <= v)`` is the regularised upper incomplete gamma function ``Q(v + 1, mu)``
+    (Abramowitz & Stegun 6.5.2, 26.4.19), so the rule is ``mu > Q^-1(v + 1, edge_alpha)``
+    (:func:`low_mean_table`, ``scipy.special.gammainccinv``).
+Residue of removed spillover
+    One-sided Poisson test of the counts compensation left: see :func:`drop_residue`.
+Background rate
+    Under background alone a window's centre is positive with probability ``p`` whatever
+    its neighbours are, so the fraction of positive centres among windows with few positive
+    neighbours is the conditional maximum-likelihood estimate of ``p`` (:func:`fit_rate`).
+    With a background context (:class:`plexwash.qc.background.BackgroundContext`) the fit
+    is made per region, glass and tissue, over windows centred in that region; the rate of
+    a pixel is its region's rate times the shared variation of background there, rounded to
+    the context's zone (4.4 % steps), and the thresholds of both tests are tabulated per
+    zone (:func:`zone_tables`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import special
+
+from ..errors import InputError
+
+__all__ = [
+    "FIT_START_QUANTILE",
+    "FIT_UPPER_TAIL",
+    "MIN_REGION_WINDOWS",
+    "binomial_min_count",
+    "binomial_upper_point",
+    "box3",
+    "drop_residue",
+    "fit_rate",
+    "low_mean_table",
+    "min_count_table",
+    "poisson_level",
+    "poisson_min_value",
+    "positive_rate",
+    "zone_tables",
+]
+
+#: Quantile of all neighbour counts where the background fit starts.
+FIT_START_QUANTILE = 0.01
+#: The background fit uses windows with up to the (1 - this) point of Binomial(m, p) positive
+#: neighbours: 0.5, the median, keeps windows centred in cells out.
+FIT_UPPER_TAIL = 0.5
+#: A region whose rate is fitted on its own needs at least this many full windows centred in
+#: it; a smaller one takes the rate of the whole channel.
+MIN_REGION_WINDOWS = 2000
+
+
+def fit_rate(histogram: np.ndarray, *, lowest: int = 0) -> float:
+    """Background positive rate from ``histogram[centre positive, n]`` (windows by their ``n``).
+
+    ``p`` is the fraction of positive centres among windows with ``lowest <= n <= K``,
+    ``K`` the median of ``Binomial(m, p)``, iterated to a fixed point from the 1 % quantile
+    of all ``n``: windows centred in cells have large ``n`` and stay out, windows grazing a
+    cell have background centres and do not bias it. Under background alone the centre is
+    positive with probability ``p`` whatever ``n`` is, so leaving out windows with no
+    positive neighbour (``lowest = 1``) keeps the estimate unbiased, and stops empty areas
+    (glass left in a region, counts compensation set to 0, dips of the background) from
+    pulling it down.
+    """
+    histogram = np.asarray(histogram, np.float64)
+    neighbours = histogram.shape[1] - 1
+    cumulative = np.cumsum(histogram.sum(axis=0))
+    if cumulative[-1] == 0:
+        raise InputError("image", "no window lies wholly inside the image")
+    if histogram[:, lowest:].sum() == 0:
+        lowest = 0
+    upper = max(int(np.searchsorted(cumulative, FIT_START_QUANTILE * cumulative[-1])), lowest)
+    seen = set()
+    rate = 0.0
+    while upper not in seen:
+        seen.add(upper)
+        positive = histogram[1, lowest: upper + 1].sum()
+        negative = histogram[0, lowest: upper + 1].sum()
+        if positive + negative == 0:
+            upper += 1
+            continue
+        rate = float(positive / (positive + negative))
+        upper = max(binomial_upper_point(neighbours, rate, FIT_UPPER_TAIL), lowest)
+    return rate
+
+
+def binomial_upper_point(trials: int, rate: float, tail: float) -> int:
+    """Smallest ``k`` with ``P(N > k) <= tail``, ``N ~ Binomial(trials, rate)`` (scipy's ``isf``)."""
+    survival = special.bdtrc(np.arange(trials + 1), trials, rate)  # P(N > k)
+    return int(np.argmax(survival <= tail))
+
+
+def poisson_level(rate: float, threshold: float) -> float:
+    """Mean ``lambda`` of a Poisson count with ``P(Y > threshold) = rate``."""
+    if rate <= 0.0:
+        return 0.0
+    if rate >= 1.0:
+        return float("inf")
+    # P(Y > k) = P(Y >= k + 1) = regularised lower incomplete gamma P(k + 1, lambda)
+    return float(special.gammaincinv(np.floor(threshold) + 1.0, rate))
+
+
+def positive_rate(level, threshold: float) -> np.ndarray:
+    """``P(Y > threshold)`` for ``Y ~ Poisson(level)`` (the inverse of :func:`poisson_level`)."""
+    level = np.asarray(level, np.float64)
+    return np.where(level > 0, special.gammainc(np.floor(threshold) + 1.0, np.maximum(level, 1e-300)),
+                    0.0)
+
+
+def poisson_min_value(level: float, value_alpha: float) -> float:
+    """Smallest whole ``v >= 1`` with ``P(Y >= v) < value_alpha``, ``Y ~ Poisson(level)``."""
+    if not np.isfinite(level):
+        return float("inf")
+
+    def tail(v):  # P(Y >= v) = P(Y > v - 1)
+        return special.pdtrc(v - 1, level)
+
+    low, high = 0, 1  # invariant: tail(low) >= value_alpha > tail(high)
+    while tail(high) >= value_alpha:
+        low, high = high, 2 * high
+    while high - low > 1:
+        mid = (low + high) // 2
+        low, high = (low, mid) if tail(mid) < value_alpha else (mid, high)
+    return float(high)
+
+
+def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
+    """Smallest ``k`` with ``P(N >= k) < alpha``, ``N ~ Binomial(trials, rate)``, per entry.
+
+    ``rate`` is a number or an array broadcast with ``trials``. ``k = trials + 1`` (never
+    kept) when even ``P(N = trials)`` is not below ``alpha``.
+    """
+    trials, rate = np.broadcast_arrays(np.asarray(trials, np.int64), np.asarray(rate, np.float64))
+    low = np.zeros_like(trials)  # P(N >= 0) = 1 >= alpha
+    high = trials + 1  # P(N >= trials + 1) = 0 < alpha
+    while np.any(high - low > 1):
+        mid = (low + high) // 2
+        below = special.bdtrc(mid - 1, trials, rate) < alpha  # P(N >= mid) = P(N > mid - 1)
+        low = np.where(below, low, mid)
+        high = np.where(below, mid, high)
+    return high
+
+
+def min_count_table(radius: int, rate, alpha: float) -> np.ndarray:
+    """``table[..., a, b]``: smallest kept neighbour count for a window of ``a`` x ``b`` pixels.
+
+    ``rate`` is one rate or a 1-D array of them (one table each, stacked first).
+    """
+    side = 2 * radius + 1
+    a, b = np.meshgrid(np.arange(side + 1), np.arange(side + 1), indexing="ij")
+    trials = np.maximum(a * b - 1, 0)
+    rate = np.asarray(rate, np.float64)
+    return binomial_min_count(trials, rate[..., None, None], alpha).astype(np.int32)
+
+
+def zone_tables(levels: np.ndarray, *, rates=None, threshold: float, radius: int, alpha: float,
+                value_alpha: float) -> tuple[np.ndarray, np.ndarray]:
+    """Thresholds of both tests for each zone's background level (counts per pixel).
+
+    Returns ``min_count`` (Z, 2r+2, 2r+2) int32 (:func:`min_count_table` at each zone's
+    positive rate: ``rates`` when given, else :func:`positive_rate` of the level) and
+    ``value_cut`` (Z,) float64 (a positive pixel above it is kept by value:
+    :func:`poisson_min_value` - 1). Equal levels are tabulated once.
+    """
+    levels = np.asarray(levels, np.float64)
+    if rates is not None:  # one zone, its rate as fitted
+        rates = np.asarray(rates, np.float64)
+        tables = min_count_table(radius, rates, alpha)
+        cuts = np.array([poisson_min_value(level, value_alpha) - 1.0 for level in levels])
+        return tables, cuts
+    distinct, index = np.unique(levels, return_inverse=True)
+    rates = positive_rate(distinct, threshold)
+    tables = min_count_table(radius, rates, alpha)
+    cuts = np.array([poisson_min_value(level, value_alpha) - 1.0 for level in distinct])
+    # a zone whose every pixel is positive (rate 1): nothing is sparser than background
+    tables[rates >= 1.0] = 0
+    cuts[rates >= 1.0] = -np.inf
+    return tables[index.ravel()], cuts[index.ravel()]
+
+
+#: Whole values up to which :func:`low_mean_table` is tabulated (brighter pixels are never low).
+LOW_VALUES = 255
+
+
+def low_mean_table(edge_alpha: float) -> np.ndarray:
+    """``table[v]``: the neighbour mean above which a pixel of value ``v`` (whole counts, floor)
+    is improbably low, ``P(Y <= v) < edge_alpha`` for ``Y ~ Poisson(mean)``; ``inf`` when off."""
+    values = np.arange(LOW_VALUES + 1, dtype=np.float64)
+    if edge_alpha <= 0.0:
+        return np.full(values.shape, np.inf)
+    return special.gammainccinv(values + 1.0, edge_alpha)
+
+
+def drop_residue(image: np.ndarray, spilled: np.ndarray, background: np.ndarray, alpha: float) -> np.ndarray:
+    """A compensated channel with the residue of removed spillover set to 0 (one-sided Poisson test).
+
+    Compensation removed ``g = spilled`` from the channel: the spillover it expects there.
+    Where ``g`` is at least the local background ``b`` (counts per pixel), the counts left
+    in a pixel are kept only when the measured whole counts ``Y`` (``image + g``, rounded)
+    of its 3 x 3 window are improbable without any own signal, ``P(N >= Y) < alpha`` for
+    ``N ~ Poisson`` of the window's sum of ``g + b`` (exact Poisson upper tail, the
+    regularised lower incomplete gamma ``P(Y, mu)``, Abramowitz & Stegun 6.5.2 and 26.4.21);
+    otherwise they are the positive half of the ghost's counting noise that NNLS leaves on
+    Poisson counts, and become 0. The window is clipped at the array's edge. Returns
+    ``image`` itself when nothing is set to 0.
+    """
+    image = np.asarray(image, np.float32)
+    spilled = np.asarray(spilled, np.float32)
+    candidates = (image > 0) & (spilled > 0) & (spilled >= background)
+    if not candidates.any():
+        return image
+    measured = box3(np.floor(image.astype(np.float64) + spilled + 0.5))
+    expected = box3(spilled.astype(np.float64) + background)
+    tail = special.gammainc(np.maximum(measured[candidates], 1.0), np.maximum(expected[candidates], 1e-300))
+    residue = np.zeros(image.shape, bool)
+    residue[candidates] = tail >= alpha
+    if not residue.any():
+        return image
+    return np.where(residue, np.float32(0.0), image)
+
+
+def box3(values: np.ndarray) -> np.ndarray:
+    """Sum over the 3 x 3 window of each pixel of a plane (clipped at the edges), float64."""
+    padded = np.pad(np.asarray(values, np.float64), 1)
+    height, width = values.shape
+    total = np.zeros(values.shape, np.float64)
+    for dy in range(3):
+        for dx in range(3):
+            total += padded[dy:dy + height, dx:dx + width]
+    return total
