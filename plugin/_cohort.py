@@ -486,8 +486,8 @@ class CohortWidget(StudioWidget):
                 show, origin = False, tuple(layer.translate)
             plan.append((layer, show, origin))
         changes = sum(layer.visible != show for layer, show, _ in plan)
-        # many layers shown or hidden: one scene-graph update at the end, not one per layer
-        batch = self.viewer.layers.batched_update() if changes > 2 else contextlib.nullcontext()
+        # layers shown or hidden: one scene-graph update (and draw) at the end, not one per layer
+        batch = self.viewer.layers.batched_update() if changes > 1 else contextlib.nullcontext()
         with batch:
             for layer, show, origin in plan:
                 if layer.visible != show:

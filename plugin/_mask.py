@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._layers import keep_for_good
+
 #: Name of the mask layer (not a studio channel layer: it carries no channel metadata).
 MASK_LAYER = "plexwash tissue"
 #: Outline colour of the tissue (the studio's accent).
@@ -58,6 +60,7 @@ def outline_tissue(viewer, mask: np.ndarray, *, scale=None) -> object:
     layer.contour = MASK_CONTOUR
     layer.editable = False
     viewer.layers.selection.active = active  # the mask never takes the layer controls
+    keep_for_good(viewer)
     return layer
 
 

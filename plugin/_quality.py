@@ -8,18 +8,21 @@ from pathlib import Path
 
 import numpy as np
 from napari.qt.threading import thread_worker
-from qtpy.QtCore import Qt
+from qtpy.QtCore import Qt, QTimer
 from qtpy.QtWidgets import (
     QAbstractItemView,
     QComboBox,
     QHBoxLayout,
     QHeaderView,
+    QLabel,
     QPushButton,
+    QSizePolicy,
     QTableWidget,
     QTableWidgetItem,
 )
 
-from ._common import ACCENT, WARN, StudioWidget, qcolor, small_figure, style_axes
+from ._common import ACCENT, WARN, StudioWidget, qcolor, style_axes
+from ._preview import LatestOnly
 
 #: Table columns: (row key, header, number format or None for text). The flags come early so
 #: that a narrow dock shows them; "#" is the panel position (sort by it to get panel order).
@@ -124,6 +127,48 @@ def cell_text(value, fmt) -> str:
     return fmt.format(value)
 
 
+#: Height of the SBR chart in pixels.
+PLOT_HEIGHT = 190
+
+
+def sbr_chart(rows: list[dict], low_sbr: float, width: int, height: int):
+    """The SBR-by-channel bar chart of quality rows, rendered off screen (any thread).
+
+    One bar per channel (side-by-side rows: a grey raw bar left of the washed one), flagged
+    channels in the warning colour, a dashed line at the low-SBR threshold, log scale.
+    Returns ``(figure, rgba)``: the matplotlib figure and its pixels, ``(height, width, 4)``
+    uint8.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    figure = Figure(figsize=(width / 100, height / 100), dpi=100, facecolor="#1e2228")
+    FigureCanvasAgg(figure)
+    ax = figure.add_subplot(111)
+    style_axes(ax)
+    if rows:
+        x = np.arange(len(rows))
+        if "washed sbr" in rows[0]:  # side by side: raw bars (grey) left of washed ones
+            raw = np.array([_bar_height(r.get("raw sbr")) for r in rows])
+            ax.bar(x - 0.2, raw, color=RAW_BAR, width=0.4, label="raw")
+            washed = np.array([_bar_height(r.get("washed sbr")) for r in rows])
+            colours = [WARN if r.get("washed flags") else ACCENT for r in rows]
+            ax.bar(x + 0.2, washed, color=colours, width=0.4, label="washed")
+        else:
+            sbr = np.array([_bar_height(r["sbr"]) for r in rows])
+            colours = [WARN if r["flags"] else ACCENT for r in rows]
+            ax.bar(x, sbr, color=colours, width=0.8)
+        ax.set_yscale("log")
+        ax.axhline(low_sbr, color="#cfd6dd", lw=0.8, ls=(0, (4, 3)))
+        ax.set_xticks(x)
+        ax.set_xticklabels([r.get("label") or r["channel"] for r in rows], rotation=90, fontsize=6)
+        ax.set_xlim(-0.6, len(rows) - 0.4)
+    # fixed margins: tight_layout would measure every label
+    figure.subplots_adjust(left=0.12, right=0.98, top=0.95, bottom=0.38)
+    figure.canvas.draw()
+    return figure, np.asarray(figure.canvas.buffer_rgba()).copy()
+
+
 #: Colour of the raw bars beside the washed ones.
 RAW_BAR = "#6b7682"
 
@@ -154,6 +199,10 @@ class QualityWidget(StudioWidget):
     def __init__(self, napari_viewer, parent=None):
         super().__init__(napari_viewer, parent)
         self.rows: list[dict] = []
+        self._plot_soon = QTimer(self)  # coalesced: one chart for a burst of fills
+        self._plot_soon.setSingleShot(True)
+        self._plot_soon.setInterval(0)
+        self._plot_soon.timeout.connect(self._plot)
         self.columns = COLUMNS
         self._headers = [c[1] for c in COLUMNS]
         self.shown: tuple[str, str] | None = None  # (stage, source) of the rows in the table
@@ -183,7 +232,9 @@ class QualityWidget(StudioWidget):
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.verticalHeader().setVisible(False)
         self.table.verticalHeader().setDefaultSectionSize(self.fontMetrics().height() + 6)  # compact rows
-        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        # columns are sized once per fill (resizeColumnsToContents): a ResizeToContents header
+        # measures every cell again after each cell set, seconds for a 40-channel table
+        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Interactive)
         self.table.horizontalHeader().setStretchLastSection(True)
         self.table.setSortingEnabled(True)
         self.table.itemSelectionChanged.connect(self._row_chosen)
@@ -191,8 +242,14 @@ class QualityWidget(StudioWidget):
         layout.addWidget(self.table, 2)
 
         layout.addWidget(self.caption("SBR by channel"))
-        self.figure, self.canvas = small_figure()
-        layout.addWidget(self.canvas, 1)
+        self.figure = sbr_chart([], 1.0, 320, PLOT_HEIGHT)[0]
+        self.plot_view = QLabel()
+        self.plot_view.setObjectName("sbr_plot")
+        self.plot_view.setMinimumHeight(PLOT_HEIGHT)
+        self.plot_view.setMinimumWidth(120)
+        self.plot_view.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+        self.plotter = LatestOnly(lambda args: sbr_chart(*args), self._plotted, parent=self)
+        layout.addWidget(self.plot_view)
         self.finish_layout()
 
         self.state.roi_changed.connect(self._roi_changed)
@@ -338,6 +395,7 @@ class QualityWidget(StudioWidget):
         columns = BOTH_COLUMNS if both else COLUMNS
         self.columns = columns
         self.table.setSortingEnabled(False)
+        self.table.setUpdatesEnabled(False)  # one repaint for the whole table
         self.table.clearContents()
         if self.table.columnCount() != len(columns) or self._headers != [c[1] for c in columns]:
             self._headers = [c[1] for c in columns]
@@ -363,38 +421,32 @@ class QualityWidget(StudioWidget):
                 self.table.setItem(r, c, item)
         self.table.setSortingEnabled(True)
         self.table.sortItems(0, Qt.SortOrder.AscendingOrder)  # panel order, as the plot
+        self.table.resizeColumnsToContents()
+        self.table.setUpdatesEnabled(True)
         flag_columns = [c for c, (key, _h, _f) in enumerate(columns) if key.endswith("flags")]
         flagged = [r for r in range(len(rows)) if any(self.table.item(r, c).text() for c in flag_columns)]
         if flagged:  # bring the first flagged channel into view (its row; the columns from the left)
             self.table.scrollToItem(self.table.item(flagged[0], 0), QAbstractItemView.ScrollHint.PositionAtCenter)
-        self._plot()
+        self._plot_soon.start()  # the plot in its own turn of the event loop
 
     def _plot(self):
-        ax = self.figure.axes[0]
-        ax.clear()
-        style_axes(ax)
-        if self.rows:
-            x = np.arange(len(self.rows))
-            if "washed sbr" in self.rows[0]:  # side by side: raw bars (grey) left of washed ones
-                raw = np.array([_bar_height(r.get("raw sbr")) for r in self.rows])
-                ax.bar(x - 0.2, raw, color=RAW_BAR, width=0.4, label="raw")
-                washed = np.array([_bar_height(r.get("washed sbr")) for r in self.rows])
-                colours = [WARN if r.get("washed flags") else ACCENT for r in self.rows]
-                ax.bar(x + 0.2, washed, color=colours, width=0.4, label="washed")
-            else:
-                sbr = np.array([_bar_height(r["sbr"]) for r in self.rows])
-                colours = [WARN if r["flags"] else ACCENT for r in self.rows]
-                ax.bar(x, sbr, color=colours, width=0.8)
-            ax.set_yscale("log")
-            low_sbr = self.state.recipe.quality.low_sbr
-            ax.axhline(low_sbr, color="#cfd6dd", lw=0.8, ls=(0, (4, 3)))
-            ax.set_xticks(x)
-            ax.set_xticklabels([r.get("label") or r["channel"] for r in self.rows], rotation=90,
-                               fontsize=6)
-            ax.set_xlim(-0.6, len(self.rows) - 0.4)
-        # fixed margins: tight_layout measures every label (a few hundred ms on the GUI thread)
-        self.figure.subplots_adjust(left=0.12, right=0.98, top=0.95, bottom=0.38)
-        self.canvas.draw_idle()
+        """Render the SBR chart in the background (matplotlib's layout and drawing take tenths
+        of a second for 40 channels); the GUI thread only shows the finished picture."""
+        width = max(self.plot_view.width(), 240)
+        height = max(self.plot_view.height(), PLOT_HEIGHT)
+        self.plotter.request((list(self.rows), self.state.recipe.quality.low_sbr, width, height))
+
+    def _plotted(self, result) -> None:
+        from qtpy.QtGui import QImage, QPixmap
+
+        figure, rgba = result
+        self.figure = figure
+        height, width = rgba.shape[:2]
+        image = QImage(rgba.data, width, height, 4 * width, QImage.Format.Format_RGBA8888)
+        self.plot_view.setPixmap(QPixmap.fromImage(image.copy()))
+
+    def busy(self) -> bool:
+        return super().busy() or not self.plotter.idle or self._plot_soon.isActive()
 
     def _row_chosen(self):
         items = self.table.selectedItems()

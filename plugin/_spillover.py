@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 from napari.qt.threading import thread_worker
+from qtpy.QtCore import QTimer
 from qtpy.QtWidgets import (
     QCheckBox,
     QComboBox,
@@ -24,6 +25,7 @@ from ._layers import (
     find_panel,
     fit_visible,
     grid_of,
+    keep_for_good,
     robust_limits,
     studio_layers,
     swap_layer,
@@ -63,6 +65,8 @@ def heatmap_layout(n: int, width_px: int, longest_label: int) -> dict:
     return {"cell": cell, "font": font, "left": label_px, "bottom": label_px, "top": top,
             "right": right, "width": label_px + n * cell + right,
             "height": top + n * cell + label_px}
+#: Hidden compensated layers given new pixels per turn of the event loop.
+SWAPS_PER_TURN = 6
 #: What an edit's error names (the engine's own name for a matrix it is handed).
 SPILLOVER_SOURCE = "spillover matrix"
 
@@ -162,6 +166,11 @@ class SpilloverWidget(StudioWidget):
         super().__init__(napari_viewer, parent)
         self.compensated: tuple | None = None
         self._fitted = False
+        self._swaps: list = []
+        self._swap_timer = QTimer(self)
+        self._swap_timer.setSingleShot(True)
+        self._swap_timer.setInterval(0)
+        self._swap_timer.timeout.connect(self._swap_some)
         layout = self.layout()
 
         layout.addWidget(self.caption("Matrix"))
@@ -473,7 +482,8 @@ class SpilloverWidget(StudioWidget):
         width = roi.shape[2] * (roi.pixel_size[1] if roi.pixel_size else 1.0)
         kept = {layer.metadata["plexwash"]["channel"]: layer
                 for layer in studio_layers(self.viewer, stage="compensated")}
-        made = []
+        made, swaps = [], []
+        self._swaps = []  # an earlier compensation's swaps not yet done are dropped
         with self.viewer.layers.batched_update():  # one scene-graph update for every layer
             for layer in studio_layers(self.viewer):
                 if layer.metadata["plexwash"]["stage"] in ("washed", "removed") and layer.visible:
@@ -487,7 +497,7 @@ class SpilloverWidget(StudioWidget):
                                              visible=False, limits=limits)
                 kwargs["translate"] = (0.0, width * 1.04)
                 if channel in kept:  # later compensations: the kept layers get the new pixels
-                    swap_layer(kept[channel], stack[k], kwargs)
+                    swaps.append((channel, kept[channel], stack[k], kwargs))
                 else:
                     made.append(Image(stack[k], **kwargs))
             if made:  # the first compensation: every layer at once, the active layer unchanged
@@ -495,10 +505,32 @@ class SpilloverWidget(StudioWidget):
                 self.viewer.layers.extend(made)
                 if active is not None:
                     self.viewer.layers.selection.active = active
+        if made:
+            keep_for_good(self.viewer)
+        # the receiving channel's layer now (it is shown); the hidden ones a few per turn of the
+        # event loop, so the window keeps answering (each data swap costs ~15 ms)
+        receiver = self.receiver.currentText()
+        swaps.sort(key=lambda job: job[0] != receiver)
+        for _channel, layer, data, kwargs in swaps[:1]:
+            swap_layer(layer, data, kwargs)
+        self._swaps = swaps[1:]
+        if self._swaps:
+            self._swap_timer.start()
         self.compensated = (roi, used)
         self._fitted = False
         self._show_receiver()
         self.say(f"{roi.name}: {len(used)} compensated layers (receiving channel shown beside raw)")
+
+    def _swap_some(self) -> None:
+        """Swap the next few compensated layers' pixels (see :meth:`_show_compensated`)."""
+        batch, self._swaps = self._swaps[:SWAPS_PER_TURN], self._swaps[SWAPS_PER_TURN:]
+        for _channel, layer, data, kwargs in batch:
+            swap_layer(layer, data, kwargs)
+        if self._swaps:
+            self._swap_timer.start()
+
+    def busy(self) -> bool:
+        return super().busy() or bool(self._swaps)
 
     def _show_receiver(self):
         """Side by side: the chosen receiving channel raw, and compensated; everything else hidden."""
@@ -508,6 +540,9 @@ class SpilloverWidget(StudioWidget):
             return
         if receiver not in roi.channels:
             return
+        for job in [job for job in self._swaps if job[0] == receiver]:  # shown: its pixels now
+            self._swaps.remove(job)
+            swap_layer(*job[1:])
         grid_of(self.viewer).enabled = False
         with self.viewer.layers.batched_update():  # one scene-graph update, not one per layer
             for layer in studio_layers(self.viewer):
