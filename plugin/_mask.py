@@ -1,8 +1,8 @@
 """The tissue mask of the current ROI as a toggleable outline layer.
 
 The mask is the engine's (:func:`plexwash.qc.background.tissue_mask`, the one the
-background model of every step uses), computed in a worker over the channels the panel
-marks ``use``; the GUI thread only swaps the result into one kept Labels layer.
+background model of every step uses), computed in a worker over the channels the stain sheet
+marks ``wash``; the GUI thread only swaps the result into one kept Labels layer.
 """
 
 from __future__ import annotations

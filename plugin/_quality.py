@@ -25,7 +25,7 @@ from ._common import ACCENT, WARN, StudioWidget, qcolor, style_axes
 from ._preview import LatestOnly
 
 #: Table columns: (row key, header, number format or None for text). The flags come early so
-#: that a narrow dock shows them; "#" is the panel position (sort by it to get panel order).
+#: that a narrow dock shows them; "#" is the stain sheet position (sort by it to get stains order).
 COLUMNS = (
     ("position", "#", "{:d}"),
     ("channel", "channel", None),
@@ -59,7 +59,7 @@ BOTH_COLUMNS = (COLUMNS[0], COLUMNS[1], COLUMNS[2]) + tuple(
 def side_by_side(raw_rows: list[dict], washed_rows: list[dict]) -> list[dict]:
     """One row per channel with the raw and the washed metrics (``raw sbr``, ``washed sbr`` ...).
 
-    Rows are matched by channel, in the raw rows' (panel) order; a channel missing from one
+    Rows are matched by channel, in the raw rows' (stains) order; a channel missing from one
     stage has empty cells there. ``flags`` and ``sbr`` are the washed ones when present (what
     the plot colours), else the raw ones.
 
@@ -388,7 +388,7 @@ class QualityWidget(StudioWidget):
     # ------------------------------------------------------------------ display
 
     def show_rows(self, rows: list[dict]) -> None:
-        """Fill the table (in panel order) and the plot with quality rows (side-by-side rows,
+        """Fill the table (in stains order) and the plot with quality rows (side-by-side rows,
         from :func:`side_by_side`, get a raw and a washed column per metric)."""
         self.rows = list(rows)
         both = bool(rows) and "washed sbr" in rows[0]
@@ -420,7 +420,7 @@ class QualityWidget(StudioWidget):
                 item.setData(Qt.ItemDataRole.UserRole, row["channel"])
                 self.table.setItem(r, c, item)
         self.table.setSortingEnabled(True)
-        self.table.sortItems(0, Qt.SortOrder.AscendingOrder)  # panel order, as the plot
+        self.table.sortItems(0, Qt.SortOrder.AscendingOrder)  # stains order, as the plot
         self.table.resizeColumnsToContents()
         self.table.setUpdatesEnabled(True)
         flag_columns = [c for c, (key, _h, _f) in enumerate(columns) if key.endswith("flags")]

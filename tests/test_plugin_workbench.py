@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from plexwash.plugin._reader import read_with_panel
+from plexwash.plugin._reader import read_with_stains
 from plexwash.qc.io import list_cohort
 
 from . import test_plugin_widgets as widgets
@@ -50,7 +50,7 @@ def test_side_by_side_pairs_each_metric():
     washed = [{"channel": "B", "label": "b", "sbr": 6.0, "snr": 4.0, "flags": []},
               {"channel": "A", "label": "a", "sbr": 3.0, "snr": 2.0, "flags": []}]
     rows = side_by_side(raw, washed)
-    assert [r["channel"] for r in rows] == ["A", "B"]  # the raw (panel) order
+    assert [r["channel"] for r in rows] == ["A", "B"]  # the raw (stains) order
     assert (rows[0]["raw sbr"], rows[0]["washed sbr"]) == (2.0, 3.0)
     assert (rows[0]["raw flags"], rows[0]["washed flags"]) == (["empty"], [])
     keys = [c[0] for c in BOTH_COLUMNS]
@@ -108,7 +108,7 @@ def test_quality_shows_raw_and_washed_side_by_side(make_napari_viewer, qtbot, co
     viewer = make_napari_viewer()
     quality = dock(viewer, "Quality")
     open_first_roi(qtbot, viewer, cohort)
-    roi = read_with_panel(list_cohort(cohort / "cohort")[0])
+    roi = read_with_stains(list_cohort(cohort / "cohort")[0])
     quality.stage.setCurrentIndex(SOURCES.index(("both", "measure", SOURCES[4][2])))
     wait(qtbot, quality.measure())
     assert quality.shown == ("both", "measure")
