@@ -113,7 +113,8 @@ def _give_cohort_room(main, cohort_dock) -> None:
     if not left:
         return
     height = max(main.height(), 900)
-    share = [int(height * 0.22)] * len(left)
+    # the layer list gets room for about eight rows; the Cohort widget scrolls when short
+    share = [int(height * 0.25)] * len(left)
     main.resizeDocks(left + [cohort_dock], share + [height - sum(share)], Qt.Orientation.Vertical)
 
 

@@ -10,6 +10,7 @@ from qtpy.QtCore import Qt
 from qtpy.QtWidgets import (
     QAbstractItemView,
     QButtonGroup,
+    QCheckBox,
     QComboBox,
     QDoubleSpinBox,
     QHBoxLayout,
@@ -42,6 +43,7 @@ from ._layers import (
     studio_layers,
     tile_origins,
 )
+from ._mask import hide_tissue, outline_tissue, roi_tissue, tissue_share
 from ._quality import measure_rows
 from ._reader import read_with_stains
 
@@ -168,7 +170,10 @@ class CohortWidget(StudioWidget):
         header.setSectionResizeMode(0, QHeaderView.ResizeMode.ResizeToContents)
         header.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
         header.setSectionResizeMode(2, QHeaderView.ResizeMode.Stretch)
-        self.table.setMinimumHeight(84)
+        row_height = self.fontMetrics().height() + 8
+        self.table.verticalHeader().setDefaultSectionSize(row_height)
+        # the dock scrolls rather than squeezing the lists: at least 5 ROIs and 10 channels show
+        self.table.setMinimumHeight(6 * row_height + 4)
         self.table.cellClicked.connect(lambda row, _col: self.load(row))
         layout.addWidget(self.table, 1)
 
@@ -178,7 +183,7 @@ class CohortWidget(StudioWidget):
         self.channels.setToolTip("click: tune this channel · tick: include it in the overlay")
         self.channels.currentItemChanged.connect(self._channel_clicked)
         self.channels.itemChanged.connect(self._channel_ticked)
-        self.channels.setMinimumHeight(96)
+        self.channels.setMinimumHeight(10 * row_height)
         layout.addWidget(self.channels, 2)
 
         views = QHBoxLayout()
@@ -207,6 +212,11 @@ class CohortWidget(StudioWidget):
         self.look.setToolTip("hues: one per marker · grey or one hue: judge single channels alike")
         self.look.currentTextChanged.connect(lambda _t: self.set_view(self.view))
         look_row.addWidget(self.look, 1)
+        self.tissue = QCheckBox("tissue")
+        self.tissue.setObjectName("show_tissue")
+        self.tissue.setToolTip("outline the tissue mask the cleaning steps use (glass left out)")
+        self.tissue.toggled.connect(lambda on: self.show_tissue() if on else hide_tissue(self.viewer))
+        look_row.addWidget(self.tissue)
         layout.addLayout(look_row)
 
         contrast = QHBoxLayout()
@@ -371,6 +381,22 @@ class CohortWidget(StudioWidget):
         self._framing = None  # a new ROI: fit it
         self.set_view(self.view)
         self.say(f"{roi.name}: {len(roi.channels)} channels, {roi.shape[1]} x {roi.shape[2]} px")
+        if self.tissue.isChecked():
+            self.show_tissue()
+
+    def show_tissue(self):
+        """Compute the current ROI's tissue mask in a worker and outline it; returns the worker."""
+        roi = self.state.roi
+        if roi is None:
+            return None
+
+        def shown(mask):
+            if roi is not self.state.roi or not self.tissue.isChecked():
+                return  # another ROI meanwhile, or the box was unticked
+            outline_tissue(self.viewer, mask, scale=roi.pixel_size)
+            self.say(f"{roi.name}: tissue covers {100 * tissue_share(mask):.3g} % of the ROI")
+
+        return self.start(thread_worker(roi_tissue)(roi), on_return=shown)
 
     def _fill_channels(self, roi):
         self.channels.blockSignals(True)
@@ -460,8 +486,8 @@ class CohortWidget(StudioWidget):
                 show, origin = False, tuple(layer.translate)
             plan.append((layer, show, origin))
         changes = sum(layer.visible != show for layer, show, _ in plan)
-        # many layers shown or hidden: one scene-graph update at the end, not one per layer
-        batch = self.viewer.layers.batched_update() if changes > 2 else contextlib.nullcontext()
+        # layers shown or hidden: one scene-graph update (and draw) at the end, not one per layer
+        batch = self.viewer.layers.batched_update() if changes > 1 else contextlib.nullcontext()
         with batch:
             for layer, show, origin in plan:
                 if layer.visible != show:

@@ -17,6 +17,7 @@ from qtpy.QtWidgets import (
     QLabel,
     QLineEdit,
     QPushButton,
+    QScrollArea,
     QSpinBox,
     QVBoxLayout,
     QWidget,
@@ -30,16 +31,34 @@ WARN = "#ffb454"
 
 
 class StudioWidget(QWidget):
-    """Base of the dock widgets: the viewer, the shared state, a caption style and a status line."""
+    """Base of the dock widgets: the viewer, the shared state, a caption style and a status line.
+
+    The widget's content scrolls (a dock shorter than its content shows a scroll bar instead
+    of squeezing lists to a few rows); the status line stays below it, always visible.
+    :meth:`layout` is the content's layout.
+    """
 
     def __init__(self, napari_viewer, parent=None):
         super().__init__(parent)
         self.viewer = napari_viewer
         self.state = studio_state(napari_viewer)
         self._workers = set()
-        self.setLayout(QVBoxLayout())
-        self.layout().setContentsMargins(6, 6, 6, 6)
-        self.layout().setSpacing(6)
+        outer = QVBoxLayout(self)
+        outer.setContentsMargins(0, 0, 0, 0)
+        outer.setSpacing(2)
+        self.body = QWidget()
+        self.body.setObjectName("plexwash_body")
+        self._body_layout = QVBoxLayout(self.body)
+        self._body_layout.setContentsMargins(6, 6, 6, 6)
+        self._body_layout.setSpacing(6)
+        self.scroll = QScrollArea()
+        self.scroll.setObjectName("plexwash_scroll")
+        self.scroll.setWidgetResizable(True)
+        self.scroll.setFrameShape(QScrollArea.Shape.NoFrame)
+        self.scroll.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        self.scroll.setWidget(self.body)
+        outer.addWidget(self.scroll, 1)
+        self._outer = outer
         self.status = QLabel("")
         self.status.setWordWrap(True)
         self.status.setObjectName("plexwash_status")
@@ -50,10 +69,14 @@ class StudioWidget(QWidget):
         label.setStyleSheet(f"color: {ACCENT}; font-weight: bold; letter-spacing: 1px;")
         return label
 
+    def layout(self):  # the scrolled content's layout (where subclasses add their rows)
+        return self._body_layout
+
     def finish_layout(self) -> None:
-        """Call last in ``__init__``: puts the status line at the bottom."""
+        """Call last in ``__init__``: puts the status line at the bottom, outside the scroll."""
         self.layout().addStretch(1)
-        self.layout().addWidget(self.status)
+        self.status.setContentsMargins(6, 0, 6, 4)
+        self._outer.addWidget(self.status)
 
     def say(self, text: str, *, warn: bool = False) -> None:
         self.status.setStyleSheet(f"color: {WARN};" if warn else "")

@@ -8,18 +8,21 @@ from pathlib import Path
 
 import numpy as np
 from napari.qt.threading import thread_worker
-from qtpy.QtCore import Qt
+from qtpy.QtCore import Qt, QTimer
 from qtpy.QtWidgets import (
     QAbstractItemView,
     QComboBox,
     QHBoxLayout,
     QHeaderView,
+    QLabel,
     QPushButton,
+    QSizePolicy,
     QTableWidget,
     QTableWidgetItem,
 )
 
-from ._common import ACCENT, WARN, StudioWidget, qcolor, small_figure, style_axes
+from ._common import ACCENT, WARN, StudioWidget, qcolor, style_axes
+from ._preview import LatestOnly
 
 #: Table columns: (row key, header, number format or None for text). The flags come early so
 #: that a narrow dock shows them; "#" is the stain sheet position (sort by it to get stains order).
@@ -41,8 +44,47 @@ SOURCES = (
     ("washed", "measure", "washed (current recipe)"),
     ("raw", "run", "raw (run's quality.csv)"),
     ("washed", "run", "washed (run's quality.csv)"),
+    ("both", "measure", "raw | washed side by side (current recipe)"),
+    ("both", "run", "raw | washed side by side (run's quality.csv)"),
 )
 STAGES = ("raw", "washed")
+#: Keys shown twice, raw then washed, when both stages are side by side.
+PAIRED = ("flags", "sbr", "snr", "foreground_fraction", "saturated_fraction", "spikes")
+#: Columns of the side-by-side table: each paired key as ``raw <key>`` and ``washed <key>``.
+BOTH_COLUMNS = (COLUMNS[0], COLUMNS[1], COLUMNS[2]) + tuple(
+    (f"{stage} {key}", f"{stage[0]}·{header}", fmt)
+    for key, header, fmt in COLUMNS if key in PAIRED for stage in STAGES)
+
+
+def side_by_side(raw_rows: list[dict], washed_rows: list[dict]) -> list[dict]:
+    """One row per channel with the raw and the washed metrics (``raw sbr``, ``washed sbr`` ...).
+
+    Rows are matched by channel, in the raw rows' (stains) order; a channel missing from one
+    stage has empty cells there. ``flags`` and ``sbr`` are the washed ones when present (what
+    the plot colours), else the raw ones.
+
+    Examples
+    --------
+    >>> both = side_by_side([{"channel": "A", "sbr": 2.0, "flags": ["empty"]}],
+    ...                     [{"channel": "A", "sbr": 3.0, "flags": []}])
+    >>> both[0]["raw sbr"], both[0]["washed sbr"], both[0]["raw flags"], both[0]["flags"]
+    (2.0, 3.0, ['empty'], [])
+    """
+    washed = {row["channel"]: row for row in washed_rows}
+    order = [row["channel"] for row in raw_rows] + [c for c in washed if c not in
+                                                     {row["channel"] for row in raw_rows}]
+    raw = {row["channel"]: row for row in raw_rows}
+    out = []
+    for channel in order:
+        pair = {"raw": raw.get(channel, {}), "washed": washed.get(channel, {})}
+        either = pair["washed"] or pair["raw"]
+        row = {"channel": channel, "label": either.get("label"), "flags": either.get("flags", []),
+               "sbr": either.get("sbr", float("nan"))}
+        for stage, source in pair.items():
+            for key in PAIRED:
+                row[f"{stage} {key}"] = source.get(key)
+        out.append(row)
+    return out
 
 
 def measure_rows(roi, recipe, *, stage: str = "raw", data=None, spillover=None) -> list[dict]:
@@ -85,6 +127,59 @@ def cell_text(value, fmt) -> str:
     return fmt.format(value)
 
 
+#: Height of the SBR chart in pixels.
+PLOT_HEIGHT = 190
+
+
+def sbr_chart(rows: list[dict], low_sbr: float, width: int, height: int):
+    """The SBR-by-channel bar chart of quality rows, rendered off screen (any thread).
+
+    One bar per channel (side-by-side rows: a grey raw bar left of the washed one), flagged
+    channels in the warning colour, a dashed line at the low-SBR threshold, log scale.
+    Returns ``(figure, rgba)``: the matplotlib figure and its pixels, ``(height, width, 4)``
+    uint8.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    figure = Figure(figsize=(width / 100, height / 100), dpi=100, facecolor="#1e2228")
+    FigureCanvasAgg(figure)
+    ax = figure.add_subplot(111)
+    style_axes(ax)
+    if rows:
+        x = np.arange(len(rows))
+        if "washed sbr" in rows[0]:  # side by side: raw bars (grey) left of washed ones
+            raw = np.array([_bar_height(r.get("raw sbr")) for r in rows])
+            ax.bar(x - 0.2, raw, color=RAW_BAR, width=0.4, label="raw")
+            washed = np.array([_bar_height(r.get("washed sbr")) for r in rows])
+            colours = [WARN if r.get("washed flags") else ACCENT for r in rows]
+            ax.bar(x + 0.2, washed, color=colours, width=0.4, label="washed")
+        else:
+            sbr = np.array([_bar_height(r["sbr"]) for r in rows])
+            colours = [WARN if r["flags"] else ACCENT for r in rows]
+            ax.bar(x, sbr, color=colours, width=0.8)
+        ax.set_yscale("log")
+        ax.axhline(low_sbr, color="#cfd6dd", lw=0.8, ls=(0, (4, 3)))
+        ax.set_xticks(x)
+        ax.set_xticklabels([r.get("label") or r["channel"] for r in rows], rotation=90, fontsize=6)
+        ax.set_xlim(-0.6, len(rows) - 0.4)
+    # fixed margins: tight_layout would measure every label
+    figure.subplots_adjust(left=0.12, right=0.98, top=0.95, bottom=0.38)
+    figure.canvas.draw()
+    return figure, np.asarray(figure.canvas.buffer_rgba()).copy()
+
+
+#: Colour of the raw bars beside the washed ones.
+RAW_BAR = "#6b7682"
+
+
+def _bar_height(sbr) -> float:
+    """An SBR as a bar on a log axis (missing or infinite: no bar)."""
+    if sbr is None or not math.isfinite(float(sbr)):
+        return float("nan")
+    return max(float(sbr), 1e-3)
+
+
 class _NumberItem(QTableWidgetItem):
     """A cell that sorts by its number, not its text."""
 
@@ -104,6 +199,12 @@ class QualityWidget(StudioWidget):
     def __init__(self, napari_viewer, parent=None):
         super().__init__(napari_viewer, parent)
         self.rows: list[dict] = []
+        self._plot_soon = QTimer(self)  # coalesced: one chart for a burst of fills
+        self._plot_soon.setSingleShot(True)
+        self._plot_soon.setInterval(0)
+        self._plot_soon.timeout.connect(self._plot)
+        self.columns = COLUMNS
+        self._headers = [c[1] for c in COLUMNS]
         self.shown: tuple[str, str] | None = None  # (stage, source) of the rows in the table
         self._quiet = False
         layout = self.layout()
@@ -131,7 +232,9 @@ class QualityWidget(StudioWidget):
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.table.verticalHeader().setVisible(False)
         self.table.verticalHeader().setDefaultSectionSize(self.fontMetrics().height() + 6)  # compact rows
-        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        # columns are sized once per fill (resizeColumnsToContents): a ResizeToContents header
+        # measures every cell again after each cell set, seconds for a 40-channel table
+        self.table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.Interactive)
         self.table.horizontalHeader().setStretchLastSection(True)
         self.table.setSortingEnabled(True)
         self.table.itemSelectionChanged.connect(self._row_chosen)
@@ -139,8 +242,14 @@ class QualityWidget(StudioWidget):
         layout.addWidget(self.table, 2)
 
         layout.addWidget(self.caption("SBR by channel"))
-        self.figure, self.canvas = small_figure()
-        layout.addWidget(self.canvas, 1)
+        self.figure = sbr_chart([], 1.0, 320, PLOT_HEIGHT)[0]
+        self.plot_view = QLabel()
+        self.plot_view.setObjectName("sbr_plot")
+        self.plot_view.setMinimumHeight(PLOT_HEIGHT)
+        self.plot_view.setMinimumWidth(120)
+        self.plot_view.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+        self.plotter = LatestOnly(lambda args: sbr_chart(*args), self._plotted, parent=self)
+        layout.addWidget(self.plot_view)
         self.finish_layout()
 
         self.state.roi_changed.connect(self._roi_changed)
@@ -181,15 +290,25 @@ class QualityWidget(StudioWidget):
         def job():
             if stage == "raw":
                 return stage, measure_rows(roi, recipe, spillover=spillover)
+            from plexwash.qc.quality import measure_roi
             from plexwash.qc.wash import compute, wash
 
             washed = compute(wash(roi, recipe, spillover=spillover))
-            return stage, measure_rows(roi, recipe, stage="washed", data=washed.data, spillover=spillover)
+            # one engine call measures both stages, the washed one against the raw reference
+            measured = measure_roi(roi, recipe, spillover=spillover, washed=washed.data,
+                                   threads=os.cpu_count() or 1)
+            if stage == "both":
+                return stage, side_by_side(measured.raw_rows, measured.washed_rows)
+            return stage, measured.washed_rows
 
         return self.start(job(), on_return=lambda result: self._show(roi, *result))
 
     def _show_run(self, roi, stage) -> None:
-        rows = self.run_rows(roi.name, stage)
+        if stage == "both":
+            raw, washed = self.run_rows(roi.name, "raw"), self.run_rows(roi.name, "washed")
+            rows = None if raw is None and washed is None else side_by_side(raw or [], washed or [])
+        else:
+            rows = self.run_rows(roi.name, stage)
         if rows is None:
             self.say(f"the run's quality.csv has no {stage} rows of {roi.name}", warn=True)
             self.show_rows([])
@@ -200,7 +319,9 @@ class QualityWidget(StudioWidget):
         """Offer the run's entries only for an ROI the run measured."""
         model = self.stage.model()
         for i, (stage, source, _text) in enumerate(SOURCES):
-            enabled = source == "measure" or (roi is not None and self.run_rows(roi.name, stage) is not None)
+            stages = STAGES if stage == "both" else (stage,)
+            enabled = source == "measure" or (roi is not None and any(
+                self.run_rows(roi.name, st) is not None for st in stages))
             model.item(i).setEnabled(enabled)
 
     def _source_chosen(self, _index) -> None:
@@ -254,20 +375,38 @@ class QualityWidget(StudioWidget):
             self.state.quality.setdefault(roi.name, rows)
         self.shown = (stage, source)
         self.show_rows(rows)
-        flagged = sum(1 for r in rows if r["flags"])
         where = " from the run's quality.csv" if source == "run" else ""
+        if stage == "both":
+            raw = sum(1 for r in rows if r.get("raw flags"))
+            washed = sum(1 for r in rows if r.get("washed flags"))
+            self.say(f"{roi.name} (raw | washed{where}): {len(rows)} channels, "
+                     f"{raw} flagged raw, {washed} flagged washed")
+            return
+        flagged = sum(1 for r in rows if r["flags"])
         self.say(f"{roi.name} ({stage}{where}): {len(rows)} channels, {flagged} flagged")
 
     # ------------------------------------------------------------------ display
 
     def show_rows(self, rows: list[dict]) -> None:
-        """Fill the table (in stains order) and the plot with quality rows."""
+        """Fill the table (in stains order) and the plot with quality rows (side-by-side rows,
+        from :func:`side_by_side`, get a raw and a washed column per metric)."""
         self.rows = list(rows)
+        both = bool(rows) and "washed sbr" in rows[0]
+        columns = BOTH_COLUMNS if both else COLUMNS
+        self.columns = columns
         self.table.setSortingEnabled(False)
+        self.table.setUpdatesEnabled(False)  # one repaint for the whole table
         self.table.clearContents()
+        if self.table.columnCount() != len(columns) or self._headers != [c[1] for c in columns]:
+            self._headers = [c[1] for c in columns]
+            self.table.setColumnCount(len(columns))
+            self.table.setHorizontalHeaderLabels(self._headers)
+            for c, (key, _h, _f) in enumerate(columns):
+                stage = key.split(" ")[0] if " " in key else ""
+                self.table.horizontalHeaderItem(c).setToolTip(f"{stage} stage" if stage else "")
         self.table.setRowCount(len(rows))
         for r, row in enumerate(rows):
-            for c, (key, _, fmt) in enumerate(COLUMNS):
+            for c, (key, _, fmt) in enumerate(columns):
                 value = r if key == "position" else row.get(key)
                 text = cell_text(value, fmt)
                 if fmt is not None and value is not None and not isinstance(value, str):
@@ -275,39 +414,39 @@ class QualityWidget(StudioWidget):
                     item.setTextAlignment(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
                 else:
                     item = QTableWidgetItem(text)
-                if key == "flags" and value:
+                if key.endswith("flags") and value:
                     item.setForeground(qcolor(WARN))
                     item.setToolTip(text)
                 item.setData(Qt.ItemDataRole.UserRole, row["channel"])
                 self.table.setItem(r, c, item)
         self.table.setSortingEnabled(True)
         self.table.sortItems(0, Qt.SortOrder.AscendingOrder)  # stains order, as the plot
-        flags = [c[0] for c in COLUMNS].index("flags")
-        flagged = [r for r in range(len(rows)) if self.table.item(r, flags).text()]
+        self.table.resizeColumnsToContents()
+        self.table.setUpdatesEnabled(True)
+        flag_columns = [c for c, (key, _h, _f) in enumerate(columns) if key.endswith("flags")]
+        flagged = [r for r in range(len(rows)) if any(self.table.item(r, c).text() for c in flag_columns)]
         if flagged:  # bring the first flagged channel into view (its row; the columns from the left)
             self.table.scrollToItem(self.table.item(flagged[0], 0), QAbstractItemView.ScrollHint.PositionAtCenter)
-        self._plot()
+        self._plot_soon.start()  # the plot in its own turn of the event loop
 
     def _plot(self):
-        ax = self.figure.axes[0]
-        ax.clear()
-        style_axes(ax)
-        if self.rows:
-            sbr = np.array([max(float(r["sbr"]), 1e-3) if math.isfinite(r["sbr"]) else np.nan
-                            for r in self.rows])
-            colours = [WARN if r["flags"] else ACCENT for r in self.rows]
-            x = np.arange(len(self.rows))
-            ax.bar(x, sbr, color=colours, width=0.8)
-            ax.set_yscale("log")
-            low_sbr = self.state.recipe.quality.low_sbr
-            ax.axhline(low_sbr, color="#cfd6dd", lw=0.8, ls=(0, (4, 3)))
-            ax.set_xticks(x)
-            ax.set_xticklabels([r.get("label") or r["channel"] for r in self.rows], rotation=90,
-                               fontsize=6)
-            ax.set_xlim(-0.6, len(self.rows) - 0.4)
-        # fixed margins: tight_layout measures every label (a few hundred ms on the GUI thread)
-        self.figure.subplots_adjust(left=0.12, right=0.98, top=0.95, bottom=0.38)
-        self.canvas.draw_idle()
+        """Render the SBR chart in the background (matplotlib's layout and drawing take tenths
+        of a second for 40 channels); the GUI thread only shows the finished picture."""
+        width = max(self.plot_view.width(), 240)
+        height = max(self.plot_view.height(), PLOT_HEIGHT)
+        self.plotter.request((list(self.rows), self.state.recipe.quality.low_sbr, width, height))
+
+    def _plotted(self, result) -> None:
+        from qtpy.QtGui import QImage, QPixmap
+
+        figure, rgba = result
+        self.figure = figure
+        height, width = rgba.shape[:2]
+        image = QImage(rgba.data, width, height, 4 * width, QImage.Format.Format_RGBA8888)
+        self.plot_view.setPixmap(QPixmap.fromImage(image.copy()))
+
+    def busy(self) -> bool:
+        return super().busy() or not self.plotter.idle or self._plot_soon.isActive()
 
     def _row_chosen(self):
         items = self.table.selectedItems()

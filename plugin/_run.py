@@ -7,11 +7,12 @@ import threading
 from pathlib import Path
 
 from napari.qt.threading import thread_worker
-from qtpy.QtCore import QTimer
+from qtpy.QtCore import QTimer, QUrl
 from qtpy.QtWidgets import (
     QButtonGroup,
     QHBoxLayout,
     QLabel,
+    QProgressBar,
     QPushButton,
     QRadioButton,
     QSpinBox,
@@ -102,6 +103,31 @@ def _async_raise(thread_id: int, exc_type) -> None:
     ctypes.pythonapi.PyThreadState_SetAsyncExc(ctypes.c_ulong(thread_id), target)
 
 
+def suggested_output(cohort) -> Path:
+    """The output folder offered for a cohort: ``<cohort>_washed`` beside it (never inside it).
+
+    Examples
+    --------
+    >>> suggested_output("/data/cohort").as_posix()
+    '/data/cohort_washed'
+    """
+    cohort = Path(cohort)
+    return cohort.parent / f"{cohort.name}_washed"
+
+
+def progress_line(roi: str, status: str, counts: dict, total: int) -> str:
+    """The Run widget's progress line.
+
+    Examples
+    --------
+    >>> progress_line("roi_02", "done", {"done": 2, "failed": 0}, 3)
+    '2 of 3 ROIs (2 done, 0 failed) · last: roi_02 done'
+    """
+    finished = counts["done"] + counts["failed"]
+    return (f"{finished} of {total} ROIs ({counts['done']} done, {counts['failed']} failed)"
+            f" · last: {roi} {status}")
+
+
 class RunWidget(StudioWidget):
     """Pick cohort, output folder and recipe; wash every ROI in the background; cancel."""
 
@@ -112,6 +138,10 @@ class RunWidget(StudioWidget):
         self._bar = None
         self._ledger_start = 0
         self._done_shown = 0
+        self._total = 0
+        #: True once the user chose the output folder: it then no longer follows the cohort.
+        self.output_chosen = False
+        self.report_path: Path | None = None
         self._poll = QTimer(self)
         self._poll.setInterval(POLL_MS)
         self._poll.timeout.connect(self._update_progress)
@@ -122,6 +152,7 @@ class RunWidget(StudioWidget):
         layout.addWidget(self.cohort)
         layout.addWidget(self.caption("Output"))
         self.output = PathRow("run output folder (rerun into it to resume)", folder=True)
+        self.output.changed.connect(self._output_edited)
         layout.addWidget(self.output)
 
         layout.addWidget(self.caption("Recipe"))
@@ -159,6 +190,24 @@ class RunWidget(StudioWidget):
         buttons.addWidget(self.run_button)
         buttons.addWidget(self.cancel_button)
         layout.addLayout(buttons)
+
+        layout.addWidget(self.caption("Progress"))
+        self.bar = QProgressBar()
+        self.bar.setObjectName("run_progress")
+        self.bar.setRange(0, 1)
+        self.bar.setValue(0)
+        self.bar.setFormat("%v / %m ROIs")
+        layout.addWidget(self.bar)
+        self.progress_text = QLabel("no run yet")
+        self.progress_text.setObjectName("run_progress_text")
+        self.progress_text.setWordWrap(True)
+        layout.addWidget(self.progress_text)
+        self.report_button = QPushButton("Open the report")
+        self.report_button.setObjectName("report_button")
+        self.report_button.setToolTip("the run's report.html in the web browser")
+        self.report_button.setEnabled(False)
+        self.report_button.clicked.connect(self.open_report)
+        layout.addWidget(self.report_button)
         self.finish_layout()
 
         self.state.cohort_changed.connect(self._cohort_changed)
@@ -169,8 +218,15 @@ class RunWidget(StudioWidget):
 
     def _cohort_changed(self, folder):
         self.cohort.set_path(folder)
-        if self.output.path() is None and folder is not None:
-            self.output.set_path(Path(folder).parent / f"{Path(folder).name}_washed")
+        if folder is not None and not self.output_chosen:
+            self.output.set_path(suggested_output(folder))
+
+    def _output_edited(self, text: str) -> None:
+        """The user typed or browsed an output folder: keep it whatever the Cohort widget opens
+        (cleared: follow the cohort again)."""
+        self.output_chosen = bool(text.strip())
+        if not self.output_chosen and self.cohort.path() is not None:
+            self.output.set_path(suggested_output(self.cohort.path()))
 
     def _spill_text(self):
         matrix = self.state.spillover
@@ -185,6 +241,7 @@ class RunWidget(StudioWidget):
         """Start the run in the background; returns the worker (None when inputs are missing)."""
         from plexwash.qc import load_recipe
         from plexwash.qc.errors import InputError
+        from plexwash.qc.files import check_output_folder
         from plexwash.qc.io import list_cohort
         from plexwash.qc.run import read_ledger, run_cohort
 
@@ -197,6 +254,8 @@ class RunWidget(StudioWidget):
             return None
         try:
             rois = list_cohort(cohort)
+            # the engine's guard: never the cohort itself, inside it, or over any of its inputs
+            check_output_folder(out, [cohort, *rois, *self.state.inputs()], ())
             recipe = self.state.recipe if self.use_studio.isChecked() else load_recipe(self.recipe_file.path())
         except InputError as exc:
             self.fail(exc)
@@ -206,8 +265,9 @@ class RunWidget(StudioWidget):
         spillover = self.state.spillover
         call = CancellableCall()
         self.call = call
-        self._ledger_start = len(read_ledger(out))
+        self._ledger_start = len(read_ledger(out)) if out.is_dir() else 0
         self._done_shown = 0
+        self._counts = {"done": 0, "failed": 0}
         self._open_bar(len(rois))
 
         @thread_worker
@@ -235,6 +295,12 @@ class RunWidget(StudioWidget):
 
         self._close_bar()
         self._bar = progress(total=total, desc="plexwash run")
+        self._total = total
+        self.bar.setRange(0, max(1, total))
+        self.bar.setValue(0)
+        self.report_path = None
+        self.report_button.setEnabled(False)
+        self.progress_text.setText(f"0 of {total} ROIs: starting…")
 
     def _close_bar(self):
         if self._bar is not None:
@@ -250,8 +316,13 @@ class RunWidget(StudioWidget):
         records = read_ledger(out)[self._ledger_start:]
         new = len(records) - self._done_shown
         if new > 0:
+            for record in records[self._done_shown:]:
+                key = "failed" if record["status"] == "failed" else "done"
+                self._counts[key] += 1
             self._done_shown = len(records)
             last = records[-1]
+            self.bar.setValue(min(self._total, len(records)))
+            self.progress_text.setText(progress_line(last["roi"], last["status"], self._counts, self._total))
             bar.set_description(f"plexwash run: {last['roi']} {last['status']}")
             bar.update(new)  # may process events (and so close the bar): keep it last
 
@@ -266,10 +337,26 @@ class RunWidget(StudioWidget):
         if result.failed:
             text += f" ({', '.join(result.failed_rois)}; see ledger.jsonl)"
         self.say(text, warn=bool(result.failed))
+        self.bar.setValue(self.bar.maximum())
+        self.progress_text.setText(f"{text} in {result.seconds:.1f} s")
+        self.report_path = Path(result.report) if result.report is not None else None
+        if self.report_path is not None and self.report_path.is_file():
+            self.report_button.setEnabled(True)
+            self.report_button.setToolTip(str(self.report_path))
         self.state.run_finished.emit(result)
 
     def _errored(self, exc):
         self.fail(exc)
+        self.progress_text.setText(f"run stopped: {exc}")
+
+    def open_report(self) -> bool:
+        """Open the last run's report in the web browser; False when there is none."""
+        from qtpy.QtGui import QDesktopServices
+
+        if self.report_path is None or not self.report_path.is_file():
+            self.say("no report yet: run the cohort first", warn=True)
+            return False
+        return bool(QDesktopServices.openUrl(QUrl.fromLocalFile(str(self.report_path))))
 
     def _finished(self):
         self._poll.stop()

@@ -23,7 +23,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._common import PathRow, SettingsForm, StudioWidget
-from ._layers import TILE_GAP, channel_layer, roi_extent, studio_layers, swap_layer
+from ._layers import TILE_GAP, channel_layer, keep_for_good, roi_extent, studio_layers, swap_layer
 from ._preview import LatestOnly
 
 
@@ -455,6 +455,7 @@ class SpeckleWidget(StudioWidget):
             self.viewer.layers.extend(made)
             if active is not None:  # the raw channel stays the active layer (contrast controls)
                 self.viewer.layers.selection.active = active
+            keep_for_good(self.viewer)
         self._show_fractions(result)
         self.state.preview_shown.emit()  # the Preview view shows and labels them
 

@@ -7,6 +7,7 @@ from pathlib import Path
 
 import numpy as np
 from napari.qt.threading import thread_worker
+from qtpy.QtCore import QTimer
 from qtpy.QtWidgets import (
     QCheckBox,
     QComboBox,
@@ -15,15 +16,57 @@ from qtpy.QtWidgets import (
     QHBoxLayout,
     QLabel,
     QPushButton,
+    QScrollArea,
 )
 
 from ._common import PathRow, StudioWidget, small_figure, style_axes
-from ._layers import channel_layer, find_stains, fit_visible, grid_of, robust_limits, studio_layers
+from ._layers import (
+    channel_layer,
+    find_stains,
+    fit_visible,
+    grid_of,
+    keep_for_good,
+    robust_limits,
+    studio_layers,
+    swap_layer,
+)
 
 #: What the heatmap can show.
 HEATMAP_VIEWS = ("spillover %", "interval width %")
-#: Heatmap colours: the studio's own ramp, dark slate through teal to pale straw.
-HEATMAP_COLOURS = ("#1e2228", "#1f4f5a", "#2f8f84", "#8fd6a0", "#f4f1bb")
+#: Heatmap colours: the studio's own ramp, deep blue-teal (0 %) through teal to pale straw.
+#: Zero is a colour of its own, never the figure's background (FIGURE_BACKGROUND).
+HEATMAP_COLOURS = ("#173e5c", "#1f6f7a", "#2f9f84", "#9fdc9a", "#f4f1bb")
+#: The figure behind the heatmap, and the blanked diagonal.
+FIGURE_BACKGROUND = "#1e2228"
+DIAGONAL = "#3a4048"
+
+
+def heatmap_layout(n: int, width_px: int, longest_label: int) -> dict:
+    """Pixel sizes of the heatmap for ``n`` channels in a dock ``width_px`` wide.
+
+    Cells fill the width, between 12 and 24 px (below 12 px the canvas grows wider than
+    the dock and scrolls); label text follows the cell (5.5 to 8 points); the figure is
+    exactly as tall as the grid and its labels (no empty space below).
+
+    Examples
+    --------
+    >>> small, big = heatmap_layout(22, 420, 6), heatmap_layout(40, 420, 6)
+    >>> small["cell"] >= 12 and big["cell"] >= 12, small["font"] >= big["font"] >= 5.5
+    (True, True)
+    >>> big["height"] == big["top"] + 40 * big["cell"] + big["bottom"]
+    True
+    """
+    n = max(1, n)
+    fixed = 150 + 6 * longest_label  # labels on the left, colour bar on the right
+    cell = int(min(24, max(12, (width_px - fixed) // n)))
+    font = float(min(8.0, max(5.5, 0.5 * cell)))
+    label_px = int(longest_label * font * 0.75) + 24  # rotated names below, names on the left
+    top, right = 8, 64
+    return {"cell": cell, "font": font, "left": label_px, "bottom": label_px, "top": top,
+            "right": right, "width": label_px + n * cell + right,
+            "height": top + n * cell + label_px}
+#: Hidden compensated layers given new pixels per turn of the event loop.
+SWAPS_PER_TURN = 6
 #: What an edit's error names (the engine's own name for a matrix it is handed).
 SPILLOVER_SOURCE = "spillover matrix"
 
@@ -123,6 +166,11 @@ class SpilloverWidget(StudioWidget):
         super().__init__(napari_viewer, parent)
         self.compensated: tuple | None = None
         self._fitted = False
+        self._swaps: list = []
+        self._swap_timer = QTimer(self)
+        self._swap_timer.setSingleShot(True)
+        self._swap_timer.setInterval(0)
+        self._swap_timer.timeout.connect(self._swap_some)
         layout = self.layout()
 
         layout.addWidget(self.caption("Matrix"))
@@ -158,7 +206,13 @@ class SpilloverWidget(StudioWidget):
         layout.addLayout(view_row)
         self.figure, self.canvas = small_figure(height=3.6)
         self.canvas.mpl_connect("button_press_event", self._clicked)
-        layout.addWidget(self.canvas, 3)
+        # the heatmap keeps readable cells at any channel count: wider than the dock, it scrolls
+        self.heat_scroll = QScrollArea()
+        self.heat_scroll.setObjectName("heatmap_scroll")
+        self.heat_scroll.setFrameShape(QScrollArea.Shape.NoFrame)
+        self.heat_scroll.setWidgetResizable(False)
+        self.heat_scroll.setWidget(self.canvas)
+        layout.addWidget(self.heat_scroll)
 
         layout.addWidget(self.caption("Entry"))
         grid = QGridLayout()
@@ -319,41 +373,62 @@ class SpilloverWidget(StudioWidget):
             self.receiver.setCurrentIndex(1)
         self._entry_changed()
 
+    def _size_canvas(self, width: int, height: int) -> None:
+        """Give the canvas (and the figure) a size in pixels; the scroll area fits its height."""
+        dpi = self.figure.get_dpi()
+        if (self.canvas.width(), self.canvas.height()) != (width, height):
+            self.canvas.setFixedSize(width, height)
+            self.figure.set_size_inches(width / dpi, height / dpi, forward=False)
+        bar = self.heat_scroll.horizontalScrollBar().sizeHint().height()
+        wide = width > self.heat_scroll.viewport().width() > 0
+        self.heat_scroll.setFixedHeight(height + (bar if wide else 0) + 2)
+
     def draw(self):
         from matplotlib.colors import LinearSegmentedColormap
 
         self.figure.clear()
-        ax = self.figure.add_subplot(111)
-        style_axes(ax)
         matrix = self.matrix
+        available = max(self.heat_scroll.viewport().width(), self.width() - 24, 320)
         if matrix is None:
+            self._size_canvas(available, 120)
+            ax = self.figure.add_axes([0, 0, 1, 1])
+            style_axes(ax)
             ax.text(0.5, 0.5, "no matrix yet", ha="center", va="center", color="#8a949e",
                     transform=ax.transAxes)
             ax.set_xticks([])
             ax.set_yticks([])
             self.canvas.draw_idle()
             return
+        names = list(matrix.channels)
+        n = len(names)
+        box = heatmap_layout(n, available, max(len(name) for name in names))
+        width, height = box["width"], box["height"]
+        self._size_canvas(width, height)
+        grid = n * box["cell"]
+        ax = self.figure.add_axes([box["left"] / width, box["bottom"] / height, grid / width, grid / height])
+        style_axes(ax)
         shown = heatmap_values(matrix, self.view.currentText())
-        ramp = LinearSegmentedColormap.from_list("plexwash heat", HEATMAP_COLOURS).with_extremes(bad="#3a4048")
+        ramp = LinearSegmentedColormap.from_list("plexwash heat", HEATMAP_COLOURS).with_extremes(bad=DIAGONAL)
         top = np.nanmax(shown) if np.isfinite(shown).any() else 1.0
         image = ax.imshow(shown, cmap=ramp, vmin=0.0, vmax=top if top > 0 else 1.0,
-                          interpolation="nearest")
-        names = list(matrix.channels)
-        ticks = np.arange(len(names))
-        size = 7 if len(names) <= 12 else 5
+                          interpolation="nearest", aspect="auto")
+        ticks = np.arange(n)
+        size = box["font"]
         ax.set_xticks(ticks)
         ax.set_yticks(ticks)
         ax.set_xticklabels(names, rotation=90, fontsize=size)
         ax.set_yticklabels(names, fontsize=size)
-        ax.set_xlabel("receiving channel", color="#cfd6dd", fontsize=7)
-        ax.set_ylabel("spilling channel", color="#cfd6dd", fontsize=7)
+        ax.tick_params(length=2, pad=1, labelsize=size)
+        ax.set_xlabel("receiving channel", color="#cfd6dd", fontsize=7, labelpad=2)
+        ax.set_ylabel("spilling channel", color="#cfd6dd", fontsize=7, labelpad=2)
         if self.source.currentText() in names and self.receiver.currentText() in names:
             i, j = names.index(self.source.currentText()), names.index(self.receiver.currentText())
             ax.add_patch(_frame_patch(j, i))
-        bar = self.figure.colorbar(image, ax=ax, fraction=0.045, pad=0.02)
+        bar_ax = self.figure.add_axes([(box["left"] + grid + 8) / width, box["bottom"] / height,
+                                       12 / width, grid / height])
+        bar = self.figure.colorbar(image, cax=bar_ax)
         bar.ax.tick_params(colors="#cfd6dd", labelsize=6)
         bar.set_label(self.view.currentText(), color="#cfd6dd", fontsize=7)
-        self.figure.tight_layout(pad=0.3)
         self.canvas.draw_idle()
 
     def _clicked(self, event):
@@ -402,27 +477,60 @@ class SpilloverWidget(StudioWidget):
     def _show_compensated(self, roi, used, stack):
         if roi is not self.state.roi or roi.labels[used[0]] not in self.viewer.layers:
             return  # another ROI is loaded, or its layers are gone
+        from napari.layers import Image
+
         width = roi.shape[2] * (roi.pixel_size[1] if roi.pixel_size else 1.0)
-        for layer in studio_layers(self.viewer):
-            if layer.metadata["plexwash"]["stage"] in ("washed", "removed"):
-                layer.visible = False  # the Speckle preview sits in the same place
-        for k, index in enumerate(used):
-            label, channel = roi.labels[index], roi.channels[index]
-            name = f"{label} · compensated"
-            limits = (tuple(self.viewer.layers[label].contrast_limits)
-                      if label in self.viewer.layers else robust_limits(stack[k]))
-            if name in self.viewer.layers:
-                self.viewer.layers[name].data = stack[k]
-                continue
-            _, kwargs, _ = channel_layer(stack[k], roi_path=roi.path, channel=channel, label=label,
-                                         index=index, stage="compensated", pixel_size=roi.pixel_size,
-                                         visible=False, limits=limits)
-            kwargs["translate"] = (0.0, width * 1.04)
-            self.viewer.add_image(stack[k], **kwargs)
+        kept = {layer.metadata["plexwash"]["channel"]: layer
+                for layer in studio_layers(self.viewer, stage="compensated")}
+        made, swaps = [], []
+        self._swaps = []  # an earlier compensation's swaps not yet done are dropped
+        with self.viewer.layers.batched_update():  # one scene-graph update for every layer
+            for layer in studio_layers(self.viewer):
+                if layer.metadata["plexwash"]["stage"] in ("washed", "removed") and layer.visible:
+                    layer.visible = False  # the Speckle preview sits in the same place
+            for k, index in enumerate(used):
+                label, channel = roi.labels[index], roi.channels[index]
+                limits = (tuple(self.viewer.layers[label].contrast_limits)
+                          if label in self.viewer.layers else robust_limits(stack[k]))
+                _, kwargs, _ = channel_layer(stack[k], roi_path=roi.path, channel=channel, label=label,
+                                             index=index, stage="compensated", pixel_size=roi.pixel_size,
+                                             visible=False, limits=limits)
+                kwargs["translate"] = (0.0, width * 1.04)
+                if channel in kept:  # later compensations: the kept layers get the new pixels
+                    swaps.append((channel, kept[channel], stack[k], kwargs))
+                else:
+                    made.append(Image(stack[k], **kwargs))
+            if made:  # the first compensation: every layer at once, the active layer unchanged
+                active = self.viewer.layers.selection.active
+                self.viewer.layers.extend(made)
+                if active is not None:
+                    self.viewer.layers.selection.active = active
+        if made:
+            keep_for_good(self.viewer)
+        # the receiving channel's layer now (it is shown); the hidden ones a few per turn of the
+        # event loop, so the window keeps answering (each data swap costs ~15 ms)
+        receiver = self.receiver.currentText()
+        swaps.sort(key=lambda job: job[0] != receiver)
+        for _channel, layer, data, kwargs in swaps[:1]:
+            swap_layer(layer, data, kwargs)
+        self._swaps = swaps[1:]
+        if self._swaps:
+            self._swap_timer.start()
         self.compensated = (roi, used)
         self._fitted = False
         self._show_receiver()
         self.say(f"{roi.name}: {len(used)} compensated layers (receiving channel shown beside raw)")
+
+    def _swap_some(self) -> None:
+        """Swap the next few compensated layers' pixels (see :meth:`_show_compensated`)."""
+        batch, self._swaps = self._swaps[:SWAPS_PER_TURN], self._swaps[SWAPS_PER_TURN:]
+        for _channel, layer, data, kwargs in batch:
+            swap_layer(layer, data, kwargs)
+        if self._swaps:
+            self._swap_timer.start()
+
+    def busy(self) -> bool:
+        return super().busy() or bool(self._swaps)
 
     def _show_receiver(self):
         """Side by side: the chosen receiving channel raw, and compensated; everything else hidden."""
@@ -432,11 +540,16 @@ class SpilloverWidget(StudioWidget):
             return
         if receiver not in roi.channels:
             return
+        for job in [job for job in self._swaps if job[0] == receiver]:  # shown: its pixels now
+            self._swaps.remove(job)
+            swap_layer(*job[1:])
         grid_of(self.viewer).enabled = False
         with self.viewer.layers.batched_update():  # one scene-graph update, not one per layer
             for layer in studio_layers(self.viewer):
                 meta = layer.metadata["plexwash"]
-                layer.visible = meta["channel"] == receiver and meta["stage"] in ("raw", "compensated")
+                show = meta["channel"] == receiver and meta["stage"] in ("raw", "compensated")
+                if layer.visible != show:
+                    layer.visible = show
         if not self._fitted:
             self._fitted = True
             fit_visible(self.viewer)

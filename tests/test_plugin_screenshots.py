@@ -2,7 +2,8 @@
 
 Written to the ``artifacts`` folder beside this file (ignored by git): the labelled grid,
 the one-channel view, the preview (raw | washed | removed, labelled), and the Quality
-widget with its flags column in view. Each is also checked: the canvas is drawn (not one
+widget with its flags column in view (one stage, and raw | washed side by side), the
+spillover heatmap, and the tissue outline. Each is also checked: the canvas is drawn (not one
 flat colour), and the flags column of the quality table lies inside the visible part of
 the table.
 """
@@ -73,3 +74,23 @@ def test_screenshots_of_each_mode(make_napari_viewer, qtbot, demo_dir):
     quality.grab().save(str(ARTIFACTS / "studio_quality.png"))
     viewer.screenshot(path=str(ARTIFACTS / "studio_quality_window.png"), canvas_only=False)
     assert (ARTIFACTS / "studio_quality.png").stat().st_size > 5000
+
+    # raw | washed side by side, and the spillover heatmap of the demo's 22 channels
+    quality.stage.setCurrentIndex(4)
+    wait(qtbot, quality.measure())
+    assert quality.shown == ("both", "measure")
+    qtbot.waitUntil(lambda: len(quality.figure.axes[0].patches) == 2 * len(quality.rows), timeout=WAIT_MS)
+    quality.grab().save(str(ARTIFACTS / "studio_quality_both.png"))
+    spill = widgets["Spillover"]
+    spill.parent().raise_()
+    qtbot.wait(200)
+    spill.grab().save(str(ARTIFACTS / "studio_spillover.png"))
+    assert spill.canvas.height() >= 22 * 12  # at least 12 px per channel row
+
+    # the tissue outline over the one-channel view
+    cohort.tissue.setChecked(True)
+    qtbot.waitUntil(lambda: "plexwash tissue" in viewer.layers, timeout=WAIT_MS)
+    cohort.set_view("single")
+    qtbot.wait(300)
+    viewer.screenshot(path=str(ARTIFACTS / "studio_tissue.png"), canvas_only=False)
+    assert 0.003 < lit(viewer.screenshot(canvas_only=True)) < 0.95

@@ -168,7 +168,8 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
     assert [r["sbr"] for r in quality.rows] == [r["sbr"] for r in expected]
     assert [r["flags"] for r in quality.rows] == [r["flags"] for r in expected]
     assert quality.table.rowCount() == len(expected)
-    assert len(quality.figure.axes[0].patches) == len(expected)  # one bar per channel
+    # one bar per channel (the plot is drawn in the next turn of the event loop)
+    qtbot.waitUntil(lambda: len(quality.figure.axes[0].patches) == len(expected), timeout=WAIT_MS)
 
     from plexwash.plugin._quality import COLUMNS
     from qtpy.QtCore import Qt
