@@ -12,6 +12,7 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
+from scipy import ndimage
 
 from .._arrays import channel_plane
 from ..background import BackgroundSettings, tissue_mask
@@ -20,28 +21,43 @@ from ..background import BackgroundSettings, tissue_mask
 DEFAULT_BACKGROUND = BackgroundSettings()
 
 
-def roi_tissue(stack, *, settings: BackgroundSettings = DEFAULT_BACKGROUND) -> np.ndarray:
-    """(Y, X) bool tissue mask of a (C, Y, X) stack, every channel used.
+def summed_channels(stack, also=None):
+    """(Y, X) float64: the channels of a (C, Y, X) stack summed, one channel at a time.
 
-    The same as ``tissue_mask(stack, settings=settings)``: the channels are summed here in
-    the same order, and the glass limit (per channel) is scaled by the number of channels
-    the one summed plane stands for.
+    With ``also`` (a function of one plane giving a (Y, X) int8 map), also the largest
+    of every channel's map at each pixel: returns ``(total, largest)``.
+    """
+    shape = tuple(int(n) for n in np.shape(stack))
+    total = np.zeros(shape[1:], np.float64)
+    largest = np.zeros(shape[1:], np.int8)
+    for c in range(shape[0]):
+        plane = channel_plane(stack, c)
+        total += plane
+        if also is not None:
+            np.maximum(largest, also(plane), out=largest)
+    return total if also is None else (total, largest)
+
+
+def roi_tissue(total: np.ndarray, n_channels: int, *,
+               settings: BackgroundSettings = DEFAULT_BACKGROUND) -> np.ndarray:
+    """(Y, X) bool tissue mask from the sum of a stack's ``n_channels`` channels.
+
+    The same as ``tissue_mask(stack, settings=settings)`` with every channel used: the
+    glass limit (per channel) is scaled by the number of channels the summed plane stands
+    for. All True when the sum is not finite (the channels' own checks name the bad one).
 
     Examples
     --------
     >>> rng = np.random.default_rng(0)
     >>> rate = np.full((120, 120), 0.01); rate[:, 50:] = 0.12
     >>> stack = rng.poisson(np.broadcast_to(rate, (10, 120, 120)))
-    >>> bool(np.array_equal(roi_tissue(stack), tissue_mask(stack)))
+    >>> mask = roi_tissue(summed_channels(stack), 10)
+    >>> bool(np.array_equal(mask, tissue_mask(stack)))
     True
     """
-    shape = tuple(int(n) for n in np.shape(stack))
-    total = np.zeros(shape[1:], np.float64)
-    for c in range(shape[0]):
-        total += channel_plane(stack, c)
-    if not np.all(np.isfinite(total)):  # the channels' own checks name the bad one
-        return np.ones(shape[1:], bool)
-    summed = dataclasses.replace(settings, glass_rate=settings.glass_rate * max(shape[0], 1))
+    if not np.all(np.isfinite(total)):
+        return np.ones(total.shape, bool)
+    summed = dataclasses.replace(settings, glass_rate=settings.glass_rate * max(n_channels, 1))
     return tissue_mask(total[None], settings=summed)
 
 
@@ -61,3 +77,25 @@ def binned_tissue(tissue: np.ndarray, size: int) -> np.ndarray:
     mask = np.asarray(tissue, np.float64)
     rows = np.add.reduceat(mask, np.arange(0, mask.shape[0], size), axis=0)
     return np.add.reduceat(rows, np.arange(0, mask.shape[1], size), axis=1)
+
+
+#: Pixels this close to the tissue's edge (Chebyshev distance) are left out of the stripe
+#: test's quiet pixels: the lines two away plus a margin for the smoothed mask's edge.
+EDGE_MARGIN = 5
+
+
+def away_from_edges(tissue, margin: int = EDGE_MARGIN):
+    """(Y, X) bool: pixels farther than ``margin`` from the other region; None without glass.
+
+    Examples
+    --------
+    >>> mask = np.zeros((3, 12), bool); mask[:, 6:] = True
+    >>> away_from_edges(mask, 2)[0].astype(int).tolist()
+    [1, 1, 1, 1, 0, 0, 0, 0, 1, 1, 1, 1]
+    """
+    if not has_glass(tissue):
+        return None
+    size = 2 * margin + 1
+    near_tissue = ndimage.maximum_filter(tissue, size=size, mode="nearest")
+    near_glass = ndimage.maximum_filter(~tissue, size=size, mode="nearest")
+    return ~(near_tissue & near_glass)

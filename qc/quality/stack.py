@@ -14,9 +14,9 @@ from ..errors import InputError
 from .channel import ChannelQuality, bin_areas, measure_prepared, prepare_channel
 from .excess import gram_matrix
 from .ghosts import GhostModel, ghost_test
-from .regions import binned_tissue, has_glass, roi_tissue
+from .regions import away_from_edges, binned_tissue, has_glass, roi_tissue, summed_channels
 from .settings import CHANNEL_FLAGS, DEFAULT_QUALITY, QualitySettings
-from .stripes import stripe_counts, striped_lines
+from .stripes import loud_pixels, quiet_keep, stripe_counts, striped_lines
 
 
 @dataclasses.dataclass(frozen=True)
@@ -110,7 +110,8 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         exceed ``QUALITY_WORKING_BYTES`` (see :func:`channel_threads`).
     tissue : (Y, X) bool array, optional
         The ROI's tissue mask when the caller has it; default: the reference's, else
-        :func:`.regions.roi_tissue` of ``stack`` (one more pass over the channels).
+        :func:`.regions.roi_tissue` of the summed channels (summed in one more pass over
+        them, which the stripe test needs too).
 
     Returns
     -------
@@ -153,8 +154,16 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         if not np.all(np.isfinite(matrix)) or np.any(matrix < 0):
             raise InputError("spillover", "matrix holds negative or non-finite values")
 
-    tissue = _tissue(stack, shape, settings, tissue, reference)
+    # one pass over the channels: their sum (the tissue mask) and loud pixels (stripe test)
+    total, loud = summed_channels(stack, loud_pixels) if reference is None else (None, None)
+    tissue = _tissue(total, shape, settings, tissue, reference)
+    del total
     inside = tissue if has_glass(tissue) else None
+    keeps = None
+    if loud is not None:
+        away = away_from_edges(inside)
+        keeps = (quiet_keep(loud, away), quiet_keep(loud.T, None if away is None else away.T))
+        del loud, away
 
     # bin areas (per region when the ROI has glass), then each channel's bin sums: what the
     # ghost model needs
@@ -178,8 +187,8 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         cq, summary = measure_prepared(prepared, per_channel[c], dtype_max, names[c],
                                        mask=inside)
         design[c + k] = summary.bins.ravel()
-        quiet = stripe_counts(clean, cq.threshold) if reference is None else None
-        return cq, summary.rows, summary.columns, quiet
+        quiet = stripe_counts(clean, keeps) if keeps is not None else None
+        return cq, quiet
 
     measured = _map_threads(one, range(shape[0]), channel_threads(shape[1:], threads))
     results = [m[0] for m in measured]
@@ -195,23 +204,23 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
                                                                strict=True)]
         rows, columns = reference.striped_rows, reference.striped_columns
     else:
-        rows = striped_lines(np.stack([m[1] for m in measured]).astype(np.float64),
-                             np.stack([m[3][0] for m in measured]), settings)
-        columns = striped_lines(np.stack([m[2] for m in measured]).astype(np.float64),
-                                np.stack([m[3][1] for m in measured]), settings)
+        rows = striped_lines(np.stack([m[1][0] for m in measured]), settings)
+        columns = striped_lines(np.stack([m[1][1] for m in measured]), settings)
     flags = ("striped",) if rows or columns else ()
     return StackQuality(channels=tuple(results), flags=flags, striped_rows=rows,
                         striped_columns=columns, shape=shape, tissue=tissue)
 
 
-def _tissue(stack, shape, settings: QualitySettings, tissue, reference):
+def _tissue(total, shape, settings: QualitySettings, tissue, reference):
     """The tissue mask to measure with (see :func:`measure_stack`), or None."""
     if not settings.in_tissue:
         return None
     if tissue is None and reference is not None:
         tissue = reference.tissue
+    if tissue is None and total is None:  # a reference measured without a mask
+        return None
     if tissue is None:
-        return roi_tissue(stack)
+        return roi_tissue(total, shape[0])
     tissue = np.asarray(tissue, bool)
     if tissue.shape != shape[1:]:
         raise InputError("tissue", f"mask is {tissue.shape}, the stack's planes are {shape[1:]}")

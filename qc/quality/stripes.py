@@ -1,39 +1,40 @@
 """The ``striped`` test: rows or columns that drop out, with a Poisson significance level.
 
 A line drop-out (a detector or stage fault) scales every count of one or two rows (or
-columns) down, in every channel, background included. Two rules must both hold for a line
-to be called striped:
+columns) down, in every channel, background included. A line is striped when its counts
+drop significantly against the lines beside it where the tissue is quiet:
 
-1. **Drop across channels and along the line** (:func:`ratio_drops`): in every part of the
-   line, the median over channels of a weighted line / neighbours ratio is below
-   ``1 - stripe_drop`` (see its notes).
-2. **A significant drop where the tissue is quiet** (:func:`drop_pvalues`). Per channel,
-   the pixels of the line are kept where the lines two away on both sides are at or below
-   the channel's Otsu split (the quiet part of the channel: background, dim stains); the
-   line's counts ``A`` there, pooled over channels, are compared with the counts ``B`` of
-   the two lines beside it at the same pixels. The choice of pixels depends only on the
-   lines two away, so under the null it leaves ``A`` and ``B`` independent Poisson counts
-   with means ``lam`` and ``2 lam``; conditional on ``n = A + B``, ``A`` is binomial
-   ``(n, 1/3)``: the exact conditional test for comparing two Poisson counts
-   (Przyborowski & Wilenski, *Biometrika* 31, 1940; reference
-   ``scipy.stats.binomtest(A, n, 1/3, alternative="less")``). The line is significantly
-   low when ``P(X <= A) < stripe_alpha``, and its pooled ratio ``2 A / B`` must also be
-   below ``1 - stripe_drop``.
+- **Which pixels**: those of the line whose lines two away on both sides are quiet in every
+  channel (:func:`loud_pixels`: no count above the channel's background level, so no cell
+  of any stain), whose lines beside it hold no bright pixel in any channel, and that lie
+  away from the tissue's edge (where the edge runs along a line for a stretch, as a rounded
+  piece does at its extremes, glass beside tissue would read as a drop).
+- **The test** (:func:`drop_pvalues`): the line's counts ``A`` in those pixels, summed
+  over the channels' spike-free copies (a drop-out lowers every channel; a sum of Poisson
+  counts is Poisson), against the counts ``B`` of the two lines beside it at the same
+  pixels. The choice of pixels does not look at the line itself, so under the null (no
+  drop) ``A`` is Poisson with mean ``lam``; looking at the lines beside it only removes
+  their bright pixels, which can only lower ``B`` below its Poisson mean ``2 lam``, so the
+  test errs towards silence. Conditional on ``n = A + B``, ``A`` is binomial ``(n, 1/3)``:
+  the exact conditional test for comparing two Poisson counts (Przyborowski & Wilenski,
+  *Biometrika* 31, 1940; reference ``scipy.stats.binomtest(A, n, 1/3,
+  alternative="less")``). The line is striped when ``P(X <= A) < stripe_alpha``, its ratio
+  ``2 A / B`` is below ``1 - stripe_drop``, and no part of the line (:func:`line_parts`)
+  holds significantly more counts than such a drop would leave (a drop-out spans the line;
+  a gap between cells that happen to line up does not).
 
-Rule 2 is what keeps the test silent where rule 1 alone is fooled: on low-count ROIs
-(few channels hold enough counts to vote, and chance dips pass as drop-outs) and on small
-ROIs where a gap between rows of cells spans a whole line (cells at the lines beside it
-are not quiet at the lines two away, so those pixels are left out; in the quiet pixels
-a gap has as many counts as its neighbours, a drop-out does not). A drop-out lowers the
-background too, so it is found in the quiet pixels with many counts to spare.
+Silent on low-count ROIs without drop-outs (chance dips are not significant) and where a
+gap between rows of cells spans a line (cells and membranes beside it are loud or bright
+and left out; in the quiet pixels a gap holds as many counts as its neighbours). Power
+needs counts: on small ROIs densely packed with cells (few quiet pixels) a drop-out line
+may miss the level while its neighbour drop-out lines are found. The first and last lines
+(one neighbour only) are not judged.
 """
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
-from scipy import special
+from scipy import special, stats
 
 from .settings import QualitySettings
 
@@ -41,39 +42,99 @@ from .settings import QualitySettings
 NULL_SHARE = 1.0 / 3.0
 
 
-def quiet_line_counts(image: np.ndarray, threshold: float) -> np.ndarray:
-    """Per row of ``image``: its counts and its neighbours' counts in the quiet pixels.
+#: Chance of a background count this high or higher, per pixel and channel: at or above
+#: it a pixel is loud; at or above the second, bright (:func:`loud_pixels`).
+LOUD_TAIL = 1e-3
+BRIGHT_TAIL = 1e-6
 
-    A pixel of row ``y`` is quiet when the pixels two rows above and below (those that
-    exist) are at most ``threshold``. Returns (2, rows) float64: ``A`` = the row's sum over
-    its quiet pixels, ``B`` = the sum of rows ``y - 1`` and ``y + 1`` over the same pixels.
-    The first and last rows (one neighbour only) get 0 and 0.
+
+def loud_pixels(plane: np.ndarray) -> np.ndarray:
+    """(Y, X) int8: 1 where a pixel of one channel is above its background level, 2 where
+    it is far above it (bright), else 0.
+
+    The levels are the smallest counts ``k >= 2`` (``k >= 4``) with ``P(N >= k) <
+    LOUD_TAIL`` (``BRIGHT_TAIL``) for ``N`` Poisson with the mean of the channel's lower
+    half of values (its background where the stain covers less than half of the ROI;
+    ``scipy.stats.poisson.isf``).
 
     Examples
     --------
-    >>> image = np.ones((5, 3)); image[2] = 0.0; image[0, 1] = 9.0
-    >>> quiet_line_counts(image, 1.0)[:, 2].tolist()   # pixel 1 of row 2 is not quiet
-    [0.0, 4.0]
+    >>> loud_pixels(np.array([[0, 0, 0, 0, 0, 1, 2, 5]])).tolist()
+    [[0, 0, 0, 0, 0, 0, 1, 2]]
     """
-    image = np.asarray(image)
-    out = np.zeros((2, image.shape[0]))
-    if image.shape[0] < 3:
-        return out
-    quiet = image <= threshold
-    keep = np.ones(image.shape, bool)
-    keep[2:] &= quiet[:-2]
-    keep[:-2] &= quiet[2:]
-    middle = keep[1:-1]
-    out[0, 1:-1] = np.where(middle, image[1:-1], 0).sum(axis=1, dtype=np.float64)
-    out[1, 1:-1] = (np.where(middle, image[:-2], 0).sum(axis=1, dtype=np.float64)
-                    + np.where(middle, image[2:], 0).sum(axis=1, dtype=np.float64))
+    plane = np.asarray(plane)
+    low = plane[plane <= np.percentile(plane, 50.0)]
+    rate = float(low.mean()) if low.size else 0.0
+    out = np.zeros(plane.shape, np.int8)
+    for least, tail, value in ((2.0, LOUD_TAIL, 1), (4.0, BRIGHT_TAIL, 2)):
+        level = least
+        if rate > 0:
+            level = max(level, float(stats.poisson.isf(tail, rate)) + 1.0)
+        out[plane >= level] = value
     return out
 
 
-def stripe_counts(image: np.ndarray, threshold: float) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`quiet_line_counts` of the rows and of the columns of one channel."""
+def quiet_keep(loud: np.ndarray, away=None) -> np.ndarray:
+    """(Y, X) bool: the pixels of each row whose rows two above and below (those that
+    exist) are quiet in every channel and whose rows beside it are not bright
+    (``loud`` = the largest :func:`loud_pixels` over channels), and, with ``away``, that
+    lie away from the tissue's edge (:func:`.regions.away_from_edges`). Pass the
+    transposes for the columns."""
+    keep = np.ones(loud.shape, bool)
+    for d, most in ((1, 1), (2, 0)):
+        keep[d:] &= loud[:-d] <= most
+        keep[:-d] &= loud[d:] <= most
+    if away is not None:
+        keep &= away
+    return keep
+
+
+def line_parts(length: int) -> np.ndarray:
+    """Edges of the parts a line is cut into: about 64 px or more each, at most 4.
+
+    Examples
+    --------
+    >>> line_parts(100).tolist(), line_parts(400).tolist()
+    ([0, 100], [0, 100, 200, 300, 400])
+    """
+    n = int(min(4, max(1, length // 64)))
+    return np.linspace(0, length, n + 1).astype(int)
+
+
+def quiet_line_counts(image: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """Per row of ``image`` and part of it: its counts and its neighbours' in the pixels ``keep``.
+
+    Returns (2, parts, rows) float64 (parts: :func:`line_parts` of the row length):
+    ``A`` = the row's sum over its kept pixels, ``B`` = the sum of rows ``y - 1`` and
+    ``y + 1`` over the same pixels. The first and last rows (one neighbour only) get 0.
+
+    Examples
+    --------
+    >>> image = np.ones((5, 3)); image[2] = 0.0
+    >>> loud = np.zeros((5, 3), np.int8); loud[0, 1] = 1
+    >>> quiet_line_counts(image, quiet_keep(loud))[:, 0, 2].tolist()  # pixel 1 of row 2 out
+    [0.0, 4.0]
+    """
     image = np.asarray(image)
-    return quiet_line_counts(image, threshold), quiet_line_counts(image.T, threshold)
+    edges = line_parts(image.shape[1])
+    out = np.zeros((2, len(edges) - 1, image.shape[0]))
+    if image.shape[0] < 3:
+        return out
+    middle = keep[1:-1]
+    line = np.where(middle, image[1:-1], 0).astype(np.float64)
+    beside = np.where(middle, image[:-2], 0) + np.where(middle, image[2:], 0).astype(np.float64)
+    out[0, :, 1:-1] = np.add.reduceat(line, edges[:-1], axis=1).T
+    out[1, :, 1:-1] = np.add.reduceat(beside, edges[:-1], axis=1).T
+    return out
+
+
+def stripe_counts(image: np.ndarray, keeps) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`quiet_line_counts` of the rows and of the columns of one channel.
+
+    ``keeps`` = (:func:`quiet_keep` of the loud pixels, the same of their transpose).
+    """
+    image = np.asarray(image)
+    return quiet_line_counts(image, keeps[0]), quiet_line_counts(image.T, keeps[1])
 
 
 def drop_pvalues(line: np.ndarray, beside: np.ndarray) -> np.ndarray:
@@ -100,52 +161,35 @@ def drop_pvalues(line: np.ndarray, beside: np.ndarray) -> np.ndarray:
     return out
 
 
-def ratio_drops(sums: np.ndarray, settings: QualitySettings) -> np.ndarray:
-    """Rule 1: lines whose intensity drops below (1 - stripe_drop) of their neighbours', across channels.
-
-    For each channel, the line ``a`` is compared pixel by pixel with the mean
-    ``nb`` of the two lines beside it, weighting pixels by ``w + mean(w)`` where
-    ``w`` is the mean of the lines two away: ``ratio = sum(a (w + m)) / sum(nb (w
-    + m))``. Weights from lines that are neither ``a`` nor ``nb`` keep Poisson
-    noise from biasing the ratio, and weighting where the tissue is bright makes
-    the ratio about 1 wherever cells simply continue across lines; a line
-    drop-out (every pixel of one or two lines scaled down) gives a ratio near its
-    scale factor (about twice it for two adjacent lines). The ratio is taken in
-    each part of the line and in each channel whose neighbour lines hold at least
-    ``stripe_min_counts`` counts; a line drops when, in *every* part, the median ratio
-    over those channels is below ``1 - stripe_drop``: a drop-out spans the whole line, a
-    natural gap between cells does not. The first and last lines (neighbours on one side
-    only, where the image edge cuts cells) are not judged. ``sums`` is (C, 3, segments, L)
-    (the line sums of the channel measurements). Returns (L,) bool.
-    """
-    num, den, near = sums[:, 0], sums[:, 1], sums[:, 2]  # (C, segments, L)
-    votes = near.sum(axis=1) * settings.counts_per_unit >= max(settings.stripe_min_counts, 1e-12)
-    usable = votes[:, None, :] & (den > 0)
-    ratio = np.where(usable, num / np.where(usable, den, 1.0), np.nan)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # parts where no channel votes
-        median = np.nanmedian(ratio, axis=0)  # (segments, L)
-        highest = np.nanmax(median, axis=0)
-    judged = usable.any(axis=0).all(axis=0)
-    judged[[0, -1]] = False
-    return judged & (highest < 1.0 - settings.stripe_drop)
+#: A part of a line vetoes a drop when it holds this improbably many counts for one.
+PART_ALPHA = 0.01
 
 
 def significant_drops(counts: np.ndarray, settings: QualitySettings) -> np.ndarray:
-    """Rule 2: lines whose quiet-pixel counts, pooled over channels, drop significantly.
+    """Lines whose quiet-pixel counts, summed over channels, drop significantly.
 
-    ``counts`` is (C, 2, L) from :func:`quiet_line_counts` (data units; counts are
-    ``counts_per_unit`` times them). Returns (L,) bool: ``P < stripe_alpha``
-    (:func:`drop_pvalues`) and ``2 A / B < 1 - stripe_drop``.
+    ``counts`` is (C, 2, parts, L) from :func:`quiet_line_counts` (data units; counts are
+    ``counts_per_unit`` times them). Returns (L,) bool: over the whole line, with at least
+    ``stripe_min_counts`` counts beside it, ``P < stripe_alpha`` (:func:`drop_pvalues`) and ``2 A / B < 1 - stripe_drop``, and no part
+    of the line holds significantly more than a drop to ``1 - stripe_drop`` leaves
+    (upper tail of the same binomial at that ratio below ``PART_ALPHA``): a drop-out
+    spans the line, a gap between cells that happen to line up does not.
     """
-    pooled = np.asarray(counts, np.float64).sum(axis=0) * settings.counts_per_unit
-    line, beside = pooled
-    low = 2.0 * line < (1.0 - settings.stripe_drop) * beside
-    return low & (drop_pvalues(line, beside) < settings.stripe_alpha)
+    line, beside = np.asarray(counts, np.float64).sum(axis=0) * settings.counts_per_unit
+    kept = 1.0 - settings.stripe_drop
+    share = kept / (kept + 2.0)
+    k, n = np.maximum(line, 0.0), np.maximum(line, 0.0) + np.maximum(beside, 0.0)
+    upper = np.ones(k.shape)
+    test = k > 0
+    upper[test] = special.betainc(k[test], n[test] - k[test] + 1.0, share)
+    whole_line, whole_beside = line.sum(axis=0), beside.sum(axis=0)
+    return ((upper >= PART_ALPHA).all(axis=0) & (whole_beside >= settings.stripe_min_counts)
+            & (2.0 * whole_line < kept * whole_beside)
+            & (drop_pvalues(whole_line, whole_beside) < settings.stripe_alpha))
 
 
-def striped_lines(sums: np.ndarray, counts: np.ndarray, settings: QualitySettings
-                  ) -> tuple[int, ...]:
-    """Indices of the striped lines: both rules of the module notes hold."""
-    striped = ratio_drops(sums, settings) & significant_drops(counts, settings)
+def striped_lines(counts: np.ndarray, settings: QualitySettings) -> tuple[int, ...]:
+    """Indices of the striped lines (see the module notes); ``counts`` as for
+    :func:`significant_drops`."""
+    striped = significant_drops(counts, settings)
     return tuple(int(i) for i in np.flatnonzero(striped))
