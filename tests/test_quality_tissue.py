@@ -148,7 +148,7 @@ def test_roi_tissue_is_the_background_modules_mask():
 
 def test_sbr_and_snr_are_measured_inside_tissue():
     # cells at 20 counts/px in tissue (background 0.15) lying on glass (0.01): inside the
-    # tissue SBR = 20 / 0.15 (SBR = mean(fg) / mean(bg), METHODS.md; Murphy, Fundamentals
+    # tissue SBR = 20 / 0.15 (SBR = mean(fg) / mean(bg); Murphy, Fundamentals
     # of Light Microscopy), while the glass would pull the background mean down
     rng = np.random.default_rng(3)
     shape = (240, 240)
