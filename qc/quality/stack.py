@@ -162,7 +162,8 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
     keeps = None
     if loud is not None:
         away = away_from_edges(inside)
-        keeps = (quiet_keep(loud, away), quiet_keep(loud.T, None if away is None else away.T))
+        keeps = (quiet_keep(loud, away),
+                 np.ascontiguousarray(quiet_keep(loud.T, None if away is None else away.T)))
         del loud, away
 
     # bin areas (per region when the ROI has glass), then each channel's bin sums: what the

@@ -121,8 +121,9 @@ def quiet_line_counts(image: np.ndarray, keep: np.ndarray) -> np.ndarray:
     if image.shape[0] < 3:
         return out
     middle = keep[1:-1]
-    line = np.where(middle, image[1:-1], 0).astype(np.float64)
-    beside = np.where(middle, image[:-2], 0) + np.where(middle, image[2:], 0).astype(np.float64)
+    line = np.multiply(image[1:-1], middle, dtype=np.float64)
+    beside = np.add(image[:-2], image[2:], dtype=np.float64)
+    beside *= middle
     out[0, :, 1:-1] = np.add.reduceat(line, edges[:-1], axis=1).T
     out[1, :, 1:-1] = np.add.reduceat(beside, edges[:-1], axis=1).T
     return out
@@ -134,7 +135,9 @@ def stripe_counts(image: np.ndarray, keeps) -> tuple[np.ndarray, np.ndarray]:
     ``keeps`` = (:func:`quiet_keep` of the loud pixels, the same of their transpose).
     """
     image = np.asarray(image)
-    return quiet_line_counts(image, keeps[0]), quiet_line_counts(image.T, keeps[1])
+    # the columns from a contiguous transposed copy: line sums along rows are far faster
+    return (quiet_line_counts(image, keeps[0]),
+            quiet_line_counts(np.ascontiguousarray(image.T), keeps[1]))
 
 
 def drop_pvalues(line: np.ndarray, beside: np.ndarray) -> np.ndarray:
