@@ -230,13 +230,13 @@ def tissue_rois():
     """The generator's plain, low-count and striped ROIs (one seed), with the true matrix."""
     tc = _tissue_generator()
     rng = np.random.default_rng(5)
-    names = [p[0] for p in tc.PANEL]
+    names = [p[0] for p in tc.STAINS]
     spill, _ = tc.physical_spillover(names, rng)
     out = {}
     for kind, shape in (("plain", (320, 360)), ("low", (400, 400)), ("striped", (320, 360))):
         counts, truth = tc.simulate_roi(rng, shape, kind, spill)
         out[kind] = (counts, truth)
-    roles = {p[2]: p[0] for p in tc.PANEL}
+    roles = {p[2]: p[0] for p in tc.STAINS}
     return out, names, spill, roles
 
 
