@@ -198,10 +198,6 @@ def test_quality_csv_channel_flags_match_the_generator_truth(reference, cohort):
             assert "striped" in row["flags"], row
 
 
-@pytest.mark.xfail(strict=True, reason="known limit of the stripe test: on ROIs of 64-112 px "
-                   "with 8 channels a gap between cells spans a whole line, so ROIs without "
-                   "stripes are flagged too (found by issue 17; the demo's 256-384 px ROIs are "
-                   "flagged right, test_cli.py)")
 def test_quality_csv_stripe_flags_match_the_generator_truth(reference, cohort):
     rows = read_quality_csv(reference["out"] / QUALITY)
     _, striped_roi = _truth_flags(cohort)

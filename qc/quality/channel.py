@@ -209,32 +209,41 @@ def prepare_channel(image, settings: QualitySettings, name, *, dtype=None) -> di
             "zero_fraction": zero_fraction, "dtype": dtype}
 
 
-def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name):
-    """The rest of :func:`_measure`, from the spike-free copy (``prepared`` is emptied)."""
+def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name, mask=None):
+    """The rest of :func:`_measure`, from the spike-free copy (``prepared`` is emptied).
+
+    With ``mask`` ((Y, X) bool, e.g. the tissue), the split, SBR and SNR use its pixels only.
+    """
     clean = prepared.pop("clean")
     spikes, dtype = prepared["spikes"], prepared["dtype"]
     p50, p99, maximum = prepared["p50"], prepared["p99"], prepared["maximum"]
     zero_fraction = prepared["zero_fraction"]
 
     smoothed = _split_image(clean, settings.smoothing_sigma)
-    low, high = float(smoothed.min()), float(smoothed.max())
+    region = smoothed if mask is None else smoothed[mask]
+    low, high = float(region.min()), float(region.max())
     if high > low:
-        t_log = float(_otsu(smoothed, low, high))
+        t_log = float(_otsu(region, low, high))
     else:
         t_log = high
     foreground = smoothed > t_log
-    del smoothed
+    del smoothed, region
+    if mask is not None:
+        foreground &= mask
     n_fg = int(np.count_nonzero(foreground))
     floor = settings.background_floor
-    if 0 < n_fg < clean.size:
+    if 0 < n_fg < (clean.size if mask is None else int(np.count_nonzero(mask))):
         fg_mean, fg_std = _masked_mean_std(clean, foreground, True)
-        bg_mean, bg_std = _masked_mean_std(clean, foreground, False)
+        bg_mean, bg_std = (_masked_mean_std(clean, foreground, False) if mask is None
+                           else _masked_mean_std(clean, mask & ~foreground, True))
         sbr = fg_mean / max(bg_mean, floor)
         snr = (fg_mean - bg_mean) / max(bg_std, floor)
         fg_snr = _mean_over_std(fg_mean, fg_std)
     else:  # nothing stands out: the whole channel is background
-        fg_mean = bg_mean = float(clean.mean(dtype=np.float64))
-        bg_std = float(clean.std(dtype=np.float64))
+        inside = clean if mask is None else clean[mask]
+        fg_mean = bg_mean = float(inside.mean(dtype=np.float64))
+        bg_std = float(inside.std(dtype=np.float64))
+        del inside
         sbr, snr, fg_snr = 1.0, 0.0, math.nan
         n_fg = 0
     del foreground

@@ -56,11 +56,13 @@ def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarra
 
 def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
                settings: QualitySettings, *, gram: np.ndarray | None = None,
-               cross: np.ndarray | None = None):
+               cross: np.ndarray | None = None, n_background: int = 1):
     """Fit target ~ design.T @ coef, leaving out bins the model cannot explain.
 
     ``design`` row 0 holds the bins' areas (its coefficient is the background per
-    pixel, >= 0, unbounded above), the other rows the sources (coefficients
+    pixel, >= 0, unbounded above; with ``n_background`` rows, each holds the bins' pixels
+    of one region, e.g. glass and tissue, with a rate of its own), the other rows the
+    sources (coefficients
     ``0 <= s_i <= upper_i``; an upper bound of 0 leaves a row out). Least squares on
     the bins kept; bins with ``P(N >= n | mu) < fit_alpha`` (counts ``n`` and
     ``mu`` = values times ``counts_per_unit``) are left out and the fit repeated
@@ -76,7 +78,7 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
         gram = gram_matrix(design)
         cross = _cross(design, target)
     n = target * unit
-    floor = settings.background_floor * unit * design[0].astype(np.float64)
+    floor = settings.background_floor * unit * design[:n_background].astype(np.float64).sum(axis=0)
     kept = np.ones(n.shape, bool)
     lower = np.zeros(design.shape[0])
     g, h = gram, cross

@@ -79,8 +79,18 @@ class QualitySettings:
         0.5, "flag a row/column striped when it holds below (1 - this) of the lines beside it",
         low=0.0, low_open=True, high=1.0, high_open=True)
     stripe_min_counts: float = setting(
-        25.0, "a channel judges a row (column) only when its neighbour lines hold this many counts",
+        25.0, "a row (column) is judged only when the lines beside it hold this many counts in "
+        "its quiet pixels (all channels)",
         low=0.0, high=1e12)
+    stripe_alpha: float = setting(
+        1e-6, "... and only when its drop is this improbable under Poisson counts (exact "
+        "conditional test of the line's counts against its neighbours')",
+        low=0.0, low_open=True, high=0.05)
+    in_tissue: bool = setting(
+        True, "SBR, SNR and the empty test's background measured inside the tissue (glass apart)")
+    plausible_ghosts: bool = setting(
+        True, "ghosts only from physically plausible masses (M+-1, same element, M+16) when "
+        "channel names carry masses")
 
 
 #: The default thresholds (a frozen object, safe as a default argument).

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import dataclasses
-import warnings
 from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
 
@@ -12,9 +11,12 @@ from threadpoolctl import threadpool_limits
 
 from .._arrays import channel_plane
 from ..errors import InputError
-from .channel import ChannelQuality, bin_areas, channel_flags, measure_prepared, prepare_channel
-from .excess import combine_rows, fit_model, gram_matrix, measure_excess_area
+from .channel import ChannelQuality, bin_areas, measure_prepared, prepare_channel
+from .excess import gram_matrix
+from .ghosts import GhostModel, ghost_test
+from .regions import away_from_edges, binned_tissue, has_glass, roi_tissue, summed_channels
 from .settings import CHANNEL_FLAGS, DEFAULT_QUALITY, QualitySettings
+from .stripes import loud_pixels, quiet_keep, stripe_counts, striped_lines
 
 
 @dataclasses.dataclass(frozen=True)
@@ -31,6 +33,9 @@ class StackQuality:
         Indices of the rows / columns found striped.
     shape : tuple of int
         (C, Y, X) of the stack.
+    tissue : (Y, X) bool array or None
+        The tissue mask SBR, SNR and the empty test's backgrounds were measured with
+        (all True: no glass found); None when ``in_tissue`` is off.
     """
 
     channels: tuple[ChannelQuality, ...]
@@ -38,6 +43,7 @@ class StackQuality:
     striped_rows: tuple[int, ...]
     striped_columns: tuple[int, ...]
     shape: tuple[int, int, int]
+    tissue: np.ndarray | None = dataclasses.field(default=None, compare=False, repr=False)
 
     def channel(self, name: str) -> ChannelQuality:
         """The result of the channel called ``name``."""
@@ -52,18 +58,10 @@ class StackQuality:
         return [cq.name for cq in self.channels]
 
 
-# Largest factor on the ghost pattern of a known spillover matrix.
-_KNOWN_SCALE_MAX = 2.0
-
-
-# Slopes below this are not listed as ghost sources in reports.
-_REPORTED_SLOPE = 1e-3
-
-
 def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings = DEFAULT_QUALITY,
                   channel_settings: Sequence[QualitySettings] | None = None, dtype_max=None,
                   spillover=None, reference: StackQuality | None = None,
-                  threads: int = 1) -> StackQuality:
+                  threads: int = 1, tissue=None) -> StackQuality:
     """Measure every channel of a ROI and the ROI-level flags.
 
     Channels are pulled into memory one at a time per thread (a dask stack is
@@ -72,9 +70,13 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
     channels' worth).
 
     ``empty`` is judged after explaining each channel as background plus
-    spillover ghosts of the other channels (see the module notes): a failed stain
-    that holds only background, hot pixels and faint copies of bright channels is
-    ``empty``; a dim stain with a pattern of its own is not.
+    spillover ghosts of the other channels (see the module notes and :mod:`.ghosts`):
+    a failed stain that holds only background, hot pixels and faint copies of bright
+    channels is ``empty``; a dim stain with a pattern of its own is not. With
+    ``in_tissue`` (the default), SBR and SNR are measured inside the tissue and the
+    background has one rate on glass and one in tissue (:mod:`.regions`). ``striped``
+    lines need a drop across channels and a significant one under Poisson counts
+    (:mod:`.stripes`).
 
     Parameters
     ----------
@@ -99,11 +101,17 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         there stay empty here: a wash removes signal, it cannot create a stain.
         Pass it when measuring the ``washed`` stage: after compensation and speckle
         removal the background is gone and the remainder of subtracted ghosts is
-        no longer Poisson, so the excess test alone over-reads it.
+        no longer Poisson, so the excess test alone over-reads it. Its tissue mask and
+        striped lines are taken over too: a wash neither creates nor repairs a line
+        drop-out, and without background the quiet pixels the stripe test needs are gone.
     threads : int, optional
         Threads for the channels' measurements and the ghost fits; the results do not
         depend on it. Fewer channels are measured at once when their copies would
         exceed ``QUALITY_WORKING_BYTES`` (see :func:`channel_threads`).
+    tissue : (Y, X) bool array, optional
+        The ROI's tissue mask when the caller has it; default: the reference's, else
+        :func:`.regions.roi_tissue` of the summed channels (summed in one more pass over
+        them, which the stripe test needs too).
 
     Returns
     -------
@@ -146,40 +154,78 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
         if not np.all(np.isfinite(matrix)) or np.any(matrix < 0):
             raise InputError("spillover", "matrix holds negative or non-finite values")
 
-    # bin areas, then each channel's bin sums: what the ghost model needs
+    # one pass over the channels: their sum (the tissue mask) and loud pixels (stripe test)
+    total, loud = summed_channels(stack, loud_pixels) if reference is None else (None, None)
+    tissue = _tissue(total, shape, settings, tissue, reference)
+    del total
+    inside = tissue if has_glass(tissue) else None
+    keeps = None
+    if loud is not None:
+        away = away_from_edges(inside)
+        keeps = (quiet_keep(loud, away),
+                 np.ascontiguousarray(quiet_keep(loud.T, None if away is None else away.T)))
+        del loud, away
+
+    # bin areas (per region when the ROI has glass), then each channel's bin sums: what the
+    # ghost model needs
     bin_size = per_channel[0].empty_bin
     areas = bin_areas(shape[1:], bin_size)
+    k = 1 if inside is None else 2
     # float32 rows (counts binned from data of up to 16 bits are exact; the fits convert a
     # block of bins at a time to float64), so the model costs 4 bytes per bin per channel
-    design = np.empty((shape[0] + 1, areas.size), np.float32)
-    design[0] = areas.ravel()
+    design = np.empty((shape[0] + k, areas.size), np.float32)
+    if inside is None:
+        design[0] = areas.ravel()
+    else:
+        in_tissue = binned_tissue(inside, bin_size)
+        design[0], design[1] = (areas - in_tissue).ravel(), in_tissue.ravel()
 
     def one(c):
         # the plane read from a lazy stack is released as soon as its spike-free copy exists
         prepared = prepare_channel(channel_plane(stack, c), per_channel[c], names[c],
                             dtype=getattr(stack, "dtype", None))
-        cq, summary = measure_prepared(prepared, per_channel[c], dtype_max, names[c])
-        design[c + 1] = summary.bins.ravel()
-        return cq, summary.rows, summary.columns
+        clean = prepared["clean"]
+        cq, summary = measure_prepared(prepared, per_channel[c], dtype_max, names[c],
+                                       mask=inside)
+        design[c + k] = summary.bins.ravel()
+        quiet = stripe_counts(clean, keeps) if keeps is not None else None
+        return cq, quiet
 
     measured = _map_threads(one, range(shape[0]), channel_threads(shape[1:], threads))
     results = [m[0] for m in measured]
-    row_sums = [m[1] for m in measured]
-    column_sums = [m[2] for m in measured]
 
     # The ghost fits are many small products: one BLAS thread is fastest, and
     # keeps a threaded BLAS from fighting other work for the cores.
     with threadpool_limits(limits=1, user_api="blas"):
-        results = _judge_with_ghosts(results, design, areas.shape, per_channel, matrix,
-                                     threads=threads)
+        model = GhostModel(design=design, gram=gram_matrix(design), n_background=k,
+                           shape=areas.shape, names=names, matrix=matrix)
+        results = _judge_with_ghosts(results, model, per_channel, threads=threads)
     if reference is not None:
         results = [_inherit_empty(cq, ref) for cq, ref in zip(results, reference.channels,
                                                                strict=True)]
-    rows = _striped_lines(np.stack(row_sums).astype(np.float64), settings)
-    columns = _striped_lines(np.stack(column_sums).astype(np.float64), settings)
+        rows, columns = reference.striped_rows, reference.striped_columns
+    else:
+        rows = striped_lines(np.stack([m[1][0] for m in measured]), settings)
+        columns = striped_lines(np.stack([m[1][1] for m in measured]), settings)
     flags = ("striped",) if rows or columns else ()
     return StackQuality(channels=tuple(results), flags=flags, striped_rows=rows,
-                        striped_columns=columns, shape=shape)
+                        striped_columns=columns, shape=shape, tissue=tissue)
+
+
+def _tissue(total, shape, settings: QualitySettings, tissue, reference):
+    """The tissue mask to measure with (see :func:`measure_stack`), or None."""
+    if not settings.in_tissue:
+        return None
+    if tissue is None and reference is not None:
+        tissue = reference.tissue
+    if tissue is None and total is None:  # a reference measured without a mask
+        return None
+    if tissue is None:
+        return roi_tissue(total, shape[0])
+    tissue = np.asarray(tissue, bool)
+    if tissue.shape != shape[1:]:
+        raise InputError("tissue", f"mask is {tissue.shape}, the stack's planes are {shape[1:]}")
+    return tissue
 
 
 def _inherit_empty(cq: ChannelQuality, reference: ChannelQuality) -> ChannelQuality:
@@ -190,25 +236,24 @@ def _inherit_empty(cq: ChannelQuality, reference: ChannelQuality) -> ChannelQual
     return dataclasses.replace(cq, flags=flags)
 
 
-def _judge_with_ghosts(results: list[ChannelQuality], design: np.ndarray, shape,
-                       per_channel: list[QualitySettings], matrix, *, threads: int = 1
+def _judge_with_ghosts(results: list[ChannelQuality], model: GhostModel,
+                       per_channel: list[QualitySettings], *, threads: int = 1
                        ) -> list[ChannelQuality]:
-    """Redo the excess test of every channel with ghosts of the other channels in the model.
+    """Redo the excess test of every channel with region backgrounds and ghosts in the model.
 
-    ``design`` holds the bins' areas, then every channel's bin sums (data units),
-    one row each; ``shape`` is the shape of the bin grid.
+    (:func:`.ghosts.ghost_test`.)
     """
-    if len(results) < 2:
+    split = model.n_background > 1
+    if len(results) < 2 and not split:
         return results
-    gram = gram_matrix(design)
-    names = [cq.name for cq in results]
+    sources = {s.plausible_ghosts: model.sources(s) for s in per_channel}
 
     def judge(c):
         cq, s = results[c], per_channel[c]
-        # ghosts only explain more of a channel: one already empty stays empty
-        if cq.empty or (not s.ghosts and matrix is None):
+        # ghosts and regions only explain more of a channel: one already empty stays empty
+        if cq.empty or (not s.ghosts and model.matrix is None and not split):
             return cq
-        return _ghost_test(c, cq, design, gram, shape, names, s, matrix)
+        return ghost_test(c, cq, model, s, sources[s.plausible_ghosts])
 
     return _map_threads(judge, range(len(results)), threads)
 
@@ -241,69 +286,3 @@ def channel_threads(plane_shape, threads: int) -> int:
     """
     per_channel = CHANNEL_COPIES * 4 * int(np.prod(plane_shape))
     return int(max(1, min(threads, QUALITY_WORKING_BYTES // max(per_channel, 1))))
-
-
-def _ghost_test(c: int, cq: ChannelQuality, design: np.ndarray, gram: np.ndarray, shape,
-                names: list, settings: QualitySettings, matrix) -> ChannelQuality:
-    """Excess test of channel c with the other channels' ghosts in the model."""
-    target = design[c + 1].astype(np.float64)
-    areas = design[0].astype(np.float64)
-    others = [i for i in range(len(names)) if i != c]
-    if matrix is not None:
-        # The known matrix fixes the ghost pattern; its overall scale is fitted
-        # (0 .. _KNOWN_SCALE_MAX): measured sources carry their own background and
-        # spillover, so the pattern is a little off in scale, never in shape.
-        weights = np.array(matrix[:, c], dtype=np.float64)
-        weights[c] = 0.0  # a channel is no ghost of itself (no copy of the other rows)
-        ghost = combine_rows(weights, design[1:])
-        mu, coef, _ = fit_model(target, np.vstack([areas, ghost]),
-                                 np.array([np.inf, _KNOWN_SCALE_MAX]), settings)
-        slopes = matrix[others, c] * coef[1]
-    else:
-        upper = np.full(design.shape[0], settings.max_ghost)
-        upper[0] = np.inf
-        upper[c + 1] = 0.0  # a channel is no ghost of itself
-        mu, coef, _ = fit_model(target, design, upper, settings, gram=gram,
-                                 cross=gram[:, c + 1])
-        slopes = coef[[i + 1 for i in others]]
-    area = areas.reshape(shape)
-    excess_area = measure_excess_area(target.reshape(shape) * settings.counts_per_unit,
-                               mu.reshape(shape), area, settings)
-    ghost_sources = tuple(sorted(((names[i], float(v)) for i, v in zip(others, slopes, strict=True)
-                                  if v >= _REPORTED_SLOPE), key=lambda p: -p[1]))
-    flags = channel_flags(excess_area, cq.sbr, cq.saturated_fraction, settings)
-    return dataclasses.replace(cq, excess_area=excess_area, flags=flags,
-                               background_rate=float(coef[0]), ghost_sources=ghost_sources)
-
-
-def _striped_lines(sums: np.ndarray, settings: QualitySettings) -> tuple[int, ...]:
-    """Lines whose intensity drops below (1 - stripe_drop) of their neighbours', across channels.
-
-    For each channel, the line ``a`` is compared pixel by pixel with the mean
-    ``nb`` of the two lines beside it, weighting pixels by ``w + mean(w)`` where
-    ``w`` is the mean of the lines two away: ``ratio = sum(a (w + m)) / sum(nb (w
-    + m))``. Weights from lines that are neither ``a`` nor ``nb`` keep Poisson
-    noise from biasing the ratio, and weighting where the tissue is bright makes
-    the ratio about 1 wherever cells simply continue across lines; a line
-    drop-out (every pixel of one or two lines scaled down) gives a ratio near its
-    scale factor (about twice it for two adjacent lines). The ratio is taken in
-    each part of the line (:func:`_segments`) and in each channel whose
-    neighbour lines hold at least ``stripe_min_counts`` counts; a line is
-    striped when, in *every* part, the median ratio over those channels is
-    below ``1 - stripe_drop``: a drop-out spans the whole line, a natural gap
-    between cells does not. The first and last lines (neighbours on one side
-    only, where the image edge cuts cells) are not judged. ``sums`` is
-    (C, 3, segments, L) from :func:`_line_sums`.
-    """
-    num, den, near = sums[:, 0], sums[:, 1], sums[:, 2]  # (C, segments, L)
-    votes = near.sum(axis=1) * settings.counts_per_unit >= max(settings.stripe_min_counts, 1e-12)
-    usable = votes[:, None, :] & (den > 0)
-    ratio = np.where(usable, num / np.where(usable, den, 1.0), np.nan)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # parts where no channel votes
-        median = np.nanmedian(ratio, axis=0)  # (segments, L)
-        highest = np.nanmax(median, axis=0)
-    judged = usable.any(axis=0).all(axis=0)
-    judged[[0, -1]] = False
-    striped = judged & (highest < 1.0 - settings.stripe_drop)
-    return tuple(int(i) for i in np.flatnonzero(striped))

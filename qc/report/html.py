@@ -228,7 +228,7 @@ def _section_sbr(rows, done) -> str:
     washed, channels_w = _sbr_grid(rows, rois, "washed")
     out.append('<p class="note">SBR = mean(foreground) / mean(background), foreground split by '
                "Otsu's threshold on the log-scaled channel; colour is log<sub>10</sub> SBR, the "
-               "same scale in both panels. Grey cells: not measured.</p>")
+               "same scale in both panels. SBR and SNR are measured inside the tissue (Otsu split of the summed channels), glass left out. Grey cells: not measured.</p>")
     out.append(_img(plot_sbr(raw, washed, rois, channels, channels_w), "SBR heatmaps raw and washed"))
     if len(done) > HEATMAP_ROIS:
         out.append(f'<p class="note">Showing the first {HEATMAP_ROIS} of {len(done)} ROIs.</p>')
