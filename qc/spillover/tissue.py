@@ -222,8 +222,8 @@ def _estimate(rois, *, panel, all_pairs, bin_size, block, n_boot, level, max_val
     rates = np.concatenate([b.rates for b in backgrounds], axis=1)
     inside = np.concatenate([b.covariates[1] > 0 for b in backgrounds]) & usable
     area = float(bin_size * bin_size)
-    fit = _Fit(strata=strata, usable=usable, inside=inside, grids=grids, block_of=block_of, roi_of=roi_of, smooth=smooth,
-               n_boot=n_boot, max_value=max_value, area=area)
+    fit = _Fit(strata=strata, usable=usable, inside=inside, grids=grids, block_of=block_of,
+               roi_of=roi_of, smooth=smooth, n_boot=n_boot, max_value=max_value, area=area)
     values = np.eye(n)
     with threadpool_limits(limits=1, user_api="blas"):  # thousands of small solves: threads only add overhead
         for _round in range(1 + refinements):
@@ -344,9 +344,10 @@ def _ring(design, target, coef, column, usable, grids) -> float:
     region the source lies in (a diffuse stromal stain under stromal cells) raises them
     as much. The median of the receiver less its fitted background and other sources over
     that ring of bins (one bin wide), over the median ghost where it shows: near 0 for
-    spillover, about 1 or more for such a stain. A ring far above the receiver's noise
-    (beyond the biweight's cut-off) is a bright stain of the receiver's own beside the
-    source, not one that can pass for a ghost: 0 is returned.
+    spillover, about 1 or more for such a stain. A ring above the ghost by more than the
+    biweight's cut-off (in Poisson standard deviations of the ghost's bins) is a bright
+    stain of the receiver's own beside the source, which could not pass for the ghost
+    under it: 0 is returned.
     """
     from scipy import ndimage
 
@@ -364,11 +365,13 @@ def _ring(design, target, coef, column, usable, grids) -> float:
         return float("nan")
     rest = target - fitted + ghost
     level = float(np.median(rest[ring]))
-    if level > _BIWEIGHT_C * float(np.median(noise[ring])):
-        # far above the layer: the receiver's own bright stain next to the source, which
-        # the biweight rejects wherever it lies; it cannot pose as a ghost
+    shown = float(np.median(ghost[visible]))
+    if level > shown + _BIWEIGHT_C * float(np.median(np.sqrt(np.maximum(fitted[visible], 1.0)))):
+        # a stain that bright under the source would put its bins beyond the biweight's
+        # cut-off above the fitted line: it is the receiver's own bright stain beside the
+        # source (rejected wherever it lies), and cannot pose as the ghost
         return 0.0
-    return level / max(float(np.median(ghost[visible])), 1e-12)
+    return level / max(shown, 1e-12)
 
 
 def _scatter(design, target, coef, column, used) -> float:
