@@ -11,11 +11,11 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from ..errors import InputError
-from .estimates import benjamini_hochberg, check_bootstrap, rounded_estimate
+from .estimates import check_bootstrap, rounded_estimate
 from .masses import plausible_pairs
 from .matrix import SpilloverMatrix
 from .tissue_background import bin_sums, binned_background
-from .tissue_pairs import ABSENT, NOT_IDENTIFIABLE, REPORTED, TissueEstimate, TissuePair
+from .tissue_pairs import REPORTED, TissueEstimate, TissuePair, classify
 
 
 def estimate_from_tissue(rois, **settings) -> SpilloverMatrix:
@@ -233,7 +233,7 @@ def _estimate(rois, *, panel, all_pairs, bin_size, block, n_boot, level, max_val
             if _round:
                 signal = np.linalg.solve(values.T, signal)
             found = _tissue_round(counts, signal, pairs, fit, seed)
-            rows = _classify(found, level=level, min_value=min_value,
+            rows = classify(found, level=level, min_value=min_value,
                              false_pair_rate=false_pair_rate, max_width=max_width,
                              background_error=background_error, negligible=negligible)
             values, low, high = np.eye(n), np.eye(n), np.eye(n)
@@ -397,58 +397,6 @@ def _scatter(design, target, coef, column, used) -> float:
     return float(1.4826 * np.median(np.abs(r - np.median(r))))
 
 
-
-
-def _classify(found, *, level, min_value, false_pair_rate, max_width,
-              background_error, negligible, max_bias=0.25, max_scatter=2.0, max_ring=1.0) -> list[dict]:
-    """Each tested pair's status: reported, absent or not identifiable (see estimate_tissue_pairs)."""
-    from scipy.stats import norm
-
-    if not found:
-        return []
-    estimate = np.array([f["estimate"] for f in found])
-    se = np.array([f["se"] for f in found])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        p_value = np.where(np.isfinite(se) & (se > 0), norm.sf(estimate / se), 1.0)
-    p_value = np.where(np.isfinite(se) & (se == 0) & (estimate > 0), 0.0, p_value)
-    selected = benjamini_hochberg(p_value, false_pair_rate)
-    m, r = len(found), int(selected.sum())
-    # intervals of the selected pairs at the false-coverage-adjusted level (Benjamini &
-    # Yekutieli 2005): 1 - R (1 - level) / m
-    z = float(norm.ppf(1.0 - max(r, 1) * (1.0 - level) / (2.0 * m)))
-    rows = []
-    for f, p, sel in zip(found, p_value, selected, strict=True):
-        s, e = f["estimate"], f["se"]
-        low, high = s - z * e, s + z * e
-        bias = background_error * f["background"] / f["level"] if f["level"] > 0 else np.inf
-        row = dict(f, p_value=float(p), low=low, high=high, estimate=s)
-        if f["dropped"] and s > 0:
-            row.update(status=NOT_IDENTIFIABLE, reason="co-occurs with the receiver's stain",
-                       low=0.0, high=0.0)
-        elif f["dropped"]:
-            row.update(status=ABSENT, reason="slope below 0", low=0.0, high=0.0)
-        elif bias > max_bias * max(s, negligible):
-            row.update(status=NOT_IDENTIFIABLE,
-                       reason=f"source dim ({f['level']:.3g} counts per pixel; a "
-                              f"{background_error:.0%} background error would read as {bias:.2%})")
-        elif f["ring"] > max_ring:
-            row.update(status=NOT_IDENTIFIABLE,
-                       reason=f"receiver as high around the source as on it (its own stain over "
-                              f"the source's region; {f['ring']:.1f} x the ghost)")
-        elif f["scatter"] > max_scatter:
-            row.update(status=NOT_IDENTIFIABLE,
-                       reason=f"receiver's own stain goes with the source (scatter "
-                              f"{f['scatter']:.1f} x Poisson where the ghost shows)")
-        elif sel and s >= min_value and z * e <= max_width * s:
-            row.update(status=REPORTED, reason="")
-        elif sel and s >= min_value:
-            row.update(status=NOT_IDENTIFIABLE, reason="interval wide")
-        elif high < negligible:
-            row.update(status=ABSENT, reason=f"below {negligible:.2%}")
-        else:
-            row.update(status=NOT_IDENTIFIABLE, reason="interval wide")
-        rows.append(row)
-    return rows
 
 
 def _binned_tissue(rois, panel, bin_size, block, hot_ratio, hot_min_excess):
