@@ -9,7 +9,7 @@ What a run writes into its output folder
 - ``quality.csv``: one row per ROI x channel x stage (``raw`` / ``washed``), rebuilt from
   the ledger at the end of every run, with cohort outliers flagged (modified z-score);
 - ``report.html``: the cohort's QC report (:func:`plexwash.qc.report.write_report`);
-- ``recipe.toml`` (+ ``spillover.csv`` and ``panel.csv`` when used): the recipe exactly as
+- ``recipe.toml`` (+ ``spillover.csv`` and ``stains.csv`` when used): the recipe exactly as
   applied, self-contained (its ``[compensation] spillover`` names the copy beside it);
 - ``run.log``: timestamped progress lines of every run into this folder.
 
@@ -34,7 +34,7 @@ Resume and safety
 -----------------
 A rerun skips an ROI whose latest ledger record is ``done`` when its output still exists
 and hashes to the recorded ``output_sha256``, and the input, recipe, spillover matrix,
-panel and plexwash version are unchanged; everything else is (re)done. Outputs are written
+stains and plexwash version are unchanged; everything else is (re)done. Outputs are written
 under a temporary name and renamed, ledger lines are appended one at a time and fsynced,
 so ``kill -9`` loses only the ROIs in flight; leftover temporary files are removed when
 the next run starts. Ctrl-C (or SIGTERM) stops the run: nothing is recorded for the ROIs
@@ -61,12 +61,12 @@ live outside this package: the report reads them too, and the run calls the repo
 
 from ..ledger import (
     LEDGER,
-    PANEL_COPY,
     QUALITY,
     RECIPE,
     REPORT,
     RUN_LOG,
     SPILLOVER_COPY,
+    STAINS_COPY,
     Ledger,
     json_ready,
     latest_records,
@@ -96,7 +96,7 @@ __all__ = [
     "LEDGER",
     "OUTLIER_CUTOFF",
     "OUTLIER_MIN_ROIS",
-    "PANEL_COPY",
+    "STAINS_COPY",
     "QUALITY",
     "QUALITY_FIRST_COLUMNS",
     "RECIPE",

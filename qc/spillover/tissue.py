@@ -31,7 +31,7 @@ def estimate_tissue_pairs(
     rois,
     *,
     all_pairs: bool = False,
-    panel=None,
+    stains=None,
     bin_size: int = 4,
     block: int = 64,
     n_boot: int = 200,
@@ -114,11 +114,11 @@ def estimate_tissue_pairs(
     Parameters
     ----------
     rois : sequence of Roi or paths
-        ROIs of one panel (pooled: slopes shared, backgrounds per ROI). Paths are read
+        ROIs of one stain sheet (pooled: slopes shared, backgrounds per ROI). Paths are read
         with :func:`plexwash.qc.io.read_roi`.
     all_pairs : bool
         Fit every source for every receiver, not just the plausible ones.
-    panel : str, Path or Panel, optional
+    stains : str, Path or StainSheet, optional
         For plain TIFF ROIs.
     bin_size : int
         Block edge in pixels for step 1.
@@ -199,17 +199,17 @@ def estimate_tissue_pairs(
         raise InputError("background_error", f"background_error must be >= 0, got {background_error!r}")
     if not 0.0 <= negligible < max_value:
         raise InputError("negligible", f"negligible must be in [0, max_value), got {negligible!r}")
-    return _estimate(rois, panel=panel, all_pairs=all_pairs, bin_size=bin_size, block=block,
+    return _estimate(rois, stains=stains, all_pairs=all_pairs, bin_size=bin_size, block=block,
                      n_boot=n_boot, level=level, max_value=max_value, min_value=min_value,
                      refinements=refinements, neighbourhood=neighbourhood, hot_ratio=hot_ratio,
                      hot_min_excess=hot_min_excess, seed=seed, false_pair_rate=false_pair_rate,
                      max_width=max_width, background_error=background_error, negligible=negligible)
 
 
-def _estimate(rois, *, panel, all_pairs, bin_size, block, n_boot, level, max_value, min_value,
+def _estimate(rois, *, stains, all_pairs, bin_size, block, n_boot, level, max_value, min_value,
               refinements, neighbourhood, hot_ratio, hot_min_excess, seed, false_pair_rate,
               max_width, background_error, negligible) -> TissueEstimate:
-    channels, binned, blocks, grids, backgrounds = _binned_tissue(rois, panel, bin_size, block,
+    channels, binned, blocks, grids, backgrounds = _binned_tissue(rois, stains, bin_size, block,
                                                                   hot_ratio, hot_min_excess)
     smooth = functools.partial(_smooth_blocks, grids=grids, size=neighbourhood)
     n = len(channels)
@@ -399,7 +399,7 @@ def _scatter(design, target, coef, column, used) -> float:
 
 
 
-def _binned_tissue(rois, panel, bin_size, block, hot_ratio, hot_min_excess):
+def _binned_tissue(rois, stains, bin_size, block, hot_ratio, hot_min_excess):
     """Per ROI: bin sums (C, bins) after hot-pixel restoration, each bin's bootstrap block,
     the ROI's bin grid and its background strata (:func:`.tissue_background.binned_background`)."""
     from ..io import Roi, read_roi
@@ -407,7 +407,7 @@ def _binned_tissue(rois, panel, bin_size, block, hot_ratio, hot_min_excess):
 
     if isinstance(rois, (str, Path, Roi)):
         rois = [rois]
-    rois = [r if isinstance(r, Roi) else read_roi(r, panel=panel) for r in rois]
+    rois = [r if isinstance(r, Roi) else read_roi(r, stains=stains) for r in rois]
     if not rois:
         raise InputError("rois", "no ROI given")
     channels = rois[0].channels
