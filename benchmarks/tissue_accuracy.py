@@ -67,7 +67,6 @@ from _common import load_example  # noqa: E402
 from plexwash.qc import (  # noqa: E402
     SpilloverMatrix,
     default_recipe,
-    estimate_from_tissue,
     measure_stack,
     quality_rows,
     read_roi,
@@ -283,9 +282,17 @@ def quality_flags(roi, washed: np.ndarray, matrix: np.ndarray, recipe) -> dict:
 
 
 def spillover_figures(rois: list[dict], n_boot: int) -> dict:
-    """Tissue estimate (all ROIs pooled) against the true matrix."""
+    """Tissue estimate (all ROIs pooled) against the true matrix.
+
+    Pairs the estimator reports as not identifiable are 0 in its matrix: an identifiable
+    pair (by the truth) it refuses counts as not within 25 %, a false pair it refuses does
+    not count as false. (The matrix is :func:`plexwash.qc.estimate_from_tissue`'s.)
+    """
+    from plexwash.qc.spillover import estimate_tissue_pairs
+
     names = list(rois[0]["channels"])
-    estimate = estimate_from_tissue([t["path"] for t in rois], n_boot=n_boot)
+    result = estimate_tissue_pairs([t["path"] for t in rois], n_boot=n_boot)
+    estimate = result.matrix
     order = [list(estimate.channels).index(c) for c in names]
     est = estimate.values[np.ix_(order, order)]
     true = rois[0]["matrix"]
@@ -312,6 +319,9 @@ def spillover_figures(rois: list[dict], n_boot: int) -> dict:
         "within 25 %": int((identifiable & within).sum()),
         "missed": [(names[i], names[j], float(true[i, j]), float(est[i, j]))
                    for i, j in zip(*np.nonzero(identifiable & ~within), strict=True)],
+        "not identifiable": len(result.not_identifiable),
+        "identifiable refused": int(sum(identifiable[names.index(p.source), names.index(p.receiver)]
+                                        for p in result.not_identifiable)),
     }
 
 

@@ -193,7 +193,7 @@ class SpilloverWidget(StudioWidget):
                                   "names carry masses (M±1, same-element impurities, oxides M+16)")
         layout.addWidget(self.all_pairs)
         tissue = QPushButton("Estimate from the cohort's tissue (no controls)")
-        tissue.setToolTip("lower envelope of each plausible channel pair over the cohort's ROIs")
+        tissue.setToolTip("lower layer of each plausible pair, background per tissue/glass region; pairs the tissue cannot identify stay 0")
         tissue.clicked.connect(self.estimate_tissue)
         layout.addWidget(tissue)
 

@@ -267,13 +267,20 @@ def _spill_controls(args) -> int:
 
 
 def _spill_tissue(args) -> int:
+    from .files import check_output, reached_inputs
     from .io import read_roi
-    from .spillover import estimate_from_tissue
+    from .spillover.tissue import estimate_tissue_pairs
+    from .spillover.tissue_pairs import not_identifiable_path, write_not_identifiable
 
     out = _spill_output(args, [*args.rois, args.stains])
+    unknown = check_output(not_identifiable_path(out), reached_inputs([*args.rois, args.stains]), kind="csv")
     rois = [read_roi(path, stains=args.stains) for path in args.rois]
-    matrix = estimate_from_tissue(rois, all_pairs=args.all_pairs)
-    return _write_matrix(args, out, matrix)
+    estimate = estimate_tissue_pairs(rois, all_pairs=args.all_pairs)
+    code = _write_matrix(args, out, estimate.matrix)
+    write_not_identifiable(unknown, estimate)
+    print(f"{len(estimate.not_identifiable)} pairs not identifiable from the tissue (0 in the matrix), "
+          f"listed in {unknown.name}; false-pair rate {estimate.false_pair_rate:.0%} (Benjamini-Hochberg)")
+    return code
 
 
 def _spill_output(args, inputs) -> Path:

@@ -321,6 +321,8 @@ def _csv_is_ours(path: Path) -> bool:
         return all(len(r) == 3 and r[2] in ("yes", "no") for r in rows[1:])
     if header[:4] == ["roi", "channel", "label", "stage"]:
         return all(len(r) == len(header) for r in rows[1:])
+    if header == ["source", "receiver", "reason", "estimate", "low", "high", "p_value", "source_level"]:
+        return all(len(r) == len(header) for r in rows[1:])  # a tissue estimate's not-identifiable list
     if header[:1] != [""] or len(rows) != len(header) or [r[0] for r in rows[1:]] != header[1:]:
         return False
     try:

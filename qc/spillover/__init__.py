@@ -14,7 +14,9 @@ Modules
     element, M + 16).
     :mod:`.solver`: :func:`compensate`; its compiled kernels are in :mod:`._nnls`.
     :mod:`.controls`: :func:`estimate_from_controls` (single-stain controls).
-    :mod:`.tissue`: :func:`estimate_from_tissue` (the tissue itself, no controls).
+    :mod:`.tissue`: :func:`estimate_tissue_pairs` / :func:`estimate_from_tissue` (the
+    tissue itself, no controls); its background strata in :mod:`.tissue_background`, the
+    not-identifiable list in :mod:`.tissue_pairs`.
     :mod:`.estimates`: what the two estimators share.
 
 Both estimators estimate only the physically plausible pairs of :func:`plausible_pairs`
@@ -27,12 +29,15 @@ from .files import read_spillover, write_spillover
 from .masses import OXIDE_SHIFT, channel_mass, plausible_pairs
 from .matrix import CONDITION_LIMIT, SpilloverMatrix, align_spillover, check_spillover
 from .solver import compensate, compensate_array
-from .tissue import estimate_from_tissue
+from .tissue import estimate_from_tissue, estimate_tissue_pairs
+from .tissue_pairs import TissueEstimate, TissuePair
 
 __all__ = [
     "CONDITION_LIMIT",
     "OXIDE_SHIFT",
     "SpilloverMatrix",
+    "TissueEstimate",
+    "TissuePair",
     "align_spillover",
     "channel_mass",
     "check_spillover",
@@ -40,6 +45,7 @@ __all__ = [
     "compensate_array",
     "estimate_from_controls",
     "estimate_from_tissue",
+    "estimate_tissue_pairs",
     "interval_paths",
     "plausible_pairs",
     "read_spillover",
