@@ -81,6 +81,12 @@ class QualitySettings:
     stripe_min_counts: float = setting(
         25.0, "a channel judges a row (column) only when its neighbour lines hold this many counts",
         low=0.0, high=1e12)
+    batch_alpha: float = setting(
+        0.001, "cohort: flag batch-effect when the batches' Kruskal-Wallis p is below this ...",
+        low=0.0, low_open=True, high=0.5)
+    batch_fold: float = setting(
+        1.25, "... and the highest batch median is at least this many times the lowest",
+        low=1.0, high=1e6)
 
 
 #: The default thresholds (a frozen object, safe as a default argument).
