@@ -445,9 +445,13 @@ def _section_spillover(matrix, error, recipe) -> str:
 
 def _thumbnail_choice(done, rows, limit) -> list[str]:
     """Outlier ROIs first, then flagged ones, then the rest by name."""
+    flags: dict[str, set] = {}
+    for row in rows:
+        flags.setdefault(row["roi"], set()).update(row.get("flags") or [])
+
     def rank(name):
-        flags = [f for r in rows if r["roi"] == name for f in (r.get("flags") or [])]
-        return (0 if "outlier" in flags else 1 if flags else 2, name)
+        found = flags.get(name, set())
+        return (0 if "outlier" in found else 1 if found else 2, name)
 
     return sorted(done, key=rank)[:max(0, limit)]
 
