@@ -248,7 +248,7 @@ def batch_differences(table: Iterable[Mapping], *, alpha: float = 0.001, fold: f
     Examples
     --------
     >>> rows = [{"roi": f"{b}{k}", "channel": "CD3", "stage": "raw", "batch": b,
-    ...          "sbr": (30.0 if b == "B" else 10.0) + k} for b in "AB" for k in range(5)]
+    ...          "sbr": (30.0 if b == "B" else 10.0) + k} for b in "AB" for k in range(8)]
     >>> [(d["metric"], d["differs"]) for d in batch_differences(rows, metrics=["sbr"])]
     [('sbr', True)]
     """
