@@ -51,7 +51,7 @@ def quality_table(out_dir) -> list[dict]:
         if record is None or record.get("status") != "done":
             continue
         removed = record.get("removed_fraction") or {}
-        sample = samples.get(name, record.get("sample") or {})
+        sample = samples.get(name, {})  # the run's sheet copy (records keep the one they ran with)
         for row in record.get("quality", []):
             row = {**{k: v for k, v in sample.items() if k not in row}, **row}
             row["roi"] = name  # the ROI's id (its path in the cohort)

@@ -166,3 +166,20 @@ def test_per_batch_spillover_is_recorded_and_guarded(nested, tmp_path):
         check_output(tmp_path / "spill_B1.csv", inputs)
     with pytest.raises(InputError, match="input"):
         check_output(cohort / "samples.csv", reached_inputs([cohort]))
+
+
+@pytest.mark.slow
+def test_dropping_the_sheet_drops_the_batches(nested, tmp_path):
+    import shutil
+
+    cohort = tmp_path / "cohort"
+    shutil.copytree(nested, cohort)
+    out = tmp_path / "run"
+    run_cohort(cohort, out, progress=False)
+    assert (out / "samples.csv").is_file()
+    (cohort / "samples.csv").unlink()
+    summary = run_cohort(cohort, out, progress=False)
+    assert summary.skipped == 16
+    assert not (out / "samples.csv").exists()
+    with open(out / "quality.csv", newline="") as fh:
+        assert "batch" not in next(csv.reader(fh))

@@ -140,12 +140,8 @@ def _gather(out_dir: Path) -> dict:
 
 
 def _samples(out_dir: Path, latest: Mapping) -> dict[str, dict]:
-    """Each ROI's sample columns: the run's sheet copy, else what its ledger record carries."""
-    samples = read_samples_copy(out_dir)
-    for name, record in latest.items():
-        if name not in samples and record.get("sample"):
-            samples[name] = dict(record["sample"])
-    return samples
+    """Each ROI's sample columns from the run's sheet copy (only ROIs the ledger knows)."""
+    return {name: row for name, row in read_samples_copy(out_dir).items() if name in latest}
 
 
 def _names(latest: Mapping) -> list[str]:

@@ -16,7 +16,7 @@ import re
 from collections.abc import Mapping
 from pathlib import Path
 
-from ..files import interval_paths, write_atomic
+from ..files import interval_paths, remove_path, write_atomic, written_by_plexwash
 from ..table import SAMPLES_COPY
 
 #: Copies of per-batch spillover matrices in a run folder: ``spillover-batch-<batch>.csv``.
@@ -95,7 +95,9 @@ def _copy_names(matrices: Mapping[str, object]) -> dict[str, str]:
 
 def write_sample_files(out: Path, samples: SampleInputs | None) -> dict[str, tuple[Path, str]]:
     """Write the run's sample sheet copy and per-batch matrices; batch -> (matrix copy, sha256)."""
-    if samples is None:
+    if samples is None:  # a sheet dropped since the last run: its copy no longer speaks
+        if written_by_plexwash(out / SAMPLES_COPY):
+            remove_path(out / SAMPLES_COPY)
         return {}
     from ..io import sha256_path
     from ..spillover import write_spillover
