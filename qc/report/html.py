@@ -279,12 +279,15 @@ def _section_sbr(rows, done, samples) -> str:
                + (f" ROIs are shown by batch or slide, at most {HEATMAP_ROIS} per image." if
                   len(rois) > HEATMAP_ROIS or any("/" in r for r in rois) or samples else "")
                + "</p>")
+    values = [_float(r.get("sbr")) for r in rows if r["roi"] in measured]
+    logs = np.log10([v for v in values if v is not None and v > 0] or [1.0, 10.0])
+    limits = (float(logs.min()), float(max(logs.max(), logs.min() + 1e-6)))  # one scale for all pages
     for title, page in _pages(rois, samples):
         raw, channels = _sbr_grid(rows, page, "raw")
         washed, channels_w = _sbr_grid(rows, page, "washed")
         if title:
             out.append(f"<h3>{title}</h3>")
-        out.append(_img(plot_sbr(raw, washed, page, channels, channels_w),
+        out.append(_img(plot_sbr(raw, washed, page, channels, channels_w, limits=limits),
                         f"SBR heatmaps raw and washed {title}".strip()))
     out.append("</section>")
     return "\n".join(out)
@@ -398,11 +401,14 @@ def _section_removed(latest, done, samples) -> str:
         lines.append(f"<tr><td>{_e(name)}</td>{''.join(cells)}</tr>")
     out.append(sortable_table("removed-table", ["ROI", *(f"{_e(step(s).label)}: mean / max %"
                                                        for s in steps)], lines))
+    every = [g for s in steps for g in [_removed_grid(latest, rois, s)[0]] if np.isfinite(g).any()]
+    top = max([float(np.nanmax(g)) for g in every] + [1e-4])  # one scale for all pages
     for title, page in _pages(rois, samples):
         grids = [(s, *_removed_grid(latest, page, s)) for s in steps]
         if title:
             out.append(f"<h3>{title}</h3>")
-        out.append(_img(plot_removed(grids, page), f"removed fraction heatmaps per step {title}".strip()))
+        out.append(_img(plot_removed(grids, page, top=top),
+                        f"removed fraction heatmaps per step {title}".strip()))
     out.append("</section>")
     return "\n".join(out)
 

@@ -146,7 +146,7 @@ def contact_sheets(thumbs: Mapping[str, tuple[Sequence[str], np.ndarray]],
                 mark = marks.get((name, channel), "")
                 tiles.append(f'<i class="s{c}{" " + mark if mark else ""}" style="background-position:'
                              f'-{x}px -{y}px" title="{_e(name)}" data-roi="{_e(name)}"></i>')
-            title = f"<h4>{_e(group)} <span>({len(names)} ROI(s))</span></h4>" if group else ""
+            title = f"<h4>{_e(group)} <span>· {len(names)} ROI(s)</span></h4>" if group else ""
             body.append(f'<div class="group">{title}<div class="sheet">{"".join(tiles)}</div></div>')
         note = f"black {lo_hi[0]:.3g}, white {lo_hi[1]:.3g}"
         parts.append(f'<details class="channel"{" open" if c == 0 else ""}><summary>{_e(channel)} '

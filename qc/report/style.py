@@ -48,6 +48,10 @@ pre { background: var(--stains); border: 1px solid var(--line); padding: 8px; ov
 table.sortable thead th { cursor: pointer; position: sticky; top: 0; }
 table.sortable th[aria-sort=ascending]::after { content: " \\25B2"; font-size: 9px; }
 table.sortable th[aria-sort=descending]::after { content: " \\25BC"; font-size: 9px; }
+div.scroll { max-height: 30em; overflow: auto; border: 1px solid var(--line); display: inline-block;
+              max-width: 100%; }
+div.scroll table { margin: 0; }
+table.sortable thead th { z-index: 1; }
 .filterbar { display: flex; gap: 10px; align-items: center; margin: 6px 0 2px; }
 .filterbar input { font: inherit; padding: 2px 6px; width: 22em; border: 1px solid var(--line); }
 details.channel { margin: 4px 0; } details.channel > summary { font-weight: 600; }

@@ -54,19 +54,25 @@ SCRIPT = """(function () {
 })();"""
 
 
+#: Tables longer than this scroll in a box of their own (header kept in view).
+SCROLL_ROWS = 25
+
+
 def sortable_table(table_id: str, headers: Sequence[str], rows: Iterable[str], *,
                    filter_hint: str = "filter rows (e.g. a batch or a flag)") -> str:
     """A table whose columns sort on click, with a filter box above it.
 
-    ``headers`` are HTML; ``rows`` are ready ``<tr>...</tr>`` strings.
+    ``headers`` are HTML; ``rows`` are ready ``<tr>...</tr>`` strings. A long table scrolls
+    in its own box so a cohort of hundreds of ROIs does not bury the sections after it.
     """
     rows = list(rows)
     head = "".join(f'<th title="sort">{h}</th>' for h in headers)
     return (f'<div class="filterbar"><input class="filter" type="search" data-table="{_e(table_id)}" '
             f'placeholder="{_e(filter_hint)}" aria-label="{_e(filter_hint)}">'
             f'<span class="note">{len(rows)} row(s)</span></div>'
+            f'<div class="{"scroll" if len(rows) > SCROLL_ROWS else "plain"}">'
             f'<table class="sortable" id="{_e(table_id)}"><thead><tr>{head}</tr></thead>'
-            f'<tbody>{"".join(rows)}</tbody></table>')
+            f'<tbody>{"".join(rows)}</tbody></table></div>')
 
 
 def section_batches(batches: list[Mapping], samples: Mapping[str, Mapping], alpha: float,
