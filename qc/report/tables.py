@@ -66,7 +66,7 @@ def sortable_table(table_id: str, headers: Sequence[str], rows: Iterable[str], *
     in its own box so a cohort of hundreds of ROIs does not bury the sections after it.
     """
     rows = list(rows)
-    head = "".join(f'<th title="sort">{h}</th>' for h in headers)
+    head = "".join(f"<th>{h}</th>" for h in headers)
     return (f'<div class="filterbar"><input class="filter" type="search" data-table="{_e(table_id)}" '
             f'placeholder="{_e(filter_hint)}" aria-label="{_e(filter_hint)}">'
             f'<span class="note">{len(rows)} row(s)</span></div>'
