@@ -76,6 +76,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("cohort", type=Path, help="folder of ROIs")
     p.add_argument("-o", "--output", type=Path, required=True, help="run folder (rerun to resume)")
     _wash_options(p)
+    p.add_argument("--samples", type=Path,
+                   help="samples.csv (file,batch[,...]; default: samples.csv in the cohort folder)")
     p.add_argument("--workers", type=int, help="start a local dask.distributed cluster of N workers")
     p.add_argument("--scheduler", help="join a running dask.distributed scheduler (tcp://host:port)")
     p.add_argument("--connect-timeout", type=float, default=5.0, metavar="SECONDS",
@@ -361,7 +363,8 @@ def _run(args) -> int:
     from .run import run_cohort
 
     summary = run_cohort(args.cohort, args.output, recipe=args.recipe, spillover=args.spillover,
-                         stains=args.stains, workers=args.workers, scheduler=args.scheduler,
+                         stains=args.stains, samples=args.samples, workers=args.workers,
+                         scheduler=args.scheduler,
                          connect_timeout=args.connect_timeout, progress=not args.quiet,
                          staging_dir=os.environ.get(STAGING_ENV) or None)
     _print_summary(summary)

@@ -319,7 +319,8 @@ def _csv_is_ours(path: Path) -> bool:
     header = rows[0]
     if header == ["tag", "marker", "wash"]:
         return all(len(r) == 3 and r[2] in ("yes", "no") for r in rows[1:])
-    if header[:4] == ["roi", "channel", "label", "stage"]:
+    if (header[:4] == ["roi", "channel", "label", "stage"] or header[:2] == ["roi", "batch"]
+            or header[:3] == ["channel", "stage", "metric"]):  # quality, sample sheet copy, batches
         return all(len(r) == len(header) for r in rows[1:])
     if header == ["source", "receiver", "reason", "estimate", "low", "high", "p_value", "source_level"]:
         return all(len(r) == len(header) for r in rows[1:])  # a tissue estimate's not-identifiable list
@@ -485,7 +486,8 @@ def _ledger_inputs(ledger: Path) -> list[Path]:
 
 
 def _controls_files(path: Path) -> list[Path]:
-    """The files a controls CSV (``file,channel``) lists; nothing for another CSV."""
+    """The files a controls CSV (``file,channel``) or a sample sheet (``file,batch[,spillover]``)
+    lists; nothing for another CSV."""
     import csv
 
     try:
@@ -497,10 +499,11 @@ def _controls_files(path: Path) -> list[Path]:
     header = [c.strip().lower() for c in rows[0]]
     if "file" not in header:
         return []
-    column = header.index("file")
+    columns = [header.index(c) for c in ("file", "spillover") if c in header]
     found = []
     for row in rows[1:]:
-        if len(row) > column and row[column].strip():
-            name = Path(row[column].strip())
-            found.append(name if name.is_absolute() else path.parent / name)
-    return found
+        for column in columns:
+            if len(row) > column and row[column].strip():
+                name = Path(row[column].strip())
+                found.append(name if name.is_absolute() else path.parent / name)
+    return list(dict.fromkeys(found))

@@ -25,8 +25,8 @@ from plexwash.qc.report import (
 )
 from plexwash.qc.run import Ledger, read_ledger, run_cohort
 
-SECTIONS = ("cautions", "summary", "sbr", "flags", "outliers", "removed", "spillover",
-            "thumbnails", "provenance")
+SECTIONS = ("cautions", "summary", "sbr", "batches", "flags", "outliers", "removed", "spillover",
+            "sheets", "thumbnails", "provenance")
 CHANNELS = ["Nd143", "Nd144", "Nd145", "Nd146", "Gd160", "Ir191"]
 CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"
 
@@ -107,12 +107,15 @@ def test_report_images_are_embedded_pngs(run_dir):
 
 def test_report_has_no_external_reference(run_dir):
     page = _parse(run_dir / "report.html")
-    assert not {"script", "link", "iframe", "object", "embed"} & set(page.tags)
+    assert not {"link", "iframe", "object", "embed"} & set(page.tags)
+    assert page.tags.count("script") == 1  # the inline table script, no src
+    assert not any(tag == "script" and key == "src" for tag, key, _ in page.attributes)
     for tag, key, value in page.attributes:
         if key in ("src", "href", "action", "srcset", "poster", "data"):
             assert value.startswith(("data:", "#")), (tag, key, value[:60])
     css = " ".join(page.styles)
-    assert "url(" not in css and "@import" not in css and "@font-face" not in css
+    assert css.count("url(") == css.count("url(data:image/png;base64,")  # contact-sheet sprites
+    assert "@import" not in css and "@font-face" not in css
     raw = (run_dir / "report.html").read_text(encoding="utf-8")
     assert "http://" not in raw and "https://" not in raw
 

@@ -3,13 +3,17 @@
 from __future__ import annotations
 
 import dataclasses
-from pathlib import Path
+import os
+from collections.abc import Iterable
+from pathlib import Path, PurePosixPath
 
 from ..errors import InputError
 from ..settings import setting
 
 TIFF_SUFFIXES = (".ome.tiff", ".ome.tif", ".tiff", ".tif")
 ZARR_SUFFIXES = (".ome.zarr", ".zarr")
+#: A run folder holds this file (the ledger); a cohort search never enters one.
+RUN_LEDGER = "ledger.jsonl"
 
 
 @dataclasses.dataclass(frozen=True)
@@ -55,8 +59,13 @@ def is_roi_path(path: str | Path) -> bool:
     return not name.startswith(".") and name.endswith(TIFF_SUFFIXES + ZARR_SUFFIXES)
 
 
-def list_cohort(folder: str | Path) -> list[Path]:
-    """ROI files and folders of a cohort, sorted by name.
+def list_cohort(folder: str | Path, *, skip: Iterable[str | Path] = ()) -> list[Path]:
+    """ROI files and folders of a cohort, at any depth, sorted by their ROI id.
+
+    Subfolders (slides) are searched to any depth. Hidden folders (``.name``), run
+    folders (they hold a ``ledger.jsonl``), ROI folders (``.ome.zarr``: an ROI, not a
+    slide) and the folders in ``skip`` (e.g. a run folder inside the cohort) are not
+    descended; a folder reached twice through symbolic links (a loop) is read once.
 
     Raises
     ------
@@ -68,19 +77,68 @@ def list_cohort(folder: str | Path) -> list[Path]:
         raise InputError(folder, "is a file; give the folder that holds the cohort's ROIs")
     if not folder.is_dir():
         raise InputError(folder, "cohort folder not found")
-    rois = sorted(p for p in folder.iterdir() if is_roi_path(p))
+    skipped = {os.path.realpath(p) for p in skip}
+    rois: list[Path] = []
+    seen: set[tuple[int, int]] = set()
+    pending = [folder]
+    while pending:
+        current = pending.pop()
+        try:
+            info = current.stat()
+            entries = sorted(current.iterdir())
+        except OSError:
+            continue  # unreadable or a dangling link: nothing of it can be an ROI
+        if (info.st_dev, info.st_ino) in seen:
+            continue  # reached again through a link: a loop or a second way in
+        seen.add((info.st_dev, info.st_ino))
+        for entry in entries:
+            if is_roi_path(entry) and (entry.is_file() or entry.is_dir()):
+                rois.append(entry)
+            elif entry.is_dir() and not _skip_folder(entry, skipped):
+                pending.append(entry)
     if not rois:
-        raise InputError(folder, "no ROI found (expected .ome.tiff, .tiff or .ome.zarr files)")
-    return rois
+        raise InputError(folder, "no ROI found (expected .ome.tiff, .tiff or .ome.zarr files, "
+                         "in the folder or its subfolders)")
+    return sorted(rois, key=lambda p: roi_id(p, folder))
+
+
+def _skip_folder(path: Path, skipped: set[str]) -> bool:
+    """Folders a cohort search does not enter: hidden ones, run folders, those asked for."""
+    return (path.name.startswith(".") or (path / RUN_LEDGER).is_file()
+            or os.path.realpath(path) in skipped)
+
+
+def roi_id(path: str | Path, cohort: str | Path) -> str:
+    """An ROI's id: its path relative to the cohort folder, POSIX separators, no image suffix.
+
+    A flat cohort's ids are the plain stems (as before nested cohorts existed, so earlier
+    ledgers resume); ROIs in subfolders keep their folders, so equal names in different
+    slides stay distinct.
+
+    Examples
+    --------
+    >>> roi_id("cohort/slide03/r07.ome.tiff", "cohort")
+    'slide03/r07'
+    >>> roi_id("cohort/roi_01.ome.tiff", "cohort")
+    'roi_01'
+    """
+    path, cohort = Path(path), Path(cohort)
+    try:
+        relative = path.relative_to(cohort)
+    except ValueError:
+        relative = Path(os.path.relpath(path, cohort))
+    return PurePosixPath(*relative.parent.parts, roi_stem(path)).as_posix()
 
 
 def output_name(stem: str, settings=None) -> str:
-    """File name of a washed stack for an ROI stem.
+    """File name of a washed stack for an ROI id (relative, POSIX separators).
 
     Examples
     --------
     >>> output_name("roi_01")
     'roi_01.ome.tiff'
+    >>> output_name("slide03/r07")
+    'slide03/r07.ome.tiff'
     """
     settings = settings or OutputSettings()
     return stem + (".ome.zarr" if settings.format == "ome-zarr" else ".ome.tiff")

@@ -12,7 +12,7 @@ the studio.
 
 Modules: :mod:`.settings` (thresholds, flag names), :mod:`.channel` (one channel),
 :mod:`.excess` (the excess test's model fits), :mod:`.stack` (one ROI: ghosts,
-stripes), :mod:`.cohort` (outliers), :mod:`.rows` (table rows, :func:`measure_roi`),
+stripes), :mod:`.cohort` (outliers, batch test), :mod:`.rows` (table rows, :func:`measure_roi`),
 :mod:`._kernels` (compiled one-pass kernels).
 
 How a channel is measured
@@ -81,7 +81,19 @@ also be ``low-sbr``.
 """
 
 from .channel import ChannelQuality, measure_channel, region_snr
-from .cohort import add_outlier_flags, cohort_outliers, modified_z_scores
+from .cohort import (
+    BATCH_EFFECT_FLAG,
+    BATCH_METRICS,
+    BATCH_OUTLIER_FLAG,
+    MIN_BATCH_ROIS,
+    add_batch_outlier_flags,
+    add_outlier_flags,
+    batch_differences,
+    batch_effect_channels,
+    cohort_outliers,
+    kruskal_wallis,
+    modified_z_scores,
+)
 from .rows import RoiQuality, measure_roi, quality_rows
 from .settings import CHANNEL_FLAGS, FLAG_SEPARATOR, OUTLIER_FLAG, ROI_FLAGS, QualitySettings
 from .stack import StackQuality, channel_threads, measure_stack
@@ -95,7 +107,15 @@ __all__ = [
     "QualitySettings",
     "RoiQuality",
     "StackQuality",
+    "BATCH_EFFECT_FLAG",
+    "BATCH_METRICS",
+    "BATCH_OUTLIER_FLAG",
+    "MIN_BATCH_ROIS",
+    "add_batch_outlier_flags",
     "add_outlier_flags",
+    "batch_differences",
+    "batch_effect_channels",
+    "kruskal_wallis",
     "channel_threads",
     "cohort_outliers",
     "measure_channel",

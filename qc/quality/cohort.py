@@ -1,4 +1,5 @@
-"""Across ROIs: modified z-scores and cohort outliers (Iglewicz & Hoaglin 1993)."""
+"""Across ROIs: modified z-scores and cohort outliers (Iglewicz & Hoaglin 1993), overall and
+within batch, and the batch test (Kruskal-Wallis) of each channel."""
 
 from __future__ import annotations
 
@@ -170,3 +171,144 @@ def _add_flag(flags, flag: str):
         return FLAG_SEPARATOR.join(parts if flag in parts else parts + [flag])
     parts = list(flags or [])
     return parts if flag in parts else parts + [flag]
+
+
+# --------------------------------------------------------------------------- batches
+
+#: ROI-level statistics compared between batches: column of the quality table -> what it is.
+BATCH_METRICS = {"sbr": "signal-to-background ratio", "background_mean": "background level",
+                 "p99": "signal (99th percentile)"}
+#: Batches with fewer ROIs than this take no part in a channel's batch test (common practice:
+#: the chi-squared approximation of the Kruskal-Wallis H needs more than a handful per group).
+MIN_BATCH_ROIS = 3
+#: Flag on quality rows whose metric is far from the other ROIs of the same batch.
+BATCH_OUTLIER_FLAG = "batch-outlier"
+#: Verdict on a channel whose batches differ (the batch table and the report).
+BATCH_EFFECT_FLAG = "batch-effect"
+
+
+def kruskal_wallis(*groups) -> tuple[float, float]:
+    """Kruskal-Wallis H test of k independent samples: ``(H, p)``.
+
+    Ranks all values together (ties get their average rank),
+    ``H = 12 / (N (N + 1)) * sum(R_i^2 / n_i) - 3 (N + 1)`` divided by the tie correction
+    ``1 - sum(t^3 - t) / (N^3 - N)``; p from the chi-squared distribution with k - 1
+    degrees of freedom (the regularised upper incomplete gamma function). NaNs are dropped.
+
+    References
+    ----------
+    .. [1] W. H. Kruskal and W. A. Wallis, "Use of ranks in one-criterion variance analysis",
+       J. Am. Stat. Assoc. 47 (1952) 583-621.
+
+    Examples
+    --------
+    >>> h, p = kruskal_wallis([1, 2, 3, 4], [5, 6, 7, 8])
+    >>> round(h, 4), round(p, 4)
+    (5.3333, 0.0209)
+    """
+    from scipy.special import gammaincc
+    from scipy.stats import rankdata
+
+    samples = [np.asarray(g, dtype=np.float64) for g in groups]
+    samples = [g[np.isfinite(g)] for g in samples]
+    if len(samples) < 2 or any(g.size == 0 for g in samples):
+        raise InputError("batches", "the Kruskal-Wallis test needs at least two non-empty groups")
+    values = np.concatenate(samples)
+    n = values.size
+    ranks = rankdata(values)
+    _, counts = np.unique(values, return_counts=True)
+    correction = 1.0 - float(np.sum(counts.astype(float) ** 3 - counts)) / (n ** 3 - n)
+    if correction <= 0:  # every value equal: no evidence of any difference
+        return 0.0, 1.0
+    h, start = 0.0, 0
+    for g in samples:
+        h += ranks[start:start + g.size].sum() ** 2 / g.size
+        start += g.size
+    h = (12.0 / (n * (n + 1)) * h - 3.0 * (n + 1)) / correction
+    return float(h), float(gammaincc((len(samples) - 1) / 2.0, h / 2.0))
+
+
+def batch_differences(table: Iterable[Mapping], *, alpha: float = 0.001, fold: float = 1.25,
+                      metrics: Iterable[str] = tuple(BATCH_METRICS), stage: str = "raw") -> list[dict]:
+    """Per channel and metric: do the batches differ? (Kruskal-Wallis on ROI-level values).
+
+    Rows of one ``stage`` are grouped by channel, then by ``batch``; batches with fewer
+    than :data:`MIN_BATCH_ROIS` ROIs are left out. A channel's metric differs when the
+    test's p < ``alpha`` *and* the largest batch median is at least ``fold`` times the
+    smallest (a difference large enough to matter, not only detectable in a big cohort).
+
+    Returns
+    -------
+    list of dict
+        One per channel x metric with two batches or more: ``channel``, ``stage``,
+        ``metric``, ``batches`` (how many took part), ``rois``, ``h``, ``p``, ``fold``
+        (largest / smallest batch median), ``high``, ``low`` (those batches),
+        ``medians`` ({batch: median}), ``differs`` (bool).
+
+    Examples
+    --------
+    >>> rows = [{"roi": f"{b}{k}", "channel": "CD3", "stage": "raw", "batch": b,
+    ...          "sbr": (30.0 if b == "B" else 10.0) + k} for b in "AB" for k in range(8)]
+    >>> [(d["metric"], d["differs"]) for d in batch_differences(rows, metrics=["sbr"])]
+    [('sbr', True)]
+    """
+    if not (0 < alpha < 1):
+        raise InputError("batch_alpha", f"must be between 0 and 1, got {alpha!r}")
+    groups: dict[str, dict[str, dict[str, list[float]]]] = {}
+    metrics = list(metrics)
+    for row in table:
+        batch = row.get("batch")
+        if row.get("stage", stage) != stage or batch in (None, ""):
+            continue
+        per = groups.setdefault(row["channel"], {})
+        for metric in metrics:
+            per.setdefault(metric, {}).setdefault(str(batch), []).append(_as_float(row.get(metric)))
+    out = []
+    for channel, per in groups.items():
+        for metric in metrics:
+            batches = {b: np.asarray(v)[np.isfinite(v)] for b, v in sorted(per.get(metric, {}).items())}
+            batches = {b: v for b, v in batches.items() if v.size >= MIN_BATCH_ROIS}
+            if len(batches) < 2:
+                continue
+            h, p = kruskal_wallis(*batches.values())
+            medians = {b: float(np.median(v)) for b, v in batches.items()}
+            high, low = max(medians, key=medians.get), min(medians, key=medians.get)
+            ratio = (medians[high] / medians[low] if medians[low] > 0
+                     else (math.inf if medians[high] > 0 else 1.0))
+            out.append({"channel": channel, "stage": stage, "metric": metric,
+                        "batches": len(batches), "rois": int(sum(v.size for v in batches.values())),
+                        "h": h, "p": p, "fold": ratio, "high": high, "low": low,
+                        "medians": medians, "differs": bool(p < alpha and ratio >= fold)})
+    return out
+
+
+def batch_effect_channels(differences: Iterable[Mapping]) -> list[str]:
+    """Channels with at least one metric whose batches differ, in first-seen order."""
+    return list(dict.fromkeys(d["channel"] for d in differences if d["differs"]))
+
+
+def add_batch_outlier_flags(table: Iterable[Mapping], *, metric: str = "sbr", cutoff: float = 3.5,
+                            log_scale: bool = True, min_rois: int = 5) -> list[dict]:
+    """Copies of the rows with ``batch-outlier`` flagged within each batch (modified z-score).
+
+    As :func:`add_outlier_flags`, but the groups are (channel, stage, batch): an ROI far
+    from the other ROIs of its own batch. Every row gains ``<metric>_batch_modified_z``;
+    batches with fewer than ``min_rois`` ROIs get scores but no flag; rows without a
+    batch get None.
+    """
+    rows = [dict(row) for row in table]
+    key = f"{metric}_batch_modified_z"
+    by_batch: dict[str, list[int]] = {}
+    for k, row in enumerate(rows):
+        row[key] = None
+        if row.get("batch") not in (None, ""):
+            by_batch.setdefault(str(row["batch"]), []).append(k)
+    for members in by_batch.values():
+        subset = [rows[k] for k in members]
+        enough = len({r["roi"] for r in subset}) >= min_rois
+        for k, score in zip(members, _cohort_scores(subset, metric, log_scale), strict=True):
+            if np.isfinite(score):
+                rows[k][key] = float(score)
+                if enough and abs(score) > cutoff:
+                    rows[k]["flags"] = _add_flag(rows[k].get("flags", []), BATCH_OUTLIER_FLAG)
+    return rows

@@ -91,6 +91,12 @@ class QualitySettings:
     plausible_ghosts: bool = setting(
         True, "ghosts only from physically plausible masses (M+-1, same element, M+16) when "
         "channel names carry masses")
+    batch_alpha: float = setting(
+        0.001, "cohort: flag batch-effect when the batches' Kruskal-Wallis p is below this ...",
+        low=0.0, low_open=True, high=0.5)
+    batch_fold: float = setting(
+        1.25, "... and the highest batch median is at least this many times the lowest",
+        low=1.0, high=1e6)
 
 
 #: The default thresholds (a frozen object, safe as a default argument).

@@ -55,11 +55,17 @@ def _heat(ax, grid, rows, cols, *, cmap, vmin, vmax, title):
     return image
 
 
-def plot_sbr(raw, washed, rois, channels, channels_w) -> bytes:
-    """Heatmaps of log10 SBR per ROI (rows) and channel (columns), raw and washed, one scale."""
+def plot_sbr(raw, washed, rois, channels, channels_w, *, limits=None) -> bytes:
+    """Heatmaps of log10 SBR per ROI (rows) and channel (columns), raw and washed, one scale.
+
+    ``limits``: (low, high) of log10 SBR, so that several pages of one cohort share a scale;
+    by default the range of these grids.
+    """
     logs = [np.log10(g) for g in (raw, washed)]
     finite = np.concatenate([g[np.isfinite(g)] for g in logs]) if raw.size else np.array([])
     vmin, vmax = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
+    if limits is not None:
+        vmin, vmax = limits
     if vmax <= vmin:
         vmax = vmin + 1.0
     fig = _figure(*_grid_size(len(rois), max(len(channels), 1), 2))
@@ -72,12 +78,16 @@ def plot_sbr(raw, washed, rois, channels, channels_w) -> bytes:
     return _png_of(fig)
 
 
-def plot_removed(grids, rois) -> bytes:
-    """One heatmap per step of the % of signal it removed: ``grids`` holds (step, grid, channels)."""
+def plot_removed(grids, rois, *, top=None) -> bytes:
+    """One heatmap per step of the % of signal it removed: ``grids`` holds (step, grid, channels).
+
+    ``top``: the fraction shown as the top of the scale (shared by pages of one cohort).
+    """
     n_cols = max(max((len(c) for _, _, c in grids), default=1), 1)
     fig = _figure(*_grid_size(len(rois), n_cols, len(grids)))
     axes = np.atleast_1d(fig.subplots(1, len(grids), sharey=True))
-    top = max([float(np.nanmax(g)) for _, g, _ in grids if np.isfinite(g).any()] + [1e-4])
+    if top is None:
+        top = max([float(np.nanmax(g)) for _, g, _ in grids if np.isfinite(g).any()] + [1e-4])
     image = None
     for ax, (name, grid, channels) in zip(axes, grids, strict=True):
         image = _heat(ax, 100 * grid, rois, channels, cmap="PuBuGn", vmin=0.0, vmax=100 * top,

@@ -43,5 +43,22 @@ figure.card .kinds span { flex: 1; text-align: center; font-size: 11px; color: v
 span.missing { display: inline-block; width: 60px; text-align: center; }
 details { margin: 6px 0 12px; } summary { cursor: pointer; color: var(--band); }
 pre { background: var(--stains); border: 1px solid var(--line); padding: 8px; overflow-x: auto; font-size: 12px; }
+.chip.batch-outlier { background: #f3e1d6; border-color: #c99272; }
+.chip.batch-effect { background: #e4e0f7; border-color: #9a8fd0; }
+table.sortable thead th { cursor: pointer; position: sticky; top: 0; }
+table.sortable th[aria-sort=ascending]::after { content: " \\25B2"; font-size: 9px; }
+table.sortable th[aria-sort=descending]::after { content: " \\25BC"; font-size: 9px; }
+div.scroll { max-height: 30em; overflow: auto; border: 1px solid var(--line); display: inline-block;
+              max-width: 100%; }
+div.scroll table { margin: 0; }
+table.sortable thead th { z-index: 1; }
+.filterbar { display: flex; gap: 10px; align-items: center; margin: 6px 0 2px; }
+.filterbar input { font: inherit; padding: 2px 6px; width: 22em; border: 1px solid var(--line); }
+details.channel { margin: 4px 0; } details.channel > summary { font-weight: 600; }
+.group h4 { margin: 6px 0 2px; font-size: 13px; } .group h4 span { color: var(--muted); font-weight: 400; }
+.sheet { display: flex; flex-wrap: wrap; gap: 2px; }
+.sheet i { display: block; background-color: #000; background-repeat: no-repeat; outline: 1px solid #000; }
+.sheet i.o { outline: 2px solid #d0342c; } .sheet i.e { outline: 2px solid #8a6cc2; }
+.sheet i.f { outline: 2px solid #e0a030; }
 footer { color: var(--muted); font-size: 12px; padding: 14px 28px; border-top: 1px solid var(--line); }
 """

@@ -67,8 +67,8 @@ class RunSummary:
         return EXIT_ERROR if self.error else EXIT_OK
 
 
-def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None, workers=None,
-               scheduler=None, connect_timeout=5.0, progress=True, cancel=None,
+def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None, samples=None,
+               workers=None, scheduler=None, connect_timeout=5.0, progress=True, cancel=None,
                staging_dir=None) -> RunSummary:
     """Wash every ROI of a cohort folder into a run folder, resuming an earlier run.
 
@@ -84,6 +84,10 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None,
         Spillover matrix CSV; overrides the recipe's ``[compensation] spillover``.
     stains : str, Path or StainSheet, optional
         ``stains.csv``; by default ``stains.csv`` inside the cohort folder when present.
+    samples : str, Path or SampleSheet, optional
+        ``samples.csv`` (``file,batch[,...]``); by default ``samples.csv`` inside the cohort
+        folder when present. Its columns are carried into the ledger, ``quality.csv`` and the
+        report; a ``spillover`` column names a matrix per batch.
     workers : int, optional
         Start a local cluster of this many worker processes.
     scheduler : str, optional
@@ -131,7 +135,8 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None,
         raise InputError("--workers", "give either --workers or --scheduler, not both")
     if workers is not None and (isinstance(workers, bool) or int(workers) < 1):
         raise InputError("--workers", f"must be a whole number >= 1, got {workers!r}")
-    inputs = check_inputs(cohort_dir, out_dir, recipe=recipe, spillover=spillover, stains=stains)
+    inputs = check_inputs(cohort_dir, out_dir, recipe=recipe, spillover=spillover, stains=stains,
+                          samples=samples)
     out = inputs.out_dir
     client = connect(scheduler, connect_timeout) if scheduler is not None else None
     with contextlib.ExitStack() as stack:

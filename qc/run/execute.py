@@ -206,6 +206,8 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     lap("hash_output")
     raw_rows, washed_rows, roi_flags = measure_quality(
         roi, target, recipe, matrix, threads=job.threads or _worker_threads())
+    for row in raw_rows + washed_rows:  # the ROI's id (its path in the cohort), not its file stem
+        row["roi"] = job.roi
     release_memory()
     lap("quality")
     if job.output is None:
@@ -270,6 +272,7 @@ def _base_record(job: Job) -> dict:
         "recipe_sha256": job.recipe_sha256, "spillover_sha256": job.spillover_sha256,
         "stains_sha256": job.stains_sha256, "version": __version__,
         "host": socket.gethostname(), "pid": os.getpid(),
+        **({"sample": dict(job.sample)} if job.sample else {}),
     }
 
 

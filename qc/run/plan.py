@@ -16,8 +16,10 @@ from typing import TYPE_CHECKING
 
 from .._version import __version__
 from ..errors import InputError
-from ..files import reached_inputs, write_atomic
+from ..files import reached_inputs, sweep_leftovers, write_atomic
 from ..ledger import RECIPE, SPILLOVER_COPY, STAINS_COPY, latest_records, read_ledger
+from ..table import BATCHES
+from .batches import SampleInputs, check_samples, job_spillover, write_sample_files
 from .folder import check_run_folder
 
 if TYPE_CHECKING:  # typing only: these modules load when a run starts
@@ -33,7 +35,7 @@ class Job:
     Attributes
     ----------
     roi : str
-        The ROI's name (its stem in the cohort).
+        The ROI's id (its path relative to the cohort, POSIX separators, no image suffix).
     input : Path
         The raw ROI.
     out_dir : Path
@@ -51,6 +53,8 @@ class Job:
         Threads for the ROI's chunks (None: the worker's share of its cores).
     staging_dir : Path or None
         Folder for the staging files instead of the output's folder.
+    sample : tuple of (str, str)
+        The ROI's row of the sample sheet (``batch`` and further columns), empty without one.
     """
 
     roi: str
@@ -66,6 +70,7 @@ class Job:
     input_sha256: str | None = None
     threads: int | None = None
     staging_dir: Path | None = None
+    sample: tuple[tuple[str, str], ...] = ()
 
 
 @dataclasses.dataclass(frozen=True)
@@ -78,6 +83,7 @@ class RunInputs:
     recipe: Recipe
     matrix: SpilloverMatrix | None  # None without compensation
     stains_text: str | None  # the stain sheet as the run's stains.csv will hold it
+    samples: SampleInputs | None = None  # the sample sheet, matched with the ROIs
 
 
 @dataclasses.dataclass(frozen=True)
@@ -94,16 +100,18 @@ class Plan:
     spillover_sha256: str | None
     stains_path: Path | None
     stains_sha256: str | None
+    samples: Mapping[str, dict] = dataclasses.field(default_factory=dict)  # ROI id -> sample row
+    batch_spillover: Mapping[str, tuple[Path, str]] = dataclasses.field(default_factory=dict)
 
 
-def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains) -> RunInputs:
+def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains, samples=None) -> RunInputs:
     """Read and check everything a run needs, writing nothing."""
-    from ..io import list_cohort, output_name, read_stains, roi_stem
+    from ..io import list_cohort, output_name, read_stains, roi_id
     from ..recipe import Recipe, load_recipe
 
     cohort_dir = Path(cohort_dir).absolute()
     out = Path(out_dir).absolute()
-    inputs = list_cohort(cohort_dir)
+    inputs = list_cohort(cohort_dir, skip=[out])
     if out.exists() and not out.is_dir():
         raise InputError(out, "output folder is a file")
     given = [cohort_dir, recipe if isinstance(recipe, (str, Path)) else None,
@@ -114,9 +122,9 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains) -> RunInputs
     given.append(recipe.spillover_path())
     names: dict[str, Path] = {}
     for path in inputs:
-        name = roi_stem(path)
+        name = roi_id(path, cohort_dir)
         if name in names:
-            raise InputError(path, f"two ROIs share the name {name!r} ({names[name].name}); "
+            raise InputError(path, f"two ROIs share the id {name!r} ({names[name].name}); "
                              "their outputs would collide")
         names[name] = path
 
@@ -126,10 +134,14 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains) -> RunInputs
     if stains is not None:
         stains_obj = stains if not isinstance(stains, (str, Path)) else read_stains(stains)
         stains_text = _stains_csv(stains_obj)
-    check_run_folder(out, reached_inputs(given), [output_name(n, recipe.output) for n in names])
+    sample_inputs = check_samples(cohort_dir, sorted(names.items()), samples, recipe)
+    extra = [BATCHES, *sample_inputs.outputs()] if sample_inputs is not None else []
+    if sample_inputs is not None:
+        given += sample_inputs.inputs()
+    check_run_folder(out, reached_inputs(given), [output_name(n, recipe.output) for n in names] + extra)
     return RunInputs(cohort_dir=cohort_dir, out_dir=out, rois=sorted(names.items()),
                      recipe=recipe, matrix=_spillover_matrix(spillover, recipe),
-                     stains_text=stains_text)
+                     stains_text=stains_text, samples=sample_inputs)
 
 
 def write_run_files(inputs: RunInputs) -> Plan:
@@ -155,12 +167,15 @@ def write_run_files(inputs: RunInputs) -> Plan:
         write_atomic(out / RECIPE, text)
     if load_recipe(out / RECIPE).sha256() != run_recipe.sha256():  # the copy must say the same
         raise RuntimeError("the written recipe does not read back identically")
+    batch_spillover = write_sample_files(out, inputs.samples)
     return Plan(
         cohort_dir=inputs.cohort_dir, out_dir=out, rois=inputs.rois, recipe_path=out / RECIPE,
         recipe_sha256=run_recipe.sha256(), output_settings=run_recipe.output,
         spillover_path=spillover_path,
         spillover_sha256=sha256_path(spillover_path) if spillover_path else None,
-        stains_path=stains_path, stains_sha256=sha256_path(stains_path) if stains_path else None)
+        stains_path=stains_path, stains_sha256=sha256_path(stains_path) if stains_path else None,
+        samples=dict(inputs.samples.rows) if inputs.samples is not None else {},
+        batch_spillover=batch_spillover)
 
 
 def _spillover_matrix(spillover, recipe):
@@ -202,12 +217,17 @@ def plan_jobs(plan: Plan, log, *, staging_dir=None) -> tuple[list[Job], list[str
     enabled = plan.output_settings.enabled
     for name, path in plan.rois:
         output = output_name(name, plan.output_settings) if enabled else None
+        _make_subfolder(plan.out_dir, output_name(name))
+        sample = plan.samples.get(name)
+        spill, spill_sha = job_spillover(plan.batch_spillover, sample,
+                                         (plan.spillover_path, plan.spillover_sha256))
         job = Job(
             roi=name, input=Path(path), out_dir=plan.out_dir, output=output,
             recipe=plan.recipe_path, recipe_sha256=plan.recipe_sha256,
-            spillover=plan.spillover_path, spillover_sha256=plan.spillover_sha256,
+            spillover=spill, spillover_sha256=spill_sha,
             stains=plan.stains_path, stains_sha256=plan.stains_sha256,
-            staging_dir=Path(staging_dir) if staging_dir is not None else None)
+            staging_dir=Path(staging_dir) if staging_dir is not None else None,
+            sample=tuple((sample or {}).items()))
         record = latest.get(name)
         why = _why_redo(record, job)
         if why is None:
@@ -223,6 +243,14 @@ def plan_jobs(plan: Plan, log, *, staging_dir=None) -> tuple[list[Job], list[str
             log.line(f"{name}: redo ({why})")
         jobs.append(job)
     return jobs, skipped
+
+
+def _make_subfolder(out_dir: Path, name: str) -> None:
+    """The run folder mirrors the cohort's tree: create an ROI's subfolder, sweep its leftovers."""
+    folder = (out_dir / name).parent
+    if folder != out_dir:
+        folder.mkdir(parents=True, exist_ok=True)
+        sweep_leftovers(folder)  # under the run's lock, as for the run folder itself
 
 
 def _why_redo(record: Mapping | None, job: Job) -> str | None:
