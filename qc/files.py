@@ -307,7 +307,7 @@ def _zarr_is_ours(path: Path) -> bool:
 
 def _csv_is_ours(path: Path) -> bool:
     """A CSV laid out exactly as plexwash writes one: a spillover matrix (or its interval
-    bounds), a quality table or a run's stains copy."""
+    bounds), a quality table, an audit table or a run's stains copy."""
     import csv
 
     try:
@@ -319,8 +319,8 @@ def _csv_is_ours(path: Path) -> bool:
     header = rows[0]
     if header == ["tag", "marker", "wash"]:
         return all(len(r) == 3 and r[2] in ("yes", "no") for r in rows[1:])
-    if header[:4] == ["roi", "channel", "label", "stage"]:
-        return all(len(r) == len(header) for r in rows[1:])
+    if header[:4] in (["roi", "channel", "label", "stage"], ["roi", "first", "second", "stage"]):
+        return all(len(r) == len(header) for r in rows[1:])  # quality.csv, audit.csv
     if header[:1] != [""] or len(rows) != len(header) or [r[0] for r in rows[1:]] != header[1:]:
         return False
     try:

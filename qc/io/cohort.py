@@ -27,6 +27,12 @@ class OutputSettings:
     tile: int = setting(512, "tile / chunk edge in pixels", low=64, high=4096)
     ngff: str = setting("0.5", "OME-Zarr version (0.4: Zarr v2, for readers without Zarr v3)",
                         choices=("0.5", "0.4"))
+    transform: str = setting(
+        "none", "also write <roi>.arcsinh.ome.tiff: arcsinh(x / cofactor) of the washed stack "
+        "(the washed stack itself is never transformed)", choices=("none", "arcsinh"))
+    cofactor: float = setting(
+        5.0, "arcsinh cofactor (5: the usual one for mass cytometry counts, Bendall et al., "
+        "Science 2011); per channel under [output.channels.<tag>]", low=0.0, low_open=True, high=1e9)
 
 
 

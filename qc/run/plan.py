@@ -19,6 +19,7 @@ from ..errors import InputError
 from ..files import reached_inputs, write_atomic
 from ..ledger import RECIPE, SPILLOVER_COPY, STAINS_COPY, latest_records, read_ledger
 from .folder import check_run_folder
+from .handoff import check_markers
 
 if TYPE_CHECKING:  # typing only: these modules load when a run starts
     from ..io import OutputSettings
@@ -122,11 +123,12 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains) -> RunInputs
 
     if stains is None and (cohort_dir / "stains.csv").is_file():
         stains = cohort_dir / "stains.csv"
-    stains_text = None
+    stains_text = stains_obj = None
     if stains is not None:
         stains_obj = stains if not isinstance(stains, (str, Path)) else read_stains(stains)
         stains_text = _stains_csv(stains_obj)
-    check_run_folder(out, reached_inputs(given), [output_name(n, recipe.output) for n in names])
+    handoff = check_markers(recipe, stains_obj, inputs[0] if inputs else None, sorted(names))
+    check_run_folder(out, reached_inputs(given), [output_name(n, recipe.output) for n in names] + handoff)
     return RunInputs(cohort_dir=cohort_dir, out_dir=out, rois=sorted(names.items()),
                      recipe=recipe, matrix=_spillover_matrix(spillover, recipe),
                      stains_text=stains_text)
