@@ -445,3 +445,27 @@ def format_audit(rows: Sequence[Mapping]) -> str:
     lines.append("  ".join("-" * w for w in widths))
     lines += ["  ".join(str(v).ljust(w) for v, w in zip(t, widths, strict=True)) for t in table]
     return "\n".join(lines)
+
+
+def audit_pair(roi, recipe, first: str, second: str, *, spillover=None) -> dict:
+    """One pair of one ROI for a viewer: its audit rows and the washed images behind them.
+
+    Returns
+    -------
+    dict
+        ``rows`` (raw and washed, as in ``audit.csv``), ``first`` and ``second`` (the washed
+        (Y, X) planes), ``overlay`` (Y, X) uint8 codes at the washed stage (0 neither, 1 first
+        only, 2 second only, 3 co-positive; see :func:`overlay`).
+    """
+    from .wash import wash
+
+    settings = dataclasses.replace(recipe.audit, exclusive=((first, second),))
+    (i, j), = resolve_pairs(settings.exclusive, roi.channels, roi.labels, where="audit pair")
+    washed = wash(roi, recipe, spillover=spillover, channels=[roi.channels[i], roi.channels[j]])
+    planes = {name: np.asarray(washed.data[k]) for k, name in enumerate(washed.channels)}
+    rows = audit_roi(roi.data, planes, channels=roi.channels, labels=roi.labels, used=roi.use,
+                     roi=roi.name, settings=settings)
+    a, b = planes[roi.channels[i]], planes[roi.channels[j]]
+    tissue = audit_tissue(roi.data, roi.use)
+    return {"rows": rows, "first": a, "second": b,
+            "overlay": overlay(a, b, tissue=tissue, settings=settings)}
