@@ -119,7 +119,7 @@ class AuditWidget(StudioWidget):
 
     def composite_path(self) -> Path | None:
         """The current ROI's composite in the run folder (None when there is none)."""
-        from plexwash.qc.run.handoff import composite_name
+        from plexwash.qc.composite import composite_name
 
         roi, run_dir = self.state.roi, self.state.run_dir
         if roi is None or run_dir is None:

@@ -26,9 +26,9 @@ from .steps.registry import STEP_NAMES, STEPS
 
 if TYPE_CHECKING:
     from .audit import AuditSettings
+    from .composite import CompositeSettings
     from .io import OutputSettings
     from .quality import QualitySettings
-    from .run.handoff import CompositeSettings
 
 #: Sections that are not cleaning steps, after the steps.
 OTHER_SECTIONS = ("quality", "output", "audit", "composite")
@@ -51,9 +51,9 @@ def section_classes() -> dict[str, type]:
     """The settings dataclass of each recipe section: the registry's steps in order, then
     ``quality`` and ``output``."""
     from .audit import AuditSettings
+    from .composite import CompositeSettings
     from .io import OutputSettings
     from .quality import QualitySettings
-    from .run.handoff import CompositeSettings
 
     return {**{s.name: s.settings for s in STEPS}, "quality": QualitySettings, "output": OutputSettings,
             "audit": AuditSettings, "composite": CompositeSettings}

@@ -254,3 +254,19 @@ def test_bad_audit_settings_are_refused(tmp_path):
     again = tmp_path / "again.toml"
     again.write_text(loaded.to_toml())  # the written recipe reads back the same
     assert load_recipe(again).sha256() == loaded.sha256()
+
+
+def test_the_readme_example_is_a_valid_recipe():
+    # the [audit] / [composite] / [output] example of README.md reads as a recipe
+    import re
+    import tomllib
+    from pathlib import Path
+
+    from plexwash.qc.recipe import recipe_from_dict
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    blocks = [b for b in re.findall(r"```toml\n(.*?)```", readme, re.S) if "[audit]" in b]
+    assert len(blocks) == 1
+    recipe = recipe_from_dict(tomllib.loads(blocks[0]))
+    assert recipe.audit.exclusive == (("CD20", "CD3"), ("Pan-keratin", "CD45"))
+    assert recipe.output.transform == "arcsinh" and recipe.for_channel("output", "Ir191").cofactor == 50.0

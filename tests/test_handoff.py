@@ -1,4 +1,4 @@
-"""Hand-off to segmentation (qc/run/handoff.py): composites, cohort-wide percentiles, arcsinh.
+"""Hand-off to segmentation (qc/composite.py, qc/run/handoff.py): composites, cohort-wide percentiles, arcsinh.
 
 The tissue comes from a small generator written here (Voronoi cells from jittered seeds,
 a nucleus disc at each seed, membranes on the cell borders, Poisson counts); it shares no
@@ -14,14 +14,14 @@ import sys
 
 import numpy as np
 import pytest
-from plexwash.qc.errors import InputError
-from plexwash.qc.run.handoff import (
+from plexwash.qc.composite import (
     PercentileSketch,
     build_composite,
     read_composite_event,
     role_channels,
     scale_channel,
 )
+from plexwash.qc.errors import InputError
 from scipy import ndimage
 from scipy.spatial import cKDTree
 

@@ -86,7 +86,7 @@ def composite_thumbnail(composite, size: int = 96) -> bytes:
 def section_audit_and_composites(out_dir) -> str:
     """The report section (empty text when the run has neither an audit nor composites)."""
     from ..audit import AUDIT, read_audit_csv
-    from ..run.handoff import composite_name, read_composite_event
+    from ..composite import composite_name, read_composite_event
 
     out = Path(out_dir)
     rows = read_audit_csv(out / AUDIT)
