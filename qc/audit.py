@@ -361,14 +361,18 @@ def _cell(value) -> str:
 
 def write_audit_table(out_dir) -> Path | None:
     """Write ``audit.csv`` of a run folder from its ledger (each done ROI's latest rows),
-    atomically; None (nothing written) when no record holds audit rows."""
-    from .files import check_output, write_atomic
+    atomically; None when no record holds audit rows (an ``audit.csv`` an earlier run wrote
+    is then removed: the pairs are no longer declared, and a stale table would mislead)."""
+    from .files import check_output, remove_path, write_atomic, written_by_plexwash
     from .ledger import latest_records, read_ledger
 
     latest = latest_records(read_ledger(out_dir))
     rows = [row for name in sorted(latest) if latest[name].get("status") == "done"
             for row in latest[name].get("audit") or []]
     if not rows:
+        stale = Path(out_dir) / AUDIT
+        if stale.is_file() and written_by_plexwash(stale):
+            remove_path(stale)
         return None
     path = check_output(Path(out_dir) / AUDIT, kind="csv")
     write_atomic(path, audit_csv_text(rows))

@@ -221,3 +221,25 @@ def test_the_composite_event_is_kept_by_the_ledger_repair(tmp_path):
     assert not repair_ledger(tmp_path / "ledger.jsonl")  # nothing to drop
     assert json.loads((tmp_path / "ledger.jsonl").read_text().splitlines()[1])["event"] == "composites"
     assert read_composite_event(tmp_path)["percentiles"] == {"X": [0.0, 1.0]}
+
+
+def test_hand_off_files_no_longer_asked_for_are_removed(tmp_path):
+    # a rerun without roles, transform or pairs leaves no stale composite, arcsinh or audit.csv
+    from plexwash.qc.audit import write_audit_table
+    from plexwash.qc.files import write_atomic
+    from plexwash.qc.io import write_ome_tiff
+    from plexwash.qc.ledger import Ledger
+    from plexwash.qc.recipe import default_recipe
+    from plexwash.qc.run.handoff import write_handoff
+
+    stack = np.ones((2, 16, 16), np.float32)
+    for name in ("a.ome.tiff", "a.composite.ome.tiff", "a.arcsinh.ome.tiff"):
+        write_ome_tiff(tmp_path / name, stack, ["X", "Y"])
+    write_atomic(tmp_path / "audit.csv", "roi,first,second,stage\n")
+    (tmp_path / "b.composite.ome.tiff").write_bytes(b"not ours")  # never touched
+    record = {"roi": "a", "status": "done", "output": "a.ome.tiff"}
+    Ledger(tmp_path / "ledger.jsonl").append(record)
+    assert write_handoff(tmp_path, [record], default_recipe()) is None
+    assert write_audit_table(tmp_path) is None
+    assert sorted(p.name for p in tmp_path.iterdir()) == [
+        "a.ome.tiff", "b.composite.ome.tiff", "ledger.jsonl"]

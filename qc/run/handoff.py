@@ -95,6 +95,11 @@ def write_handoff(out_dir, done: Sequence[Mapping], recipe, *, roles: Sequence[s
     roles = list(roles or [])
     by_role = role_channels(roles) if roles else {}
     event = None
+    # files an earlier run wrote that this recipe and stain sheet no longer ask for go
+    if not by_role:
+        _drop_stale(out / composite_name(r["roi"]) for r in done)
+    if recipe.output.transform != "arcsinh":
+        _drop_stale(out / arcsinh_name(r["roi"]) for r in done)
     if by_role and done:
         settings = recipe.composite
         names = {channels[i]: role for role, idx in by_role.items() for i in idx}
@@ -126,6 +131,14 @@ def write_handoff(out_dir, done: Sequence[Mapping], recipe, *, roles: Sequence[s
                                        "cofactors": json.dumps(dict(zip(washed.channels, cofactors,
                                                                         strict=True)))})
     return event
+
+
+def _drop_stale(paths) -> None:
+    from ..files import remove_path, written_by_plexwash
+
+    for path in paths:
+        if path.is_file() and written_by_plexwash(path):
+            remove_path(path)
 
 
 def check_markers(recipe, stains, first_roi, rois: Sequence[str]) -> list[str]:
