@@ -29,6 +29,7 @@ def plot_audit(rows: Sequence[Mapping]) -> bytes:
     pairs = list(dict.fromkeys((r["first"], r["second"]) for r in rows))
     fig = Figure(figsize=(min(14.0, 4.5 * len(pairs) + 1), 3.2), dpi=100)
     fig.patch.set_facecolor("white")
+    legend = {}
     for k, pair in enumerate(pairs):
         ax = fig.add_subplot(1, len(pairs), k + 1)
         mine = [r for r in rows if (r["first"], r["second"]) == pair]
@@ -62,7 +63,11 @@ def plot_audit(rows: Sequence[Mapping]) -> bytes:
             ax.set_xticks([])
         if k == 0:
             ax.set_ylabel("co-positive", fontsize=9)
-            ax.legend(fontsize=7, loc="upper right")
+        for handle, label in zip(*ax.get_legend_handles_labels(), strict=True):
+            legend.setdefault(label, handle)
+    # one legend for every panel, above them (never over the points)
+    fig.legend(list(legend.values()), list(legend), loc="lower center", ncol=len(legend),
+               fontsize=7, frameon=False, bbox_to_anchor=(0.5, 0.98))
     FigureCanvasAgg(fig)
     buffer = io.BytesIO()
     fig.savefig(buffer, format="png", dpi=100, bbox_inches="tight")
