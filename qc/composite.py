@@ -31,11 +31,10 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .io.cohort import ARCSINH_SUFFIX, COMPOSITE_SUFFIX
 from .settings import setting
 
 ROLES = ("nuclear", "membrane")
-COMPOSITE_SUFFIX = ".composite.ome.tiff"
-ARCSINH_SUFFIX = ".arcsinh.ome.tiff"
 #: Bins of the percentile sketch over log1p of the float32 range.
 SKETCH_BINS = 2**20
 _LOG_TOP = float(np.log1p(np.finfo(np.float32).max))

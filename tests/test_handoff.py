@@ -243,3 +243,11 @@ def test_hand_off_files_no_longer_asked_for_are_removed(tmp_path):
     assert write_audit_table(tmp_path) is None
     assert sorted(p.name for p in tmp_path.iterdir()) == [
         "a.ome.tiff", "b.composite.ome.tiff", "ledger.jsonl"]
+
+
+def test_a_run_folder_opened_as_a_cohort_lists_no_hand_off_file(tmp_path):
+    from plexwash.qc.io import list_cohort, write_ome_tiff
+
+    for name in ("a.ome.tiff", "a.composite.ome.tiff", "a.arcsinh.ome.tiff"):
+        write_ome_tiff(tmp_path / name, np.ones((2, 8, 8), np.float32), ["X", "Y"])
+    assert [p.name for p in list_cohort(tmp_path)] == ["a.ome.tiff"]

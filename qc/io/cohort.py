@@ -53,10 +53,17 @@ def roi_stem(path: str | Path) -> str:
     return Path(name).stem
 
 
+#: What a run writes beside each washed stack for the next tools (:mod:`plexwash.qc.composite`):
+#: segmentation composites and arcsinh copies. Not ROIs: a run folder opened as a cohort skips them.
+COMPOSITE_SUFFIX, ARCSINH_SUFFIX = ".composite.ome.tiff", ".arcsinh.ome.tiff"
+
+
 def is_roi_path(path: str | Path) -> bool:
-    """True when the name looks like an ROI plexwash can read (TIFF or Zarr)."""
+    """True when the name looks like an ROI plexwash can read (TIFF or Zarr), and is not a
+    hand-off file of a run (``<roi>.composite.ome.tiff``, ``<roi>.arcsinh.ome.tiff``)."""
     name = Path(path).name.lower()
-    return not name.startswith(".") and name.endswith(TIFF_SUFFIXES + ZARR_SUFFIXES)
+    return (not name.startswith(".") and name.endswith(TIFF_SUFFIXES + ZARR_SUFFIXES)
+            and not name.endswith((COMPOSITE_SUFFIX, ARCSINH_SUFFIX)))
 
 
 def list_cohort(folder: str | Path) -> list[Path]:
