@@ -652,13 +652,18 @@ def write_plain_tiff(path, stack):
             tif.write(page, photometric="minisblack", metadata=None)
 
 
-def write_stains_csv(path, stains):
-    """Write ``tag,marker,wash`` for the stain sheet (every channel ``yes``)."""
+#: Segmentation roles of the committed demo's stain sheet (the composites a run writes).
+DEMO_ROLES = {"DNA-1": "nuclear", "DNA-2": "nuclear", "membrane-A": "membrane", "membrane-D": "membrane"}
+
+
+def write_stains_csv(path, stains, roles=None):
+    """Write ``tag,marker,wash`` for the stain sheet (every channel ``yes``), with a ``role``
+    column when ``roles`` (marker -> ``nuclear`` / ``membrane``) is given."""
     with open(path, "w", newline="") as fh:
         writer = csv.writer(fh, lineterminator="\n")
-        writer.writerow(["tag", "marker", "wash"])
+        writer.writerow(["tag", "marker", "wash"] + (["role"] if roles else []))
         for m in stains:
-            writer.writerow([m.channel, m.label, "yes"])
+            writer.writerow([m.channel, m.label, "yes"] + ([roles.get(m.label, "")] if roles else []))
 
 
 def write_spillover_csv(path, spillover, channel_names):
@@ -693,12 +698,13 @@ def simulate_cohort(out_dir, *, random_state=DEFAULT_RANDOM_STATE, n_rois=3, siz
     out = Path(out_dir)
     for sub in ("cohort", "controls", "truth"):
         (out / sub).mkdir(parents=True, exist_ok=True)
+    roles = DEMO_ROLES if stains is None else None  # only the demo's own stains carry roles
     stains = default_stains() if stains is None else list(stains)
     names = [m.channel for m in stains]
     matrix_rng = np.random.default_rng([random_state, 0])
     spillover = build_spillover(names, matrix_rng)
     background_rate = draw_background_rates(len(names), matrix_rng)
-    write_stains_csv(out / "stains.csv", stains)
+    write_stains_csv(out / "stains.csv", stains, roles)
     write_spillover_csv(out / "truth" / "spillover.csv", spillover, names)
 
     rois = []

@@ -2,7 +2,7 @@
 
 The npe2 manifest ``napari.yaml`` contributes a reader (OME-TIFF, OME-Zarr, TIFF with its
 stains), a writer (image layers to one OME-TIFF / OME-Zarr stack), the demo cohort as
-sample data, and five dock widgets: Cohort, Spillover, Speckle, Quality, Run.
+sample data, and six dock widgets: Cohort, Spillover, Speckle, Quality, Run, Audit.
 """
 
 from __future__ import annotations
@@ -10,7 +10,7 @@ from __future__ import annotations
 from pathlib import Path
 
 #: Dock widget titles (as users see them), in the order they are docked.
-WIDGETS = ("Cohort", "Spillover", "Speckle", "Quality", "Run")
+WIDGETS = ("Cohort", "Spillover", "Speckle", "Quality", "Run", "Audit")
 PLUGIN = "plexwash"
 
 __all__ = ["PLUGIN", "WIDGETS", "launch_studio"]
@@ -18,7 +18,7 @@ __all__ = ["PLUGIN", "WIDGETS", "launch_studio"]
 
 def launch_studio(cohort_dir: str | Path | None = None, *, viewer=None, show: bool = True,
                   run: bool = True):
-    """Open napari with the five studio widgets docked and, optionally, a cohort listed.
+    """Open napari with the studio widgets docked and, optionally, a cohort listed.
 
     Parameters
     ----------

@@ -175,7 +175,9 @@ def _inspect(args) -> int:
 
 
 def inspection(roi, recipe) -> dict:
-    """Per-channel quality of one raw ROI as the ``inspect --json`` document."""
+    """Per-channel quality of one raw ROI as the ``inspect --json`` document (with the
+    crosstalk audit, raw and washed, when the recipe declares exclusive pairs)."""
+    from .audit import audit_one
     from .quality import measure_roi
 
     recipe.check_channels(roi.channels, roi=roi.path)
@@ -184,6 +186,7 @@ def inspection(roi, recipe) -> dict:
         from .spillover import read_spillover
 
         matrix = read_spillover(recipe.spillover_path())
+    audit = audit_one(roi, recipe, spillover=matrix)  # an unknown pair is refused before measuring
     measured = measure_roi(roi, recipe, spillover=matrix, threads=os.cpu_count() or 1)
     rows = measured.raw_rows
     channels = []
@@ -199,6 +202,7 @@ def inspection(roi, recipe) -> dict:
         "pixel_size": list(roi.pixel_size) if roi.pixel_size else None,
         "flags": measured.flags["raw"],
         "channels": channels,
+        **({"audit": audit} if audit else {}),
     }
 
 
@@ -229,6 +233,10 @@ def format_inspection(report: dict) -> str:
         lines.append("  ".join(str(v).ljust(w) for v, w in zip(r, widths, strict=True)))
     roi_flags = report.get("flags") or []
     lines.append(f"ROI flags: {', '.join(roi_flags) if roi_flags else 'none'}")
+    if report.get("audit"):
+        from .audit import format_audit
+
+        lines.append(format_audit(report["audit"]))
     return "\n".join(lines)
 
 

@@ -307,7 +307,7 @@ def _zarr_is_ours(path: Path) -> bool:
 
 def _csv_is_ours(path: Path) -> bool:
     """A CSV laid out exactly as plexwash writes one: a spillover matrix (or its interval
-    bounds), a quality table or a run's stains copy."""
+    bounds), a quality table, an audit table or a run's stains copy."""
     import csv
 
     try:
@@ -319,8 +319,9 @@ def _csv_is_ours(path: Path) -> bool:
     header = rows[0]
     if header == ["tag", "marker", "wash"]:
         return all(len(r) == 3 and r[2] in ("yes", "no") for r in rows[1:])
-    if (header[:4] == ["roi", "channel", "label", "stage"] or header[:2] == ["roi", "batch"]
-            or header[:3] == ["channel", "stage", "metric"]):  # quality, sample sheet copy, batches
+    if (header[:4] in (["roi", "channel", "label", "stage"], ["roi", "first", "second", "stage"])
+            or header[:2] == ["roi", "batch"]
+            or header[:3] == ["channel", "stage", "metric"]):  # quality, audit, sample sheet copy, batches
         return all(len(r) == len(header) for r in rows[1:])
     if header == ["source", "receiver", "reason", "estimate", "low", "high", "p_value", "source_level"]:
         return all(len(r) == len(header) for r in rows[1:])  # a tissue estimate's not-identifiable list

@@ -86,7 +86,8 @@ def _is_record(line: bytes) -> bool:
         record = json.loads(line)
     except (ValueError, UnicodeDecodeError):
         return False
-    return isinstance(record, dict) and "roi" in record
+    # an ROI record, or a run event without an ROI (the composites' percentiles)
+    return isinstance(record, dict) and ("roi" in record or "event" in record)
 
 
 def _ends_torn(path: Path) -> bool:

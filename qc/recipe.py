@@ -25,29 +25,38 @@ from .settings import build_settings, describe_range
 from .steps.registry import STEP_NAMES, STEPS
 
 if TYPE_CHECKING:
+    from .audit import AuditSettings
+    from .composite import CompositeSettings
     from .io import OutputSettings
     from .quality import QualitySettings
 
 #: Sections that are not cleaning steps, after the steps.
-OTHER_SECTIONS = ("quality", "output")
+OTHER_SECTIONS = ("quality", "output", "audit", "composite")
 #: Sections whose settings may be overridden channel by channel.
-PER_CHANNEL = tuple(s.name for s in STEPS if s.per_channel) + ("quality",)
+PER_CHANNEL = tuple(s.name for s in STEPS if s.per_channel) + ("quality", "output")
+#: The only keys a section's per-channel table may set (where not every key may differ).
+CHANNEL_KEYS = {"output": ("cofactor",)}
 SECTION_ORDER = STEP_NAMES + OTHER_SECTIONS
 
 _SECTION_TITLES = {
     **{s.name: s.title for s in STEPS},
     "quality": "Quality flags: thresholds for empty, low-sbr, saturated and striped.",
     "output": "Output: how washed stacks are written.",
+    "audit": "Crosstalk audit: co-positivity of mutually exclusive markers, raw vs washed (audit.csv).",
+    "composite": "Composites for segmentation (stain sheet roles): cohort-wide clipping and combining.",
 }
 
 
 def section_classes() -> dict[str, type]:
     """The settings dataclass of each recipe section: the registry's steps in order, then
     ``quality`` and ``output``."""
+    from .audit import AuditSettings
+    from .composite import CompositeSettings
     from .io import OutputSettings
     from .quality import QualitySettings
 
-    return {**{s.name: s.settings for s in STEPS}, "quality": QualitySettings, "output": OutputSettings}
+    return {**{s.name: s.settings for s in STEPS}, "quality": QualitySettings, "output": OutputSettings,
+            "audit": AuditSettings, "composite": CompositeSettings}
 
 
 @dataclasses.dataclass(frozen=True)
@@ -59,8 +68,9 @@ class Recipe:
     steps : mapping
         Step name -> the step's global settings, for every step of the registry; each is
         also an attribute (``recipe.hot_pixels``, ``recipe.compensation``, ``recipe.speckle``).
-    quality, output
-        The global settings of those sections.
+    quality, output, audit, composite
+        The global settings of those sections (``audit``: the crosstalk audit's exclusive
+        pairs and test; ``composite``: the segmentation composites).
     overrides : mapping
         ``{section: {channel: settings}}``: complete per-channel settings (global values
         with the channel's overrides applied) for channels that have overrides.
@@ -73,6 +83,14 @@ class Recipe:
     output: OutputSettings
     overrides: Mapping[str, Mapping[str, object]] = dataclasses.field(default_factory=dict)
     source: Path | None = None
+    audit: AuditSettings | None = None
+    composite: CompositeSettings | None = None
+
+    def __post_init__(self):
+        classes = section_classes()
+        for name in ("audit", "composite"):
+            if getattr(self, name) is None:
+                object.__setattr__(self, name, classes[name]())
 
     def __getattr__(self, name: str):
         steps = self.__dict__.get("steps")
@@ -82,7 +100,8 @@ class Recipe:
 
     def __reduce__(self):  # mapping proxies do not pickle: rebuild from plain dicts
         overrides = {section: dict(table) for section, table in self.overrides.items()}
-        return _rebuild, (dict(self.steps), self.quality, self.output, overrides, self.source)
+        return _rebuild, (dict(self.steps), self.quality, self.output, overrides, self.source,
+                          self.audit, self.composite)
 
     def _with_section(self, section: str, settings, **changes) -> Recipe:
         if section in OTHER_SECTIONS:
@@ -163,7 +182,7 @@ class Recipe:
         cls = section_classes()[section]
         current = dataclasses.asdict(getattr(self, section))
         current.update(changes)
-        new = build_settings(cls, current, where=self.source or "recipe", section=section)
+        new = build_section(cls, current, where=self.source or "recipe", section=section)
         overrides = {s: dict(t) for s, t in self.overrides.items()}
         if section in overrides:  # overrides keep their own values on top of the new globals
             changed = self.to_dict()[section].get("channels", {})
@@ -177,6 +196,7 @@ class Recipe:
         """A copy with per-channel overrides of one section for one channel."""
         if section not in PER_CHANNEL:
             raise InputError("recipe", f"[{section}] has no per-channel settings")
+        _check_channel_keys(section, changes, where="recipe", section=f"{section}.channels.{channel}")
         cls = section_classes()[section]
         current = dataclasses.asdict(self.for_channel(section, channel))
         current.update(changes)
@@ -200,8 +220,38 @@ def _recipe(sections: Mapping[str, object], **extra) -> Recipe:
     return Recipe(steps=steps, **{name: sections[name] for name in OTHER_SECTIONS}, **extra)
 
 
-def _rebuild(steps: dict, quality, output, overrides: dict, source) -> Recipe:
-    return _recipe({**steps, "quality": quality, "output": output}, overrides=_freeze(overrides), source=source)
+def _rebuild(steps: dict, quality, output, overrides: dict, source, audit=None, composite=None) -> Recipe:
+    return _recipe({**steps, "quality": quality, "output": output, "audit": audit, "composite": composite},
+                   overrides=_freeze(overrides), source=source)
+
+
+def build_section(cls: type, values: Mapping, *, where, section: str):
+    """:func:`~plexwash.qc.settings.build_settings` plus the one setting that is not a plain
+    value: ``[audit] exclusive``, a list of pairs checked by
+    :func:`plexwash.qc.audit.parse_exclusive`."""
+    values = dict(values)
+    pairs = values.pop("exclusive", None) if section == "audit" else None
+    if section == "composite":  # named with its file here; the class itself says "recipe"
+        low, high = values.get("low_percentile", 1.0), values.get("high_percentile", 99.5)
+        if isinstance(low, (int, float)) and isinstance(high, (int, float)) and not low < high:
+            raise InputError(where, f"composite.low_percentile ({low:g}) must be below "
+                             f"composite.high_percentile ({high:g})")
+    built = build_settings(cls, values, where=where, section=section)
+    if pairs is not None:
+        from .audit import parse_exclusive
+
+        built = dataclasses.replace(built, exclusive=parse_exclusive(pairs, where=where))
+    return built
+
+
+def _check_channel_keys(name: str, values: Mapping, *, where, section: str) -> None:
+    allowed = CHANNEL_KEYS.get(name)
+    if allowed is None:
+        return
+    extra = [k for k in values if k not in allowed]
+    if extra:
+        raise InputError(where, f"unknown key {section}.{extra[0]}: per channel only "
+                         f"{', '.join(allowed)} may be set")
 
 
 def default_recipe() -> Recipe:
@@ -245,7 +295,7 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
         if not isinstance(data.get(name, {}), Mapping):
             raise InputError(where, f"{name} must be a table [{name}]")
         overrides = table.pop("channels", None)
-        sections[name] = build_settings(cls, table, where=where, section=name)
+        sections[name] = build_section(cls, table, where=where, section=name)
         if overrides is None:
             continue
         if name not in PER_CHANNEL:
@@ -257,6 +307,7 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
         for channel, values in overrides.items():
             if not isinstance(values, Mapping):
                 raise InputError(where, f"{name}.channels.{channel} must be a table")
+            _check_channel_keys(name, values, where=where, section=f"{name}.channels.{channel}")
             per[channel] = build_settings(cls, {**base, **values}, where=where,
                                           section=f"{name}.channels.{channel}")
         all_overrides[name] = per
@@ -267,6 +318,8 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
 
 
 def _toml_value(value) -> str:
+    if isinstance(value, (tuple, list)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, int):

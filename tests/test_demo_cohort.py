@@ -128,8 +128,10 @@ def test_ome_xml_names_channels_in_order(info):
     ome_types = pytest.importorskip("ome_types")
     with open(STACK / "stains.csv", newline="") as fh:
         stains = list(csv.DictReader(fh))
-    assert list(stains[0]) == ["tag", "marker", "wash"]
+    assert list(stains[0]) == ["tag", "marker", "wash", "role"]
     assert all(row["wash"] in {"yes", "no"} for row in stains)
+    assert {row["marker"]: row["role"] for row in stains if row["role"]} == {
+        "membrane-A": "membrane", "membrane-D": "membrane", "DNA-1": "nuclear", "DNA-2": "nuclear"}
     names = [row["tag"] for row in stains]
     assert names == info["channels"]
     files = sorted((STACK / "cohort").glob("*.ome.tiff")) + sorted(

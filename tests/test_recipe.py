@@ -99,8 +99,11 @@ def test_replace_and_with_channel_validate():
     assert recipe.for_channel("speckle", "Nd145").radius == 6
     with pytest.raises(InputError, match="out of range"):
         default_recipe().replace("speckle", radius=0)
-    with pytest.raises(InputError, match="no per-channel"):
+    with pytest.raises(InputError, match="per channel only cofactor"):  # [output]: the arcsinh cofactor only
         default_recipe().with_channel("output", "Nd145", tile=256)
+    assert default_recipe().with_channel("output", "Nd145", cofactor=2.0).for_channel("output", "Nd145").cofactor == 2.0
+    with pytest.raises(InputError, match="no per-channel"):
+        default_recipe().with_channel("audit", "Nd145", alpha=0.05)
 
 
 @pytest.mark.parametrize("text, fragment", [
@@ -112,7 +115,8 @@ def test_replace_and_with_channel_validate():
     ("[speckle]\nenabled = 1\n", "speckle.enabled must be true or false"),
     ("[output]\nformat = 'png'\n", "output.format = 'png' is not allowed"),
     ("[hot_pixels]\nratio = nan\n", "hot_pixels.ratio must be finite"),
-    ("[output.channels.Nd145]\ntile = 256\n", "has no per-channel settings"),
+    ("[output.channels.Nd145]\ntile = 256\n", "unknown key output.channels.Nd145.tile: per channel only cofactor"),
+    ("[audit.channels.Nd145]\nalpha = 0.1\n", "has no per-channel settings"),
     ("[speckle.channels.Nd145]\nwindow = 3\n", "unknown key speckle.channels.Nd145.window"),
 ])
 def test_bad_recipes_name_the_key_and_range(tmp_path, text, fragment):

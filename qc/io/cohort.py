@@ -33,6 +33,12 @@ class OutputSettings:
                         choices=("0.5", "0.4"))
     tissue_mask: bool = setting(False, "also write <roi>.mask.ome.tiff beside each washed stack: the tissue mask"
                                 " the wash used (uint8, 1 = tissue)")
+    transform: str = setting(
+        "none", "also write <roi>.arcsinh.ome.tiff: arcsinh(x / cofactor) of the washed stack "
+        "(the washed stack itself is never transformed)", choices=("none", "arcsinh"))
+    cofactor: float = setting(
+        5.0, "arcsinh cofactor (5: the usual one for mass cytometry counts, Bendall et al., "
+        "Science 2011); per channel under [output.channels.<tag>]", low=0.0, low_open=True, high=1e9)
 
 
 
@@ -53,10 +59,17 @@ def roi_stem(path: str | Path) -> str:
     return Path(name).stem
 
 
+#: What a run writes beside each washed stack for the next tools (:mod:`plexwash.qc.composite`):
+#: segmentation composites and arcsinh copies. Not ROIs: a run folder opened as a cohort skips them.
+COMPOSITE_SUFFIX, ARCSINH_SUFFIX = ".composite.ome.tiff", ".arcsinh.ome.tiff"
+
+
 def is_roi_path(path: str | Path) -> bool:
-    """True when the name looks like an ROI plexwash can read (TIFF or Zarr)."""
+    """True when the name looks like an ROI plexwash can read (TIFF or Zarr), and is not a
+    hand-off file of a run (``<roi>.composite.ome.tiff``, ``<roi>.arcsinh.ome.tiff``)."""
     name = Path(path).name.lower()
-    return not name.startswith(".") and name.endswith(TIFF_SUFFIXES + ZARR_SUFFIXES)
+    return (not name.startswith(".") and name.endswith(TIFF_SUFFIXES + ZARR_SUFFIXES)
+            and not name.endswith((COMPOSITE_SUFFIX, ARCSINH_SUFFIX)))
 
 
 def list_cohort(folder: str | Path, *, skip: Iterable[str | Path] = ()) -> list[Path]:

@@ -11,7 +11,9 @@ What a run writes into its output folder
 - ``report.html``: the cohort's QC report (:func:`plexwash.qc.report.write_report`);
 - ``recipe.toml`` (+ ``spillover.csv`` and ``stains.csv`` when used): the recipe exactly as
   applied, self-contained (its ``[compensation] spillover`` names the copy beside it);
-- ``run.log``: timestamped progress lines of every run into this folder.
+- ``run.log``: timestamped progress lines of every run into this folder;
+- ``audit.csv`` (exclusive pairs in the recipe), ``<roi>.composite.ome.tiff`` (roles in the
+  stain sheet) and ``<roi>.arcsinh.ome.tiff`` (``[output] transform``): :mod:`.handoff`.
 
 Scheduling
 ----------

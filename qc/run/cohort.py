@@ -22,6 +22,7 @@ from ..report import write_report
 from ..table import write_quality_table
 from .execute import connect, execute
 from .folder import interrupts, run_lock
+from .handoff import write_run_handoff
 from .plan import Job, check_inputs, plan_jobs, write_run_files
 from .progress import RunLog
 
@@ -196,6 +197,8 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
         report = error = None
         try:
             write_quality_table(out)
+            for line in write_run_handoff(out):  # audit.csv, composites, arcsinh stacks
+                log.line(line)
             report = write_report(out)  # the run's one call into the report
         except OutputError as exc:  # a full disk: the ROIs recorded stay recorded
             error = str(exc)

@@ -159,6 +159,7 @@ def wash_one(job: Job) -> dict:
 
 
 def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
+    from ..audit import audit_washed
     from ..io import read_roi, sha256_path
     from ..recipe import load_recipe
     from ..wash import wash_to_file
@@ -209,6 +210,7 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     for row in raw_rows + washed_rows:  # the ROI's id (its path in the cohort), not its file stem
         row["roi"] = job.roi
     release_memory()
+    audit = audit_washed(roi, target, recipe)
     lap("quality")
     if job.output is None:
         remove_path(target)
@@ -224,6 +226,8 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
         removed_fraction=removed, steps=stats, notes=list(result.notes),
         roi_flags=roi_flags, median_sbr=_median_sbr(raw_rows, washed_rows),
         timings=timings, quality=json_ready(raw_rows + washed_rows))
+    if audit:
+        record["audit"] = json_ready(audit)
     return record
 
 

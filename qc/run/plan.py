@@ -21,6 +21,7 @@ from ..ledger import RECIPE, SPILLOVER_COPY, STAINS_COPY, latest_records, read_l
 from ..table import BATCHES
 from .batches import SampleInputs, check_samples, job_spillover, write_sample_files
 from .folder import check_run_folder
+from .handoff import check_markers
 
 if TYPE_CHECKING:  # typing only: these modules load when a run starts
     from ..io import OutputSettings
@@ -130,7 +131,7 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains, samples=None
 
     if stains is None and (cohort_dir / "stains.csv").is_file():
         stains = cohort_dir / "stains.csv"
-    stains_text = None
+    stains_text = stains_obj = None
     if stains is not None:
         stains_obj = stains if not isinstance(stains, (str, Path)) else read_stains(stains)
         stains_text = _stains_csv(stains_obj)
@@ -138,7 +139,9 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains, samples=None
     extra = [BATCHES, *sample_inputs.outputs()] if sample_inputs is not None else []
     if sample_inputs is not None:
         given += sample_inputs.inputs()
-    check_run_folder(out, reached_inputs(given), [output_name(n, recipe.output) for n in names] + extra)
+    handoff = check_markers(recipe, stains_obj, inputs[0] if inputs else None, sorted(names))
+    check_run_folder(out, reached_inputs(given),
+                     [output_name(n, recipe.output) for n in names] + extra + handoff)
     return RunInputs(cohort_dir=cohort_dir, out_dir=out, rois=sorted(names.items()),
                      recipe=recipe, matrix=_spillover_matrix(spillover, recipe),
                      stains_text=stains_text, samples=sample_inputs)
