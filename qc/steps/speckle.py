@@ -56,7 +56,6 @@ References
 
 from __future__ import annotations
 
-import dataclasses
 import functools
 from collections.abc import Sequence
 from typing import NamedTuple
@@ -67,7 +66,7 @@ from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whate
 from .._arrays import as_channel, as_stack, is_dask
 from ..background import PARTS, ZONES_PER_PART, zone_factors
 from ..errors import InputError
-from ..settings import build_settings, setting
+from ..settings import build_settings
 from .lifting import (
     StepResult,
     kernel_outputs,
@@ -83,6 +82,7 @@ from .speckle_counts import (
     region_histogram,
     window_counts,
 )
+from .speckle_settings import SpeckleSettings
 from .speckle_tests import (
     MIN_REGION_WINDOWS,
     binomial_min_count,
@@ -103,54 +103,6 @@ __all__ = [
     "speckle_stack",
 ]
 
-
-
-
-@dataclasses.dataclass(frozen=True)
-class SpeckleSettings:
-    """Speckle step settings (recipe section ``[speckle]``)."""
-
-    enabled: bool = setting(True, "remove isolated background counts by a local-density test")
-    threshold: float = setting(
-        0.5,
-        "a pixel is positive when its value is above this (0.5: a whole count; ignores sub-count residue"
-        " left by compensation)",
-        low=0.0,
-        high=1e6,
-    )
-    radius: int = setting(2, "half-width of the square window in which positive neighbours are counted", low=1, high=50)
-    alpha: float = setting(
-        0.01, "keep a pixel when its neighbour count is this improbable for background", low=0.0, high=0.5, low_open=True
-    )
-    value_alpha: float = setting(
-        1e-6, "keep a pixel when its own value is this improbable for background", low=0.0, high=0.5, low_open=True
-    )
-    keep_touching: bool = setting(
-        False, "also keep positive pixels touching a dense pixel (more of thin processes, more background beside cells)"
-    )
-    min_area: int = setting(2, "drop kept groups of fewer pixels (8-connected)", low=1, high=100)
-    wide_radius: int = setting(
-        5, "half-width of a wider window: a pixel is also kept when it is dense there (alpha) and at least"
-        " mildly dense in its own window (support_alpha); keeps dim diffuse stains and thin fibres (0: off)",
-        low=0, high=50,
-    )
-    support_alpha: float = setting(
-        0.2, "how improbable for background the own window's count must be for the wider window to count",
-        low=0.0, high=1.0, low_open=True,
-    )
-    residue_alpha: float = setting(
-        0.1, "after compensation, counts left where the removed spillover is at least the local background are"
-        " kept only when their 3 x 3 window is this improbable under Poisson(spillover + background) (0: off)",
-        low=0.0, high=0.5,
-    )
-    edge_alpha: float = setting(
-        1e-3, "a dense pixel is not kept by density when its value is this improbably low for the mean of its"
-        " 8 neighbours (background on the rim of bright cells; 0: off)", low=0.0, high=0.5
-    )
-    local_rates: bool = setting(
-        True, "test against the background where the pixel lies (tissue or glass, and its local variation)"
-        " rather than one rate for the whole channel"
-    )
 
 
 
