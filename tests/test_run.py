@@ -303,6 +303,75 @@ def test_rerun_redoes_changed_missing_and_torn_outputs(reference, cohort, tmp_pa
         np.testing.assert_array_equal(array, _arrays(reference["out"], [name])[name])
 
 
+def _tamper_keeping_size_and_time(path: Path) -> None:
+    """Flip one byte in the middle of a file, then put its modification time back."""
+    stat = path.stat()
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    path.write_bytes(bytes(data))
+    os.utime(path, ns=(stat.st_atime_ns, stat.st_mtime_ns))
+    assert path.stat().st_size == stat.st_size and path.stat().st_mtime_ns == stat.st_mtime_ns
+
+
+def test_rerun_skips_by_size_and_time_without_reading_any_file(reference, cohort, tmp_path,
+                                                               monkeypatch):
+    import plexwash.qc.io as io_package
+
+    out = _copy_run(reference, tmp_path)  # copytree keeps sizes and modification times
+    for rec in read_ledger(out):
+        assert rec["input_stamp"]["size"] == (cohort / "cohort" / f"{rec['roi']}.ome.tiff").stat().st_size
+        assert rec["output_stamp"]["mtime_ns"] == (out / rec["output"]).stat().st_mtime_ns
+
+    hash_small_file = io_package.sha256_path  # the run's recipe, spillover and panel copies
+
+    def no_hashing(path, **kwargs):
+        if str(path).endswith(".ome.tiff"):
+            raise AssertionError(f"{path} was re-hashed on a default resume")
+        return hash_small_file(path, **kwargs)
+
+    monkeypatch.setattr(io_package, "sha256_path", no_hashing)
+    summary = _rerun(cohort, out)
+    assert (summary.done, summary.skipped, summary.failed) == (0, 4, 0)
+
+
+def test_tampered_output_with_same_size_and_time_is_caught_only_by_verify(reference, cohort, tmp_path):
+    out = _copy_run(reference, tmp_path)
+    _tamper_keeping_size_and_time(out / "roi_02.ome.tiff")
+    assert _rerun(cohort, out).skipped == 4  # documented: size and time alone cannot see it
+    summary = _rerun(cohort, out, verify=True)
+    assert (summary.done, summary.skipped) == (1, 3)
+    assert read_ledger(out)[-1]["roi"] == "roi_02"
+    np.testing.assert_array_equal(_arrays(out, ["roi_02"])["roi_02"],
+                                  _arrays(reference["out"], ["roi_02"])["roi_02"])
+
+
+def test_cli_run_verify_rehashes_on_resume(reference, cohort, tmp_path):
+    from plexwash.qc.cli import main
+
+    out = _copy_run(reference, tmp_path)
+    _tamper_keeping_size_and_time(out / "roi_03.ome.tiff")
+    args = ["run", str(cohort / "cohort"), "-o", str(out), "--panel", str(cohort / "panel.csv"),
+            "--spillover", str(cohort / "truth" / "spillover.csv"), "--quiet"]
+    assert main(args) == 0
+    assert len(read_ledger(out)) == 4  # nothing redone without --verify
+    assert main(args + ["--verify"]) == 0
+    assert [r["roi"] for r in read_ledger(out)[4:]] == ["roi_03"]
+
+
+def test_records_without_stamps_fall_back_to_hashes(reference, cohort, tmp_path):
+    out = _copy_run(reference, tmp_path)
+    records = read_ledger(out)
+    for rec in records:  # as an older plexwash wrote them
+        rec.pop("input_stamp"), rec.pop("output_stamp")
+    stat = (out / "ledger.jsonl").stat()
+    (out / "ledger.jsonl").write_text("".join(json.dumps(r) + "\n" for r in records), encoding="utf-8")
+    os.utime(out / "ledger.jsonl", ns=(stat.st_atime_ns, stat.st_mtime_ns))
+    _tamper_keeping_size_and_time(out / "roi_01.ome.tiff")
+    summary = _rerun(cohort, out)
+    assert (summary.done, summary.skipped) == (1, 3)
+    assert read_ledger(out)[-1]["roi"] == "roi_01"
+
+
 def test_rerun_redoes_everything_when_the_recipe_changes(reference, cohort, tmp_path):
     from plexwash.qc.recipe import load_recipe
 

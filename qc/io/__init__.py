@@ -23,7 +23,7 @@ from .cohort import (
     output_name,
     roi_stem,
 )
-from .hashing import canonical_json, sha256_path
+from .hashing import canonical_json, file_stamp, sha256_path
 from .panel import Panel, read_csv_cells, read_panel, refuse_duplicates
 from .roi import SUPPORTED_DTYPES, Roi, read_levels, read_roi, write_stack
 from .tiff import write_ome_tiff
@@ -37,6 +37,7 @@ __all__ = [
     "Panel",
     "Roi",
     "canonical_json",
+    "file_stamp",
     "is_roi_path",
     "list_cohort",
     "ngff_metadata",

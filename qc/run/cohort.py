@@ -69,7 +69,7 @@ class RunSummary:
 
 def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, workers=None,
                scheduler=None, connect_timeout=5.0, progress=True, cancel=None,
-               staging_dir=None) -> RunSummary:
+               staging_dir=None, verify=False) -> RunSummary:
     """Wash every ROI of a cohort folder into a run folder, resuming an earlier run.
 
     Parameters
@@ -100,6 +100,11 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
     staging_dir : str or Path, optional
         Folder for the staging files of the wash (e.g. a node's local scratch disk when
         the run folder is on network storage); by default beside each output.
+    verify : bool
+        On resume, re-hash the input and output of every ROI recorded done and redo those
+        whose SHA-256 no longer matches the ledger. By default a finished ROI is skipped
+        when its input and output keep the size and modification time recorded (no file
+        is read): a file changed in place that keeps both is only caught with ``verify``.
 
     Returns
     -------
@@ -139,11 +144,11 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
             stack.callback(client.close)
         stack.enter_context(run_lock(out))
         return _run_locked(inputs, out, started=started, workers=workers, client=client,
-                           progress=progress, cancel=cancel, staging_dir=staging_dir)
+                           progress=progress, cancel=cancel, staging_dir=staging_dir, verify=verify)
 
 
 def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel,
-                staging_dir) -> RunSummary:
+                staging_dir, verify) -> RunSummary:
     """The run, once its folder is locked (see :func:`run_cohort`)."""
     with RunLog(out / RUN_LOG, progress=progress) as log, interrupts() as stop:
         removed = sweep_leftovers(out)
@@ -152,7 +157,7 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
         if repair_ledger(out / LEDGER):
             log.line(f"removed the torn last line of {LEDGER} (a run was killed while writing it)")
         plan = write_run_files(inputs)
-        jobs, skipped = plan_jobs(plan, log, staging_dir=staging_dir)
+        jobs, skipped = plan_jobs(plan, log, staging_dir=staging_dir, verify=verify)
         log.line(f"plexwash {__version__} run of {plan.cohort_dir} into {out}: {len(plan.rois)} ROI(s), "
                  f"{len(skipped)} already done, {len(jobs)} to wash"
                  + (f" (recipe {plan.recipe_sha256[:12]})" if plan.recipe_sha256 else ""))

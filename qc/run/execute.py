@@ -159,7 +159,7 @@ def wash_one(job: Job) -> dict:
 
 
 def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
-    from ..io import read_roi, sha256_path
+    from ..io import file_stamp, read_roi, sha256_path
     from ..recipe import load_recipe
     from ..wash import wash_to_file
 
@@ -172,6 +172,7 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
         timings[name] = round(now - clock, 3)
         clock = now
 
+    input_stamp = file_stamp(job.input)  # before the hash: a later change shows on resume
     input_sha256 = job.input_sha256 or sha256_path(job.input)
     lap("hash_input")
     recipe = load_recipe(job.recipe)
@@ -198,7 +199,10 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     written.append(target)
     release_memory()
     lap("wash_write")
-    output_sha256 = sha256_path(target) if job.output is not None else None
+    output_sha256 = output_stamp = None
+    if job.output is not None:
+        output_stamp = file_stamp(target)
+        output_sha256 = sha256_path(target)
     lap("hash_output")
     raw_rows, washed_rows, roi_flags = measure_quality(
         roi, target, recipe, matrix, threads=job.threads or _worker_threads())
@@ -213,7 +217,7 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     record = _base_record(job)
     record.update(
         status="done", input_sha256=input_sha256, output=job.output,
-        output_sha256=output_sha256, shape=shape, dtype=str(roi.data.dtype),
+        output_sha256=output_sha256, input_stamp=input_stamp, output_stamp=output_stamp, shape=shape, dtype=str(roi.data.dtype),
         channels=list(roi.channels), labels=list(roi.labels), used=[bool(u) for u in roi.use],
         removed_fraction=removed, steps=stats, notes=list(result.notes),
         roi_flags=roi_flags, median_sbr=_median_sbr(raw_rows, washed_rows),
