@@ -13,7 +13,7 @@ from scipy import ndimage
 from skimage.filters import threshold_otsu
 
 from ..errors import InputError
-from ._kernels import masked_mean_std, suppress_spikes
+from ._kernels import lines_beside, split_mean_std, suppress_spikes, uniform_histogram
 from .excess import fit_model, measure_excess_area
 from .settings import DEFAULT_QUALITY, QualitySettings
 
@@ -227,8 +227,7 @@ def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name)
     n_fg = int(np.count_nonzero(foreground))
     floor = settings.background_floor
     if 0 < n_fg < clean.size:
-        fg_mean, fg_std = _masked_mean_std(clean, foreground, True)
-        bg_mean, bg_std = _masked_mean_std(clean, foreground, False)
+        fg_mean, fg_std, bg_mean, bg_std = (float(v) for v in split_mean_std(clean, foreground))
         sbr = fg_mean / max(bg_mean, floor)
         snr = (fg_mean - bg_mean) / max(bg_std, floor)
         fg_snr = _mean_over_std(fg_mean, fg_std)
@@ -258,14 +257,8 @@ def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name)
         ghost_sources=(), flags=flags)
     # the stripe sums of every channel are kept until the end: float32 halves them
     summary = ChannelSummary(bins=bins, rows=_line_sums(clean).astype(np.float32),
-                       columns=_line_sums(clean.T).astype(np.float32))
+                       columns=_line_sums(np.ascontiguousarray(clean.T)).astype(np.float32))
     return cq, summary
-
-
-def _masked_mean_std(values: np.ndarray, mask: np.ndarray, inside: bool) -> tuple[float, float]:
-    """Mean and standard deviation of the pixels where ``mask == inside``, without copies."""
-    mean, std = masked_mean_std(values, mask, inside)
-    return float(mean), float(std)
 
 
 def channel_flags(excess_area: float, sbr: float, saturated: float,
@@ -322,7 +315,12 @@ def _otsu(image: np.ndarray, low: float, high: float) -> float:
     The same 256-bin histogram over the image's range (``numpy.histogram``, as
     ``skimage.exposure.histogram`` does for float images) is handed to threshold_otsu.
     """
-    counts, edges = np.histogram(image, bins=256, range=(low, high))
+    edges = np.linspace(low, high, 257, endpoint=True, dtype=np.result_type(low, high, image))
+    if not np.all(edges[:-1] < edges[1:]):  # a range too narrow for the type: numpy says so
+        counts, edges = np.histogram(image, bins=256, range=(low, high))
+    else:  # numpy.histogram's bins, counted in one pass without its temporaries
+        counts = np.zeros(256, np.int64)
+        uniform_histogram(np.ascontiguousarray(image), edges, counts)
     return threshold_otsu(hist=(counts, (edges[:-1] + edges[1:]) / 2.0))
 
 
@@ -364,14 +362,8 @@ def _line_sums(image: np.ndarray) -> np.ndarray:
     mean of ``w``.
     """
     def beside(part, d):
-        total = np.zeros(part.shape)
-        count = np.zeros((part.shape[0], 1))
-        if part.shape[0] > d:
-            total[d:] += part[:-d]
-            total[:-d] += part[d:]
-            count[d:] += 1
-            count[:-d] += 1
-        total /= np.maximum(count, 1)
+        total = np.empty(part.shape)
+        lines_beside(part, d, total)
         return total
 
     edges = _segments(image.shape[1])
