@@ -330,8 +330,13 @@ def test_rerun_skips_by_size_and_time_without_reading_any_file(reference, cohort
         return hash_small_file(path, **kwargs)
 
     monkeypatch.setattr(io_package, "sha256_path", no_hashing)
+    closing = {name: (out / name).stat().st_mtime_ns for name in ("quality.csv", "report.html")}
     summary = _rerun(cohort, out)
     assert (summary.done, summary.skipped, summary.failed) == (0, 4, 0)
+    # nothing new: the quality table and the report are kept as they are
+    assert {name: (out / name).stat().st_mtime_ns for name in closing} == closing
+    (out / "report.html").unlink()
+    assert _rerun(cohort, out).report == out / "report.html" and (out / "report.html").is_file()
 
 
 def test_tampered_output_with_same_size_and_time_is_caught_only_by_verify(reference, cohort, tmp_path):

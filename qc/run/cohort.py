@@ -17,7 +17,7 @@ from pathlib import Path
 from .._version import __version__
 from ..errors import InputError, OutputError
 from ..files import remove_path, sweep_leftovers
-from ..ledger import LEDGER, RUN_LOG, Ledger, repair_ledger
+from ..ledger import LEDGER, QUALITY, REPORT, RUN_LOG, Ledger, repair_ledger
 from ..report import write_report
 from ..table import write_quality_table
 from .execute import connect, execute
@@ -195,8 +195,12 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
             log.stop()
         report = error = None
         try:
-            write_quality_table(out)
-            report = write_report(out)  # the run's one call into the report
+            if not jobs and _closing_files_current(out):  # a resume with nothing to do
+                report = out / REPORT
+                log.line(f"nothing new: {QUALITY} and {REPORT} already hold every ROI, kept")
+            else:
+                write_quality_table(out)
+                report = write_report(out)  # the run's one call into the report
         except OutputError as exc:  # a full disk: the ROIs recorded stay recorded
             error = str(exc)
             log.line(f"error: {error}")
@@ -206,6 +210,15 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
                  f"{len(failed)} failed" + (f" ({', '.join(failed)})" if failed else "")
                  + (f"; report {report}" if report else ""))
     return RunSummary(out, done, len(skipped), len(failed), tuple(failed), seconds, report, error)
+
+
+def _closing_files_current(out: Path) -> bool:
+    """True when ``quality.csv`` and ``report.html`` were written after the ledger's last change."""
+    try:
+        ledger = (out / LEDGER).stat().st_mtime_ns
+        return all((out / name).stat().st_mtime_ns >= ledger for name in (QUALITY, REPORT))
+    except OSError:
+        return False
 
 
 def _drop_stale_output(out: Path, job: Job | None, record: dict, log) -> None:
