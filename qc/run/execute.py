@@ -194,20 +194,27 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
         target = temporary_path(out_dir / output_name(job.roi), "measure")
     provenance = {"input_sha256": input_sha256, "recipe_sha256": job.recipe_sha256,
                   "spillover_sha256": job.spillover_sha256, "panel_sha256": job.panel_sha256}
+    quality_seconds = []
+
+    def measure(washed):  # the washed pixels as written, before the staging goes
+        start = time.perf_counter()
+        measured = measure_quality(roi, washed, recipe, matrix, threads=job.threads or _worker_threads())
+        quality_seconds.append(time.perf_counter() - start)
+        return measured
+
+    written.append(target)  # removed if anything fails from here on, the quality included
     result = wash_to_file(roi, target, recipe, spillover=matrix, staging_dir=job.staging_dir,
-                          provenance=provenance)
-    written.append(target)
+                          provenance=provenance, measure=measure)
     release_memory()
     lap("wash_write")
+    timings["quality"] = round(quality_seconds[0], 3)
+    timings["wash_write"] = round(timings["wash_write"] - quality_seconds[0], 3)
     output_sha256 = output_stamp = None
     if job.output is not None:
         output_stamp = file_stamp(target)
         output_sha256 = sha256_path(target)
     lap("hash_output")
-    raw_rows, washed_rows, roi_flags = measure_quality(
-        roi, target, recipe, matrix, threads=job.threads or _worker_threads())
-    release_memory()
-    lap("quality")
+    raw_rows, washed_rows, roi_flags = result.measured
     if job.output is None:
         remove_path(target)
     stats = json_ready(result.stats)
@@ -225,12 +232,18 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     return record
 
 
-def measure_quality(roi, washed_path: Path, recipe, matrix, *, threads: int = 1):
-    """Quality rows of the raw ROI and of the washed stack as written (quality.measure_roi)."""
-    from ..io import read_roi
+def measure_quality(roi, washed, recipe, matrix, *, threads: int = 1):
+    """Quality rows of the raw ROI and of the washed stack (quality.measure_roi).
+
+    ``washed`` is the stack as written: an array or array store, or the written file's path.
+    """
     from ..quality import measure_roi
 
-    measured = measure_roi(roi, recipe, spillover=matrix, washed=read_roi(washed_path).data, threads=threads)
+    if isinstance(washed, (str, Path)):
+        from ..io import read_roi
+
+        washed = read_roi(washed).data
+    measured = measure_roi(roi, recipe, spillover=matrix, washed=washed, threads=threads)
     return measured.raw_rows, measured.washed_rows, measured.flags
 
 
