@@ -60,12 +60,10 @@ def write_spillover(path: Path, spill: np.ndarray, names: list[str]) -> Path:
 
 FLOOR_CHILD = """
 import sys, tifffile, numpy as np
-from plexwash.qc.recipe import default_recipe
-settings = default_recipe().output
-compression = None if settings.compression == "none" else settings.compression
-for src, dst in zip(sys.argv[1::2], sys.argv[2::2]):
+compression, tile_setting = (None if sys.argv[1] == "none" else sys.argv[1]), int(sys.argv[2])
+for src, dst in zip(sys.argv[3::2], sys.argv[4::2]):
     data = tifffile.imread(src).astype(np.float32, copy=False)
-    tile = min(settings.tile, -(-max(data.shape[1:]) // 16) * 16)
+    tile = min(tile_setting, -(-max(data.shape[1:]) // 16) * 16)
     tifffile.imwrite(dst, data, ome=True, photometric="minisblack", tile=(tile, tile),
                      compression=compression, metadata={"axes": "CYX"})
 """
@@ -74,11 +72,14 @@ for src, dst in zip(sys.argv[1::2], sys.argv[2::2]):
 def floor_seconds(pairs: list[tuple[Path, Path]]) -> float:
     """Wall time of one process that reads each ROI with tifffile and writes it back.
 
-    Same compression and tile size as the recipe's output (what any tool must pay to
-    read and write these pixels), start-up of Python and the imports included, as for
-    the ``plexwash`` process it is compared with.
+    Plain numpy + tifffile (no plexwash import), the recipe's compression and tile size:
+    what any tool must pay to read and write these pixels, Python's start-up included, as
+    for the ``plexwash`` process it is compared with.
     """
-    args = [str(p) for pair in pairs for p in pair]
+    from plexwash.qc.recipe import default_recipe
+
+    settings = default_recipe().output
+    args = [settings.compression, str(settings.tile)] + [str(p) for pair in pairs for p in pair]
     start = time.perf_counter()
     subprocess.run([sys.executable, "-c", FLOOR_CHILD, *args], check=True)
     return time.perf_counter() - start

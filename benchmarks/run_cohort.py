@@ -14,9 +14,15 @@ of ``--repeats``; ratios are taken within this one run. Parts (``--parts``, defa
 - ``workers``: 8 ROIs of 36 x 504 x 504, the default (one process, threads) against
   ``--workers 2`` (target: >= 1.7x a single worker's throughput on 2 cores).
 
-The machine may be shared: the load average is printed before and after.
+The machine may be shared: the load average is printed with each part.
+
+``--baseline DIR`` also times another plexwash in the same run, interleaved: DIR holds
+``plexwash/qc`` (and ``plexwash/plugin``) of another checkout, e.g.
+``mkdir -p DIR/plexwash && git archive main qc plugin | tar -x -C DIR/plexwash && touch
+DIR/plexwash/__init__.py``; its processes run with ``PYTHONPATH=DIR``.
 
     python benchmarks/run_cohort.py [--repeats 3] [--parts dense,small,resume,workers] [--small 200]
+                                    [--baseline DIR]
 """
 
 from __future__ import annotations
@@ -48,11 +54,25 @@ def _median(fn, repeats: int) -> tuple[float, list[float]]:
     return statistics.median(runs), runs
 
 
-def _run(cohort: Path, out: Path, spill: Path, *extra: str, fresh: bool = True) -> float:
+BASELINE: dict = {}
+
+
+def _run(cohort: Path, out: Path, spill: Path, *extra: str, fresh: bool = True,
+         baseline: bool = False) -> float:
     if fresh:
         shutil.rmtree(out, ignore_errors=True)
     return plexwash_seconds(["run", str(cohort), "-o", str(out), "--spillover", str(spill),
-                             "--quiet", *extra])
+                             "--quiet", *extra], env=BASELINE if baseline else None)
+
+
+def _both(label: str, ours: list[float], theirs: list[float], floor: float | None = None) -> None:
+    """Print our median, the baseline's (when timed) and their ratios to the floor."""
+    for name, runs in (("this checkout", ours), ("baseline", theirs)):
+        if not runs:
+            continue
+        median = statistics.median(runs)
+        ratio = f"   {label} = {median / floor:.2f}x" if floor else ""
+        print(f"  {name:14s} median {median:6.2f} s  runs {_list(runs)}{ratio}")
 
 
 def _tiles(counts: np.ndarray, edge: int, n: int) -> list[np.ndarray]:
@@ -81,7 +101,10 @@ def main(argv=None) -> None:
     parser.add_argument("--resume-rois", type=int, default=24)
     parser.add_argument("--channels", type=int, default=36)
     parser.add_argument("--size", type=int, default=1008)
+    parser.add_argument("--baseline", type=Path, help="folder holding another checkout as plexwash/qc")
     args = parser.parse_args(argv)
+    if args.baseline:
+        BASELINE["PYTHONPATH"] = str(args.baseline.resolve())
     parts = [p.strip() for p in args.parts.split(",") if p.strip()]
     unknown = set(parts) - set(PARTS)
     if unknown:
@@ -96,18 +119,23 @@ def main(argv=None) -> None:
         warm = _tiles(counts, 96, 1)[0]
         write_roi(tmp / "warm" / "w.ome.tiff", warm, names)
         _run(tmp / "warm", tmp / "warm-run", spill_csv)
+        if BASELINE:
+            _run(tmp / "warm", tmp / "warm-run", spill_csv, baseline=True)
 
         if "dense" in parts:
             roi = write_roi(tmp / "dense" / "dense.ome.tiff", counts, names)
             print(f"\n[dense] one ROI {counts.shape[0]} x {counts.shape[1]} x {counts.shape[2]} float32: "
                   f"{counts.nbytes / 1e6:.0f} MB of pixels, {roi.stat().st_size / 1e6:.0f} MB on disk")
-            floors, runs = [], []
-            for k in range(args.repeats):  # interleaved, so both see the same load
+            floors, runs, base = [], [], []
+            for k in range(args.repeats):  # interleaved, so all see the same load
                 floors.append(floor_seconds([(roi, tmp / f"floor-{k}.ome.tiff")]))
                 runs.append(_run(roi.parent, tmp / "dense-run", spill_csv))
+                if BASELINE:
+                    base.append(_run(roi.parent, tmp / "dense-run", spill_csv, baseline=True))
             floor, run = statistics.median(floors), statistics.median(runs)
             print(f"floor (read + write, one process)  median {floor:6.2f} s  runs {_list(floors)}")
-            print(f"plexwash run                      median {run:6.2f} s  runs {_list(runs)}")
+            print("plexwash run")
+            _both("run / floor", runs, base, floor)
             print(f"run / floor = {run / floor:.2f}x   (target <= 2.5x, must be < 3x)   {load()}")
 
         if "small" in parts:
@@ -123,6 +151,12 @@ def main(argv=None) -> None:
             print(f"run of 1 ROI       median {t_one:6.2f} s  runs {_list(ones)}")
             print(f"run of {args.small} ROIs   median {t_all:6.2f} s  runs {_list(alls)}")
             print(f"fixed cost per ROI = {per:.3f} s   (target <= 0.1 s, must be < 0.25 s)   {load()}")
+            if BASELINE:
+                b_one = statistics.median([_run(one, tmp / "one-run", spill_csv, baseline=True)
+                                           for _ in range(args.repeats)])
+                b_all = _run(cohort, tmp / "small-run", spill_csv, baseline=True)
+                print(f"baseline: 1 ROI {b_one:.2f} s, {args.small} ROIs {b_all:.2f} s, fixed cost per ROI = "
+                      f"{(b_all - b_one) / max(1, args.small - 1):.3f} s   {load()}")
 
         if "resume" in parts:
             cohort = tmp / "resume"
@@ -137,6 +171,12 @@ def main(argv=None) -> None:
             print(f"resume (size + time)  median {t_resume:6.2f} s  runs {_list(resumes)}"
                   "   (target <= 1.5 s, must be < 2.5 s)")
             print(f"resume --verify       median {t_verify:6.2f} s  runs {_list(verifies)}   {load()}")
+            if BASELINE:
+                base_out = tmp / "resume-base"
+                _run(cohort, base_out, spill_csv, baseline=True)
+                t_base, bases = _median(lambda: _run(cohort, base_out, spill_csv, fresh=False, baseline=True),
+                                        args.repeats)
+                print(f"baseline resume       median {t_base:6.2f} s  runs {_list(bases)}   {load()}")
 
         if "workers" in parts:
             cohort = tmp / "eight"
