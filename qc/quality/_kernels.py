@@ -135,11 +135,18 @@ def poisson_tail_screen(n, mu, log_alpha, out):
     at least ``alpha``), 1 (below: the Chernoff upper bound is under ``alpha``) or 2
     (undecided: the caller asks ``gammainc``). See ``quality._poisson_tail_below``.
     """
+    # Bright bins, decided without logarithms: with r = n / mu >= 8, the Chernoff exponent
+    # n log(n / mu) - n + mu = mu (r log r - r + 1) >= mu (r + 1) = n + mu (r log r >= 2r for
+    # r >= e^2), so n + mu above -log(alpha) (with a margin) puts the bound below alpha.
+    bright = -log_alpha + 1e-6
     for i in range(n.size):
         ni = n[i]
         mi = mu[i]
         if not ni > mi + np.sqrt(mi):
             out[i] = 0
+            continue
+        if ni >= 8.0 * mi and ni + mi > bright:
+            out[i] = 1
             continue
         log_mu = np.log(mi)
         upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
