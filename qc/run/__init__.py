@@ -16,7 +16,8 @@ What a run writes into its output folder
 Scheduling
 ----------
 The unit of work is one whole ROI: a task reads the ROI, washes it, writes the washed
-stack atomically, hashes it and measures quality on raw and washed. Whole ROIs keep every
+stack atomically, measures quality on raw and on the washed pixels still at hand (no
+read-back of the output), and hashes the output. Whole ROIs keep every
 write local to the process that computed it (no pixels travel between processes), make a
 task's result all-or-nothing, and let the ledger stay a single writer (this process).
 Inside a task the ROI's chunks run on dask's threaded scheduler.

@@ -1,7 +1,7 @@
 """Executing a run's jobs: in this process on threads, or on dask.distributed.
 
-The unit of work is one whole ROI (:func:`wash_one`): read, wash, write atomically, hash,
-measure quality on raw and washed, and return the ROI's ledger record. By default the
+The unit of work is one whole ROI (:func:`wash_one`): read, wash, write atomically, measure
+quality on raw and washed, hash, and return the ROI's ledger record. By default the
 jobs run in this process one after the other, each ROI's chunks on a thread pool of all
 cores; with ``workers=N`` on a ``LocalCluster`` of N worker processes; with a scheduler
 address on a running cluster (``Client(address)``, reached first by :func:`connect`).
@@ -120,7 +120,8 @@ def wash_one(job: Job) -> dict:
     """Wash one ROI of a run and return its ledger record (never raises for a bad ROI).
 
     Reads the input, washes it with the run's recipe, writes the washed stack atomically,
-    hashes it and measures quality on raw and washed. Runs in this process or on a dask
+    measures quality on raw and washed (the washed pixels still at hand), records the
+    input's and output's size and modification time and hashes them. Runs in this process or on a dask
     worker (the job holds only paths and hashes, so it pickles small).
 
     Parameters
