@@ -828,3 +828,33 @@ def test_staging_dir_is_passed_down_and_the_cli_reads_it_from_the_environment(tm
     monkeypatch.delenv("PLEXWASH_STAGING_DIR")
     assert main(["run", str(cohort), "-o", str(tmp_path / "beside"), "--quiet"]) == 0
     assert len(folders) == 2 and all(f.parent == tmp_path / "beside" for f in folders)
+
+
+# --------------------------------------------------------------------------- quality without read-back
+
+
+@pytest.mark.parametrize("lazy", [False, True])
+def test_wash_to_file_hands_the_written_pixels_to_measure(cohort, tmp_path, lazy):
+    """What the run measures as the washed stage is the output's pixels, without reading it back."""
+    from plexwash.qc.wash import wash_to_file
+
+    roi = read_roi(cohort / "cohort" / "roi_02.ome.tiff", panel=cohort / "panel.csv", lazy=lazy)
+    seen = []
+    result = wash_to_file(roi, tmp_path / "w.ome.tiff", spillover=cohort / "truth" / "spillover.csv",
+                          measure=lambda washed: seen.append(np.array(washed[:])) or "measured")
+    assert result.measured == "measured" and len(seen) == 1
+    np.testing.assert_array_equal(seen[0], np.asarray(read_roi(result.output).data))
+
+
+def test_ledger_quality_equals_the_quality_of_the_output_read_back(reference, cohort):
+    from plexwash.qc.recipe import load_recipe
+    from plexwash.qc.run import measure_quality
+    from plexwash.qc.spillover import read_spillover
+
+    out = reference["out"]
+    recipe = load_recipe(out / "recipe.toml")
+    matrix = read_spillover(out / "spillover.csv")
+    for rec in read_ledger(out):
+        roi = read_roi(cohort / "cohort" / f"{rec['roi']}.ome.tiff", panel=cohort / "panel.csv")
+        raw_rows, washed_rows, _ = measure_quality(roi, out / rec["output"], recipe, matrix)
+        assert json.loads(json.dumps(raw_rows + washed_rows)) == rec["quality"]
