@@ -1,7 +1,7 @@
 """Dense ROIs for the speed benchmarks: every channel has signal, so the files compress poorly.
 
 The demo generator's tissue (``example_stack/generate.py``) with a background of a few
-counts per pixel in every channel: like a real acquisition of a well-stained panel, and
+counts per pixel in every channel: like a real acquisition of a well-stained stains, and
 unlike the sparse demo ROIs (18 MB on disk for 160 MB of pixels), whose tiny I/O floor
 flatters every ratio. Also a read + write floor process and the load average.
 """
@@ -36,11 +36,11 @@ def dense_counts(channels: int, size: int, *, seed: int = 40) -> tuple[np.ndarra
     gen = load_generator()
     names = channel_names(channels)
     rng = np.random.default_rng(seed)
-    panel = gen.random_panel(names, rng, failed=names[5], dim=names[3], rare=names[7],
+    stains = gen.random_stains(names, rng, failed=names[5], dim=names[3], rare=names[7],
                              specks=names[9])
     spill = gen.build_spillover(names, np.random.default_rng(seed + 1))
     background = np.random.default_rng(seed + 2).uniform(2.0, 8.0, channels)
-    counts, _ = gen.simulate_roi(np.random.default_rng(seed + 3), panel, spill, size,
+    counts, _ = gen.simulate_roi(np.random.default_rng(seed + 3), stains, spill, size,
                                  background_rate=background, dtype=np.float32, n_striped_rows=2)
     return np.ascontiguousarray(counts, np.float32), names, spill
 

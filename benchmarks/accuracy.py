@@ -8,7 +8,7 @@ default recipe twice:
   which scores the wash alone;
 - matrix "estimated": the matrix the demo run uses, estimated from the single-stain
   controls by ``plexwash.qc.estimate_from_controls`` (example_stack/controls/controls.csv
-  with the panel), which scores what a user gets end to end.
+  with the stain sheet), which scores what a user gets end to end.
 
 Printed per ROI and matrix (definitions in example_stack/score.py): the fraction of
 background speckle counts removed, of hot pixels neutralised, of in-cell true signal
@@ -112,7 +112,7 @@ def main(argv=None) -> int:
     matrices = {
         "true": read_spillover(args.cohort / "truth" / "spillover.csv"),
         "estimated": estimate_from_controls(args.cohort / "controls" / "controls.csv",
-                                            panel=args.cohort / "panel.csv"),
+                                            stains=args.cohort / "stains.csv"),
     }
     print(f"data: {args.cohort / 'cohort'} (simulated, truth in {args.cohort / 'truth'}); "
           "matrix true = truth/spillover.csv, estimated = estimate_from_controls(controls.csv)")

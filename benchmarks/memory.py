@@ -128,11 +128,11 @@ def build_stack(folder: Path, *, channels: int, size: int) -> tuple[Path, Path, 
 
     gen = load_generator()
     names = channel_names(channels)
-    panel = gen.random_panel(names, np.random.default_rng(50), failed=names[5], dim=names[3],
+    stains = gen.random_stains(names, np.random.default_rng(50), failed=names[5], dim=names[3],
                              rare=names[7], specks=names[9])
     spill = gen.build_spillover(names, np.random.default_rng(51))
     half = size // 2
-    counts, _ = gen.simulate_roi(np.random.default_rng(52), panel, spill, half, dtype=np.float32,
+    counts, _ = gen.simulate_roi(np.random.default_rng(52), stains, spill, half, dtype=np.float32,
                                  n_striped_rows=2)
     stack = np.tile(counts, (1, 2, 2))
     del counts

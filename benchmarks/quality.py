@@ -3,7 +3,7 @@
 Run: ``python benchmarks/quality.py [--size 1000] [--repeats 3]``
 
 The ROI comes from the demo generator (``example_stack/generate.py``, default
-22-channel panel with a failed stain, a dim stain, stripes and hot pixels), so the
+22-channel stains with a failed stain, a dim stain, stripes and hot pixels), so the
 ghost fits do the work they do on real-looking data. Prints medians of several
 repeats and ratios to floors measured in the same run:
 
@@ -54,15 +54,15 @@ def main() -> None:
     args = parser.parse_args()
 
     gen = load_generator()
-    panel = gen.default_panel()
-    names = [m.channel for m in panel]
+    stains = gen.default_stains()
+    names = [m.channel for m in stains]
     spill = gen.build_spillover(names, np.random.default_rng([args.seed, 0]))
-    stack, truth = gen.simulate_roi(np.random.default_rng(args.seed), panel, spill, args.size,
+    stack, truth = gen.simulate_roi(np.random.default_rng(args.seed), stains, spill, args.size,
                                     n_striped_rows=3)
     print(f"ROI {stack.shape} {stack.dtype}, {stack.nbytes / 1e6:.0f} MB")
 
     result = measure_stack(stack, names)  # warm-up, and the verdicts
-    wrong = [m.channel for m, cq in zip(panel, result.channels, strict=True)
+    wrong = [m.channel for m, cq in zip(stains, result.channels, strict=True)
              if cq.empty != (m.role == "failed")]
     print(f"empty verdicts wrong: {wrong or 'none'}; striped rows found {result.striped_rows}, "
           f"true {tuple(int(r) for r in truth['striped_rows'])}")

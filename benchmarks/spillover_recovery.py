@@ -3,7 +3,7 @@
 Run: ``python benchmarks/spillover_recovery.py [--unseen 2] [--skip-tissue]``
 
 Cohorts: the committed demo (``example_stack``) and ``--unseen`` fresh cohorts from the
-same generator with other random states (a different panel each), which the
+same generator with other random states (a different stains each), which the
 estimators were not tuned on.
 
 Controls (:func:`estimate_from_controls`), over the rows that have a control:
@@ -118,7 +118,7 @@ def revealable_pairs(signal: np.ndarray, true: np.ndarray, roles=None) -> np.nda
 def revealable(folder: Path, channels, true: np.ndarray) -> np.ndarray:
     """Entries the pooled tissue of a cohort folder can show (see :func:`revealable_pairs`)."""
     info = json.loads((folder / "truth" / "truth.json").read_text())
-    roles = {p["channel"]: p["role"] for p in info["panel"]}
+    roles = {p["channel"]: p["role"] for p in info["stains"]}
     files = sorted((folder / "truth").glob("roi_*.npz"))
     names = list(np.load(files[0])["channels"])
     order = [names.index(c) for c in channels]
@@ -170,10 +170,10 @@ def main(argv=None) -> int:
                 state = 9300 + k
                 names = UNSEEN_PANELS[k]
                 rng = np.random.default_rng(state)
-                panel = gen.random_panel(names, rng, failed=names[len(names) // 2], dim=names[3],
+                stains = gen.random_stains(names, rng, failed=names[len(names) // 2], dim=names[3],
                                          rare=names[-4], specks=names[7])
                 folder = Path(tmp) / f"unseen_{state}"
-                gen.simulate_cohort(folder, random_state=state, n_rois=3, size=320, panel=panel)
+                gen.simulate_cohort(folder, random_state=state, n_rois=3, size=320, stains=stains)
                 cohorts.append((f"unseen cohort, random state {state}, {len(names)} channels", folder))
         for title, folder in cohorts:
             print(title)

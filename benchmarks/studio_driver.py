@@ -5,7 +5,7 @@ each user action as a method that starts it the way a click would and returns on
 result is on the canvas. :class:`StallMeter` measures how long the GUI thread stops
 answering: a timer ticks every 10 ms and the longest gap between two ticks, less the
 10 ms, is the stall. :func:`make_cohort` writes a cohort of dense synthetic ROIs of any
-size (round cells over a sparse background, a panel and a spillover matrix).
+size (round cells over a sparse background, a stain sheet and a spillover matrix).
 
 Needs a display (Xvfb). Imported by ``benchmarks/studio_freezes.py`` and by
 ``tests/test_plugin_soak.py`` (through its file path: benchmarks/ is not a package).
@@ -22,7 +22,7 @@ TICK_MS = 10
 
 
 def make_cohort(out, *, n_rois: int = 3, n_channels: int = 36, size: int = 1000, seed: int = 36) -> Path:
-    """Write ``out/cohort/roi_NN.ome.tiff`` (uint16 counts), ``out/panel.csv``, ``out/spillover.csv``.
+    """Write ``out/cohort/roi_NN.ome.tiff`` (uint16 counts), ``out/stains.csv``, ``out/spillover.csv``.
 
     Each channel shows its own subset of round cells over Poisson background, a few hot
     pixels, and neighbouring channels spill 1-3 % into each other. Returns the cohort folder.
@@ -40,7 +40,7 @@ def make_cohort(out, *, n_rois: int = 3, n_channels: int = 36, size: int = 1000,
     for k in range(n_channels - 1):
         spill[k, k + 1] = rng.uniform(0.01, 0.03)
         spill[k + 1, k] = rng.uniform(0.005, 0.015)
-    (out / "panel.csv").write_text("channel,label,use\n" + "".join(
+    (out / "stains.csv").write_text("tag,marker,wash\n" + "".join(
         f"{c},{lab},yes\n" for c, lab in zip(channels, labels, strict=True)))
     write_spillover(out / "spillover.csv", SpilloverMatrix(tuple(channels), spill))
     yy, xx = np.mgrid[-6:7, -6:7]

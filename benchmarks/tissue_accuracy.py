@@ -120,7 +120,7 @@ def demo_rois(folder: Path) -> list[dict]:
         background = np.asarray(t["background_rate"], float)[:, None, None] * np.ones(own.shape[1:])
         roles = {r: info.get(r) or [] for r in ("failed", "dim", "rare", "specks", "dna")}
         roles = {r: [v] if isinstance(v, str) else list(v) for r, v in roles.items()}
-        stains = [p["channel"] for p in info["panel"] if p["role"] == "stain"]
+        stains = [p["channel"] for p in info["stains"] if p["role"] == "stain"]
         out.append({
             "path": path, "channels": list(t["channels"]), "own": own * rows,
             "spilled": np.asarray(t["mean"], float) * rows, "background": background * rows,

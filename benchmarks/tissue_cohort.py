@@ -49,7 +49,7 @@ Output layout::
     OUT_DIR/cohort/<roi>.ome.tiff   uint16 counts, axes CYX, OME channel names, zlib
     OUT_DIR/cohort/stains.csv       tag,marker,wash (every channel washed)
     OUT_DIR/truth/spillover.csv     the true matrix (plexwash's spillover CSV layout)
-    OUT_DIR/truth/truth.json        panel, roles, pairs, which ROIs are striped / low-count
+    OUT_DIR/truth/truth.json        stains, roles, pairs, which ROIs are striped / low-count
     OUT_DIR/truth/<roi>.npz         per-pixel truth, see :func:`load_truth`
 
 The per-ROI truth (``np.load``) holds ``signal`` (C, Y, X) float32: each channel's own
@@ -85,7 +85,7 @@ GLASS, STROMA, NEST, AGGREGATE = 0, 1, 2, 3
 NUCLEUS, CYTOPLASM, MEMBRANE = 1, 2, 3
 
 #: (channel, marker, role, compartments, cell types, level in counts/pixel, positive share)
-PANEL = (
+STAINS = (
     ("In115", "immune-membrane", "cell", "membrane", (TCELL, BCELL, MAC), 25.0, 0.9),
     ("La139", "keratin", "cell", "cytoplasm", (EPI,), 45.0, 0.95),
     ("Pr141", "pan-membrane", "cell", "membrane", (EPI, FIB, TCELL, BCELL, MAC), 20.0, 0.9),
@@ -291,7 +291,7 @@ def place_specks(rng, tissue, count: int) -> tuple[np.ndarray, np.ndarray]:
 
 def simulate_roi(rng, shape, kind: str, spillover: np.ndarray) -> tuple[np.ndarray, dict]:
     """Measured counts (C, Y, X) uint16 and the truth dict of one ROI."""
-    names = [p[0] for p in PANEL]
+    names = [p[0] for p in STAINS]
     tissue = tissue_outline(rng, shape)
     nest = _smooth_field(rng, shape, 22) > 0.55
     zone = np.where(tissue, np.where(nest, NEST, STROMA), GLASS).astype(np.uint8)
@@ -310,10 +310,10 @@ def simulate_roi(rng, shape, kind: str, spillover: np.ndarray) -> tuple[np.ndarr
                        0.3 + 0.5 * _smooth_field(rng, shape, 30), 0.0)
     scale = 0.5 if kind == "low" else 1.0
 
-    signal = np.zeros((len(PANEL),) + shape, np.float32)
+    signal = np.zeros((len(STAINS),) + shape, np.float32)
     n_cells = len(cell_type)
     dna_per_cell = DNA_LEVEL * rng.lognormal(0, 0.2, n_cells)
-    for c, (name, _marker, role, where, types, level, share) in enumerate(PANEL):
+    for c, (name, _marker, role, where, types, level, share) in enumerate(STAINS):
         if role == "fibre":
             plane = fibre_level
         elif role == "diffuse":
@@ -334,8 +334,8 @@ def simulate_roi(rng, shape, kind: str, spillover: np.ndarray) -> tuple[np.ndarr
         signal[c] = plane * (1.0 if role == "dna" else scale)
     signal = signal.astype(np.float16).astype(np.float32)  # float16-exact truth
 
-    rate_tissue = rng.uniform(0.08, 0.15, len(PANEL)) * (0.33 if kind == "low" else 1.0)
-    rate_glass = rng.uniform(0.006, 0.014, len(PANEL)) * (0.5 if kind == "low" else 1.0)
+    rate_tissue = rng.uniform(0.08, 0.15, len(STAINS)) * (0.33 if kind == "low" else 1.0)
+    rate_glass = rng.uniform(0.006, 0.014, len(STAINS)) * (0.5 if kind == "low" else 1.0)
     modulation = (0.75 + 0.5 * _smooth_field(rng, shape, 40)).astype(np.float32)
     row_factor = np.ones(shape[0])
     if kind == "striped":
@@ -354,7 +354,7 @@ def simulate_roi(rng, shape, kind: str, spillover: np.ndarray) -> tuple[np.ndarr
     counts = rng.poisson(rows * spilled) + rng.poisson(rows * background)
 
     hot = []
-    per_channel = rng.poisson(2.5e-4 * shape[0] * shape[1], len(PANEL))
+    per_channel = rng.poisson(2.5e-4 * shape[0] * shape[1], len(STAINS))
     for c, k in enumerate(per_channel):
         hot += [(c, rng.integers(shape[0]), rng.integers(shape[1]), rng.integers(100, 900))
                 for _ in range(k)]
@@ -421,7 +421,7 @@ def write_cohort(out_dir, *, seed: int = DEFAULT_SEED) -> list[Path]:
     (out_dir / "cohort").mkdir(parents=True, exist_ok=True)
     (out_dir / "truth").mkdir(parents=True, exist_ok=True)
     rng = np.random.default_rng(seed)
-    names = [p[0] for p in PANEL]
+    names = [p[0] for p in STAINS]
     spillover, pairs = physical_spillover(names, rng)
     paths, rois = [], []
     for roi, shape, kind in ROIS:
@@ -432,19 +432,19 @@ def write_cohort(out_dir, *, seed: int = DEFAULT_SEED) -> list[Path]:
                                    "PhysicalSizeX": 1.0, "PhysicalSizeY": 1.0})
         np.savez_compressed(out_dir / "truth" / f"{roi}.npz", **truth)
         paths.append(path)
-        dim = [i for i, p in enumerate(PANEL) if p[2] == "dim"][0]
+        dim = [i for i, p in enumerate(STAINS) if p[2] == "dim"][0]
         rois.append({"name": roi, "shape": list(shape), "kind": kind,
                      "striped_rows": [int(r) for r in np.flatnonzero(truth["row_factor"] < 1)],
                      "tissue_fraction": float(truth["tissue"].mean()),
                      "n_cells": int(len(truth["cell_type"]) - 1),
                      "dim_fraction": float((truth["signal"][dim] > 0).mean())})
     roles: dict[str, list[str]] = {}
-    for p in PANEL:
+    for p in STAINS:
         roles.setdefault(p[2], []).append(p[0])
     info = {"seed": seed, "channels": names, "roles": roles,
-            "panel": [{"channel": p[0], "marker": p[1], "role": p[2], "compartment": p[3],
+            "stains": [{"channel": p[0], "marker": p[1], "role": p[2], "compartment": p[3],
                        "cell_types": [CELL_TYPES[t - 1] for t in p[4]], "level": p[5],
-                       "share": p[6]} for p in PANEL],
+                       "share": p[6]} for p in STAINS],
             "spillover_pairs": pairs, "rois": rois,
             "striped": [r["name"] for r in rois if r["kind"] == "striped"],
             "low_count": [r["name"] for r in rois if r["kind"] == "low"]}
@@ -457,7 +457,7 @@ def write_cohort(out_dir, *, seed: int = DEFAULT_SEED) -> list[Path]:
     with open(out_dir / "cohort" / "stains.csv", "w", newline="") as fh:
         writer = csv.writer(fh)
         writer.writerow(["tag", "marker", "wash"])
-        for p in PANEL:
+        for p in STAINS:
             writer.writerow([p[0], p[1], "yes"])
     return paths
 

@@ -50,10 +50,10 @@ def make_roi(folder: Path, *, channels: int, size: int, dtype, sparse: bool = Fa
         gen = load_generator()
         names = channel_names(channels)
         rng = np.random.default_rng(40)
-        panel = gen.random_panel(names, rng, failed=names[5], dim=names[3], rare=names[7],
+        stains = gen.random_stains(names, rng, failed=names[5], dim=names[3], rare=names[7],
                                  specks=names[9])
         spill = gen.build_spillover(names, np.random.default_rng(41))
-        counts, _ = gen.simulate_roi(np.random.default_rng(42), panel, spill, size, dtype=dtype,
+        counts, _ = gen.simulate_roi(np.random.default_rng(42), stains, spill, size, dtype=dtype,
                                      n_striped_rows=2)
     else:
         counts, names, spill = dense_counts(channels, size)

@@ -62,7 +62,7 @@ _CELL_SPREAD = 0.3               # sigma of log per-cell expression
 
 @dataclass(frozen=True)
 class Marker:
-    """One panel channel and what its stain truly does in the tissue.
+    """One stain sheet channel and what its stain truly does in the tissue.
 
     ``level`` is the mean expected counts per pixel in a positive
     compartment; for a ``failed`` stain it is the level it should have had
@@ -79,8 +79,8 @@ class Marker:
     fraction: float = 1.0
 
 
-def default_panel() -> list[Marker]:
-    """Return the 22-channel panel of the committed demo cohort."""
+def default_stains() -> list[Marker]:
+    """Return the 22-channel stains of the committed demo cohort."""
     every = CELL_TYPES
     rows = [
         ("Pr141", "membrane-A", "stain", "membrane", 60, ("core", "rim"), 0.9),
@@ -111,9 +111,9 @@ def default_panel() -> list[Marker]:
             for c, lab, role, comp, lv, types, frac in rows]
 
 
-def random_panel(channel_names, rng, *, failed=None, dim=None, rare=None, specks=None,
+def random_stains(channel_names, rng, *, failed=None, dim=None, rare=None, specks=None,
                  dna=DNA_CHANNELS) -> list[Marker]:
-    """Invent a panel for arbitrary channel names (for unseen test variants).
+    """Invent a stain sheet for arbitrary channel names (for unseen test variants).
 
     Channels named in ``dna`` become nuclear DNA channels; ``failed``,
     ``dim``, ``rare`` and ``specks`` (a channel name or None) get those roles;
@@ -123,16 +123,16 @@ def random_panel(channel_names, rng, *, failed=None, dim=None, rare=None, specks
     Example
     -------
     >>> rng = np.random.default_rng(0)
-    >>> panel = random_panel(["Nd142", "Nd143", "Ir191"], rng, failed="Nd143")
-    >>> [m.role for m in panel]
+    >>> stains = random_stains(["Nd142", "Nd143", "Ir191"], rng, failed="Nd143")
+    >>> [m.role for m in stains]
     ['stain', 'failed', 'dna']
     """
     ordinary = ("core", "rim", "stromal", "granular")
-    panel = []
+    stains = []
     for k, name in enumerate(channel_names):
         letter = chr(ord("A") + k % 26)
         if name in dna:
-            panel.append(Marker(name, f"DNA-{letter}", "dna", "nucleus", 30.0, CELL_TYPES))
+            stains.append(Marker(name, f"DNA-{letter}", "dna", "nucleus", 30.0, CELL_TYPES))
             continue
         compartment = str(rng.choice(("membrane", "cytoplasm", "nucleus")))
         level = float(np.round(np.exp(rng.uniform(np.log(20), np.log(120)))))
@@ -148,25 +148,25 @@ def random_panel(channel_names, rng, *, failed=None, dim=None, rare=None, specks
             role, compartment, level, types, fraction = "specks", "granule", 40.0, ("granular",), 1.0
         elif name == failed:
             role = "failed"
-        panel.append(Marker(name, f"{compartment}-{letter}", role, compartment, level,
+        stains.append(Marker(name, f"{compartment}-{letter}", role, compartment, level,
                             types, fraction))
-    return panel
+    return stains
 
 
-def set_failed(panel, channel) -> list[Marker]:
-    """Return a copy of ``panel`` whose only failed stain is ``channel``.
+def set_failed(stains, channel) -> list[Marker]:
+    """Return a copy of ``stains`` whose only failed stain is ``channel``.
 
     Example
     -------
-    >>> panel = set_failed(default_panel(), "Nd144")
-    >>> [m.channel for m in panel if m.role == "failed"]
+    >>> stains = set_failed(default_stains(), "Nd144")
+    >>> [m.channel for m in stains if m.role == "failed"]
     ['Nd144']
     """
-    names = [m.channel for m in panel]
+    names = [m.channel for m in stains]
     if channel not in names:
-        raise KeyError(f"{channel}: not in the panel")
+        raise KeyError(f"{channel}: not in the stain sheet")
     out = []
-    for m in panel:
+    for m in stains:
         if m.channel == channel:
             m = replace(m, role="failed")
         elif m.role == "failed":
@@ -418,15 +418,15 @@ def _grow_specks(rng, tissue):
     return specks
 
 
-def true_signal(rng, panel, tissue, specks) -> np.ndarray:
+def true_signal(rng, stains, tissue, specks) -> np.ndarray:
     """True expected stain signal x, shape (C, Y, X), float64 values exactly
     representable in float16 (so a float16 copy of the truth is lossless).
     A ``failed`` stain is zero everywhere."""
     cells, compartment, cell_type = tissue["cells"], tissue["compartment"], tissue["cell_type"]
     n_cells = len(cell_type) - 1
     dna_content = np.exp(rng.normal(0, 0.2, n_cells + 1))
-    x = np.zeros((len(panel),) + cells.shape)
-    for c, marker in enumerate(panel):
+    x = np.zeros((len(stains),) + cells.shape)
+    for c, marker in enumerate(stains):
         if marker.role == "failed":
             continue
         if marker.compartment == "granule":
@@ -498,14 +498,14 @@ def _as_shape(size):
     return int(size[0]), int(size[1])
 
 
-def simulate_roi(rng, panel, spillover, size, *, background_rate=None, n_striped_rows=0,
+def simulate_roi(rng, stains, spillover, size, *, background_rate=None, n_striped_rows=0,
                  n_persistent_hot=2, dtype=np.uint16):
     """Simulate one ROI's measured counts and return them with their truth.
 
     Parameters
     ----------
     rng : numpy.random.Generator
-    panel : list of Marker
+    stains : list of Marker
     spillover : (C, C) array, entry (i, j) = fraction of i measured in j
     size : int or (height, width)
     background_rate : (C,) array, optional
@@ -528,23 +528,23 @@ def simulate_roi(rng, panel, spillover, size, *, background_rate=None, n_striped
 
     Example
     -------
-    >>> panel = random_panel(["Nd142", "Nd143", "Ir191"], np.random.default_rng(1))
-    >>> s = build_spillover([m.channel for m in panel], np.random.default_rng(2))
-    >>> counts, truth = simulate_roi(np.random.default_rng(3), panel, s, (64, 80))
+    >>> stains = random_stains(["Nd142", "Nd143", "Ir191"], np.random.default_rng(1))
+    >>> s = build_spillover([m.channel for m in stains], np.random.default_rng(2))
+    >>> counts, truth = simulate_roi(np.random.default_rng(3), stains, s, (64, 80))
     >>> counts.shape, truth["signal"].shape
     ((3, 64, 80), (3, 64, 80))
     """
     shape = _as_shape(size)
-    names = [m.channel for m in panel]
+    names = [m.channel for m in stains]
     spillover = np.asarray(spillover, float)
-    if spillover.shape != (len(panel), len(panel)):
-        raise ValueError("spillover must be C x C for the panel's C channels")
+    if spillover.shape != (len(stains), len(stains)):
+        raise ValueError("spillover must be C x C for the stain sheet's C channels")
     if background_rate is None:
-        background_rate = draw_background_rates(len(panel), rng)
+        background_rate = draw_background_rates(len(stains), rng)
     background_rate = np.asarray(background_rate, float)
     tissue = simulate_tissue(rng, shape)
     specks = _grow_specks(rng, tissue)
-    x = true_signal(rng, panel, tissue, specks)
+    x = true_signal(rng, stains, tissue, specks)
     mean = np.tensordot(spillover, x, axes=(0, 0))  # y_j = sum_i S[i, j] x_i
     striped = _stripe_rows(rng, shape[0], n_striped_rows)
     row_factor = np.ones(shape[0])
@@ -563,13 +563,13 @@ def simulate_roi(rng, panel, spillover, size, *, background_rate=None, n_striped
         row_factor=row_factor,
         striped_rows=striped,
         specks=specks,
-        specks_channel=[m.channel for m in panel if m.role == "specks"],
-        failed=[m.channel for m in panel if m.role == "failed"],
+        specks_channel=[m.channel for m in stains if m.role == "specks"],
+        failed=[m.channel for m in stains if m.role == "failed"],
     )
     return counts.astype(dtype), truth
 
 
-def simulate_control(rng, panel, spillover, channel, size, *, background_rate,
+def simulate_control(rng, stains, spillover, channel, size, *, background_rate,
                      level=CONTROL_LEVEL, n_persistent_hot=1, dtype=np.float32):
     """Simulate one single-stain control acquisition stained only in ``channel``.
 
@@ -580,7 +580,7 @@ def simulate_control(rng, panel, spillover, channel, size, *, background_rate,
     ``background``, ``hot_pixels``, ``channel``.
     """
     shape = _as_shape(size)
-    names = [m.channel for m in panel]
+    names = [m.channel for m in stains]
     c = names.index(channel)
     n_spots = max(1, shape[0] * shape[1] // 450)
     centres = np.column_stack([rng.uniform(0, shape[0], n_spots),
@@ -589,7 +589,7 @@ def simulate_control(rng, panel, spillover, channel, size, *, background_rate,
     spots, _ = _paint_cells(shape, centres, radius, radius * rng.uniform(0.8, 1.0, n_spots),
                             rng.uniform(0, np.pi, n_spots))
     per_spot = np.concatenate([[0.0], level * np.exp(rng.normal(0, 0.2, n_spots))])
-    x = np.zeros((len(panel),) + shape)
+    x = np.zeros((len(stains),) + shape)
     x[c] = per_spot[spots].astype(np.float16).astype(np.float64)
     mean = np.tensordot(np.asarray(spillover, float), x, axes=(0, 0))
     counts, background, hot, _ = _acquire(rng, mean, np.asarray(background_rate, float),
@@ -635,7 +635,7 @@ def _save_npz(path, **arrays):
 
 def write_plain_tiff(path, stack):
     """Write a CYX stack as a plain multipage TIFF: one page per channel, no
-    OME-XML and no shape description (channel names then come from a panel).
+    OME-XML and no shape description (channel names then come from a stain sheet).
 
     Example
     -------
@@ -652,12 +652,12 @@ def write_plain_tiff(path, stack):
             tif.write(page, photometric="minisblack", metadata=None)
 
 
-def write_panel_csv(path, panel):
-    """Write ``channel,label,use`` for the panel (every channel ``yes``)."""
+def write_stains_csv(path, stains):
+    """Write ``tag,marker,wash`` for the stain sheet (every channel ``yes``)."""
     with open(path, "w", newline="") as fh:
         writer = csv.writer(fh, lineterminator="\n")
-        writer.writerow(["channel", "label", "use"])
-        for m in panel:
+        writer.writerow(["tag", "marker", "wash"])
+        for m in stains:
             writer.writerow([m.channel, m.label, "yes"])
 
 
@@ -679,11 +679,11 @@ def _roi_shapes(size, n_rois):
 
 
 def simulate_cohort(out_dir, *, random_state=DEFAULT_RANDOM_STATE, n_rois=3, size=320,
-                    control_size=160, panel=None, striped_roi=1, n_striped_rows=3,
+                    control_size=160, stains=None, striped_roi=1, n_striped_rows=3,
                     tile=(256, 256)) -> dict:
     """Write a whole demo cohort with controls and truth under ``out_dir``.
 
-    Layout: ``cohort/roi_NN.ome.tiff`` (uint16), ``panel.csv``,
+    Layout: ``cohort/roi_NN.ome.tiff`` (uint16), ``stains.csv``,
     ``controls/controls.csv`` + ``controls/<channel>.ome.tiff`` (float32),
     ``truth/spillover.csv``, ``truth/roi_NN.npz``, ``truth/controls.npz``,
     ``truth/truth.json``. Same arguments give the same arrays.
@@ -693,12 +693,12 @@ def simulate_cohort(out_dir, *, random_state=DEFAULT_RANDOM_STATE, n_rois=3, siz
     out = Path(out_dir)
     for sub in ("cohort", "controls", "truth"):
         (out / sub).mkdir(parents=True, exist_ok=True)
-    panel = default_panel() if panel is None else list(panel)
-    names = [m.channel for m in panel]
+    stains = default_stains() if stains is None else list(stains)
+    names = [m.channel for m in stains]
     matrix_rng = np.random.default_rng([random_state, 0])
     spillover = build_spillover(names, matrix_rng)
     background_rate = draw_background_rates(len(names), matrix_rng)
-    write_panel_csv(out / "panel.csv", panel)
+    write_stains_csv(out / "stains.csv", stains)
     write_spillover_csv(out / "truth" / "spillover.csv", spillover, names)
 
     rois = []
@@ -706,7 +706,7 @@ def simulate_cohort(out_dir, *, random_state=DEFAULT_RANDOM_STATE, n_rois=3, siz
         name = f"roi_{k + 1:02d}"
         rng = np.random.default_rng([random_state, 1, k])
         counts, truth = simulate_roi(
-            rng, panel, spillover, shape, background_rate=background_rate,
+            rng, stains, spillover, shape, background_rate=background_rate,
             n_striped_rows=n_striped_rows if k == striped_roi else 0)
         write_ome_tiff(out / "cohort" / f"{name}.ome.tiff", counts, names,
                        tile=tile if min(shape) >= tile[0] else None)
@@ -735,10 +735,10 @@ def simulate_cohort(out_dir, *, random_state=DEFAULT_RANDOM_STATE, n_rois=3, siz
                      "n_hot_pixels": len(truth["hot_pixels"])})
 
     control_rows, control_truth = [], {}
-    stained = [m for m in panel if m.role not in ("dna", "failed")]
+    stained = [m for m in stains if m.role not in ("dna", "failed")]
     for k, marker in enumerate(stained):
         rng = np.random.default_rng([random_state, 2, k])
-        counts, truth = simulate_control(rng, panel, spillover, marker.channel, control_size,
+        counts, truth = simulate_control(rng, stains, spillover, marker.channel, control_size,
                                          background_rate=background_rate)
         file = f"{marker.channel}.ome.tiff"
         write_ome_tiff(out / "controls" / file, counts, names)
@@ -755,12 +755,12 @@ def simulate_cohort(out_dir, *, random_state=DEFAULT_RANDOM_STATE, n_rois=3, siz
     summary = {
         "random_state": random_state,
         "channels": names,
-        "panel": [asdict(m) for m in panel],
-        "failed": [m.channel for m in panel if m.role == "failed"],
-        "dim": [m.channel for m in panel if m.role == "dim"],
-        "rare": [m.channel for m in panel if m.role == "rare"],
-        "specks": [m.channel for m in panel if m.role == "specks"],
-        "dna": [m.channel for m in panel if m.role == "dna"],
+        "stains": [asdict(m) for m in stains],
+        "failed": [m.channel for m in stains if m.role == "failed"],
+        "dim": [m.channel for m in stains if m.role == "dim"],
+        "rare": [m.channel for m in stains if m.role == "rare"],
+        "specks": [m.channel for m in stains if m.role == "specks"],
+        "dna": [m.channel for m in stains if m.role == "dna"],
         "striped_roi": rois[striped_roi]["name"] if 0 <= striped_roi < len(rois) else None,
         "background_rate": dict(zip(names, background_rate.tolist(), strict=True)),
         "spillover_pairs": [{"source": names[i], "receiver": names[j], "kind": kind,

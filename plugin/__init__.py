@@ -1,7 +1,7 @@
 """plexwash studio: napari dock widgets over the plexwash engine (``plexwash studio``).
 
 The npe2 manifest ``napari.yaml`` contributes a reader (OME-TIFF, OME-Zarr, TIFF with its
-panel), a writer (image layers to one OME-TIFF / OME-Zarr stack), the demo cohort as
+stains), a writer (image layers to one OME-TIFF / OME-Zarr stack), the demo cohort as
 sample data, and five dock widgets: Cohort, Spillover, Speckle, Quality, Run.
 """
 

@@ -43,7 +43,7 @@ from ._layers import (
     tile_origins,
 )
 from ._quality import measure_rows
-from ._reader import read_with_panel
+from ._reader import read_with_stains
 
 VIEWS = ("single", "grid", "overlay", "preview")
 LOOKS = ("hues", "grey", "one hue")
@@ -123,8 +123,8 @@ def overlay_hues(ticked: list[str], marker_index: dict[str, int]) -> dict[str, i
 
 
 def load_roi(path, *, low: float = CONTRAST_PERCENTILES[0], high: float = CONTRAST_PERCENTILES[1]):
-    """Read an ROI with its panel and make its channel layers with robust contrast."""
-    roi = read_with_panel(path)
+    """Read an ROI with its stain sheet and make its channel layers with robust contrast."""
+    roi = read_with_stains(path)
     layers = roi_layer_data(roi, visible=1)
     for data, kwargs, _ in layers:
         kwargs["contrast_limits"] = list(robust_limits(data, low=low, high=high))
@@ -269,7 +269,7 @@ class CohortWidget(StudioWidget):
         def flags():
             for path in rois:
                 try:
-                    roi = read_with_panel(path)
+                    roi = read_with_stains(path)
                 except Exception as exc:  # one bad ROI must not stop the others
                     yield path, exc
                     continue

@@ -157,7 +157,7 @@ def channel_layer(image, *, roi_path, channel: str, label: str, index: int, stag
 
 
 def roi_layer_data(roi, *, visible: int | None = 1) -> list[tuple]:
-    """One image layer per channel of an ROI, named by panel label (else channel name).
+    """One image layer per channel of an ROI, named by marker name (else channel name).
 
     Parameters
     ----------
@@ -174,20 +174,20 @@ def roi_layer_data(roi, *, visible: int | None = 1) -> list[tuple]:
     return layers
 
 
-def find_panel(path) -> Path | None:
-    """``panel.csv`` beside an ROI, or in the folder above (a cohort folder's parent).
+def find_stains(path) -> Path | None:
+    """``stains.csv`` beside an ROI, or in the folder above (a cohort folder's parent).
 
     Examples
     --------
     >>> import tempfile, pathlib
     >>> root = pathlib.Path(tempfile.mkdtemp()); (root / "cohort").mkdir()
-    >>> _ = (root / "panel.csv").write_text("channel,label,use\\n")
-    >>> find_panel(root / "cohort" / "roi.ome.tiff") == root / "panel.csv"
+    >>> _ = (root / "stains.csv").write_text("tag,marker,wash\\n")
+    >>> find_stains(root / "cohort" / "roi.ome.tiff") == root / "stains.csv"
     True
     """
     path = Path(path)
     for folder in (path.parent, path.parent.parent):
-        candidate = folder / "panel.csv"
+        candidate = folder / "stains.csv"
         if candidate.is_file():
             return candidate
     return None
@@ -251,7 +251,7 @@ def show_roi_layers(viewer, layers: list[tuple]) -> bool:
     """Put an ROI's channel layers on the viewer; returns True when the layers were kept.
 
     When the raw layers already on the viewer are the same channels in the same order (ROIs
-    of a cohort share a panel), each keeps its place and gets the new ROI's data. Otherwise
+    of a cohort share a stain sheet), each keeps its place and gets the new ROI's data. Otherwise
     the raw layers are replaced in one batch (one scene-graph update, one garbage collection).
     Layers of other stages (previews, compensated) are kept: their owners swap their data.
     """

@@ -22,7 +22,7 @@ from qtpy.QtWidgets import (
 from ._common import ACCENT, WARN, StudioWidget, qcolor, small_figure, style_axes
 
 #: Table columns: (row key, header, number format or None for text). The flags come early so
-#: that a narrow dock shows them; "#" is the panel position (sort by it to get panel order).
+#: that a narrow dock shows them; "#" is the stain sheet position (sort by it to get stains order).
 COLUMNS = (
     ("position", "#", "{:d}"),
     ("channel", "channel", None),
@@ -261,7 +261,7 @@ class QualityWidget(StudioWidget):
     # ------------------------------------------------------------------ display
 
     def show_rows(self, rows: list[dict]) -> None:
-        """Fill the table (in panel order) and the plot with quality rows."""
+        """Fill the table (in stains order) and the plot with quality rows."""
         self.rows = list(rows)
         self.table.setSortingEnabled(False)
         self.table.clearContents()
@@ -281,7 +281,7 @@ class QualityWidget(StudioWidget):
                 item.setData(Qt.ItemDataRole.UserRole, row["channel"])
                 self.table.setItem(r, c, item)
         self.table.setSortingEnabled(True)
-        self.table.sortItems(0, Qt.SortOrder.AscendingOrder)  # panel order, as the plot
+        self.table.sortItems(0, Qt.SortOrder.AscendingOrder)  # stains order, as the plot
         flags = [c[0] for c in COLUMNS].index("flags")
         flagged = [r for r in range(len(rows)) if self.table.item(r, flags).text()]
         if flagged:  # bring the first flagged channel into view (its row; the columns from the left)

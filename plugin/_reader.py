@@ -1,11 +1,11 @@
-"""npe2 reader: an ROI (OME-TIFF, OME-Zarr, or TIFF with its panel) as one layer per channel
+"""npe2 reader: an ROI (OME-TIFF, OME-Zarr, or TIFF with its stain sheet) as one layer per channel
 (multiscale when the file holds a pyramid)."""
 
 from __future__ import annotations
 
 from pathlib import Path
 
-from ._layers import find_panel, roi_layer_data
+from ._layers import find_stains, roi_layer_data
 
 _SUFFIXES = (".ome.tiff", ".ome.tif", ".tiff", ".tif", ".ome.zarr", ".zarr")
 
@@ -13,7 +13,7 @@ _SUFFIXES = (".ome.tiff", ".ome.tif", ".tiff", ".tif", ".ome.zarr", ".zarr")
 def napari_get_reader(path):
     """Return :func:`read_roi_layers` when plexwash can read ``path``, else None.
 
-    A plain TIFF is read only when a ``panel.csv`` lies beside it (or one folder up),
+    A plain TIFF is read only when a ``stains.csv`` lies beside it (or one folder up),
     because its pages carry no channel names.
     """
     if isinstance(path, (list, tuple)):
@@ -26,7 +26,7 @@ def napari_get_reader(path):
         return None
     if name.endswith((".zarr",)):
         return read_roi_layers if path.is_dir() else None
-    if not name.endswith((".ome.tiff", ".ome.tif")) and find_panel(path) is None:
+    if not name.endswith((".ome.tiff", ".ome.tif")) and find_stains(path) is None:
         import tifffile
 
         try:
@@ -38,22 +38,22 @@ def napari_get_reader(path):
     return read_roi_layers
 
 
-def read_with_panel(path):
-    """Read an ROI with the ``panel.csv`` found beside it or one folder up.
+def read_with_stains(path):
+    """Read an ROI with the ``stains.csv`` found beside it or one folder up.
 
-    The panel names the channels of a plain TIFF and gives readable labels to OME files
-    whose channels it lists; a panel that does not match an OME file is ignored (the
+    The stain sheet names the channels of a plain TIFF and gives readable labels to OME files
+    whose channels it lists; a stain sheet that does not match an OME file is ignored (the
     file's own names are used).
     """
     from plexwash.qc import read_roi
     from plexwash.qc.errors import InputError
 
     path = Path(path)
-    panel = find_panel(path)
+    stains = find_stains(path)
     try:
-        return read_roi(path, panel=panel)
+        return read_roi(path, stains=stains)
     except InputError:
-        if panel is None or not path.name.lower().endswith((".ome.tiff", ".ome.tif", ".zarr")):
+        if stains is None or not path.name.lower().endswith((".ome.tiff", ".ome.tif", ".zarr")):
             raise
         return read_roi(path)
 
@@ -62,7 +62,7 @@ def read_roi_layers(path) -> list[tuple]:
     """Read one ROI (or several) into image layer data, one layer per channel."""
     if isinstance(path, (list, tuple)):
         return [layer for p in path for layer in read_roi_layers(p)]
-    return multiscale_layers(read_with_panel(path))
+    return multiscale_layers(read_with_stains(path))
 
 
 def multiscale_layers(roi) -> list[tuple]:

@@ -18,7 +18,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._common import PathRow, StudioWidget
-from ._layers import find_panel
+from ._layers import find_stains
 
 #: How often the ledger is read for progress while a run goes.
 POLL_MS = 250
@@ -201,7 +201,7 @@ class RunWidget(StudioWidget):
         except InputError as exc:
             self.fail(exc)
             return None
-        panel = find_panel(rois[0])
+        stains = find_stains(rois[0])
         workers = self.workers.value() or None
         spillover = self.state.spillover
         call = CancellableCall()
@@ -212,7 +212,7 @@ class RunWidget(StudioWidget):
 
         @thread_worker
         def job():
-            return call(run_cohort, cohort, out, recipe=recipe, spillover=spillover, panel=panel,
+            return call(run_cohort, cohort, out, recipe=recipe, spillover=spillover, stains=stains,
                         workers=workers, progress=False, cancel=call.event)
 
         self.run_button.setEnabled(False)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-#: Environment variable naming another demo folder (holding ``cohort/`` and ``panel.csv``).
+#: Environment variable naming another demo folder (holding ``cohort/`` and ``stains.csv``).
 DEMO_ENV = "PLEXWASH_DEMO_DIR"
 
 
@@ -16,7 +16,7 @@ def demo_dir() -> Path:
     folder = Path(os.environ.get(DEMO_ENV) or Path(__file__).resolve().parents[1] / "example_stack")
     if not (folder / "cohort").is_dir():
         raise InputError(folder, "demo cohort not found (make it with: python example_stack/generate.py, "
-                                 f"or point {DEMO_ENV} at a folder holding cohort/ and panel.csv)")
+                                 f"or point {DEMO_ENV} at a folder holding cohort/ and stains.csv)")
     return folder
 
 
@@ -35,7 +35,7 @@ def _demo_roi(index: int) -> list[tuple]:
 
 
 def demo_first_roi() -> list[tuple]:
-    """The demo cohort's first ROI, one layer per channel labelled from its panel."""
+    """The demo cohort's first ROI, one layer per channel labelled from its stains."""
     return _demo_roi(0)
 
 

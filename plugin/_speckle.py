@@ -41,7 +41,7 @@ class ChannelPreview:
     Attributes
     ----------
     channel, label : str
-        Acquisition name and panel label.
+        Acquisition name and marker name.
     index : int
         Position of the channel in the ROI.
     washed, removed : numpy.ndarray
@@ -113,7 +113,7 @@ class PreviewEngine:
         fraction = float(removed.sum(dtype=np.float64)) / total if total > 0 else 0.0
         notes = list(washed.notes)
         if not roi.use[index]:
-            notes.insert(0, "the panel marks this channel use = no: it passes through")
+            notes.insert(0, "the stain sheet marks this channel wash = no: it passes through")
         by_step = {step: np.asarray(maps[0]) for step, maps in washed.removed.items()}
         return ChannelPreview(washed.channels[0], washed.labels[0], index, plane, removed, fractions, fraction,
                               _removed_limits(removed), tuple(notes), by_step)

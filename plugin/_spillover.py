@@ -18,7 +18,7 @@ from qtpy.QtWidgets import (
 )
 
 from ._common import PathRow, StudioWidget, small_figure, style_axes
-from ._layers import channel_layer, find_panel, fit_visible, grid_of, robust_limits, studio_layers
+from ._layers import channel_layer, find_stains, fit_visible, grid_of, robust_limits, studio_layers
 
 #: What the heatmap can show.
 HEATMAP_VIEWS = ("spillover %", "interval width %")
@@ -101,7 +101,7 @@ def edit_entry(matrix, source: str, receiver: str, value: float):
 
 
 def compensated_stack(roi, matrix, *, method: str | None = None):
-    """The ROI's channels that the panel marks ``use`` compensated with the matrix.
+    """The ROI's channels that the stain sheet marks ``wash`` compensated with the matrix.
 
     Returns ``(indices, stack)``: ROI channel indices and their compensated planes, as the
     wash's compensation step computes them (raw input, no hot-pixel step before).
@@ -256,7 +256,7 @@ class SpilloverWidget(StudioWidget):
             return None
         self.say(f"estimating from the tissue of {len(rois)} ROIs…")
 
-        worker = thread_worker(estimate_from_tissue)(rois, panel=find_panel(rois[0]),
+        worker = thread_worker(estimate_from_tissue)(rois, stains=find_stains(rois[0]),
                                                      all_pairs=self.all_pairs.isChecked())
         return self.start(worker, on_return=lambda m: self.use(m, "estimated from tissue"))
 

@@ -80,7 +80,7 @@ class StudioState:
     # ------------------------------------------------------------------ inputs
 
     def inputs(self, *extra) -> list[Path]:
-        """Every file the studio reads data from: the cohort's ROIs (and its panel), the
+        """Every file the studio reads data from: the cohort's ROIs (and its stain sheet), the
         recipe's spillover matrix and ``extra`` (files a widget loaded), with the files
         reached through them (the engine's :func:`plexwash.qc.files.reached_inputs`). A save
         button's output may be none of these (:func:`plexwash.qc.files.check_output`). The
@@ -90,7 +90,7 @@ class StudioState:
 
         named = [*self.rois, self.recipe.spillover_path(), *extra]
         if self.cohort is not None:
-            named.append(self.cohort / "panel.csv")
+            named.append(self.cohort / "stains.csv")
         return reached_inputs(p for p in named if p is not None)
 
     # ------------------------------------------------------------------ setters
@@ -144,7 +144,7 @@ class StudioState:
         return self._planes[index]
 
     def label(self, channel: str) -> str:
-        """Panel label of a channel of the current ROI."""
+        """Marker name of a channel of the current ROI."""
         return self.roi.labels[self.roi.channel_index(channel)]
 
 

@@ -5,7 +5,15 @@ Research software: keep raw data; cleaned images are not for clinical diagnosis.
 
 from ._version import __version__
 from .errors import InputError
-from .io import OutputSettings, Panel, Roi, read_panel, read_roi, write_ome_tiff, write_ome_zarr
+from .io import (
+    OutputSettings,
+    Roi,
+    StainSheet,
+    read_roi,
+    read_stains,
+    write_ome_tiff,
+    write_ome_zarr,
+)
 from .quality import (
     QualitySettings,
     add_outlier_flags,
@@ -53,13 +61,13 @@ __all__ = [
     "wash_to_file",
     "write_spillover",
     "OutputSettings",
-    "Panel",
+    "StainSheet",
     "Recipe",
     "Roi",
     "__version__",
     "default_recipe",
     "load_recipe",
-    "read_panel",
+    "read_stains",
     "read_roi",
     "write_ome_tiff",
     "write_ome_zarr",

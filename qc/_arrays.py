@@ -59,7 +59,7 @@ def as_stack(stack, what: str = "stack"):
 
 
 def used_channels(use: Sequence[bool]) -> list[int]:
-    """Indices of the channels that take part in the wash (the panel's ``use = yes``)."""
+    """Indices of the channels that take part in the wash (the stain sheet's ``wash = yes``)."""
     return [i for i, u in enumerate(use) if u]
 
 

@@ -39,9 +39,9 @@ def build_parser() -> argparse.ArgumentParser:
     commands = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
 
     p = commands.add_parser("inspect", help="per-channel quality of one ROI")
-    p.add_argument("roi", type=Path, help="OME-TIFF, TIFF (with --panel) or OME-Zarr")
+    p.add_argument("roi", type=Path, help="OME-TIFF, TIFF (with --stains) or OME-Zarr")
     p.add_argument("--recipe", type=Path, help="recipe TOML (its [quality] thresholds apply)")
-    p.add_argument("--panel", type=Path, help="panel.csv (channel,label,use)")
+    p.add_argument("--stains", type=Path, help="stains.csv (tag,marker,wash)")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
     p.set_defaults(handler=_inspect)
 
@@ -109,13 +109,13 @@ def _spill_options(p) -> None:
     p.add_argument("--all-pairs", action="store_true",
                    help="estimate every pair, not only the physically plausible ones (M+-1, isotopes, M+16)")
     p.add_argument("--heatmap", type=Path, help="also write the matrix as a heatmap PNG")
-    p.add_argument("--panel", type=Path, help="panel.csv (channel,label,use)")
+    p.add_argument("--stains", type=Path, help="stains.csv (tag,marker,wash)")
 
 
 def _wash_options(p) -> None:
     p.add_argument("--recipe", type=Path, help="recipe TOML (defaults when omitted)")
     p.add_argument("--spillover", type=Path, help="spillover CSV (overrides the recipe's)")
-    p.add_argument("--panel", type=Path, help="panel.csv (channel,label,use)")
+    p.add_argument("--stains", type=Path, help="stains.csv (tag,marker,wash)")
 
 
 def _missing_action(parser: argparse.ArgumentParser) -> int:
@@ -166,7 +166,7 @@ def _inspect(args) -> int:
     from .io import read_roi
 
     recipe = _load_recipe(args)
-    roi = read_roi(args.roi, panel=args.panel)
+    roi = read_roi(args.roi, stains=args.stains)
     report = inspection(roi, recipe)
     if args.json:
         print(json.dumps(report, indent=2))
@@ -189,7 +189,7 @@ def inspection(roi, recipe) -> dict:
     rows = measured.raw_rows
     channels = []
     for row, label, use in zip(rows, roi.labels, roi.use, strict=True):
-        entry = {"name": row["channel"], "label": label, "use": bool(use)}
+        entry = {"name": row["channel"], "marker": label, "wash": bool(use)}
         entry.update({k: v for k, v in row.items() if k not in ("roi", "channel", "stage")})
         channels.append(entry)
     return {
@@ -264,8 +264,8 @@ def _recipe_new(args) -> int:
 def _spill_controls(args) -> int:
     from .spillover import estimate_from_controls
 
-    out = _spill_output(args, [args.controls, args.panel])
-    matrix = estimate_from_controls(args.controls, all_pairs=args.all_pairs, panel=args.panel)
+    out = _spill_output(args, [args.controls, args.stains])
+    matrix = estimate_from_controls(args.controls, all_pairs=args.all_pairs, stains=args.stains)
     return _write_matrix(args, out, matrix)
 
 
@@ -273,8 +273,8 @@ def _spill_tissue(args) -> int:
     from .io import read_roi
     from .spillover import estimate_from_tissue
 
-    out = _spill_output(args, [*args.rois, args.panel])
-    rois = [read_roi(path, panel=args.panel) for path in args.rois]
+    out = _spill_output(args, [*args.rois, args.stains])
+    rois = [read_roi(path, stains=args.stains) for path in args.rois]
     matrix = estimate_from_tissue(rois, all_pairs=args.all_pairs)
     return _write_matrix(args, out, matrix)
 
@@ -327,11 +327,11 @@ def _wash(args) -> int:
 
         raise InputError(out, "output must end in .ome.tiff or .ome.zarr, or be a folder")
     check_output(out, reached_inputs([args.roi, args.recipe, recipe.spillover_path(), args.spillover,
-                                      args.panel]), kind="stack")
+                                      args.stains]), kind="stack")
     from .run import bound_heap
 
     bound_heap()  # as a run does: threads share one malloc arena
-    roi = read_roi(args.roi, panel=args.panel)
+    roi = read_roi(args.roi, stains=args.stains)
     recipe.check_size(roi)
     result = wash_to_file(roi, out, recipe, spillover=args.spillover,
                           staging_dir=os.environ.get(STAGING_ENV) or None)
@@ -357,7 +357,7 @@ def _run(args) -> int:
     from .run import run_cohort
 
     summary = run_cohort(args.cohort, args.output, recipe=args.recipe, spillover=args.spillover,
-                         panel=args.panel, workers=args.workers, scheduler=args.scheduler,
+                         stains=args.stains, workers=args.workers, scheduler=args.scheduler,
                          connect_timeout=args.connect_timeout, progress=not args.quiet,
                          staging_dir=os.environ.get(STAGING_ENV) or None, verify=args.verify)
     _print_summary(summary)

@@ -307,7 +307,7 @@ def _zarr_is_ours(path: Path) -> bool:
 
 def _csv_is_ours(path: Path) -> bool:
     """A CSV laid out exactly as plexwash writes one: a spillover matrix (or its interval
-    bounds), a quality table or a run's panel copy."""
+    bounds), a quality table or a run's stains copy."""
     import csv
 
     try:
@@ -317,7 +317,7 @@ def _csv_is_ours(path: Path) -> bool:
     if not rows:
         return False
     header = rows[0]
-    if header == ["channel", "label", "use"]:
+    if header == ["tag", "marker", "wash"]:
         return all(len(r) == 3 and r[2] in ("yes", "no") for r in rows[1:])
     if header[:4] == ["roi", "channel", "label", "stage"]:
         return all(len(r) == len(header) for r in rows[1:])

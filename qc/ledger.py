@@ -25,7 +25,7 @@ QUALITY = "quality.csv"
 REPORT = "report.html"
 RECIPE = "recipe.toml"
 SPILLOVER_COPY = "spillover.csv"
-PANEL_COPY = "panel.csv"
+STAINS_COPY = "stains.csv"
 RUN_LOG = "run.log"
 #: Held by a run while it writes; its presence also marks a folder a run wrote.
 RUN_LOCK = ".plexwash-run.lock"

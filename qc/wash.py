@@ -4,7 +4,7 @@ The steps and their order come from the registry (:mod:`plexwash.qc.steps.regist
 ``hot_pixels`` -> ``compensation`` -> ``speckle``. Each step is a pure function of the
 previous step's output; the wash records what each step removed (a removed map per
 channel) and the fraction of each channel's signal that went, so over-cleaning is
-visible. Channels that the panel marks ``use = no`` pass through untouched and
+visible. Channels that the stain sheet marks ``wash = no`` pass through untouched and
 take no part in compensation.
 
 A wash of some channels (``channels=[...]``, the studio's preview) is the same

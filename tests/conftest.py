@@ -57,14 +57,14 @@ def small_roi(tmp_path, small_stack) -> Path:
 
 @pytest.fixture(scope="session")
 def unseen():
-    """An ROI and matrix the defaults were never tuned on: other random state, size, panel."""
+    """An ROI and matrix the defaults were never tuned on: other random state, size, stains."""
     gen = load_generator()
     rng = np.random.default_rng(90210)
     names = ["Nd142", "Nd143", "Nd144", "Nd146", "Sm147", "Sm149", "Eu151", "Eu153", "Gd156",
              "Gd158", "Gd160", "Dy161", "Dy162", "Dy163", "Er166", "Er167", "Yb172", "Ir191"]
-    panel = gen.random_panel(names, rng, failed="Gd158", dim="Dy163", rare="Er167", specks="Gd156")
+    stains = gen.random_stains(names, rng, failed="Gd158", dim="Dy163", rare="Er167", specks="Gd156")
     spill = gen.build_spillover(names, rng)
-    counts, truth = gen.simulate_roi(rng, panel, spill, (330, 290))
+    counts, truth = gen.simulate_roi(rng, stains, spill, (330, 290))
     from plexwash.qc.io import Roi
     from plexwash.qc.spillover import SpilloverMatrix
 

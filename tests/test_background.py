@@ -48,7 +48,7 @@ def rois():
     """A plain and a low-count ROI (counts, truth, model), one seed."""
     tc = _generator()
     rng = np.random.default_rng(1)
-    names = [p[0] for p in tc.PANEL]
+    names = [p[0] for p in tc.STAINS]
     spill, _ = tc.physical_spillover(names, rng)
     out = {}
     for kind, shape in (("plain", (320, 352)), ("low", (280, 280))):

@@ -45,9 +45,9 @@ def test_inspect_json_follows_contract_and_flags_failed_stain(generator, tmp_pat
     """An ROI the suite has never seen: another random state, size and channel order."""
     rng = np.random.default_rng(4242)
     names = ["Nd150", "Sm152", "Nd148", "Gd158", "Eu151", "Ir191", "Sm149", "Gd160"]
-    panel = generator.random_panel(names, rng, failed="Gd158", dim="Eu151")
+    stains = generator.random_stains(names, rng, failed="Gd158", dim="Eu151")
     spill = generator.build_spillover(names, rng)
-    counts, truth = generator.simulate_roi(rng, panel, spill, (300, 260))
+    counts, truth = generator.simulate_roi(rng, stains, spill, (300, 260))
     path = tmp_path / "unseen.ome.tiff"
     generator.write_ome_tiff(path, counts, names)
     result = run_cli("inspect", path, "--json")
@@ -65,7 +65,7 @@ def test_inspect_json_follows_contract_and_flags_failed_stain(generator, tmp_pat
 
 
 def test_inspect_table_is_readable(tmp_path):
-    result = run_cli("inspect", DEMO / "cohort" / "roi_01.ome.tiff", "--panel", DEMO / "panel.csv")
+    result = run_cli("inspect", DEMO / "cohort" / "roi_01.ome.tiff", "--stains", DEMO / "stains.csv")
     assert result.returncode == 0, result.stderr
     lines = result.stdout.splitlines()
     assert lines[0].startswith("ROI roi_01")
@@ -118,7 +118,7 @@ def test_wash_writes_ome_tiff_with_channel_names(tmp_path):
         data = tif.asarray()
     raw = tifffile.imread(DEMO / "cohort" / "roi_03.ome.tiff")
     assert data.shape == raw.shape and data.dtype == np.float32
-    assert names == [line.split(",")[0] for line in (DEMO / "panel.csv").read_text().splitlines()[1:]]
+    assert names == [line.split(",")[0] for line in (DEMO / "stains.csv").read_text().splitlines()[1:]]
     assert data.sum() < raw.sum()
 
 

@@ -126,11 +126,11 @@ def test_committed_files_match_a_regeneration(regenerated):
 
 def test_ome_xml_names_channels_in_order(info):
     ome_types = pytest.importorskip("ome_types")
-    with open(STACK / "panel.csv", newline="") as fh:
-        panel = list(csv.DictReader(fh))
-    assert list(panel[0]) == ["channel", "label", "use"]
-    assert all(row["use"] in {"yes", "no"} for row in panel)
-    names = [row["channel"] for row in panel]
+    with open(STACK / "stains.csv", newline="") as fh:
+        stains = list(csv.DictReader(fh))
+    assert list(stains[0]) == ["tag", "marker", "wash"]
+    assert all(row["wash"] in {"yes", "no"} for row in stains)
+    names = [row["tag"] for row in stains]
     assert names == info["channels"]
     files = sorted((STACK / "cohort").glob("*.ome.tiff")) + sorted(
         (STACK / "controls").glob("*.ome.tiff"))
@@ -302,7 +302,7 @@ def test_dim_rare_and_speck_channels(info):
         assert n == len(np.unique(t["specks"])) - 1 >= 10
         assert sizes.min() >= 2 and sizes.max() <= 6
         assert sp[sp > 0].min() >= 15  # bright
-        for k, marker in enumerate(info["panel"]):
+        for k, marker in enumerate(info["stains"]):
             if marker["role"] == "stain":
                 assert x[k].max() >= 20
 
@@ -340,22 +340,22 @@ def test_controls_follow_the_spillover(info, spill):
 def test_unseen_variants_in_memory(gen):
     names = ["Yb171", "Yb172", "Yb173", "Lu175", "Yb174", "Yb176", "Er168", "Tm169",
              "Pt195", "Pt196", "Ir191", "Ir193"]
-    panel = gen.random_panel(names, np.random.default_rng(7), failed="Yb173", dim="Tm169",
+    stains = gen.random_stains(names, np.random.default_rng(7), failed="Yb173", dim="Tm169",
                              rare="Pt195", specks="Lu175")
     s = gen.build_spillover(names, np.random.default_rng(8))
     assert s[names.index("Yb172"), names.index("Yb173")] > 0.01        # impurity
     assert s[names.index("Tm169"), names.index("Lu175")] == 0          # 169 + 16 = 185
     assert 0.003 <= s[names.index("Pt195"), names.index("Pt196")] <= 0.04
-    counts, truth = gen.simulate_roi(np.random.default_rng(9), panel, s, (200, 232),
+    counts, truth = gen.simulate_roi(np.random.default_rng(9), stains, s, (200, 232),
                                      n_striped_rows=2)
-    again, _ = gen.simulate_roi(np.random.default_rng(9), panel, s, (200, 232),
+    again, _ = gen.simulate_roi(np.random.default_rng(9), stains, s, (200, 232),
                                 n_striped_rows=2)
     assert counts.shape == (12, 200, 232) and np.array_equal(counts, again)
     assert not truth["signal"][names.index("Yb173")].any()
     assert truth["signal"][names.index("Yb174")].any()
     assert len(truth["striped_rows"]) == 2 and truth["failed"] == ["Yb173"]
 
-    default = gen.default_panel()
+    default = gen.default_stains()
     moved = gen.set_failed(default, "Nd148")
     assert [m.channel for m in moved if m.role == "failed"] == ["Nd148"]
     channels = [m.channel for m in moved]

@@ -17,8 +17,8 @@ from plexwash.qc.files import check_output
 from plexwash.qc.io import (
     OutputSettings,
     list_cohort,
-    read_panel,
     read_roi,
+    read_stains,
     sha256_path,
     write_ome_tiff,
     write_ome_zarr,
@@ -196,22 +196,22 @@ def test_small_dask_stack_written_in_memory(tmp_path, small_stack, monkeypatch):
     np.testing.assert_array_equal(tifffile.imread(tmp_path / "s.ome.tiff"), small_stack)
 
 
-def test_plain_multipage_tiff_with_panel(tmp_path, small_stack):
+def test_plain_multipage_tiff_with_stains(tmp_path, small_stack):
     path = tmp_path / "plain.tiff"
     tifffile.imwrite(path, small_stack, photometric="minisblack")
-    panel = tmp_path / "panel.csv"
-    panel.write_text("channel,label,use\nNd145,membrane-A,yes\nNd146,nuclear-B,yes\nIr191,DNA,no\n")
-    roi = read_roi(path, panel=panel)
+    stains = tmp_path / "stains.csv"
+    stains.write_text("tag,marker,wash\nNd145,membrane-A,yes\nNd146,nuclear-B,yes\nIr191,DNA,no\n")
+    roi = read_roi(path, stains=stains)
     assert roi.channels == tuple(NAMES)
     assert roi.labels == ("membrane-A", "nuclear-B", "DNA")
     assert roi.use == (True, True, False)
     np.testing.assert_array_equal(roi.data, small_stack)
 
 
-def test_panel_reorders_labels_to_ome_channel_order(tmp_path, small_roi):
-    panel = tmp_path / "panel.csv"
-    panel.write_text("channel,label,use\nIr191,DNA,no\nNd145,A,yes\nNd146,B,yes\n")
-    roi = read_roi(small_roi, panel=panel)
+def test_stains_reorders_labels_to_ome_channel_order(tmp_path, small_roi):
+    stains = tmp_path / "stains.csv"
+    stains.write_text("tag,marker,wash\nIr191,DNA,no\nNd145,A,yes\nNd146,B,yes\n")
+    roi = read_roi(small_roi, stains=stains)
     assert roi.labels == ("A", "B", "DNA")
     assert roi.use == (True, True, False)
 
@@ -308,38 +308,38 @@ def test_unknown_axes_refused(tmp_path):
     check_error("unsupported axes", read_roi, path)
 
 
-def test_panel_not_matching_channels(tmp_path, small_roi):
-    panel = tmp_path / "panel.csv"
-    panel.write_text("channel,label,use\nNd145,A,yes\nSm147,B,yes\nIr191,DNA,yes\n")
-    err = check_error("do not match", read_roi, small_roi, panel=panel)
+def test_stains_not_matching_channels(tmp_path, small_roi):
+    stains = tmp_path / "stains.csv"
+    stains.write_text("tag,marker,wash\nNd145,A,yes\nSm147,B,yes\nIr191,DNA,yes\n")
+    err = check_error("do not match", read_roi, small_roi, stains=stains)
     assert "Sm147" in err.problem and "Nd146" in err.problem
-    assert err.path.endswith("panel.csv")
+    assert err.path.endswith("stains.csv")
 
 
-def test_panel_with_wrong_count_for_plain_tiff(tmp_path, small_stack):
+def test_stains_with_wrong_count_for_plain_tiff(tmp_path, small_stack):
     path = tmp_path / "plain.tiff"
     tifffile.imwrite(path, small_stack, photometric="minisblack")
-    panel = tmp_path / "panel.csv"
-    panel.write_text("channel,label,use\nNd145,A,yes\nNd146,B,yes\n")
-    check_error("lists 2 channels", read_roi, path, panel=panel)
+    stains = tmp_path / "stains.csv"
+    stains.write_text("tag,marker,wash\nNd145,A,yes\nNd146,B,yes\n")
+    check_error("lists 2 channels", read_roi, path, stains=stains)
 
 
-def test_plain_tiff_without_panel(tmp_path, small_stack):
+def test_plain_tiff_without_stains(tmp_path, small_stack):
     path = tmp_path / "plain.tiff"
     tifffile.imwrite(path, small_stack, photometric="minisblack")
-    check_error("--panel", read_roi, path)
+    check_error("--stains", read_roi, path)
 
 
 @pytest.mark.parametrize("text, problem", [
     ("channel,label\nNd145,A\n", "missing column"),
-    ("channel,label,use\nNd145,A,maybe\n", "use must be"),
-    ("channel,label,use\nNd145,A,yes\nNd145,B,yes\n", "duplicate channel"),
+    ("tag,marker,wash\nNd145,A,maybe\n", "wash must be"),
+    ("tag,marker,wash\nNd145,A,yes\nNd145,B,yes\n", "duplicate tag"),
     ("", "empty"),
 ])
-def test_bad_panel(tmp_path, text, problem):
-    panel = tmp_path / "panel.csv"
-    panel.write_text(text)
-    check_error(problem, read_panel, panel)
+def test_bad_stains(tmp_path, text, problem):
+    stains = tmp_path / "stains.csv"
+    stains.write_text(text)
+    check_error(problem, read_stains, stains)
 
 
 def test_duplicate_channel_names(tmp_path, small_stack):

@@ -170,7 +170,7 @@ def _bad_file(kind: str, folder: Path) -> tuple[Path, list]:
         _user_tiff(path, np.ones((3, 1, 1), np.float32))
     elif kind == "three_px":
         write_ome_tiff(path, np.ones((3, 3, 3), np.float32), CHANNELS)
-    elif kind == "plain_no_panel":
+    elif kind == "plain_no_stains":
         path = folder / "plain.tiff"
         tifffile.imwrite(path, good, photometric="minisblack")
     elif kind == "duplicate_names":
@@ -187,7 +187,7 @@ def _bad_file(kind: str, folder: Path) -> tuple[Path, list]:
 
 BAD_FILES = ["empty", "text", "truncated", "nan", "negative_float", "negative_int16", "absurd_2e6",
              "absurd_1e8", "absurd_zarr", "zarr_no_multiscales", "one_px", "three_px",
-             "plain_no_panel", "duplicate_names", "missing", "plain_folder"]
+             "plain_no_stains", "duplicate_names", "missing", "plain_folder"]
 
 
 @pytest.mark.parametrize("kind", BAD_FILES)
@@ -228,10 +228,10 @@ def _case(kind: str, world: Path, capsys):
         return ["spill", "controls", controls, "-o", inp / "controls" / "s.csv"], "s.low.csv"
     if kind == "spill_output_is_a_user_csv":
         return ["spill", "controls", controls, "-o", inp / "mine.csv"], "mine.csv"
-    if kind == "spill_tissue_output_is_the_panel":
-        panel = inp / "panel.csv"
-        panel.write_text("channel,label,use\n" + "".join(f"{c},{c},yes\n" for c in CHANNELS))
-        return ["spill", "tissue", roi, "--panel", panel, "-o", panel], "panel.csv"
+    if kind == "spill_tissue_output_is_the_stains":
+        stains = inp / "stains.csv"
+        stains.write_text("tag,marker,wash\n" + "".join(f"{c},{c},yes\n" for c in CHANNELS))
+        return ["spill", "tissue", roi, "--stains", stains, "-o", stains], "stains.csv"
     if kind == "report_output_is_a_run_input":
         _run_folder(world, capsys)
         return ["report", world / "run", "-o", roi], roi.name
@@ -289,7 +289,7 @@ def _case(kind: str, world: Path, capsys):
 OUTPUT_CASES = [
     "spill_output_is_a_control", "spill_output_csv_is_a_control_listed", "spill_heatmap_is_a_control",
     "spill_output_is_the_controls_csv", "spill_interval_would_hit_an_input", "spill_output_is_a_user_csv",
-    "spill_tissue_output_is_the_panel", "report_output_is_a_run_input", "report_wrong_extension",
+    "spill_tissue_output_is_the_stains", "report_output_is_a_run_input", "report_wrong_extension",
     "report_over_a_user_html", "recipe_output_is_its_spillover", "recipe_over_a_user_toml",
     "wash_over_a_user_zarr_folder", "wash_into_zarr_holding_the_input", "wash_output_is_the_input",
     "wash_output_links_to_the_input", "wash_output_hardlinks_the_input",
@@ -352,15 +352,15 @@ def _fault(kind: str, world: Path, capsys):
         code, _, err = _cli(capsys, "run", inp / "cohort", "-o", world / "run", "--spillover",
                             inp / "badspill.csv", "--quiet")
         return code, err, ["badspill.csv"]
-    if kind == "panel_mismatch":
-        (inp / "panel.csv").write_text("channel,label,use\nNd145,a,yes\n")
-        code, _, err = _cli(capsys, "inspect", inp / "cohort" / "roi_01.ome.tiff", "--panel", inp / "panel.csv")
-        return code, err, ["panel.csv"]
+    if kind == "stains_mismatch":
+        (inp / "stains.csv").write_text("tag,marker,wash\nNd145,a,yes\n")
+        code, _, err = _cli(capsys, "inspect", inp / "cohort" / "roi_01.ome.tiff", "--stains", inp / "stains.csv")
+        return code, err, ["stains.csv"]
     raise ValueError(kind)  # pragma: no cover
 
 
 FAULTS = ["unreachable_scheduler", "file_given_as_cohort", "bad_recipe_key", "bad_spillover_value",
-          "panel_mismatch"]
+          "stains_mismatch"]
 
 
 @pytest.mark.parametrize("kind", FAULTS)

@@ -23,7 +23,7 @@ def demo_run(tmp_path_factory, demo_dir):
 
     out = tmp_path_factory.mktemp("agreement") / "run"
     run_cohort(demo_dir / "cohort", out, spillover=demo_dir / "truth" / "spillover.csv",
-               panel=demo_dir / "panel.csv", progress=False)
+               stains=demo_dir / "stains.csv", progress=False)
     return out
 
 

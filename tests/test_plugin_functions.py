@@ -21,7 +21,7 @@ from plexwash.qc.io import write_ome_tiff, write_ome_zarr
 
 @pytest.fixture(scope="module")
 def demo_roi(demo_dir):
-    return _reader.read_with_panel(demo_dir / "cohort" / "roi_01.ome.tiff")
+    return _reader.read_with_stains(demo_dir / "cohort" / "roi_01.ome.tiff")
 
 
 # --------------------------------------------------------------------------- contrast, names
@@ -55,28 +55,28 @@ def test_palette_hues_are_distinct_and_cycle():
     assert all(np.allclose(_layers.colormap_for(i).colors[0], [0, 0, 0, 1]) for i in range(3))
 
 
-def test_find_panel_beside_then_one_folder_up(tmp_path):
+def test_find_stains_beside_then_one_folder_up(tmp_path):
     (tmp_path / "cohort").mkdir()
     roi = tmp_path / "cohort" / "a.tiff"
-    assert _layers.find_panel(roi) is None
-    (tmp_path / "panel.csv").write_text("channel,label,use\n")
-    assert _layers.find_panel(roi) == tmp_path / "panel.csv"
-    (tmp_path / "cohort" / "panel.csv").write_text("channel,label,use\n")
-    assert _layers.find_panel(roi) == tmp_path / "cohort" / "panel.csv"
+    assert _layers.find_stains(roi) is None
+    (tmp_path / "stains.csv").write_text("tag,marker,wash\n")
+    assert _layers.find_stains(roi) == tmp_path / "stains.csv"
+    (tmp_path / "cohort" / "stains.csv").write_text("tag,marker,wash\n")
+    assert _layers.find_stains(roi) == tmp_path / "cohort" / "stains.csv"
 
 
 # --------------------------------------------------------------------------- reader
 
 
-def _panel(folder, rows):
-    text = "channel,label,use\n" + "".join(f"{c},{label},{u}\n" for c, label, u in rows)
-    (folder / "panel.csv").write_text(text)
+def _stains(folder, rows):
+    text = "tag,marker,wash\n" + "".join(f"{c},{label},{u}\n" for c, label, u in rows)
+    (folder / "stains.csv").write_text(text)
 
 
 def test_reader_gives_one_layer_per_channel_named_by_label(tmp_path, small_stack):
     path = tmp_path / "roi.ome.tiff"
     write_ome_tiff(path, small_stack, ["Nd145", "Nd146", "Ir191"])
-    _panel(tmp_path, [("Nd145", "CD3", "yes"), ("Nd146", "CD8", "yes"), ("Ir191", "DNA", "no")])
+    _stains(tmp_path, [("Nd145", "CD3", "yes"), ("Nd146", "CD8", "yes"), ("Ir191", "DNA", "no")])
     reader = _reader.napari_get_reader(str(path))
     assert callable(reader)
     layers = reader(str(path))
@@ -89,11 +89,11 @@ def test_reader_gives_one_layer_per_channel_named_by_label(tmp_path, small_stack
         assert kw["contrast_limits"][0] < kw["contrast_limits"][1]
 
 
-def test_reader_plain_tiff_needs_a_panel(tmp_path, small_stack):
+def test_reader_plain_tiff_needs_a_stain_sheet(tmp_path, small_stack):
     path = tmp_path / "plain.tiff"
     tifffile.imwrite(path, small_stack, photometric="minisblack")
     assert _reader.napari_get_reader(str(path)) is None  # no names: not ours to read
-    _panel(tmp_path, [("A1", "alpha", "yes"), ("B2", "beta", "yes"), ("C3", "gamma", "yes")])
+    _stains(tmp_path, [("A1", "alpha", "yes"), ("B2", "beta", "yes"), ("C3", "gamma", "yes")])
     layers = _reader.napari_get_reader(str(path))(str(path))
     assert [kw["name"] for _, kw, _ in layers] == ["alpha", "beta", "gamma"]
     np.testing.assert_array_equal(np.asarray(layers[2][0]), small_stack[2])
@@ -110,10 +110,10 @@ def test_reader_ome_zarr_and_refusals(tmp_path, small_stack):
     assert _reader.napari_get_reader([str(path), str(path)]) is None
 
 
-def test_reader_ignores_a_panel_of_other_files_for_ome(tmp_path, small_stack):
+def test_reader_ignores_a_stain_sheet_of_other_files_for_ome(tmp_path, small_stack):
     path = tmp_path / "roi.ome.tiff"
     write_ome_tiff(path, small_stack, ["Nd145", "Nd146", "Ir191"])
-    _panel(tmp_path, [("X1", "x", "yes")])
+    _stains(tmp_path, [("X1", "x", "yes")])
     assert [kw["name"] for _, kw, _ in _reader.read_roi_layers(path)] == ["Nd145", "Nd146", "Ir191"]
 
 
@@ -147,7 +147,7 @@ def test_writer_adds_suffix_and_refuses_mixed_shapes(tmp_path):
 
 def test_sample_data_is_the_demo_cohort(demo_dir):
     layers = _sample_data.demo_first_roi()
-    roi = read_roi(demo_dir / "cohort" / "roi_01.ome.tiff", panel=demo_dir / "panel.csv")
+    roi = read_roi(demo_dir / "cohort" / "roi_01.ome.tiff", stains=demo_dir / "stains.csv")
     assert [kw["name"] for _, kw, _ in layers] == list(roi.labels)
     np.testing.assert_array_equal(np.asarray(layers[5][0]), roi.data[5])
     assert _sample_data.demo_second_roi()[0][1]["metadata"]["plexwash"]["roi"].endswith("roi_02.ome.tiff")

@@ -43,7 +43,7 @@ def test_read_and_write_through_npe2(demo_dir, tmp_path):
 
     roi_path = demo_dir / "cohort" / "roi_02.ome.tiff"
     layers = npe2.read([str(roi_path)], stack=False, plugin_name="plexwash")
-    roi = read_roi(roi_path, panel=demo_dir / "panel.csv")
+    roi = read_roi(roi_path, stains=demo_dir / "stains.csv")
     assert [meta["name"] for _, meta, _ in layers] == list(roi.labels)
     written = npe2.write(str(tmp_path / "copy.ome.tiff"), layers[:4], plugin_name="plexwash")
     back = read_roi(written[0])

@@ -16,7 +16,7 @@ from plexwash.plugin import WIDGETS, launch_studio
 from plexwash.plugin._cohort import summarize_flags
 from plexwash.plugin._layers import grid_of, robust_limits, studio_layers
 from plexwash.plugin._quality import measure_rows
-from plexwash.plugin._reader import read_with_panel
+from plexwash.plugin._reader import read_with_stains
 from plexwash.plugin._run import Cancelled
 from plexwash.qc import default_recipe, load_recipe
 from plexwash.qc.io import list_cohort
@@ -27,17 +27,17 @@ pytestmark = pytest.mark.gui
 WAIT_MS = 120_000  # generous: the test machine is shared
 
 
-#: A small panel of the demo generator: neighbouring Nd masses (spillover pairs), a failed
+#: A small stains of the demo generator: neighbouring Nd masses (spillover pairs), a failed
 #: stain (Tb159) and DNA, so widget tests stay quick (napari adds about 4 layers a second here).
-SMALL_PANEL = ("Nd142", "Nd143", "Nd144", "Nd146", "Gd158", "Tb159", "Gd160", "Ir191")
+SMALL_STAINS = ("Nd142", "Nd143", "Nd144", "Nd146", "Gd158", "Tb159", "Gd160", "Ir191")
 
 
 @pytest.fixture(scope="module")
 def cohort(tmp_path_factory, generator):
     """Two unseen ROIs of the demo generator (8 channels, about 96 px a side) + controls."""
     root = tmp_path_factory.mktemp("studio")
-    panel = [m for m in generator.default_panel() if m.channel in SMALL_PANEL]
-    generator.simulate_cohort(root, random_state=23, n_rois=2, size=96, control_size=64, panel=panel)
+    stains = [m for m in generator.default_stains() if m.channel in SMALL_STAINS]
+    generator.simulate_cohort(root, random_state=23, n_rois=2, size=96, control_size=64, stains=stains)
     return root
 
 
@@ -74,10 +74,10 @@ def test_cohort_lists_flags_loads_and_views(make_napari_viewer, qtbot, cohort):
     paths = list_cohort(cohort / "cohort")
     assert widget.table.rowCount() == len(paths) == 2
     for row, path in enumerate(paths):  # flags are the engine's quality of the raw ROI
-        expected = summarize_flags(measure_rows(read_with_panel(path), default_recipe()))
+        expected = summarize_flags(measure_rows(read_with_stains(path), default_recipe()))
         assert widget.table.item(row, 1).text() == expected
 
-    roi = read_with_panel(paths[0])
+    roi = read_with_stains(paths[0])
     raw = studio_layers(viewer, stage="raw")
     assert [layer.name for layer in raw] == list(roi.labels)
     for i, layer in enumerate(raw):
@@ -132,7 +132,7 @@ def test_roi_switches_keep_the_layers_and_swap_their_data(make_napari_viewer, qt
         speckle.last = None
         wait(qtbot, widget.load(row))
         wait_preview(qtbot, speckle)
-        roi = read_with_panel(paths[row])
+        roi = read_with_stains(paths[row])
         assert list(viewer.layers) == before and not removed
         for i, layer in enumerate(studio_layers(viewer, stage="raw")):
             np.testing.assert_array_equal(layer.data, roi.data[i])
@@ -162,7 +162,7 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
     viewer = make_napari_viewer()
     quality = dock(viewer, "Quality")
     open_first_roi(qtbot, viewer, cohort)
-    roi = read_with_panel(list_cohort(cohort / "cohort")[0])
+    roi = read_with_stains(list_cohort(cohort / "cohort")[0])
     expected = measure_rows(roi, default_recipe())
     qtbot.waitUntil(lambda: len(quality.rows) == len(expected), timeout=WAIT_MS)
     assert [r["sbr"] for r in quality.rows] == [r["sbr"] for r in expected]
@@ -176,7 +176,7 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
     keys = [c[0] for c in COLUMNS]
     channel_column, sbr_column = keys.index("channel"), keys.index("sbr")
     assert keys.index("flags") < sbr_column  # the flags are not pushed off a narrow dock
-    # panel order first, as the plot
+    # stains order first, as the plot
     assert [quality.table.item(r, channel_column).text() for r in range(len(expected))] == list(roi.channels)
     quality.table.sortItems(sbr_column, Qt.SortOrder.DescendingOrder)
     top = max(expected, key=lambda r: r["sbr"])
@@ -378,7 +378,7 @@ def test_spillover_estimate_from_controls_and_tissue(make_napari_viewer, qtbot, 
 
     wait(qtbot, spill.estimate_tissue())
     paths = list_cohort(cohort / "cohort")
-    tissue = estimate_from_tissue(paths, panel=cohort / "panel.csv")
+    tissue = estimate_from_tissue(paths, stains=cohort / "stains.csv")
     np.testing.assert_array_equal(spill.state.spillover.values, tissue.values)
     spill.view.setCurrentText("interval width %")
     shown = np.ma.filled(spill.figure.axes[0].images[0].get_array(), np.nan)

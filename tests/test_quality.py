@@ -44,7 +44,7 @@ def _disks(rng, shape, n, radius=(4.0, 7.0)):
     return labels, scaled
 
 
-def _panel_stack(seed, *, size=192, dim_level=1.0, dim_types=(0, 2)):
+def _stains_stack(seed, *, size=192, dim_level=1.0, dim_types=(0, 2)):
     """A small IMC-like ROI with known roles, drawn independently of plexwash.
 
     Channels: A bright (whole cells of types 0 and 1, ~80 counts/px), B bright
@@ -215,7 +215,7 @@ def test_hot_pixels_do_not_make_foreground_or_background():
 
 
 def test_inputs_not_modified():
-    stack, names, _ = _panel_stack(0, size=96)
+    stack, names, _ = _stains_stack(0, size=96)
     copy = stack.copy()
     measure_stack(stack, names)
     measure_channel(stack[4])
@@ -258,7 +258,7 @@ def test_saturation_of_float_data_needs_a_level():
 
 @pytest.mark.parametrize("seed", SEEDS)
 def test_failed_stain_is_empty_and_real_stains_are_not(seed):
-    stack, names, _ = _panel_stack(seed)
+    stack, names, _ = _stains_stack(seed)
     sq = measure_stack(stack, names)
     empty = {cq.name: cq.empty for cq in sq.channels}
     assert empty == {"A": False, "B": False, "Dim": False, "Rare": False, "Failed": True}
@@ -272,14 +272,14 @@ def test_failed_stain_is_empty_and_real_stains_are_not(seed):
 def test_dim_stain_sharing_cells_with_bright_ones_is_not_empty(dim_level, dim_types):
     # the dim stain lies in cells that also carry bright stains (and a ghost of A)
     for seed in SEEDS[:2]:
-        stack, names, _ = _panel_stack(seed, dim_level=dim_level, dim_types=dim_types)
+        stack, names, _ = _stains_stack(seed, dim_level=dim_level, dim_types=dim_types)
         sq = measure_stack(stack, names)
         assert not sq.channel("Dim").empty
         assert sq.channel("Failed").empty
 
 
 def test_channel_alone_sees_ghosts_as_signal_but_not_hot_pixels():
-    stack, names, _ = _panel_stack(1)
+    stack, names, _ = _stains_stack(1)
     assert not measure_channel(stack[4]).empty  # ghosts are structure
     rng = np.random.default_rng(5)
     noise = rng.poisson(0.2, stack[4].shape)
@@ -289,21 +289,21 @@ def test_channel_alone_sees_ghosts_as_signal_but_not_hot_pixels():
 
 def test_known_spillover_matrix_explains_ghosts():
     for seed in SEEDS[:2]:
-        stack, names, spill = _panel_stack(seed)
+        stack, names, spill = _stains_stack(seed)
         sq = measure_stack(stack, names, spillover=spill,
                            settings=QualitySettings(ghosts=False))
         assert [cq.empty for cq in sq.channels] == [False, False, False, False, True]
 
 
 def test_without_ghost_model_the_failed_stain_is_not_empty():
-    stack, names, _ = _panel_stack(0)
+    stack, names, _ = _stains_stack(0)
     sq = measure_stack(stack, names, settings=QualitySettings(ghosts=False))
     assert not sq.channel("Failed").empty
     assert sq.channel("Failed").ghost_sources == ()
 
 
 def test_per_channel_settings():
-    stack, names, _ = _panel_stack(0, size=128)
+    stack, names, _ = _stains_stack(0, size=128)
     lenient = QualitySettings(min_area=1e9)  # nothing has that much excess
     sq = measure_stack(stack, names, channel_settings=[QualitySettings()] * 4 + [lenient])
     assert sq.channel("Failed").empty
@@ -312,7 +312,7 @@ def test_per_channel_settings():
 
 
 def test_washed_stage_keeps_raw_empty_verdicts():
-    stack, names, spill = _panel_stack(1)
+    stack, names, spill = _stains_stack(1)
     raw = measure_stack(stack, names)
     # a stand-in for washing: ghosts subtracted (unconstrained solve, clipped at 0),
     # then everything below 1 count set to 0 and a remainder left in the failed stain
@@ -327,35 +327,35 @@ def test_washed_stage_keeps_raw_empty_verdicts():
         measure_stack(washed[:4], names[:4], reference=raw)
 
 
-def _demo_roi(generator, seed, size, panel=None):
+def _demo_roi(generator, seed, size, stains=None):
     rng = np.random.default_rng(seed)
-    panel = panel or generator.default_panel()
-    names = [m.channel for m in panel]
+    stains = stains or generator.default_stains()
+    names = [m.channel for m in stains]
     spill = generator.build_spillover(names, np.random.default_rng([seed, 0]))
-    counts, truth = generator.simulate_roi(rng, panel, spill, size, n_striped_rows=3)
-    return panel, names, counts, truth
+    counts, truth = generator.simulate_roi(rng, stains, spill, size, n_striped_rows=3)
+    return stains, names, counts, truth
 
 
 @pytest.mark.parametrize("seed, size", [(11, (256, 320)), (12, (320, 256))])
 def test_demo_generator_failed_stain_and_stripes(generator, seed, size):
     # truth from example_stack/generate.py (independent of plexwash)
-    panel, names, counts, truth = _demo_roi(generator, seed, size)
+    stains, names, counts, truth = _demo_roi(generator, seed, size)
     sq = measure_stack(counts, names)
-    for marker, cq in zip(panel, sq.channels, strict=True):
+    for marker, cq in zip(stains, sq.channels, strict=True):
         assert cq.empty == (marker.role == "failed"), (marker.channel, marker.role)
     assert sq.striped_rows == tuple(int(r) for r in truth["striped_rows"])
     assert sq.striped_columns == ()
     assert sq.flags == ("striped",)
 
 
-def test_demo_generator_random_panel(generator):
+def test_demo_generator_random_stains(generator):
     rng = np.random.default_rng(21)
     channels = ["Y89", "La139", "Pr141", "Nd142", "Nd143", "Nd144", "Nd146", "Sm147", "Eu151",
                 "Eu153", "Gd155", "Gd156", "Tb159", "Dy162", "Dy164", "Er166", "Yb172",
                 "Ir191", "Ir193"]
-    panel = generator.random_panel(channels, rng, failed="Nd143", dim="Sm147", rare="Dy162",
+    stains = generator.random_stains(channels, rng, failed="Nd143", dim="Sm147", rare="Dy162",
                                    specks="Gd155")
-    panel, names, counts, truth = _demo_roi(generator, 21, 288, panel=panel)
+    stains, names, counts, truth = _demo_roi(generator, 21, 288, stains=stains)
     sq = measure_stack(counts, names)
     assert [n for n, cq in zip(names, sq.channels, strict=True) if cq.empty] == ["Nd143"]
 
@@ -374,7 +374,7 @@ def _striped(stack, rows=(), columns=(), factor=0.1):
 
 @pytest.mark.parametrize("seed", SEEDS)
 def test_striped_rows_and_columns_are_found(seed):
-    stack, names, _ = _panel_stack(seed)
+    stack, names, _ = _stains_stack(seed)
     damaged = _striped(stack, rows=(50, 51, 120), columns=(80,), factor=0.15)
     sq = measure_stack(damaged, names)
     assert sq.striped_rows == (50, 51, 120)
@@ -386,14 +386,14 @@ def test_striped_rows_and_columns_are_found(seed):
 
 @pytest.mark.parametrize("seed", SEEDS)
 def test_no_stripes_on_clean_data(seed):
-    stack, names, _ = _panel_stack(seed)
+    stack, names, _ = _stains_stack(seed)
     sq = measure_stack(stack, names)
     assert sq.striped_rows == () and sq.striped_columns == ()
     assert sq.flags == ()
 
 
 def test_mild_drop_is_not_a_stripe_at_default_drop():
-    stack, names, _ = _panel_stack(0)
+    stack, names, _ = _stains_stack(0)
     damaged = _striped(stack, rows=(60,), factor=0.8)
     assert measure_stack(damaged, names).striped_rows == ()
     strict = QualitySettings(stripe_drop=0.3)
@@ -406,7 +406,7 @@ def test_mild_drop_is_not_a_stripe_at_default_drop():
 
 def test_dask_input_gives_the_same_result():
     da = pytest.importorskip("dask.array")
-    stack, names, _ = _panel_stack(2, size=160)
+    stack, names, _ = _stains_stack(2, size=160)
     lazy = da.from_array(stack, chunks=(1, 64, 64))
     assert quality_rows(measure_stack(lazy, names), roi="r", stage="raw") == quality_rows(
         measure_stack(stack, names), roi="r", stage="raw")
@@ -481,7 +481,7 @@ def test_cohort_outliers_bad_table():
 
 
 def test_quality_rows_are_json_ready():
-    stack, names, _ = _panel_stack(0, size=96)
+    stack, names, _ = _stains_stack(0, size=96)
     sq = measure_stack(stack, names)
     rows = quality_rows(sq, roi="roi_01", stage="washed")
     assert [r["channel"] for r in rows] == names

@@ -69,14 +69,14 @@ def run_dir(tmp_path_factory, generator):
     """A run of three small ROIs, one of them unreadable (so the report shows a failure)."""
     stack = tmp_path_factory.mktemp("stack")
     rng = np.random.default_rng(3)
-    panel = generator.random_panel(CHANNELS, rng, failed="Gd160")
+    stains = generator.random_stains(CHANNELS, rng, failed="Gd160")
     generator.simulate_cohort(stack, random_state=3, n_rois=3, size=72, control_size=40,
-                              panel=panel)
+                              stains=stains)
     broken = stack / "cohort" / "roi_03.ome.tiff"
     broken.write_bytes(broken.read_bytes()[:900])
     out = tmp_path_factory.mktemp("run")
     run_cohort(stack / "cohort", out, spillover=stack / "truth" / "spillover.csv",
-               panel=stack / "panel.csv", progress=False)
+               stains=stack / "stains.csv", progress=False)
     return out
 
 

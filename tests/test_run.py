@@ -43,9 +43,9 @@ def _sha256(path: Path) -> str:
 
 def _make_cohort(generator, folder: Path, *, n_rois: int, size: int, random_state: int) -> Path:
     rng = np.random.default_rng(random_state)
-    panel = generator.random_panel(CHANNELS, rng, failed="Gd160", dim="Sm147")
+    stains = generator.random_stains(CHANNELS, rng, failed="Gd160", dim="Sm147")
     generator.simulate_cohort(folder, random_state=random_state, n_rois=n_rois, size=size,
-                              control_size=48, panel=panel)
+                              control_size=48, stains=stains)
     return folder
 
 
@@ -59,7 +59,7 @@ def _arrays(out: Path, names) -> dict[str, np.ndarray]:
 
 @pytest.fixture(scope="module")
 def cohort(tmp_path_factory, generator):
-    """Four small ROIs (8 channels) with controls, truth and panel."""
+    """Four small ROIs (8 channels) with controls, truth and stains."""
     return _make_cohort(generator, tmp_path_factory.mktemp("stack"), n_rois=4, size=80,
                         random_state=11)
 
@@ -70,7 +70,7 @@ def reference(tmp_path_factory, cohort):
     before = _hashes(cohort / "cohort")
     out = tmp_path_factory.mktemp("reference")
     summary = run_cohort(cohort / "cohort", out, spillover=cohort / "truth" / "spillover.csv",
-                         panel=cohort / "panel.csv", progress=False)
+                         stains=cohort / "stains.csv", progress=False)
     return {"out": out, "summary": summary, "before": before}
 
 
@@ -92,7 +92,7 @@ def test_run_writes_every_output(reference, cohort):
         assert washed.shape == raw.shape
         assert np.dtype(washed.data.dtype) == np.float32
     for item in ("ledger.jsonl", "quality.csv", "report.html", "recipe.toml", "spillover.csv",
-                 "panel.csv", "run.log"):
+                 "stains.csv", "run.log"):
         assert (out / item).is_file(), item
     # inputs are never modified
     assert _hashes(cohort / "cohort") == reference["before"]
@@ -146,7 +146,7 @@ def test_washed_pixels_are_the_wash_of_each_roi(reference, cohort):
     out = reference["out"]
     recipe = load_recipe(out / "recipe.toml")
     for name in _names(cohort)[:2]:
-        roi = read_roi(cohort / "cohort" / f"{name}.ome.tiff", panel=cohort / "panel.csv")
+        roi = read_roi(cohort / "cohort" / f"{name}.ome.tiff", stains=cohort / "stains.csv")
         direct = compute(wash(roi, recipe))
         np.testing.assert_array_equal(np.asarray(read_roi(out / f"{name}.ome.tiff").data),
                                       np.asarray(direct.data))
@@ -274,7 +274,7 @@ def _copy_run(reference, tmp_path) -> Path:
 
 def _rerun(cohort, out, **kwargs):
     kwargs.setdefault("spillover", cohort / "truth" / "spillover.csv")
-    return run_cohort(cohort / "cohort", out, panel=cohort / "panel.csv", progress=False, **kwargs)
+    return run_cohort(cohort / "cohort", out, stains=cohort / "stains.csv", progress=False, **kwargs)
 
 
 def test_rerun_skips_what_is_done(reference, cohort, tmp_path):
@@ -322,7 +322,7 @@ def test_rerun_skips_by_size_and_time_without_reading_any_file(reference, cohort
         assert rec["input_stamp"]["size"] == (cohort / "cohort" / f"{rec['roi']}.ome.tiff").stat().st_size
         assert rec["output_stamp"]["mtime_ns"] == (out / rec["output"]).stat().st_mtime_ns
 
-    hash_small_file = io_package.sha256_path  # the run's recipe, spillover and panel copies
+    hash_small_file = io_package.sha256_path  # the run's recipe, spillover and stains copies
 
     def no_hashing(path, **kwargs):
         if str(path).endswith(".ome.tiff"):
@@ -355,7 +355,7 @@ def test_cli_run_verify_rehashes_on_resume(reference, cohort, tmp_path):
 
     out = _copy_run(reference, tmp_path)
     _tamper_keeping_size_and_time(out / "roi_03.ome.tiff")
-    args = ["run", str(cohort / "cohort"), "-o", str(out), "--panel", str(cohort / "panel.csv"),
+    args = ["run", str(cohort / "cohort"), "-o", str(out), "--stains", str(cohort / "stains.csv"),
             "--spillover", str(cohort / "truth" / "spillover.csv"), "--quiet"]
     assert main(args) == 0
     assert len(read_ledger(out)) == 4  # nothing redone without --verify
@@ -413,7 +413,7 @@ def test_unreadable_roi_is_recorded_and_the_others_finish(cohort, tmp_path):
     (folder / "roi_02.ome.tiff").write_bytes(whole[: len(whole) // 2])  # truncated file
     before = _hashes(folder)
     out = tmp_path / "run"
-    summary = run_cohort(folder, out, panel=cohort / "panel.csv", progress=False)
+    summary = run_cohort(folder, out, stains=cohort / "stains.csv", progress=False)
     assert (summary.done, summary.failed, summary.exit_code) == (3, 1, 3)
     assert summary.failed_rois == ("roi_02",)
     failed = [r for r in read_ledger(out) if r["status"] == "failed"]
@@ -423,7 +423,7 @@ def test_unreadable_roi_is_recorded_and_the_others_finish(cohort, tmp_path):
     assert _hashes(folder) == before
     assert "roi_02" not in {r["roi"] for r in read_quality_csv(out / QUALITY)}
     # a rerun retries only the failed ROI (and fails it again)
-    again = run_cohort(folder, out, panel=cohort / "panel.csv", progress=False)
+    again = run_cohort(folder, out, stains=cohort / "stains.csv", progress=False)
     assert (again.done, again.skipped, again.failed) == (0, 3, 1)
 
 
@@ -480,7 +480,7 @@ def test_sweep_removes_only_temporary_names(tmp_path):
 
 
 def test_progress_lines_without_a_terminal(cohort, tmp_path, capsys):
-    run_cohort(cohort / "cohort", tmp_path / "run", panel=cohort / "panel.csv", progress=True)
+    run_cohort(cohort / "cohort", tmp_path / "run", stains=cohort / "stains.csv", progress=True)
     err = capsys.readouterr().err.splitlines()
     done = [line for line in err if ": done in " in line]
     assert len(done) == 4
@@ -496,7 +496,7 @@ def test_progress_bar_on_a_terminal(cohort, tmp_path, monkeypatch):
 
     screen = Terminal()
     monkeypatch.setattr(sys, "stderr", screen)
-    run_cohort(cohort / "cohort", tmp_path / "run", panel=cohort / "panel.csv", progress=True)
+    run_cohort(cohort / "cohort", tmp_path / "run", stains=cohort / "stains.csv", progress=True)
     text = screen.getvalue()
     assert "washing" in text and "4/4" in text
     assert "roi_04: done" in text
@@ -508,13 +508,13 @@ def test_ome_zarr_output_and_resume(cohort, tmp_path):
 
     recipe = default_recipe().replace("output", format="ome-zarr")
     out = tmp_path / "run"
-    summary = run_cohort(cohort / "cohort", out, recipe=recipe, panel=cohort / "panel.csv",
+    summary = run_cohort(cohort / "cohort", out, recipe=recipe, stains=cohort / "stains.csv",
                          progress=False)
     assert summary.done == 4
     for rec in read_ledger(out):
         assert rec["output"].endswith(".ome.zarr") and (out / rec["output"]).is_dir()
         assert rec["output_sha256"] == sha256_path(out / rec["output"])
-    assert run_cohort(cohort / "cohort", out, recipe=recipe, panel=cohort / "panel.csv",
+    assert run_cohort(cohort / "cohort", out, recipe=recipe, stains=cohort / "stains.csv",
                       progress=False).skipped == 4
 
 
@@ -526,7 +526,7 @@ def test_chunking_does_not_change_the_pixels(reference, cohort, tmp_path, monkey
     recipe = load_recipe(reference["out"] / "recipe.toml").replace("output", tile=64)
     out = tmp_path / "lazy"
     run_cohort(cohort / "cohort", out, recipe=recipe, spillover=cohort / "truth" / "spillover.csv",
-               panel=cohort / "panel.csv", progress=False)
+               stains=cohort / "stains.csv", progress=False)
     names = _names(cohort)
     lazy, eager = _arrays(out, names), _arrays(reference["out"], names)
     for name in names:
@@ -561,14 +561,14 @@ def test_same_pixels_whatever_the_scheduler(reference, cohort, tmp_path):
     expected = _arrays(reference["out"], names)
     spill = cohort / "truth" / "spillover.csv"
     local = tmp_path / "local"
-    summary = run_cohort(cohort / "cohort", local, spillover=spill, panel=cohort / "panel.csv",
+    summary = run_cohort(cohort / "cohort", local, spillover=spill, stains=cohort / "stains.csv",
                          workers=2, progress=False)
     assert summary.done == 4
     scheduler, worker, address = _start_scheduler(tmp_path)
     try:
         assert address.startswith("tcp://127.0.0.1:")
         remote = tmp_path / "remote"
-        summary = run_cohort(cohort / "cohort", remote, spillover=spill, panel=cohort / "panel.csv",
+        summary = run_cohort(cohort / "cohort", remote, spillover=spill, stains=cohort / "stains.csv",
                              scheduler=address, progress=False)
         assert summary.done == 4
     finally:
@@ -628,7 +628,7 @@ _DRIVER = textwrap.dedent("""
 
     tifffile.TiffWriter.write = blocking_write
     try:
-        s = run_cohort(sys.argv[1], sys.argv[2], spillover=sys.argv[3], panel=sys.argv[4],
+        s = run_cohort(sys.argv[1], sys.argv[2], spillover=sys.argv[3], stains=sys.argv[4],
                        progress=False)
     except KeyboardInterrupt:
         sys.exit(130)
@@ -649,7 +649,7 @@ def _start_driver(cohort, out, *, block, marker, lazy=False):
            "BLOCK_MARKER": str(marker)}
     return subprocess.Popen(
         [sys.executable, "-c", _DRIVER, str(cohort / "cohort"), str(out),
-         str(cohort / "truth" / "spillover.csv"), str(cohort / "panel.csv"),
+         str(cohort / "truth" / "spillover.csv"), str(cohort / "stains.csv"),
          *(["lazy"] if lazy else [])],
         env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
 
@@ -685,7 +685,7 @@ def _check_no_false_record(out):
 def bigger_reference(tmp_path_factory, bigger_cohort):
     out = tmp_path_factory.mktemp("bigger_reference")
     run_cohort(bigger_cohort / "cohort", out, spillover=bigger_cohort / "truth" / "spillover.csv",
-               panel=bigger_cohort / "panel.csv", progress=False)
+               stains=bigger_cohort / "stains.csv", progress=False)
     return out
 
 
@@ -711,7 +711,7 @@ def test_kill_9_loses_only_the_rois_in_flight(bigger_cohort, bigger_reference, t
     (out / ".roi_08.ome.tiff.spill-zz" / "stack.zarr").mkdir(parents=True)
     summary = run_cohort(bigger_cohort / "cohort", out,
                          spillover=bigger_cohort / "truth" / "spillover.csv",
-                         panel=bigger_cohort / "panel.csv", progress=False)
+                         stains=bigger_cohort / "stains.csv", progress=False)
     assert (summary.done, summary.skipped, summary.failed) == (6, 2, 0)
     assert not torn.exists()
     assert not [p for p in out.iterdir() if p.name.startswith(".") and ("partial" in p.name
@@ -757,7 +757,7 @@ def test_run_demo_on_a_generated_stack(cohort, tmp_path):
     summary = run_demo(tmp_path / "demo", stack=cohort, progress=False)
     assert (summary.done, summary.exit_code) == (4, 0)
     used = read_spillover(tmp_path / "demo" / "spillover.csv")
-    estimate = estimate_from_controls(cohort / "controls" / "controls.csv", panel=cohort / "panel.csv")
+    estimate = estimate_from_controls(cohort / "controls" / "controls.csv", stains=cohort / "stains.csv")
     np.testing.assert_allclose(used.values, estimate.values, rtol=1e-9, atol=1e-12)
     assert (tmp_path / "demo" / "report.html").is_file()
     with pytest.raises(InputError, match="demo data not found"):
@@ -838,7 +838,7 @@ def test_wash_to_file_hands_the_written_pixels_to_measure(cohort, tmp_path, lazy
     """What the run measures as the washed stage is the output's pixels, without reading it back."""
     from plexwash.qc.wash import wash_to_file
 
-    roi = read_roi(cohort / "cohort" / "roi_02.ome.tiff", panel=cohort / "panel.csv", lazy=lazy)
+    roi = read_roi(cohort / "cohort" / "roi_02.ome.tiff", stains=cohort / "stains.csv", lazy=lazy)
     seen = []
     result = wash_to_file(roi, tmp_path / "w.ome.tiff", spillover=cohort / "truth" / "spillover.csv",
                           measure=lambda washed: seen.append(np.array(washed[:])) or "measured")
@@ -855,6 +855,6 @@ def test_ledger_quality_equals_the_quality_of_the_output_read_back(reference, co
     recipe = load_recipe(out / "recipe.toml")
     matrix = read_spillover(out / "spillover.csv")
     for rec in read_ledger(out):
-        roi = read_roi(cohort / "cohort" / f"{rec['roi']}.ome.tiff", panel=cohort / "panel.csv")
+        roi = read_roi(cohort / "cohort" / f"{rec['roi']}.ome.tiff", stains=cohort / "stains.csv")
         raw_rows, washed_rows, _ = measure_quality(roi, out / rec["output"], recipe, matrix)
         assert json.loads(json.dumps(raw_rows + washed_rows)) == rec["quality"]

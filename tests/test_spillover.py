@@ -295,11 +295,11 @@ def test_controls_on_an_unseen_generated_cohort(tmp_path, generator, seed):
              "Tb159", "Gd160", "Dy161", "Dy162", "Ir191"]
     rng = np.random.default_rng(seed)
     s = generator.build_spillover(names, rng)
-    panel = generator.random_panel(names, rng)
+    stains = generator.random_stains(names, rng)
     rates = generator.draw_background_rates(len(names), rng)
     rows = [["file", "channel"]]
     for name in names[:-1]:
-        counts, _ = generator.simulate_control(rng, panel, s, name, 160, background_rate=rates)
+        counts, _ = generator.simulate_control(rng, stains, s, name, 160, background_rate=rates)
         write_ome_tiff(tmp_path / f"c_{name}.ome.tiff", counts, names)
         rows.append([f"c_{name}.ome.tiff", name])
     m = estimate_from_controls(write_csv(tmp_path / "controls.csv", rows), n_boot=50)
@@ -372,15 +372,15 @@ def tissue_case(generator):
              "Dy162", "Dy164", "Ir191", "Ir193"]
     rng = np.random.default_rng(777)
     s = generator.build_spillover(names, rng)
-    panel = generator.random_panel(names, rng)
+    stains = generator.random_stains(names, rng)
     rates = generator.draw_background_rates(len(names), rng)
     rois, signals = [], []
     for k, shape in enumerate([(256, 288), (288, 256)]):
-        counts, truth = generator.simulate_roi(np.random.default_rng([777, k]), panel, s, shape,
+        counts, truth = generator.simulate_roi(np.random.default_rng([777, k]), stains, s, shape,
                                                background_rate=rates)
         rois.append(counts)
         signals.append(truth["signal"])
-    return names, s, rois, signals, [m.role for m in panel]
+    return names, s, rois, signals, [m.role for m in stains]
 
 
 @pytest.mark.slow

@@ -128,5 +128,5 @@ def test_channels_are_named_once_and_must_exist(roi):
         wash(roi, channels=[roi.channels[0], roi.channels[0]])
     with pytest.raises(InputError, match="a list of channel names"):
         wash(roi, channels=roi.channels[0])
-    by_label = wash(roi, channels=[roi.labels[1]])  # a panel label works too
+    by_label = wash(roi, channels=[roi.labels[1]])  # a stain sheet label works too
     assert by_label.channels == (roi.channels[1],)

@@ -1,11 +1,11 @@
-"""Reading ROIs (OME-TIFF, TIFF + panel, OME-Zarr) and writing washed stacks atomically.
+"""Reading ROIs (OME-TIFF, TIFF + stains, OME-Zarr) and writing washed stacks atomically.
 
 The modules, by topic:
 
 * :mod:`.roi`: the :class:`Roi`, :func:`read_roi` (any format) and :func:`write_stack`;
 * :mod:`.tiff`: opening an (OME-)TIFF with its damage checks, the tiled OME-TIFF writer;
 * :mod:`.zarr`: opening an OME-Zarr with its damage check, the OME-Zarr writer;
-* :mod:`.panel`: ``panel.csv`` and the small-CSV helpers;
+* :mod:`.stains`: ``stains.csv`` and the small-CSV helpers;
 * :mod:`.cohort`: which files are ROIs, their names, the output names and format;
 * :mod:`.checks`: shape helpers shared by the readers and writers;
 * :mod:`.hashing`: SHA-256 of files and folders, canonical JSON.
@@ -24,8 +24,8 @@ from .cohort import (
     roi_stem,
 )
 from .hashing import canonical_json, file_stamp, sha256_path
-from .panel import Panel, read_csv_cells, read_panel, refuse_duplicates
 from .roi import SUPPORTED_DTYPES, Roi, read_levels, read_roi, write_stack
+from .stains import StainSheet, read_csv_cells, read_stains, refuse_duplicates
 from .tiff import write_ome_tiff
 from .zarr import ngff_metadata, write_ome_zarr
 
@@ -34,7 +34,7 @@ __all__ = [
     "TIFF_SUFFIXES",
     "ZARR_SUFFIXES",
     "OutputSettings",
-    "Panel",
+    "StainSheet",
     "Roi",
     "canonical_json",
     "file_stamp",
@@ -44,7 +44,7 @@ __all__ = [
     "output_name",
     "read_csv_cells",
     "read_levels",
-    "read_panel",
+    "read_stains",
     "read_roi",
     "refuse_duplicates",
     "roi_stem",

@@ -3,10 +3,10 @@
 Choices (kept the same in both formats):
 
 * A channel's ``Name`` (OME-XML) and ``label`` (NGFF ``omero.channels``) is its readable
-  marker name (the panel's ``label``), which is what viewers show; the acquisition tag
+  marker name (the stain sheet's ``marker``), which is what viewers show; the acquisition tag
   is kept beside it (OME-XML: a ``MapAnnotation`` in namespace ``CHANNEL_TAGS``, key the
   channel's ID; OME-Zarr: ``plexwash.channels``), and plexwash reads the tags back as the
-  channel names, so a washed stack matches its panel as the raw one did.
+  channel names, so a washed stack matches its stain sheet as the raw one did.
 * Physical pixel sizes are written in micrometres (read in any length unit and converted).
 * Provenance (tool, version, hashes, date) is a ``MapAnnotation`` in namespace
   ``PROVENANCE`` linked to the image (OME-Zarr: ``plexwash.provenance``).

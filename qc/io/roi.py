@@ -1,4 +1,4 @@
-"""One ROI in and out: the :class:`Roi`, :func:`read_roi` (any format, panel applied, pixels
+"""One ROI in and out: the :class:`Roi`, :func:`read_roi` (any format, stains applied, pixels
 checked) and :func:`write_stack` (the output format of the recipe).
 
 Every problem with an input is raised as :class:`~plexwash.qc.errors.InputError`
@@ -15,7 +15,7 @@ import numpy as np
 
 from ..errors import InputError
 from .cohort import OutputSettings, roi_stem
-from .panel import Panel, read_panel, refuse_duplicates
+from .stains import StainSheet, read_stains, refuse_duplicates
 from .tiff import open_tiff, tiff_levels, write_ome_tiff
 from .zarr import open_zarr, write_ome_zarr, zarr_levels
 
@@ -38,10 +38,10 @@ class Roi:
     path : Path
         The file or folder the ROI was read from.
     labels : tuple of str
-        Readable target names: from the panel; else the marker names a plexwash output
+        Readable target names: from the stain sheet; else the marker names a plexwash output
         keeps beside its tags; else the channel names.
     use : tuple of bool
-        False for channels the panel marks ``no``: they pass through untouched.
+        False for channels the stain sheet marks ``no``: they pass through untouched.
     pixel_size : tuple of float or None
         Physical (y, x) pixel size in micrometres (converted from the file's length
         unit), when the file records it.
@@ -70,7 +70,7 @@ class Roi:
         return tuple(int(n) for n in self.data.shape)
 
     def channel_index(self, channel: str) -> int:
-        """Index of a channel by name (or by panel label)."""
+        """Index of a channel by name (or by marker name)."""
         if channel in self.channels:
             return self.channels.index(channel)
         if channel in self.labels:
@@ -78,38 +78,38 @@ class Roi:
         raise InputError(self.path, f"no channel named {channel!r}")
 
 
-def _apply_panel(path: Path, channels: tuple[str, ...] | None, n_channels: int, panel: Panel):
-    """Channel names, labels and use flags of an ROI given its panel."""
-    where = panel.path or path
-    if channels is None:  # plain TIFF: the panel names the pages in order
-        if len(panel.channels) != n_channels:
+def _apply_stains(path: Path, channels: tuple[str, ...] | None, n_channels: int, stains: StainSheet):
+    """Channel names, labels and use flags of an ROI given its stains."""
+    where = stains.path or path
+    if channels is None:  # plain TIFF: the stain sheet names the pages in order
+        if len(stains.tags) != n_channels:
             raise InputError(
                 where,
-                f"panel lists {len(panel.channels)} channels but {path.name} has {n_channels}",
+                f"stain sheet lists {len(stains.tags)} channels but {path.name} has {n_channels}",
             )
-        return panel.channels, panel.labels, panel.use
-    unknown = [c for c in panel.channels if c not in channels]
-    absent = [c for c in channels if c not in panel.channels]
+        return stains.tags, stains.markers, stains.wash
+    unknown = [c for c in stains.tags if c not in channels]
+    absent = [c for c in channels if c not in stains.tags]
     if unknown or absent:
         parts = []
         if unknown:
             parts.append(f"not in {path.name}: {', '.join(unknown)}")
         if absent:
-            parts.append(f"missing from the panel: {', '.join(absent)}")
-        raise InputError(where, "panel rows do not match the ROI's channels (" + "; ".join(parts) + ")")
-    order = [panel.channels.index(c) for c in channels]
-    return channels, tuple(panel.labels[i] for i in order), tuple(panel.use[i] for i in order)
+            parts.append(f"missing from the stain sheet: {', '.join(absent)}")
+        raise InputError(where, "stain sheet rows do not match the ROI's channels (" + "; ".join(parts) + ")")
+    order = [stains.tags.index(c) for c in channels]
+    return channels, tuple(stains.markers[i] for i in order), tuple(stains.wash[i] for i in order)
 
 
-def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy: bool | None = None) -> Roi:
-    """Read one ROI: OME-TIFF, plain multipage TIFF with a panel, or OME-Zarr (NGFF 0.4/0.5).
+def read_roi(path: str | Path, *, stains: str | Path | StainSheet | None = None, lazy: bool | None = None) -> Roi:
+    """Read one ROI: OME-TIFF, plain multipage TIFF with a stain sheet, or OME-Zarr (NGFF 0.4/0.5).
 
     Parameters
     ----------
     path : str or Path
         The image file (``.ome.tiff``, ``.tiff``) or OME-Zarr folder.
-    panel : str, Path or Panel, optional
-        ``panel.csv``: required for a plain TIFF (it names the pages in order); for
+    stains : str, Path or StainSheet, optional
+        ``stains.csv``: required for a plain TIFF (it names the pages in order); for
         OME files it adds labels and ``use`` flags and must list the same channels.
     lazy : bool, optional
         Force a dask array (True) or numpy (False). By default stacks over
@@ -123,7 +123,7 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     ------
     InputError
         Missing, empty, unreadable or truncated file; unknown axes; metadata claiming
-        more pixels than the file holds; duplicate channel names; panel not matching;
+        more pixels than the file holds; duplicate channel names; stains not matching;
         NaN, Inf or negative pixels. A single-channel image reads as a 1 x Y x X stack.
 
     Examples
@@ -136,14 +136,14 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     (('Nd145', 'Ir191'), (2, 8, 8))
     """
     path = Path(path)
-    if isinstance(panel, (str, Path)):
-        panel = read_panel(panel)
+    if isinstance(stains, (str, Path)):
+        stains = read_stains(stains)
     if not path.exists():
         raise InputError(path, "file not found")
     if path.is_dir():
         data, channels, pixel_size, markers = open_zarr(path)
     else:
-        data, channels, pixel_size, markers = open_tiff(path, has_panel=panel is not None)
+        data, channels, pixel_size, markers = open_tiff(path, has_stains=stains is not None)
     if data.ndim != 3:
         raise InputError(path, f"expected a C x Y x X stack, got {data.ndim}-D data")
     if np.dtype(data.dtype).type not in SUPPORTED_DTYPES:
@@ -151,8 +151,8 @@ def read_roi(path: str | Path, *, panel: str | Path | Panel | None = None, lazy:
     n_channels = int(data.shape[0])
     if channels is not None and len(channels) != n_channels:
         raise InputError(path, f"metadata names {len(channels)} channels but the stack has {n_channels}")
-    if panel is not None:
-        channels, labels, use = _apply_panel(path, channels, n_channels, panel)
+    if stains is not None:
+        channels, labels, use = _apply_stains(path, channels, n_channels, stains)
     else:  # a washed stack keeps the marker names beside its tags
         labels, use = (markers or ()), ()
     if any(not c.strip() for c in channels):

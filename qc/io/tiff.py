@@ -28,7 +28,7 @@ IN_MEMORY_WRITE_BYTES = 256 * 2**20
 WRITE_BUFFER_BYTES = 32 * 2**20
 
 
-def open_tiff(path: Path, *, has_panel: bool):
+def open_tiff(path: Path, *, has_stains: bool):
     """A zarr view of level 0 of the first image series, its channel names (None: plain
     TIFF), pixel size (µm) and marker names (None unless plexwash kept the tags beside them)."""
     import tifffile
@@ -63,8 +63,8 @@ def open_tiff(path: Path, *, has_panel: bool):
         pixel_size = None
         if tif.is_ome:
             channels, markers, pixel_size = _ome_channels(path, tif.ome_metadata)
-        elif not has_panel:
-            raise InputError(path, "plain TIFF has no channel names; give its panel (--panel panel.csv)")
+        elif not has_stains:
+            raise InputError(path, "plain TIFF has no channel names; give its stain sheet (--stains stains.csv)")
         store = series.aszarr(level=0)
         data = zarr.open(store, mode="r")
         if keep != tuple(range(len(shape))):
@@ -76,8 +76,8 @@ def open_tiff(path: Path, *, has_panel: bool):
             channels = None
         if len(keep) == 2:  # one channel: a C x Y x X stack with C = 1
             data = one_channel(data)
-        if channels is None and not has_panel:
-            raise InputError(path, "OME-XML names no channels; give its panel (--panel panel.csv)")
+        if channels is None and not has_stains:
+            raise InputError(path, "OME-XML names no channels; give its stain sheet (--stains stains.csv)")
         return data, channels, pixel_size, markers
     except InputError:
         tif.close()

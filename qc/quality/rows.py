@@ -77,7 +77,7 @@ class RoiQuality:
         The measurements (``washed`` None when only the raw stage was measured).
     raw_rows, washed_rows : list of dict
         Their rows of the quality table (:func:`quality_rows`), each with the channel's
-        panel ``label``.
+        stain sheet ``marker``.
     """
 
     raw: StackQuality

@@ -460,14 +460,14 @@ def _section_provenance(ctx, names, now) -> str:
     versions = sorted({str(latest[n].get("version")) for n in names})
     recipe_hashes = sorted({str(latest[n].get("recipe_sha256")) for n in names})
     spill_hashes = sorted({str(latest[n].get("spillover_sha256")) for n in names})
-    panel_hashes = sorted({str(latest[n].get("panel_sha256")) for n in names})
+    stains_hashes = sorted({str(latest[n].get("stains_sha256")) for n in names})
     out = ['<section id="provenance"><h2>Provenance</h2>',
            "<table>",
            f"<tr><th>report written</th><td>{_e(now)}</td></tr>",
            f"<tr><th>plexwash version(s)</th><td>{_e(', '.join(versions))}</td></tr>",
            f"<tr><th>recipe sha256</th><td class=\"hash\">{'<br>'.join(map(_e, recipe_hashes))}</td></tr>",
            f"<tr><th>spillover sha256</th><td class=\"hash\">{'<br>'.join(map(_e, spill_hashes))}</td></tr>",
-           f"<tr><th>panel sha256</th><td class=\"hash\">{'<br>'.join(map(_e, panel_hashes))}</td></tr>",
+           f"<tr><th>stains sha256</th><td class=\"hash\">{'<br>'.join(map(_e, stains_hashes))}</td></tr>",
            f"<tr><th>ledger records</th><td>{len(ctx['records'])} attempt(s) for {len(names)} ROI(s)</td></tr>",
            "</table>",
            "<table><tr><th>ROI</th><th>input</th><th>input sha256</th><th>output</th>"

@@ -1,7 +1,7 @@
 """The report page's inline stylesheet (one self-contained HTML file, no external CSS)."""
 
 CSS = """
-:root { --ink: #1d2430; --muted: #5f6b7a; --line: #d9dee5; --panel: #f6f7f9;
+:root { --ink: #1d2430; --muted: #5f6b7a; --line: #d9dee5; --stains: #f6f7f9;
         --band: #23395b; --accent: #b5651d; --good: #2e7d5b; --bad: #a4343a; }
 * { box-sizing: border-box; }
 body { margin: 0; font: 14px/1.45 system-ui, -apple-system, "Segoe UI", sans-serif;
@@ -16,12 +16,12 @@ p.note { color: var(--muted); margin: 4px 0 10px; }
 .cautions { border-left: 5px solid var(--accent); background: #fbf4ec; padding: 10px 16px; margin: 16px 0; }
 .cautions ul { margin: 4px 0; padding-left: 20px; }
 .tiles { display: flex; gap: 14px; flex-wrap: wrap; margin: 10px 0; }
-.tile { background: var(--panel); border: 1px solid var(--line); padding: 8px 14px; min-width: 120px; }
+.tile { background: var(--stains); border: 1px solid var(--line); padding: 8px 14px; min-width: 120px; }
 .tile b { display: block; font-size: 20px; }
 table { border-collapse: collapse; margin: 6px 0 12px; font-size: 13px; }
 th, td { border: 1px solid var(--line); padding: 3px 8px; text-align: left; vertical-align: top;
          overflow-wrap: anywhere; }
-th { background: var(--panel); font-weight: 600; }
+th { background: var(--stains); font-weight: 600; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
 td.hash, span.hash { font-family: ui-monospace, "DejaVu Sans Mono", monospace; font-size: 12px; }
 .ok { color: var(--good); font-weight: 600; } .failed { color: var(--bad); font-weight: 600; }
@@ -34,7 +34,7 @@ td.hash, span.hash { font-family: ui-monospace, "DejaVu Sans Mono", monospace; f
 .chip.outlier { background: #f6dcea; border-color: #cf8db1; }
 img.plot { max-width: 100%; height: auto; border: 1px solid var(--line); }
 .cards { display: flex; flex-wrap: wrap; gap: 10px; }
-figure.card { margin: 0; padding: 6px 8px; border: 1px solid var(--line); background: var(--panel); }
+figure.card { margin: 0; padding: 6px 8px; border: 1px solid var(--line); background: var(--stains); }
 figure.card figcaption { display: flex; justify-content: space-between; gap: 10px; font-size: 12px; }
 figure.card figcaption span { color: var(--muted); }
 figure.card div { display: flex; gap: 3px; align-items: flex-start; }
@@ -42,6 +42,6 @@ figure.card img { image-rendering: pixelated; background: #000; }
 figure.card .kinds span { flex: 1; text-align: center; font-size: 11px; color: var(--muted); }
 span.missing { display: inline-block; width: 60px; text-align: center; }
 details { margin: 6px 0 12px; } summary { cursor: pointer; color: var(--band); }
-pre { background: var(--panel); border: 1px solid var(--line); padding: 8px; overflow-x: auto; font-size: 12px; }
+pre { background: var(--stains); border: 1px solid var(--line); padding: 8px; overflow-x: auto; font-size: 12px; }
 footer { color: var(--muted); font-size: 12px; padding: 14px 28px; border-top: 1px solid var(--line); }
 """

@@ -9,7 +9,7 @@ What a run writes into its output folder
 - ``quality.csv``: one row per ROI x channel x stage (``raw`` / ``washed``), rebuilt from
   the ledger at the end of every run, with cohort outliers flagged (modified z-score);
 - ``report.html``: the cohort's QC report (:func:`plexwash.qc.report.write_report`);
-- ``recipe.toml`` (+ ``spillover.csv`` and ``panel.csv`` when used): the recipe exactly as
+- ``recipe.toml`` (+ ``spillover.csv`` and ``stains.csv`` when used): the recipe exactly as
   applied, self-contained (its ``[compensation] spillover`` names the copy beside it);
 - ``run.log``: timestamped progress lines of every run into this folder.
 
@@ -36,7 +36,7 @@ Resume and safety
 A rerun skips an ROI whose latest ledger record is ``done`` when its output still exists,
 the input and output keep the size and modification time recorded beside their hashes
 (``input_stamp``, ``output_stamp``; nothing is read), and the recipe, spillover matrix,
-panel and plexwash version are unchanged; everything else is (re)done. With
+stains and plexwash version are unchanged; everything else is (re)done. With
 ``verify=True`` (``plexwash run --verify``) the input and output are re-hashed instead and
 must match ``input_sha256`` and ``output_sha256``: a file changed in place that keeps its
 size and modification time is only caught that way. Records without stamps (an older
@@ -67,12 +67,12 @@ live outside this package: the report reads them too, and the run calls the repo
 
 from ..ledger import (
     LEDGER,
-    PANEL_COPY,
     QUALITY,
     RECIPE,
     REPORT,
     RUN_LOG,
     SPILLOVER_COPY,
+    STAINS_COPY,
     Ledger,
     json_ready,
     latest_records,
@@ -102,7 +102,7 @@ __all__ = [
     "LEDGER",
     "OUTLIER_CUTOFF",
     "OUTLIER_MIN_ROIS",
-    "PANEL_COPY",
+    "STAINS_COPY",
     "QUALITY",
     "QUALITY_FIRST_COLUMNS",
     "RECIPE",

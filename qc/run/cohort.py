@@ -67,7 +67,7 @@ class RunSummary:
         return EXIT_ERROR if self.error else EXIT_OK
 
 
-def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, workers=None,
+def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None, workers=None,
                scheduler=None, connect_timeout=5.0, progress=True, cancel=None,
                staging_dir=None, verify=False) -> RunSummary:
     """Wash every ROI of a cohort folder into a run folder, resuming an earlier run.
@@ -75,15 +75,15 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
     Parameters
     ----------
     cohort_dir : str or Path
-        Folder of ROIs (``.ome.tiff``, ``.tiff`` with a panel, ``.ome.zarr``).
+        Folder of ROIs (``.ome.tiff``, ``.tiff`` with a stain sheet, ``.ome.zarr``).
     out_dir : str or Path
         The run folder (created when missing). Rerunning into the same folder resumes.
     recipe : Recipe, str or Path, optional
         The recipe (or its TOML file); defaults apply when omitted.
     spillover : str, Path or SpilloverMatrix, optional
         Spillover matrix CSV; overrides the recipe's ``[compensation] spillover``.
-    panel : str, Path or Panel, optional
-        ``panel.csv``; by default ``panel.csv`` inside the cohort folder when present.
+    stains : str, Path or StainSheet, optional
+        ``stains.csv``; by default ``stains.csv`` inside the cohort folder when present.
     workers : int, optional
         Start a local cluster of this many worker processes.
     scheduler : str, optional
@@ -115,7 +115,7 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
     ------
     InputError
         Missing or empty cohort, output folder that is the cohort or not writable, bad
-        recipe, spillover or panel, both ``workers`` and ``scheduler`` given, unreachable
+        recipe, spillover or stains, both ``workers`` and ``scheduler`` given, unreachable
         scheduler, another run writing into the same folder.
     KeyboardInterrupt
         On Ctrl-C or SIGTERM, after cleaning up (nothing false is recorded).
@@ -136,7 +136,7 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, panel=None, 
         raise InputError("--workers", "give either --workers or --scheduler, not both")
     if workers is not None and (isinstance(workers, bool) or int(workers) < 1):
         raise InputError("--workers", f"must be a whole number >= 1, got {workers!r}")
-    inputs = check_inputs(cohort_dir, out_dir, recipe=recipe, spillover=spillover, panel=panel)
+    inputs = check_inputs(cohort_dir, out_dir, recipe=recipe, spillover=spillover, stains=stains)
     out = inputs.out_dir
     client = connect(scheduler, connect_timeout) if scheduler is not None else None
     with contextlib.ExitStack() as stack:

@@ -20,7 +20,7 @@ def run_demo(out_dir="plexwash-demo", *, stack=None, workers=None, progress=True
     out_dir : str or Path
         The run folder (default ``plexwash-demo`` in the current folder).
     stack : str or Path, optional
-        The demo folder (``cohort/``, ``controls/controls.csv``, ``panel.csv``); default
+        The demo folder (``cohort/``, ``controls/controls.csv``, ``stains.csv``); default
         ``example_stack/`` of the source checkout.
     workers : int, optional
         As in :func:`run_cohort`.
@@ -42,10 +42,10 @@ def run_demo(out_dir="plexwash-demo", *, stack=None, workers=None, progress=True
 
     stack = Path(stack) if stack is not None else DEMO_STACK
     controls = stack / "controls" / "controls.csv"
-    for needed in (stack / "cohort", controls, stack / "panel.csv"):
+    for needed in (stack / "cohort", controls, stack / "stains.csv"):
         if not needed.exists():
             raise InputError(needed, "demo data not found (it ships with the source checkout, "
                              "example_stack/)")
-    matrix = estimate_from_controls(controls, panel=stack / "panel.csv")
-    return run_cohort(stack / "cohort", out_dir, spillover=matrix, panel=stack / "panel.csv",
+    matrix = estimate_from_controls(controls, stains=stack / "stains.csv")
+    return run_cohort(stack / "cohort", out_dir, spillover=matrix, stains=stack / "stains.csv",
                       workers=workers, progress=progress, staging_dir=staging_dir)

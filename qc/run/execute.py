@@ -179,7 +179,7 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     recipe = load_recipe(job.recipe)
     if recipe.sha256() != job.recipe_sha256:
         raise InputError(job.recipe, "recipe changed while the run was going")
-    roi = read_roi(job.input, panel=job.panel)
+    roi = read_roi(job.input, stains=job.stains)
     recipe.check_size(roi)
     matrix = None
     if job.spillover:
@@ -194,7 +194,7 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
 
         target = temporary_path(out_dir / output_name(job.roi), "measure")
     provenance = {"input_sha256": input_sha256, "recipe_sha256": job.recipe_sha256,
-                  "spillover_sha256": job.spillover_sha256, "panel_sha256": job.panel_sha256}
+                  "spillover_sha256": job.spillover_sha256, "stains_sha256": job.stains_sha256}
     quality_seconds = []
 
     def measure(washed):  # the washed pixels as written, before the staging goes
@@ -282,7 +282,7 @@ def _base_record(job: Job) -> dict:
         "roi": job.roi, "status": None, "input": str(job.input),
         "input_sha256": job.input_sha256, "output": None, "output_sha256": None,
         "recipe_sha256": job.recipe_sha256, "spillover_sha256": job.spillover_sha256,
-        "panel_sha256": job.panel_sha256, "version": __version__,
+        "stains_sha256": job.stains_sha256, "version": __version__,
         "host": socket.gethostname(), "pid": os.getpid(),
     }
 

@@ -21,13 +21,13 @@ from ..errors import InputError
 from ..files import check_output_folder, interval_paths
 from ..ledger import (
     LEDGER,
-    PANEL_COPY,
     QUALITY,
     RECIPE,
     REPORT,
     RUN_LOCK,
     RUN_LOG,
     SPILLOVER_COPY,
+    STAINS_COPY,
     read_ledger,
 )
 
@@ -38,14 +38,14 @@ def check_run_folder(out: Path, inputs, roi_outputs) -> None:
     A folder an earlier run wrote (it holds the run lock) vouches for its log, ledger and
     the outputs its ledger records.
     """
-    names = [LEDGER, RUN_LOG, QUALITY, REPORT, RECIPE, SPILLOVER_COPY, PANEL_COPY,
+    names = [LEDGER, RUN_LOG, QUALITY, REPORT, RECIPE, SPILLOVER_COPY, STAINS_COPY,
              *(p.name for p in interval_paths(SPILLOVER_COPY)), *roi_outputs]
     ours: list[str] = []
     if (out / RUN_LOCK).is_file():
         ours = [LEDGER, RUN_LOG, *(r["output"] for r in read_ledger(out) if r.get("output"))]
         # the run's own hand-off copies may be given back to it (a rerun with its recipe):
         # they are read in full before the run rewrites them from what was read
-        own = {os.path.realpath(out / n) for n in (RECIPE, SPILLOVER_COPY, PANEL_COPY)}
+        own = {os.path.realpath(out / n) for n in (RECIPE, SPILLOVER_COPY, STAINS_COPY)}
         own.update(os.path.realpath(p) for p in interval_paths(out / SPILLOVER_COPY))
         inputs = [p for p in inputs if os.path.realpath(p) not in own]
     check_output_folder(out, inputs, names, ours=ours)

@@ -2,7 +2,7 @@
 
 Nothing here washes pixels. :func:`check_inputs` reads and checks everything a run
 needs without writing anything; :func:`write_run_files` writes the self-contained recipe
-copy (and the spillover matrix and panel beside it); :func:`plan_jobs` compares each ROI
+copy (and the spillover matrix and stains beside it); :func:`plan_jobs` compares each ROI
 with its latest ledger record and returns a :class:`Job` for every ROI that is not
 already done.
 """
@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING
 from .._version import __version__
 from ..errors import InputError
 from ..files import reached_inputs, write_atomic
-from ..ledger import PANEL_COPY, RECIPE, SPILLOVER_COPY, latest_records, read_ledger
+from ..ledger import RECIPE, SPILLOVER_COPY, STAINS_COPY, latest_records, read_ledger
 from .folder import check_run_folder
 
 if TYPE_CHECKING:  # typing only: these modules load when a run starts
@@ -43,8 +43,8 @@ class Job:
         (quality only).
     recipe : Path
         The run's recipe copy; ``recipe_sha256`` is its hash when planned.
-    spillover, panel : Path or None
-        The run's copies of the spillover matrix and the panel, with their hashes.
+    spillover, stains : Path or None
+        The run's copies of the spillover matrix and the stain sheet, with their hashes.
     input_sha256 : str or None
         The input's hash when planning already computed it.
     threads : int or None
@@ -61,8 +61,8 @@ class Job:
     recipe_sha256: str
     spillover: Path | None = None
     spillover_sha256: str | None = None
-    panel: Path | None = None
-    panel_sha256: str | None = None
+    stains: Path | None = None
+    stains_sha256: str | None = None
     input_sha256: str | None = None
     threads: int | None = None
     staging_dir: Path | None = None
@@ -77,7 +77,7 @@ class RunInputs:
     rois: list[tuple[str, Path]]  # (name, input path), sorted by name
     recipe: Recipe
     matrix: SpilloverMatrix | None  # None without compensation
-    panel_text: str | None  # the panel as the run's panel.csv will hold it
+    stains_text: str | None  # the stain sheet as the run's stains.csv will hold it
 
 
 @dataclasses.dataclass(frozen=True)
@@ -92,13 +92,13 @@ class Plan:
     output_settings: OutputSettings
     spillover_path: Path | None
     spillover_sha256: str | None
-    panel_path: Path | None
-    panel_sha256: str | None
+    stains_path: Path | None
+    stains_sha256: str | None
 
 
-def check_inputs(cohort_dir, out_dir, *, recipe, spillover, panel) -> RunInputs:
+def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains) -> RunInputs:
     """Read and check everything a run needs, writing nothing."""
-    from ..io import list_cohort, output_name, read_panel, roi_stem
+    from ..io import list_cohort, output_name, read_stains, roi_stem
     from ..recipe import Recipe, load_recipe
 
     cohort_dir = Path(cohort_dir).absolute()
@@ -108,7 +108,7 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, panel) -> RunInputs:
         raise InputError(out, "output folder is a file")
     given = [cohort_dir, recipe if isinstance(recipe, (str, Path)) else None,
              spillover if isinstance(spillover, (str, Path)) else None,
-             panel if isinstance(panel, (str, Path)) else None]
+             stains if isinstance(stains, (str, Path)) else None]
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe)
     given.append(recipe.spillover_path())
@@ -120,35 +120,35 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, panel) -> RunInputs:
                              "their outputs would collide")
         names[name] = path
 
-    if panel is None and (cohort_dir / "panel.csv").is_file():
-        panel = cohort_dir / "panel.csv"
-    panel_text = None
-    if panel is not None:
-        panel_obj = panel if not isinstance(panel, (str, Path)) else read_panel(panel)
-        panel_text = _panel_csv(panel_obj)
+    if stains is None and (cohort_dir / "stains.csv").is_file():
+        stains = cohort_dir / "stains.csv"
+    stains_text = None
+    if stains is not None:
+        stains_obj = stains if not isinstance(stains, (str, Path)) else read_stains(stains)
+        stains_text = _stains_csv(stains_obj)
     check_run_folder(out, reached_inputs(given), [output_name(n, recipe.output) for n in names])
     return RunInputs(cohort_dir=cohort_dir, out_dir=out, rois=sorted(names.items()),
                      recipe=recipe, matrix=_spillover_matrix(spillover, recipe),
-                     panel_text=panel_text)
+                     stains_text=stains_text)
 
 
 def write_run_files(inputs: RunInputs) -> Plan:
-    """Write the self-contained recipe copy (and its spillover matrix and panel) of a run."""
+    """Write the self-contained recipe copy (and its spillover matrix and stains) of a run."""
     from ..io import sha256_path
     from ..recipe import load_recipe
 
-    out, recipe, matrix, panel_text = inputs.out_dir, inputs.recipe, inputs.matrix, inputs.panel_text
-    spillover_path = panel_path = None
+    out, recipe, matrix, stains_text = inputs.out_dir, inputs.recipe, inputs.matrix, inputs.stains_text
+    spillover_path = stains_path = None
     changes = {"spillover": ""}
     if matrix is not None:
         from ..spillover import write_spillover
 
         spillover_path = write_spillover(out / SPILLOVER_COPY, matrix)
         changes["spillover"] = SPILLOVER_COPY
-    if panel_text is not None:
-        panel_path = out / PANEL_COPY
-        if not panel_path.is_file() or panel_path.read_text(encoding="utf-8") != panel_text:
-            write_atomic(panel_path, panel_text)
+    if stains_text is not None:
+        stains_path = out / STAINS_COPY
+        if not stains_path.is_file() or stains_path.read_text(encoding="utf-8") != stains_text:
+            write_atomic(stains_path, stains_text)
     run_recipe = dataclasses.replace(recipe.replace("compensation", **changes), source=out / RECIPE)
     text = run_recipe.to_toml()
     if not (out / RECIPE).is_file() or (out / RECIPE).read_text(encoding="utf-8") != text:
@@ -160,7 +160,7 @@ def write_run_files(inputs: RunInputs) -> Plan:
         recipe_sha256=run_recipe.sha256(), output_settings=run_recipe.output,
         spillover_path=spillover_path,
         spillover_sha256=sha256_path(spillover_path) if spillover_path else None,
-        panel_path=panel_path, panel_sha256=sha256_path(panel_path) if panel_path else None)
+        stains_path=stains_path, stains_sha256=sha256_path(stains_path) if stains_path else None)
 
 
 def _spillover_matrix(spillover, recipe):
@@ -179,15 +179,15 @@ def _spillover_matrix(spillover, recipe):
     return read_spillover(spillover)
 
 
-def _panel_csv(panel) -> str:
+def _stains_csv(stains) -> str:
     import csv
     import io
 
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(["channel", "label", "use"])
-    for channel, label, use in zip(panel.channels, panel.labels, panel.use, strict=True):
-        writer.writerow([channel, label, "yes" if use else "no"])
+    writer.writerow(["tag", "marker", "wash"])
+    for tag, marker, wash in zip(stains.tags, stains.markers, stains.wash, strict=True):
+        writer.writerow([tag, marker, "yes" if wash else "no"])
     return buffer.getvalue()
 
 
@@ -211,7 +211,7 @@ def plan_jobs(plan: Plan, log, *, staging_dir=None, verify: bool = False) -> tup
             roi=name, input=Path(path), out_dir=plan.out_dir, output=output,
             recipe=plan.recipe_path, recipe_sha256=plan.recipe_sha256,
             spillover=plan.spillover_path, spillover_sha256=plan.spillover_sha256,
-            panel=plan.panel_path, panel_sha256=plan.panel_sha256,
+            stains=plan.stains_path, stains_sha256=plan.stains_sha256,
             staging_dir=Path(staging_dir) if staging_dir is not None else None)
         record = latest.get(name)
         why = _why_redo(record, job)
@@ -262,7 +262,7 @@ def _why_redo(record: Mapping | None, job: Job) -> str | None:
     if record.get("status") != "done":
         return f"last attempt {record.get('status')}"
     for key, what in (("recipe_sha256", "recipe"), ("spillover_sha256", "spillover matrix"),
-                      ("panel_sha256", "panel"), ("output", "output format")):
+                      ("stains_sha256", "stains"), ("output", "output format")):
         if record.get(key) != getattr(job, key):
             return f"{what} changed"
     if record.get("version") != __version__:

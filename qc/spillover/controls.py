@@ -16,7 +16,7 @@ def estimate_from_controls(
     controls_csv: str | Path,
     *,
     all_pairs: bool = False,
-    panel=None,
+    stains=None,
     n_boot: int = 200,
     level: float = 0.95,
     block: int = 16,
@@ -58,7 +58,7 @@ def estimate_from_controls(
         ``file,channel`` per control (paths relative to the CSV).
     all_pairs : bool
         Estimate every off-diagonal entry, not just the plausible ones.
-    panel : str, Path or Panel, optional
+    stains : str, Path or StainSheet, optional
         Needed for plain TIFF controls (see :func:`plexwash.qc.io.read_roi`).
     n_boot : int
         Bootstrap replicates for the interval (resampling ``block`` x ``block`` pixel
@@ -108,7 +108,7 @@ def estimate_from_controls(
     """
     controls_csv = Path(controls_csv)
     check_bootstrap(n_boot, level, block)
-    channels, controls = _read_controls(controls_csv, panel)
+    channels, controls = _read_controls(controls_csv, stains)
     n = len(channels)
     pairs = plausible_pairs(channels, all_pairs=all_pairs)
     num = [[[] for _ in range(n)] for _ in range(n)]
@@ -147,17 +147,17 @@ def estimate_from_controls(
 
 
 
-def _read_controls(controls_csv: Path, panel):
+def _read_controls(controls_csv: Path, stains):
     """Rows of controls.csv, each control read and put in the first control's channel order."""
-    from ..io import read_csv_cells, read_panel, read_roi
+    from ..io import read_csv_cells, read_roi, read_stains
 
     rows = read_csv_cells(controls_csv)
     header = [c.strip().lower() for c in rows[0][1]]
     if "file" not in header or "channel" not in header:
         raise InputError(controls_csv, "header must have the columns file,channel")
     col_file, col_channel = header.index("file"), header.index("channel")
-    if isinstance(panel, (str, Path)):
-        panel = read_panel(panel)
+    if isinstance(stains, (str, Path)):
+        stains = read_stains(stains)
     channels = None
     controls = []
     for line, row in rows[1:]:
@@ -169,7 +169,7 @@ def _read_controls(controls_csv: Path, panel):
         path = Path(name) if Path(name).is_absolute() else controls_csv.parent / name
         if not path.exists():
             raise InputError(controls_csv, f"line {line}: control {name} not found")
-        roi = read_roi(path, panel=panel)
+        roi = read_roi(path, stains=stains)
         if channels is None:
             channels = roi.channels
         elif set(roi.channels) != set(channels):

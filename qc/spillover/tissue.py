@@ -19,7 +19,7 @@ def estimate_from_tissue(
     rois,
     *,
     all_pairs: bool = False,
-    panel=None,
+    stains=None,
     bin_size: int = 4,
     block: int = 64,
     n_boot: int = 200,
@@ -78,11 +78,11 @@ def estimate_from_tissue(
     Parameters
     ----------
     rois : sequence of Roi or paths
-        ROIs of one panel (pooled: slopes shared, backgrounds per ROI). Paths are read
+        ROIs of one stain sheet (pooled: slopes shared, backgrounds per ROI). Paths are read
         with :func:`plexwash.qc.io.read_roi`.
     all_pairs : bool
         Fit every source for every receiver, not just the plausible ones.
-    panel : str, Path or Panel, optional
+    stains : str, Path or StainSheet, optional
         For plain TIFF ROIs.
     bin_size : int
         Block edge in pixels for step 1.
@@ -142,7 +142,7 @@ def estimate_from_tissue(
         raise InputError("neighbourhood", f"neighbourhood must be an odd integer >= 1, got {neighbourhood!r}")
     if not (isinstance(refinements, (int, np.integer)) and 0 <= refinements <= 5):
         raise InputError("refinements", f"refinements must be an integer in [0, 5], got {refinements!r}")
-    channels, binned, blocks, grids = _binned_tissue(rois, panel, bin_size, block, hot_ratio, hot_min_excess)
+    channels, binned, blocks, grids = _binned_tissue(rois, stains, bin_size, block, hot_ratio, hot_min_excess)
     smooth = functools.partial(_smooth_blocks, grids=grids, size=neighbourhood)
     n = len(channels)
     pairs = plausible_pairs(channels, all_pairs=all_pairs)
@@ -197,14 +197,14 @@ def _bonferroni_z(level: float, n_tests: int) -> float:
     return float(norm.ppf(1.0 - (1.0 - level) / (2.0 * n_tests)))
 
 
-def _binned_tissue(rois, panel, bin_size, block, hot_ratio, hot_min_excess):
+def _binned_tissue(rois, stains, bin_size, block, hot_ratio, hot_min_excess):
     """Bin sums (C, bins) per ROI after hot-pixel restoration, and each bin's bootstrap block."""
     from ..io import Roi, read_roi
     from ..steps.hot_pixels import remove_hot_pixels
 
     if isinstance(rois, (str, Path, Roi)):
         rois = [rois]
-    rois = [r if isinstance(r, Roi) else read_roi(r, panel=panel) for r in rois]
+    rois = [r if isinstance(r, Roi) else read_roi(r, stains=stains) for r in rois]
     if not rois:
         raise InputError("rois", "no ROI given")
     channels = rois[0].channels

@@ -1,4 +1,4 @@
-"""The panel (``panel.csv``: channel, label, use) and the small-CSV helpers other readers share."""
+"""The stain sheet (``stains.csv``: tag, marker, wash) and the small-CSV helpers other readers share."""
 
 from __future__ import annotations
 
@@ -11,41 +11,41 @@ from ..errors import InputError
 
 
 @dataclasses.dataclass(frozen=True)
-class Panel:
-    """The panel: acquisition channel names, readable labels and whether each is cleaned."""
+class StainSheet:
+    """The stain sheet: acquisition channel names, readable labels and whether each is cleaned."""
 
-    channels: tuple[str, ...]
-    labels: tuple[str, ...]
-    use: tuple[bool, ...]
+    tags: tuple[str, ...]
+    markers: tuple[str, ...]
+    wash: tuple[bool, ...]
     path: Path | None = None
 
 
-def read_panel(path: str | Path) -> Panel:
-    """Read ``panel.csv`` (columns ``channel,label,use``; ``use`` is ``yes`` or ``no``).
+def read_stains(path: str | Path) -> StainSheet:
+    """Read ``stains.csv`` (columns ``tag,marker,wash``; ``wash`` is ``yes`` or ``no``).
 
     Examples
     --------
     >>> import tempfile, pathlib
-    >>> p = pathlib.Path(tempfile.mkdtemp()) / "panel.csv"
-    >>> _ = p.write_text("channel,label,use\\nNd145,membrane,yes\\nIr191,DNA,no\\n")
-    >>> read_panel(p).use
+    >>> p = pathlib.Path(tempfile.mkdtemp()) / "stains.csv"
+    >>> _ = p.write_text("tag,marker,wash\\nNd145,membrane,yes\\nIr191,DNA,no\\n")
+    >>> read_stains(p).wash
     (True, False)
     """
     path = Path(path)
-    rows = _read_csv_rows(path, required=("channel", "label", "use"))
+    rows = _read_csv_rows(path, required=("tag", "marker", "wash"))
     channels, labels, use = [], [], []
     for number, row in rows:
-        name = (row.get("channel") or "").strip()
+        name = (row.get("tag") or "").strip()
         if not name:
-            raise InputError(path, f"row {number}: empty channel name")
-        flag = (row.get("use") or "").strip().lower()
+            raise InputError(path, f"row {number}: empty tag")
+        flag = (row.get("wash") or "").strip().lower()
         if flag not in ("yes", "no"):
-            raise InputError(path, f"row {number}: use must be 'yes' or 'no', got {flag!r}")
+            raise InputError(path, f"row {number}: wash must be 'yes' or 'no', got {flag!r}")
         channels.append(name)
-        labels.append((row.get("label") or "").strip() or name)
+        labels.append((row.get("marker") or "").strip() or name)
         use.append(flag == "yes")
-    refuse_duplicates(path, channels, "channel")
-    return Panel(tuple(channels), tuple(labels), tuple(use), path)
+    refuse_duplicates(path, channels, "tag")
+    return StainSheet(tuple(channels), tuple(labels), tuple(use), path)
 
 
 def read_csv_cells(path: Path) -> list[tuple[int, list[str]]]:
