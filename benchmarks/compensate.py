@@ -28,6 +28,7 @@ os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import numpy as np  # noqa: E402
 from _common import median_time
+from _dense import load
 from plexwash.qc.spillover import compensate, plausible_pairs  # noqa: E402
 from scipy.optimize import nnls  # noqa: E402
 
@@ -138,6 +139,7 @@ def main(argv=None) -> int:
     print(f"  linear / dense solve float64         {t_linear / t_floor64:6.2f}x")
     print(f"  scipy per pixel / compensate         {t_scipy / t_nnls:6.0f}x")
     print(f"objective worse than scipy (1e-6 rel) on {worse} of {sample.size} sampled pixels")
+    print(load())
     return 0 if worse == 0 else 1
 
 

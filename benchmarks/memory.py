@@ -33,6 +33,7 @@ import time
 from pathlib import Path
 
 from _common import load_generator
+from _dense import load
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -122,8 +123,8 @@ def build_stack(folder: Path, *, channels: int, size: int) -> tuple[Path, Path, 
     import numpy as np
 
     sys.path.insert(0, str(ROOT / "benchmarks"))
+    from _dense import channel_names  # the same mass-tagged names as the speed benchmarks
     from plexwash.qc.io import write_ome_tiff
-    from wash import channel_names  # the same mass-tagged names as the speed benchmark
 
     gen = load_generator()
     names = channel_names(channels)
@@ -191,7 +192,8 @@ def main(argv=None) -> None:
             roi, spill_csv, _ = build_stack(folder, channels=args.channels, size=args.size)
         nbytes = args.channels * args.size * args.size * 4
         print(f"stack {args.channels} x {args.size} x {args.size} float32 = {nbytes / 2**20:.0f} MiB "
-              f"({roi.stat().st_size / 2**20:.0f} MiB on disk), ready in {time.perf_counter() - t0:.0f} s")
+              f"({roi.stat().st_size / 2**20:.0f} MiB on disk), ready in {time.perf_counter() - t0:.0f} s; "
+              f"{load()}")
         out = folder / "run"
         shutil.rmtree(out, ignore_errors=True)
         t0 = time.perf_counter()

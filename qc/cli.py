@@ -82,6 +82,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scheduler", help="join a running dask.distributed scheduler (tcp://host:port)")
     p.add_argument("--connect-timeout", type=float, default=5.0, metavar="SECONDS",
                    help="how long to try reaching --scheduler before giving up (default 5)")
+    p.add_argument("--verify", action="store_true",
+                   help="on resume, re-hash every finished ROI's input and output (default: compare "
+                        "size and modification time with the ledger)")
     p.add_argument("--quiet", action="store_true", help="no progress on the terminal (run.log still written)")
     p.set_defaults(handler=_run)
 
@@ -374,7 +377,7 @@ def _run(args) -> int:
                          stains=args.stains, samples=args.samples, workers=args.workers,
                          scheduler=args.scheduler,
                          connect_timeout=args.connect_timeout, progress=not args.quiet,
-                         staging_dir=os.environ.get(STAGING_ENV) or None)
+                         staging_dir=os.environ.get(STAGING_ENV) or None, verify=args.verify)
     _print_summary(summary)
     return summary.exit_code
 

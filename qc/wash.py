@@ -93,12 +93,15 @@ class WashedFile:
         :attr:`Washed.stats`.
     notes : tuple of str
         Human-readable remarks, as in :attr:`Washed.notes`.
+    measured : object
+        What ``measure`` returned (None without it).
     """
 
     output: Path
     seconds: float
     stats: Mapping[str, list]
     notes: tuple[str, ...] = ()
+    measured: object = None
 
 
 def wash(roi: Roi, recipe: Recipe | None = None, *, spillover=None, channels=None,
@@ -428,7 +431,7 @@ def compute(washed: Washed) -> Washed:
 
 
 def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *, spillover=None,
-                 staging_dir: str | Path | None = None, provenance=None) -> WashedFile:
+                 staging_dir: str | Path | None = None, provenance=None, measure=None) -> WashedFile:
     """Wash one ROI and write it atomically; the pixels and the stats come from the same passes.
 
     The wash runs in passes (:mod:`plexwash.qc.staging`): a lazy (dask) ROI over two
@@ -452,6 +455,10 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
     provenance : mapping, optional
         Written into the output's metadata (hashes of the input, recipe, spillover).
         The tool, its version and the date are always added.
+    measure : callable, optional
+        Called once the output is written with the washed stack still at hand (a numpy
+        array, or for a lazy ROI the staging file, read plane by plane: the pixels of the
+        output, without reading and decoding it back); its result is ``measured``.
 
     Returns
     -------
@@ -474,8 +481,10 @@ def wash_to_file(roi: Roi, out_path: str | Path, recipe: Recipe | None = None, *
         write_stack(out_path, data, roi.channels, pixel_size=roi.pixel_size, settings=recipe.output,
                     labels=roi.labels, provenance=_provenance(provenance),
                     source_xml=source_ome_xml(roi.path))
-    return WashedFile(output=out_path, seconds=time.perf_counter() - started, stats=stats,
-                      notes=tuple(notes))
+        seconds = time.perf_counter() - started
+        measured = measure(data) if measure is not None else None
+    return WashedFile(output=out_path, seconds=seconds, stats=stats, notes=tuple(notes),
+                      measured=measured)
 
 
 def _provenance(extra) -> dict[str, str]:

@@ -52,6 +52,62 @@ def test_schema_validation_rejects_what_parsing_alone_accepts(tmp_path):
             ome_types.from_xml(text, validate=True)
 
 
+def _source_with_acquisition(**image):
+    import ome_types
+    from ome_types.model import (
+        OME,
+        AnnotationRef,
+        Detector,
+        Image,
+        Instrument,
+        InstrumentRef,
+        Map,
+        MapAnnotation,
+        Objective,
+        ObjectiveSettings,
+        Pixels,
+        StructuredAnnotations,
+    )
+
+    return ome_types.to_xml(OME(
+        instruments=[Instrument(id="Instrument:0", detectors=[Detector(id="Detector:0", model="d")],
+                                objectives=[Objective(id="Objective:0:0", model="Plan 20x",
+                                                      annotation_refs=[AnnotationRef(id="Annotation:5")])])],
+        images=[Image(id="Image:0", instrument_ref=InstrumentRef(id="Instrument:0"),
+                      objective_settings=ObjectiveSettings(id="Objective:0:0"), **image,
+                      pixels=Pixels(id="Pixels:0", dimension_order="XYCZT", type="float", size_c=1,
+                                    size_x=8, size_y=8, size_z=1, size_t=1))],
+        structured_annotations=StructuredAnnotations(map_annotations=[
+            MapAnnotation(id="Annotation:5", value=Map(ms=[]))])))
+
+
+@pytest.mark.parametrize("source", ["none", "acquisition", "unparsable"])
+def test_ome_xml_text_equals_the_ome_types_model(source):
+    """The OME-XML written as text is the document ome_types' model serialises (reference:
+    ome_types, the OME 2016-06 schema's model, validate=True), acquisition carried or not."""
+    from datetime import datetime
+
+    import ome_types
+    from plexwash.qc.io.ome import ome_xml, ome_xml_via_model
+
+    source_xml = {"none": None, "unparsable": "<OME",
+                  "acquisition": _source_with_acquisition(acquisition_date=datetime(2024, 1, 2, 3, 4, 5),
+                                                          description="tissue & glass")}[source]
+    args = ("roi <1>", (3, 20, 30), np.dtype(np.float32), NAMES, ["CD45", 'a "b" & µ', "DNA"],
+            (0.8, 0.5), {"software": "plexwash", "version": "1", "note": "x<y & z"}, source_xml)
+    text, model = ome_xml(*args), ome_xml_via_model(*args)
+    assert text.isascii()
+    assert ome_types.from_xml(text, validate=True) == ome_types.from_xml(model, validate=True)
+
+
+def test_ome_xml_of_another_schema_version_goes_through_the_model():
+    from plexwash.qc.io.ome import ome_xml, ome_xml_via_model
+
+    older = _source_with_acquisition(description="d").replace("OME/2016-06", "OME/2015-01")
+    args = ("r", (1, 8, 8), np.dtype(np.uint16), ["A"], ["A"], None, None, older)
+    assert ome_xml(*args) == ome_xml_via_model(*args)
+
+
 @pytest.mark.parametrize("dtype", [np.uint8, np.uint16, np.float32])
 def test_ome_tiff_round_trip_parsed_by_ome_types(tmp_path, dtype):
     rng = np.random.default_rng(1)

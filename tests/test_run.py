@@ -299,6 +299,80 @@ def test_rerun_redoes_changed_missing_and_torn_outputs(reference, cohort, tmp_pa
         np.testing.assert_array_equal(array, _arrays(reference["out"], [name])[name])
 
 
+def _tamper_keeping_size_and_time(path: Path) -> None:
+    """Flip one byte in the middle of a file, then put its modification time back."""
+    stat = path.stat()
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    path.write_bytes(bytes(data))
+    os.utime(path, ns=(stat.st_atime_ns, stat.st_mtime_ns))
+    assert path.stat().st_size == stat.st_size and path.stat().st_mtime_ns == stat.st_mtime_ns
+
+
+def test_rerun_skips_by_size_and_time_without_reading_any_file(reference, cohort, tmp_path,
+                                                               monkeypatch):
+    import plexwash.qc.io as io_package
+
+    out = _copy_run(reference, tmp_path)  # copytree keeps sizes and modification times
+    for rec in read_ledger(out):
+        assert rec["input_stamp"]["size"] == (cohort / "cohort" / f"{rec['roi']}.ome.tiff").stat().st_size
+        assert rec["output_stamp"]["mtime_ns"] == (out / rec["output"]).stat().st_mtime_ns
+
+    hash_small_file = io_package.sha256_path  # the run's recipe, spillover and stains copies
+
+    def no_hashing(path, **kwargs):
+        if str(path).endswith(".ome.tiff"):
+            raise AssertionError(f"{path} was re-hashed on a default resume")
+        return hash_small_file(path, **kwargs)
+
+    monkeypatch.setattr(io_package, "sha256_path", no_hashing)
+    closing = {name: (out / name).stat().st_mtime_ns for name in ("quality.csv", "report.html")}
+    summary = _rerun(cohort, out)
+    assert (summary.done, summary.skipped, summary.failed) == (0, 4, 0)
+    # nothing new: the quality table and the report are kept as they are
+    assert {name: (out / name).stat().st_mtime_ns for name in closing} == closing
+    (out / "report.html").unlink()
+    assert _rerun(cohort, out).report == out / "report.html" and (out / "report.html").is_file()
+
+
+def test_tampered_output_with_same_size_and_time_is_caught_only_by_verify(reference, cohort, tmp_path):
+    out = _copy_run(reference, tmp_path)
+    _tamper_keeping_size_and_time(out / "roi_02.ome.tiff")
+    assert _rerun(cohort, out).skipped == 4  # documented: size and time alone cannot see it
+    summary = _rerun(cohort, out, verify=True)
+    assert (summary.done, summary.skipped) == (1, 3)
+    assert read_ledger(out)[-1]["roi"] == "roi_02"
+    np.testing.assert_array_equal(_arrays(out, ["roi_02"])["roi_02"],
+                                  _arrays(reference["out"], ["roi_02"])["roi_02"])
+
+
+def test_cli_run_verify_rehashes_on_resume(reference, cohort, tmp_path):
+    from plexwash.qc.cli import main
+
+    out = _copy_run(reference, tmp_path)
+    _tamper_keeping_size_and_time(out / "roi_03.ome.tiff")
+    args = ["run", str(cohort / "cohort"), "-o", str(out), "--stains", str(cohort / "stains.csv"),
+            "--spillover", str(cohort / "truth" / "spillover.csv"), "--quiet"]
+    assert main(args) == 0
+    assert len(read_ledger(out)) == 4  # nothing redone without --verify
+    assert main(args + ["--verify"]) == 0
+    assert [r["roi"] for r in read_ledger(out)[4:]] == ["roi_03"]
+
+
+def test_records_without_stamps_fall_back_to_hashes(reference, cohort, tmp_path):
+    out = _copy_run(reference, tmp_path)
+    records = read_ledger(out)
+    for rec in records:  # as an older plexwash wrote them
+        rec.pop("input_stamp"), rec.pop("output_stamp")
+    stat = (out / "ledger.jsonl").stat()
+    (out / "ledger.jsonl").write_text("".join(json.dumps(r) + "\n" for r in records), encoding="utf-8")
+    os.utime(out / "ledger.jsonl", ns=(stat.st_atime_ns, stat.st_mtime_ns))
+    _tamper_keeping_size_and_time(out / "roi_01.ome.tiff")
+    summary = _rerun(cohort, out)
+    assert (summary.done, summary.skipped) == (1, 3)
+    assert read_ledger(out)[-1]["roi"] == "roi_01"
+
+
 def test_rerun_redoes_everything_when_the_recipe_changes(reference, cohort, tmp_path):
     from plexwash.qc.recipe import load_recipe
 
@@ -750,3 +824,33 @@ def test_staging_dir_is_passed_down_and_the_cli_reads_it_from_the_environment(tm
     monkeypatch.delenv("PLEXWASH_STAGING_DIR")
     assert main(["run", str(cohort), "-o", str(tmp_path / "beside"), "--quiet"]) == 0
     assert len(folders) == 2 and all(f.parent == tmp_path / "beside" for f in folders)
+
+
+# --------------------------------------------------------------------------- quality without read-back
+
+
+@pytest.mark.parametrize("lazy", [False, True])
+def test_wash_to_file_hands_the_written_pixels_to_measure(cohort, tmp_path, lazy):
+    """What the run measures as the washed stage is the output's pixels, without reading it back."""
+    from plexwash.qc.wash import wash_to_file
+
+    roi = read_roi(cohort / "cohort" / "roi_02.ome.tiff", stains=cohort / "stains.csv", lazy=lazy)
+    seen = []
+    result = wash_to_file(roi, tmp_path / "w.ome.tiff", spillover=cohort / "truth" / "spillover.csv",
+                          measure=lambda washed: seen.append(np.array(washed[:])) or "measured")
+    assert result.measured == "measured" and len(seen) == 1
+    np.testing.assert_array_equal(seen[0], np.asarray(read_roi(result.output).data))
+
+
+def test_ledger_quality_equals_the_quality_of_the_output_read_back(reference, cohort):
+    from plexwash.qc.recipe import load_recipe
+    from plexwash.qc.run import measure_quality
+    from plexwash.qc.spillover import read_spillover
+
+    out = reference["out"]
+    recipe = load_recipe(out / "recipe.toml")
+    matrix = read_spillover(out / "spillover.csv")
+    for rec in read_ledger(out):
+        roi = read_roi(cohort / "cohort" / f"{rec['roi']}.ome.tiff", stains=cohort / "stains.csv")
+        raw_rows, washed_rows, _ = measure_quality(roi, out / rec["output"], recipe, matrix)
+        assert json.loads(json.dumps(raw_rows + washed_rows)) == rec["quality"]

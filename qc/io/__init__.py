@@ -25,7 +25,7 @@ from .cohort import (
     roi_id,
     roi_stem,
 )
-from .hashing import canonical_json, sha256_path
+from .hashing import canonical_json, file_stamp, sha256_path
 from .roi import SUPPORTED_DTYPES, Roi, read_levels, read_roi, write_stack
 from .samples import SampleSheet, find_samples, match_samples, read_samples
 from .stains import StainSheet, read_csv_cells, read_stains, refuse_duplicates
@@ -41,6 +41,7 @@ __all__ = [
     "StainSheet",
     "Roi",
     "canonical_json",
+    "file_stamp",
     "find_samples",
     "is_roi_path",
     "list_cohort",

@@ -69,6 +69,11 @@ def display_windows(smallest) -> list[dict]:
     return windows
 
 
+#: The OME schema the XML is written in.
+OME_NAMESPACE = "http://www.openmicroscopy.org/Schemas/OME/2016-06"
+_XSI = "http://www.w3.org/2001/XMLSchema-instance"
+
+
 def ome_xml(name: str, shape, dtype, channels: Sequence[str], labels: Sequence[str],
             pixel_size=None, provenance: Mapping[str, str] | None = None,
             source_xml: str | None = None) -> str:
@@ -78,7 +83,119 @@ def ome_xml(name: str, shape, dtype, channels: Sequence[str], labels: Sequence[s
     acquisition date, description, instrument and objective settings (what the OME model
     keeps about the acquisition); annotation links inside the instruments are dropped,
     as the annotations are not carried.
+
+    Written as text in the OME 2016-06 schema's element order (what ``ome_types`` would
+    serialise for the same model, without loading it: its import alone costs more than
+    a small ROI's wash). A source in another schema version, or with elements in other
+    namespaces, goes through ``ome_types``' model instead (:func:`ome_xml_via_model`).
     """
+    carried = _acquisition_elements(source_xml)
+    if carried is None:
+        return ome_xml_via_model(name, shape, dtype, channels, labels, pixel_size, provenance,
+                                 source_xml)
+    instruments, image_parts = carried
+    n_c, n_y, n_x = (int(n) for n in shape)
+    creator = f"plexwash {provenance.get('version', '') if provenance else ''}".strip()
+    out = ['<?xml version="1.0" encoding="UTF-8"?>\n',
+           f'<OME xmlns="{OME_NAMESPACE}" xmlns:xsi="{_XSI}" '
+           f'xsi:schemaLocation="{OME_NAMESPACE} {OME_NAMESPACE}/ome.xsd" Creator={_attr(creator)}>']
+    out.extend(instruments)
+    out.append(f'<Image ID="Image:0" Name={_attr(name)}>')
+    out.extend(image_parts)
+    sizes = ""
+    if pixel_size is not None:
+        sizes = (f' PhysicalSizeX="{float(pixel_size[1])!r}" PhysicalSizeXUnit="µm"'
+                 f' PhysicalSizeY="{float(pixel_size[0])!r}" PhysicalSizeYUnit="µm"')
+    out.append(f'<Pixels ID="Pixels:0" DimensionOrder="XYCZT" Type="{_PIXEL_TYPES[np.dtype(dtype).name]}" '
+               f'SizeX="{n_x}" SizeY="{n_y}" SizeZ="1" SizeC="{n_c}" SizeT="1"{sizes}>')
+    out.extend(f'<Channel ID="Channel:0:{i}" Name={_attr(str(label))} SamplesPerPixel="1" '
+               f'Color="{_rgba(COLOURS[i % len(COLOURS)])}"/>' for i, label in enumerate(labels))
+    out.extend(f'<TiffData IFD="{i}" FirstZ="0" FirstT="0" FirstC="{i}" PlaneCount="1"/>'
+               for i in range(n_c))
+    out.append('</Pixels><AnnotationRef ID="Annotation:0"/>')
+    if provenance:
+        out.append('<AnnotationRef ID="Annotation:1"/>')
+    out.append('</Image><StructuredAnnotations>')
+    out.append(_map_annotation("Annotation:0", CHANNEL_TAGS,
+                               [(f"Channel:0:{i}", str(c)) for i, c in enumerate(channels)]))
+    if provenance:
+        out.append(_map_annotation("Annotation:1", PROVENANCE,
+                                   [(str(k), str(v)) for k, v in provenance.items()]))
+    out.append("</StructuredAnnotations></OME>")
+    return "".join(out).encode("ascii", "xmlcharrefreplace").decode("ascii")
+
+
+def _attr(value: str) -> str:
+    from xml.sax.saxutils import quoteattr
+
+    return quoteattr(value)
+
+
+def _map_annotation(id_: str, namespace: str, pairs) -> str:
+    from xml.sax.saxutils import escape
+
+    items = "".join(f"<M K={_attr(k)}>{escape(v)}</M>" for k, v in pairs)
+    return f'<MapAnnotation ID="{id_}" Namespace={_attr(namespace)}><Value>{items}</Value></MapAnnotation>'
+
+
+#: Elements of the source's first image that are carried, in schema order.
+_CARRIED_IMAGE_PARTS = ("AcquisitionDate", "Description", "InstrumentRef", "ObjectiveSettings")
+
+
+def _acquisition_elements(source_xml: str | None):
+    """The source's instruments and first image's acquisition elements as XML text.
+
+    ``([instrument, ...], [image part, ...])``, empty lists without a source (or one that
+    does not parse: nothing is carried), None when the source is in another schema version
+    or uses other namespaces inside what is carried (then the model decides).
+    """
+    import xml.etree.ElementTree as ET
+
+    if not source_xml:
+        return [], []
+    try:
+        root = ET.fromstring(source_xml)
+    except ET.ParseError:
+        return [], []
+    prefix = "{" + OME_NAMESPACE + "}"
+    if root.tag != prefix + "OME":
+        return None
+    images = root.findall(prefix + "Image")
+    if not images:
+        return [], []
+    instruments = root.findall(prefix + "Instrument")
+    for instrument in instruments:
+        for parent in list(instrument.iter()):
+            for child in list(parent):
+                if child.tag == prefix + "AnnotationRef":
+                    parent.remove(child)
+    first = images[0]
+    known = {i.get("ID") for i in instruments}
+    parts = []
+    for tag in _CARRIED_IMAGE_PARTS:
+        element = first.find(prefix + tag)
+        if element is None:
+            continue
+        if tag in ("InstrumentRef", "ObjectiveSettings"):
+            ref = first.find(prefix + "InstrumentRef")
+            if ref is None or ref.get("ID") not in known:
+                continue
+        parts.append(element)
+    texts = []
+    for element in [*instruments, *parts]:
+        for node in element.iter():
+            if not node.tag.startswith(prefix) or any(k.startswith("{") for k in node.attrib):
+                return None
+            node.tag = node.tag[len(prefix):]
+        element.tail = None
+        texts.append(ET.tostring(element, encoding="unicode"))
+    return texts[:len(instruments)], texts[len(instruments):]
+
+
+def ome_xml_via_model(name: str, shape, dtype, channels: Sequence[str], labels: Sequence[str],
+                      pixel_size=None, provenance: Mapping[str, str] | None = None,
+                      source_xml: str | None = None) -> str:
+    """:func:`ome_xml` built with ``ome_types``' model (sources in other schema versions)."""
     from ome_types import to_xml
     from ome_types.model import (
         OME,

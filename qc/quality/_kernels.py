@@ -13,37 +13,75 @@ import numpy as np
 
 
 @nb.njit(cache=True, nogil=True)
+def _neighbour_level(image, y, x):
+    """The second largest of the pixel's neighbours inside the image, floored at 0."""
+    height, width = image.shape
+    first = -np.inf
+    second = -np.inf
+    for dy in range(-1, 2):
+        yy = y + dy
+        if yy < 0 or yy >= height:
+            continue
+        for dx in range(-1, 2):
+            xx = x + dx
+            if (dy == 0 and dx == 0) or xx < 0 or xx >= width:
+                continue
+            v = np.float64(image[yy, xx])
+            if v > first:
+                second = first
+                first = v
+            elif v > second:
+                second = v
+    return max(second, 0.0)
+
+
+@nb.njit(cache=True, nogil=True, inline="always")
+def _top2(first, second, v):
+    """(first, second) of the values seen so far once ``v`` is added (ties count twice)."""
+    if v > first:
+        return v, first
+    if v > second:
+        return first, v
+    return first, second
+
+
+@nb.njit(cache=True, nogil=True)
 def suppress_spikes(image, ratio, excess, out):
-    """Copy ``image`` into ``out`` (float64) with isolated spikes set to their neighbourhood.
+    """Copy ``image`` into ``out`` (float32 or float64) with isolated spikes set to their neighbourhood.
 
     ``level`` is the second largest of the pixel's neighbours inside the image (8, fewer
     at the edges; a missing neighbour counts as minus infinity), floored at 0. A pixel
     is a spike when ``v > ratio * level``, ``v - level >= excess`` and ``v > 0``; it
     becomes ``level``. Detection reads the input only. Returns the number of spikes.
+
+    Since ``level >= 0``, ``v - level >= excess`` needs ``v >= excess``: pixels below
+    ``excess`` (most of a channel's background) are copied without looking at their
+    neighbours. Inside the image the 8 neighbours are ranked without bounds checks.
     """
     height, width = image.shape
     count = 0
     for y in range(height):
+        inner_row = 0 < y < height - 1
         for x in range(width):
-            first = -np.inf
-            second = -np.inf
-            for dy in range(-1, 2):
-                yy = y + dy
-                if yy < 0 or yy >= height:
-                    continue
-                for dx in range(-1, 2):
-                    xx = x + dx
-                    if (dy == 0 and dx == 0) or xx < 0 or xx >= width:
-                        continue
-                    v = np.float64(image[yy, xx])
-                    if v > first:
-                        second = first
-                        first = v
-                    elif v > second:
-                        second = v
-            level = max(second, 0.0)
             v = np.float64(image[y, x])
-            if v > level * ratio and v - level >= excess and v > 0:
+            if not (v > 0 and v >= excess):
+                out[y, x] = v
+                continue
+            if inner_row and 0 < x < width - 1:
+                first = -np.inf
+                second = -np.inf
+                first, second = _top2(first, second, np.float64(image[y - 1, x - 1]))
+                first, second = _top2(first, second, np.float64(image[y - 1, x]))
+                first, second = _top2(first, second, np.float64(image[y - 1, x + 1]))
+                first, second = _top2(first, second, np.float64(image[y, x - 1]))
+                first, second = _top2(first, second, np.float64(image[y, x + 1]))
+                first, second = _top2(first, second, np.float64(image[y + 1, x - 1]))
+                first, second = _top2(first, second, np.float64(image[y + 1, x]))
+                first, second = _top2(first, second, np.float64(image[y + 1, x + 1]))
+                level = max(second, 0.0)
+            else:
+                level = _neighbour_level(image, y, x)
+            if v > level * ratio and v - level >= excess:
                 out[y, x] = level
                 count += 1
             else:
@@ -52,26 +90,41 @@ def suppress_spikes(image, ratio, excess, out):
 
 
 @nb.njit(cache=True, nogil=True)
-def masked_mean_std(values, mask, inside):
-    """Mean and standard deviation of the pixels where ``mask == inside`` (two passes, float64)."""
+def split_mean_std(values, mask):
+    """Mean and standard deviation of the pixels inside ``mask`` and of those outside.
+
+    Two passes over the image (the sums, then the squared deviations), each side summed
+    in float64 in row-major order. Returns ``(mean_in, std_in, mean_out, std_out)``; a side
+    without pixels gives NaN.
+    """
     height, width = values.shape
-    n = 0
-    total = 0.0
+    n_in = 0
+    n_out = 0
+    total_in = 0.0
+    total_out = 0.0
     for y in range(height):
         for x in range(width):
-            if mask[y, x] == inside:
-                total += values[y, x]
-                n += 1
-    if n == 0:
-        return np.nan, np.nan
-    mean = total / n
-    squares = 0.0
+            if mask[y, x]:
+                total_in += values[y, x]
+                n_in += 1
+            else:
+                total_out += values[y, x]
+                n_out += 1
+    mean_in = total_in / n_in if n_in else np.nan
+    mean_out = total_out / n_out if n_out else np.nan
+    squares_in = 0.0
+    squares_out = 0.0
     for y in range(height):
         for x in range(width):
-            if mask[y, x] == inside:
-                d = values[y, x] - mean
-                squares += d * d
-    return mean, np.sqrt(squares / n)
+            if mask[y, x]:
+                d = values[y, x] - mean_in
+                squares_in += d * d
+            else:
+                d = values[y, x] - mean_out
+                squares_out += d * d
+    std_in = np.sqrt(squares_in / n_in) if n_in else np.nan
+    std_out = np.sqrt(squares_out / n_out) if n_out else np.nan
+    return mean_in, std_in, mean_out, std_out
 
 
 @nb.njit(cache=True, nogil=True)
@@ -82,11 +135,18 @@ def poisson_tail_screen(n, mu, log_alpha, out):
     at least ``alpha``), 1 (below: the Chernoff upper bound is under ``alpha``) or 2
     (undecided: the caller asks ``gammainc``). See ``quality._poisson_tail_below``.
     """
+    # Bright bins, decided without logarithms: with r = n / mu >= 8, the Chernoff exponent
+    # n log(n / mu) - n + mu = mu (r log r - r + 1) >= mu (r + 1) = n + mu (r log r >= 2r for
+    # r >= e^2), so n + mu above -log(alpha) (with a margin) puts the bound below alpha.
+    bright = -log_alpha + 1e-6
     for i in range(n.size):
         ni = n[i]
         mi = mu[i]
         if not ni > mi + np.sqrt(mi):
             out[i] = 0
+            continue
+        if ni >= 8.0 * mi and ni + mi > bright:
+            out[i] = 1
             continue
         log_mu = np.log(mi)
         upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
@@ -96,3 +156,55 @@ def poisson_tail_screen(n, mu, log_alpha, out):
         series = 1.0 + mi / (ni + 1.0) * (1.0 + mi / (ni + 2.0))
         lower = ni * log_mu - mi - math.lgamma(ni + 1.0) + np.log(series)
         out[i] = 0 if lower >= log_alpha + 1e-9 else 2
+
+
+@nb.njit(cache=True, nogil=True)
+def lines_beside(part, d, out):
+    """``out[y]`` = the mean of rows ``y - d`` and ``y + d`` of ``part`` (one of them at the edges).
+
+    In float64, summed from 0 in that order and divided by the count (as the stripe test's
+    numpy expression ``total[d:] += part[:-d]; total[:-d] += part[d:]; total /= count``
+    does), so the values are the same to the last bit. Rows with neither are 0.
+    """
+    height, width = part.shape
+    for y in range(height):
+        below = y >= d
+        above = y + d < height
+        count = 1.0 if below != above else (2.0 if below else 1.0)
+        for x in range(width):
+            total = 0.0
+            if below:
+                total += np.float64(part[y - d, x])
+            if above:
+                total += np.float64(part[y + d, x])
+            out[y, x] = total / count
+
+
+@nb.njit(cache=True, nogil=True)
+def uniform_histogram(values, edges, out):
+    """Counts of ``values`` in the bins between ``edges`` (``numpy.histogram`` with uniform bins).
+
+    ``edges`` are ``numpy.histogram``'s own (``numpy.linspace`` over the range, in its
+    type); a value goes to the bin ``i`` with ``edges[i] <= v < edges[i + 1]``, the last
+    bin holding its right edge too, as numpy decides after its first estimate. Values
+    outside the edges are not counted. ``out`` (int64, ``len(edges) - 1``) is added to.
+    """
+    n_bins = edges.size - 1
+    first = np.float64(edges[0])
+    last = np.float64(edges[n_bins])
+    scale = n_bins / (last - first)
+    flat = values.ravel()
+    for k in range(flat.size):
+        v = flat[k]
+        if not (v >= edges[0] and v <= edges[n_bins]):
+            continue
+        i = int((np.float64(v) - first) * scale)
+        if i >= n_bins:
+            i = n_bins - 1
+        if i < 0:
+            i = 0
+        while i > 0 and v < edges[i]:
+            i -= 1
+        while i < n_bins - 1 and v >= edges[i + 1]:
+            i += 1
+        out[i] += 1

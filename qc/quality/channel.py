@@ -13,7 +13,7 @@ from scipy import ndimage
 from skimage.filters import threshold_otsu
 
 from ..errors import InputError
-from ._kernels import masked_mean_std, suppress_spikes
+from ._kernels import lines_beside, split_mean_std, suppress_spikes, uniform_histogram
 from .excess import fit_model, measure_excess_area
 from .settings import DEFAULT_QUALITY, QualitySettings
 
@@ -233,9 +233,11 @@ def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name,
     n_fg = int(np.count_nonzero(foreground))
     floor = settings.background_floor
     if 0 < n_fg < (clean.size if mask is None else int(np.count_nonzero(mask))):
-        fg_mean, fg_std = _masked_mean_std(clean, foreground, True)
-        bg_mean, bg_std = (_masked_mean_std(clean, foreground, False) if mask is None
-                           else _masked_mean_std(clean, mask & ~foreground, True))
+        if mask is None:
+            fg_mean, fg_std, bg_mean, bg_std = (float(v) for v in split_mean_std(clean, foreground))
+        else:  # inside the tissue only (glass left out)
+            fg_mean, fg_std = _mean_std(clean[foreground])
+            bg_mean, bg_std = _mean_std(clean[mask & ~foreground])
         sbr = fg_mean / max(bg_mean, floor)
         snr = (fg_mean - bg_mean) / max(bg_std, floor)
         fg_snr = _mean_over_std(fg_mean, fg_std)
@@ -267,14 +269,13 @@ def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name,
         ghost_sources=(), flags=flags)
     # the stripe sums of every channel are kept until the end: float32 halves them
     summary = ChannelSummary(bins=bins, rows=_line_sums(clean).astype(np.float32),
-                       columns=_line_sums(clean.T).astype(np.float32))
+                       columns=_line_sums(np.ascontiguousarray(clean.T)).astype(np.float32))
     return cq, summary
 
 
-def _masked_mean_std(values: np.ndarray, mask: np.ndarray, inside: bool) -> tuple[float, float]:
-    """Mean and standard deviation of the pixels where ``mask == inside``, without copies."""
-    mean, std = masked_mean_std(values, mask, inside)
-    return float(mean), float(std)
+def _mean_std(values: np.ndarray) -> tuple[float, float]:
+    """Mean and (population) standard deviation, accumulated in float64."""
+    return float(np.mean(values, dtype=np.float64)), float(np.std(values, dtype=np.float64))
 
 
 def channel_flags(excess_area: float, sbr: float, saturated: float,
@@ -331,7 +332,12 @@ def _otsu(image: np.ndarray, low: float, high: float) -> float:
     The same 256-bin histogram over the image's range (``numpy.histogram``, as
     ``skimage.exposure.histogram`` does for float images) is handed to threshold_otsu.
     """
-    counts, edges = np.histogram(image, bins=256, range=(low, high))
+    edges = np.linspace(low, high, 257, endpoint=True, dtype=np.result_type(low, high, image))
+    if not np.all(edges[:-1] < edges[1:]):  # a range too narrow for the type: numpy says so
+        counts, edges = np.histogram(image, bins=256, range=(low, high))
+    else:  # numpy.histogram's bins, counted in one pass without its temporaries
+        counts = np.zeros(256, np.int64)
+        uniform_histogram(np.ascontiguousarray(image), edges, counts)
     return threshold_otsu(hist=(counts, (edges[:-1] + edges[1:]) / 2.0))
 
 
@@ -373,14 +379,8 @@ def _line_sums(image: np.ndarray) -> np.ndarray:
     mean of ``w``.
     """
     def beside(part, d):
-        total = np.zeros(part.shape)
-        count = np.zeros((part.shape[0], 1))
-        if part.shape[0] > d:
-            total[d:] += part[:-d]
-            total[:-d] += part[d:]
-            count[d:] += 1
-            count[:-d] += 1
-        total /= np.maximum(count, 1)
+        total = np.empty(part.shape)
+        lines_beside(part, d, total)
         return total
 
     edges = _segments(image.shape[1])

@@ -18,7 +18,8 @@ What a run writes into its output folder
 Scheduling
 ----------
 The unit of work is one whole ROI: a task reads the ROI, washes it, writes the washed
-stack atomically, hashes it and measures quality on raw and washed. Whole ROIs keep every
+stack atomically, measures quality on raw and on the washed pixels still at hand (no
+read-back of the output), and hashes the output. Whole ROIs keep every
 write local to the process that computed it (no pixels travel between processes), make a
 task's result all-or-nothing, and let the ledger stay a single writer (this process).
 Inside a task the ROI's chunks run on dask's threaded scheduler.
@@ -34,9 +35,14 @@ by the same code with the same chunking, whichever process runs it.
 
 Resume and safety
 -----------------
-A rerun skips an ROI whose latest ledger record is ``done`` when its output still exists
-and hashes to the recorded ``output_sha256``, and the input, recipe, spillover matrix,
-stains and plexwash version are unchanged; everything else is (re)done. Outputs are written
+A rerun skips an ROI whose latest ledger record is ``done`` when its output still exists,
+the input and output keep the size and modification time recorded beside their hashes
+(``input_stamp``, ``output_stamp``; nothing is read), and the recipe, spillover matrix,
+stains and plexwash version are unchanged; everything else is (re)done. With
+``verify=True`` (``plexwash run --verify``) the input and output are re-hashed instead and
+must match ``input_sha256`` and ``output_sha256``: a file changed in place that keeps its
+size and modification time is only caught that way. Records without stamps (an older
+plexwash) are always checked by their hashes. Outputs are written
 under a temporary name and renamed, ledger lines are appended one at a time and fsynced,
 so ``kill -9`` loses only the ROIs in flight; leftover temporary files are removed when
 the next run starts. Ctrl-C (or SIGTERM) stops the run: nothing is recorded for the ROIs

@@ -17,7 +17,7 @@ from pathlib import Path
 from .._version import __version__
 from ..errors import InputError, OutputError
 from ..files import remove_path, sweep_leftovers
-from ..ledger import LEDGER, RUN_LOG, Ledger, repair_ledger
+from ..ledger import LEDGER, QUALITY, REPORT, RUN_LOG, Ledger, repair_ledger
 from ..report import write_report
 from ..table import write_quality_table
 from .execute import connect, execute
@@ -70,7 +70,7 @@ class RunSummary:
 
 def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None, samples=None,
                workers=None, scheduler=None, connect_timeout=5.0, progress=True, cancel=None,
-               staging_dir=None) -> RunSummary:
+               staging_dir=None, verify=False) -> RunSummary:
     """Wash every ROI of a cohort folder into a run folder, resuming an earlier run.
 
     Parameters
@@ -105,6 +105,11 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None,
     staging_dir : str or Path, optional
         Folder for the staging files of the wash (e.g. a node's local scratch disk when
         the run folder is on network storage); by default beside each output.
+    verify : bool
+        On resume, re-hash the input and output of every ROI recorded done and redo those
+        whose SHA-256 no longer matches the ledger. By default a finished ROI is skipped
+        when its input and output keep the size and modification time recorded (no file
+        is read): a file changed in place that keeps both is only caught with ``verify``.
 
     Returns
     -------
@@ -145,11 +150,11 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None,
             stack.callback(client.close)
         stack.enter_context(run_lock(out))
         return _run_locked(inputs, out, started=started, workers=workers, client=client,
-                           progress=progress, cancel=cancel, staging_dir=staging_dir)
+                           progress=progress, cancel=cancel, staging_dir=staging_dir, verify=verify)
 
 
 def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel,
-                staging_dir) -> RunSummary:
+                staging_dir, verify) -> RunSummary:
     """The run, once its folder is locked (see :func:`run_cohort`)."""
     with RunLog(out / RUN_LOG, progress=progress) as log, interrupts() as stop:
         removed = sweep_leftovers(out)
@@ -158,7 +163,7 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
         if repair_ledger(out / LEDGER):
             log.line(f"removed the torn last line of {LEDGER} (a run was killed while writing it)")
         plan = write_run_files(inputs)
-        jobs, skipped = plan_jobs(plan, log, staging_dir=staging_dir)
+        jobs, skipped = plan_jobs(plan, log, staging_dir=staging_dir, verify=verify)
         log.line(f"plexwash {__version__} run of {plan.cohort_dir} into {out}: {len(plan.rois)} ROI(s), "
                  f"{len(skipped)} already done, {len(jobs)} to wash"
                  + (f" (recipe {plan.recipe_sha256[:12]})" if plan.recipe_sha256 else ""))
@@ -196,10 +201,14 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
             log.stop()
         report = error = None
         try:
-            write_quality_table(out)
-            for line in write_run_handoff(out):  # audit.csv, composites, arcsinh stacks
-                log.line(line)
-            report = write_report(out)  # the run's one call into the report
+            if not jobs and _closing_files_current(out):  # a resume with nothing to do
+                report = out / REPORT
+                log.line(f"nothing new: {QUALITY} and {REPORT} already hold every ROI, kept")
+            else:
+                write_quality_table(out)
+                for line in write_run_handoff(out):  # audit.csv, composites, arcsinh stacks
+                    log.line(line)
+                report = write_report(out)  # the run's one call into the report
         except OutputError as exc:  # a full disk: the ROIs recorded stay recorded
             error = str(exc)
             log.line(f"error: {error}")
@@ -209,6 +218,15 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
                  f"{len(failed)} failed" + (f" ({', '.join(failed)})" if failed else "")
                  + (f"; report {report}" if report else ""))
     return RunSummary(out, done, len(skipped), len(failed), tuple(failed), seconds, report, error)
+
+
+def _closing_files_current(out: Path) -> bool:
+    """True when ``quality.csv`` and ``report.html`` were written after the ledger's last change."""
+    try:
+        ledger = (out / LEDGER).stat().st_mtime_ns
+        return all((out / name).stat().st_mtime_ns >= ledger for name in (QUALITY, REPORT))
+    except OSError:
+        return False
 
 
 def _drop_stale_output(out: Path, job: Job | None, record: dict, log) -> None:

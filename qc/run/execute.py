@@ -1,7 +1,7 @@
 """Executing a run's jobs: in this process on threads, or on dask.distributed.
 
-The unit of work is one whole ROI (:func:`wash_one`): read, wash, write atomically, hash,
-measure quality on raw and washed, and return the ROI's ledger record. By default the
+The unit of work is one whole ROI (:func:`wash_one`): read, wash, write atomically, measure
+quality on raw and washed, hash, and return the ROI's ledger record. By default the
 jobs run in this process one after the other, each ROI's chunks on a thread pool of all
 cores; with ``workers=N`` on a ``LocalCluster`` of N worker processes; with a scheduler
 address on a running cluster (``Client(address)``, reached first by :func:`connect`).
@@ -120,7 +120,8 @@ def wash_one(job: Job) -> dict:
     """Wash one ROI of a run and return its ledger record (never raises for a bad ROI).
 
     Reads the input, washes it with the run's recipe, writes the washed stack atomically,
-    hashes it and measures quality on raw and washed. Runs in this process or on a dask
+    measures quality on raw and washed (the washed pixels still at hand), records the
+    input's and output's size and modification time and hashes them. Runs in this process or on a dask
     worker (the job holds only paths and hashes, so it pickles small).
 
     Parameters
@@ -160,7 +161,7 @@ def wash_one(job: Job) -> dict:
 
 def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     from ..audit import audit_washed
-    from ..io import read_roi, sha256_path
+    from ..io import file_stamp, read_roi, sha256_path
     from ..recipe import load_recipe
     from ..wash import wash_to_file
 
@@ -173,6 +174,7 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
         timings[name] = round(now - clock, 3)
         clock = now
 
+    input_stamp = file_stamp(job.input)  # before the hash: a later change shows on resume
     input_sha256 = job.input_sha256 or sha256_path(job.input)
     lap("hash_input")
     recipe = load_recipe(job.recipe)
@@ -194,19 +196,31 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
         target = temporary_path(out_dir / output_name(job.roi), "measure")
     provenance = {"input_sha256": input_sha256, "recipe_sha256": job.recipe_sha256,
                   "spillover_sha256": job.spillover_sha256, "stains_sha256": job.stains_sha256}
+    quality_seconds = []
+
+    def measure(washed):  # the washed pixels as written, before the staging goes
+        start = time.perf_counter()
+        measured = measure_quality(roi, washed, recipe, matrix, threads=job.threads or _worker_threads())
+        quality_seconds.append(time.perf_counter() - start)
+        return measured
+
+    written.append(target)  # removed if anything fails from here on, the quality included
     result = wash_to_file(roi, target, recipe, spillover=matrix, staging_dir=job.staging_dir,
-                          provenance=provenance)
-    written.append(target)
+                          provenance=provenance, measure=measure)
     if job.output is not None and recipe.output.tissue_mask:
         from ..mask_file import mask_path, write_tissue_mask
 
         written.append(write_tissue_mask(roi, mask_path(target), recipe, provenance=provenance))
     release_memory()
     lap("wash_write")
-    output_sha256 = sha256_path(target) if job.output is not None else None
+    timings["quality"] = round(quality_seconds[0], 3)
+    timings["wash_write"] = round(timings["wash_write"] - quality_seconds[0], 3)
+    output_sha256 = output_stamp = None
+    if job.output is not None:
+        output_stamp = file_stamp(target)
+        output_sha256 = sha256_path(target)
     lap("hash_output")
-    raw_rows, washed_rows, roi_flags = measure_quality(
-        roi, target, recipe, matrix, threads=job.threads or _worker_threads())
+    raw_rows, washed_rows, roi_flags = result.measured
     for row in raw_rows + washed_rows:  # the ROI's id (its path in the cohort), not its file stem
         row["roi"] = job.roi
     release_memory()
@@ -221,7 +235,7 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     record = _base_record(job)
     record.update(
         status="done", input_sha256=input_sha256, output=job.output,
-        output_sha256=output_sha256, shape=shape, dtype=str(roi.data.dtype),
+        output_sha256=output_sha256, input_stamp=input_stamp, output_stamp=output_stamp, shape=shape, dtype=str(roi.data.dtype),
         channels=list(roi.channels), labels=list(roi.labels), used=[bool(u) for u in roi.use],
         removed_fraction=removed, steps=stats, notes=list(result.notes),
         roi_flags=roi_flags, median_sbr=_median_sbr(raw_rows, washed_rows),
@@ -231,12 +245,18 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     return record
 
 
-def measure_quality(roi, washed_path: Path, recipe, matrix, *, threads: int = 1):
-    """Quality rows of the raw ROI and of the washed stack as written (quality.measure_roi)."""
-    from ..io import read_roi
+def measure_quality(roi, washed, recipe, matrix, *, threads: int = 1):
+    """Quality rows of the raw ROI and of the washed stack (quality.measure_roi).
+
+    ``washed`` is the stack as written: an array or array store, or the written file's path.
+    """
     from ..quality import measure_roi
 
-    measured = measure_roi(roi, recipe, spillover=matrix, washed=read_roi(washed_path).data, threads=threads)
+    if isinstance(washed, (str, Path)):
+        from ..io import read_roi
+
+        washed = read_roi(washed).data
+    measured = measure_roi(roi, recipe, spillover=matrix, washed=washed, threads=threads)
     return measured.raw_rows, measured.washed_rows, measured.flags
 
 

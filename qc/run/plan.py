@@ -211,8 +211,15 @@ def _stains_csv(stains) -> str:
     return buffer.getvalue()
 
 
-def plan_jobs(plan: Plan, log, *, staging_dir=None) -> tuple[list[Job], list[str]]:
-    """The ROIs to wash (as jobs) and the names of those that can be skipped."""
+def plan_jobs(plan: Plan, log, *, staging_dir=None, verify: bool = False) -> tuple[list[Job], list[str]]:
+    """The ROIs to wash (as jobs) and the names of those that can be skipped.
+
+    An ROI recorded ``done`` is skipped when its input and output still have the size and
+    modification time recorded when it was washed (``stat`` only, no read), or, with
+    ``verify=True`` (or for a record without them), when both still hash to the recorded
+    SHA-256. A file changed in place that keeps its size and time is only caught by
+    ``verify``.
+    """
     from ..io import output_name, sha256_path
 
     latest = latest_records(read_ledger(plan.out_dir))
@@ -233,6 +240,9 @@ def plan_jobs(plan: Plan, log, *, staging_dir=None) -> tuple[list[Job], list[str
             sample=tuple((sample or {}).items()))
         record = latest.get(name)
         why = _why_redo(record, job)
+        if why is None and not verify and _stamps_match(record, path, plan.out_dir, output):
+            skipped.append(name)
+            continue
         if why is None:
             job = dataclasses.replace(job, input_sha256=sha256_path(path))
             if job.input_sha256 != record.get("input_sha256"):
@@ -254,6 +264,28 @@ def _make_subfolder(out_dir: Path, name: str) -> None:
     if folder != out_dir:
         folder.mkdir(parents=True, exist_ok=True)
         sweep_leftovers(folder)  # under the run's lock, as for the run folder itself
+
+
+def _stamps_match(record: Mapping, input_path: Path, out_dir: Path, output: str | None) -> bool:
+    """True when the input and output have the size and time recorded (no file is read).
+
+    False when the record has no stamps (written by an older plexwash): the hashes decide.
+    """
+    from ..io import file_stamp
+
+    recorded = record.get("input_stamp"), record.get("output_stamp")
+    if not isinstance(recorded[0], Mapping) or (output is not None and not isinstance(recorded[1], Mapping)):
+        return False
+    try:
+        if _stamp_key(file_stamp(input_path)) != _stamp_key(recorded[0]):
+            return False
+        return output is None or _stamp_key(file_stamp(out_dir / output)) == _stamp_key(recorded[1])
+    except OSError:
+        return False
+
+
+def _stamp_key(stamp: Mapping) -> tuple:
+    return tuple(stamp.get(k) for k in ("size", "mtime_ns", "files"))
 
 
 def _why_redo(record: Mapping | None, job: Job) -> str | None:

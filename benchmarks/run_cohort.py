@@ -1,0 +1,204 @@
+"""Speed of ``plexwash run`` as a user feels it: whole processes against their I/O floor.
+
+Dense data (every channel has signal, see ``_dense.py``); each figure is a whole
+``plexwash run`` process (start-up, imports, hashing, quality, report included), medians
+of ``--repeats``; ratios are taken within this one run. Parts (``--parts``, default all):
+
+- ``dense``: one 36 x 1008 x 1008 float32 ROI, against a process that reads it with
+  tifffile and writes it back with the recipe's compression and tile size
+  (target <= 2.5x, must be < 3x);
+- ``small``: 200 ROIs of 36 x 96 x 96 (cut from the dense one): fixed cost per ROI =
+  (run of N ROIs - run of 1 ROI) / (N - 1) (target <= 0.1 s, must be < 0.25 s);
+- ``resume``: rerun of a finished 24-ROI cohort (target <= 1.5 s including start-up,
+  must be < 2.5 s), and the same with ``--verify`` (re-hashes everything);
+- ``workers``: 8 ROIs of 36 x 504 x 504, the default (one process, threads) against
+  ``--workers 2`` (target: >= 1.7x a single worker's throughput on 2 cores).
+
+The machine may be shared: the load average is printed with each part.
+
+``--baseline DIR`` also times another plexwash in the same run, interleaved: DIR holds
+``plexwash/qc`` (and ``plexwash/plugin``) of another checkout, e.g.
+``mkdir -p DIR/plexwash && git archive main qc plugin | tar -x -C DIR/plexwash && touch
+DIR/plexwash/__init__.py``; its processes run with ``PYTHONPATH=DIR``.
+
+    python benchmarks/run_cohort.py [--repeats 3] [--parts dense,small,resume,workers] [--small 200]
+                                    [--baseline DIR]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import shutil
+import statistics
+import tempfile
+from pathlib import Path
+
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
+import numpy as np  # noqa: E402
+from _dense import (  # noqa: E402
+    dense_counts,
+    floor_seconds,
+    load,
+    plexwash_seconds,
+    write_roi,
+    write_spillover,
+)
+
+PARTS = ("dense", "small", "resume", "workers")
+
+
+def _median(fn, repeats: int) -> tuple[float, list[float]]:
+    runs = [fn() for _ in range(repeats)]
+    return statistics.median(runs), runs
+
+
+BASELINE: dict = {}
+
+
+def _run(cohort: Path, out: Path, spill: Path, *extra: str, fresh: bool = True,
+         baseline: bool = False) -> float:
+    if fresh:
+        shutil.rmtree(out, ignore_errors=True)
+    return plexwash_seconds(["run", str(cohort), "-o", str(out), "--spillover", str(spill),
+                             "--quiet", *extra], env=BASELINE if baseline else None)
+
+
+def _both(label: str, ours: list[float], theirs: list[float], floor: float | None = None) -> None:
+    """Print our median, the baseline's (when timed) and their ratios to the floor."""
+    for name, runs in (("this checkout", ours), ("baseline", theirs)):
+        if not runs:
+            continue
+        median = statistics.median(runs)
+        ratio = f"   {label} = {median / floor:.2f}x" if floor else ""
+        print(f"  {name:14s} median {median:6.2f} s  runs {_list(runs)}{ratio}")
+
+
+def _tiles(counts: np.ndarray, edge: int, n: int) -> list[np.ndarray]:
+    """n (C, edge, edge) pieces of the stack (flipped copies once the grid is used up)."""
+    grid = [counts[:, y:y + edge, x:x + edge] for y in range(0, counts.shape[1] - edge + 1, edge)
+            for x in range(0, counts.shape[2] - edge + 1, edge)]
+    out = []
+    k = 0
+    while len(out) < n:
+        piece = grid[k % len(grid)]
+        flips = k // len(grid)
+        if flips % 2:
+            piece = piece[:, ::-1]
+        if (flips // 2) % 2:
+            piece = piece[:, :, ::-1]
+        out.append(np.ascontiguousarray(piece))
+        k += 1
+    return out
+
+
+def main(argv=None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--repeats", type=int, default=3)
+    parser.add_argument("--parts", default=",".join(PARTS))
+    parser.add_argument("--small", type=int, default=200, help="ROIs of the fixed-cost part")
+    parser.add_argument("--resume-rois", type=int, default=24)
+    parser.add_argument("--channels", type=int, default=36)
+    parser.add_argument("--size", type=int, default=1008)
+    parser.add_argument("--baseline", type=Path, help="folder holding another checkout as plexwash/qc")
+    args = parser.parse_args(argv)
+    if args.baseline:
+        BASELINE["PYTHONPATH"] = str(args.baseline.resolve())
+    parts = [p.strip() for p in args.parts.split(",") if p.strip()]
+    unknown = set(parts) - set(PARTS)
+    if unknown:
+        parser.error(f"unknown parts {sorted(unknown)}; choose from {', '.join(PARTS)}")
+
+    print(f"before: {load()}")
+    tmp = Path(tempfile.mkdtemp(prefix="plexwash-runbench-"))
+    try:
+        counts, names, spill = dense_counts(args.channels, args.size)
+        spill_csv = write_spillover(tmp / "spillover.csv", spill, names)
+        # warm-up: numba caches, the file cache
+        warm = _tiles(counts, 96, 1)[0]
+        write_roi(tmp / "warm" / "w.ome.tiff", warm, names)
+        _run(tmp / "warm", tmp / "warm-run", spill_csv)
+        if BASELINE:
+            _run(tmp / "warm", tmp / "warm-run", spill_csv, baseline=True)
+
+        if "dense" in parts:
+            roi = write_roi(tmp / "dense" / "dense.ome.tiff", counts, names)
+            print(f"\n[dense] one ROI {counts.shape[0]} x {counts.shape[1]} x {counts.shape[2]} float32: "
+                  f"{counts.nbytes / 1e6:.0f} MB of pixels, {roi.stat().st_size / 1e6:.0f} MB on disk")
+            floors, runs, base = [], [], []
+            for k in range(args.repeats):  # interleaved, so all see the same load
+                floors.append(floor_seconds([(roi, tmp / f"floor-{k}.ome.tiff")]))
+                runs.append(_run(roi.parent, tmp / "dense-run", spill_csv))
+                if BASELINE:
+                    base.append(_run(roi.parent, tmp / "dense-run", spill_csv, baseline=True))
+            floor, run = statistics.median(floors), statistics.median(runs)
+            print(f"floor (read + write, one process)  median {floor:6.2f} s  runs {_list(floors)}")
+            print("plexwash run")
+            _both("run / floor", runs, base, floor)
+            print(f"run / floor = {run / floor:.2f}x   (target <= 2.5x, must be < 3x)   {load()}")
+
+        if "small" in parts:
+            cohort = tmp / "small"
+            for k, piece in enumerate(_tiles(counts, 96, args.small)):
+                write_roi(cohort / f"roi_{k:04d}.ome.tiff", piece, names)
+            one = tmp / "one"
+            write_roi(one / "roi_0000.ome.tiff", _tiles(counts, 96, 1)[0], names)
+            t_one, ones = _median(lambda: _run(one, tmp / "one-run", spill_csv), args.repeats)
+            t_all, alls = _median(lambda: _run(cohort, tmp / "small-run", spill_csv), max(1, args.repeats // 2))
+            per = (t_all - t_one) / max(1, args.small - 1)
+            print(f"\n[small] {args.small} ROIs of {args.channels} x 96 x 96")
+            print(f"run of 1 ROI       median {t_one:6.2f} s  runs {_list(ones)}")
+            print(f"run of {args.small} ROIs   median {t_all:6.2f} s  runs {_list(alls)}")
+            print(f"fixed cost per ROI = {per:.3f} s   (target <= 0.1 s, must be < 0.25 s)   {load()}")
+            if BASELINE:
+                b_one = statistics.median([_run(one, tmp / "one-run", spill_csv, baseline=True)
+                                           for _ in range(args.repeats)])
+                b_all = _run(cohort, tmp / "small-run", spill_csv, baseline=True)
+                print(f"baseline: 1 ROI {b_one:.2f} s, {args.small} ROIs {b_all:.2f} s, fixed cost per ROI = "
+                      f"{(b_all - b_one) / max(1, args.small - 1):.3f} s   {load()}")
+
+        if "resume" in parts:
+            cohort = tmp / "resume"
+            for k, piece in enumerate(_tiles(counts, 96, args.resume_rois)):
+                write_roi(cohort / f"roi_{k:04d}.ome.tiff", piece, names)
+            out = tmp / "resume-run"
+            _run(cohort, out, spill_csv)
+            t_resume, resumes = _median(lambda: _run(cohort, out, spill_csv, fresh=False), args.repeats)
+            t_verify, verifies = _median(lambda: _run(cohort, out, spill_csv, "--verify", fresh=False),
+                                         args.repeats)
+            print(f"\n[resume] rerun of a finished cohort of {args.resume_rois} ROIs")
+            print(f"resume (size + time)  median {t_resume:6.2f} s  runs {_list(resumes)}"
+                  "   (target <= 1.5 s, must be < 2.5 s)")
+            print(f"resume --verify       median {t_verify:6.2f} s  runs {_list(verifies)}   {load()}")
+            if BASELINE:
+                base_out = tmp / "resume-base"
+                _run(cohort, base_out, spill_csv, baseline=True)
+                t_base, bases = _median(lambda: _run(cohort, base_out, spill_csv, fresh=False, baseline=True),
+                                        args.repeats)
+                print(f"baseline resume       median {t_base:6.2f} s  runs {_list(bases)}   {load()}")
+
+        if "workers" in parts:
+            cohort = tmp / "eight"
+            for k, piece in enumerate(_tiles(counts, args.size // 2, 8)):
+                write_roi(cohort / f"roi_{k}.ome.tiff", piece, names)
+            singles, twos = [], []
+            for _ in range(args.repeats):
+                singles.append(_run(cohort, tmp / "eight-run", spill_csv))
+                twos.append(_run(cohort, tmp / "eight-run", spill_csv, "--workers", "2"))
+            single, two = statistics.median(singles), statistics.median(twos)
+            print(f"\n[workers] 8 ROIs of {args.channels} x {args.size // 2} x {args.size // 2}")
+            print(f"default (one process)  median {single:6.2f} s  runs {_list(singles)}")
+            print(f"--workers 2            median {two:6.2f} s  runs {_list(twos)}")
+            print(f"throughput --workers 2 / default = {single / two:.2f}x   (target >= 1.7x)   {load()}")
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+    print(f"\nafter: {load()}")
+
+
+def _list(values) -> str:
+    return ", ".join(f"{v:.2f}" for v in values)
+
+
+if __name__ == "__main__":
+    main()
