@@ -16,10 +16,10 @@ from pathlib import Path
 
 from .._version import __version__
 from ..errors import InputError, OutputError
-from ..files import remove_path, sweep_leftovers
-from ..ledger import LEDGER, QUALITY, REPORT, RUN_LOG, Ledger, repair_ledger
+from ..files import remove_path, sweep_leftovers, write_atomic
+from ..ledger import LEDGER, QUALITY, RECIPE, REPORT, RUN_LOG, STAINS_COPY, Ledger, repair_ledger
 from ..report import write_report
-from ..table import write_quality_table
+from ..table import SAMPLES_COPY, write_quality_table
 from .execute import connect, execute
 from .folder import interrupts, run_lock
 from .handoff import write_run_handoff
@@ -209,6 +209,7 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
                 for line in write_run_handoff(out):  # audit.csv, composites, arcsinh stacks
                     log.line(line)
                 report = write_report(out)  # the run's one call into the report
+                write_atomic(out / CLOSING, _closing_signature(out))
         except OutputError as exc:  # a full disk: the ROIs recorded stay recorded
             error = str(exc)
             log.line(f"error: {error}")
@@ -220,11 +221,33 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
     return RunSummary(out, done, len(skipped), len(failed), tuple(failed), seconds, report, error)
 
 
+#: Beside the closing files: the state of what they were made from (see _closing_signature).
+CLOSING = ".closing-inputs"
+
+
+def _closing_signature(out: Path) -> str:
+    """What the closing step reads: the ledger's size and modification time, and the content
+    (SHA-256, or absence) of the run's small copies of the recipe, stain sheet, sample sheet
+    and matrices (rewritten with the same content on every run)."""
+    import hashlib
+
+    stat = (out / LEDGER).stat()
+    parts = [f"{LEDGER} {stat.st_size} {stat.st_mtime_ns}"]
+    for name in [RECIPE, STAINS_COPY, SAMPLES_COPY] + sorted(p.name for p in out.glob("spillover*.csv")):
+        try:
+            parts.append(f"{name} {hashlib.sha256((out / name).read_bytes()).hexdigest()}")
+        except OSError:
+            parts.append(f"{name} absent")
+    return "\n".join(parts) + "\n"
+
+
 def _closing_files_current(out: Path) -> bool:
-    """True when ``quality.csv`` and ``report.html`` were written after the ledger's last change."""
+    """True when ``quality.csv`` and ``report.html`` exist and were made from the ledger and
+    run copies as they are now (a dropped sample sheet or a new record makes them stale)."""
     try:
-        ledger = (out / LEDGER).stat().st_mtime_ns
-        return all((out / name).stat().st_mtime_ns >= ledger for name in (QUALITY, REPORT))
+        if not all((out / name).is_file() for name in (QUALITY, REPORT)):
+            return False
+        return (out / CLOSING).read_text(encoding="utf-8") == _closing_signature(out)
     except OSError:
         return False
 
