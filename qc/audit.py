@@ -58,6 +58,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .files import read_csv_dicts
 from .settings import setting
 
 #: Columns of ``audit.csv`` (the contract's first seven, then the counts behind them).
@@ -381,13 +382,7 @@ def write_audit_table(out_dir) -> Path | None:
 
 def read_audit_csv(path) -> list[dict]:
     """Read ``audit.csv`` back (numbers as float or int, flags as lists)."""
-    import csv
-
-    path = Path(path)
-    if not path.is_file():
-        return []
-    with open(path, encoding="utf-8", newline="") as fh:
-        rows = list(csv.DictReader(fh))
+    rows = read_csv_dicts(path)
     out = []
     for row in rows:
         parsed = dict(row)

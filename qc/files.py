@@ -508,3 +508,14 @@ def _controls_files(path: Path) -> list[Path]:
                 name = Path(row[column].strip())
                 found.append(name if name.is_absolute() else path.parent / name)
     return list(dict.fromkeys(found))
+
+
+def read_csv_dicts(path) -> list[dict]:
+    """The rows of a CSV file written by plexwash as dicts of text (``[]`` when it is missing)."""
+    import csv
+
+    path = Path(path)
+    if not path.is_file():
+        return []
+    with open(path, encoding="utf-8", newline="") as fh:
+        return list(csv.DictReader(fh))

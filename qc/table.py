@@ -11,7 +11,7 @@ import math
 from collections.abc import Mapping
 from pathlib import Path
 
-from .files import write_atomic
+from .files import read_csv_dicts, write_atomic
 from .ledger import QUALITY, latest_records, read_ledger
 
 #: A run folder's copy of its sample sheet: ``roi,batch,...`` (written by the run).
@@ -158,13 +158,7 @@ def quality_csv_text(rows: list[Mapping]) -> str:
 
 def read_quality_csv(path) -> list[dict]:
     """Read ``quality.csv`` back (numbers as float, flags as lists)."""
-    import csv
-
-    path = Path(path)
-    if not path.is_file():
-        return []
-    with open(path, encoding="utf-8", newline="") as fh:
-        rows = list(csv.DictReader(fh))
+    rows = read_csv_dicts(path)
     out = []
     for row in rows:
         parsed = {}

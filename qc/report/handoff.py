@@ -8,13 +8,13 @@
 
 from __future__ import annotations
 
-import base64
-import html
 import io
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
+
+from .style import escape, img_tag
 
 #: Composite thumbnails shown at most (the rest are counted).
 COMPOSITE_THUMBNAILS = 400
@@ -109,26 +109,26 @@ def section_audit_and_composites(out_dir) -> str:
             "test) that look like spillover are flagged <code>crosstalk-left</code>; "
             "<code>co-occur</code> means the markers share cells at comparable levels (check the "
             "declaration).</p>")
-        parts.append(_img(plot_audit(rows), "co-positivity per pair and ROI, raw and washed"))
+        parts.append(img_tag(plot_audit(rows), "co-positivity per pair and ROI, raw and washed"))
         if flagged:
             parts.append("<table><tr><th>ROI</th><th>pair</th><th>stage</th><th>co-positive</th>"
                          "<th>chance</th><th>p</th><th>flags</th></tr>")
             for r in flagged:
                 parts.append(
-                    f"<tr><td>{_e(r['roi'])}</td><td>{_e(r.get('first_marker') or r['first'])} / "
-                    f"{_e(r.get('second_marker') or r['second'])}</td><td>{_e(r['stage'])}</td>"
+                    f"<tr><td>{escape(r['roi'])}</td><td>{escape(r.get('first_marker') or r['first'])} / "
+                    f"{escape(r.get('second_marker') or r['second'])}</td><td>{escape(r['stage'])}</td>"
                     f"<td class=\"num\">{_n(r['co_positive'])}</td><td class=\"num\">{_n(r['expected'])}</td>"
-                    f"<td class=\"num\">{_n(r['p_value'])}</td><td>{_e(', '.join(r['flags']))}</td></tr>")
+                    f"<td class=\"num\">{_n(r['p_value'])}</td><td>{escape(', '.join(r['flags']))}</td></tr>")
             parts.append("</table>")
     if event:
         parts.append(
             f"<h3>Composites for segmentation</h3><p>Each contributing channel clipped at the "
             f"cohort-wide {event['low_percentile']:g}th and {event['high_percentile']:g}th "
             f"percentiles of its washed values, scaled to [0, 1] and combined by "
-            f"{_e(event['combine'])}.</p>")
+            f"{escape(event['combine'])}.</p>")
         parts.append("<table><tr><th>channel</th><th>role</th><th>low</th><th>high</th></tr>")
         for name, (low, high) in event["percentiles"].items():
-            parts.append(f"<tr><td>{_e(name)}</td><td>{_e(event['roles'].get(name))}</td>"
+            parts.append(f"<tr><td>{escape(name)}</td><td>{escape(event['roles'].get(name))}</td>"
                          f"<td class=\"num\">{_n(low)}</td><td class=\"num\">{_n(high)}</td></tr>")
         parts.append("</table><div class=\"thumbs\">")
         from ..io import read_roi
@@ -139,7 +139,7 @@ def section_audit_and_composites(out_dir) -> str:
             if not path.is_file():
                 continue
             png = composite_thumbnail(read_roi(path).data)
-            parts.append(f"<figure>{_img(png, f'composite of {roi}')}<figcaption>{_e(roi)}"
+            parts.append(f"<figure>{img_tag(png, f'composite of {roi}')}<figcaption>{escape(roi)}"
                          "</figcaption></figure>")
             shown += 1
         parts.append("</div>")
@@ -149,13 +149,6 @@ def section_audit_and_composites(out_dir) -> str:
     return "\n".join(parts)
 
 
-def _img(png: bytes, alt: str) -> str:
-    data = base64.b64encode(png).decode("ascii")
-    return f'<img class="plot" src="data:image/png;base64,{data}" alt="{_e(alt)}">'
-
-
-def _e(value) -> str:
-    return html.escape("" if value is None else str(value), quote=True)
 
 
 def _n(value) -> str:

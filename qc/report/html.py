@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
-import html
 import math
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -32,7 +31,7 @@ from ..table import (
 from .handoff import section_audit_and_composites
 from .plots import plot_removed, plot_sbr, plot_spillover
 from .sheets import grouped, section_sheets
-from .style import CSS
+from .style import CSS, escape, img_tag
 from .tables import SCRIPT, section_batches, sortable_table
 from .thumbnails import (
     CONTRAST_PERCENTILES,
@@ -167,10 +166,10 @@ def _render(ctx: dict, *, thumbnail_rois: int) -> str:
         '<html lang="en"><head><meta charset="utf-8">',
         '<meta name="generator" content="plexwash">',
         '<meta name="viewport" content="width=device-width, initial-scale=1">',
-        f"<title>plexwash report: {_e(ctx['out_dir'].name)}</title>",
+        f"<title>plexwash report: {escape(ctx['out_dir'].name)}</title>",
         f"<style>{CSS}</style></head><body>",
         "<header><h1>plexwash cohort report</h1>",
-        f"<p>Run folder {_e(ctx['out_dir'])} &middot; written {_e(now)} by plexwash {_e(__version__)}</p>",
+        f"<p>Run folder {escape(ctx['out_dir'])} &middot; written {escape(now)} by plexwash {escape(__version__)}</p>",
         "</header><main>",
         _section_cautions(),
         _section_summary(latest, names, done, failed, flagged, outliers, ctx["samples"]),
@@ -194,7 +193,7 @@ def _render(ctx: dict, *, thumbnail_rois: int) -> str:
 
 
 def _section_cautions() -> str:
-    items = "".join(f"<li>{_e(c)}</li>" for c in CAUTIONS)
+    items = "".join(f"<li>{escape(c)}</li>" for c in CAUTIONS)
     return f'<section id="cautions" class="cautions"><h2>Cautions</h2><ul>{items}</ul></section>'
 
 
@@ -218,13 +217,13 @@ def _section_summary(latest, names, done, failed, flagged, outliers, samples) ->
                            | set((rec.get("roi_flags") or {}).get("washed", [])))
         sample = samples.get(name, {})
         rows.append(
-            f"<tr><td>{_e(name)}</td>" + "".join(f"<td>{_e(sample.get(c, ''))}</td>" for c in columns)
+            f"<tr><td>{escape(name)}</td>" + "".join(f"<td>{escape(sample.get(c, ''))}</td>" for c in columns)
             + f"<td class=\"{'ok' if status == 'done' else 'failed'}\">"
-            f"{_e(status)}</td><td>{shape}</td><td class=\"num\">{_num(med.get('raw'))}</td>"
+            f"{escape(status)}</td><td>{shape}</td><td class=\"num\">{_num(med.get('raw'))}</td>"
             f"<td class=\"num\">{_num(med.get('washed'))}</td><td>{_chips(roi_flags)}</td>"
             f"<td class=\"num\">{flagged_count.get(name, 0)}</td>"
-            f"<td class=\"num\">{_num(rec.get('seconds'))}</td><td>{_e(rec.get('error', ''))}</td></tr>")
-    headers = ["ROI", *map(_e, columns), "status", "shape (C &times; Y &times; X)", "median SBR raw",
+            f"<td class=\"num\">{_num(rec.get('seconds'))}</td><td>{escape(rec.get('error', ''))}</td></tr>")
+    headers = ["ROI", *map(escape, columns), "status", "shape (C &times; Y &times; X)", "median SBR raw",
                "median SBR washed", "ROI flags", "flagged channels", "seconds", "error"]
     out.append(sortable_table("summary-table", headers, rows))
     out.append("</section>")
@@ -248,7 +247,7 @@ def _pages(names: Sequence[str], samples: Mapping) -> list[tuple[str, list[str]]
             title = (f"{group} " if group else "") + (f"(ROIs {k * HEATMAP_ROIS + 1}&ndash;"
                                                        f"{k * HEATMAP_ROIS + len(part)} of {len(members)})"
                                                        if count > 1 else "")
-            pages.append((_e(title.strip()).replace("&amp;ndash;", "&ndash;"), part))
+            pages.append((escape(title.strip()).replace("&amp;ndash;", "&ndash;"), part))
     return pages
 
 
@@ -290,7 +289,7 @@ def _section_sbr(rows, done, samples) -> str:
         washed, channels_w = _sbr_grid(rows, page, "washed")
         if title:
             out.append(f"<h3>{title}</h3>")
-        out.append(_img(plot_sbr(raw, washed, page, channels, channels_w, limits=limits),
+        out.append(img_tag(plot_sbr(raw, washed, page, channels, channels_w, limits=limits),
                         f"SBR heatmaps raw and washed {title}".strip()))
     out.append("</section>")
     return "\n".join(out)
@@ -327,7 +326,7 @@ def _section_flags(rows) -> str:
         for stage in ("raw", "washed"):
             flags, sbr = entry.get(stage, ([], None))
             cells.append(f"<td>{_chips(flags)}</td><td class=\"num\">{_num(sbr)}</td>")
-        lines.append(f"<tr><td>{_e(roi)}</td><td>{_e(channel)}</td><td>{_e(entry['label'] or '')}</td>"
+        lines.append(f"<tr><td>{escape(roi)}</td><td>{escape(channel)}</td><td>{escape(entry['label'] or '')}</td>"
                      f"{''.join(cells)}</tr>")
     out.append(sortable_table("flag-table", ["ROI", "channel", "label", "raw flags", "raw SBR",
                                              "washed flags", "washed SBR"], lines))
@@ -352,9 +351,9 @@ def _section_outliers(outliers, rows) -> str:
         return "\n".join(out)
     lines = []
     for row in sorted(outliers, key=lambda r: -abs(_float(r.get("sbr_modified_z")) or 0.0)):
-        lines.append(f"<tr><td>{_e(row['roi'])}</td><td>{_e(row.get('batch') or '')}</td>"
-                     f"<td>{_e(row['channel'])}</td>"
-                     f"<td>{_e(row.get('stage'))}</td><td class=\"num\">{_num(row.get('sbr'))}</td>"
+        lines.append(f"<tr><td>{escape(row['roi'])}</td><td>{escape(row.get('batch') or '')}</td>"
+                     f"<td>{escape(row['channel'])}</td>"
+                     f"<td>{escape(row.get('stage'))}</td><td class=\"num\">{_num(row.get('sbr'))}</td>"
                      f"<td class=\"num\">{_num(row.get('sbr_modified_z'))}</td>"
                      f"<td class=\"num\">{_num(row.get('sbr_batch_modified_z'))}</td>"
                      f"<td>{_chips([f for f in row.get('flags') or [] if 'outlier' in f])}</td></tr>")
@@ -401,8 +400,8 @@ def _section_removed(latest, done, samples) -> str:
                              f"{100 * np.mean(values):.2f} / {100 * max(values):.2f}</td>")
             else:
                 cells.append("<td>&ndash;</td>")
-        lines.append(f"<tr><td>{_e(name)}</td>{''.join(cells)}</tr>")
-    out.append(sortable_table("removed-table", ["ROI", *(f"{_e(step(s).label)}: mean / max %"
+        lines.append(f"<tr><td>{escape(name)}</td>{''.join(cells)}</tr>")
+    out.append(sortable_table("removed-table", ["ROI", *(f"{escape(step(s).label)}: mean / max %"
                                                        for s in steps)], lines))
     every = [g for s in steps for g in [_removed_grid(latest, rois, s)[0]] if np.isfinite(g).any()]
     top = max([float(np.nanmax(g)) for g in every] + [1e-4])  # one scale for all pages
@@ -410,7 +409,7 @@ def _section_removed(latest, done, samples) -> str:
         grids = [(s, *_removed_grid(latest, page, s)) for s in steps]
         if title:
             out.append(f"<h3>{title}</h3>")
-        out.append(_img(plot_removed(grids, page, top=top),
+        out.append(img_tag(plot_removed(grids, page, top=top),
                         f"removed fraction heatmaps per step {title}".strip()))
     out.append("</section>")
     return "\n".join(out)
@@ -420,7 +419,7 @@ def _section_spillover(matrix, error, recipe) -> str:
     out = ['<section id="spillover"><h2>Spillover matrix used</h2>']
     if matrix is None:
         if error:
-            out.append(f"<p class=\"failed\">{_e(error)}</p>")
+            out.append(f"<p class=\"failed\">{escape(error)}</p>")
         elif recipe is not None and not recipe.compensation.enabled:
             out.append("<p>Compensation is disabled in the recipe.</p>")
         else:
@@ -434,14 +433,14 @@ def _section_spillover(matrix, error, recipe) -> str:
                "in channel j, in percent; the diagonal (1) is left blank. "
                f"Largest off-diagonal entry {100 * off.max():.3g} %; "
                f"{int(np.count_nonzero(off > 0))} non-zero pairs.</p>")
-    out.append(_img(plot_spillover(off, list(matrix.channels)), "spillover matrix heatmap"))
+    out.append(img_tag(plot_spillover(off, list(matrix.channels)), "spillover matrix heatmap"))
     pairs = sorted(((values[i, j], matrix.channels[i], matrix.channels[j])
                     for i in range(len(values)) for j in range(len(values))
                     if i != j and values[i, j] > 0), reverse=True)
     if pairs:
         out.append("<details><summary>Non-zero pairs</summary><table><tr><th>from</th><th>into</th>"
                    "<th>%</th></tr>")
-        out += [f"<tr><td>{_e(a)}</td><td>{_e(b)}</td><td class=\"num\">{100 * v:.3g}</td></tr>"
+        out += [f"<tr><td>{escape(a)}</td><td>{escape(b)}</td><td class=\"num\">{100 * v:.3g}</td></tr>"
                 for v, a, b in pairs]
         out.append("</table></details>")
     out.append("</section>")
@@ -486,7 +485,7 @@ def _roi_thumbnails(ctx, name) -> str:
     from ..io import read_roi
 
     rec = ctx["latest"][name]
-    out = [f"<h3>{_e(name)}</h3>"]
+    out = [f"<h3>{escape(name)}</h3>"]
     raw_path = Path(rec.get("input") or "")
     washed_path = ctx["out_dir"] / rec["output"] if rec.get("output") else None
     try:
@@ -494,12 +493,12 @@ def _roi_thumbnails(ctx, name) -> str:
         raw = downsample(raw_roi.data, THUMBNAIL_SIZE)
     except Exception as exc:
         raw = None
-        out.append(f'<p class="note">Raw input not shown ({_e(exc)}).</p>')
+        out.append(f'<p class="note">Raw input not shown ({escape(exc)}).</p>')
     try:
         washed = downsample(read_roi(washed_path).data, THUMBNAIL_SIZE) if washed_path else None
     except Exception as exc:
         washed = None
-        out.append(f'<p class="note">Washed output not shown ({_e(exc)}).</p>')
+        out.append(f'<p class="note">Washed output not shown ({escape(exc)}).</p>')
     if raw is None and washed is None:
         return "\n".join(out)
     channels = rec.get("channels") or []
@@ -519,7 +518,7 @@ def _roi_thumbnails(ctx, name) -> str:
         total = combined_removed_fraction(
             [(removed_fraction.get(s) or {}).get(channel) for s in STEP_NAMES])
         label = labels[c] if c < len(labels) else channel
-        title = _e(channel) + (f" &middot; {_e(label)}" if label != channel else "")
+        title = escape(channel) + (f" &middot; {escape(label)}" if label != channel else "")
         out.append(f'<figure class="card"><figcaption><b>{title}</b><span>removed '
                    f"{100 * total:.1f} %</span></figcaption><div>{''.join(images)}</div>"
                    "<div class=\"kinds\"><span>raw</span><span>washed</span><span>removed</span></div>"
@@ -535,7 +534,7 @@ def _thumb(image, lo, hi, alt) -> str:
     data = base64.b64encode(png_grey(grey)).decode("ascii")
     h, w = grey.shape
     return (f'<img src="data:image/png;base64,{data}" width="{w}" height="{h}" '
-            f'alt="{_e(alt)}">')
+            f'alt="{escape(alt)}">')
 
 
 def _section_provenance(ctx, names, now) -> str:
@@ -546,41 +545,34 @@ def _section_provenance(ctx, names, now) -> str:
     stains_hashes = sorted({str(latest[n].get("stains_sha256")) for n in names})
     out = ['<section id="provenance"><h2>Provenance</h2>',
            "<table>",
-           f"<tr><th>report written</th><td>{_e(now)}</td></tr>",
-           f"<tr><th>plexwash version(s)</th><td>{_e(', '.join(versions))}</td></tr>",
-           f"<tr><th>recipe sha256</th><td class=\"hash\">{'<br>'.join(map(_e, recipe_hashes))}</td></tr>",
-           f"<tr><th>spillover sha256</th><td class=\"hash\">{'<br>'.join(map(_e, spill_hashes))}</td></tr>",
-           f"<tr><th>stains sha256</th><td class=\"hash\">{'<br>'.join(map(_e, stains_hashes))}</td></tr>",
+           f"<tr><th>report written</th><td>{escape(now)}</td></tr>",
+           f"<tr><th>plexwash version(s)</th><td>{escape(', '.join(versions))}</td></tr>",
+           f"<tr><th>recipe sha256</th><td class=\"hash\">{'<br>'.join(map(escape, recipe_hashes))}</td></tr>",
+           f"<tr><th>spillover sha256</th><td class=\"hash\">{'<br>'.join(map(escape, spill_hashes))}</td></tr>",
+           f"<tr><th>stains sha256</th><td class=\"hash\">{'<br>'.join(map(escape, stains_hashes))}</td></tr>",
            f"<tr><th>ledger records</th><td>{len(ctx['records'])} attempt(s) for {len(names)} ROI(s)</td></tr>",
            "</table>",
            ]
     lines = []
     for name in names:
         rec = latest[name]
-        lines.append(f"<tr><td>{_e(name)}</td><td>{_e(rec.get('input'))}</td>"
-                     f"<td class=\"hash\">{_e(rec.get('input_sha256'))}</td>"
-                     f"<td>{_e(rec.get('output'))}</td>"
-                     f"<td class=\"hash\">{_e(rec.get('output_sha256'))}</td>"
-                     f"<td class=\"hash\">{_e((rec.get('spillover_sha256') or '')[:12])}</td>"
-                     f"<td>{_e(rec.get('started'))}</td><td>{_e(rec.get('finished'))}</td>"
-                     f"<td>{_e(rec.get('host'))}</td></tr>")
+        lines.append(f"<tr><td>{escape(name)}</td><td>{escape(rec.get('input'))}</td>"
+                     f"<td class=\"hash\">{escape(rec.get('input_sha256'))}</td>"
+                     f"<td>{escape(rec.get('output'))}</td>"
+                     f"<td class=\"hash\">{escape(rec.get('output_sha256'))}</td>"
+                     f"<td class=\"hash\">{escape((rec.get('spillover_sha256') or '')[:12])}</td>"
+                     f"<td>{escape(rec.get('started'))}</td><td>{escape(rec.get('finished'))}</td>"
+                     f"<td>{escape(rec.get('host'))}</td></tr>")
     out.append(sortable_table("provenance-table", ["ROI", "input", "input sha256", "output",
                                                    "output sha256", "spillover used (sha256)",
                                                    "started", "finished", "host"], lines))
     if ctx["recipe_text"]:
-        out.append(f"<details><summary>Recipe used (recipe.toml)</summary><pre>{_e(ctx['recipe_text'])}"
+        out.append(f"<details><summary>Recipe used (recipe.toml)</summary><pre>{escape(ctx['recipe_text'])}"
                    "</pre></details>")
     out.append("</section>")
     return "\n".join(out)
 
 
-def _img(png: bytes, alt: str) -> str:
-    data = base64.b64encode(png).decode("ascii")
-    return f'<img class="plot" src="data:image/png;base64,{data}" alt="{_e(alt)}">'
-
-
-def _e(value) -> str:
-    return html.escape("" if value is None else str(value), quote=True)
 
 
 def _float(value):
@@ -601,4 +593,4 @@ def _num(value) -> str:
 
 
 def _chips(flags: Sequence[str]) -> str:
-    return "".join(f'<span class="chip {_e(f)}">{_e(f)}</span>' for f in flags) or "&ndash;"
+    return "".join(f'<span class="chip {escape(f)}">{escape(f)}</span>' for f in flags) or "&ndash;"

@@ -11,13 +11,13 @@ brighter.
 from __future__ import annotations
 
 import base64
-import html
 import math
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
 
+from .style import escape
 from .thumbnails import CONTRAST_PERCENTILES, downsample, png_grey, to_grey
 
 #: Pixels of all the tiles of a report together (about a byte each in the PNG, before
@@ -145,11 +145,11 @@ def contact_sheets(thumbs: Mapping[str, tuple[Sequence[str], np.ndarray]],
                 x, y = (k % cols) * size, (k // cols) * size
                 mark = marks.get((name, channel), "")
                 tiles.append(f'<i class="s{c}{" " + mark if mark else ""}" style="background-position:'
-                             f'-{x}px -{y}px" title="{_e(name)}" data-roi="{_e(name)}"></i>')
-            title = f"<h4>{_e(group)} <span>· {len(names)} ROI(s)</span></h4>" if group else ""
+                             f'-{x}px -{y}px" title="{escape(name)}" data-roi="{escape(name)}"></i>')
+            title = f"<h4>{escape(group)} <span>· {len(names)} ROI(s)</span></h4>" if group else ""
             body.append(f'<div class="group">{title}<div class="sheet">{"".join(tiles)}</div></div>')
         note = f"black {lo_hi[0]:.3g}, white {lo_hi[1]:.3g}"
-        parts.append(f'<details class="channel"{" open" if c == 0 else ""}><summary>{_e(channel)} '
+        parts.append(f'<details class="channel"{" open" if c == 0 else ""}><summary>{escape(channel)} '
                      f'<span class="note">({note})</span></summary>{"".join(body)}</details>')
     return f"<style>{''.join(style)}</style>" + "\n".join(parts)
 
@@ -177,9 +177,6 @@ def _sprite(channel, order, thumbs, size, cols, rows):
         sprite[y:y + grey.shape[0], x:x + grey.shape[1]] = grey
     return sprite, (lo, hi)
 
-
-def _e(value) -> str:
-    return html.escape("" if value is None else str(value), quote=True)
 
 
 def section_sheets(ctx, done, rows) -> str:
@@ -213,7 +210,7 @@ def section_sheets(ctx, done, rows) -> str:
                '<span class="chip outlier">outlier</span> red, <span class="chip empty">empty</span> '
                "purple, other flags amber. Click a channel to open it.</p>")
     if missing:
-        out.append(f'<p class="note">Not shown (file unreadable): {_e(", ".join(missing))}.</p>')
+        out.append(f'<p class="note">Not shown (file unreadable): {escape(", ".join(missing))}.</p>')
     out.append(contact_sheets(thumbs, grouped(done, ctx["samples"]), size, marks))
     out.append("</section>")
     return "\n".join(out)

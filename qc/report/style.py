@@ -62,3 +62,18 @@ details.channel { margin: 4px 0; } details.channel > summary { font-weight: 600;
 .sheet i.f { outline: 2px solid #e0a030; }
 footer { color: var(--muted); font-size: 12px; padding: 14px 28px; border-top: 1px solid var(--line); }
 """
+
+
+def escape(value) -> str:
+    """``value`` as HTML text (``None`` as empty), quotes escaped."""
+    import html
+
+    return html.escape("" if value is None else str(value), quote=True)
+
+
+def img_tag(png: bytes, alt: str) -> str:
+    """A PNG inlined as a data URI (the report opens offline)."""
+    import base64
+
+    data = base64.b64encode(png).decode("ascii")
+    return f'<img class="plot" src="data:image/png;base64,{data}" alt="{escape(alt)}">'

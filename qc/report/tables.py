@@ -8,9 +8,10 @@ script the tables read as plain HTML.
 
 from __future__ import annotations
 
-import html
 import math
 from collections.abc import Iterable, Mapping, Sequence
+
+from .style import escape
 
 #: The page's one script: sortable and filterable tables, and the load time on <body>.
 SCRIPT = """(function () {
@@ -67,11 +68,11 @@ def sortable_table(table_id: str, headers: Sequence[str], rows: Iterable[str], *
     """
     rows = list(rows)
     head = "".join(f"<th>{h}</th>" for h in headers)
-    return (f'<div class="filterbar"><input class="filter" type="search" data-table="{_e(table_id)}" '
-            f'placeholder="{_e(filter_hint)}" aria-label="{_e(filter_hint)}">'
+    return (f'<div class="filterbar"><input class="filter" type="search" data-table="{escape(table_id)}" '
+            f'placeholder="{escape(filter_hint)}" aria-label="{escape(filter_hint)}">'
             f'<span class="note">{len(rows)} row(s)</span></div>'
             f'<div class="{"scroll" if len(rows) > SCROLL_ROWS else "plain"}">'
-            f'<table class="sortable" id="{_e(table_id)}"><thead><tr>{head}</tr></thead>'
+            f'<table class="sortable" id="{escape(table_id)}"><thead><tr>{head}</tr></thead>'
             f'<tbody>{"".join(rows)}</tbody></table></div>')
 
 
@@ -89,8 +90,8 @@ def section_batches(batches: list[Mapping], samples: Mapping[str, Mapping], alph
     for row in samples.values():
         counts[row.get("batch", "")] = counts.get(row.get("batch", ""), 0) + 1
     out.append('<div class="tiles">' + "".join(
-        f'<div class="tile"><b>{n}</b>batch {_e(b)}</div>' for b, n in sorted(counts.items())) + "</div>")
-    metrics = ", ".join(f"{_e(k)} ({_e(v)})" for k, v in BATCH_METRICS.items())
+        f'<div class="tile"><b>{n}</b>batch {escape(b)}</div>' for b, n in sorted(counts.items())) + "</div>")
+    metrics = ", ".join(f"{escape(k)} ({escape(v)})" for k, v in BATCH_METRICS.items())
     out.append(
         '<p class="note">Per channel and stage, the batches are compared on each ROI\'s '
         f"{metrics} with the Kruskal&ndash;Wallis H test (Kruskal &amp; Wallis 1952; chi-squared "
@@ -106,20 +107,20 @@ def section_batches(batches: list[Mapping], samples: Mapping[str, Mapping], alph
         return "\n".join(out)
     differing = sorted({(d["channel"], d["stage"]) for d in batches if d["differs"]})
     if differing:
-        names = ", ".join(f"{_e(c)} ({_e(s)})" for c, s in differing)
+        names = ", ".join(f"{escape(c)} ({escape(s)})" for c, s in differing)
         out.append(f'<p><b>{len(differing)} channel &times; stage pair(s) differ between batches:'
                    f"</b> {names}.</p>")
     else:
         out.append("<p>No channel differs between batches beyond the thresholds.</p>")
     rows = []
     for d in batches:
-        medians = "; ".join(f"{_e(b)}: {_num(v)}" for b, v in d["medians"].items())
+        medians = "; ".join(f"{escape(b)}: {_num(v)}" for b, v in d["medians"].items())
         verdict = '<span class="chip batch-effect">batch-effect</span>' if d["differs"] else "&ndash;"
-        rows.append(f"<tr><td>{_e(d['channel'])}</td><td>{_e(d['stage'])}</td><td>{_e(d['metric'])}</td>"
+        rows.append(f"<tr><td>{escape(d['channel'])}</td><td>{escape(d['stage'])}</td><td>{escape(d['metric'])}</td>"
                     f"<td class=\"num\">{d['batches']}</td><td class=\"num\">{d['rois']}</td>"
                     f"<td class=\"num\">{_num(d['h'])}</td>"
                     f"<td class=\"num\" data-v=\"{d['p']:.6g}\">{d['p']:.2g}</td>"
-                    f"<td class=\"num\">{_num(d['fold'])}</td><td>{_e(d['high'])} / {_e(d['low'])}</td>"
+                    f"<td class=\"num\">{_num(d['fold'])}</td><td>{escape(d['high'])} / {escape(d['low'])}</td>"
                     f"<td>{medians}</td><td>{verdict}</td></tr>")
     out.append(sortable_table("batch-table", ["channel", "stage", "metric", "batches", "ROIs", "H",
                                               "p", "fold", "high / low", "batch medians", "verdict"],
@@ -127,9 +128,6 @@ def section_batches(batches: list[Mapping], samples: Mapping[str, Mapping], alph
     out.append("</section>")
     return "\n".join(out)
 
-
-def _e(value) -> str:
-    return html.escape("" if value is None else str(value), quote=True)
 
 
 def _num(value) -> str:
