@@ -158,9 +158,16 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
     if len(idx) == 1:  # one unknown: clip the unconstrained minimum
         coef[idx] = np.clip(h / g[0, 0], lo, hi) / scale
         return coef
-    chol = linalg.cholesky(g, lower=True)
-    rhs = linalg.solve_triangular(chol, h, lower=True)
-    result = optimize.lsq_linear(chol.T, rhs, bounds=(lo, hi), method="bvls")
+    try:
+        chol = linalg.cholesky(g, lower=True)
+        design, rhs = chol.T, linalg.solve_triangular(chol, h, lower=True)
+    except linalg.LinAlgError:
+        # G built from sums can come out very slightly indefinite (rounding): use its
+        # eigen-decomposition with the eigenvalues floored at the ridge instead
+        w, v = linalg.eigh((g + g.T) / 2)
+        root = np.sqrt(np.maximum(w, 1e-9))
+        design, rhs = (v * root).T, (v.T @ h) / root
+    result = optimize.lsq_linear(design, rhs, bounds=(lo, hi), method="bvls")
     coef[idx] = result.x / scale
     return coef
 
