@@ -208,8 +208,6 @@ class AuditWidget(StudioWidget):
     # ------------------------------------------------------------------ roles
 
     def _fill_roles(self, roi) -> None:
-        for box in self.role_boxes.values():
-            box.deleteLater()
         while self.roles_grid.count():
             item = self.roles_grid.takeAt(0)
             if item.widget() is not None:
