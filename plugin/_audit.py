@@ -1,8 +1,11 @@
 """Audit dock widget: a pair of exclusive markers overlaid (co-positive pixels highlighted),
-its audit raw vs washed, and the ROI's segmentation composite from a run folder.
+its audit raw vs washed, the ROI's segmentation composite from a run folder, and the
+segmentation roles: chosen per channel, previewed live, saved as a new stain sheet.
 
-Thin: the numbers and images come from :func:`plexwash.qc.audit.audit_pair` and the
-run's ``<roi>.composite.ome.tiff``; nothing is computed here.
+Thin: the numbers and images come from :func:`plexwash.qc.audit.audit_pair`,
+:func:`plexwash.qc.composite.build_composite` and the run's ``<roi>.composite.ome.tiff``;
+the sheet is written by :func:`plexwash.qc.files.write_atomic` after
+:func:`plexwash.qc.files.check_output`.
 """
 
 from __future__ import annotations
@@ -11,14 +14,42 @@ from pathlib import Path
 
 import numpy as np
 from napari.qt.threading import thread_worker
-from qtpy.QtWidgets import QComboBox, QGridLayout, QLabel, QPushButton
+from qtpy.QtWidgets import QComboBox, QGridLayout, QLabel, QPushButton, QWidget
 
-from ._common import StudioWidget
+from ._common import PathRow, StudioWidget
 
 #: Layer names and colours of the pair overlay and the composite.
 FIRST, SECOND, BOTH = "audit · first", "audit · second", "audit · co-positive"
 NUCLEAR, MEMBRANE = "composite · nuclear", "composite · membrane"
 COLOURS = {FIRST: "magenta", SECOND: "cyan", BOTH: "yellow", NUCLEAR: "blue", MEMBRANE: "green"}
+#: The role chooser's entries: (shown text, stain sheet value).
+ROLE_CHOICES = (("none", ""), ("nuclear", "nuclear"), ("membrane", "membrane"))
+PREVIEW_NOTE = ("preview: this ROI's pixels as loaded, each channel clipped at this ROI's own "
+                "percentiles; a run builds the composites from washed channels clipped at "
+                "cohort-wide percentiles")
+
+
+def sheet_with_roles(roi, roles):
+    """The stain sheet of ``roi`` (tags, markers, wash) with the segmentation ``roles``
+    (tag -> ``nuclear``, ``membrane`` or ``""``; tags not named keep no role)."""
+    from plexwash.qc.io import StainSheet
+
+    return StainSheet(tuple(roi.channels), tuple(roi.labels), tuple(roi.use),
+                      roles=tuple(roles.get(tag, "") for tag in roi.channels))
+
+
+def role_preview(planes, roles, composite) -> np.ndarray:
+    """The (2, Y, X) composite of one ROI, each channel clipped at its own percentiles.
+
+    ``planes``: tag -> image of every contributing channel; ``composite``: the recipe's
+    :class:`~plexwash.qc.composite.CompositeSettings` (percentiles and combining).
+    """
+    from plexwash.qc.composite import build_composite
+
+    low, high = composite.low_percentile, composite.high_percentile
+    percentiles = {tag: tuple(float(v) for v in np.percentile(planes[tag], [low, high]))
+                   for tag in roles}
+    return build_composite(planes, roles, percentiles, combine=composite.combine)
 
 
 def rows_text(rows) -> str:
@@ -67,12 +98,32 @@ class AuditWidget(StudioWidget):
         self.composite_button.setToolTip("the ROI's <roi>.composite.ome.tiff from the run folder")
         self.composite_button.clicked.connect(self.show_composite)
         layout.addWidget(self.composite_button)
+        layout.addWidget(self.caption("Roles"))
+        self.roles_panel = QWidget()
+        self.roles_grid = QGridLayout(self.roles_panel)
+        self.roles_grid.setContentsMargins(0, 0, 0, 0)
+        self.role_boxes: dict[str, QComboBox] = {}
+        layout.addWidget(self.roles_panel)
+        note = QLabel(PREVIEW_NOTE)
+        note.setObjectName("roles_note")
+        note.setWordWrap(True)
+        layout.addWidget(note)
+        self.stains_path = PathRow("new stains.csv", save=True, file_types="Stain sheet (*.csv)",
+                                   button="…")
+        layout.addWidget(self.stains_path)
+        self.save_button = QPushButton("Save stain sheet as…")
+        self.save_button.setToolTip("a new stain sheet with these roles (never over the cohort's "
+                                    "own stains.csv or another input)")
+        self.save_button.clicked.connect(lambda: self.save_stains(self.stains_path.path()))
+        layout.addWidget(self.save_button)
+        self._preview_token = 0
         self.finish_layout()
         self.state.roi_changed.connect(self._roi_changed)
         if self.state.roi is not None:
             self._roi_changed(self.state.roi)
 
     def _roi_changed(self, roi) -> None:
+        self._fill_roles(roi)
         for box in (self.first, self.second):
             box.clear()
             if roi is not None:
@@ -153,3 +204,93 @@ class AuditWidget(StudioWidget):
             layer.contrast_limits = contrast
         else:
             layer.reset_contrast_limits()
+
+    # ------------------------------------------------------------------ roles
+
+    def _fill_roles(self, roi) -> None:
+        while self.roles_grid.count():
+            item = self.roles_grid.takeAt(0)
+            if item.widget() is not None:
+                item.widget().deleteLater()
+        self.role_boxes = {}
+        if roi is None:
+            return
+        washed = [(tag, label, role) for tag, label, use, role
+                  in zip(roi.channels, roi.labels, roi.use, roi.roles, strict=True) if use]
+        for row, (tag, label, role) in enumerate(washed):
+            box = QComboBox()
+            box.setObjectName(f"role_{tag}")
+            for text, value in ROLE_CHOICES:
+                box.addItem(text, value)
+            box.setCurrentIndex([value for _t, value in ROLE_CHOICES].index(role))
+            box.currentIndexChanged.connect(lambda _i: self.preview_roles())
+            self.roles_grid.addWidget(QLabel(label if label == tag else f"{label} ({tag})"), row, 0)
+            self.roles_grid.addWidget(box, row, 1)
+            self.role_boxes[tag] = box
+
+    def roles(self) -> dict[str, str]:
+        """The chosen role of each washed channel (tag -> ``nuclear``, ``membrane`` or ``""``)."""
+        return {tag: box.currentData() for tag, box in self.role_boxes.items()}
+
+    def set_role(self, tag: str, role: str) -> None:
+        """Choose ``role`` for the channel ``tag`` (as a click in its chooser does)."""
+        box = self.role_boxes[tag]
+        box.setCurrentIndex(box.findData(role))
+
+    def _complete_roles(self) -> dict[str, str] | None:
+        """The chosen roles when both composites have a channel, else None (said)."""
+        chosen = {tag: role for tag, role in self.roles().items() if role}
+        missing = [role for _t, role in ROLE_CHOICES[1:] if role not in chosen.values()]
+        if missing:
+            self.say(f"choose at least one {' and one '.join(missing)} channel", warn=True)
+            return None
+        return chosen
+
+    def preview_roles(self):
+        """Preview the composite of the chosen roles on the current ROI in the background;
+        returns the worker (None when the roles are incomplete)."""
+        roi = self.state.roi
+        chosen = self._complete_roles() if roi is not None else None
+        if chosen is None:
+            return None
+        self._preview_token += 1
+        token, state, settings = self._preview_token, self.state, self.state.recipe.composite
+
+        @thread_worker
+        def job():
+            return role_preview({tag: state.plane(tag) for tag in chosen}, chosen, settings)
+
+        def shown(data):
+            if token != self._preview_token or roi is not self.state.roi:
+                return  # a later choice or another ROI won
+            self._put(NUCLEAR, data[0], contrast=(0.0, 1.0))
+            self._put(MEMBRANE, data[1], contrast=(0.0, 1.0))
+            self.say(f"composite preview of {roi.name} (this ROI's percentiles)")
+
+        return self.start(job(), on_return=shown)
+
+    def save_stains(self, path) -> Path | None:
+        """Write a new stain sheet with the chosen roles at ``path``; None when refused."""
+        from plexwash.qc.errors import InputError, OutputError
+        from plexwash.qc.files import check_output, write_atomic
+        from plexwash.qc.io import stains_text
+
+        roi = self.state.roi
+        if roi is None:
+            self.say("load an ROI in the Cohort widget first", warn=True)
+            return None
+        if path is None:
+            self.say("choose where to save the stain sheet", warn=True)
+            return None
+        if self._complete_roles() is None:
+            return None
+        path = Path(path)
+        try:  # never over the cohort's stain sheet, an ROI, or a file plexwash did not write
+            check_output(path, self.state.inputs(roi.path), kind="csv")
+            write_atomic(path, stains_text(sheet_with_roles(roi, self.roles())))
+        except (InputError, OutputError) as exc:
+            self.fail(exc)
+            return None
+        self.stains_path.set_path(path)
+        self.say(f"stain sheet saved: {path} (use it for the run)")
+        return path

@@ -46,6 +46,7 @@ from ._layers import (
 from ._mask import hide_tissue, outline_tissue, roi_tissue, tissue_share
 from ._quality import measure_rows
 from ._reader import read_with_stains
+from ._roi_list import ALL_BATCHES, flag_choices, refill, roi_entries, row_shown
 
 VIEWS = ("single", "grid", "overlay", "preview")
 LOOKS = ("hues", "grey", "one hue")
@@ -157,11 +158,13 @@ class CohortWidget(StudioWidget):
         self.run_folder.changed.connect(lambda text: self.use_run_folder(text or None))
         layout.addWidget(self.run_folder)
 
-        self.table = QTableWidget(0, 3)
+        self.table = QTableWidget(0, 4)
         self.table.setObjectName("roi_table")
-        self.table.setHorizontalHeaderLabels(["ROI", "raw flags", "washed flags"])
+        self.table.setHorizontalHeaderLabels(["ROI", "raw flags", "washed flags", "batch"])
+        self.table.horizontalHeaderItem(0).setToolTip("the ROI's path in the cohort folder")
         self.table.horizontalHeaderItem(1).setToolTip("inspect-style quality of the raw ROI")
         self.table.horizontalHeaderItem(2).setToolTip("from the run's quality.csv, when one is chosen")
+        self.table.horizontalHeaderItem(3).setToolTip("from the cohort's samples.csv, when it has one")
         self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
         self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
         self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
@@ -170,12 +173,26 @@ class CohortWidget(StudioWidget):
         header.setSectionResizeMode(0, QHeaderView.ResizeMode.ResizeToContents)
         header.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
         header.setSectionResizeMode(2, QHeaderView.ResizeMode.Stretch)
+        header.setSectionResizeMode(3, QHeaderView.ResizeMode.ResizeToContents)
         row_height = self.fontMetrics().height() + 8
         self.table.verticalHeader().setDefaultSectionSize(row_height)
         # the dock scrolls rather than squeezing the lists: at least 5 ROIs and 10 channels show
         self.table.setMinimumHeight(6 * row_height + 4)
         self.table.cellClicked.connect(lambda row, _col: self.load(row))
         layout.addWidget(self.table, 1)
+        filters = QHBoxLayout()
+        filters.addWidget(QLabel("show"))
+        self.batch_filter, self.flag_filter = QComboBox(), QComboBox()
+        self.batch_filter.setObjectName("batch_filter")
+        self.batch_filter.setToolTip("only the ROIs of one batch (samples.csv)")
+        self.flag_filter.setObjectName("flag_filter")
+        self.flag_filter.setToolTip("only the ROIs with a flag (raw or washed), without one, or with one flag")
+        self.batch_filter.addItem(ALL_BATCHES)
+        self.flag_filter.addItems(flag_choices([]))
+        for box in (self.batch_filter, self.flag_filter):
+            box.currentTextChanged.connect(lambda _t: self.apply_filters())
+            filters.addWidget(box, 1)
+        layout.addLayout(filters)
 
         layout.addWidget(self.caption("Channels"))
         self.channels = QListWidget()
@@ -252,22 +269,25 @@ class CohortWidget(StudioWidget):
         self.folder.set_path(folder)
         self.state.set_cohort(folder, rois)
         self.table.setRowCount(len(rois))
-        from plexwash.qc.io import roi_stem
-
+        entries, problem = roi_entries(folder, rois)
         own_table = folder / "quality.csv"
-        for r, path in enumerate(rois):
-            item = QTableWidgetItem(roi_stem(path))
+        for r, (rid, path, batch) in enumerate(entries):
+            item = QTableWidgetItem(rid)
             item.setData(Qt.ItemDataRole.UserRole, str(path))
+            item.setToolTip(str(path))
             self.table.setItem(r, 0, item)
             self.table.setItem(r, 1, QTableWidgetItem("—" if own_table.is_file() else "measuring…"))
             self.table.setItem(r, 2, QTableWidgetItem("—"))
+            self.table.setItem(r, 3, QTableWidgetItem(batch))
+        self._fill_filters(sorted({batch for _r, _p, batch in entries if batch}))
         if own_table.is_file():  # a run's output folder opened as a cohort: its ROIs are washed
             self.use_run_folder(folder)  # the run's own table, raw and washed; nothing re-measured
             self.say(f"{len(rois)} washed ROIs in {folder}: flags from its quality.csv")
             return None
         if self.state.run_dir is not None:
             self.use_run_folder(self.state.run_dir)
-        self.say(f"{len(rois)} ROIs in {folder}")
+        self.say(f"{len(rois)} ROIs in {folder}" + (f" (no batches: {problem})" if problem else ""),
+                 warn=problem is not None)
         return self._measure_flags(rois)
 
     def _measure_flags(self, rois):
@@ -281,9 +301,9 @@ class CohortWidget(StudioWidget):
                 try:
                     roi = read_with_stains(path)
                 except Exception as exc:  # one bad ROI must not stop the others
-                    yield path, exc
+                    yield path, path, exc
                     continue
-                yield roi.name, measure_rows(roi, recipe, spillover=spillover)
+                yield path, roi.name, measure_rows(roi, recipe, spillover=spillover)
 
         from plexwash.qc.io import roi_stem
 
@@ -299,19 +319,19 @@ class CohortWidget(StudioWidget):
             self.state.pending_quality = set()
 
     def _flags_arrived(self, result):
-        name, rows = result
+        path, name, rows = result
+        row = self._row_of_path(path)
         if isinstance(rows, Exception):
             from plexwash.qc.io import roi_stem
 
-            row = self._row_of(roi_stem(name))
             if row is not None:
                 self.table.setItem(row, 1, QTableWidgetItem(f"unreadable: {rows}"))
             self.state.pending_quality.discard(roi_stem(name))
             return
         self.state.set_quality(name, rows)
-        row = self._row_of(name)
         if row is not None:
             self._set_flag_cell(row, 1, rows)
+            self._fill_filters()
 
     def use_run_folder(self, folder):
         """Show washed flags from ``<folder>/quality.csv`` (raw ones too when it holds them)."""
@@ -335,11 +355,18 @@ class CohortWidget(StudioWidget):
                 self._set_flag_cell(row, 2, stages["washed"])
             if "raw" in stages and (own or self.table.item(row, 1).text() == "measuring…"):
                 self._set_flag_cell(row, 1, stages["raw"])
+        self._fill_filters()
         self.state.run_quality_changed.emit(folder)
 
     def _row_of(self, name: str):
         for r in range(self.table.rowCount()):
             if self.table.item(r, 0).text() == name:
+                return r
+        return None
+
+    def _row_of_path(self, path):
+        for r in range(self.table.rowCount()):
+            if self.table.item(r, 0).data(Qt.ItemDataRole.UserRole) == str(path):
                 return r
         return None
 
@@ -350,6 +377,30 @@ class CohortWidget(StudioWidget):
         if text not in ("ok", ""):
             item.setForeground(qcolor(WARN))
         self.table.setItem(row, column, item)
+
+    def _cells(self, row: int, *columns: int) -> list[str]:
+        return [item.text() if (item := self.table.item(row, c)) is not None else "" for c in columns]
+
+    def _fill_filters(self, batches=None) -> None:
+        """Refill the flag filter from the flags shown (and the batch filter from ``batches``),
+        keeping the choices that still exist, then hide the rows they leave out."""
+        boxes = [(self.flag_filter, flag_choices(
+            [t for r in range(self.table.rowCount()) for t in self._cells(r, 1, 2)]))]
+        if batches is not None:
+            boxes.append((self.batch_filter, [ALL_BATCHES, *batches]))
+        for box, entries in boxes:
+            refill(box, entries)
+        self.apply_filters()
+
+    def apply_filters(self) -> int:
+        """Hide the ROI rows the batch and flag filters leave out; returns how many show."""
+        batch, flag = self.batch_filter.currentText(), self.flag_filter.currentText()
+        shown = 0
+        for r in range(self.table.rowCount()):
+            keep = row_shown(*self._cells(r, 3), self._cells(r, 1, 2), batch, flag)
+            self.table.setRowHidden(r, not keep)
+            shown += keep
+        return shown
 
     # ------------------------------------------------------------------ ROI
 

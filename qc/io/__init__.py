@@ -28,7 +28,7 @@ from .cohort import (
 from .hashing import canonical_json, file_stamp, sha256_path
 from .roi import SUPPORTED_DTYPES, Roi, read_levels, read_roi, write_stack
 from .samples import SampleSheet, find_samples, match_samples, read_samples
-from .stains import StainSheet, read_csv_cells, read_stains, refuse_duplicates
+from .stains import StainSheet, read_csv_cells, read_stains, refuse_duplicates, stains_text
 from .tiff import write_ome_tiff
 from .zarr import ngff_metadata, write_ome_zarr
 
@@ -51,6 +51,7 @@ __all__ = [
     "read_csv_cells",
     "read_levels",
     "read_stains",
+    "stains_text",
     "read_roi",
     "read_samples",
     "refuse_duplicates",

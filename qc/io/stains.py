@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import dataclasses
+import io
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -67,6 +68,26 @@ def read_stains(path: str | Path) -> StainSheet:
         roles.append(role)
     refuse_duplicates(path, channels, "tag")
     return StainSheet(tuple(channels), tuple(labels), tuple(use), path, tuple(roles))
+
+
+def stains_text(sheet: StainSheet) -> str:
+    """A stain sheet as ``stains.csv`` text (the ``role`` column only when a role is set).
+
+    Examples
+    --------
+    >>> print(stains_text(StainSheet(("Ir191", "Nd145"), ("DNA", "CD45"), (True, True),
+    ...                              roles=("nuclear", "membrane"))), end="")
+    tag,marker,wash,role
+    Ir191,DNA,yes,nuclear
+    Nd145,CD45,yes,membrane
+    """
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    with_roles = any(sheet.roles)
+    writer.writerow(["tag", "marker", "wash"] + (["role"] if with_roles else []))
+    for tag, marker, wash, role in zip(sheet.tags, sheet.markers, sheet.wash, sheet.roles, strict=True):
+        writer.writerow([tag, marker, "yes" if wash else "no"] + ([role] if with_roles else []))
+    return buffer.getvalue()
 
 
 def read_csv_cells(path: Path) -> list[tuple[int, list[str]]]:

@@ -198,17 +198,9 @@ def _spillover_matrix(spillover, recipe):
 
 
 def _stains_csv(stains) -> str:
-    import csv
-    import io
+    from ..io.stains import stains_text
 
-    buffer = io.StringIO()
-    writer = csv.writer(buffer, lineterminator="\n")
-    with_roles = any(stains.roles)
-    writer.writerow(["tag", "marker", "wash"] + (["role"] if with_roles else []))
-    for tag, marker, wash, role in zip(stains.tags, stains.markers, stains.wash, stains.roles,
-                                       strict=True):
-        writer.writerow([tag, marker, "yes" if wash else "no"] + ([role] if with_roles else []))
-    return buffer.getvalue()
+    return stains_text(stains)
 
 
 def plan_jobs(plan: Plan, log, *, staging_dir=None, verify: bool = False) -> tuple[list[Job], list[str]]:
