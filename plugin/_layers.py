@@ -300,6 +300,8 @@ def keep_for_good(viewer) -> None:
 TILE_GAP = 0.05
 #: Name of the layer that labels and frames the tiles (not a studio layer: no metadata).
 LABELS_LAYER = "plexwash labels"
+#: Name of the layer that shows the grid view's tiles as one picture (not a studio layer).
+GRID_LAYER = "plexwash grid"
 
 
 def roi_extent(roi) -> tuple[float, float]:
@@ -370,6 +372,124 @@ def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) ->
                           blending="translucent_no_depth")
         viewer.layers.selection.active = active  # the labels never take the layer controls
         keep_for_good(viewer)
+
+
+#: The grid's tiles together span at most about this many pixels across (one screen): each
+#: tile is the channel block-averaged by the smallest whole factor that fits.
+GRID_SPAN = 1600
+
+
+def tile_factor(n: int, shape: tuple[int, int], span: int = GRID_SPAN) -> int:
+    """Block size that shrinks ``n`` tiles of ``shape`` (Y, X) to about one screen across.
+
+    Examples
+    --------
+    >>> tile_factor(36, (1000, 1000)), tile_factor(22, (320, 320)), tile_factor(1, (300, 500))
+    (4, 1, 1)
+    """
+    columns = len({x for _, x in tile_origins(n, (float(shape[0]), float(shape[1])))}) if n else 1
+    return max(1, -(-columns * int(shape[1]) // span))
+
+
+def block_mean(image, factor: int) -> np.ndarray:
+    """Mean of each ``factor`` x ``factor`` block of a 2-D image (float32); edges padded by repeating
+    the last row and column, so the blocks cover the whole image.
+
+    Examples
+    --------
+    >>> block_mean(np.arange(16.0).reshape(4, 4), 2)
+    array([[ 2.5,  4.5],
+           [10.5, 12.5]], dtype=float32)
+    >>> block_mean(np.ones((3, 5)), 2).shape
+    (2, 3)
+    """
+    image = np.asarray(image, dtype=np.float32)
+    if factor <= 1:
+        return image
+    n_y, n_x = image.shape
+    pad = ((0, -n_y % factor), (0, -n_x % factor))
+    if any(after for _, after in pad):
+        image = np.pad(image, pad, mode="edge")
+    blocks = image.reshape(image.shape[0] // factor, factor, image.shape[1] // factor, factor)
+    return blocks.mean(axis=(1, 3), dtype=np.float32)
+
+
+def grid_tiles(roi) -> tuple[list[np.ndarray], int]:
+    """Every channel of an ROI block-averaged for the grid view, and the block size used.
+
+    Thirty-six full-size textures make the grid freeze the window for seconds; tiles of about
+    a screen's resolution in all show the same picture. Runs in the load worker.
+    """
+    factor = tile_factor(len(roi.channels), roi.shape[1:])
+    return [block_mean(roi.data[i], factor) for i in range(len(roi.channels))], factor
+
+
+def tile_offset(factor: int, pixel_size) -> tuple[float, float]:
+    """Shift of a tile layer so that its blocks cover the pixels they average (pixel centres
+    of a napari layer sit on its translate)."""
+    size = pixel_size or (1.0, 1.0)
+    return tuple(0.5 * (factor - 1) * float(s) for s in size)
+
+
+def grid_mosaic(tiles, corners, factor: int, limits, colours) -> np.ndarray:
+    """One RGB picture of the whole grid (uint8, black gaps): tile ``k`` at world corner
+    ``corners[k]``, scaled to 0-1 by ``limits[k]`` and drawn in ``colours[k]`` (RGB, 0-1), as a
+    layer with that contrast and a black-to-hue colormap would draw it.
+
+    One texture instead of one layer per channel: showing, placing and uploading 36 layers
+    froze the window for seconds. ``corners`` are in full-size pixels (world units divided
+    by the pixel size); ``factor`` is the tiles' block size.
+
+    Examples
+    --------
+    >>> tiles = [np.array([[0.0, 10.0]]), np.array([[5.0, 5.0]])]
+    >>> grid_mosaic(tiles, [(0, 0), (0, 3)], 1, [(0, 10), (0, 10)], [(1, 0, 0), (0, 1, 0)])[..., :2]
+    array([[[  0,   0],
+            [255,   0],
+            [  0,   0],
+            [  0, 128],
+            [  0, 128]]], dtype=uint8)
+    """
+    origins = [(int(round(y / factor)), int(round(x / factor))) for y, x in corners]
+    n_y = max(oy + t.shape[0] for (oy, _), t in zip(origins, tiles, strict=True))
+    n_x = max(ox + t.shape[1] for (_, ox), t in zip(origins, tiles, strict=True))
+    out = np.zeros((n_y, n_x, 3), np.uint8)
+    for (oy, ox), tile, (lo, hi), colour in zip(origins, tiles, limits, colours, strict=True):
+        level = (np.asarray(tile, np.float32) - np.float32(lo)) * np.float32(1.0 / max(hi - lo, 1e-12))
+        np.clip(level, 0.0, 1.0, out=level)
+        window = out[oy:oy + tile.shape[0], ox:ox + tile.shape[1]]
+        for c in range(3):
+            window[..., c] = np.rint(level * np.float32(255.0 * colour[c]))
+    return out
+
+
+def show_mosaic(viewer, rgb: np.ndarray, scale, translate) -> None:
+    """Show the grid's RGB picture in one kept layer (made once, data swapped; not a studio layer)."""
+    scale = tuple(float(v) for v in scale)
+    translate = tuple(float(v) for v in translate)
+    if GRID_LAYER in viewer.layers:
+        layer = viewer.layers[GRID_LAYER]
+        if not layer.visible:  # first: a hidden layer's extent is not renewed with its data
+            layer.visible = True
+        if tuple(layer.scale) != scale:
+            layer.scale = scale
+        if tuple(layer.translate) != translate:
+            layer.translate = translate
+        if layer.data is not rgb:
+            layer.data = rgb
+        return
+    active = viewer.layers.selection.active
+    viewer.add_image(rgb, rgb=True, name=GRID_LAYER, scale=scale, translate=translate, contrast_limits=(0, 255),
+                     blending="translucent_no_depth")
+    if LABELS_LAYER in viewer.layers:  # frames and names above the picture
+        viewer.layers.move(viewer.layers.index(LABELS_LAYER), len(viewer.layers))
+    viewer.layers.selection.active = active  # the picture never takes the layer controls
+    keep_for_good(viewer)
+
+
+def hide_mosaic(viewer) -> None:
+    if GRID_LAYER in viewer.layers and viewer.layers[GRID_LAYER].visible:
+        viewer.layers[GRID_LAYER].visible = False
 
 
 def hide_labels(viewer) -> None:

@@ -23,7 +23,15 @@ from qtpy.QtWidgets import (
 )
 
 from ._common import PathRow, SettingsForm, StudioWidget
-from ._layers import TILE_GAP, channel_layer, keep_for_good, roi_extent, studio_layers, swap_layer
+from ._layers import (
+    LABELS_LAYER,
+    TILE_GAP,
+    channel_layer,
+    keep_for_good,
+    roi_extent,
+    studio_layers,
+    swap_layer,
+)
 from ._preview import LatestOnly
 
 
@@ -423,7 +431,9 @@ class SpeckleWidget(StudioWidget):
         return self.engine.compute(roi, recipe, channel, spillover=spillover)
 
     def _deliver(self, result: ChannelPreview) -> None:
-        """Swap the preview into the two kept preview layers (made once, never removed)."""
+        """Swap the preview into the two kept preview layers (made once, never removed), when
+        the Preview view shows them (or the first time, to make them): swapping data into
+        hidden layers on every channel click only cost the window time."""
         roi = self.state.roi
         if not self.alive() or roi is None or result.channel not in roi.channels:
             return
@@ -432,6 +442,10 @@ class SpeckleWidget(StudioWidget):
         if not raw:
             return  # the ROI's layers are gone (or the viewer is closing): nothing to preview beside
         self.last = result
+        made_once = all(len(studio_layers(self.viewer, stage=stage)) == 1 for stage in ("washed", "removed"))
+        if self.state.view != "preview" and made_once:  # hidden panels: only the numbers now;
+            self._show_fractions(result)  # choosing the Preview view asks for a fresh preview
+            return
         limits = tuple(raw[0].contrast_limits)
         removed, removed_limits, removed_name = self._removed_view(result)
         step = roi_extent(roi)[1] * (1 + TILE_GAP)  # beside the raw channel: raw | washed | removed
@@ -453,6 +467,8 @@ class SpeckleWidget(StudioWidget):
         if made:  # the first preview of the session: both layers at once, on top
             active = self.viewer.layers.selection.active
             self.viewer.layers.extend(made)
+            if LABELS_LAYER in self.viewer.layers:  # panel names and frames stay on top
+                self.viewer.layers.move(self.viewer.layers.index(LABELS_LAYER), len(self.viewer.layers))
             if active is not None:  # the raw channel stays the active layer (contrast controls)
                 self.viewer.layers.selection.active = active
             keep_for_good(self.viewer)

@@ -25,6 +25,7 @@ from ._layers import (
     find_stains,
     fit_visible,
     grid_of,
+    hide_mosaic,
     keep_for_good,
     robust_limits,
     studio_layers,
@@ -544,6 +545,7 @@ class SpilloverWidget(StudioWidget):
             self._swaps.remove(job)
             swap_layer(*job[1:])
         grid_of(self.viewer).enabled = False
+        hide_mosaic(self.viewer)  # the Cohort grid's picture, if shown
         with self.viewer.layers.batched_update():  # one scene-graph update, not one per layer
             for layer in studio_layers(self.viewer):
                 meta = layer.metadata["plexwash"]

@@ -48,6 +48,23 @@ def test_robust_limits_subsample_big_images_and_never_collapse():
         _layers.robust_limits(image, low=60, high=40)
 
 
+def test_grid_tiles_are_block_means_that_keep_the_channel_size():
+    rng = np.random.default_rng(5)
+    image = rng.poisson(3.0, size=(103, 98)).astype(np.uint16)
+    tile = _layers.block_mean(image, 4)
+    assert tile.shape == (26, 25) and tile.dtype == np.float32
+    # reference: skimage.transform.downscale_local_mean (block mean), edges padded by repetition
+    from skimage.transform import downscale_local_mean
+
+    padded = np.pad(image.astype(np.float64), ((0, 1), (0, 2)), mode="edge")
+    np.testing.assert_allclose(tile, downscale_local_mean(padded, (4, 4)), rtol=1e-6)
+    assert _layers.block_mean(image, 1).shape == image.shape
+    # 36 channels of 1000 px tile about one 1600 px screen across: 6 columns of 250 px
+    assert _layers.tile_factor(36, (1000, 1000)) == 4 and _layers.tile_factor(22, (320, 320)) == 1
+    # a tile of block size 4 (pixel 0.5 um) starts where the channel starts: centre of block 0 at 1.5 px
+    assert _layers.tile_offset(4, (0.5, 0.5)) == (0.75, 0.75)
+
+
 def test_palette_hues_are_distinct_and_cycle():
     tops = [tuple(np.round(_layers.colormap_for(i).colors[-1], 3)) for i in range(len(_layers.PALETTE))]
     assert len(set(tops)) == len(_layers.PALETTE)

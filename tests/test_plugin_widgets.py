@@ -86,13 +86,28 @@ def test_cohort_lists_flags_loads_and_views(make_napari_viewer, qtbot, cohort):
         assert layer.blending == "additive"
 
     widget.set_view("grid")
-    assert all(layer.visible for layer in raw)  # tiled side by side, each framed and labelled
-    corners = {tuple(layer.translate) for layer in raw}
-    assert len(corners) == len(raw)
+    # tiled side by side, each framed and labelled, in one picture (one texture, not one layer per
+    # channel); the channel layers themselves stay full size and hidden until the one view
+    assert not any(layer.visible for layer in raw)
+    picture = viewer.layers["plexwash grid"]
+    assert picture.visible and picture.rgb
     labels = viewer.layers["plexwash labels"]
     assert labels.visible and list(labels.features["label"]) == list(roi.labels)
+    boxes = [np.asarray(box) for box in labels.data]
+    assert len({tuple(box[0]) for box in boxes}) == len(raw)
+    for box, layer, colour in zip(boxes, raw, (layer.colormap.colors[-1][:3] for layer in raw), strict=True):
+        # each tile, in the picture's pixels: the channel scaled by its contrast, in its hue (this
+        # cohort is small enough for full-size tiles); a colormap black -> hue is linear (napari)
+        (y0, x0) = (int(round(v)) for v in box[0] / np.asarray(picture.scale))
+        n_y, n_x = layer.data.shape
+        tile = picture.data[y0:y0 + n_y, x0:x0 + n_x].astype(float)
+        lo, hi = layer.contrast_limits
+        level = np.clip((np.asarray(layer.data, float) - lo) / (hi - lo), 0, 1)
+        np.testing.assert_allclose(tile, 255 * level[..., None] * np.asarray(colour)[None, None], atol=0.51)
     widget.look.setCurrentText("grey")
-    assert {layer.colormap.name for layer in raw} == {"plexwash grey"}
+    grey = viewer.layers["plexwash grid"].data
+    assert np.array_equal(grey[..., 0], grey[..., 1]) and np.array_equal(grey[..., 1], grey[..., 2])
+    assert grey.max() > 0
     widget.look.setCurrentText("hues")
     chosen = [roi.channels[1], roi.channels[4], roi.channels[6]]
     widget.set_ticked(chosen)
@@ -262,7 +277,8 @@ def test_speckle_preview_is_the_wash_for_non_default_recipes(make_napari_viewer,
 
     viewer = make_napari_viewer()
     speckle = dock(viewer, "Speckle")
-    open_first_roi(qtbot, viewer, cohort)
+    # the Preview view: its layers get each new preview (hidden ones wait until it is shown)
+    open_first_roi(qtbot, viewer, cohort).set_view("preview")
     wait_preview(qtbot, speckle)
     roi = speckle.state.roi
     matrix = estimate_from_controls(cohort / "controls" / "controls.csv")
