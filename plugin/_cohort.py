@@ -53,56 +53,21 @@ from ._layers import (
 from ._mask import hide_tissue, outline_tissue, roi_tissue, tissue_share
 from ._quality import measure_rows
 from ._reader import read_with_stains
-from ._roi_list import ALL_BATCHES, flag_choices, refill, roi_entries, row_shown
+from ._roi_list import (
+    ALL_BATCHES,
+    flag_choices,
+    read_quality_table,
+    refill,
+    roi_entries,
+    row_shown,
+    summarize_flags,
+)
 
 VIEWS = ("single", "grid", "overlay", "preview")
 LOOKS = ("hues", "grey", "one hue")
 
 
 # --------------------------------------------------------------------------- plain functions
-
-
-def read_quality_table(path) -> dict[str, dict[str, list[dict]]]:
-    """Rows of a run's ``quality.csv`` grouped as ``{roi: {stage: [row, ...]}}`` (flags as lists)."""
-    from plexwash.qc.run import read_quality_csv
-
-    out: dict[str, dict[str, list[dict]]] = {}
-    for row in read_quality_csv(path):
-        out.setdefault(row["roi"], {}).setdefault(row.get("stage") or "raw", []).append(row)
-    return out
-
-
-def summarize_flags(rows: list[dict]) -> str:
-    """One line for an ROI's flags: ROI-level flags, then each channel flag with its channels.
-
-    Examples
-    --------
-    >>> rows = [{"channel": "A", "flags": ["empty", "striped"]},
-    ...         {"channel": "B", "flags": ["striped"]}, {"channel": "C", "flags": ["striped"]}]
-    >>> summarize_flags(rows)
-    'striped · empty: A'
-    >>> summarize_flags([{"channel": "A", "flags": []}])
-    'ok'
-    """
-    if not rows:
-        return ""
-    everywhere = set(rows[0]["flags"])
-    for row in rows[1:]:
-        everywhere &= set(row["flags"])
-    if len(rows) == 1:
-        from plexwash.qc.quality import ROI_FLAGS
-
-        everywhere &= set(ROI_FLAGS)
-    per_flag: dict[str, list[str]] = {}
-    for row in rows:
-        for flag in row["flags"]:
-            if flag not in everywhere:
-                per_flag.setdefault(flag, []).append(str(row.get("label") or row["channel"]))
-    parts = sorted(everywhere)
-    for flag, channels in per_flag.items():
-        shown = ", ".join(channels[:3]) + (f" +{len(channels) - 3}" if len(channels) > 3 else "")
-        parts.append(f"{flag}: {shown}")
-    return " · ".join(parts) if parts else "ok"
 
 
 def overlay_hues(ticked: list[str], marker_index: dict[str, int]) -> dict[str, int]:

@@ -1,5 +1,6 @@
 """The Cohort widget's ROI list: ROI ids (paths relative to the cohort), batches from the
-cohort's sample sheet, and the batch and flag filters. Plain functions (no Qt import)."""
+cohort's sample sheet, and the batch and flag filters. Plain functions (no Qt import), the
+run's quality table read per ROI and stage, and an ROI's flags summed up in one line."""
 
 from __future__ import annotations
 
@@ -36,7 +37,7 @@ def roi_entries(folder, rois) -> tuple[list[tuple[str, Path, str]], str | None]:
 
 
 def flag_names(text: str) -> set[str]:
-    """The flags named in a flag cell (:func:`plexwash.plugin._cohort.summarize_flags` text).
+    """The flags named in a flag cell (:func:`summarize_flags` text).
 
     Examples
     --------
@@ -97,3 +98,46 @@ def refill(box, entries: list[str]) -> None:
     box.addItems(entries)
     box.setCurrentIndex(max(box.findText(chosen), 0))
     box.blockSignals(False)
+
+
+def read_quality_table(path) -> dict[str, dict[str, list[dict]]]:
+    """Rows of a run's ``quality.csv`` grouped as ``{roi: {stage: [row, ...]}}`` (flags as lists)."""
+    from plexwash.qc.run import read_quality_csv
+
+    out: dict[str, dict[str, list[dict]]] = {}
+    for row in read_quality_csv(path):
+        out.setdefault(row["roi"], {}).setdefault(row.get("stage") or "raw", []).append(row)
+    return out
+
+
+def summarize_flags(rows: list[dict]) -> str:
+    """One line for an ROI's flags: ROI-level flags, then each channel flag with its channels.
+
+    Examples
+    --------
+    >>> rows = [{"channel": "A", "flags": ["empty", "striped"]},
+    ...         {"channel": "B", "flags": ["striped"]}, {"channel": "C", "flags": ["striped"]}]
+    >>> summarize_flags(rows)
+    'striped · empty: A'
+    >>> summarize_flags([{"channel": "A", "flags": []}])
+    'ok'
+    """
+    if not rows:
+        return ""
+    everywhere = set(rows[0]["flags"])
+    for row in rows[1:]:
+        everywhere &= set(row["flags"])
+    if len(rows) == 1:
+        from plexwash.qc.quality import ROI_FLAGS
+
+        everywhere &= set(ROI_FLAGS)
+    per_flag: dict[str, list[str]] = {}
+    for row in rows:
+        for flag in row["flags"]:
+            if flag not in everywhere:
+                per_flag.setdefault(flag, []).append(str(row.get("label") or row["channel"]))
+    parts = sorted(everywhere)
+    for flag, channels in per_flag.items():
+        shown = ", ".join(channels[:3]) + (f" +{len(channels) - 3}" if len(channels) > 3 else "")
+        parts.append(f"{flag}: {shown}")
+    return " · ".join(parts) if parts else "ok"
