@@ -68,8 +68,8 @@ def sortable_table(table_id: str, headers: Sequence[str], rows: Iterable[str], *
     """
     rows = list(rows)
     head = "".join(f"<th>{h}</th>" for h in headers)
-    return (f'<div class="filterbar"><input class="filter" type="search" data-table="{escape(table_id)}" '
-            f'placeholder="{escape(filter_hint)}" aria-label="{escape(filter_hint)}">'
+    return (f'<div class="filterbar"><label>{escape(filter_hint)} <input class="filter" type="search" '
+            f'data-table="{escape(table_id)}" title="{escape(filter_hint)}"></label>'
             f'<span class="note">{len(rows)} row(s)</span></div>'
             f'<div class="{"scroll" if len(rows) > SCROLL_ROWS else "plain"}">'
             f'<table class="sortable" id="{escape(table_id)}"><thead><tr>{head}</tr></thead>'
