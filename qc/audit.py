@@ -58,7 +58,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
-from .files import read_csv_dicts
+from .files import csv_text, read_csv_dicts
 from .settings import setting
 
 #: Columns of ``audit.csv`` (the contract's first seven, then the counts behind them).
@@ -339,25 +339,8 @@ AUDIT = "audit.csv"
 
 def audit_csv_text(rows: Sequence[Mapping]) -> str:
     """Audit rows as CSV text (:data:`AUDIT_COLUMNS`; flags joined by ``;``)."""
-    import csv
-    import io
+    return csv_text(AUDIT_COLUMNS, rows)
 
-    buffer = io.StringIO()
-    writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(AUDIT_COLUMNS)
-    for row in rows:
-        writer.writerow([_cell(row.get(c)) for c in AUDIT_COLUMNS])
-    return buffer.getvalue()
-
-
-def _cell(value) -> str:
-    if value is None:
-        return ""
-    if isinstance(value, (list, tuple)):
-        return ";".join(str(v) for v in value)
-    if isinstance(value, float):
-        return repr(value) if math.isfinite(value) else ""
-    return str(value)
 
 
 def write_audit_table(out_dir) -> Path | None:

@@ -519,3 +519,31 @@ def read_csv_dicts(path) -> list[dict]:
         return []
     with open(path, encoding="utf-8", newline="") as fh:
         return list(csv.DictReader(fh))
+
+
+def csv_text(columns, rows) -> str:
+    """Rows (mappings) as CSV text under ``columns``: None and non-finite floats empty,
+    lists joined by ``;``, booleans ``true``/``false``, floats in full (``repr``)."""
+    import csv
+    import io
+
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(columns)
+    for row in rows:
+        writer.writerow([_csv_cell(row.get(c)) for c in columns])
+    return buffer.getvalue()
+
+
+def _csv_cell(value) -> str:
+    import math
+
+    if value is None:
+        return ""
+    if isinstance(value, (list, tuple)):
+        return ";".join(str(v) for v in value)
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, float):
+        return repr(value) if math.isfinite(value) else ""
+    return str(value)

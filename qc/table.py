@@ -11,7 +11,7 @@ import math
 from collections.abc import Mapping
 from pathlib import Path
 
-from .files import read_csv_dicts, write_atomic
+from .files import csv_text, read_csv_dicts, write_atomic
 from .ledger import QUALITY, latest_records, read_ledger
 
 #: A run folder's copy of its sample sheet: ``roi,batch,...`` (written by the run).
@@ -101,16 +101,8 @@ def batch_table(rows: list[Mapping], quality=None) -> list[dict]:
 
 def batch_csv_text(table: list[Mapping]) -> str:
     """The batch table as CSV (``medians`` as ``batch:value`` joined by ``;``)."""
-    import csv
-    import io
-
-    buffer = io.StringIO()
-    writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(BATCH_COLUMNS)
-    for row in table:
-        cells = dict(row, medians=[f"{b}:{v:.6g}" for b, v in row["medians"].items()])
-        writer.writerow([_csv_cell(cells.get(c)) for c in BATCH_COLUMNS])
-    return buffer.getvalue()
+    return csv_text(BATCH_COLUMNS, [dict(row, medians=[f"{b}:{v:.6g}" for b, v in row["medians"].items()])
+                                    for row in table])
 
 
 def write_quality_table(out_dir) -> Path:
@@ -142,18 +134,10 @@ def _run_quality_settings(out_dir):
 
 def quality_csv_text(rows: list[Mapping]) -> str:
     """Quality rows as CSV text: the contract columns first, lists joined by ``;``."""
-    import csv
-    import io
-
     columns = list(QUALITY_FIRST_COLUMNS)
     for row in rows:
         columns.extend(k for k in row if k not in columns)
-    buffer = io.StringIO()
-    writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(columns)
-    for row in rows:
-        writer.writerow([_csv_cell(row.get(c)) for c in columns])
-    return buffer.getvalue()
+    return csv_text(columns, rows)
 
 
 def read_quality_csv(path) -> list[dict]:
@@ -182,15 +166,4 @@ def _parse_number(text):
     except ValueError:
         return text
 
-
-def _csv_cell(value) -> str:
-    if value is None:
-        return ""
-    if isinstance(value, (list, tuple)):
-        return ";".join(str(v) for v in value)
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, float):
-        return repr(value) if math.isfinite(value) else ""
-    return str(value)
 
