@@ -378,14 +378,21 @@ def read_audit_csv(path) -> list[dict]:
     return out
 
 
-def audit_washed(roi, washed_path, recipe) -> list[dict]:
-    """Audit rows of one ROI of a run: its raw stack and its washed stack as written."""
+def audit_washed(roi, washed, recipe) -> list[dict]:
+    """Audit rows of one ROI of a run: its raw stack and its washed stack.
+
+    ``washed`` is the washed stack at hand (an array or array store, e.g. the staging file)
+    or the written file's path; only the paired channels are read from it.
+    """
     if not recipe.audit.exclusive:
         return []
-    from .io import read_roi
+    if isinstance(washed, (str, Path)):
+        from .io import read_roi
 
-    washed = read_roi(washed_path).data
-    return audit_roi(roi.data, washed, channels=roi.channels, labels=roi.labels, used=roi.use,
+        washed = read_roi(washed).data
+    names = pair_channels(roi, recipe.audit, where=recipe.source)
+    planes = {name: np.asarray(washed[roi.channels.index(name)]) for name in names}
+    return audit_roi(roi.data, planes, channels=roi.channels, labels=roi.labels, used=roi.use,
                      roi=roi.name, settings=recipe.audit, where=recipe.source)
 
 

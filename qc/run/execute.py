@@ -196,11 +196,12 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
         target = temporary_path(out_dir / output_name(job.roi), "measure")
     provenance = {"input_sha256": input_sha256, "recipe_sha256": job.recipe_sha256,
                   "spillover_sha256": job.spillover_sha256, "stains_sha256": job.stains_sha256}
-    quality_seconds = []
+    quality_seconds, audit = [], []
 
     def measure(washed):  # the washed pixels as written, before the staging goes
         start = time.perf_counter()
         measured = measure_quality(roi, washed, recipe, matrix, threads=job.threads or _worker_threads())
+        audit.extend(audit_washed(roi, washed, recipe))
         quality_seconds.append(time.perf_counter() - start)
         return measured
 
@@ -223,9 +224,6 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     raw_rows, washed_rows, roi_flags = result.measured
     for row in raw_rows + washed_rows:  # the ROI's id (its path in the cohort), not its file stem
         row["roi"] = job.roi
-    release_memory()
-    audit = audit_washed(roi, target, recipe)
-    lap("quality")
     if job.output is None:
         remove_path(target)
     stats = json_ready(result.stats)
