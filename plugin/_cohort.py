@@ -281,15 +281,14 @@ class CohortWidget(StudioWidget):
                 try:
                     roi = read_with_stains(path)
                 except Exception as exc:  # one bad ROI must not stop the others
-                    yield path, path, exc
+                    yield path, key(path), exc
                     continue
-                yield path, roi.name, measure_rows(roi, recipe, spillover=spillover)
+                yield path, key(path), measure_rows(roi, recipe, spillover=spillover)
 
-        from plexwash.qc.io import roi_stem
-
+        key = self.state.roi_key
         worker = flags()
         self._flag_worker = worker
-        self.state.pending_quality = {roi_stem(p) for p in rois}
+        self.state.pending_quality = {key(p) for p in rois}
         worker.finished.connect(lambda: self._flags_done(worker))
         return self.start(worker, on_yield=self._flags_arrived)
 
@@ -302,11 +301,9 @@ class CohortWidget(StudioWidget):
         path, name, rows = result
         row = self._row_of_path(path)
         if isinstance(rows, Exception):
-            from plexwash.qc.io import roi_stem
-
             if row is not None:
                 self.table.setItem(row, 1, QTableWidgetItem(f"unreadable: {rows}"))
-            self.state.pending_quality.discard(roi_stem(name))
+            self.state.pending_quality.discard(name)
             return
         self.state.set_quality(name, rows)
         if row is not None:

@@ -266,9 +266,11 @@ class QualityWidget(StudioWidget):
         """(stage, source) chosen: ``source`` is ``measure`` or ``run``."""
         return self.stage.currentData()
 
-    def run_rows(self, roi_name: str, stage: str) -> list[dict] | None:
-        """The run's own quality.csv rows of an ROI at a stage, when a run folder is known."""
-        return self.state.run_quality.get(roi_name, {}).get(stage)
+    def run_rows(self, roi, stage: str) -> list[dict] | None:
+        """The run's own quality.csv rows of an ROI (or an ROI id) at a stage, when a run folder
+        is known; matched by the ROI's id (its path in the cohort), not its file name."""
+        key = roi if isinstance(roi, str) else self.state.roi_key(roi)
+        return self.state.run_quality.get(key, {}).get(stage)
 
     def measure(self):
         """Measure the current ROI at the chosen stage in the background; returns the worker.
@@ -305,10 +307,10 @@ class QualityWidget(StudioWidget):
 
     def _show_run(self, roi, stage) -> None:
         if stage == "both":
-            raw, washed = self.run_rows(roi.name, "raw"), self.run_rows(roi.name, "washed")
+            raw, washed = self.run_rows(roi, "raw"), self.run_rows(roi, "washed")
             rows = None if raw is None and washed is None else side_by_side(raw or [], washed or [])
         else:
-            rows = self.run_rows(roi.name, stage)
+            rows = self.run_rows(roi, stage)
         if rows is None:
             self.say(f"the run's quality.csv has no {stage} rows of {roi.name}", warn=True)
             self.show_rows([])
@@ -321,7 +323,7 @@ class QualityWidget(StudioWidget):
         for i, (stage, source, _text) in enumerate(SOURCES):
             stages = STAGES if stage == "both" else (stage,)
             enabled = source == "measure" or (roi is not None and any(
-                self.run_rows(roi.name, st) is not None for st in stages))
+                self.run_rows(roi, st) is not None for st in stages))
             model.item(i).setEnabled(enabled)
 
     def _source_chosen(self, _index) -> None:
@@ -331,8 +333,8 @@ class QualityWidget(StudioWidget):
         stage, source = self.source
         if source == "run":
             self._show_run(roi, stage)
-        elif stage == "raw" and roi.name in self.state.quality:
-            self._show(roi, "raw", self.state.quality[roi.name])
+        elif stage == "raw" and self.state.roi_key(roi) in self.state.quality:
+            self._show(roi, "raw", self.state.quality[self.state.roi_key(roi)])
 
     def _choose(self, stage: str, source: str) -> None:
         self._quiet = True
@@ -344,35 +346,35 @@ class QualityWidget(StudioWidget):
 
     def _roi_changed(self, roi):
         self._sources_enabled(roi)
-        if roi is not None and self.run_rows(roi.name, "washed") is not None and self._is_run_output(roi):
+        if roi is not None and self.run_rows(roi, "washed") is not None and self._is_run_output(roi):
             self._choose("washed", "run")  # a washed ROI of a run: the run's own verdicts
             self._show_run(roi, "washed")
             return
         self._choose("raw", "measure")
-        cached = self.state.quality.get(roi.name) if roi is not None else None
+        cached = self.state.quality.get(self.state.roi_key(roi)) if roi is not None else None
         if cached is not None:
             self._show(roi, "raw", cached)
             return
         self.show_rows([])
-        if roi is not None and roi.name in self.state.pending_quality:
+        if roi is not None and self.state.roi_key(roi) in self.state.pending_quality:
             self.say(f"{roi.name}: measuring with the cohort…")  # the Cohort widget delivers it
         elif roi is not None:
             self.measure()
 
     def _is_run_output(self, roi) -> bool:
         run_dir = self.state.run_dir
-        return run_dir is not None and roi.path is not None and Path(roi.path).parent.resolve() == run_dir.resolve()
+        return run_dir is not None and roi.path is not None and Path(roi.path).resolve().is_relative_to(run_dir.resolve())
 
     def _quality_arrived(self, roi_name):
         roi = self.state.roi
-        if roi is not None and roi.name == roi_name and not self.rows and self.source == ("raw", "measure"):
+        if roi is not None and self.state.roi_key(roi) == roi_name and not self.rows and self.source == ("raw", "measure"):
             self._show(roi, "raw", self.state.quality[roi_name])
 
     def _show(self, roi, stage, rows, source: str = "measure"):
         if roi is not self.state.roi:
             return  # the user moved on to another ROI meanwhile
         if stage == "raw" and source == "measure":
-            self.state.quality.setdefault(roi.name, rows)
+            self.state.quality.setdefault(self.state.roi_key(roi), rows)
         self.shown = (stage, source)
         self.show_rows(rows)
         where = " from the run's quality.csv" if source == "run" else ""

@@ -37,11 +37,11 @@ class StudioState:
     run_dir : Path or None
         Output folder of the last run (its ``quality.csv`` feeds the Cohort flags).
     quality : dict
-        ROI name -> quality rows (raw stage) measured in the studio.
+        ROI id (:meth:`roi_key`) -> quality rows (raw stage) measured in the studio.
     pending_quality : set of str
-        ROI names whose raw quality a background measurement will still deliver.
+        ROI ids whose raw quality a background measurement will still deliver.
     run_quality : dict
-        ROI name -> stage -> rows of the run's ``quality.csv`` (a run folder chosen or opened).
+        ROI id -> stage -> rows of the run's ``quality.csv`` (a run folder chosen or opened).
     view : str
         What the canvas shows (the Cohort widget's view buttons): ``single``, ``grid``,
         ``overlay`` or ``preview``.
@@ -126,6 +126,24 @@ class StudioState:
         """Ask the Cohort widget to show another view (e.g. the Speckle widget: ``preview``)."""
         if view != self.view:
             self.view_requested.emit(view)
+
+    def roi_key(self, roi) -> str:
+        """The id of an ROI (or of an ROI's path), as a run's ``quality.csv`` names it: its path
+        relative to the cohort folder, or to the run folder for a washed ROI of a run
+        (:func:`plexwash.qc.io.roi_id`). Two ROIs of the same file name in different slide
+        folders get different ids; an ROI outside both folders keeps its file name."""
+        from plexwash.qc.io import roi_id, roi_stem
+
+        path = getattr(roi, "path", roi)
+        if path is None:
+            return str(roi.name)
+        path = Path(path).resolve()
+        folders = sorted({Path(f).resolve() for f in (self.cohort, self.run_dir) if f is not None},
+                         key=lambda f: len(f.parts), reverse=True)  # a run folder inside the cohort first
+        for folder in folders:
+            if path.is_relative_to(folder):
+                return roi_id(path, folder)
+        return roi_stem(path)
 
     def set_quality(self, roi_name: str, rows: list[dict]) -> None:
         self.quality[roi_name] = rows
