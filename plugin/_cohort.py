@@ -3,10 +3,11 @@
 from __future__ import annotations
 
 import contextlib
+import weakref
 from pathlib import Path
 
 from napari.qt.threading import thread_worker
-from qtpy.QtCore import Qt
+from qtpy.QtCore import Qt, QTimer
 from qtpy.QtWidgets import (
     QAbstractItemView,
     QButtonGroup,
@@ -127,6 +128,11 @@ class CohortWidget(StudioWidget):
         self._framing: tuple | None = None
         self._tiles: tuple | None = None  # (roi, block-averaged channels, block size) of the grid view
         self._mosaic: tuple | None = None  # (tiles, (contrast, hues) it was drawn with, RGB picture)
+        self._followed = weakref.WeakSet()  # raw layers whose contrast sliders redraw the grid
+        self._regrid = QTimer(self)  # coalesced: one grid picture for a burst of slider moves
+        self._regrid.setSingleShot(True)
+        self._regrid.setInterval(30)
+        self._regrid.timeout.connect(lambda: self.view == "grid" and self.set_view("grid"))
         layout = self.layout()
 
         layout.addWidget(self.caption("Cohort folder"))
@@ -401,6 +407,10 @@ class CohortWidget(StudioWidget):
             return  # a later click won
         self._tiles = (roi, *tiles) if tiles is not None else None
         kept = show_roi_layers(self.viewer, layers)
+        for layer in studio_layers(self.viewer, stage="raw"):  # napari's contrast sliders act on the grid
+            if layer not in self._followed:
+                self._followed.add(layer)
+                layer.events.contrast_limits.connect(lambda _e: self.view == "grid" and self._regrid.start())
         if not kept and self.state.owns_process:
             import gc
 
@@ -577,6 +587,9 @@ class CohortWidget(StudioWidget):
         if look == "one hue":
             return colormap_for(0)
         return colormap_for(meta["index"])
+
+    def busy(self) -> bool:
+        return super().busy() or self._regrid.isActive()
 
     def rescale(self) -> None:
         """Contrast of every studio layer from the percentile boxes."""
