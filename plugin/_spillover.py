@@ -7,7 +7,6 @@ from pathlib import Path
 
 import numpy as np
 from napari.qt.threading import thread_worker
-from qtpy.QtCore import QTimer
 from qtpy.QtWidgets import (
     QCheckBox,
     QComboBox,
@@ -66,8 +65,6 @@ def heatmap_layout(n: int, width_px: int, longest_label: int) -> dict:
     return {"cell": cell, "font": font, "left": label_px, "bottom": label_px, "top": top,
             "right": right, "width": label_px + n * cell + right,
             "height": top + n * cell + label_px}
-#: Hidden compensated layers given new pixels per turn of the event loop.
-SWAPS_PER_TURN = 6
 #: What an edit's error names (the engine's own name for a matrix it is handed).
 SPILLOVER_SOURCE = "spillover matrix"
 
@@ -167,11 +164,6 @@ class SpilloverWidget(StudioWidget):
         super().__init__(napari_viewer, parent)
         self.compensated: tuple | None = None
         self._fitted = False
-        self._swaps: list = []
-        self._swap_timer = QTimer(self)
-        self._swap_timer.setSingleShot(True)
-        self._swap_timer.setInterval(0)
-        self._swap_timer.timeout.connect(self._swap_some)
         layout = self.layout()
 
         layout.addWidget(self.caption("Matrix"))
@@ -478,60 +470,34 @@ class SpilloverWidget(StudioWidget):
     def _show_compensated(self, roi, used, stack):
         if roi is not self.state.roi or roi.labels[used[0]] not in self.viewer.layers:
             return  # another ROI is loaded, or its layers are gone
-        from napari.layers import Image
-
-        width = roi.shape[2] * (roi.pixel_size[1] if roi.pixel_size else 1.0)
-        kept = {layer.metadata["plexwash"]["channel"]: layer
-                for layer in studio_layers(self.viewer, stage="compensated")}
-        made, swaps = [], []
-        self._swaps = []  # an earlier compensation's swaps not yet done are dropped
-        with self.viewer.layers.batched_update():  # one scene-graph update for every layer
-            for layer in studio_layers(self.viewer):
-                if layer.metadata["plexwash"]["stage"] in ("washed", "removed") and layer.visible:
-                    layer.visible = False  # the Speckle preview sits in the same place
-            for k, index in enumerate(used):
-                label, channel = roi.labels[index], roi.channels[index]
-                limits = (tuple(self.viewer.layers[label].contrast_limits)
-                          if label in self.viewer.layers else robust_limits(stack[k]))
-                _, kwargs, _ = channel_layer(stack[k], roi_path=roi.path, channel=channel, label=label,
-                                             index=index, stage="compensated", pixel_size=roi.pixel_size,
-                                             visible=False, limits=limits)
-                kwargs["translate"] = (0.0, width * 1.04)
-                if channel in kept:  # later compensations: the kept layers get the new pixels
-                    swaps.append((channel, kept[channel], stack[k], kwargs))
-                else:
-                    made.append(Image(stack[k], **kwargs))
-            if made:  # the first compensation: every layer at once, the active layer unchanged
-                active = self.viewer.layers.selection.active
-                self.viewer.layers.extend(made)
-                if active is not None:
-                    self.viewer.layers.selection.active = active
-        if made:
-            keep_for_good(self.viewer)
-        # the receiving channel's layer now (it is shown); the hidden ones a few per turn of the
-        # event loop, so the window keeps answering (each data swap costs ~15 ms)
-        receiver = self.receiver.currentText()
-        swaps.sort(key=lambda job: job[0] != receiver)
-        for _channel, layer, data, kwargs in swaps[:1]:
-            swap_layer(layer, data, kwargs)
-        self._swaps = swaps[1:]
-        if self._swaps:
-            self._swap_timer.start()
-        self.compensated = (roi, used)
+        # one compensated layer, beside the raw one, showing the receiving channel; its pixels
+        # are swapped when the receiver changes. One layer per channel made every show / hide
+        # of any layer walk 36 more layers (napari updates its scene graph per layer).
+        self.compensated = (roi, used, stack)
         self._fitted = False
         self._show_receiver()
-        self.say(f"{roi.name}: {len(used)} compensated layers (receiving channel shown beside raw)")
+        self.say(f"{roi.name}: {len(used)} channels compensated (receiving channel shown beside raw)")
 
-    def _swap_some(self) -> None:
-        """Swap the next few compensated layers' pixels (see :meth:`_show_compensated`)."""
-        batch, self._swaps = self._swaps[:SWAPS_PER_TURN], self._swaps[SWAPS_PER_TURN:]
-        for _channel, layer, data, kwargs in batch:
-            swap_layer(layer, data, kwargs)
-        if self._swaps:
-            self._swap_timer.start()
-
-    def busy(self) -> bool:
-        return super().busy() or bool(self._swaps)
+    def _compensated_layer(self, roi, index: int, plane):
+        """The one compensated layer, with ``plane`` (channel ``index`` of ``roi``) in it; made on
+        first use, later given the new pixels."""
+        label, channel = roi.labels[index], roi.channels[index]
+        limits = (tuple(self.viewer.layers[label].contrast_limits)
+                  if label in self.viewer.layers else robust_limits(plane))
+        data, kwargs, _ = channel_layer(plane, roi_path=roi.path, channel=channel, label=label, index=index,
+                                        stage="compensated", pixel_size=roi.pixel_size, visible=False, limits=limits)
+        width = roi.shape[2] * (roi.pixel_size[1] if roi.pixel_size else 1.0)
+        kwargs["translate"] = (0.0, width * 1.04)
+        kept = studio_layers(self.viewer, stage="compensated")
+        if kept:
+            swap_layer(kept[0], data, kwargs)
+            return kept[0]
+        active = self.viewer.layers.selection.active
+        layer = self.viewer.add_image(data, **kwargs)
+        if active is not None:  # the active layer (and its contrast controls) unchanged
+            self.viewer.layers.selection.active = active
+        keep_for_good(self.viewer)
+        return layer
 
     def _show_receiver(self):
         """Side by side: the chosen receiving channel raw, and compensated; everything else hidden."""
@@ -541,15 +507,16 @@ class SpilloverWidget(StudioWidget):
             return
         if receiver not in roi.channels:
             return
-        for job in [job for job in self._swaps if job[0] == receiver]:  # shown: its pixels now
-            self._swaps.remove(job)
-            swap_layer(*job[1:])
+        _, used, stack = self.compensated
+        index = roi.channel_index(receiver)
+        shown = self._compensated_layer(roi, index, stack[used.index(index)]) if index in used else None
         grid_of(self.viewer).enabled = False
         hide_mosaic(self.viewer)  # the Cohort grid's picture, if shown
         with self.viewer.layers.batched_update():  # one scene-graph update, not one per layer
             for layer in studio_layers(self.viewer):
                 meta = layer.metadata["plexwash"]
-                show = meta["channel"] == receiver and meta["stage"] in ("raw", "compensated")
+                show = meta["channel"] == receiver and (meta["stage"] == "raw" or (
+                    meta["stage"] == "compensated" and shown is not None))
                 if layer.visible != show:
                     layer.visible = show
         if not self._fitted:

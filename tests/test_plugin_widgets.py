@@ -360,11 +360,16 @@ def test_spillover_load_edit_preview_save(make_napari_viewer, qtbot, cohort, tmp
     expected = compensate(roi.data.astype(np.float32),
                           align_spillover(spill.state.spillover, roi.channels), method="nnls")
     layers = studio_layers(viewer, stage="compensated")
-    assert len(layers) == len(roi.channels)
-    for layer in layers:
+    assert len(layers) == 1 and layers[0].visible  # one layer: the receiving channel, beside raw
+    for receiver in (4, 0, 6):  # another receiver: the same layer, that channel's pixels
+        spill.receiver.setCurrentText(names[receiver])
+        (layer,) = studio_layers(viewer, stage="compensated")
+        assert layer is layers[0] and layer.visible and layer.metadata["plexwash"]["channel"] == names[receiver]
         np.testing.assert_array_equal(layer.data, expected[layer.metadata["plexwash"]["index"]])
-    visible = [layer.metadata["plexwash"]["channel"] for layer in layers if layer.visible]
-    assert visible == [names[4]]
+        shown = {(x.metadata["plexwash"]["channel"], x.metadata["plexwash"]["stage"])
+                 for x in studio_layers(viewer) if x.visible}
+        assert shown == {(names[receiver], "raw"), (names[receiver], "compensated")}
+    spill.receiver.setCurrentText(names[4])
     used, stack = compensated_stack(roi, spill.state.spillover)
     np.testing.assert_array_equal(stack, expected)
 
