@@ -40,6 +40,7 @@ from ._layers import (
     hide_labels,
     hide_mosaic,
     place,
+    prepare_tile_layers,
     robust_limits,
     roi_extent,
     roi_layer_data,
@@ -411,6 +412,8 @@ class CohortWidget(StudioWidget):
             if layer not in self._followed:
                 self._followed.add(layer)
                 layer.events.contrast_limits.connect(lambda _e: self.view == "grid" and self._regrid.start())
+        if not kept:
+            prepare_tile_layers(self.viewer, roi_extent(roi))
         if not kept and self.state.owns_process:
             import gc
 

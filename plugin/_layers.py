@@ -357,6 +357,9 @@ def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) ->
         layer = viewer.layers[LABELS_LAYER]
         if not layer.visible:  # first: a hidden layer's extent is not renewed with its data
             layer.visible = True
+        at = viewer.layers.index(LABELS_LAYER)
+        if at != len(viewer.layers) - 1:  # layers added since (previews, outlines): frames stay on top
+            viewer.layers.move(at, len(viewer.layers))
         layer.data = boxes
         layer.shape_type = ["rectangle"] * len(boxes)
         layer.features = {"label": texts}
@@ -364,14 +367,30 @@ def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) ->
         if layer.text.size != size:
             layer.text.size = size
     else:
-        active = viewer.layers.selection.active
-        viewer.add_shapes(boxes, shape_type="rectangle", name=LABELS_LAYER, features={"label": texts},
-                          edge_color="#59616b", face_color="transparent", edge_width=edge,
-                          text={"string": "{label}", "anchor": "upper_left", "color": "#e6e9ed", "size": size,
-                                "scaling": True, "translation": [0.02 * height, 0.02 * width]},
-                          blending="translucent_no_depth")
-        viewer.layers.selection.active = active  # the labels never take the layer controls
-        keep_for_good(viewer)
+        _add_labels(viewer, boxes, texts, size, edge, extent)
+
+
+def _add_labels(viewer, boxes, texts, size, edge, extent, visible: bool = True) -> None:
+    height, width = extent
+    active = viewer.layers.selection.active
+    viewer.add_shapes(boxes, shape_type="rectangle", name=LABELS_LAYER, features={"label": texts},
+                      edge_color="#59616b", face_color="transparent", edge_width=edge, visible=visible,
+                      text={"string": "{label}", "anchor": "upper_left", "color": "#e6e9ed", "size": size,
+                            "scaling": True, "translation": [0.02 * height, 0.02 * width]},
+                      blending="translucent_no_depth")
+    viewer.layers.selection.active = active  # the labels never take the layer controls
+    keep_for_good(viewer)
+
+
+def prepare_tile_layers(viewer, extent) -> None:
+    """Make the grid picture and the tile labels layers now, hidden (with the first ROI's layers):
+    making them on the first Grid or Preview click froze the window about half a second."""
+    if GRID_LAYER not in viewer.layers:
+        show_mosaic(viewer, np.zeros((2, 2, 3), np.uint8), (1.0, 1.0), (0.0, 0.0), visible=False)
+    if LABELS_LAYER not in viewer.layers:
+        height, width = extent
+        _add_labels(viewer, [np.array([[0.0, 0.0], [height, width]])], [""], label_size([""], width),
+                    max(extent) * 0.004, extent, visible=False)
 
 
 #: The grid's tiles together span at most about this many pixels across (one screen): each
@@ -463,7 +482,7 @@ def grid_mosaic(tiles, corners, factor: int, limits, colours) -> np.ndarray:
     return out
 
 
-def show_mosaic(viewer, rgb: np.ndarray, scale, translate) -> None:
+def show_mosaic(viewer, rgb: np.ndarray, scale, translate, visible: bool = True) -> None:
     """Show the grid's RGB picture in one kept layer (made once, data swapped; not a studio layer)."""
     scale = tuple(float(v) for v in scale)
     translate = tuple(float(v) for v in translate)
@@ -480,7 +499,7 @@ def show_mosaic(viewer, rgb: np.ndarray, scale, translate) -> None:
         return
     active = viewer.layers.selection.active
     viewer.add_image(rgb, rgb=True, name=GRID_LAYER, scale=scale, translate=translate, contrast_limits=(0, 255),
-                     blending="translucent_no_depth")
+                     blending="translucent_no_depth", visible=visible)
     if LABELS_LAYER in viewer.layers:  # frames and names above the picture
         viewer.layers.move(viewer.layers.index(LABELS_LAYER), len(viewer.layers))
     viewer.layers.selection.active = active  # the picture never takes the layer controls
