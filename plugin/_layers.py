@@ -360,6 +360,10 @@ def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) ->
         at = viewer.layers.index(LABELS_LAYER)
         if at != len(viewer.layers) - 1:  # layers added since (previews, outlines): frames stay on top
             viewer.layers.move(at, len(viewer.layers))
+        drawn = (tuple(tuple(float(v) for v in box.ravel()) for box in boxes), tuple(texts), size, edge)
+        if layer.metadata.get("tiles") == drawn:
+            return  # the same frames and names (back to a view): napari re-triangulates every shape set
+        layer.metadata = {"tiles": drawn}
         layer.data = boxes
         layer.shape_type = ["rectangle"] * len(boxes)
         layer.features = {"label": texts}
