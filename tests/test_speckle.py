@@ -266,7 +266,8 @@ def test_background_rate_recovered_and_not_inflated_by_cells(rate):
 
 
 def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False,
-                      wide_radius=0, support_alpha=0.2, edge_alpha=0.0, line_half=0, lone_alpha=0.0):
+                      wide_radius=0, support_alpha=0.2, edge_alpha=0.0, line_half=0, lone_alpha=0.0,
+                      line_alpha=0.003):
     """The documented rule, written with scipy building blocks."""
     side = 2 * radius + 1
     positive = img > np.float32(threshold)
@@ -296,7 +297,7 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
                 sides.append(ndi.correlate(dim.astype(np.int64), kernel, mode="constant"))  # scipy.ndimage.correlate
                 whole += kernel
             line_trials = ndi.correlate(np.ones(img.shape, np.int64), whole, mode="constant")
-            line_min = stats.binom.isf(alpha / len(lines), line_trials, rate) + 1  # Bonferroni over the lines
+            line_min = stats.binom.isf(line_alpha / len(lines), line_trials, rate) + 1  # Bonferroni over the lines
             dense |= (sides[0] > 0) & (sides[1] > 0) & (sides[0] + sides[1] >= line_min)
     if edge_alpha > 0:  # lower Poisson tail against the mean of the 8 neighbours
         ring = np.ones((3, 3))

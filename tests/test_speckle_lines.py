@@ -2,10 +2,10 @@
 
 A 1-px fibre at 1-2 counts per pixel puts only a few positives in a 5 x 5 window, among
 24 neighbours of background; on a line of 8 pixels through it the same positives stand out.
-The test is an exact one-sided binomial test at ``alpha / T`` per line (``T`` lines: 16
+The test is an exact one-sided binomial test at ``line_alpha / T`` per line (``T`` lines: 16
 orientations and the phases of a digital line), so by
 Bonferroni's inequality (Bonferroni 1936) a background pixel is kept by some line with
-probability at most ``alpha``.
+probability at most ``line_alpha``.
 """
 
 from __future__ import annotations
@@ -41,14 +41,14 @@ def kept(img, fibre, **settings):
 
 
 def test_lines_keep_thin_fibres_that_square_windows_lose():
-    """Regression: 1-px fibres at 2-3 counts per pixel on 0.15 counts of background."""
-    for seed, level in ((0, 2.0), (1, 3.0), (2, 2.0)):
-        img, fibre = fibres(seed=seed, level=level)
+    """Regression: 1-px fibres at 2 counts per pixel on 0.15 counts of background."""
+    for seed in (0, 1, 2):
+        img, fibre = fibres(seed=seed, level=2.0)
         with_lines, background_with = kept(img, fibre)
         without, background_without = kept(img, fibre, line_half=0)
-        assert without < 0.5  # the square windows alone lose most of such a fibre
-        assert with_lines >= without + 0.2 and with_lines >= 0.55
-        assert background_with >= background_without - 0.015  # away from the fibres, little cost
+        assert without < 0.4  # the square windows alone lose most of such a fibre
+        assert with_lines >= without + 0.1
+        assert background_with >= background_without - 0.005  # away from the fibres, little cost
         assert background_with >= 0.96
 
 
@@ -72,7 +72,7 @@ def test_lines_are_digital_straight_lines():
 
 
 def test_line_marks_on_background_stay_under_alpha():
-    """Pure Poisson background: the share of positive pixels marked by some line is at most alpha."""
+    """Pure Poisson background: the share of positive pixels marked by some line is at most line_alpha."""
     rng = np.random.default_rng(5)
     settings = SpeckleSettings()
     for level in (0.05, 0.15, 0.3):
@@ -82,5 +82,5 @@ def test_line_marks_on_background_stay_under_alpha():
         _k.line_dense(img, np.float32(0.5), np.inf, line_offsets(settings.line_half),
                       np.zeros(img.shape, np.uint8), table, marks)
         positive = img > 0.5
-        assert marks[positive].mean() <= settings.alpha
+        assert marks[positive].mean() <= settings.line_alpha
         assert not marks[~positive].any()

@@ -271,6 +271,7 @@ def remove_speckle(
     edge_alpha: float = 1e-3,
     lone_alpha: float = 1e-12,
     line_half: int = 4,
+    line_alpha: float = 0.003,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
     """Remove sparse background counts of one channel by a local-density test.
@@ -306,9 +307,11 @@ def remove_speckle(
     min_area : int, optional
         Smallest kept component, in pixels (1: no size rule).
     line_half : int, optional
-        A pixel is also dense when, on a line of ``2 * line_half`` pixels through it (8
-        orientations, both sides represented), its dim positive pixels are improbably many
-        (binomial test at ``alpha / 8``, Bonferroni; 0: off).
+        A pixel is also dense when, on a line of ``2 * line_half`` pixels through it (16
+        orientations and their phases, both sides represented), its dim positive pixels are improbably many
+        (binomial test at ``line_alpha / T`` for ``T`` lines, Bonferroni; 0: off).
+    line_alpha : float, optional
+        False-keep rate of the line test for one background pixel.
     lone_alpha : float, optional
         A smaller component stays when one of its pixels has ``P(Y >= value) < lone_alpha``
         under the channel's densest Poisson background (0: off).
@@ -348,7 +351,7 @@ def remove_speckle(
     values = {"threshold": threshold, "radius": radius, "alpha": alpha, "value_alpha": value_alpha,
               "keep_touching": keep_touching, "min_area": min_area, "edge_alpha": edge_alpha,
               "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
-              "line_half": line_half}
+              "line_half": line_half, "line_alpha": line_alpha}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(

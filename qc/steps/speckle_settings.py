@@ -42,8 +42,13 @@ class SpeckleSettings:
     )
     line_half: int = setting(
         4, "half-length of the line windows (8 orientations): a pixel is also kept when the dim positive"
-        " pixels on a line through it are improbably many (alpha / 8, Bonferroni); keeps thin fibres (0: off)",
+        " pixels on a line through it are improbably many (line_alpha over all lines, Bonferroni); keeps thin"
+        " fibres (0: off)",
         low=0, high=50,
+    )
+    line_alpha: float = setting(
+        0.003, "false-keep rate of the line test for one background pixel, shared by all its lines", low=0.0,
+        high=0.5, low_open=True,
     )
     support_alpha: float = setting(
         0.2, "how improbable for background the own window's count must be for the wider window to count",

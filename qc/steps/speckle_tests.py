@@ -23,7 +23,7 @@ Low against the neighbours
 Line test
     Binomial test on the dim positive pixels of a line of ``2 * line_half`` pixels through
     a positive pixel, in eight orientations and the phases a digital line can take, at
-    ``alpha / T`` for ``T`` such lines (Bonferroni over the lines): a thin fibre puts most of its pixels on one of the lines, where a square
+    ``line_alpha / T`` for ``T`` such lines (Bonferroni over the lines): a thin fibre puts most of its pixels on one of the lines, where a square
     window dilutes them among background (:func:`line_tables`, kernel ``line_dense``).
 Lone pixels
     Poisson upper tail at ``lone_alpha`` (1e-12, about ``value_alpha`` over a million
@@ -299,9 +299,9 @@ def line_offsets(half: int) -> np.ndarray:
 def line_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
     """``table[z, t]``: smallest dim positive count on a line of ``t`` pixels kept in zone ``z``.
 
-    Exact one-sided binomial test at ``alpha / T`` for the ``T`` lines of
+    Exact one-sided binomial test at ``line_alpha / T`` for the ``T`` lines of
     :func:`line_offsets`: Bonferroni over the lines (Bonferroni 1936), so a background pixel
-    is kept by some line with probability at most ``alpha``.
+    is kept by some line with probability at most ``line_alpha``.
     """
     half = int(settings.line_half)
     if rates is None:
@@ -309,7 +309,7 @@ def line_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
     rates = np.asarray(rates, np.float64)
     trials = np.arange(2 * half + 1)
     tests = len(line_offsets(half)) if half > 0 else 1
-    table = binomial_min_count(trials[None, :], rates[:, None], settings.alpha / tests).astype(np.int32)
+    table = binomial_min_count(trials[None, :], rates[:, None], settings.line_alpha / tests).astype(np.int32)
     table[rates >= 1.0] = 0
     return np.ascontiguousarray(table)
 
