@@ -266,7 +266,8 @@ def test_background_rate_recovered_and_not_inflated_by_cells(rate):
 
 
 def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False,
-                      wide_radius=0, support_alpha=0.2, edge_alpha=0.0):
+                      wide_radius=0, support_alpha=0.2, edge_alpha=0.0, line_half=0, lone_alpha=0.0,
+                      line_alpha=0.003):
     """The documented rule, written with scipy building blocks."""
     side = 2 * radius + 1
     positive = img > np.float32(threshold)
@@ -283,6 +284,21 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
         wide_trials = ndi.convolve(np.ones(img.shape, np.int64), wide_box, mode="constant") - 1
         support = n >= stats.binom.isf(support_alpha, trials, rate) + 1
         dense |= support & (n_wide >= stats.binom.isf(alpha, wide_trials, rate) + 1)
+    if line_half:  # dim positives on each line of speckle_tests.line_offsets, both sides present
+        dim = positive & (img <= min_value - 1)
+        size = 2 * line_half + 1
+        lines = speckle_tests.line_offsets(line_half)
+        for line in lines:
+            sides = []
+            whole = np.zeros((size, size), np.int64)
+            for half in (line[:line_half], line[line_half:]):
+                kernel = np.zeros((size, size), np.int64)
+                kernel[line_half + half[:, 0], line_half + half[:, 1]] = 1
+                sides.append(ndi.correlate(dim.astype(np.int64), kernel, mode="constant"))  # scipy.ndimage.correlate
+                whole += kernel
+            line_trials = ndi.correlate(np.ones(img.shape, np.int64), whole, mode="constant")
+            line_min = stats.binom.isf(line_alpha / len(lines), line_trials, rate) + 1  # Bonferroni over the lines
+            dense |= (sides[0] > 0) & (sides[1] > 0) & (sides[0] + sides[1] >= line_min)
     if edge_alpha > 0:  # lower Poisson tail against the mean of the 8 neighbours
         ring = np.ones((3, 3))
         ring[1, 1] = 0
@@ -298,22 +314,29 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
     if min_area > 1:
         labels, _ = ndi.label(keep, structure=EIGHT)  # scipy.ndimage.label, 8-connectivity
         sizes = np.bincount(labels.ravel())
-        keep &= sizes[labels] >= min_area
+        lone = np.zeros(sizes.shape, bool)
+        if lone_alpha > 0:  # a pixel this bright keeps its group whatever its size
+            lone[labels[keep & (img > stats.poisson.isf(lone_alpha, level))]] = True
+        keep &= (sizes[labels] >= min_area) | lone[labels]
     return np.where(positive & ~keep, np.float32(0), img)
 
 
-@pytest.mark.parametrize("radius, min_area, threshold, keep_touching, wide_radius, edge_alpha",
-                         [(1, 1, 0.0, False, 0, 0.0), (2, 2, 0.5, False, 0, 0.0), (3, 5, 1.5, True, 0, 0.0),
-                          (2, 12, 0.0, True, 0, 0.0), (2, 1, 0.5, True, 0, 0.0), (2, 2, 0.5, False, 5, 1e-3),
-                          (1, 3, 0.0, True, 4, 1e-2)])
-def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold, keep_touching, wide_radius, edge_alpha):
+@pytest.mark.parametrize("radius, min_area, threshold, keep_touching, wide_radius, edge_alpha, line_half, lone_alpha",
+                         [(1, 1, 0.0, False, 0, 0.0, 0, 0.0), (2, 2, 0.5, False, 0, 0.0, 0, 0.0),
+                          (3, 5, 1.5, True, 0, 0.0, 3, 1e-8), (2, 12, 0.0, True, 0, 0.0, 0, 1e-12),
+                          (2, 1, 0.5, True, 0, 0.0, 4, 0.0), (2, 2, 0.5, False, 5, 1e-3, 4, 1e-12),
+                          (1, 3, 0.0, True, 4, 1e-2, 6, 1e-6)])
+def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold, keep_touching, wide_radius, edge_alpha,
+                                             line_half, lone_alpha):
     d = synthetic_channel((150, 170), background=0.15, seed=radius + min_area, n_cells=40, n_dim=10,
                           n_specks=15, n_processes=4, n_hot=0)
     img = d["counts"]
     img[0, :6] = 3.0  # objects on the image edge, where windows are clipped
     img[-3:, -1] = 4.0
+    img[70, 5] = img[5, 160] = 30.0  # lone bright pixels (away from the synthetic objects, mostly)
     settings = dict(threshold=threshold, radius=radius, alpha=0.01, value_alpha=1e-5, min_area=min_area,
-                    keep_touching=keep_touching, wide_radius=wide_radius, edge_alpha=edge_alpha)
+                    keep_touching=keep_touching, wide_radius=wide_radius, edge_alpha=edge_alpha,
+                    line_half=line_half, lone_alpha=lone_alpha)
     out, removed, st = remove_speckle(img, **settings)
     expected = reference_speckle(img, rate=st["rate"], level=st["level"], **settings)
     np.testing.assert_array_equal(out, expected)
@@ -352,18 +375,26 @@ def test_speckle_on_synthetic_tissue(tissue):
 
 
 def test_isolated_bright_count_goes_and_two_pixel_speck_stays():
+    """A lone count improbable per pixel (value test) but not over the ROI (lone test) goes;
+    two of them side by side stay; a lone pixel too bright for background anywhere stays."""
     rng = np.random.default_rng(8)
     img = rng.poisson(0.05, (80, 80)).astype(np.float32)
-    img[10, 10] = 9.0  # one improbable count, alone
-    img[40, 40:42] = 9.0  # the same, two pixels side by side
-    img[60, 60] = img[61, 61] = 7.0  # diagonal neighbours are connected (8-connectivity)
-    for y, x in ((10, 10), (40, 40), (60, 60)):
-        img[y - 2 : y + 3, x - 2 : x + 3][img[y - 2 : y + 3, x - 2 : x + 3] < 7] = 0.0
+    img[10, 10] = 4.0  # P(Y >= 4) ~ 2.6e-7 at 0.05 counts: below value_alpha, above lone_alpha
+    img[40, 40:42] = 4.0  # the same, two pixels side by side
+    img[60, 60] = img[61, 61] = 4.0  # diagonal neighbours are connected (8-connectivity)
+    img[20, 60] = 9.0  # P(Y >= 9) ~ 5e-18: a one-pixel speck of real stain
+    for y, x in ((10, 10), (40, 40), (60, 60), (20, 60)):
+        img[y - 2 : y + 3, x - 2 : x + 3][img[y - 2 : y + 3, x - 2 : x + 3] < 4] = 0.0
     out, _, st = remove_speckle(img)
-    assert st["value_threshold"] <= 7
+    level = st["level"]
+    # scipy.stats.poisson.sf (P(Y > k)): 4 is improbable per pixel, not at the lone level; 9 is
+    assert 1e-12 < stats.poisson.sf(3, level) < 1e-6 and stats.poisson.sf(8, level) < 1e-12
+    assert st["value_threshold"] <= 4
     assert out[10, 10] == 0.0
-    assert out[40, 40] == out[40, 41] == 9.0
-    assert out[60, 60] == out[61, 61] == 7.0
+    assert out[40, 40] == out[40, 41] == 4.0
+    assert out[60, 60] == out[61, 61] == 4.0
+    assert out[20, 60] == 9.0
+    assert remove_speckle(img, lone_alpha=0.0).image[20, 60] == 0.0  # the size rule alone drops it
 
 
 def test_empty_and_full_channels():
@@ -385,7 +416,8 @@ def test_background_given_is_used_and_must_match_threshold():
     out, _, st = remove_speckle(crop, threshold=0.0, background=whole)
     assert st["rate"] == whole.rate
     expected = reference_speckle(crop, threshold=0.0, radius=2, alpha=0.01, value_alpha=1e-6, min_area=2,
-                                 rate=whole.rate, level=whole.level, wide_radius=5, edge_alpha=1e-3)
+                                 rate=whole.rate, level=whole.level, wide_radius=5, edge_alpha=1e-3,
+                                 line_half=4, lone_alpha=1e-12)  # the defaults
     np.testing.assert_array_equal(out, expected)
     with pytest.raises(InputError, match="background: estimated with threshold 0, filter uses 1"):
         remove_speckle(crop, threshold=1.0, background=whole)
@@ -432,7 +464,7 @@ def test_dask_equals_numpy_across_chunk_borders(chunks):
 def test_chunked_speckle_depth_is_needed(monkeypatch):
     img = np.zeros((32, 48), np.float32)
     img[10, 14:23] = 50.0  # 9 kept pixels crossing the chunk border at x = 16
-    settings = SpeckleSettings(min_area=8)
+    settings = SpeckleSettings(min_area=8, lone_alpha=0.0)  # the size rule alone
     eager = speckle_stack(img[None], settings).image
     lazy = da.from_array(img[None], chunks=(1, 16, 16))
     assert eager[0, 10, 14] == 50.0

@@ -6,9 +6,10 @@ code with example_stack/generate.py and never imports plexwash): one plain ROI a
 low-count ROI, washed with the default recipe and the generator's true spillover matrix.
 Figures as in ``benchmarks/tissue_accuracy.py`` (hot pixels of the truth left out).
 Measured on this fixture (seed 3, plain / low-count): background removed in tissue 95.5 /
-91.7 %, on glass 99.6 / 99.6 %; kept: worst cell stain 96.6 / 95.0 %, dim stain 100.6 /
-98.2 %, fibres 92.0 / 90.6 %, diffuse 96.4 / 83.1 %; ghost left in the failed stain 0.6 /
-1.1 %. Bounds leave a margin of a few points below those; where they sit below the issue's
+91.7 %, on glass 99.6 / 99.6 %; kept: worst cell stain 98.8 / 98.8 % (96.6 / 95.0 % before
+the hot-pixel margin and the lone-pixel rule), dim stain 100.6 / 98.2 %, fibres 97.0 / 92.9 %
+(92.0 / 90.6 % before the line test), diffuse 96.6 / 83.5 %; ghost left in the failed stain
+0.6 / 1.1 %. Bounds leave a margin of a few points below those; where they sit below the issue's
 targets (noted beside each), the target is not met yet. For contrast the single-rate
 speckle step removes at most 80 % of tissue background on the same ROI.
 """
@@ -101,9 +102,9 @@ def test_background_is_removed_in_tissue_and_on_glass(figures):
 
 def test_cells_fibres_and_diffuse_stains_are_kept(figures):
     for fig in figures.values():
-        assert fig["cell"] >= 0.92  # worst cell stain (hot-pixel step included); target 98 %
+        assert fig["cell"] >= 0.97  # worst cell stain (hot-pixel step included); target 98 %
         assert fig["dim"] >= 0.95  # the dim stain, ~3 counts on a few % of pixels; target 98 %
-        assert fig["fibre"] >= 0.86  # 1-2 px fibres at 1-4 counts; target 97 %
+        assert fig["fibre"] >= 0.91  # 1-2 px fibres at 1-4 counts; target 97 %
         assert fig["diffuse"] >= 0.78  # 0.3-0.8 counts over the stroma (0.15-0.4 low-count); target 95 %
 
 

@@ -23,6 +23,7 @@ _NOT_POSITIVE = 0
 _DROPPED = 1  # positive, failed both tests and is not next to a core pixel
 _KEPT = 2  # kept by its own value or as a neighbour of a core pixel
 _CORE = 3  # kept by the local-density test
+_LONE = 4  # kept, and bright enough to be kept even alone (see ``lone_cut``)
 
 
 @nb.njit(cache=True, nogil=True)
@@ -168,8 +169,8 @@ def centre_histogram(image, counts, threshold, radius, histogram):
 
 
 @nb.njit(cache=True, nogil=True)
-def speckle_filter(image, counts, wide, zone, threshold, radius, min_count, wide_radius, wide_min_count,
-                   support_min_count, value_cut, low_mean, keep_touching, min_area, out, removed):
+def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count, wide_radius, wide_min_count,
+                   support_min_count, value_cut, low_mean, keep_touching, min_area, lone_cut, out, removed):
     """Local-density speckle filter of one channel; return how many pixels were set to 0.
 
     Parameters (all arrays C-contiguous)
@@ -178,6 +179,7 @@ def speckle_filter(image, counts, wide, zone, threshold, radius, min_count, wide
     counts : uint16 (H, W), from :func:`window_counts` (centre included)
     threshold : float32, a pixel is positive when ``value > threshold``
     wide : uint16 (H, W), :func:`window_counts` with ``wide_radius``
+    line : uint8 (H, W), :func:`line_dense`; a marked positive pixel is dense
     zone : uint8 (H, W), the background zone of each pixel (indexes the tables below)
     radius : int, window half-width
     min_count : int32 (Z, 2r+2, 2r+2); ``min_count[z, a, b]`` = smallest neighbour count kept
@@ -191,7 +193,9 @@ def speckle_filter(image, counts, wide, zone, threshold, radius, min_count, wide
         inside the array) have a mean above ``low_mean[floor(v)]`` is too low for their
         structure and is not kept by density
     keep_touching : bool; also keep positive pixels touching a core pixel (DBSCAN border points)
-    min_area : int; kept 8-connected components smaller than this are dropped
+    min_area : int; kept 8-connected components smaller than this are dropped, unless one of
+        their pixels has ``value > lone_cut[zone]``
+    lone_cut : float64 (Z,)
     out, removed : float32 (H, W), filled completely
     """
     height, width = image.shape
@@ -209,6 +213,8 @@ def speckle_filter(image, counts, wide, zone, threshold, radius, min_count, wide
                     wrows = min(height - 1, y + wide_radius) - max(0, y - wide_radius) + 1
                     wcols = min(width - 1, x + wide_radius) - max(0, x - wide_radius) + 1
                     dense = np.int32(wide[y, x]) - 1 >= wide_min_count[z, wrows, wcols]
+                if not dense and line[y, x] != 0:
+                    dense = True
                 if dense and not _below_neighbours(image, y, x, v, low_mean):
                     state[y, x] = _CORE
                 elif v > value_cut[z]:
@@ -218,6 +224,10 @@ def speckle_filter(image, counts, wide, zone, threshold, radius, min_count, wide
     if keep_touching:  # DBSCAN border points at distance 1: positive pixels touching a core pixel
         _keep_touching(state)
     if min_area > 1:
+        for y in range(height):
+            for x in range(width):
+                if state[y, x] >= _KEPT and image[y, x] > lone_cut[zone[y, x]]:
+                    state[y, x] = _LONE
         _drop_small_components(state, min_area)
     n_removed = 0
     for y in range(height):
@@ -283,7 +293,8 @@ def _union(parent, i, j):
 
 @nb.njit(cache=True, nogil=True)
 def _drop_small_components(state, min_area):
-    """Mark kept pixels of 8-connected components smaller than ``min_area`` as dropped.
+    """Mark kept pixels of 8-connected components smaller than ``min_area`` as dropped,
+    unless the component holds a ``_LONE`` pixel.
 
     Two-pass labelling: provisional labels linked by union-find (neighbours W, NW, N, NE),
     then sizes per root. Labels are compact, so ``parent`` stays small and cached.
@@ -312,13 +323,57 @@ def _drop_small_components(state, min_area):
                 n_labels += 1
             labels[y, x] = label
     size = np.zeros(n_labels, np.int32)
+    lone = np.zeros(n_labels, np.bool_)
     for label in range(n_labels):
         parent[label] = _find(parent, label)
     for y in range(height):
         for x in range(width):
             if state[y, x] >= _KEPT:
-                size[parent[labels[y, x]]] += 1
+                root = parent[labels[y, x]]
+                size[root] += 1
+                lone[root] |= state[y, x] == _LONE  # keeps its component whatever its size
     for y in range(height):
         for x in range(width):
-            if state[y, x] >= _KEPT and size[parent[labels[y, x]]] < min_area:
-                state[y, x] = _DROPPED
+            if state[y, x] >= _KEPT:
+                root = parent[labels[y, x]]
+                if size[root] < min_area and not lone[root]:
+                    state[y, x] = _DROPPED
+
+
+@nb.njit(cache=True, nogil=True)
+def line_dense(image, threshold, upper, offsets, zone, line_min_count, out):
+    """Mark positive pixels through which a line of dim positive pixels passes (uint8 ``out``).
+
+    ``offsets`` (O, 2 * half, 2) int64: for each orientation the pixel offsets of the line
+    through a pixel, ``half`` ahead then ``half`` behind (see
+    :func:`plexwash.qc.steps.speckle_tests.line_offsets`). On each line the pixels inside the
+    array are ``trials``; ``n`` of them are positive and not above ``upper`` (dim). The pixel
+    is marked when, for some orientation, both sides hold at least one such pixel and
+    ``n >= line_min_count[zone, trials]``.
+    """
+    height, width = image.shape
+    n_lines, length, _ = offsets.shape
+    half = length // 2
+    for y in range(height):
+        for x in range(width):
+            out[y, x] = 0
+            if not image[y, x] > threshold:
+                continue
+            z = zone[y, x]
+            for o in range(n_lines):
+                ahead = 0
+                behind = 0
+                trials = 0
+                for k in range(length):
+                    yy = y + offsets[o, k, 0]
+                    xx = x + offsets[o, k, 1]
+                    if 0 <= yy < height and 0 <= xx < width:
+                        trials += 1
+                        if threshold < image[yy, xx] <= upper:
+                            if k < half:
+                                ahead += 1
+                            else:
+                                behind += 1
+                if ahead > 0 and behind > 0 and ahead + behind >= line_min_count[z, trials]:
+                    out[y, x] = 1
+                    break

@@ -11,6 +11,18 @@ Gaussian-ish speck falls off steeply from ring 1 to ring 2 and is left alone. On
 detected pixels are restored, with the (low) median of their 8 neighbours (detect, then
 restore: Chan, Ho & Nikolova 2005).
 
+Amplitude
+    On one channel a one-pixel speck of real stain and a hot pixel look alike: both are
+    isolated extreme values that no Poisson count at the local rate explains. What tells
+    them apart is how far above its neighbourhood the pixel stands. A real pixel-sized
+    object carries at most what the stain puts in one pixel (tens of counts in the tissue
+    and demo cohorts); a hot pixel is a detector event that adds hundreds. The margin
+    ``min_excess`` (50 counts, the usual hot-pixel threshold of imaging mass cytometry
+    preprocessing: common practice, value from memory) is the line between them: below it
+    an isolated pixel is left to the speckle step, which keeps it when its value is
+    improbable for background (its single-pixel rule, ``lone_alpha``). A channel whose
+    stain makes brighter single-pixel objects can raise the margin in the recipe.
+
 Chunked channels run the same kernel under ``map_overlap`` with ``HOT_PIXEL_DEPTH`` (the
 8 neighbours and the ring beyond), so every block equals the whole-image result.
 
@@ -56,7 +68,8 @@ class HotPixelSettings:
         5.0, "a hot pixel exceeds this many times the brightest of its 8 neighbours", low=1.0, high=1000.0
     )
     min_excess: float = setting(
-        10.0, "and exceeds that neighbour by at least this many counts", low=0.0, high=1e6
+        50.0, "and exceeds that neighbour by at least this many counts (a real one-pixel speck of stain"
+        " stays below it; raise it for channels with brighter real single-pixel objects)", low=0.0, high=1e6
     )
     flat_sigmas: float = setting(
         6.0,
@@ -68,7 +81,7 @@ class HotPixelSettings:
 
 
 def remove_hot_pixels(
-    image, *, ratio: float = 5.0, min_excess: float = 10.0, flat_sigmas: float = 6.0
+    image, *, ratio: float = 5.0, min_excess: float = 50.0, flat_sigmas: float = 6.0
 ) -> StepResult:
     """Restore hot pixels of one channel from the median of their 8 neighbours.
 

@@ -16,10 +16,14 @@ Speckle
       ``Y ~ Poisson(level)``, so bright tiny objects survive.
 
     Then kept pixels are grouped into 8-connected components and components smaller than
-    ``min_area`` are dropped. Bright pixels take part in that rule like any other: the
-    default ``min_area = 2`` removes a single isolated bright count (a hot-ish speckle)
-    while a real speck of two or more pixels stays. Dropped pixels are set to 0; pixels at
-    or below ``threshold`` are left as they are.
+    ``min_area`` are dropped, unless one of their pixels is so bright that background
+    cannot explain it anywhere in the ROI: ``P(Y >= value) < lone_alpha`` under
+    ``Poisson(level)`` at the channel's densest background level, with ``lone_alpha = 1e-12`` about ``value_alpha`` spread over a
+    million pixels (a Bonferroni bound on one false keep per ROI). So the default
+    ``min_area = 2`` removes a single isolated count of two or three while a one-pixel
+    speck of real stain (ten counts or more on a background of 0.1) stays; hot pixels are
+    the hot-pixel step's, which runs first. Dropped pixels are set to 0; pixels at or below
+    ``threshold`` are left as they are.
 
 Background
     ``p`` (the background positive rate) and ``level`` (the background mean) are estimated
@@ -88,6 +92,9 @@ from .speckle_tests import (
     binomial_min_count,
     drop_residue,
     fit_rate,
+    line_offsets,
+    line_tables,
+    lone_cuts,
     low_mean_table,
     poisson_level,
     poisson_min_value,
@@ -237,16 +244,17 @@ def _background_from_histogram(histogram: np.ndarray | None, settings: SpeckleSe
 def speckle_depth(settings: SpeckleSettings) -> int:
     """Overlap that makes the chunked speckle filter equal the whole-image filter.
 
-    The larger of ``radius`` and ``wide_radius`` for the window counts, 1 for the neighbour
+    The largest of ``radius``, ``wide_radius`` and ``line_half`` for the window and line counts, 1 for the neighbour
     mean and the ``keep_touching`` rule, ``min_area - 1`` for the component-size rule (see the
     module notes).
 
     Examples
     --------
-    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=0, min_area=2))
+    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=0, line_half=0, min_area=2))
     4
     """
-    return max(int(settings.radius), int(settings.wide_radius)) + 1 + max(int(settings.min_area) - 1, 0)
+    return (max(int(settings.radius), int(settings.wide_radius), int(settings.line_half)) + 1
+            + max(int(settings.min_area) - 1, 0))
 
 
 def remove_speckle(
@@ -261,6 +269,9 @@ def remove_speckle(
     wide_radius: int = 5,
     support_alpha: float = 0.2,
     edge_alpha: float = 1e-3,
+    lone_alpha: float = 1e-12,
+    line_half: int = 4,
+    line_alpha: float = 0.003,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
     """Remove sparse background counts of one channel by a local-density test.
@@ -295,6 +306,15 @@ def remove_speckle(
         beside cells.
     min_area : int, optional
         Smallest kept component, in pixels (1: no size rule).
+    line_half : int, optional
+        A pixel is also dense when, on a line of ``2 * line_half`` pixels through it (16
+        orientations and their phases, both sides represented), its dim positive pixels are improbably many
+        (binomial test at ``line_alpha / T`` for ``T`` lines, Bonferroni; 0: off).
+    line_alpha : float, optional
+        False-keep rate of the line test for one background pixel.
+    lone_alpha : float, optional
+        A smaller component stays when one of its pixels has ``P(Y >= value) < lone_alpha``
+        under the channel's densest Poisson background (0: off).
     wide_radius, support_alpha : optional
         A pixel is also dense when its ``(2R+1)^2`` window holds improbably many dim
         positive neighbours (binomial test at ``alpha``; dim: not above the value test's
@@ -330,7 +350,8 @@ def remove_speckle(
     """
     values = {"threshold": threshold, "radius": radius, "alpha": alpha, "value_alpha": value_alpha,
               "keep_touching": keep_touching, "min_area": min_area, "edge_alpha": edge_alpha,
-              "wide_radius": wide_radius, "support_alpha": support_alpha}
+              "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
+              "line_half": line_half, "line_alpha": line_alpha}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
@@ -439,6 +460,9 @@ def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate
         "value_cut": value_cut,
         "low_mean": low_mean_table(float(settings.edge_alpha)),
         "min_area": int(settings.min_area),
+        "lone_cut": lone_cuts(levels, settings),
+        "line_half": int(settings.line_half),
+        "line_min_count": line_tables(levels, rates, settings),
         "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
         "keep_touching": bool(settings.keep_touching),
         "zoned": zoned,
@@ -457,9 +481,14 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
     if params["wide_radius"] > 0:
         wide = np.empty(image.shape, np.uint16)
         _k.window_counts(image, params["threshold"], params["wide_radius"], wide, params["wide_upper"])
-    kernel_args = {k: v for k, v in params.items() if k not in ("pass_through", "zoned", "wide_upper", "levels")}
-    return _k.speckle_filter(image, counts, wide, np.ascontiguousarray(zone, np.uint8), out=out,
-                             removed=removed, **kernel_args)
+    zone = np.ascontiguousarray(zone, np.uint8)
+    line = np.zeros(image.shape, np.uint8)
+    if params["line_half"] > 0:
+        _k.line_dense(image, params["threshold"], params["wide_upper"], line_offsets(params["line_half"]), zone,
+                      params["line_min_count"], line)
+    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_min_count")
+    kernel_args = {k: v for k, v in params.items() if k not in skip}
+    return _k.speckle_filter(image, counts, wide, line, zone, out=out, removed=removed, **kernel_args)
 
 
 def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: SpeckleSettings | None = None):

@@ -30,10 +30,25 @@ class SpeckleSettings:
         False, "also keep positive pixels touching a dense pixel (more of thin processes, more background beside cells)"
     )
     min_area: int = setting(2, "drop kept groups of fewer pixels (8-connected)", low=1, high=100)
+    lone_alpha: float = setting(
+        1e-12, "a kept group smaller than min_area stays when one of its pixels is this improbable for the"
+        " local background (a one-pixel speck of real stain; about value_alpha over a million pixels,"
+        " Bonferroni; 0: off)", low=0.0, high=0.5,
+    )
     wide_radius: int = setting(
         5, "half-width of a wider window: a pixel is also kept when it is dense there (alpha) and at least"
         " mildly dense in its own window (support_alpha); keeps dim diffuse stains and thin fibres (0: off)",
         low=0, high=50,
+    )
+    line_half: int = setting(
+        4, "half-length of the line windows (8 orientations): a pixel is also kept when the dim positive"
+        " pixels on a line through it are improbably many (line_alpha over all lines, Bonferroni); keeps thin"
+        " fibres (0: off)",
+        low=0, high=50,
+    )
+    line_alpha: float = setting(
+        0.003, "false-keep rate of the line test for one background pixel, shared by all its lines", low=0.0,
+        high=0.5, low_open=True,
     )
     support_alpha: float = setting(
         0.2, "how improbable for background the own window's count must be for the wider window to count",

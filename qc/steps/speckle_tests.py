@@ -20,6 +20,15 @@ Low against the neighbours
     ``P(Y <= v)`` is the regularised upper incomplete gamma function ``Q(v + 1, mu)``
     (Abramowitz & Stegun 6.5.2, 26.4.19), so the rule is ``mu > Q^-1(v + 1, edge_alpha)``
     (:func:`low_mean_table`, ``scipy.special.gammainccinv``).
+Line test
+    Binomial test on the dim positive pixels of a line of ``2 * line_half`` pixels through
+    a positive pixel, in eight orientations and the phases a digital line can take, at
+    ``line_alpha / T`` for ``T`` such lines (Bonferroni over the lines): a thin fibre puts most of its pixels on one of the lines, where a square
+    window dilutes them among background (:func:`line_tables`, kernel ``line_dense``).
+Lone pixels
+    Poisson upper tail at ``lone_alpha`` (1e-12, about ``value_alpha`` over a million
+    pixels, Bonferroni): a pixel this bright is kept even when it is alone, so a one-pixel
+    speck of real stain survives the component-size rule (:func:`lone_cuts`).
 Residue of removed spillover
     One-sided Poisson test of the counts compensation left: see :func:`drop_residue`.
 Background rate
@@ -49,6 +58,11 @@ __all__ = [
     "box3",
     "drop_residue",
     "fit_rate",
+    "LINE_ORIENTATIONS",
+    "LINE_PHASES",
+    "line_offsets",
+    "line_tables",
+    "lone_cuts",
     "low_mean_table",
     "min_count_table",
     "poisson_level",
@@ -245,3 +259,72 @@ def box3(values: np.ndarray) -> np.ndarray:
         for dx in range(3):
             total += padded[dy:dy + height, dx:dx + width]
     return total
+
+
+#: Orientations of the line test: every 22.5 degrees, so a fibre at any angle lies within
+#: 11.25 degrees of one of them.
+LINE_ORIENTATIONS = 16
+#: Where between grid rows a line may pass the centre pixel (fractions of a pixel): a
+#: digital line of slope 1/2 has different pixel patterns for different phases.
+LINE_PHASES = (-0.375, -0.125, 0.125, 0.375)
+
+
+def line_offsets(half: int) -> np.ndarray:
+    """(T, 2 * half, 2) int64: the pixels of each line through a pixel (``half`` ahead, then behind).
+
+    For every orientation ``o * 180 / O`` degrees and phase ``c`` of :data:`LINE_PHASES`,
+    the line steps one pixel along its major axis and takes, at step ``k``, the nearest
+    pixel across it, ``round(k * slope + c)`` (a digital straight line, Bresenham 1965,
+    through the centre pixel). Lines with the same pixels are listed once: the axes and
+    diagonals have one pattern, the slopes of 1/2 and 2 several.
+    """
+    templates = []
+    for o in range(LINE_ORIENTATIONS):
+        angle = np.pi * o / LINE_ORIENTATIONS
+        dy, dx = np.sin(angle), np.cos(angle)
+        steep = abs(dy) > abs(dx)
+        slope = dx / dy if steep else dy / dx
+        sign = np.sign(dy) if steep else np.sign(dx)
+        for phase in LINE_PHASES:
+            pixels = []
+            for k in list(range(1, half + 1)) + list(range(-1, -half - 1, -1)):
+                across = int(np.floor(k * slope + phase + 0.5))
+                along = int(sign * k)
+                pixels.append((along, across) if steep else (across, along))
+            if pixels not in templates:
+                templates.append(pixels)
+    return np.array(templates, np.int64).reshape(len(templates), 2 * half, 2)
+
+
+def line_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
+    """``table[z, t]``: smallest dim positive count on a line of ``t`` pixels kept in zone ``z``.
+
+    Exact one-sided binomial test at ``line_alpha / T`` for the ``T`` lines of
+    :func:`line_offsets`: Bonferroni over the lines (Bonferroni 1936), so a background pixel
+    is kept by some line with probability at most ``line_alpha``.
+    """
+    half = int(settings.line_half)
+    if rates is None:
+        rates = positive_rate(levels, settings.threshold)
+    rates = np.asarray(rates, np.float64)
+    trials = np.arange(2 * half + 1)
+    tests = len(line_offsets(half)) if half > 0 else 1
+    table = binomial_min_count(trials[None, :], rates[:, None], settings.line_alpha / tests).astype(np.int32)
+    table[rates >= 1.0] = 0
+    return np.ascontiguousarray(table)
+
+
+def lone_cuts(levels: np.ndarray, settings) -> np.ndarray:
+    """Per zone, the value above which a pixel is kept even alone (``lone_alpha``; inf: off).
+
+    Judged against the densest background of the channel (its highest finite zone level),
+    not the pixel's own zone: a region with few counts can have its level estimated as 0,
+    where every count would look improbable, and a lone pixel is kept only when no
+    background of the ROI explains it.
+    """
+    levels = np.asarray(levels, np.float64)
+    if settings.lone_alpha <= 0:
+        return np.full(len(levels), np.inf)
+    finite = levels[np.isfinite(levels)]  # an infinite zone keeps every pixel anyway
+    cut = poisson_min_value(float(np.max(finite, initial=0.0)), settings.lone_alpha) - 1.0
+    return np.full(len(levels), cut, np.float64)

@@ -1,0 +1,86 @@
+"""The line test of the speckle step: thin fibres kept, background false keeps bounded.
+
+A 1-px fibre at 1-2 counts per pixel puts only a few positives in a 5 x 5 window, among
+24 neighbours of background; on a line of 8 pixels through it the same positives stand out.
+The test is an exact one-sided binomial test at ``line_alpha / T`` per line (``T`` lines: 16
+orientations and the phases of a digital line), so by
+Bonferroni's inequality (Bonferroni 1936) a background pixel is kept by some line with
+probability at most ``line_alpha``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from plexwash.qc.steps import _kernels as _k
+from plexwash.qc.steps.speckle import remove_speckle
+from plexwash.qc.steps.speckle_settings import SpeckleSettings
+from plexwash.qc.steps.speckle_tests import line_offsets, line_tables, positive_rate
+
+
+def fibres(seed=0, shape=(220, 220), background=0.15, level=1.5, n=8):
+    """Poisson background with curved 1-px fibres (persistent random walks) at ``level``."""
+    rng = np.random.default_rng(seed)
+    expect = np.full(shape, background)
+    fibre = np.zeros(shape, bool)
+    for _ in range(n):
+        y, x = rng.uniform(30, shape[0] - 30), rng.uniform(30, shape[1] - 30)
+        heading = rng.uniform(0, 2 * np.pi)
+        for _ in range(120):
+            heading += rng.normal(0, 0.08)
+            y, x = y + np.sin(heading), x + np.cos(heading)
+            iy, ix = int(round(y)), int(round(x))
+            if 0 <= iy < shape[0] and 0 <= ix < shape[1]:
+                fibre[iy, ix] = True
+    expect[fibre] += level
+    return rng.poisson(expect).astype(np.float32), fibre
+
+
+def kept(img, fibre, **settings):
+    out = remove_speckle(img, **settings).image
+    return out[fibre].sum() / img[fibre].sum(), 1.0 - out[~fibre].sum() / img[~fibre].sum()
+
+
+def test_lines_keep_thin_fibres_that_square_windows_lose():
+    """Regression: 1-px fibres at 2 counts per pixel on 0.15 counts of background."""
+    for seed in (0, 1, 2):
+        img, fibre = fibres(seed=seed, level=2.0)
+        with_lines, background_with = kept(img, fibre)
+        without, background_without = kept(img, fibre, line_half=0)
+        assert without < 0.4  # the square windows alone lose most of such a fibre
+        assert with_lines >= without + 0.1
+        assert background_with >= background_without - 0.005  # away from the fibres, little cost
+        assert background_with >= 0.96
+
+
+def test_lines_are_digital_straight_lines():
+    """Each line: distinct pixels, one per step along its major axis, within half a pixel of
+    a straight line through the centre (up to the phase), both halves mirror images."""
+    half = 4
+    lines = line_offsets(half)
+    assert len({tuple(map(tuple, line)) for line in lines}) == len(lines)
+    for line in lines:
+        ahead, behind = line[:half], line[half:]
+        major = 0 if np.abs(ahead[:, 0]).max() == half else 1
+        steps = np.arange(1, half + 1)
+        assert np.array_equal(np.abs(ahead[:, major]), steps) and np.array_equal(np.abs(behind[:, major]), steps)
+        k = np.concatenate([ahead[:, major], behind[:, major]]).astype(float)
+        across = line[:, 1 - major].astype(float)
+        slope = np.polyfit(k, across, 1)[0]
+        fit = np.polyfit(k, across, 1)
+        assert np.abs(across - np.polyval(fit, k)).max() <= 0.75 and abs(slope) <= 1.0 + 1e-9
+    assert len(lines) >= 16  # every 11.25 degrees, several phases where the slope is not 0 or 1
+
+
+def test_line_marks_on_background_stay_under_alpha():
+    """Pure Poisson background: the share of positive pixels marked by some line is at most line_alpha."""
+    rng = np.random.default_rng(5)
+    settings = SpeckleSettings()
+    for level in (0.05, 0.15, 0.3):
+        img = rng.poisson(level, (300, 300)).astype(np.float32)
+        table = line_tables(np.array([level]), positive_rate(np.array([level]), 0.5), settings)
+        marks = np.zeros(img.shape, np.uint8)
+        _k.line_dense(img, np.float32(0.5), np.inf, line_offsets(settings.line_half),
+                      np.zeros(img.shape, np.uint8), table, marks)
+        positive = img > 0.5
+        assert marks[positive].mean() <= settings.line_alpha
+        assert not marks[~positive].any()
