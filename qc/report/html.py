@@ -29,7 +29,8 @@ from ..table import (
     read_samples_copy,
 )
 from .handoff import section_audit_and_composites
-from .plots import plot_removed, plot_sbr, plot_spillover
+from .heatmaps import heatmap_html
+from .plots import plot_spillover
 from .sheets import grouped, section_sheets
 from .style import CSS, escape, img_tag
 from .tables import SCRIPT, section_batches, sortable_table
@@ -283,14 +284,14 @@ def _section_sbr(rows, done, samples) -> str:
                + "</p>")
     values = [_float(r.get("sbr")) for r in rows if r["roi"] in measured]
     logs = np.log10([v for v in values if v is not None and v > 0] or [1.0, 10.0])
-    limits = (float(logs.min()), float(max(logs.max(), logs.min() + 1e-6)))  # one scale for all pages
+    low, high = float(logs.min()), float(max(logs.max(), logs.min() + 1e-6))  # one scale for all pages
     for title, page in _pages(rois, samples):
-        raw, channels = _sbr_grid(rows, page, "raw")
-        washed, channels_w = _sbr_grid(rows, page, "washed")
+        panels = [(stage, np.log10(grid), channels)
+                  for stage in ("raw", "washed") for grid, channels in [_sbr_grid(rows, page, stage)]]
         if title:
             out.append(f"<h3>{title}</h3>")
-        out.append(img_tag(plot_sbr(raw, washed, page, channels, channels_w, limits=limits),
-                        f"SBR heatmaps raw and washed {title}".strip()))
+        out.append(heatmap_html(panels, page, vmin=low, vmax=high, cmap="cividis", label="log10 SBR",
+                                alt=f"SBR heatmaps raw and washed {title}".strip()))
     out.append("</section>")
     return "\n".join(out)
 
@@ -406,11 +407,13 @@ def _section_removed(latest, done, samples) -> str:
     every = [g for s in steps for g in [_removed_grid(latest, rois, s)[0]] if np.isfinite(g).any()]
     top = max([float(np.nanmax(g)) for g in every] + [1e-4])  # one scale for all pages
     for title, page in _pages(rois, samples):
-        grids = [(s, *_removed_grid(latest, page, s)) for s in steps]
+        panels = [(step(s).label, 100 * grid, channels)
+                  for s in steps for grid, channels in [_removed_grid(latest, page, s)]]
         if title:
             out.append(f"<h3>{title}</h3>")
-        out.append(img_tag(plot_removed(grids, page, top=top),
-                        f"removed fraction heatmaps per step {title}".strip()))
+        out.append(heatmap_html(panels, page, vmin=0.0, vmax=100 * top, cmap="PuBuGn",
+                                label="% of signal removed",
+                                alt=f"removed fraction heatmaps per step {title}".strip()))
     out.append("</section>")
     return "\n".join(out)
 
