@@ -30,9 +30,9 @@ from ..table import (
 )
 from .handoff import section_audit_and_composites
 from .heatmaps import heatmap_html
-from .plots import plot_spillover
+from .plots import batch_matrices, section_spillover
 from .sheets import grouped, section_sheets
-from .style import CSS, escape, img_tag
+from .style import CSS, escape
 from .tables import SCRIPT, section_batches, sortable_table
 from .thumbnails import (
     CONTRAST_PERCENTILES,
@@ -179,7 +179,8 @@ def _render(ctx: dict, *, thumbnail_rois: int) -> str:
         _section_flags(rows),
         _section_outliers(outliers, rows),
         _section_removed(latest, done, ctx["samples"]),
-        _section_spillover(ctx["matrix"], ctx["matrix_error"], ctx["recipe"]),
+        section_spillover(ctx["matrix"], ctx["matrix_error"], ctx["recipe"],
+                          batch_matrices(ctx["out_dir"], ctx["recipe"], ctx["latest"], ctx["samples"])),
         section_sheets(ctx, done, rows),
         _section_thumbnails(ctx, done, rows, thumbnail_rois),
         section_audit_and_composites(ctx["out_dir"]),
@@ -414,38 +415,6 @@ def _section_removed(latest, done, samples) -> str:
         out.append(heatmap_html(panels, page, vmin=0.0, vmax=100 * top, cmap="PuBuGn",
                                 label="% of signal removed",
                                 alt=f"removed fraction heatmaps per step {title}".strip()))
-    out.append("</section>")
-    return "\n".join(out)
-
-
-def _section_spillover(matrix, error, recipe) -> str:
-    out = ['<section id="spillover"><h2>Spillover matrix used</h2>']
-    if matrix is None:
-        if error:
-            out.append(f"<p class=\"failed\">{escape(error)}</p>")
-        elif recipe is not None and not recipe.compensation.enabled:
-            out.append("<p>Compensation is disabled in the recipe.</p>")
-        else:
-            out.append("<p>No spillover matrix was given: compensation did not run.</p>")
-        out.append("</section>")
-        return "\n".join(out)
-    values = np.asarray(matrix.values, float)
-    off = values.copy()
-    np.fill_diagonal(off, 0.0)
-    out.append('<p class="note">Entry (row i, column j): fraction of channel i\'s signal measured '
-               "in channel j, in percent; the diagonal (1) is left blank. "
-               f"Largest off-diagonal entry {100 * off.max():.3g} %; "
-               f"{int(np.count_nonzero(off > 0))} non-zero pairs.</p>")
-    out.append(img_tag(plot_spillover(off, list(matrix.channels)), "spillover matrix heatmap"))
-    pairs = sorted(((values[i, j], matrix.channels[i], matrix.channels[j])
-                    for i in range(len(values)) for j in range(len(values))
-                    if i != j and values[i, j] > 0), reverse=True)
-    if pairs:
-        out.append("<details><summary>Non-zero pairs</summary><table><tr><th>from</th><th>into</th>"
-                   "<th>%</th></tr>")
-        out += [f"<tr><td>{escape(a)}</td><td>{escape(b)}</td><td class=\"num\">{100 * v:.3g}</td></tr>"
-                for v, a, b in pairs]
-        out.append("</table></details>")
     out.append("</section>")
     return "\n".join(out)
 
