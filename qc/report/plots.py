@@ -141,6 +141,6 @@ def batch_matrices(out_dir: Path, recipe, latest: Mapping, samples: Mapping) -> 
                      f"<td class=\"hash\">{digest}</td></tr>")
     return ("<h3>Matrices per batch</h3><p class=\"note\">These batches were compensated with a "
             "matrix of their own (a copy in the run folder; the ledger records each ROI's, and the "
-            "<code>spillover</code> column of quality.csv names it); the others with the matrix "
-            "above.</p><table><tr><th>batch</th><th>matrix</th><th>ROIs</th><th>largest entry %</th>"
+            "<code>spillover</code> column of quality.csv names it); other batches used the run's "
+            "matrix, if any.</p><table><tr><th>batch</th><th>matrix</th><th>ROIs</th><th>largest entry %</th>"
             "<th>sha256</th></tr>" + "".join(lines) + "</table>")
