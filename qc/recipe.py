@@ -76,6 +76,10 @@ class Recipe:
         with the channel's overrides applied) for channels that have overrides.
     source : Path or None
         The file the recipe was read from (relative paths in it resolve against its folder).
+    batch_spillover : mapping
+        ``[compensation.batches]``: batch (as the sample sheet names it) -> spillover matrix
+        CSV for that batch's ROIs, as written (relative to the recipe); batches not listed
+        use ``[compensation] spillover``.
     """
 
     steps: Mapping[str, object]
@@ -85,6 +89,7 @@ class Recipe:
     source: Path | None = None
     audit: AuditSettings | None = None
     composite: CompositeSettings | None = None
+    batch_spillover: Mapping[str, str] = dataclasses.field(default_factory=dict)
 
     def __post_init__(self):
         classes = section_classes()
@@ -101,7 +106,7 @@ class Recipe:
     def __reduce__(self):  # mapping proxies do not pickle: rebuild from plain dicts
         overrides = {section: dict(table) for section, table in self.overrides.items()}
         return _rebuild, (dict(self.steps), self.quality, self.output, overrides, self.source,
-                          self.audit, self.composite)
+                          self.audit, self.composite, dict(self.batch_spillover))
 
     def _with_section(self, section: str, settings, **changes) -> Recipe:
         if section in OTHER_SECTIONS:
@@ -154,6 +159,18 @@ class Recipe:
             path = self.source.parent / path
         return path
 
+    def batch_spillover_paths(self) -> dict[str, Path]:
+        """``[compensation.batches]`` resolved against the recipe: batch -> matrix CSV."""
+        out = {}
+        for batch, name in self.batch_spillover.items():
+            path = Path(name)
+            out[batch] = path if path.is_absolute() or self.source is None else self.source.parent / path
+        return out
+
+    def with_batch_spillover(self, table: Mapping[str, str]) -> Recipe:
+        """A copy whose ``[compensation.batches]`` is ``table`` (batch -> CSV name)."""
+        return dataclasses.replace(self, batch_spillover=_batch_table(table, where=self.source or "recipe"))
+
     def to_dict(self) -> dict:
         """Plain nested dict of every setting (the canonical form that is hashed)."""
         out = {s: dataclasses.asdict(getattr(self, s)) for s in SECTION_ORDER}
@@ -163,6 +180,8 @@ class Recipe:
                 ch: {k: v for k, v in dataclasses.asdict(obj).items() if v != base[k]}
                 for ch, obj in sorted(table.items())
             }
+        if self.batch_spillover:  # only when set: recipes without it keep their hash
+            out["compensation"]["batches"] = dict(sorted(self.batch_spillover.items()))
         return out
 
     def sha256(self) -> str:
@@ -220,9 +239,25 @@ def _recipe(sections: Mapping[str, object], **extra) -> Recipe:
     return Recipe(steps=steps, **{name: sections[name] for name in OTHER_SECTIONS}, **extra)
 
 
-def _rebuild(steps: dict, quality, output, overrides: dict, source, audit=None, composite=None) -> Recipe:
+def _rebuild(steps: dict, quality, output, overrides: dict, source, audit=None, composite=None,
+             batch_spillover=None) -> Recipe:
     return _recipe({**steps, "quality": quality, "output": output, "audit": audit, "composite": composite},
-                   overrides=_freeze(overrides), source=source)
+                   overrides=_freeze(overrides), source=source,
+                   batch_spillover=MappingProxyType(dict(batch_spillover or {})))
+
+
+def _batch_table(table, *, where) -> Mapping[str, str]:
+    """Check ``[compensation.batches]``: a table of batch = "matrix.csv" (non-empty text)."""
+    if not isinstance(table, Mapping):
+        raise InputError(where, "compensation.batches must be a table: one line per batch, "
+                         'e.g. B1 = "spillover-B1.csv"')
+    out = {}
+    for batch, name in table.items():
+        if not isinstance(name, str) or not name.strip():
+            raise InputError(where, f"compensation.batches.{_toml_key(str(batch))} must name a "
+                             f"spillover matrix CSV (text), got {name!r}")
+        out[str(batch)] = name.strip()
+    return MappingProxyType(out)
 
 
 def build_section(cls: type, values: Mapping, *, where, section: str):
@@ -289,12 +324,14 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
     unknown = [k for k in data if k not in classes]
     if unknown:
         raise InputError(where, f"unknown recipe section [{unknown[0]}]; known: {', '.join(classes)}")
-    sections, all_overrides = {}, {}
+    sections, all_overrides, batches = {}, {}, {}
     for name, cls in classes.items():
         table = dict(data.get(name, {}))
         if not isinstance(data.get(name, {}), Mapping):
             raise InputError(where, f"{name} must be a table [{name}]")
         overrides = table.pop("channels", None)
+        if name == "compensation" and "batches" in table:
+            batches = _batch_table(table.pop("batches"), where=where)
         sections[name] = build_section(cls, table, where=where, section=name)
         if overrides is None:
             continue
@@ -311,7 +348,7 @@ def recipe_from_dict(data: Mapping, *, source: Path | None = None) -> Recipe:
             per[channel] = build_settings(cls, {**base, **values}, where=where,
                                           section=f"{name}.channels.{channel}")
         all_overrides[name] = per
-    return _recipe(sections, overrides=_freeze(all_overrides), source=source)
+    return _recipe(sections, overrides=_freeze(all_overrides), source=source, batch_spillover=batches)
 
 
 # --------------------------------------------------------------------------- TOML text
@@ -344,6 +381,8 @@ def _render(recipe: Recipe) -> str:
         f"# Every cleaning setting of a wash. Steps run in this order: {', '.join(STEP_NAMES)}.",
         "# Per-channel overrides: add a table [<section>.channels.<channel>] with the keys to change,",
         "# e.g. [speckle.channels.Nd145] radius = 3, or enabled = false to skip a step for a channel.",
+        "# A spillover matrix per batch (the sample sheet's batch column): a table [compensation.batches]",
+        '# with one line per batch, e.g. B1 = "spillover-B1.csv" (relative to the recipe).',
         "",
     ]
     as_dict = recipe.to_dict()
@@ -356,6 +395,11 @@ def _render(recipe: Recipe) -> str:
             lines.append(f"# {meta.get('doc', '')} (allowed: {describe_range(meta)}; default {_toml_value(field.default)})")
             lines.append(f"{field.name} = {_toml_value(getattr(obj, field.name))}")
         lines.append("")
+        if section == "compensation" and recipe.batch_spillover:
+            lines.append("# Spillover matrix per batch; batches not listed use spillover above.")
+            lines.append("[compensation.batches]")
+            lines.extend(f"{_toml_key(b)} = {_toml_value(n)}" for b, n in sorted(recipe.batch_spillover.items()))
+            lines.append("")
         for channel, changes in as_dict[section].get("channels", {}).items():
             lines.append(f"[{section}.channels.{_toml_key(channel)}]")
             lines.extend(f"{k} = {_toml_value(v)}" for k, v in changes.items())

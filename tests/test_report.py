@@ -95,7 +95,7 @@ def test_report_images_are_embedded_pngs(run_dir):
     from PIL import Image
 
     page = _parse(run_dir / "report.html")
-    # 2 SBR panels in one plot, removed fractions, spillover, 2 ROIs x 6 channels x 3 thumbnails
+    # 2 SBR panels, a removed-fraction panel per step, spillover, 2 ROIs x 6 channels x 3 thumbnails
     assert len(page.images) >= 3 + 2 * len(CHANNELS) * 3
     prefix = "data:image/png;base64,"
     for img in page.images:
@@ -235,3 +235,59 @@ def test_report_json_safe_ledger(run_dir):
     assert lines
     for line in lines:
         assert isinstance(json.loads(line, parse_constant=_refuse_constant), dict)
+
+
+def test_png_rgb_decodes_to_the_same_pixels_with_either_filter():
+    from PIL import Image
+    from plexwash.qc.report.thumbnails import png_rgb
+
+    rng = np.random.default_rng(1)
+    noisy = rng.integers(0, 256, (21, 34, 3), dtype=np.uint8)  # "None" compresses better
+    smooth = np.repeat(np.repeat(noisy[:3, :4], 12, axis=0), 9, axis=1)  # "Up" compresses better
+    for image in (noisy, smooth, noisy[:1]):
+        decoded = Image.open(io.BytesIO(png_rgb(image)))  # reference: Pillow's decoder
+        assert decoded.mode == "RGB"
+        np.testing.assert_array_equal(np.asarray(decoded), image)
+    for image in (noisy[..., 0], smooth[..., 0]):
+        np.testing.assert_array_equal(np.asarray(Image.open(io.BytesIO(png_grey(image)))), image)
+
+
+def test_heatmap_colours_are_those_matplotlib_picks():
+    import matplotlib as mpl
+    from plexwash.qc.report.heatmaps import MISSING_RGB, colour_cells
+
+    rng = np.random.default_rng(2)
+    grid = rng.uniform(-0.5, 3.5, (40, 7))  # beyond both limits too
+    grid[3, 2] = np.nan
+    got = colour_cells(grid, 0.0, 3.0, "cividis")
+    # reference: matplotlib's Normalize + Colormap lookup, what imshow(vmin, vmax) draws
+    rgba = mpl.colormaps["cividis"](mpl.colors.Normalize(0.0, 3.0)(np.ma.masked_invalid(grid)))
+    expected = np.round(255 * rgba[..., :3]).astype(np.uint8)
+    expected[3, 2] = MISSING_RGB
+    np.testing.assert_array_equal(got, expected)
+
+
+def test_heatmap_figure_has_every_row_column_and_a_shared_scale():
+    from PIL import Image
+    from plexwash.qc.report.heatmaps import ROW_PX, column_px, heatmap_html
+
+    rows = [f"slide1/r{k}" for k in range(5)]
+    raw, washed = np.arange(15.0).reshape(5, 3), np.full((5, 2), np.nan)
+    html = heatmap_html([("raw", raw, ["A", "B", "C"]), ("washed", washed, ["A", "B"]),
+                         ("none", np.zeros((5, 0)), [])], rows,
+                        vmin=0.0, vmax=14.0, cmap="cividis", label="log10 SBR", alt="SBR <page>")
+    assert 'aria-label="SBR &lt;page&gt;"' in html and html.count("<img") == 2
+    assert "slide1/r0<br>slide1/r1<br>slide1/r2<br>slide1/r3<br>slide1/r4" in html
+    assert "<span>C</span>" in html and "not measured" in html
+    assert "<span>0</span>" in html and "<span>14</span>" in html and "log10 SBR" in html
+    first = html.split('src="data:image/png;base64,')[1].split('"')[0]
+    image = np.asarray(Image.open(io.BytesIO(base64.b64decode(first))))  # reference: Pillow
+    width = column_px(3)
+    assert image.shape == (5 * ROW_PX, 3 * width, 3)
+    assert f'width="{3 * width}" height="{5 * ROW_PX}"' in html
+    # every cell is a solid block; the first and last cells take the ends of the colour map
+    for i in range(5):
+        for j in range(3):
+            block = image[i * ROW_PX:(i + 1) * ROW_PX, j * width:(j + 1) * width]
+            assert (block == block[0, 0]).all()
+    assert not np.array_equal(image[0, 0], image[-1, -1])

@@ -10,7 +10,8 @@ Contents: the cautions; a summary per ROI; heatmaps of the signal-to-background 
 z-score; the spillover matrix used; the fraction of signal each step removed; small raw,
 washed and removed thumbnails per channel; provenance (versions and hashes).
 
-Modules: :mod:`.html` (the page and its sections), :mod:`.plots` (matplotlib figures),
+Modules: :mod:`.html` (the page and its sections), :mod:`.heatmaps` (heatmaps drawn from
+numpy, labels in HTML), :mod:`.plots` (the spillover figure, matplotlib),
 :mod:`.thumbnails` (image helpers), :mod:`.style` (the stylesheet). The report reads a
 run folder through :mod:`plexwash.qc.ledger` and :mod:`plexwash.qc.table` and never
 imports the run (which calls :func:`write_report` once, at its end).

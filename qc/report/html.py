@@ -29,9 +29,10 @@ from ..table import (
     read_samples_copy,
 )
 from .handoff import section_audit_and_composites
-from .plots import plot_removed, plot_sbr, plot_spillover
+from .heatmaps import heatmap_html
+from .plots import batch_matrices, section_spillover
 from .sheets import grouped, section_sheets
-from .style import CSS, escape, img_tag
+from .style import CSS, escape
 from .tables import SCRIPT, section_batches, sortable_table
 from .thumbnails import (
     CONTRAST_PERCENTILES,
@@ -178,7 +179,8 @@ def _render(ctx: dict, *, thumbnail_rois: int) -> str:
         _section_flags(rows),
         _section_outliers(outliers, rows),
         _section_removed(latest, done, ctx["samples"]),
-        _section_spillover(ctx["matrix"], ctx["matrix_error"], ctx["recipe"]),
+        section_spillover(ctx["matrix"], ctx["matrix_error"], ctx["recipe"],
+                          batch_matrices(ctx["out_dir"], ctx["recipe"], ctx["latest"], ctx["samples"])),
         section_sheets(ctx, done, rows),
         _section_thumbnails(ctx, done, rows, thumbnail_rois),
         section_audit_and_composites(ctx["out_dir"]),
@@ -283,14 +285,14 @@ def _section_sbr(rows, done, samples) -> str:
                + "</p>")
     values = [_float(r.get("sbr")) for r in rows if r["roi"] in measured]
     logs = np.log10([v for v in values if v is not None and v > 0] or [1.0, 10.0])
-    limits = (float(logs.min()), float(max(logs.max(), logs.min() + 1e-6)))  # one scale for all pages
+    low, high = float(logs.min()), float(max(logs.max(), logs.min() + 1e-6))  # one scale for all pages
     for title, page in _pages(rois, samples):
-        raw, channels = _sbr_grid(rows, page, "raw")
-        washed, channels_w = _sbr_grid(rows, page, "washed")
+        panels = [(stage, np.log10(grid), channels)
+                  for stage in ("raw", "washed") for grid, channels in [_sbr_grid(rows, page, stage)]]
         if title:
             out.append(f"<h3>{title}</h3>")
-        out.append(img_tag(plot_sbr(raw, washed, page, channels, channels_w, limits=limits),
-                        f"SBR heatmaps raw and washed {title}".strip()))
+        out.append(heatmap_html(panels, page, vmin=low, vmax=high, cmap="cividis", label="log10 SBR",
+                                alt=f"SBR heatmaps raw and washed {title}".strip()))
     out.append("</section>")
     return "\n".join(out)
 
@@ -406,43 +408,13 @@ def _section_removed(latest, done, samples) -> str:
     every = [g for s in steps for g in [_removed_grid(latest, rois, s)[0]] if np.isfinite(g).any()]
     top = max([float(np.nanmax(g)) for g in every] + [1e-4])  # one scale for all pages
     for title, page in _pages(rois, samples):
-        grids = [(s, *_removed_grid(latest, page, s)) for s in steps]
+        panels = [(step(s).label, 100 * grid, channels)
+                  for s in steps for grid, channels in [_removed_grid(latest, page, s)]]
         if title:
             out.append(f"<h3>{title}</h3>")
-        out.append(img_tag(plot_removed(grids, page, top=top),
-                        f"removed fraction heatmaps per step {title}".strip()))
-    out.append("</section>")
-    return "\n".join(out)
-
-
-def _section_spillover(matrix, error, recipe) -> str:
-    out = ['<section id="spillover"><h2>Spillover matrix used</h2>']
-    if matrix is None:
-        if error:
-            out.append(f"<p class=\"failed\">{escape(error)}</p>")
-        elif recipe is not None and not recipe.compensation.enabled:
-            out.append("<p>Compensation is disabled in the recipe.</p>")
-        else:
-            out.append("<p>No spillover matrix was given: compensation did not run.</p>")
-        out.append("</section>")
-        return "\n".join(out)
-    values = np.asarray(matrix.values, float)
-    off = values.copy()
-    np.fill_diagonal(off, 0.0)
-    out.append('<p class="note">Entry (row i, column j): fraction of channel i\'s signal measured '
-               "in channel j, in percent; the diagonal (1) is left blank. "
-               f"Largest off-diagonal entry {100 * off.max():.3g} %; "
-               f"{int(np.count_nonzero(off > 0))} non-zero pairs.</p>")
-    out.append(img_tag(plot_spillover(off, list(matrix.channels)), "spillover matrix heatmap"))
-    pairs = sorted(((values[i, j], matrix.channels[i], matrix.channels[j])
-                    for i in range(len(values)) for j in range(len(values))
-                    if i != j and values[i, j] > 0), reverse=True)
-    if pairs:
-        out.append("<details><summary>Non-zero pairs</summary><table><tr><th>from</th><th>into</th>"
-                   "<th>%</th></tr>")
-        out += [f"<tr><td>{escape(a)}</td><td>{escape(b)}</td><td class=\"num\">{100 * v:.3g}</td></tr>"
-                for v, a, b in pairs]
-        out.append("</table></details>")
+        out.append(heatmap_html(panels, page, vmin=0.0, vmax=100 * top, cmap="PuBuGn",
+                                label="% of signal removed",
+                                alt=f"removed fraction heatmaps per step {title}".strip()))
     out.append("</section>")
     return "\n".join(out)
 

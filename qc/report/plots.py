@@ -1,4 +1,8 @@
-"""Matplotlib figures of the report, as PNG bytes: SBR, removed fractions, spillover.
+"""The report's spillover section: the matrix as a matplotlib figure (PNG) with its values,
+and the matrices batches had of their own.
+
+The per-ROI heatmaps (SBR, removed fractions) are drawn without matplotlib, see
+:mod:`.heatmaps`.
 
 Figures are drawn on the Agg canvas without pyplot (no global state, no display), so
 reports can be written from worker threads and headless machines.
@@ -7,10 +11,12 @@ reports can be written from worker threads and headless machines.
 from __future__ import annotations
 
 import io
+from collections.abc import Mapping
+from pathlib import Path
 
 import numpy as np
 
-from ..steps.registry import step
+from .style import escape, img_tag
 
 
 def _figure(width, height):
@@ -30,12 +36,6 @@ def _png_of(fig) -> bytes:
     return buffer.getvalue()
 
 
-def _grid_size(n_rows, n_cols, panels):
-    width = min(24.0, max(6.0, panels * (1.6 + 0.24 * n_cols)))
-    height = min(30.0, max(2.4, 1.4 + 0.22 * n_rows))
-    return width, height
-
-
 def _heat(ax, grid, rows, cols, *, cmap, vmin, vmax, title):
     import matplotlib as mpl
 
@@ -53,48 +53,6 @@ def _heat(ax, grid, rows, cols, *, cmap, vmin, vmax, title):
     ax.set_yticklabels(rows, fontsize=7)
     ax.set_title(title, fontsize=10)
     return image
-
-
-def plot_sbr(raw, washed, rois, channels, channels_w, *, limits=None) -> bytes:
-    """Heatmaps of log10 SBR per ROI (rows) and channel (columns), raw and washed, one scale.
-
-    ``limits``: (low, high) of log10 SBR, so that several pages of one cohort share a scale;
-    by default the range of these grids.
-    """
-    logs = [np.log10(g) for g in (raw, washed)]
-    finite = np.concatenate([g[np.isfinite(g)] for g in logs]) if raw.size else np.array([])
-    vmin, vmax = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
-    if limits is not None:
-        vmin, vmax = limits
-    if vmax <= vmin:
-        vmax = vmin + 1.0
-    fig = _figure(*_grid_size(len(rois), max(len(channels), 1), 2))
-    axes = fig.subplots(1, 2, sharey=True)
-    image = None
-    for ax, grid, cols, title in zip(axes, logs, (channels, channels_w), ("raw", "washed"), strict=True):
-        image = _heat(ax, grid, rois, cols, cmap="cividis", vmin=vmin, vmax=vmax, title=title) or image
-    if image is not None:
-        fig.colorbar(image, ax=list(axes), shrink=0.9, label="log10 SBR")
-    return _png_of(fig)
-
-
-def plot_removed(grids, rois, *, top=None) -> bytes:
-    """One heatmap per step of the % of signal it removed: ``grids`` holds (step, grid, channels).
-
-    ``top``: the fraction shown as the top of the scale (shared by pages of one cohort).
-    """
-    n_cols = max(max((len(c) for _, _, c in grids), default=1), 1)
-    fig = _figure(*_grid_size(len(rois), n_cols, len(grids)))
-    axes = np.atleast_1d(fig.subplots(1, len(grids), sharey=True))
-    if top is None:
-        top = max([float(np.nanmax(g)) for _, g, _ in grids if np.isfinite(g).any()] + [1e-4])
-    image = None
-    for ax, (name, grid, channels) in zip(axes, grids, strict=True):
-        image = _heat(ax, 100 * grid, rois, channels, cmap="PuBuGn", vmin=0.0, vmax=100 * top,
-                      title=step(name).label) or image
-    if image is not None:
-        fig.colorbar(image, ax=list(axes), shrink=0.9, label="% of signal removed")
-    return _png_of(fig)
 
 
 def plot_spillover(off, channels) -> bytes:
@@ -120,3 +78,69 @@ def plot_spillover(off, channels) -> bytes:
                             color="black" if grid[i, j] < 0.6 * top else "white")
     fig.colorbar(image, ax=ax, shrink=0.8, label="%")
     return _png_of(fig)
+
+
+def section_spillover(matrix, error, recipe, per_batch: str = "") -> str:
+    """The spillover section: the run's matrix (heatmap and non-zero pairs), then
+    ``per_batch`` (the table of :func:`batch_matrices`)."""
+    out = ['<section id="spillover"><h2>Spillover matrix used</h2>']
+    if matrix is None:
+        if error:
+            out.append(f"<p class=\"failed\">{escape(error)}</p>")
+        elif recipe is not None and not recipe.compensation.enabled:
+            out.append("<p>Compensation is disabled in the recipe.</p>")
+        elif per_batch:
+            out.append("<p>No matrix for the whole run: only the batches below were compensated.</p>")
+        else:
+            out.append("<p>No spillover matrix was given: compensation did not run.</p>")
+        out.append(per_batch + "</section>")
+        return "\n".join(out)
+    values = np.asarray(matrix.values, float)
+    off = values.copy()
+    np.fill_diagonal(off, 0.0)
+    out.append('<p class="note">Entry (row i, column j): fraction of channel i\'s signal measured '
+               "in channel j, in percent; the diagonal (1) is left blank. "
+               f"Largest off-diagonal entry {100 * off.max():.3g} %; "
+               f"{int(np.count_nonzero(off > 0))} non-zero pairs.</p>")
+    out.append(img_tag(plot_spillover(off, list(matrix.channels)), "spillover matrix heatmap"))
+    pairs = sorted(((values[i, j], matrix.channels[i], matrix.channels[j])
+                    for i in range(len(values)) for j in range(len(values))
+                    if i != j and values[i, j] > 0), reverse=True)
+    if pairs:
+        out.append("<details><summary>Non-zero pairs</summary><table><tr><th>from</th><th>into</th>"
+                   "<th>%</th></tr>")
+        out += [f"<tr><td>{escape(a)}</td><td>{escape(b)}</td><td class=\"num\">{100 * v:.3g}</td></tr>"
+                for v, a, b in pairs]
+        out.append("</table></details>")
+    out.append(per_batch + "</section>")
+    return "\n".join(out)
+
+
+def batch_matrices(out_dir: Path, recipe, latest: Mapping, samples: Mapping) -> str:
+    """A table of the batches compensated with a matrix of their own (the run's recipe copy
+    names each in ``[compensation.batches]``): its file, ROIs, largest entry and SHA-256."""
+    if recipe is None or not recipe.batch_spillover:
+        return ""
+    from ..io import sha256_path
+    from ..spillover import read_spillover
+
+    counts: dict[str, int] = {}
+    for name in latest:
+        batch = (samples.get(name) or {}).get("batch")
+        counts[batch] = counts.get(batch, 0) + 1
+    lines = []
+    for batch, path in sorted(recipe.batch_spillover_paths().items()):
+        try:
+            values = np.asarray(read_spillover(path).values, float)
+            largest = f"{100 * float((values - np.diag(np.diag(values))).max()):.3g}"
+            digest = sha256_path(path)[:12]
+        except Exception as exc:  # the report still shows what it can
+            largest, digest = f"not readable ({escape(exc)})", "&ndash;"
+        lines.append(f"<tr><td>{escape(batch)}</td><td>{escape(path.name)}</td>"
+                     f"<td class=\"num\">{counts.get(batch, 0)}</td><td class=\"num\">{largest}</td>"
+                     f"<td class=\"hash\">{digest}</td></tr>")
+    return ("<h3>Matrices per batch</h3><p class=\"note\">These batches were compensated with a "
+            "matrix of their own (a copy in the run folder; the ledger records each ROI's, and the "
+            "<code>spillover</code> column of quality.csv names it); other batches used the run's "
+            "matrix, if any.</p><table><tr><th>batch</th><th>matrix</th><th>ROIs</th><th>largest entry %</th>"
+            "<th>sha256</th></tr>" + "".join(lines) + "</table>")

@@ -168,14 +168,14 @@ def _sprite(channel, order, thumbs, size, cols, rows):
         lo, hi = 0.0, 1.0
     if hi <= lo:
         hi = lo + 1.0
-    sprite = np.zeros((rows * size, cols * size), np.uint8)
+    values = np.full((rows * size, cols * size), lo)  # black where there is no tile
     for k, plane in enumerate(planes):
         if plane is None:
             continue
-        grey = to_grey(plane, lo, hi)[:size, :size]
+        plane = plane[:size, :size]
         y, x = (k // cols) * size, (k % cols) * size
-        sprite[y:y + grey.shape[0], x:x + grey.shape[1]] = grey
-    return sprite, (lo, hi)
+        values[y:y + plane.shape[0], x:x + plane.shape[1]] = plane
+    return to_grey(values, lo, hi), (lo, hi)  # one pass for the whole sprite
 
 
 

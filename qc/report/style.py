@@ -60,6 +60,19 @@ details.channel { margin: 4px 0; } details.channel > summary { font-weight: 600;
 .sheet i { display: block; background-color: #000; background-repeat: no-repeat; outline: 1px solid #000; }
 .sheet i.o { outline: 2px solid #d0342c; } .sheet i.e { outline: 2px solid #8a6cc2; }
 .sheet i.f { outline: 2px solid #e0a030; }
+figure.heat { margin: 6px 0 16px; max-width: 100%; overflow-x: auto; }
+.hm { display: flex; align-items: flex-start; gap: 12px; }
+.hm-rows { padding-top: 18px; font-size: 10px; line-height: var(--ch); white-space: nowrap; text-align: right; }
+.hm-title { height: 18px; line-height: 18px; font-size: 12px; font-weight: 600; text-align: center; }
+.hm-img { display: block; image-rendering: pixelated; }
+.hm-cols { display: flex; }
+.hm-cols span { flex: 0 0 var(--cw); width: var(--cw); line-height: var(--cw); font-size: 10px;
+                writing-mode: vertical-rl; transform: rotate(180deg); white-space: nowrap; padding-bottom: 3px; }
+.hm-none { color: var(--muted); padding: 24px 12px; }
+.hm-scale { width: 320px; margin: 8px 0 0; font-size: 11px; }
+.hm-scale i { display: block; height: 12px; border: 1px solid var(--line); }
+.hm-ticks { display: flex; justify-content: space-between; }
+.hm-label { text-align: center; color: var(--muted); }
 footer { color: var(--muted); font-size: 12px; padding: 14px 28px; border-top: 1px solid var(--line); }
 """
 

@@ -19,7 +19,13 @@ from ..errors import InputError
 from ..files import reached_inputs, sweep_leftovers, write_atomic
 from ..ledger import RECIPE, SPILLOVER_COPY, STAINS_COPY, latest_records, read_ledger
 from ..table import BATCHES
-from .batches import SampleInputs, check_samples, job_spillover, write_sample_files
+from .batches import (
+    SampleInputs,
+    check_samples,
+    job_spillover,
+    with_matrix_column,
+    write_sample_files,
+)
 from .folder import check_run_folder
 from .handoff import check_markers
 
@@ -120,7 +126,7 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains, samples=None
              stains if isinstance(stains, (str, Path)) else None]
     if not isinstance(recipe, Recipe):
         recipe = load_recipe(recipe)
-    given.append(recipe.spillover_path())
+    given += [recipe.spillover_path(), *recipe.batch_spillover_paths().values()]
     names: dict[str, Path] = {}
     for path in inputs:
         name = roi_id(path, cohort_dir)
@@ -142,9 +148,10 @@ def check_inputs(cohort_dir, out_dir, *, recipe, spillover, stains, samples=None
     handoff = check_markers(recipe, stains_obj, inputs[0] if inputs else None, sorted(names))
     check_run_folder(out, reached_inputs(given),
                      [output_name(n, recipe.output) for n in names] + extra + handoff)
+    matrix = _spillover_matrix(spillover, recipe)
+    sample_inputs = with_matrix_column(sample_inputs, SPILLOVER_COPY if matrix is not None else "")
     return RunInputs(cohort_dir=cohort_dir, out_dir=out, rois=sorted(names.items()),
-                     recipe=recipe, matrix=_spillover_matrix(spillover, recipe),
-                     stains_text=stains_text, samples=sample_inputs)
+                     recipe=recipe, matrix=matrix, stains_text=stains_text, samples=sample_inputs)
 
 
 def write_run_files(inputs: RunInputs) -> Plan:
@@ -165,6 +172,8 @@ def write_run_files(inputs: RunInputs) -> Plan:
         if not stains_path.is_file() or stains_path.read_text(encoding="utf-8") != stains_text:
             write_atomic(stains_path, stains_text)
     run_recipe = dataclasses.replace(recipe.replace("compensation", **changes), source=out / RECIPE)
+    # every batch's own matrix, from the sheet or the recipe, named by its copy beside the recipe
+    run_recipe = run_recipe.with_batch_spillover(dict(inputs.samples.copies) if inputs.samples else {})
     text = run_recipe.to_toml()
     if not (out / RECIPE).is_file() or (out / RECIPE).read_text(encoding="utf-8") != text:
         write_atomic(out / RECIPE, text)
