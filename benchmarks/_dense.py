@@ -103,6 +103,28 @@ def plexwash_seconds(args: list[str], env=None) -> float:
     return seconds
 
 
+def plexwash_process(args: list[str], env=None) -> tuple[float, float, int]:
+    """Wall time, CPU time (user + system) and peak resident bytes of one ``plexwash`` process.
+
+    Read with ``os.wait4`` for that child alone (the CPU time includes the processes it
+    started and waited for, e.g. the workers of ``--workers``; the peak is the child's own
+    ``ru_maxrss``, reset by its ``exec``). Linux and macOS; the process must exit with 0.
+    """
+    exe = Path(sys.executable).with_name("plexwash")
+    start = time.perf_counter()
+    child = subprocess.Popen([str(exe), *args], stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                             env=dict(os.environ, OMP_WAIT_POLICY="PASSIVE", **(env or {})))
+    _, status, usage = os.wait4(child.pid, 0)
+    seconds = time.perf_counter() - start
+    child.returncode = os.waitstatus_to_exitcode(status)
+    error = child.stderr.read().decode(errors="replace")
+    child.stderr.close()
+    if child.returncode != 0:
+        raise SystemExit(f"plexwash {' '.join(args)} failed ({child.returncode}):\n{error}")
+    scale = 1 if sys.platform == "darwin" else 1024  # ru_maxrss: bytes on macOS, KiB on Linux
+    return seconds, usage.ru_utime + usage.ru_stime, int(usage.ru_maxrss) * scale
+
+
 def load() -> str:
     """The load average (1, 5, 15 min) and the cores, as text."""
     try:

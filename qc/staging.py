@@ -18,6 +18,12 @@ registry (:mod:`plexwash.qc.steps.registry`), one per step that runs, in its ord
 * a ``"pixels"`` step (compensation): one task per band of rows (all used channels x a
   few rows x the full width), read from one file and written to the other.
 
+The background context that speckle uses (:func:`plexwash.qc.background.roi_background`,
+from the raw used planes) is not a pass of its own when the first step is a plane step
+that does not use it (hot pixels): that pass reduces each raw plane it reads to its block
+sums, and the context is fitted from them on a thread of its own while the next passes
+(compensation) run.
+
 The last file written then holds the washed stack and is written to the output
 (OME-TIFF tiles or OME-Zarr chunks) band by band. Every pass works on whole planes or on whole pixels, as the
 in-memory wash does, so the pixels are bit for bit those of :func:`plexwash.qc.wash` on
