@@ -43,6 +43,7 @@ than :func:`plexwash.qc.wash` when only the washed stack and its numbers are wan
 
 from __future__ import annotations
 
+import os
 import shutil
 import tempfile
 from pathlib import Path
@@ -297,17 +298,30 @@ class _ContextLater:
         self._blocks[self._position[c]] = block_sums(plane, CONTEXT_BLOCK)
 
     def start(self) -> None:
-        """Every used plane is in: fit the context on a thread of its own."""
-        from concurrent.futures import ThreadPoolExecutor
+        """Every used plane is in: fit the context on a thread of its own, or here when the
+        wash has one thread only (a worker of ``--workers`` with one core: no thread more)."""
+        from concurrent.futures import Future, ThreadPoolExecutor
 
-        pool = ThreadPoolExecutor(1, thread_name_prefix="plexwash-context")
-        self._future = pool.submit(context_of_block_sums, self._blocks, self._shape)
-        pool.shutdown(wait=False)
+        if _wash_threads() > 1:
+            pool = ThreadPoolExecutor(1, thread_name_prefix="plexwash-context")
+            self._future = pool.submit(context_of_block_sums, self._blocks, self._shape)
+            pool.shutdown(wait=False)
+        else:
+            self._future = Future()
+            self._future.set_result(context_of_block_sums(self._blocks, self._shape))
         self._blocks = None
 
     def result(self):
         """The context (waits for the fit)."""
         return self._future.result()
+
+
+def _wash_threads() -> int:
+    """Threads the wash may keep busy: dask's ``num_workers`` when set (a run's worker
+    sets it to its share of the cores), else the cores."""
+    import dask
+
+    return int(dask.config.get("num_workers", None) or os.cpu_count() or 1)
 
 
 def _chains(task_bytes: float) -> int:
