@@ -21,8 +21,8 @@ registry (:mod:`plexwash.qc.steps.registry`), one per step that runs, in its ord
 The background context that speckle uses (:func:`plexwash.qc.background.roi_background`,
 from the raw used planes) is not a pass of its own when the first step is a plane step
 that does not use it (hot pixels): that pass reduces each raw plane it reads to its block
-sums, and the context is fitted from them on a thread of its own while the next passes
-(compensation) run.
+sums, and the context is fitted from them (for an ROI in memory on a thread of its own,
+while the next passes, compensation, run; on disk, where memory counts, before them).
 
 The last file written then holds the washed stack and is written to the output
 (OME-TIFF tiles or OME-Zarr chunks) band by band. Every pass works on whole planes or on whole pixels, as the
@@ -187,9 +187,10 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
     plane_bytes = n_y * n_x * _ITEM
     # The ROI's background context, from the raw used planes (as the in-memory wash). When
     # the first step is a plane step that does not use it, that pass reduces each raw plane
-    # to its block sums on the way and the model is fitted on a thread of its own while the
-    # next passes run; else it is made here, in a pass of its own.
-    later = _ContextLater.wanted(used, running, (n_y, n_x))
+    # to its block sums on the way and the model is fitted from them (for a wash in memory
+    # on a thread of its own, while the next passes run); else it is made here, in a pass
+    # of its own.
+    later = _ContextLater.wanted(used, running, (n_y, n_x), aside=staging.folder is None)
     context = None
     if used and context_wanted(running) and later is None:
         context = roi_background(lambda c: read_plane(current, c), used, (n_y, n_x))
@@ -271,38 +272,42 @@ class _ContextLater:
     the first pass (a plane step that does not use it) gathers from the raw used planes.
 
     The same sums as :func:`plexwash.qc.background.roi_background` takes, so the same
-    context; fitting it (one thread, at block resolution) overlaps the passes before the
-    first step that uses it. After an error the fit still ends on its own; its result is
-    dropped with the object.
+    context. With ``aside``, fitting it (one thread, at block resolution) overlaps the
+    passes before the first step that uses it; after an error the fit still ends on its
+    own and its result is dropped with the object. Without (a wash staged on disk, where
+    memory is what counts: the fit's arrays then never meet a pass's), it is fitted as
+    soon as the first pass ends.
     """
 
-    def __init__(self, used, shape):
+    def __init__(self, used, shape, aside: bool):
         ny, nx = shape
+        self._aside = aside
         self._position = {c: k for k, c in enumerate(used)}
         self._shape = (ny, nx)
         self._blocks = np.empty((len(used), -(-ny // CONTEXT_BLOCK), -(-nx // CONTEXT_BLOCK)))
         self._future = None
 
     @classmethod
-    def wanted(cls, used, running, shape) -> _ContextLater | None:
+    def wanted(cls, used, running, shape, *, aside: bool) -> _ContextLater | None:
         """One when a step wants the context and the first step can gather its sums, else None."""
         if not used or not context_wanted(running):
             return None
         first = running[0][0]
         if first.scope != "plane" or first.uses_background:
             return None
-        return cls(used, shape)
+        return cls(used, shape, aside)
 
     def add(self, c: int, plane: np.ndarray) -> None:
         """Block sums of used channel ``c``'s raw plane (each channel once, from any thread)."""
         self._blocks[self._position[c]] = block_sums(plane, CONTEXT_BLOCK)
 
     def start(self) -> None:
-        """Every used plane is in: fit the context on a thread of its own, or here when the
-        wash has one thread only (a worker of ``--workers`` with one core: no thread more)."""
+        """Every used plane is in: fit the context on a thread of its own, or here when not
+        ``aside`` or when the wash has one thread only (a worker of ``--workers`` with one
+        core: no thread more)."""
         from concurrent.futures import Future, ThreadPoolExecutor
 
-        if _wash_threads() > 1:
+        if self._aside and _wash_threads() > 1:
             pool = ThreadPoolExecutor(1, thread_name_prefix="plexwash-context")
             self._future = pool.submit(context_of_block_sums, self._blocks, self._shape)
             pool.shutdown(wait=False)
