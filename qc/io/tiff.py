@@ -267,8 +267,9 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, labe
         spill = temporary_path(path, "spill")
         staged: list[StagedStack] = []
 
-        def stage(level_shape, level_dtype):
-            budget = IN_MEMORY_WRITE_BYTES if in_memory else STORE_LEVEL_BYTES
+        def stage(level_shape, level_dtype, budget=None):
+            if budget is None:  # a pyramid level
+                budget = IN_MEMORY_WRITE_BYTES if in_memory else STORE_LEVEL_BYTES
             if int(np.prod(level_shape)) * level_dtype.itemsize <= budget:
                 return np.empty(level_shape, level_dtype)
             spill.mkdir(exist_ok=True)
@@ -282,7 +283,7 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, labe
                 # (the staged wash's own mechanism), then read back band by band
                 import dask.array as da
 
-                source = stage(shape, dtype)
+                source = stage(shape, dtype, IN_MEMORY_WRITE_BYTES)
                 da.store(data, source, lock=False)
             elif is_dask(data) or isinstance(data, np.ndarray):
                 source = np.asarray(data)
