@@ -76,13 +76,32 @@ def floor_seconds(pairs: list[tuple[Path, Path]]) -> float:
     what any tool must pay to read and write these pixels, Python's start-up included, as
     for the ``plexwash`` process it is compared with.
     """
+    return floor_process(pairs)[0]
+
+
+def floor_process(pairs: list[tuple[Path, Path]]) -> tuple[float, float]:
+    """:func:`floor_seconds` with the process's CPU time (user + system): (wall, CPU)."""
     from plexwash.qc.recipe import default_recipe
 
     settings = default_recipe().output
     args = [settings.compression, str(settings.tile)] + [str(p) for pair in pairs for p in pair]
+    return _timed([sys.executable, "-c", FLOOR_CHILD, *args])[:2]
+
+
+def _timed(command: list[str], env=None) -> tuple[float, float, int]:
+    """Wall time, CPU time and peak resident bytes of one child process (``os.wait4``)."""
     start = time.perf_counter()
-    subprocess.run([sys.executable, "-c", FLOOR_CHILD, *args], check=True)
-    return time.perf_counter() - start
+    child = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                             env=dict(os.environ, OMP_WAIT_POLICY="PASSIVE", **(env or {})))
+    _, status, usage = os.wait4(child.pid, 0)
+    seconds = time.perf_counter() - start
+    child.returncode = os.waitstatus_to_exitcode(status)
+    error = child.stderr.read().decode(errors="replace")
+    child.stderr.close()
+    if child.returncode != 0:
+        raise SystemExit(f"{' '.join(command[:3])} failed ({child.returncode}):\n{error}")
+    scale = 1 if sys.platform == "darwin" else 1024  # ru_maxrss: bytes on macOS, KiB on Linux
+    return seconds, usage.ru_utime + usage.ru_stime, int(usage.ru_maxrss) * scale
 
 
 def plexwash_seconds(args: list[str], env=None) -> float:
@@ -101,6 +120,16 @@ def plexwash_seconds(args: list[str], env=None) -> float:
     elif done.returncode != 0:
         raise SystemExit(f"plexwash {' '.join(args)} failed ({done.returncode}):\n{done.stderr}")
     return seconds
+
+
+def plexwash_process(args: list[str], env=None) -> tuple[float, float, int]:
+    """Wall time, CPU time (user + system) and peak resident bytes of one ``plexwash`` process.
+
+    Read with ``os.wait4`` for that child alone (the CPU time includes the processes it
+    started and waited for, e.g. the workers of ``--workers``; the peak is the child's own
+    ``ru_maxrss``, reset by its ``exec``). Linux and macOS; the process must exit with 0.
+    """
+    return _timed([str(Path(sys.executable).with_name("plexwash")), *args], env=env)
 
 
 def load() -> str:

@@ -2,8 +2,8 @@
 
 One 40 x 1000 x 1000 ROI (dense float32 counts, every channel with a background of a few
 counts, ``_dense.py``; ``--sparse`` for the demo generator's own, ~160 MB; read lazily
-as dask because it is over ``io.roi.LAZY_BYTES``, so the wash goes through the staged passes
-of ``qc/staging.py``) is written once as OME-TIFF. Then, each timed ``--repeats`` times
+as dask (``read_roi(lazy=True)``, as a stack over ``io.roi.LAZY_BYTES`` is), so the wash
+goes through the staged passes of ``qc/staging.py`` on disk) is written once as OME-TIFF. Then, each timed ``--repeats`` times
 (medians printed):
 
 - floor: what a plain user pays to read this stack and write it back, as float32, in the
@@ -16,7 +16,15 @@ of ``qc/staging.py``) is written once as OME-TIFF. Then, each timed ``--repeats`
 
 The ratio wash / floor is the figure of merit (target <= 3x, must be < 4x).
 
+``--process``: instead, whole ``plexwash wash`` processes against a floor process that
+reads the ROI with tifffile and writes it back (no plexwash import; ``_dense.py``), with
+the peak resident memory of the wash process over the stack's bytes. Issue 13 asks, for a
+dense 36 x 2400 x 2400 float32 ROI (830 MB, staged on disk): wash / floor <= 2x (must be
+< 3x), peak <= 0.35x the stack (must be < 0.5x):
+``python benchmarks/wash.py --process --channels 36 --size 2400``.
+
     python benchmarks/wash.py [--repeats 3] [--dtype float32|uint16] [--size 1000] [--channels 40]
+                              [--process]
 """
 
 from __future__ import annotations
@@ -33,7 +41,14 @@ os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 import numpy as np  # noqa: E402
 from _common import load_generator
-from _dense import channel_names, dense_counts, load, write_spillover
+from _dense import (
+    channel_names,
+    dense_counts,
+    floor_seconds,
+    load,
+    plexwash_process,
+    write_spillover,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -86,7 +101,7 @@ def time_wash(roi_path: Path, out: Path, recipe, spill_csv: Path) -> float:
     from plexwash.qc.wash import wash_to_file
 
     start = time.perf_counter()
-    roi = read_roi(roi_path)
+    roi = read_roi(roi_path, lazy=True)
     wash_to_file(roi, out, recipe, spillover=read_spillover(spill_csv))
     return time.perf_counter() - start
 
@@ -109,6 +124,7 @@ def main(argv=None) -> None:
     parser.add_argument("--dtype", choices=("float32", "uint16"), default="float32")
     parser.add_argument("--no-run", action="store_true", help="skip the run_cohort timing")
     parser.add_argument("--sparse", action="store_true", help="the demo generator's sparse background")
+    parser.add_argument("--process", action="store_true", help="whole plexwash wash processes, with peak memory")
     args = parser.parse_args(argv)
 
     from plexwash.qc.recipe import default_recipe
@@ -124,6 +140,9 @@ def main(argv=None) -> None:
               f"({roi.stat().st_size / 1e6:.0f} MB on disk, {stack_bytes / 1e6:.0f} MB as float32), "
               f"made in {time.perf_counter() - t0:.1f} s; output {recipe.output.format}, "
               f"{recipe.output.compression}, tile {recipe.output.tile}; {os.cpu_count()} cores")
+        if args.process:
+            _processes(roi, spill_csv, tmp, args.repeats, stack_bytes)
+            return
         # warm-up: numba caches, imports, file cache
         time_wash(roi, tmp / "warm.ome.tiff", recipe, spill_csv)
         floors, washes, runs = [], [], []
@@ -147,6 +166,31 @@ def main(argv=None) -> None:
                   + ", ".join(f"{k} {v:.2f} s" for k, v in timings.items()))
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _processes(roi: Path, spill_csv: Path, tmp: Path, repeats: int, stack_bytes: int) -> None:
+    """``plexwash wash`` processes against floor processes, interleaved; the peak memory."""
+    def wash_process(name):
+        out = tmp / f"{name}.ome.tiff"
+        measured = plexwash_process(["wash", str(roi), "-o", str(out), "--spillover", str(spill_csv)])
+        out.unlink()
+        return measured
+
+    wash_process("warm")  # numba caches, the file cache
+    floors, washes = [], []
+    for k in range(repeats):
+        floors.append(floor_seconds([(roi, tmp / f"floor-{k}.ome.tiff")]))
+        (tmp / f"floor-{k}.ome.tiff").unlink()
+        washes.append(wash_process(f"wash-{k}"))
+    floor = statistics.median(floors)
+    wall = statistics.median(w[0] for w in washes)
+    peak = max(w[2] for w in washes)
+    print(f"floor process (tifffile read + write)  median {floor:.2f} s   runs {_list(floors)}")
+    print(f"plexwash wash process                  median {wall:.2f} s   runs {_list(w[0] for w in washes)}"
+          f"   CPU {_list(w[1] for w in washes)} s")
+    print(f"wash / floor = {wall / floor:.2f}x   (target <= 2x, must be < 3x)   {load()}")
+    print(f"peak resident memory {peak / 1e6:.0f} MB = {peak / stack_bytes:.2f}x the stack "
+          f"({stack_bytes / 1e6:.0f} MB)   (target <= 0.35x, must be < 0.5x)")
 
 
 def _list(values) -> str:

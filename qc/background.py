@@ -550,3 +550,23 @@ def region_levels(plane, context: BackgroundContext,
     if context.model.tissue.all():
         regions[0] = np.nan
     return regions / float(block * block)
+
+
+def context_of_block_sums(blocks, shape, *, block: int = CONTEXT_BLOCK,
+                          settings: BackgroundSettings = BackgroundSettings()) -> BackgroundContext:
+    """:func:`roi_background` from block sums already made, so a pass that reads the raw
+    planes for another reason can reduce them on the way (the staged wash's first pass).
+
+    ``blocks`` is (C, by, bx): :func:`block_sums` of each used channel's raw plane with
+    ``block``, in the order of the used channels; ``shape`` the ROI's (Y, X). The same
+    sums give the same context as :func:`roi_background` on those planes.
+    """
+    ny, nx = (int(n) for n in shape)
+    model = background_model(np.asarray(blocks), settings=block_settings(settings, block))
+    tissue = _full(model.tissue, block, (ny, nx))
+    modulation = _full(model.modulation, block, (ny, nx)).astype(np.float32)
+    steps = np.rint(np.log2(np.maximum(model.modulation, 1e-6)) * ZONE_STEPS_PER_DOUBLING)
+    k = np.clip(steps + ZONES_PER_PART // 2, 0, ZONES_PER_PART - 1)
+    zone = _full((zone_parts(model.tissue) * ZONES_PER_PART + k).astype(np.uint8), block, (ny, nx))
+    return BackgroundContext(tissue=tissue, modulation=modulation, zone=zone, model=model,
+                             block=block)

@@ -18,6 +18,12 @@ registry (:mod:`plexwash.qc.steps.registry`), one per step that runs, in its ord
 * a ``"pixels"`` step (compensation): one task per band of rows (all used channels x a
   few rows x the full width), read from one file and written to the other.
 
+The background context that speckle uses (:func:`plexwash.qc.background.roi_background`,
+from the raw used planes) is not a pass of its own when the first step is a plane step
+that does not use it (hot pixels): that pass reduces each raw plane it reads to its block
+sums, and the context is fitted from them (for an ROI in memory on a thread of its own,
+while the next passes, compensation, run; on disk, where memory counts, before them).
+
 The last file written then holds the washed stack and is written to the output
 (OME-TIFF tiles or OME-Zarr chunks) band by band. Every pass works on whole planes or on whole pixels, as the
 in-memory wash does, so the pixels are bit for bit those of :func:`plexwash.qc.wash` on
@@ -37,6 +43,7 @@ than :func:`plexwash.qc.wash` when only the washed stack and its numbers are wan
 
 from __future__ import annotations
 
+import os
 import shutil
 import tempfile
 from pathlib import Path
@@ -44,7 +51,7 @@ from pathlib import Path
 import numpy as np
 
 from ._arrays import channel_plane, is_dask, used_channels
-from .background import roi_background
+from .background import CONTEXT_BLOCK, block_sums, context_of_block_sums, roi_background
 from .io.staged import StagedStack
 from .steps.registry import STEPS, context_wanted
 from .steps.stats import step_rows
@@ -178,25 +185,36 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
         return stacks[name]
 
     plane_bytes = n_y * n_x * _ITEM
-    context = None  # the ROI's background context, from the raw used planes (as the in-memory wash)
-    if used and context_wanted(running):
+    # The ROI's background context, from the raw used planes (as the in-memory wash). When
+    # the first step is a plane step that does not use it, that pass reduces each raw plane
+    # to its block sums on the way and the model is fitted from them (for a wash in memory
+    # on a thread of its own, while the next passes run); else it is made here, in a pass
+    # of its own.
+    later = _ContextLater.wanted(used, running, (n_y, n_x), aside=staging.folder is None)
+    context = None
+    if used and context_wanted(running) and later is None:
         context = roi_background(lambda c: read_plane(current, c), used, (n_y, n_x))
     stats = {}
     copied = current  # the stack holding the pass-through channels
     compensated = None  # the stack that entered the last pixels step (compensation), while it is kept
-    for step, settings in running:
+    for k, (step, settings) in enumerate(running):
         settings_of = dict(zip(used, settings, strict=True))
         source = current
+        if step.uses_background and later is not None:
+            context = later.result()
         if step.scope == "plane":
             # written to A (in place when reading A): a plane is read whole before it is written
             dest = "a"
             channels = used if copied is not None else range(n_c)
 
-            def plane_task(c, step=step, source=source, dest=dest, settings_of=settings_of, compensated=compensated):
+            def plane_task(c, step=step, source=source, dest=dest, settings_of=settings_of, compensated=compensated,
+                           context=context, collect=later if k == 0 else None):
                 plane = read_plane(source, c)
                 if c not in settings_of:  # a pass-through channel, copied once
                     target(dest).write_plane(c, plane)
                     return None
+                if collect is not None:  # the raw plane, reduced for the background context
+                    collect.add(c, plane)
                 extra = {}
                 if step.uses_background:  # what compensation removed: its input (still in A) minus its output
                     spilled = None if compensated is None else (read_plane(compensated, c) - plane)[None]
@@ -206,6 +224,8 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
                 return step_stats[0], _sums(plane[None], cleaned)
 
             results = _in_chains(plane_task, channels, _chains(step.plane_copies * plane_bytes))
+            if k == 0 and later is not None:
+                later.start()
             done = dict(zip(channels, results, strict=True))
             stats[step.name] = step_rows([done[c][0] for c in used], *_stacked([done[c][1] for c in used]),
                                          worked=used, channels=range(n_c), all_names=roi.channels)
@@ -245,6 +265,68 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
         _in_chains(lambda c: stacks[current].write_plane(c, stacks[copied].read_plane(c)), passing,
                    _chains(2.0 * plane_bytes))
     return stacks[current], stats
+
+
+class _ContextLater:
+    """The ROI's background context, fitted on a thread of its own from the block sums that
+    the first pass (a plane step that does not use it) gathers from the raw used planes.
+
+    The same sums as :func:`plexwash.qc.background.roi_background` takes, so the same
+    context. With ``aside``, fitting it (one thread, at block resolution) overlaps the
+    passes before the first step that uses it; after an error the fit still ends on its
+    own and its result is dropped with the object. Without (a wash staged on disk, where
+    memory is what counts: the fit's arrays then never meet a pass's), it is fitted as
+    soon as the first pass ends.
+    """
+
+    def __init__(self, used, shape, aside: bool):
+        ny, nx = shape
+        self._aside = aside
+        self._position = {c: k for k, c in enumerate(used)}
+        self._shape = (ny, nx)
+        self._blocks = np.empty((len(used), -(-ny // CONTEXT_BLOCK), -(-nx // CONTEXT_BLOCK)))
+        self._future = None
+
+    @classmethod
+    def wanted(cls, used, running, shape, *, aside: bool) -> _ContextLater | None:
+        """One when a step wants the context and the first step can gather its sums, else None."""
+        if not used or not context_wanted(running):
+            return None
+        first = running[0][0]
+        if first.scope != "plane" or first.uses_background:
+            return None
+        return cls(used, shape, aside)
+
+    def add(self, c: int, plane: np.ndarray) -> None:
+        """Block sums of used channel ``c``'s raw plane (each channel once, from any thread)."""
+        self._blocks[self._position[c]] = block_sums(plane, CONTEXT_BLOCK)
+
+    def start(self) -> None:
+        """Every used plane is in: fit the context on a thread of its own, or here when not
+        ``aside`` or when the wash has one thread only (a worker of ``--workers`` with one
+        core: no thread more)."""
+        from concurrent.futures import Future, ThreadPoolExecutor
+
+        if self._aside and _wash_threads() > 1:
+            pool = ThreadPoolExecutor(1, thread_name_prefix="plexwash-context")
+            self._future = pool.submit(context_of_block_sums, self._blocks, self._shape)
+            pool.shutdown(wait=False)
+        else:
+            self._future = Future()
+            self._future.set_result(context_of_block_sums(self._blocks, self._shape))
+        self._blocks = None
+
+    def result(self):
+        """The context (waits for the fit)."""
+        return self._future.result()
+
+
+def _wash_threads() -> int:
+    """Threads the wash may keep busy: dask's ``num_workers`` when set (a run's worker
+    sets it to its share of the cores), else the cores."""
+    import dask
+
+    return int(dask.config.get("num_workers", None) or os.cpu_count() or 1)
 
 
 def _chains(task_bytes: float) -> int:

@@ -187,6 +187,36 @@ def test_big_dask_stack_written_through_a_staging_file_matches(tmp_path, small_s
     assert sorted(p.name for p in tmp_path.iterdir()) == ["w.ome.tiff"]  # no temporary left
 
 
+def test_pyramid_of_a_store_is_staged_and_equals_the_in_memory_one(tmp_path, monkeypatch):
+    """A stack written from a store (a staged stack: the staged wash) stages its pyramid
+    levels over STORE_LEVEL_BYTES beside the output too, instead of holding them in memory;
+    every level is bit for bit that of the same stack written from memory."""
+    from plexwash.qc.io import read_levels
+    from plexwash.qc.io.staged import StagedStack
+
+    rng = np.random.default_rng(2)
+    stack = rng.poisson(3.0, size=(3, 1100, 700)).astype(np.float32)  # 2 levels below level 0
+    made = []
+
+    class Spy(StagedStack):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+            made.append(self.shape)
+
+    with StagedStack(tmp_path / "source.f32", stack.shape) as source:
+        source[:] = stack
+        monkeypatch.setattr(tiff_module, "StagedStack", Spy)
+        monkeypatch.setattr(tiff_module, "STORE_LEVEL_BYTES", 1000)
+        write_ome_tiff(tmp_path / "store.ome.tiff", source, NAMES[:3], settings=OutputSettings(tile=256))
+    assert made == [(3, 550, 350), (3, 275, 175)]  # both levels staged, level 0 read from the store
+    write_ome_tiff(tmp_path / "memory.ome.tiff", stack, NAMES[:3], settings=OutputSettings(tile=256))
+    got, want = read_levels(tmp_path / "store.ome.tiff"), read_levels(tmp_path / "memory.ome.tiff")
+    assert len(got) == len(want) == 3
+    for a, b in zip(got, want, strict=True):
+        np.testing.assert_array_equal(np.asarray(a), np.asarray(b))
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["memory.ome.tiff", "source.f32", "store.ome.tiff"]
+
+
 def test_small_dask_stack_written_in_memory(tmp_path, small_stack, monkeypatch):
     def refuse(*args, **kwargs):
         raise AssertionError("a small stack needs no staging file")

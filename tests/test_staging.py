@@ -5,6 +5,7 @@ from __future__ import annotations
 import gc
 import os
 
+import dask
 import dask.array as da
 import numpy as np
 import pytest
@@ -152,3 +153,43 @@ def test_stats_of_every_step_are_present(unseen, tmp_path):
     result = wash_to_file(_lazy(roi, (1, 128, 128)), tmp_path / "w.ome.tiff", spillover=matrix)
     assert list(result.stats) == list(STEPS)
     assert all(0.0 <= r["removed_fraction"] <= 1.0 for rows in result.stats.values() for r in rows)
+
+
+def test_context_from_the_first_pass_sums_is_roi_backgrounds():
+    """The staged wash fits the background context from block sums its first pass gathers;
+    they give the context :func:`roi_background` makes from the planes, field for field."""
+    from plexwash.qc.background import block_sums, context_of_block_sums, roi_background
+
+    rng = np.random.default_rng(21)
+    rate = np.full((90, 70), 0.5)
+    rate[:, 30:] = 4.0  # tissue on the right
+    stack = rng.poisson(np.broadcast_to(rate, (5, 90, 70))).astype(np.float32)
+    used = [0, 2, 3, 4]
+    want = roi_background(stack.__getitem__, used, (90, 70))
+    got = context_of_block_sums(np.stack([block_sums(stack[c]) for c in used]), (90, 70))
+    for field in ("tissue", "modulation", "zone"):
+        np.testing.assert_array_equal(getattr(got, field), getattr(want, field))
+    np.testing.assert_array_equal(got.model.rates, want.model.rates)
+    np.testing.assert_array_equal(got.model.region_rates, want.model.region_rates)
+
+
+@pytest.mark.parametrize(("first_off", "threads", "chunks"),
+                         [(False, 2, (1, 32, 40)), (False, 2, None), (False, 1, None), (True, 2, (1, 32, 40))])
+def test_staged_wash_with_the_context_fitted_aside_equals_the_in_memory_wash(tmp_path, first_off, threads, chunks):
+    """With hot pixels on, the context comes from the first pass's block sums (for an ROI in
+    memory fitted on a thread of its own when the wash has two threads, else before the next
+    pass); with them off, speckle runs first and the context has a pass of its own. Always
+    the pixels are those of the in-memory wash (bit for bit)."""
+    rng = np.random.default_rng(8)
+    rate = np.full((64, 80), 0.4)
+    rate[:, 36:] = 3.0
+    data = rng.poisson(np.broadcast_to(rate, (4, 64, 80))).astype(np.float32)
+    data[1, 10, 10] = 400.0
+    roi = Roi(data, ("Nd142", "Nd143", "Nd144", "Ir191"), tmp_path / "in.ome.tiff")
+    recipe = default_recipe()
+    if first_off:
+        recipe = recipe.replace("hot_pixels", enabled=False)
+    eager = wash(roi, recipe)
+    with dask.config.set(scheduler="threads", num_workers=threads):  # 1: the context is fitted inline
+        out = wash_to_file(_lazy(roi, chunks), tmp_path / "w.ome.tiff", recipe)
+    np.testing.assert_array_equal(read_roi(out.output, lazy=False).data, eager.data)

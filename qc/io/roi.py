@@ -20,7 +20,7 @@ from .tiff import open_tiff, tiff_levels, write_ome_tiff
 from .zarr import open_zarr, write_ome_zarr, zarr_levels
 
 #: Stacks bigger than this are read lazily (dask) instead of into memory.
-LAZY_BYTES = 128 * 2**20
+LAZY_BYTES = 256 * 2**20
 
 SUPPORTED_DTYPES = (np.uint8, np.uint16, np.uint32, np.int16, np.int32, np.float32, np.float64)
 

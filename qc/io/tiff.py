@@ -23,6 +23,10 @@ from .staged import StagedStack
 #: :class:`~plexwash.qc.io.staged.StagedStack`) and written from it band by band instead of
 #: being computed in memory, so memory stays bounded by chunks.
 IN_MEMORY_WRITE_BYTES = 256 * 2**20
+#: Pyramid levels of a stack written from a store (a staged stack: the staged wash of a big
+#: ROI) are staged beside the output too when bigger than this, so writing a stack that
+#: memory was kept clear of does not hold its second level (a quarter of it) in memory.
+STORE_LEVEL_BYTES = 16 * 2**20
 #: Tiles tifffile gathers before compressing them in parallel (its default is 512 MB,
 #: which for a big stack written tile by tile would hold most of it in memory).
 WRITE_BUFFER_BYTES = 32 * 2**20
@@ -263,20 +267,23 @@ def write_ome_tiff(path, data, channels, *, pixel_size=None, settings=None, labe
         spill = temporary_path(path, "spill")
         staged: list[StagedStack] = []
 
-        def stage(level_shape, level_dtype):
-            if int(np.prod(level_shape)) * level_dtype.itemsize <= IN_MEMORY_WRITE_BYTES:
+        def stage(level_shape, level_dtype, budget=None):
+            if budget is None:  # a pyramid level
+                budget = IN_MEMORY_WRITE_BYTES if in_memory else STORE_LEVEL_BYTES
+            if int(np.prod(level_shape)) * level_dtype.itemsize <= budget:
                 return np.empty(level_shape, level_dtype)
             spill.mkdir(exist_ok=True)
             staged.append(StagedStack(spill / f"level{len(staged)}.raw", level_shape, dtype=level_dtype))
             return staged[-1]
 
+        in_memory = isinstance(data, np.ndarray) or (is_dask(data) and _nbytes(data) <= IN_MEMORY_WRITE_BYTES)
         try:
             if is_dask(data) and _nbytes(data) > IN_MEMORY_WRITE_BYTES:
                 # computed once, chunk by chunk, into a staging file beside the output
                 # (the staged wash's own mechanism), then read back band by band
                 import dask.array as da
 
-                source = stage(shape, dtype)
+                source = stage(shape, dtype, IN_MEMORY_WRITE_BYTES)
                 da.store(data, source, lock=False)
             elif is_dask(data) or isinstance(data, np.ndarray):
                 source = np.asarray(data)
