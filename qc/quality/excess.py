@@ -8,8 +8,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import linalg, ndimage, optimize, special
+from scipy import linalg, ndimage, special
+from scipy.linalg import lapack
 
+from ._bvls import bounded_lstsq
 from ._kernels import poisson_tail_screen
 from .settings import QualitySettings
 
@@ -139,36 +141,45 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
 
     Variables with ``upper <= lower`` are fixed at ``lower``; the others are
     solved as the equivalent bounded least-squares problem ||L^T c - L^-1 h||
-    (G = L L^T) with ``scipy.optimize.lsq_linear`` (BVLS), on a diagonally scaled
-    G with a tiny ridge so that dependent or all-zero sources do no harm.
+    (G = L L^T) with BVLS (:func:`._bvls.bounded_lstsq`, the answer of
+    ``scipy.optimize.lsq_linear(method="bvls")`` to the bit), on a diagonally scaled
+    G with a tiny ridge so that dependent or all-zero sources do no harm. The
+    factorisation and triangular solve are LAPACK's ``dpotrf`` / ``dtrtrs``, called as
+    ``scipy.linalg.cholesky`` / ``solve_triangular`` call them, without their checks.
     """
-    coef = lower.astype(np.float64).copy()
-    free = (upper > lower) & (np.diag(gram) > 0)
-    if not free.any():
-        return coef
+    coef = lower.astype(np.float64)
+    diagonal = gram.diagonal()
+    free = (upper > lower) & (diagonal > 0)
     idx = np.flatnonzero(free)
-    fixed = np.flatnonzero(~free)
-    h = cross[idx] - gram[np.ix_(idx, fixed)] @ coef[fixed]
-    scale = np.sqrt(np.diag(gram)[idx])
-    g = gram[np.ix_(idx, idx)] / np.outer(scale, scale)
-    g[np.diag_indices_from(g)] += 1e-9
+    if idx.size == 0:
+        return coef
+    if idx.size == free.size:  # nothing fixed: the fixed part of h is an empty product (+0)
+        h = cross - 0.0
+        g = gram.copy()
+    else:
+        fixed = np.flatnonzero(~free)
+        h = cross[idx] - gram[np.ix_(idx, fixed)] @ coef[fixed]
+        g = gram[np.ix_(idx, idx)]
+    scale = np.sqrt(diagonal[idx])
+    g /= np.outer(scale, scale)
+    g.flat[::idx.size + 1] += 1e-9
     h = h / scale
     lo = lower[idx] * scale
     hi = upper[idx] * scale
-    if len(idx) == 1:  # one unknown: clip the unconstrained minimum
+    if idx.size == 1:  # one unknown: clip the unconstrained minimum
         coef[idx] = np.clip(h / g[0, 0], lo, hi) / scale
         return coef
-    try:
-        chol = linalg.cholesky(g, lower=True)
-        design, rhs = chol.T, linalg.solve_triangular(chol, h, lower=True)
-    except linalg.LinAlgError:
+    chol, info = lapack.dpotrf(g, lower=1, clean=1)
+    if info == 0:
+        design = chol.T
+        rhs, info = lapack.dtrtrs(chol, h, lower=1)
+    if info != 0:
         # G built from sums can come out very slightly indefinite (rounding): use its
         # eigen-decomposition with the eigenvalues floored at the ridge instead
         w, v = linalg.eigh((g + g.T) / 2)
         root = np.sqrt(np.maximum(w, 1e-9))
         design, rhs = (v * root).T, (v.T @ h) / root
-    result = optimize.lsq_linear(design, rhs, bounds=(lo, hi), method="bvls")
-    coef[idx] = result.x / scale
+    coef[idx] = bounded_lstsq(design, rhs, lo, hi) / scale
     return coef
 
 
