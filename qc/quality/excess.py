@@ -46,9 +46,11 @@ def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarra
     margin far above their rounding).
     """
     n = np.ascontiguousarray(n, dtype=np.float64)
-    mu = np.ascontiguousarray(np.broadcast_to(mu, n.shape), dtype=np.float64)
+    if not (isinstance(mu, np.ndarray) and mu.shape == n.shape):
+        mu = np.broadcast_to(mu, n.shape)
+    mu = np.ascontiguousarray(mu, dtype=np.float64)
     verdict = np.empty(n.shape, np.int8)
-    poisson_tail_screen(n.ravel(), mu.ravel(), math.log(alpha), verdict.ravel())
+    poisson_tail_screen(n.reshape(-1), mu.reshape(-1), math.log(alpha), verdict.reshape(-1))
     out = verdict == 1
     hard = verdict == 2
     if hard.any():
@@ -90,9 +92,7 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
         new_kept = ~poisson_tail_below(n, mu, settings.fit_alpha)
         if not new_kept.any() or np.array_equal(new_kept, kept):
             break
-        g_out, h_out = _partial_gram(design, target, kept & ~new_kept)
-        g_in, h_in = _partial_gram(design, target, new_kept & ~kept)
-        g, h = g - g_out + g_in, h - h_out + h_in
+        g, h = _moved_bins(g, h, design, target, kept & ~new_kept, new_kept & ~kept)
         kept = new_kept
     return mu, coef, kept
 
@@ -122,9 +122,24 @@ def combine_rows(coef: np.ndarray, design: np.ndarray) -> np.ndarray:
     return out
 
 
-def _partial_gram(design: np.ndarray, target: np.ndarray, mask: np.ndarray):
-    """``D D^T`` and ``D t`` over the bins in ``mask``, a block of bins at a time."""
-    index = np.flatnonzero(mask)
+def _moved_bins(g, h, design, target, left, joined):
+    """``g - G(left) + G(joined)``, ``h - H(left) + H(joined)`` (:func:`_partial_gram`).
+
+    A side no bin moved to contributes zeros, so its product is not formed (``+ 0.0``
+    keeps what adding those zeros does to a -0.0).
+    """
+    index_out, index_in = np.flatnonzero(left), np.flatnonzero(joined)
+    if index_out.size:
+        g_out, h_out = _partial_gram(design, target, index_out)
+        g, h = g - g_out, h - h_out
+    if index_in.size:
+        g_in, h_in = _partial_gram(design, target, index_in)
+        return g + g_in, h + h_in
+    return g + 0.0, h + 0.0
+
+
+def _partial_gram(design: np.ndarray, target: np.ndarray, index: np.ndarray):
+    """``D D^T`` and ``D t`` over the bins ``index``, a block of bins at a time."""
     g = np.zeros((design.shape[0], design.shape[0]))
     h = np.zeros(design.shape[0])
     for start in range(0, index.size, _GRAM_BLOCK):
