@@ -95,7 +95,7 @@ def _bvls(a, b, x_lsq, lb, ub):
     max_iter = n + iteration
     done = False
     optimality = _kkt_violation(g, on_bound)
-    for iteration in range(iteration, max_iter):  # noqa: B020 (scipy's loop, as written)
+    for _ in range(iteration, max_iter):
         if optimality < TOL:
             done = True
         if done:
