@@ -134,3 +134,17 @@ def test_moved_bins_equal_the_full_update(moved):
     g_in, h_in = excess._partial_gram(design, target, np.flatnonzero(joined))
     new_g, new_h = excess._moved_bins(g, h, design, target, left, joined)
     assert _bits(new_g) == _bits(g - g_out + g_in) and _bits(new_h) == _bits(h - h_out + h_in)
+
+
+def test_one_unknown_equals_the_scipy_form_bit_for_bit():
+    # the scalar path of a fit with one unknown (a flat background): signed zeros, bounds
+    # hit from both sides, huge and tiny values
+    rng = np.random.default_rng(8)
+    cases = [(4.0, -0.0, 0.0, np.inf), (4.0, 0.0, 0.0, np.inf), (2.0, -3.0, 0.0, np.inf),
+             (2.0, 30.0, 0.0, 0.5), (1e-300, 1e-300, 0.0, np.inf), (1e300, 1e300, 0.0, 2.0)]
+    cases += [(float(rng.random() * 10.0 ** rng.integers(-5, 6)), float(rng.normal() * 10.0 ** rng.integers(-5, 6)),
+               0.0, float(rng.choice([np.inf, 0.5, 2.0]))) for _ in range(300)]
+    for gram, cross, lower, upper in cases:
+        args = (np.array([[gram]]), np.array([cross]), np.array([lower]), np.array([upper]))
+        ours = excess._box_least_squares(*args)
+        assert _bits(ours) == _bits(_scipy_box(*args))  # scipy.linalg / lsq_linear form

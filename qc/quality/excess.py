@@ -168,6 +168,8 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
     idx = np.flatnonzero(free)
     if idx.size == 0:
         return coef
+    if idx.size == 1 == free.size:
+        return _one_unknown(float(gram[0, 0]), float(cross[0]), float(lower[0]), float(upper[0]), coef)
     if idx.size == free.size:  # nothing fixed: the fixed part of h is an empty product (+0)
         h = cross - 0.0
         g = gram.copy()
@@ -195,6 +197,26 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
         root = np.sqrt(np.maximum(w, 1e-9))
         design, rhs = (v * root).T, (v.T @ h) / root
     coef[idx] = bounded_lstsq(design, rhs, lo, hi) / scale
+    return coef
+
+
+def _one_unknown(gram: float, cross: float, lower: float, upper: float,
+                 coef: np.ndarray) -> np.ndarray:
+    """:func:`_box_least_squares` of one unknown in Python floats (the same IEEE operations).
+
+    ``np.clip`` is ``min(max(x, lo), hi)`` with numpy's ``a > b ? a : b`` (so ``max(-0.0,
+    0.0)`` is ``0.0``); a NaN goes through numpy itself.
+    """
+    scale = math.sqrt(gram)
+    g = gram / (scale * scale) + 1e-9
+    x = (cross / scale) / g
+    lo, hi = lower * scale, upper * scale
+    if math.isnan(x) or math.isnan(lo) or math.isnan(hi):
+        x = float(np.clip(np.float64(x), lo, hi))
+    else:
+        x = x if x > lo else lo
+        x = x if x < hi else hi
+    coef[0] = x / scale
     return coef
 
 
