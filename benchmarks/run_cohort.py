@@ -21,7 +21,7 @@ The machine may be shared: the load average is printed with each part.
 
 ``--baseline DIR`` also times another plexwash in the same run, interleaved: DIR holds
 ``plexwash/qc`` (and ``plexwash/plugin``) of another checkout, e.g.
-``mkdir -p DIR/plexwash && git archive main qc plugin | tar -x -C DIR/plexwash && touch
+``mkdir -p DIR/plexwash && git archive main qc plugin example_stack | tar -x -C DIR/plexwash && touch
 DIR/plexwash/__init__.py``; its processes run with ``PYTHONPATH=DIR``.
 
     python benchmarks/run_cohort.py [--repeats 3] [--parts dense,small,resume,workers] [--small 200]
