@@ -8,9 +8,12 @@ of ``--repeats``; ratios are taken within this one run. Parts (``--parts``, defa
   tifffile and writes it back with the recipe's compression and tile size
   (target <= 2.5x, must be < 3x);
 - ``small``: 200 ROIs of 36 x 96 x 96 (cut from the dense one): fixed cost per ROI =
-  (run of N ROIs - run of 1 ROI) / (N - 1) (target <= 0.1 s, must be < 0.25 s);
+  (run of N ROIs - run of 1 ROI) / (N - 1) (target <= 0.1 s, must be < 0.25 s), beside the
+  floor's (the read + write process on the same ROIs) and the ledger's median seconds per
+  stage (quality = raw + washed, and its share of an ROI's task);
 - ``resume``: rerun of a finished 24-ROI cohort (target <= 1.5 s including start-up,
-  must be < 2.5 s), and the same with ``--verify`` (re-hashes everything);
+  must be < 2.5 s) against a floor process (Python start-up, a stat of both folders, the
+  ledger read), and the same with ``--verify`` (re-hashes everything);
 - ``workers``: 8 ROIs of 36 x 504 x 504, the default (one process, threads) against
   ``--workers 2`` (target: >= 1.7x a single worker's throughput on 2 cores). Each mode's
   CPU time (its worker processes included) over its wall time says how many cores it kept
@@ -21,7 +24,7 @@ The machine may be shared: the load average is printed with each part.
 
 ``--baseline DIR`` also times another plexwash in the same run, interleaved: DIR holds
 ``plexwash/qc`` (and ``plexwash/plugin``) of another checkout, e.g.
-``mkdir -p DIR/plexwash && git archive main qc plugin | tar -x -C DIR/plexwash && touch
+``mkdir -p DIR/plexwash && git archive main qc plugin example_stack | tar -x -C DIR/plexwash && touch
 DIR/plexwash/__init__.py``; its processes run with ``PYTHONPATH=DIR``.
 
     python benchmarks/run_cohort.py [--repeats 3] [--parts dense,small,resume,workers] [--small 200]
@@ -158,44 +161,10 @@ def main(argv=None) -> None:
                   f"(target <= 2.5x, must be < 3x)   {load()}")
 
         if "small" in parts:
-            cohort = tmp / "small"
-            for k, piece in enumerate(_tiles(counts, 96, args.small)):
-                write_roi(cohort / f"roi_{k:04d}.ome.tiff", piece, names)
-            one = tmp / "one"
-            write_roi(one / "roi_0000.ome.tiff", _tiles(counts, 96, 1)[0], names)
-            t_one, ones = _median(lambda: _run(one, tmp / "one-run", spill_csv), args.repeats)
-            t_all, alls = _median(lambda: _run(cohort, tmp / "small-run", spill_csv), max(1, args.repeats // 2))
-            per = (t_all - t_one) / max(1, args.small - 1)
-            print(f"\n[small] {args.small} ROIs of {args.channels} x 96 x 96")
-            print(f"run of 1 ROI       median {t_one:6.2f} s  runs {_list(ones)}")
-            print(f"run of {args.small} ROIs   median {t_all:6.2f} s  runs {_list(alls)}")
-            print(f"fixed cost per ROI = {per:.3f} s   (target <= 0.1 s, must be < 0.25 s)   {load()}")
-            if BASELINE:
-                b_one = statistics.median([_run(one, tmp / "one-run", spill_csv, baseline=True)
-                                           for _ in range(args.repeats)])
-                b_all = _run(cohort, tmp / "small-run", spill_csv, baseline=True)
-                print(f"baseline: 1 ROI {b_one:.2f} s, {args.small} ROIs {b_all:.2f} s, fixed cost per ROI = "
-                      f"{(b_all - b_one) / max(1, args.small - 1):.3f} s   {load()}")
+            _small_part(tmp, counts, names, spill_csv, args)
 
         if "resume" in parts:
-            cohort = tmp / "resume"
-            for k, piece in enumerate(_tiles(counts, 96, args.resume_rois)):
-                write_roi(cohort / f"roi_{k:04d}.ome.tiff", piece, names)
-            out = tmp / "resume-run"
-            _run(cohort, out, spill_csv)
-            t_resume, resumes = _median(lambda: _run(cohort, out, spill_csv, fresh=False), args.repeats)
-            t_verify, verifies = _median(lambda: _run(cohort, out, spill_csv, "--verify", fresh=False),
-                                         args.repeats)
-            print(f"\n[resume] rerun of a finished cohort of {args.resume_rois} ROIs")
-            print(f"resume (size + time)  median {t_resume:6.2f} s  runs {_list(resumes)}"
-                  "   (target <= 1.5 s, must be < 2.5 s)")
-            print(f"resume --verify       median {t_verify:6.2f} s  runs {_list(verifies)}   {load()}")
-            if BASELINE:
-                base_out = tmp / "resume-base"
-                _run(cohort, base_out, spill_csv, baseline=True)
-                t_base, bases = _median(lambda: _run(cohort, base_out, spill_csv, fresh=False, baseline=True),
-                                        args.repeats)
-                print(f"baseline resume       median {t_base:6.2f} s  runs {_list(bases)}   {load()}")
+            _resume_part(tmp, counts, names, spill_csv, args)
 
         if "workers" in parts:
             cohort = tmp / "eight"
@@ -214,6 +183,100 @@ def main(argv=None) -> None:
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     print(f"\nafter: {load()}")
+
+
+def _small_part(tmp: Path, counts, names, spill_csv: Path, args) -> None:
+    """Fixed cost per small ROI: (run of N - run of 1) / (N - 1), beside the same for the floor."""
+    cohort = tmp / "small"
+    pieces = _tiles(counts, 96, args.small)
+    for k, piece in enumerate(pieces):
+        write_roi(cohort / f"roi_{k:04d}.ome.tiff", piece, names)
+    one = tmp / "one"
+    write_roi(one / "roi_0000.ome.tiff", pieces[0], names)
+    t_one, ones = _median(lambda: _run(one, tmp / "one-run", spill_csv), args.repeats)
+    t_all, alls = _median(lambda: _run(cohort, tmp / "small-run", spill_csv), max(1, args.repeats // 2))
+    rois = sorted(cohort.glob("*.ome.tiff"))
+    f_one = statistics.median(floor_seconds([(rois[0], tmp / "floor-one.ome.tiff")])
+                              for _ in range(args.repeats))
+    f_all = floor_seconds([(r, tmp / f"floor-{r.name}") for r in rois])
+    per = (t_all - t_one) / max(1, args.small - 1)
+    floor_per = (f_all - f_one) / max(1, args.small - 1)
+    print(f"\n[small] {args.small} ROIs of {args.channels} x 96 x 96")
+    print(f"run of 1 ROI       median {t_one:6.2f} s  runs {_list(ones)}")
+    print(f"run of {args.small} ROIs   median {t_all:6.2f} s  runs {_list(alls)}")
+    print(f"floor (read + write): 1 ROI {f_one:.2f} s, {args.small} ROIs {f_all:.2f} s, "
+          f"{floor_per:.4f} s per ROI")
+    print(f"fixed cost per ROI = {per:.3f} s   (target <= 0.1 s, must be < 0.25 s)   "
+          f"{per / max(floor_per, 1e-9):.0f}x the floor's per ROI; run of {args.small} / floor = "
+          f"{t_all / f_all:.1f}x   {load()}")
+    _stage_split(tmp / "small-run")
+    if BASELINE:
+        b_one = statistics.median([_run(one, tmp / "one-run", spill_csv, baseline=True)
+                                   for _ in range(args.repeats)])
+        b_all = _run(cohort, tmp / "small-run", spill_csv, baseline=True)
+        b_per = (b_all - b_one) / max(1, args.small - 1)
+        print(f"baseline: 1 ROI {b_one:.2f} s, {args.small} ROIs {b_all:.2f} s, fixed cost per ROI = "
+              f"{b_per:.3f} s; this checkout / baseline = {per / max(b_per, 1e-9):.2f}x   {load()}")
+        _stage_split(tmp / "small-run")
+
+
+RESUME_FLOOR = """
+import os, sys
+for folder in sys.argv[1:]:
+    for entry in os.scandir(folder):
+        entry.stat()
+open(os.path.join(sys.argv[2], "ledger.jsonl"), "rb").read()
+"""
+
+
+def _resume_part(tmp: Path, counts, names, spill_csv: Path, args) -> None:
+    """A rerun of a finished cohort, against a process that stats both folders and reads the ledger."""
+    import subprocess
+    import sys
+    import time
+
+    cohort = tmp / "resume"
+    for k, piece in enumerate(_tiles(counts, 96, args.resume_rois)):
+        write_roi(cohort / f"roi_{k:04d}.ome.tiff", piece, names)
+    out = tmp / "resume-run"
+    _run(cohort, out, spill_csv)
+
+    def floor():
+        start = time.perf_counter()
+        subprocess.run([sys.executable, "-c", RESUME_FLOOR, str(cohort), str(out)], check=True)
+        return time.perf_counter() - start
+
+    t_floor, floors = _median(floor, args.repeats)
+    t_resume, resumes = _median(lambda: _run(cohort, out, spill_csv, fresh=False), args.repeats)
+    t_verify, verifies = _median(lambda: _run(cohort, out, spill_csv, "--verify", fresh=False),
+                                 args.repeats)
+    print(f"\n[resume] rerun of a finished cohort of {args.resume_rois} ROIs")
+    print(f"floor (python start-up, stat both folders, read the ledger)  median {t_floor:6.2f} s  "
+          f"runs {_list(floors)}")
+    print(f"resume (size + time)  median {t_resume:6.2f} s  runs {_list(resumes)}"
+          f"   (target <= 1.5 s, must be < 2.5 s)   resume / floor = {t_resume / t_floor:.1f}x")
+    print(f"resume --verify       median {t_verify:6.2f} s  runs {_list(verifies)}   {load()}")
+    if BASELINE:
+        base_out = tmp / "resume-base"
+        _run(cohort, base_out, spill_csv, baseline=True)
+        t_base, bases = _median(lambda: _run(cohort, base_out, spill_csv, fresh=False, baseline=True),
+                                args.repeats)
+        print(f"baseline resume       median {t_base:6.2f} s  runs {_list(bases)}   "
+              f"this checkout / baseline = {t_resume / t_base:.2f}x   {load()}")
+
+
+def _stage_split(run: Path) -> None:
+    """Median seconds per ROI of each stage the ledger records (quality: raw + washed)."""
+    import json
+
+    records = [json.loads(line) for line in (run / "ledger.jsonl").read_text().splitlines() if line]
+    records = [r for r in records if r.get("status") == "done" and r.get("timings")]
+    if not records:
+        return
+    stages = {k: statistics.median(r["timings"].get(k, 0.0) for r in records) for k in records[0]["timings"]}
+    total = statistics.median(r["seconds"] for r in records)
+    print("  per ROI (median, from the ledger): " + ", ".join(f"{k} {v:.3f} s" for k, v in stages.items())
+          + f"; whole task {total:.3f} s, quality share {stages.get('quality', 0.0) / max(total, 1e-9):.0%}")
 
 
 def _list(values) -> str:

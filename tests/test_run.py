@@ -854,3 +854,27 @@ def test_ledger_quality_equals_the_quality_of_the_output_read_back(reference, co
         roi = read_roi(cohort / "cohort" / f"{rec['roi']}.ome.tiff", stains=cohort / "stains.csv")
         raw_rows, washed_rows, _ = measure_quality(roi, out / rec["output"], recipe, matrix)
         assert json.loads(json.dumps(raw_rows + washed_rows)) == rec["quality"]
+
+
+def test_package_imports_lazily_and_keeps_its_names():
+    # ``import plexwash.qc`` and the run's resume path load no numerics up front (PEP 562
+    # module __getattr__); every public name still resolves, ``plexwash.qc.wash`` stays the
+    # function even once its submodule is loaded
+    code = (
+        "import sys, plexwash.qc as qc, plexwash.qc.quality as quality, plexwash.qc.run\n"
+        "heavy = [m for m in ('numpy', 'scipy', 'numba', 'dask', 'matplotlib') if m in sys.modules]\n"
+        "assert 'plexwash.qc.quality.stack' not in sys.modules\n"
+        "import plexwash.qc.wash as module\n"
+        "assert qc.wash is sys.modules['plexwash.qc.wash'].wash and callable(qc.wash)\n"
+        "names = [getattr(qc, n) for n in qc.__all__] + [getattr(quality, n) for n in quality.__all__]\n"
+        "assert quality.measure_stack is sys.modules['plexwash.qc.quality.stack'].measure_stack\n"
+        "assert set(qc.__all__) <= set(dir(qc)) and set(quality.__all__) <= set(dir(quality))\n"
+        "print(heavy)\n"
+    )
+    result = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    # plexwash.qc.run needs the ledger and the plan only; its numerics load with the first wash
+    assert result.stdout.split("\n")[0] in ("[]", "['numpy']"), result.stdout
+    with pytest.raises(AttributeError):
+        import plexwash.qc as qc
+
+        qc.no_such_name  # noqa: B018

@@ -80,23 +80,36 @@ below their neighbours across channels), ``outlier`` (added across a cohort by
 also be ``low-sbr``.
 """
 
-from .channel import ChannelQuality, measure_channel, region_snr
-from .cohort import (
-    BATCH_EFFECT_FLAG,
-    BATCH_METRICS,
-    BATCH_OUTLIER_FLAG,
-    MIN_BATCH_ROIS,
-    add_batch_outlier_flags,
-    add_outlier_flags,
-    batch_differences,
-    batch_effect_channels,
-    cohort_outliers,
-    kruskal_wallis,
-    modified_z_scores,
-)
-from .rows import RoiQuality, measure_roi, quality_rows
-from .settings import CHANNEL_FLAGS, FLAG_SEPARATOR, OUTLIER_FLAG, ROI_FLAGS, QualitySettings
-from .stack import StackQuality, channel_threads, measure_stack
+# Names are imported on first use (PEP 562): a recipe needs QualitySettings only, not the
+# measurements' numba kernels and scipy.stats.
+_WHERE = {
+    "ChannelQuality": ".channel", "measure_channel": ".channel", "region_snr": ".channel",
+    **dict.fromkeys(("BATCH_EFFECT_FLAG", "BATCH_METRICS", "BATCH_OUTLIER_FLAG", "MIN_BATCH_ROIS",
+                     "add_batch_outlier_flags", "add_outlier_flags", "batch_differences",
+                     "batch_effect_channels", "cohort_outliers", "kruskal_wallis",
+                     "modified_z_scores"), ".cohort"),
+    "RoiQuality": ".rows", "measure_roi": ".rows", "quality_rows": ".rows",
+    **dict.fromkeys(("CHANNEL_FLAGS", "FLAG_SEPARATOR", "OUTLIER_FLAG", "ROI_FLAGS",
+                     "QualitySettings"), ".settings"),
+    "StackQuality": ".stack", "channel_threads": ".stack", "measure_stack": ".stack",
+}
+
+
+def __getattr__(name: str):
+    """Import a public name's module on first use (PEP 562)."""
+    where = _WHERE.get(name)
+    if where is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    from importlib import import_module
+
+    value = getattr(import_module(where, __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_WHERE))
+
 
 __all__ = [
     "CHANNEL_FLAGS",

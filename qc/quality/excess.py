@@ -8,8 +8,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy import linalg, ndimage, optimize, special
+from scipy import linalg, ndimage, special
+from scipy.linalg import lapack
 
+from ._bvls import bounded_lstsq
 from ._kernels import poisson_tail_screen
 from .settings import QualitySettings
 
@@ -44,9 +46,11 @@ def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarra
     margin far above their rounding).
     """
     n = np.ascontiguousarray(n, dtype=np.float64)
-    mu = np.ascontiguousarray(np.broadcast_to(mu, n.shape), dtype=np.float64)
+    if not (isinstance(mu, np.ndarray) and mu.shape == n.shape):
+        mu = np.broadcast_to(mu, n.shape)
+    mu = np.ascontiguousarray(mu, dtype=np.float64)
     verdict = np.empty(n.shape, np.int8)
-    poisson_tail_screen(n.ravel(), mu.ravel(), math.log(alpha), verdict.ravel())
+    poisson_tail_screen(n.reshape(-1), mu.reshape(-1), math.log(alpha), verdict.reshape(-1))
     out = verdict == 1
     hard = verdict == 2
     if hard.any():
@@ -88,9 +92,7 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
         new_kept = ~poisson_tail_below(n, mu, settings.fit_alpha)
         if not new_kept.any() or np.array_equal(new_kept, kept):
             break
-        g_out, h_out = _partial_gram(design, target, kept & ~new_kept)
-        g_in, h_in = _partial_gram(design, target, new_kept & ~kept)
-        g, h = g - g_out + g_in, h - h_out + h_in
+        g, h = _moved_bins(g, h, design, target, kept & ~new_kept, new_kept & ~kept)
         kept = new_kept
     return mu, coef, kept
 
@@ -120,9 +122,24 @@ def combine_rows(coef: np.ndarray, design: np.ndarray) -> np.ndarray:
     return out
 
 
-def _partial_gram(design: np.ndarray, target: np.ndarray, mask: np.ndarray):
-    """``D D^T`` and ``D t`` over the bins in ``mask``, a block of bins at a time."""
-    index = np.flatnonzero(mask)
+def _moved_bins(g, h, design, target, left, joined):
+    """``g - G(left) + G(joined)``, ``h - H(left) + H(joined)`` (:func:`_partial_gram`).
+
+    A side no bin moved to contributes zeros, so its product is not formed (``+ 0.0``
+    keeps what adding those zeros does to a -0.0).
+    """
+    index_out, index_in = np.flatnonzero(left), np.flatnonzero(joined)
+    if index_out.size:
+        g_out, h_out = _partial_gram(design, target, index_out)
+        g, h = g - g_out, h - h_out
+    if index_in.size:
+        g_in, h_in = _partial_gram(design, target, index_in)
+        return g + g_in, h + h_in
+    return g + 0.0, h + 0.0
+
+
+def _partial_gram(design: np.ndarray, target: np.ndarray, index: np.ndarray):
+    """``D D^T`` and ``D t`` over the bins ``index``, a block of bins at a time."""
     g = np.zeros((design.shape[0], design.shape[0]))
     h = np.zeros(design.shape[0])
     for start in range(0, index.size, _GRAM_BLOCK):
@@ -139,36 +156,67 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
 
     Variables with ``upper <= lower`` are fixed at ``lower``; the others are
     solved as the equivalent bounded least-squares problem ||L^T c - L^-1 h||
-    (G = L L^T) with ``scipy.optimize.lsq_linear`` (BVLS), on a diagonally scaled
-    G with a tiny ridge so that dependent or all-zero sources do no harm.
+    (G = L L^T) with BVLS (:func:`._bvls.bounded_lstsq`, the answer of
+    ``scipy.optimize.lsq_linear(method="bvls")`` to the bit), on a diagonally scaled
+    G with a tiny ridge so that dependent or all-zero sources do no harm. The
+    factorisation and triangular solve are LAPACK's ``dpotrf`` / ``dtrtrs``, called as
+    ``scipy.linalg.cholesky`` / ``solve_triangular`` call them, without their checks.
     """
-    coef = lower.astype(np.float64).copy()
-    free = (upper > lower) & (np.diag(gram) > 0)
-    if not free.any():
-        return coef
+    coef = lower.astype(np.float64)
+    diagonal = gram.diagonal()
+    free = (upper > lower) & (diagonal > 0)
     idx = np.flatnonzero(free)
-    fixed = np.flatnonzero(~free)
-    h = cross[idx] - gram[np.ix_(idx, fixed)] @ coef[fixed]
-    scale = np.sqrt(np.diag(gram)[idx])
-    g = gram[np.ix_(idx, idx)] / np.outer(scale, scale)
-    g[np.diag_indices_from(g)] += 1e-9
+    if idx.size == 0:
+        return coef
+    if idx.size == 1 == free.size:
+        return _one_unknown(float(gram[0, 0]), float(cross[0]), float(lower[0]), float(upper[0]), coef)
+    if idx.size == free.size:  # nothing fixed: the fixed part of h is an empty product (+0)
+        h = cross - 0.0
+        g = gram.copy()
+    else:
+        fixed = np.flatnonzero(~free)
+        h = cross[idx] - gram[np.ix_(idx, fixed)] @ coef[fixed]
+        g = gram[np.ix_(idx, idx)]
+    scale = np.sqrt(diagonal[idx])
+    g /= np.outer(scale, scale)
+    g.flat[::idx.size + 1] += 1e-9
     h = h / scale
     lo = lower[idx] * scale
     hi = upper[idx] * scale
-    if len(idx) == 1:  # one unknown: clip the unconstrained minimum
+    if idx.size == 1:  # one unknown: clip the unconstrained minimum
         coef[idx] = np.clip(h / g[0, 0], lo, hi) / scale
         return coef
-    try:
-        chol = linalg.cholesky(g, lower=True)
-        design, rhs = chol.T, linalg.solve_triangular(chol, h, lower=True)
-    except linalg.LinAlgError:
+    chol, info = lapack.dpotrf(g, lower=1, clean=1)
+    if info == 0:
+        design = chol.T
+        rhs, info = lapack.dtrtrs(chol, h, lower=1)
+    if info != 0:
         # G built from sums can come out very slightly indefinite (rounding): use its
         # eigen-decomposition with the eigenvalues floored at the ridge instead
         w, v = linalg.eigh((g + g.T) / 2)
         root = np.sqrt(np.maximum(w, 1e-9))
         design, rhs = (v * root).T, (v.T @ h) / root
-    result = optimize.lsq_linear(design, rhs, bounds=(lo, hi), method="bvls")
-    coef[idx] = result.x / scale
+    coef[idx] = bounded_lstsq(design, rhs, lo, hi) / scale
+    return coef
+
+
+def _one_unknown(gram: float, cross: float, lower: float, upper: float,
+                 coef: np.ndarray) -> np.ndarray:
+    """:func:`_box_least_squares` of one unknown in Python floats (the same IEEE operations).
+
+    ``np.clip`` is ``min(max(x, lo), hi)`` with numpy's ``a > b ? a : b`` (so ``max(-0.0,
+    0.0)`` is ``0.0``); a NaN goes through numpy itself.
+    """
+    scale = math.sqrt(gram)
+    g = gram / (scale * scale) + 1e-9
+    x = (cross / scale) / g
+    lo, hi = lower * scale, upper * scale
+    if math.isnan(x) or math.isnan(lo) or math.isnan(hi):
+        x = float(np.clip(np.float64(x), lo, hi))
+    else:
+        x = x if x > lo else lo
+        x = x if x < hi else hi
+    coef[0] = x / scale
     return coef
 
 

@@ -57,8 +57,11 @@ class GhostModel:
 
 
 def ghost_test(c: int, cq: ChannelQuality, model: GhostModel, settings: QualitySettings,
-               sources: np.ndarray) -> ChannelQuality:
-    """Excess test of channel c with the region backgrounds and the other channels' ghosts."""
+               sources: np.ndarray | None) -> ChannelQuality:
+    """Excess test of channel c with the region backgrounds and the other channels' ghosts.
+
+    ``sources`` is :meth:`GhostModel.sources`; unused (may be None) with a known matrix.
+    """
     k, design, names = model.n_background, model.design, model.names
     target = design[k + c].astype(np.float64)
     others = [i for i in range(len(names)) if i != c]

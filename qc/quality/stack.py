@@ -246,14 +246,19 @@ def _judge_with_ghosts(results: list[ChannelQuality], model: GhostModel,
     split = model.n_background > 1
     if len(results) < 2 and not split:
         return results
-    sources = {s.plausible_ghosts: model.sources(s) for s in per_channel}
+    # the pairs a ghost may come from, once per distinct setting (a known matrix needs none)
+    sources = {}
+    if model.matrix is None:
+        for s in per_channel:
+            if s.plausible_ghosts not in sources:
+                sources[s.plausible_ghosts] = model.sources(s)
 
     def judge(c):
         cq, s = results[c], per_channel[c]
         # ghosts and regions only explain more of a channel: one already empty stays empty
         if cq.empty or (not s.ghosts and model.matrix is None and not split):
             return cq
-        return ghost_test(c, cq, model, s, sources[s.plausible_ghosts])
+        return ghost_test(c, cq, model, s, sources.get(s.plausible_ghosts))
 
     return _map_threads(judge, range(len(results)), threads)
 

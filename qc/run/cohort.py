@@ -18,11 +18,9 @@ from .._version import __version__
 from ..errors import InputError, OutputError
 from ..files import remove_path, sweep_leftovers, write_atomic
 from ..ledger import LEDGER, QUALITY, RECIPE, REPORT, RUN_LOG, STAINS_COPY, Ledger, repair_ledger
-from ..report import write_report
 from ..table import SAMPLES_COPY, write_quality_table
 from .execute import connect, execute
 from .folder import interrupts, run_lock
-from .handoff import write_run_handoff
 from .plan import Job, check_inputs, plan_jobs, write_run_files
 from .progress import RunLog
 
@@ -204,7 +202,10 @@ def _run_locked(inputs, out: Path, *, started, workers, client, progress, cancel
             if not jobs and _closing_files_current(out):  # a resume with nothing to do
                 report = out / REPORT
                 log.line(f"nothing new: {QUALITY} and {REPORT} already hold every ROI, kept")
-            else:
+            else:  # the report and the hand-off files load numpy, scipy, matplotlib: only here
+                from ..report import write_report
+                from .handoff import write_run_handoff
+
                 write_quality_table(out)
                 for line in write_run_handoff(out):  # audit.csv, composites, arcsinh stacks
                     log.line(line)
