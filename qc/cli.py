@@ -344,7 +344,8 @@ def _wash(args) -> int:
 
         raise InputError(out, "output must end in .ome.tiff or .ome.zarr, or be a folder")
     check_output(out, reached_inputs([args.roi, args.recipe, recipe.spillover_path(), args.spillover,
-                                      args.stains]), kind="stack")
+                                      args.stains, *recipe.batch_spillover_paths().values()]),
+                 kind="stack")
     from .run import bound_heap
 
     bound_heap()  # as a run does: threads share one malloc arena
@@ -353,6 +354,9 @@ def _wash(args) -> int:
     result = wash_to_file(roi, out, recipe, spillover=args.spillover,
                           staging_dir=os.environ.get(STAGING_ENV) or None)
     print(f"washed {roi.name} -> {out} in {result.seconds:.1f} s")
+    if recipe.batch_spillover:  # batches come from a cohort's sample sheet; one ROI has none
+        print("  note: [compensation.batches] applies to `plexwash run` with a sample sheet; "
+              "this wash used [compensation] spillover (or --spillover)")
     for note in result.notes:
         print(f"  note: {note}")
     for step, rows in result.stats.items():

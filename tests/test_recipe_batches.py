@@ -174,3 +174,20 @@ def test_two_batches_each_roi_compensated_with_its_own_matrix(world):
     assert (again.done, again.skipped) == (2, 2)
     redone = [r["roi"] for r in read_ledger(out)][4:]
     assert sorted(redone) == ["s2/a", "s2/b"]
+
+
+def test_one_roi_wash_protects_batch_matrices_and_says_they_do_not_apply(world, capsys):
+    tmp, cohort, recipe = world
+    roi = cohort / "s1" / "a.ome.tiff"
+    out = tmp / "one.ome.tiff"
+    assert main(["wash", str(roi), "-o", str(out), "--recipe", str(recipe)]) == 0
+    assert "[compensation.batches] applies to `plexwash run` with a sample sheet" in capsys.readouterr().out
+    # a batch matrix (oddly named) is an input of the wash: the output may not replace it
+    victim = tmp / "controls" / "b1.ome.tiff"
+    victim.write_bytes((tmp / "controls" / "b1.csv").read_bytes())
+    before = victim.read_bytes()
+    _recipe(recipe, {"B1": "controls/b1.ome.tiff", "B2": "controls/b2.csv"})
+    assert main(["wash", str(roi), "-o", str(victim), "--recipe", str(recipe)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("error: ") and str(victim) in err and "\n" not in err
+    assert victim.read_bytes() == before
