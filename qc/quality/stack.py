@@ -7,9 +7,9 @@ from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
 from .._arrays import channel_plane
+from .._threads import one_thread
 from ..errors import InputError
 from .channel import ChannelQuality, bin_areas, measure_prepared, prepare_channel
 from .excess import gram_matrix
@@ -196,7 +196,7 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
 
     # The ghost fits are many small products: one BLAS thread is fastest, and
     # keeps a threaded BLAS from fighting other work for the cores.
-    with threadpool_limits(limits=1, user_api="blas"):
+    with one_thread("blas"):
         model = GhostModel(design=design, gram=gram_matrix(design), n_background=k,
                            shape=areas.shape, names=names, matrix=matrix)
         results = _judge_with_ghosts(results, model, per_channel, threads=threads)

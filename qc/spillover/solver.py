@@ -239,9 +239,9 @@ class _one_blas_thread:
 
     def __enter__(self):
         if self.active:
-            from threadpoolctl import threadpool_limits
+            from .._threads import one_thread
 
-            self.limiter = threadpool_limits(limits=1, user_api="blas")
+            self.limiter = one_thread("blas")
         return self
 
     def __exit__(self, *exc):

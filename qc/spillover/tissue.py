@@ -8,8 +8,8 @@ import math
 from pathlib import Path
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
+from .._threads import one_thread
 from ..errors import InputError
 from .estimates import check_bootstrap, rounded_estimate
 from .masses import plausible_pairs
@@ -225,7 +225,7 @@ def _estimate(rois, *, stains, all_pairs, bin_size, block, n_boot, level, max_va
     fit = _Fit(strata=strata, usable=usable, inside=inside, grids=grids, block_of=block_of,
                roi_of=roi_of, smooth=smooth, n_boot=n_boot, max_value=max_value, area=area)
     values = np.eye(n)
-    with threadpool_limits(limits=1, user_api="blas"):  # thousands of small solves: threads only add overhead
+    with one_thread("blas"):  # thousands of small solves: threads only add overhead
         for _round in range(1 + refinements):
             # Sources are the stains' own signal: their background taken off, and the
             # spillover found so far undone.
