@@ -284,7 +284,8 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
         dim = (positive & (img <= min_value - 1)).astype(np.int64)
         n_dim = ndi.convolve(dim, box, mode="constant") - dim
         rest = trials - n_bright
-        judged = dense & (n_bright > 0) & (2 * rest >= trials)
+        own = img <= stats.poisson.isf(rim_alpha, level)  # P(Y >= v) >= rim_alpha: consistent with background
+        judged = dense & own & (n_bright > 0) & (2 * rest >= trials)
         dense = np.where(judged, n_dim >= stats.binom.isf(rim_alpha, rest, rate) + 1, dense)
     if wide_radius:  # dim positives (not above the value cut) in the wide window, the centre counted as one
         wide_box = np.ones((2 * wide_radius + 1,) * 2, np.int64)
@@ -427,7 +428,7 @@ def test_background_given_is_used_and_must_match_threshold():
     assert st["rate"] == whole.rate
     expected = reference_speckle(crop, threshold=0.0, radius=2, alpha=0.01, value_alpha=1e-6, min_area=2,
                                  rate=whole.rate, level=whole.level, wide_radius=5, edge_alpha=1e-3,
-                                 line_half=4, lone_alpha=1e-12)  # the defaults
+                                 line_half=4, lone_alpha=1e-12, rim_alpha=0.01)  # the defaults
     np.testing.assert_array_equal(out, expected)
     with pytest.raises(InputError, match="background: estimated with threshold 0, filter uses 1"):
         remove_speckle(crop, threshold=1.0, background=whole)

@@ -170,8 +170,8 @@ def centre_histogram(image, counts, threshold, radius, histogram):
 
 @nb.njit(cache=True, nogil=True)
 def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count, wide_radius, wide_min_count,
-                   support_min_count, value_cut, low_mean, keep_touching, min_area, lone_cut, rim_min_count, out,
-                   removed):
+                   support_min_count, value_cut, low_mean, keep_touching, min_area, lone_cut, rim_min_count,
+                   rim_value, out, removed):
     """Local-density speckle filter of one channel; return how many pixels were set to 0.
 
     Parameters (all arrays C-contiguous)
@@ -200,7 +200,8 @@ def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count
     rim_min_count : int32 (Z, (2r+1)^2) or (Z, 0) for off; a pixel dense in its own window that has
         bright neighbours (``> value_cut``) which are fewer than half its neighbours is judged on
         the rest: dense only with at least ``rim_min_count[z, m]`` dim positive pixels among the
-        ``m`` neighbours that are not bright (the rim rule; no wide-window rescue then)
+        ``m`` neighbours that are not bright (the rim rule; no wide-window rescue then), when its
+        own value is at most ``rim_value[z]`` (consistent with background)
     out, removed : float32 (H, W), filled completely
     """
     height, width = image.shape
@@ -215,7 +216,7 @@ def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count
                 n = np.int32(counts[y, x]) - 1
                 dense = n >= min_count[z, rows, cols]
                 rimmed = False
-                if dense and rim_min_count.shape[1] > 0:
+                if dense and rim_min_count.shape[1] > 0 and v <= rim_value[z]:
                     rimmed, dense = _rim_dense(image, y, x, threshold, value_cut[z], radius, rim_min_count[z])
                 if not dense and not rimmed and n >= support_min_count[z, rows, cols]:
                     wrows = min(height - 1, y + wide_radius) - max(0, y - wide_radius) + 1

@@ -98,6 +98,7 @@ from .speckle_tests import (
     poisson_level,
     poisson_min_value,
     rim_tables,
+    rim_values,
     without_residue,
     zone_tables,
 )
@@ -454,6 +455,7 @@ def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate
         "line_half": int(settings.line_half),
         "line_min_count": line_tables(levels, rates, settings),
         "rim_min_count": rim_tables(levels, rates, settings),
+        "rim_value": rim_values(levels, settings),
         "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
         "keep_touching": bool(settings.keep_touching),
         "zoned": zoned,

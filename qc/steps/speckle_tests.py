@@ -349,6 +349,16 @@ def rim_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
     return np.ascontiguousarray(table)
 
 
+def rim_values(levels: np.ndarray, settings) -> np.ndarray:
+    """Per zone, the highest value the rim rule judges: values whose Poisson upper tail under the
+    zone's level is at least ``rim_alpha`` (consistent with background); brighter pixels of a cell's
+    edge are never judged."""
+    levels = np.asarray(levels, np.float64)
+    if settings.rim_alpha <= 0:
+        return np.full(len(levels), -np.inf)
+    return np.array([poisson_min_value(level, settings.rim_alpha) - 1.0 for level in levels], np.float64)
+
+
 def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
     """``image`` with the residue of removed spillover set to 0 (:func:`drop_residue` against the
     background ``levels[zone]``, or ``levels[0]`` everywhere without a zone map), or ``image``
