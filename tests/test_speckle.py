@@ -267,7 +267,7 @@ def test_background_rate_recovered_and_not_inflated_by_cells(rate):
 
 def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False,
                       wide_radius=0, support_alpha=0.2, edge_alpha=0.0, line_half=0, lone_alpha=0.0,
-                      line_alpha=0.003):
+                      line_alpha=0.003, rim_alpha=0.0):
     """The documented rule, written with scipy building blocks."""
     side = 2 * radius + 1
     positive = img > np.float32(threshold)
@@ -277,13 +277,23 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
     min_count = stats.binom.isf(alpha, trials, rate) + 1  # scipy.stats.binom.isf
     dense = n >= min_count
     min_value = stats.poisson.isf(value_alpha, level) + 1  # scipy.stats.poisson.isf
+    judged = np.zeros(img.shape, bool)
+    if rim_alpha > 0:  # rim rule: beside bright pixels (under half the neighbours), judged on the others
+        bright = (img > min_value - 1).astype(np.int64)
+        n_bright = ndi.convolve(bright, box, mode="constant") - bright
+        dim = (positive & (img <= min_value - 1)).astype(np.int64)
+        n_dim = ndi.convolve(dim, box, mode="constant") - dim
+        rest = trials - n_bright
+        own = img <= stats.poisson.isf(rim_alpha, level)  # P(Y >= v) >= rim_alpha: consistent with background
+        judged = dense & own & (n_bright > 0) & (2 * rest >= trials)
+        dense = np.where(judged, n_dim >= stats.binom.isf(rim_alpha, rest, rate) + 1, dense)
     if wide_radius:  # dim positives (not above the value cut) in the wide window, the centre counted as one
         wide_box = np.ones((2 * wide_radius + 1,) * 2, np.int64)
         dim = positive & (img <= min_value - 1)
         n_wide = ndi.convolve(dim.astype(np.int64), wide_box, mode="constant") - 1
         wide_trials = ndi.convolve(np.ones(img.shape, np.int64), wide_box, mode="constant") - 1
         support = n >= stats.binom.isf(support_alpha, trials, rate) + 1
-        dense |= support & (n_wide >= stats.binom.isf(alpha, wide_trials, rate) + 1)
+        dense |= support & ~judged & (n_wide >= stats.binom.isf(alpha, wide_trials, rate) + 1)
     if line_half:  # dim positives on each line of speckle_tests.line_offsets, both sides present
         dim = positive & (img <= min_value - 1)
         size = 2 * line_half + 1
@@ -326,8 +336,9 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
                           (3, 5, 1.5, True, 0, 0.0, 3, 1e-8), (2, 12, 0.0, True, 0, 0.0, 0, 1e-12),
                           (2, 1, 0.5, True, 0, 0.0, 4, 0.0), (2, 2, 0.5, False, 5, 1e-3, 4, 1e-12),
                           (1, 3, 0.0, True, 4, 1e-2, 6, 1e-6)])
+@pytest.mark.parametrize("rim_alpha", [0.0, 0.01])
 def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold, keep_touching, wide_radius, edge_alpha,
-                                             line_half, lone_alpha):
+                                             line_half, lone_alpha, rim_alpha):
     d = synthetic_channel((150, 170), background=0.15, seed=radius + min_area, n_cells=40, n_dim=10,
                           n_specks=15, n_processes=4, n_hot=0)
     img = d["counts"]
@@ -336,7 +347,7 @@ def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold, keep_t
     img[70, 5] = img[5, 160] = 30.0  # lone bright pixels (away from the synthetic objects, mostly)
     settings = dict(threshold=threshold, radius=radius, alpha=0.01, value_alpha=1e-5, min_area=min_area,
                     keep_touching=keep_touching, wide_radius=wide_radius, edge_alpha=edge_alpha,
-                    line_half=line_half, lone_alpha=lone_alpha)
+                    line_half=line_half, lone_alpha=lone_alpha, rim_alpha=rim_alpha)
     out, removed, st = remove_speckle(img, **settings)
     expected = reference_speckle(img, rate=st["rate"], level=st["level"], **settings)
     np.testing.assert_array_equal(out, expected)
@@ -417,7 +428,7 @@ def test_background_given_is_used_and_must_match_threshold():
     assert st["rate"] == whole.rate
     expected = reference_speckle(crop, threshold=0.0, radius=2, alpha=0.01, value_alpha=1e-6, min_area=2,
                                  rate=whole.rate, level=whole.level, wide_radius=5, edge_alpha=1e-3,
-                                 line_half=4, lone_alpha=1e-12)  # the defaults
+                                 line_half=4, lone_alpha=1e-12, rim_alpha=0.01)  # the defaults
     np.testing.assert_array_equal(out, expected)
     with pytest.raises(InputError, match="background: estimated with threshold 0, filter uses 1"):
         remove_speckle(crop, threshold=1.0, background=whole)

@@ -51,7 +51,7 @@ def random_recipe(seed: int, channels):
                             edge_alpha=float(10 ** rng.uniform(-4, -2)), residue_alpha=float(rng.uniform(0.02, 0.2)))
     a, b, c, d = rng.choice(len(channels), 4, replace=False)
     recipe = recipe.replace("speckle", lone_alpha=float(10 ** rng.uniform(-14, -10)), line_half=int(rng.integers(2, 4)),
-                            line_alpha=float(rng.uniform(0.005, 0.02)))
+                            line_alpha=float(rng.uniform(0.005, 0.02)), rim_alpha=float(rng.uniform(0.02, 0.05)))
     recipe = recipe.with_channel("hot_pixels", channels[a], flat_sigmas=0.0, ratio=9.0)
     recipe = recipe.with_channel("hot_pixels", channels[b], enabled=False)
     recipe = recipe.with_channel("speckle", channels[c], radius=1, min_area=1, keep_touching=False,

@@ -170,7 +170,8 @@ def centre_histogram(image, counts, threshold, radius, histogram):
 
 @nb.njit(cache=True, nogil=True)
 def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count, wide_radius, wide_min_count,
-                   support_min_count, value_cut, low_mean, keep_touching, min_area, lone_cut, out, removed):
+                   support_min_count, value_cut, low_mean, keep_touching, min_area, lone_cut, rim_min_count,
+                   rim_value, out, removed):
     """Local-density speckle filter of one channel; return how many pixels were set to 0.
 
     Parameters (all arrays C-contiguous)
@@ -196,6 +197,11 @@ def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count
     min_area : int; kept 8-connected components smaller than this are dropped, unless one of
         their pixels has ``value > lone_cut[zone]``
     lone_cut : float64 (Z,)
+    rim_min_count : int32 (Z, (2r+1)^2) or (Z, 0) for off; a pixel dense in its own window that has
+        bright neighbours (``> value_cut``) which are fewer than half its neighbours is judged on
+        the rest: dense only with at least ``rim_min_count[z, m]`` dim positive pixels among the
+        ``m`` neighbours that are not bright (the rim rule; no wide-window rescue then), when its
+        own value is at most ``rim_value[z]`` (consistent with background)
     out, removed : float32 (H, W), filled completely
     """
     height, width = image.shape
@@ -209,7 +215,10 @@ def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count
                 z = zone[y, x]
                 n = np.int32(counts[y, x]) - 1
                 dense = n >= min_count[z, rows, cols]
-                if not dense and n >= support_min_count[z, rows, cols]:
+                rimmed = False
+                if dense and rim_min_count.shape[1] > 0 and v <= rim_value[z]:
+                    rimmed, dense = _rim_dense(image, y, x, threshold, value_cut[z], radius, rim_min_count[z])
+                if not dense and not rimmed and n >= support_min_count[z, rows, cols]:
                     wrows = min(height - 1, y + wide_radius) - max(0, y - wide_radius) + 1
                     wcols = min(width - 1, x + wide_radius) - max(0, x - wide_radius) + 1
                     dense = np.int32(wide[y, x]) - 1 >= wide_min_count[z, wrows, wcols]
@@ -241,6 +250,30 @@ def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count
                 out[y, x] = v
                 removed[y, x] = 0.0
     return n_removed
+
+
+@nb.njit(cache=True, nogil=True)
+def _rim_dense(image, y, x, threshold, cut, radius, table):
+    """``(judged, dense)`` of the rim rule for (y, x): judged when some but fewer than half of the
+    window's neighbours are bright (``> cut``); then dense when the dim positive neighbours among
+    the ``m`` others reach ``table[m]``."""
+    height, width = image.shape
+    bright = 0
+    dim = 0
+    total = 0
+    for yy in range(max(0, y - radius), min(height, y + radius + 1)):
+        for xx in range(max(0, x - radius), min(width, x + radius + 1)):
+            if yy != y or xx != x:
+                total += 1
+                u = image[yy, xx]
+                if u > cut:
+                    bright += 1
+                elif u > threshold:
+                    dim += 1
+    rest = total - bright
+    if bright == 0 or 2 * rest < total:
+        return False, True
+    return True, dim >= table[rest]
 
 
 @nb.njit(cache=True, nogil=True)

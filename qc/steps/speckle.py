@@ -90,7 +90,6 @@ from .speckle_settings import SpeckleSettings
 from .speckle_tests import (
     MIN_REGION_WINDOWS,
     binomial_min_count,
-    drop_residue,
     fit_rate,
     line_offsets,
     line_tables,
@@ -98,6 +97,9 @@ from .speckle_tests import (
     low_mean_table,
     poisson_level,
     poisson_min_value,
+    rim_tables,
+    rim_values,
+    without_residue,
     zone_tables,
 )
 
@@ -109,8 +111,6 @@ __all__ = [
     "speckle_depth",
     "speckle_stack",
 ]
-
-
 
 
 class BackgroundEstimate(NamedTuple):
@@ -148,7 +148,6 @@ class BackgroundEstimate(NamedTuple):
     value_alpha: float
     glass_level: float = float("nan")
     zone_levels: np.ndarray | None = None
-
 
 
 # ----------------------------------------------------------------------------- background
@@ -272,6 +271,7 @@ def remove_speckle(
     lone_alpha: float = 1e-12,
     line_half: int = 4,
     line_alpha: float = 0.003,
+    rim_alpha: float = 0.01,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
     """Remove sparse background counts of one channel by a local-density test.
@@ -312,6 +312,9 @@ def remove_speckle(
         (binomial test at ``line_alpha / T`` for ``T`` lines, Bonferroni; 0: off).
     line_alpha : float, optional
         False-keep rate of the line test for one background pixel.
+    rim_alpha : float, optional
+        Rim rule: a pixel dense in its own window beside a bright cell is judged on its other
+        neighbours alone (exact binomial test at ``rim_alpha``; 0: off).
     lone_alpha : float, optional
         A smaller component stays when one of its pixels has ``P(Y >= value) < lone_alpha``
         under the channel's densest Poisson background (0: off).
@@ -351,7 +354,7 @@ def remove_speckle(
     values = {"threshold": threshold, "radius": radius, "alpha": alpha, "value_alpha": value_alpha,
               "keep_touching": keep_touching, "min_area": min_area, "edge_alpha": edge_alpha,
               "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
-              "line_half": line_half, "line_alpha": line_alpha}
+              "line_half": line_half, "line_alpha": line_alpha, "rim_alpha": rim_alpha}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
@@ -373,7 +376,8 @@ def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out
     if background is None:
         background = _estimate(image, counts, settings, zone)
     params = _filter_parameters(settings, background)
-    tested = _without_residue(image, spilled, zone, params, settings)
+    tested = without_residue(image, spilled, zone if params["zoned"] else None, params["levels"],
+                             settings.residue_alpha)
     if tested is not image:
         counts = _counts(tested, settings)
     out, removed = kernel_outputs(image, out, removed)
@@ -383,19 +387,6 @@ def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out
     stats = _speckle_stats(settings, background)
     stats.update(n_removed=int(np.count_nonzero(removed > 0)), removed_fraction=removed_fraction(removed, image))
     return StepResult(out, removed, stats)
-
-
-def _without_residue(image, spilled, zone, params: dict, settings: SpeckleSettings):
-    """``image`` with the residue of removed spillover set to 0 (:func:`.speckle_tests.drop_residue`),
-    or ``image`` itself when there is nothing to test."""
-    if spilled is None or settings.residue_alpha <= 0:
-        return image
-    levels = params["levels"]
-    if params["zoned"] and zone is not None:
-        local = levels[zone]
-    else:
-        local = np.full(image.shape, levels[0])
-    return drop_residue(image, spilled, np.nan_to_num(local, posinf=1e30), float(settings.residue_alpha))
 
 
 def _estimate(image: np.ndarray, counts: np.ndarray, settings: SpeckleSettings, zone) -> BackgroundEstimate:
@@ -463,6 +454,8 @@ def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate
         "lone_cut": lone_cuts(levels, settings),
         "line_half": int(settings.line_half),
         "line_min_count": line_tables(levels, rates, settings),
+        "rim_min_count": rim_tables(levels, rates, settings),
+        "rim_value": rim_values(levels, settings),
         "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
         "keep_touching": bool(settings.keep_touching),
         "zoned": zoned,
@@ -494,7 +487,8 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
 def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: SpeckleSettings | None = None):
     block = np.ascontiguousarray(block)
     if spilled is not None and settings is not None:
-        block = _without_residue(block, np.ascontiguousarray(spilled), zone, params, settings)
+        block = without_residue(block, np.ascontiguousarray(spilled), zone if params["zoned"] else None,
+                                params["levels"], settings.residue_alpha)
     counts = np.empty(block.shape, np.uint16)
     _k.window_counts(block, params["threshold"], params["radius"], counts)
     out = np.empty(block.shape, np.float32)

@@ -63,6 +63,11 @@ class SpeckleSettings:
         1e-3, "a dense pixel is not kept by density when its value is this improbably low for the mean of its"
         " 8 neighbours (background on the rim of bright cells; 0: off)", low=0.0, high=0.5
     )
+    rim_alpha: float = setting(
+        0.01, "a dense pixel beside a bright cell (some, but under half, of its window's neighbours bright) is"
+        " kept by density only when its other neighbours alone are this improbable for background (exact"
+        " binomial test; removes background on the rims of cells; 0: off)", low=0.0, high=0.5,
+    )
     local_rates: bool = setting(
         True, "test against the background where the pixel lies (tissue or glass, and its local variation)"
         " rather than one rate for the whole channel"

@@ -328,3 +328,42 @@ def lone_cuts(levels: np.ndarray, settings) -> np.ndarray:
     finite = levels[np.isfinite(levels)]  # an infinite zone keeps every pixel anyway
     cut = poisson_min_value(float(np.max(finite, initial=0.0)), settings.lone_alpha) - 1.0
     return np.full(len(levels), cut, np.float64)
+
+
+def rim_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
+    """``table[z, m]``: smallest dim positive count among ``m`` neighbours kept by the rim rule.
+
+    Exact one-sided binomial test at ``rim_alpha`` (the density test of Ester et al. 1996 on
+    the neighbours that are not bright): a pixel on the rim of a bright cell is dense only when
+    its window is dense without the cell. Shape ``(Z, 0)`` when ``rim_alpha`` is 0 (off).
+    """
+    levels = np.asarray(levels, np.float64)
+    if settings.rim_alpha <= 0:
+        return np.zeros((len(levels), 0), np.int32)
+    if rates is None:
+        rates = positive_rate(levels, settings.threshold)
+    rates = np.asarray(rates, np.float64)
+    trials = np.arange((2 * int(settings.radius) + 1) ** 2)
+    table = binomial_min_count(trials[None, :], rates[:, None], settings.rim_alpha).astype(np.int32)
+    table[rates >= 1.0] = 0
+    return np.ascontiguousarray(table)
+
+
+def rim_values(levels: np.ndarray, settings) -> np.ndarray:
+    """Per zone, the highest value the rim rule judges: values whose Poisson upper tail under the
+    zone's level is at least ``rim_alpha`` (consistent with background); brighter pixels of a cell's
+    edge are never judged."""
+    levels = np.asarray(levels, np.float64)
+    if settings.rim_alpha <= 0:
+        return np.full(len(levels), -np.inf)
+    return np.array([poisson_min_value(level, settings.rim_alpha) - 1.0 for level in levels], np.float64)
+
+
+def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
+    """``image`` with the residue of removed spillover set to 0 (:func:`drop_residue` against the
+    background ``levels[zone]``, or ``levels[0]`` everywhere without a zone map), or ``image``
+    itself when there is nothing to test (no ``spilled``, or ``alpha`` 0)."""
+    if spilled is None or alpha <= 0:
+        return image
+    local = levels[zone] if zone is not None else np.full(image.shape, levels[0])
+    return drop_residue(image, spilled, np.nan_to_num(local, posinf=1e30), float(alpha))
