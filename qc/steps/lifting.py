@@ -94,7 +94,7 @@ def run_stack(stack, per_channel: list, channel_step, *, passive: dict, block_ke
         removed[...] = 0.0
         return StepResult(out, removed, stats)
 
-    from threadpoolctl import threadpool_limits
+    from .._threads import one_thread
 
     cleaned = np.empty(stack.shape, np.float32)
     removed = np.empty(stack.shape, np.float32)
@@ -103,7 +103,7 @@ def run_stack(stack, per_channel: list, channel_step, *, passive: dict, block_ke
         return one(c, cleaned[c], removed[c]).stats
 
     workers = min(n_channels, os.cpu_count() or 1)
-    with threadpool_limits(limits=1):  # kernels run in parallel threads; keep BLAS pools out of their way
+    with one_thread():  # kernels run in parallel threads; keep BLAS pools out of their way
         if workers <= 1:
             stats = [store(c) for c in range(n_channels)]
         else:
