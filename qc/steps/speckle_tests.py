@@ -44,6 +44,8 @@ Background rate
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 from scipy import special
 
@@ -67,6 +69,7 @@ __all__ = [
     "min_count_table",
     "poisson_level",
     "poisson_min_value",
+    "poisson_min_values",
     "positive_rate",
     "zone_tables",
 ]
@@ -155,6 +158,29 @@ def poisson_min_value(level: float, value_alpha: float) -> float:
     return float(high)
 
 
+def poisson_min_values(levels, value_alpha: float) -> np.ndarray:
+    """:func:`poisson_min_value` of each entry of ``levels`` (float64 array), in one vectorised
+    search: every entry takes the same doubling and bisection steps, with the same
+    ``special.pdtrc`` comparisons, as the scalar function, so the results are equal."""
+    levels = np.asarray(levels, np.float64)
+    out = np.full(levels.shape, np.inf)
+    finite = np.isfinite(levels)
+    level = levels[finite]
+    low = np.zeros(level.shape, np.int64)
+    high = np.ones(level.shape, np.int64)
+    growing = special.pdtrc(high - 1, level) >= value_alpha
+    while growing.any():
+        low = np.where(growing, high, low)
+        high = np.where(growing, 2 * high, high)
+        growing = special.pdtrc(high - 1, level) >= value_alpha
+    while np.any(high - low > 1):
+        mid = (low + high) // 2
+        below = special.pdtrc(mid - 1, level) < value_alpha
+        low, high = np.where(below, low, mid), np.where(below, mid, high)
+    out[finite] = high
+    return out
+
+
 def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
     """Smallest ``k`` with ``P(N >= k) < alpha``, ``N ~ Binomial(trials, rate)``, per entry.
 
@@ -197,12 +223,12 @@ def zone_tables(levels: np.ndarray, *, rates=None, threshold: float, radius: int
     if rates is not None:  # one zone, its rate as fitted
         rates = np.asarray(rates, np.float64)
         tables = min_count_table(radius, rates, alpha)
-        cuts = np.array([poisson_min_value(level, value_alpha) - 1.0 for level in levels])
+        cuts = poisson_min_values(levels, value_alpha) - 1.0
         return tables, cuts
     distinct, index = np.unique(levels, return_inverse=True)
     rates = positive_rate(distinct, threshold)
     tables = min_count_table(radius, rates, alpha)
-    cuts = np.array([poisson_min_value(level, value_alpha) - 1.0 for level in distinct])
+    cuts = poisson_min_values(distinct, value_alpha) - 1.0
     # a zone whose every pixel is positive (rate 1): nothing is sparser than background
     tables[rates >= 1.0] = 0
     cuts[rates >= 1.0] = -np.inf
@@ -269,6 +295,7 @@ LINE_ORIENTATIONS = 16
 LINE_PHASES = (-0.375, -0.125, 0.125, 0.375)
 
 
+@functools.lru_cache(maxsize=8)
 def line_offsets(half: int) -> np.ndarray:
     """(T, 2 * half, 2) int64: the pixels of each line through a pixel (``half`` ahead, then behind).
 
@@ -293,7 +320,9 @@ def line_offsets(half: int) -> np.ndarray:
                 pixels.append((along, across) if steep else (across, along))
             if pixels not in templates:
                 templates.append(pixels)
-    return np.array(templates, np.int64).reshape(len(templates), 2 * half, 2)
+    offsets = np.array(templates, np.int64).reshape(len(templates), 2 * half, 2)
+    offsets.flags.writeable = False  # cached: shared by every call
+    return offsets
 
 
 def line_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
@@ -356,7 +385,7 @@ def rim_values(levels: np.ndarray, settings) -> np.ndarray:
     levels = np.asarray(levels, np.float64)
     if settings.rim_alpha <= 0:
         return np.full(len(levels), -np.inf)
-    return np.array([poisson_min_value(level, settings.rim_alpha) - 1.0 for level in levels], np.float64)
+    return poisson_min_values(levels, settings.rim_alpha) - 1.0
 
 
 def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
