@@ -360,10 +360,17 @@ def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) ->
         at = viewer.layers.index(LABELS_LAYER)
         if at != len(viewer.layers) - 1:  # layers added since (previews, outlines): frames stay on top
             viewer.layers.move(at, len(viewer.layers))
-        drawn = (tuple(tuple(float(v) for v in box.ravel()) for box in boxes), tuple(texts), size, edge)
-        if layer.metadata.get("tiles") == drawn:
+        frames = (tuple(tuple(float(v) for v in box.ravel()) for box in boxes), edge)
+        drawn = (frames, tuple(texts), size)
+        before = layer.metadata.get("tiles")
+        if before == drawn:
             return  # the same frames and names (back to a view): napari re-triangulates every shape set
         layer.metadata = {"tiles": drawn}
+        if before is not None and before[0] == frames:  # only the names changed (the preview of
+            layer.features = {"label": texts}  # another channel): no new shapes to triangulate
+            if layer.text.size != size:
+                layer.text.size = size
+            return
         layer.data = boxes
         layer.shape_type = ["rectangle"] * len(boxes)
         layer.features = {"label": texts}
@@ -534,3 +541,30 @@ def fit_visible(viewer) -> None:
         viewer.reset_view(layers=shown or None)
     except TypeError:  # napari before 0.9 fits every layer
         viewer.reset_view()
+
+
+def overlay_hues(ticked: list[str], marker_index: dict[str, int]) -> dict[str, int]:
+    """Palette position of each ticked channel: its marker's own hue, the next free one on a clash.
+
+    A marker keeps its colour from one overlay to the next unless another ticked marker
+    already has it.
+
+    Examples
+    --------
+    >>> overlay_hues(["A", "I"], {"A": 0, "B": 1, "I": 8})  # 8 wraps onto 0: the next free hue
+    {'A': 0, 'I': 1}
+    >>> overlay_hues(["B", "I"], {"A": 0, "B": 1, "I": 8})
+    {'B': 1, 'I': 0}
+    """
+    taken: set[int] = set()
+    out = {}
+    for channel in ticked:
+        hue = marker_index.get(channel, 0) % len(PALETTE)
+        for step in range(len(PALETTE)):
+            candidate = (hue + step) % len(PALETTE)
+            if candidate not in taken:
+                hue = candidate
+                break
+        taken.add(hue)
+        out[channel] = hue
+    return out
