@@ -27,6 +27,7 @@ from qtpy.QtWidgets import (
 from ._common import WARN, PathRow, StudioWidget, qcolor
 from ._layers import (
     CONTRAST_PERCENTILES,
+    GRID_LABELS_LAYER,
     GRID_LAYER,
     LABELS_LAYER,
     PALETTE,
@@ -370,6 +371,8 @@ class CohortWidget(StudioWidget):
                 layer.events.contrast_limits.connect(lambda _e: self.view == "grid" and self._regrid.start())
         if not kept:
             prepare_tile_layers(self.viewer, roi_extent(roi))
+        if self.view != "grid":  # the grid's frames and names made now, hidden: not on the Grid click
+            self._fill_grid_labels(roi)
         if not kept and self.state.owns_process:
             import gc
 
@@ -486,7 +489,9 @@ class CohortWidget(StudioWidget):
                 show, origin = False, tuple(layer.translate)
             plan.append((layer, show, origin))
         changes = sum(layer.visible != show for layer, show, _ in plan)
-        for name, wanted in ((GRID_LAYER, view == "grid"), (LABELS_LAYER, bool(labels))):
+        shown_labels = GRID_LABELS_LAYER if view == "grid" else LABELS_LAYER
+        for name, wanted in ((GRID_LAYER, view == "grid"), (LABELS_LAYER, bool(labels) and view != "grid"),
+                             (GRID_LABELS_LAYER, bool(labels) and view == "grid")):
             changes += (self.viewer.layers[name].visible if name in self.viewer.layers else False) != wanted
         # layers shown or hidden: one scene-graph update (and draw) at the end, not one per layer
         # (each update walks every layer: ~0.1 s once a 36-channel ROI is compensated)
@@ -502,9 +507,8 @@ class CohortWidget(StudioWidget):
             else:
                 hide_mosaic(self.viewer)
             if labels:
-                show_labels(self.viewer, labels, extent)
-            else:
-                hide_labels(self.viewer)
+                show_labels(self.viewer, labels, extent, name=shown_labels)
+            hide_labels(self.viewer, keep=shown_labels if labels else None)
         # refit when what is shown changes shape (another view, the preview's panels arriving,
         # another ROI size), not on a channel switch: the user's zoom stays for comparing channels
         framing = (view, sum(show for _, show, _ in plan), extent)
@@ -548,6 +552,12 @@ class CohortWidget(StudioWidget):
         if look == "one hue":
             return colormap_for(0)
         return colormap_for(meta["index"])
+
+    def _fill_grid_labels(self, roi) -> None:
+        raw = studio_layers(self.viewer, stage="raw")
+        extent = roi_extent(roi)
+        tiles = list(zip(tile_origins(len(raw), extent), (layer.name for layer in raw), strict=True))
+        show_labels(self.viewer, tiles, extent, name=GRID_LABELS_LAYER, visible=False)
 
     def _preview_shown(self) -> None:
         if self.alive() and self.view == "preview" and self.state.roi is not None:
