@@ -27,6 +27,7 @@ from qtpy.QtWidgets import (
 from ._common import WARN, PathRow, StudioWidget, qcolor
 from ._layers import (
     CONTRAST_PERCENTILES,
+    GRID_LABELS_LAYER,
     GRID_LAYER,
     LABELS_LAYER,
     PALETTE,
@@ -39,11 +40,11 @@ from ._layers import (
     grid_tiles,
     hide_labels,
     hide_mosaic,
+    overlay_hues,
     place,
     prepare_tile_layers,
     robust_limits,
     roi_extent,
-    roi_layer_data,
     set_colormap,
     show_labels,
     show_mosaic,
@@ -54,7 +55,7 @@ from ._layers import (
 )
 from ._mask import hide_tissue, outline_tissue, roi_tissue, tissue_share
 from ._quality import measure_rows
-from ._reader import read_with_stains
+from ._reader import load_roi_with_tiles, read_with_stains
 from ._roi_list import (
     ALL_BATCHES,
     flag_choices,
@@ -67,51 +68,6 @@ from ._roi_list import (
 
 VIEWS = ("single", "grid", "overlay", "preview")
 LOOKS = ("hues", "grey", "one hue")
-
-
-# --------------------------------------------------------------------------- plain functions
-
-
-def overlay_hues(ticked: list[str], marker_index: dict[str, int]) -> dict[str, int]:
-    """Palette position of each ticked channel: its marker's own hue, the next free one on a clash.
-
-    A marker keeps its colour from one overlay to the next unless another ticked marker
-    already has it.
-
-    Examples
-    --------
-    >>> overlay_hues(["A", "I"], {"A": 0, "B": 1, "I": 8})  # 8 wraps onto 0: the next free hue
-    {'A': 0, 'I': 1}
-    >>> overlay_hues(["B", "I"], {"A": 0, "B": 1, "I": 8})
-    {'B': 1, 'I': 0}
-    """
-    taken: set[int] = set()
-    out = {}
-    for channel in ticked:
-        hue = marker_index.get(channel, 0) % len(PALETTE)
-        for step in range(len(PALETTE)):
-            candidate = (hue + step) % len(PALETTE)
-            if candidate not in taken:
-                hue = candidate
-                break
-        taken.add(hue)
-        out[channel] = hue
-    return out
-
-
-def load_roi(path, *, low: float = CONTRAST_PERCENTILES[0], high: float = CONTRAST_PERCENTILES[1]):
-    """Read an ROI with its stain sheet and make its channel layers with robust contrast."""
-    roi = read_with_stains(path)
-    layers = roi_layer_data(roi, visible=1)
-    for data, kwargs, _ in layers:
-        kwargs["contrast_limits"] = list(robust_limits(data, low=low, high=high))
-    return roi, layers
-
-
-def load_roi_with_tiles(path, **percentiles):
-    """:func:`load_roi`, plus the block-averaged tiles of the grid view (see ``grid_tiles``)."""
-    roi, layers = load_roi(path, **percentiles)
-    return roi, layers, grid_tiles(roi)
 
 
 # --------------------------------------------------------------------------- widget
@@ -238,7 +194,8 @@ class CohortWidget(StudioWidget):
         self.finish_layout()
         self.state.run_finished.connect(lambda summary: self.use_run_folder(summary.out_dir))
         self.state.view_requested.connect(lambda view: view != self.view and self.set_view(view))
-        self.state.preview_shown.connect(lambda: self.view == "preview" and self.set_view("preview"))
+        # in its own turn of the event loop: the window draws between the data swap and the relabel
+        self.state.preview_shown.connect(lambda: QTimer.singleShot(0, self._preview_shown))
 
     # ------------------------------------------------------------------ cohort
 
@@ -414,6 +371,8 @@ class CohortWidget(StudioWidget):
                 layer.events.contrast_limits.connect(lambda _e: self.view == "grid" and self._regrid.start())
         if not kept:
             prepare_tile_layers(self.viewer, roi_extent(roi))
+        if self.view != "grid":  # the grid's frames and names made now, hidden: not on the Grid click
+            self._fill_grid_labels(roi)
         if not kept and self.state.owns_process:
             import gc
 
@@ -524,11 +483,15 @@ class CohortWidget(StudioWidget):
                 origin = tuple(layer.translate)
                 if show:
                     labels.append((origin, layer.name))
+                elif view == "preview":  # its channel's preview is on its way: the panel's frame now,
+                    labels.append((origin, f"{stage} (computing…)"))  # its name swapped in later
             else:
                 show, origin = False, tuple(layer.translate)
             plan.append((layer, show, origin))
         changes = sum(layer.visible != show for layer, show, _ in plan)
-        for name, wanted in ((GRID_LAYER, view == "grid"), (LABELS_LAYER, bool(labels))):
+        shown_labels = GRID_LABELS_LAYER if view == "grid" else LABELS_LAYER
+        for name, wanted in ((GRID_LAYER, view == "grid"), (LABELS_LAYER, bool(labels) and view != "grid"),
+                             (GRID_LABELS_LAYER, bool(labels) and view == "grid")):
             changes += (self.viewer.layers[name].visible if name in self.viewer.layers else False) != wanted
         # layers shown or hidden: one scene-graph update (and draw) at the end, not one per layer
         # (each update walks every layer: ~0.1 s once a 36-channel ROI is compensated)
@@ -544,9 +507,8 @@ class CohortWidget(StudioWidget):
             else:
                 hide_mosaic(self.viewer)
             if labels:
-                show_labels(self.viewer, labels, extent)
-            else:
-                hide_labels(self.viewer)
+                show_labels(self.viewer, labels, extent, name=shown_labels)
+            hide_labels(self.viewer, keep=shown_labels if labels else None)
         # refit when what is shown changes shape (another view, the preview's panels arriving,
         # another ROI size), not on a channel switch: the user's zoom stays for comparing channels
         framing = (view, sum(show for _, show, _ in plan), extent)
@@ -590,6 +552,16 @@ class CohortWidget(StudioWidget):
         if look == "one hue":
             return colormap_for(0)
         return colormap_for(meta["index"])
+
+    def _fill_grid_labels(self, roi) -> None:
+        raw = studio_layers(self.viewer, stage="raw")
+        extent = roi_extent(roi)
+        tiles = list(zip(tile_origins(len(raw), extent), (layer.name for layer in raw), strict=True))
+        show_labels(self.viewer, tiles, extent, name=GRID_LABELS_LAYER, visible=False)
+
+    def _preview_shown(self) -> None:
+        if self.alive() and self.view == "preview" and self.state.roi is not None:
+            self.set_view("preview")
 
     def busy(self) -> bool:
         return super().busy() or self._regrid.isActive()

@@ -255,12 +255,12 @@ class SettingsForm(QWidget):
             label = form.labelForField(editor)
             if label is None:
                 continue
-            if name in own:
-                label.setStyleSheet(f"color: {ACCENT}; font-weight: bold;")
-                label.setToolTip(f"this channel's own value; the global one is {own[name]!r}")
-            else:
-                label.setStyleSheet("")
-                label.setToolTip("")
+            style, tip = ((f"color: {ACCENT}; font-weight: bold;", f"this channel's own value; the global one is "
+                           f"{own[name]!r}") if name in own else ("", ""))
+            if label.styleSheet() != style:  # each style set re-polishes the label: on every channel
+                label.setStyleSheet(style)  # click, only the rows that change
+            if label.toolTip() != tip:
+                label.setToolTip(tip)
 
     def values(self) -> dict:
         out = {}

@@ -300,6 +300,9 @@ def keep_for_good(viewer) -> None:
 TILE_GAP = 0.05
 #: Name of the layer that labels and frames the tiles (not a studio layer: no metadata).
 LABELS_LAYER = "plexwash labels"
+#: Name of the layer that labels and frames the grid view's tiles: its own layer, so that going
+#: from the grid to the preview and back never re-triangulates dozens of frames.
+GRID_LABELS_LAYER = "plexwash grid labels"
 #: Name of the layer that shows the grid view's tiles as one picture (not a studio layer).
 GRID_LAYER = "plexwash grid"
 
@@ -346,24 +349,36 @@ def label_size(texts, width: float) -> float:
     return float(min(0.12 * width, 0.95 * width / longest))
 
 
-def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) -> None:
-    """Frame and label tiles: one kept Shapes layer (rectangles with text), data swapped."""
+def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent, *, name: str = LABELS_LAYER,
+                visible: bool = True) -> None:
+    """Frame and label tiles: one kept Shapes layer ``name`` (rectangles with text), data swapped;
+    ``visible=False`` fills a hidden layer ahead of its first showing."""
     height, width = extent
     boxes = [np.array([[y, x], [y + height, x + width]]) for (y, x), _ in tiles]
     texts = [text for _, text in tiles]
     size = label_size(texts, width)
     edge = max(height, width) * 0.004
-    if LABELS_LAYER in viewer.layers:
-        layer = viewer.layers[LABELS_LAYER]
-        if not layer.visible:  # first: a hidden layer's extent is not renewed with its data
+    if name in viewer.layers:
+        layer = viewer.layers[name]
+        if visible and not layer.visible:  # first: a hidden layer's extent is not renewed with its data
             layer.visible = True
-        at = viewer.layers.index(LABELS_LAYER)
-        if at != len(viewer.layers) - 1:  # layers added since (previews, outlines): frames stay on top
+            if layer.metadata.get("filled_hidden"):  # filled while hidden: its extent now
+                layer.refresh()
+                layer.metadata = {"tiles": layer.metadata["tiles"]}
+        at = viewer.layers.index(name)
+        if visible and at != len(viewer.layers) - 1:  # layers added since (previews, outlines): on top
             viewer.layers.move(at, len(viewer.layers))
-        drawn = (tuple(tuple(float(v) for v in box.ravel()) for box in boxes), tuple(texts), size, edge)
-        if layer.metadata.get("tiles") == drawn:
+        frames = (tuple(tuple(float(v) for v in box.ravel()) for box in boxes), edge)
+        drawn = (frames, tuple(texts), size)
+        before = layer.metadata.get("tiles")
+        if before == drawn:
             return  # the same frames and names (back to a view): napari re-triangulates every shape set
-        layer.metadata = {"tiles": drawn}
+        layer.metadata = {"tiles": drawn, "filled_hidden": not visible}
+        if before is not None and before[0] == frames:  # only the names changed (the preview of
+            layer.features = {"label": texts}  # another channel): no new shapes to triangulate
+            if layer.text.size != size:
+                layer.text.size = size
+            return
         layer.data = boxes
         layer.shape_type = ["rectangle"] * len(boxes)
         layer.features = {"label": texts}
@@ -371,13 +386,13 @@ def show_labels(viewer, tiles: list[tuple[tuple[float, float], str]], extent) ->
         if layer.text.size != size:
             layer.text.size = size
     else:
-        _add_labels(viewer, boxes, texts, size, edge, extent)
+        _add_labels(viewer, boxes, texts, size, edge, extent, visible, name)
 
 
-def _add_labels(viewer, boxes, texts, size, edge, extent, visible: bool = True) -> None:
+def _add_labels(viewer, boxes, texts, size, edge, extent, visible: bool = True, name: str = LABELS_LAYER) -> None:
     height, width = extent
     active = viewer.layers.selection.active
-    viewer.add_shapes(boxes, shape_type="rectangle", name=LABELS_LAYER, features={"label": texts},
+    viewer.add_shapes(boxes, shape_type="rectangle", name=name, features={"label": texts},
                       edge_color="#59616b", face_color="transparent", edge_width=edge, visible=visible,
                       text={"string": "{label}", "anchor": "upper_left", "color": "#e6e9ed", "size": size,
                             "scaling": True, "translation": [0.02 * height, 0.02 * width]},
@@ -391,10 +406,11 @@ def prepare_tile_layers(viewer, extent) -> None:
     making them on the first Grid or Preview click froze the window about half a second."""
     if GRID_LAYER not in viewer.layers:
         show_mosaic(viewer, np.zeros((2, 2, 3), np.uint8), (1.0, 1.0), (0.0, 0.0), visible=False)
-    if LABELS_LAYER not in viewer.layers:
-        height, width = extent
-        _add_labels(viewer, [np.array([[0.0, 0.0], [height, width]])], [""], label_size([""], width),
-                    max(extent) * 0.004, extent, visible=False)
+    height, width = extent
+    for name in (LABELS_LAYER, GRID_LABELS_LAYER):
+        if name not in viewer.layers:
+            _add_labels(viewer, [np.array([[0.0, 0.0], [height, width]])], [""], label_size([""], width),
+                        max(extent) * 0.004, extent, visible=False, name=name)
 
 
 #: The grid's tiles together span at most about this many pixels across (one screen): each
@@ -504,8 +520,9 @@ def show_mosaic(viewer, rgb: np.ndarray, scale, translate, visible: bool = True)
     active = viewer.layers.selection.active
     viewer.add_image(rgb, rgb=True, name=GRID_LAYER, scale=scale, translate=translate, contrast_limits=(0, 255),
                      blending="translucent_no_depth", visible=visible)
-    if LABELS_LAYER in viewer.layers:  # frames and names above the picture
-        viewer.layers.move(viewer.layers.index(LABELS_LAYER), len(viewer.layers))
+    for name in (LABELS_LAYER, GRID_LABELS_LAYER):
+        if name in viewer.layers:  # frames and names above the picture
+            viewer.layers.move(viewer.layers.index(name), len(viewer.layers))
     viewer.layers.selection.active = active  # the picture never takes the layer controls
     keep_for_good(viewer)
 
@@ -515,9 +532,11 @@ def hide_mosaic(viewer) -> None:
         viewer.layers[GRID_LAYER].visible = False
 
 
-def hide_labels(viewer) -> None:
-    if LABELS_LAYER in viewer.layers and viewer.layers[LABELS_LAYER].visible:
-        viewer.layers[LABELS_LAYER].visible = False
+def hide_labels(viewer, *, keep: str | None = None) -> None:
+    """Hide the tile labels layers (all but ``keep``)."""
+    for name in (LABELS_LAYER, GRID_LABELS_LAYER):
+        if name != keep and name in viewer.layers and viewer.layers[name].visible:
+            viewer.layers[name].visible = False
 
 
 def grid_of(viewer):
@@ -529,8 +548,35 @@ def grid_of(viewer):
 
 def fit_visible(viewer) -> None:
     """Fit the camera to the visible layers (hidden side-by-side previews do not count)."""
-    shown = [layer for layer in viewer.layers if layer.visible and layer.name != LABELS_LAYER]
+    shown = [layer for layer in viewer.layers if layer.visible and layer.name not in (LABELS_LAYER, GRID_LABELS_LAYER)]
     try:
         viewer.reset_view(layers=shown or None)
     except TypeError:  # napari before 0.9 fits every layer
         viewer.reset_view()
+
+
+def overlay_hues(ticked: list[str], marker_index: dict[str, int]) -> dict[str, int]:
+    """Palette position of each ticked channel: its marker's own hue, the next free one on a clash.
+
+    A marker keeps its colour from one overlay to the next unless another ticked marker
+    already has it.
+
+    Examples
+    --------
+    >>> overlay_hues(["A", "I"], {"A": 0, "B": 1, "I": 8})  # 8 wraps onto 0: the next free hue
+    {'A': 0, 'I': 1}
+    >>> overlay_hues(["B", "I"], {"A": 0, "B": 1, "I": 8})
+    {'B': 1, 'I': 0}
+    """
+    taken: set[int] = set()
+    out = {}
+    for channel in ticked:
+        hue = marker_index.get(channel, 0) % len(PALETTE)
+        for step in range(len(PALETTE)):
+            candidate = (hue + step) % len(PALETTE)
+            if candidate not in taken:
+                hue = candidate
+                break
+        taken.add(hue)
+        out[channel] = hue
+    return out

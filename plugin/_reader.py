@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ._layers import find_stains, roi_layer_data
+from ._layers import CONTRAST_PERCENTILES, find_stains, grid_tiles, robust_limits, roi_layer_data
 
 _SUFFIXES = (".ome.tiff", ".ome.tif", ".tiff", ".tif", ".ome.zarr", ".zarr")
 
@@ -75,3 +75,18 @@ def multiscale_layers(roi) -> list[tuple]:
         return layers
     return [([level[i] for level in levels], {**kwargs, "multiscale": True}, kind)
             for i, (_, kwargs, kind) in enumerate(layers)]
+
+
+def load_roi(path, *, low: float = CONTRAST_PERCENTILES[0], high: float = CONTRAST_PERCENTILES[1]):
+    """Read an ROI with its stain sheet and make its channel layers with robust contrast."""
+    roi = read_with_stains(path)
+    layers = roi_layer_data(roi, visible=1)
+    for data, kwargs, _ in layers:
+        kwargs["contrast_limits"] = list(robust_limits(data, low=low, high=high))
+    return roi, layers
+
+
+def load_roi_with_tiles(path, **percentiles):
+    """:func:`load_roi`, plus the block-averaged tiles of the grid view (see ``grid_tiles``)."""
+    roi, layers = load_roi(path, **percentiles)
+    return roi, layers, grid_tiles(roi)

@@ -21,7 +21,7 @@ def test_grid_picture_follows_contrast_sliders(make_napari_viewer, qtbot, cohort
     viewer = make_napari_viewer()
     widget = open_first_roi(qtbot, viewer, cohort)
     widget.set_view("grid")
-    picture, labels = viewer.layers[GRID_LAYER], viewer.layers["plexwash labels"]
+    picture, labels = viewer.layers[GRID_LAYER], viewer.layers["plexwash grid labels"]
     raw = studio_layers(viewer, stage="raw")
     boxes = list(labels.data)
     before = [tile_of(picture, box, layer.data.shape) for box, layer in zip(boxes, raw, strict=True)]

@@ -91,8 +91,9 @@ def test_cohort_lists_flags_loads_and_views(make_napari_viewer, qtbot, cohort):
     assert not any(layer.visible for layer in raw)
     picture = viewer.layers["plexwash grid"]
     assert picture.visible and picture.rgb
-    labels = viewer.layers["plexwash labels"]
+    labels = viewer.layers["plexwash grid labels"]  # the grid's own labels layer, filled on load
     assert labels.visible and list(labels.features["label"]) == list(roi.labels)
+    assert not viewer.layers["plexwash labels"].visible
     boxes = [np.asarray(box) for box in labels.data]
     assert len({tuple(box[0]) for box in boxes}) == len(raw)
     for box, layer, colour in zip(boxes, raw, (layer.colormap.colors[-1][:3] for layer in raw), strict=True):
