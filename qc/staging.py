@@ -164,6 +164,8 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
     notes.extend(step.skipped_note for step, settings in plan
                  if step.skipped_note and not step.runs(settings, matrix))
 
+    if staging.folder is not None:  # on disk, where memory is what counts
+        _planes_off_heap()
     stacks = {"a": staging.stack("a", (n_c, n_y, n_x))}
     lazy = is_dask(roi.data)  # else any array: numpy, zarr
     by_channel = not lazy or len(roi.data.chunks[0]) == n_c  # one channel per source chunk
@@ -327,6 +329,28 @@ def _wash_threads() -> int:
     import dask
 
     return int(dask.config.get("num_workers", None) or os.cpu_count() or 1)
+
+
+def _planes_off_heap() -> None:
+    """Give arrays of 1 MiB and more their own memory maps, returned to the system when freed
+    (glibc ``mallopt(M_MMAP_THRESHOLD, 1 MiB)``; a no-op where glibc is absent).
+
+    glibc raises its threshold for that, by default, up to 32 MiB as soon as a mapped block
+    is freed; from then on every freed plane and band (a few MiB to a few tens of MiB)
+    stays in the heap, and the pieces of the heap that other arrays pin keep it resident:
+    the process held two to three times what its passes have in flight. A fixed threshold
+    keeps the passes' memory at what they hold. Set once per process; the pixels do not
+    depend on it.
+    """
+    try:
+        import ctypes
+
+        ctypes.CDLL("libc.so.6").mallopt(_M_MMAP_THRESHOLD, 2**20)
+    except (OSError, AttributeError):
+        pass
+
+
+_M_MMAP_THRESHOLD = -3  # from glibc's malloc.h
 
 
 def _chains(task_bytes: float) -> int:
