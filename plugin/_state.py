@@ -88,7 +88,7 @@ class StudioState:
         when plexwash wrote that file."""
         from plexwash.qc.files import reached_inputs
 
-        named = [*self.rois, self.recipe.spillover_path(), *extra]
+        named = [*self.rois, self.recipe.spillover_path(), *self.recipe.batch_spillover_paths().values(), *extra]
         if self.cohort is not None:
             named.append(self.cohort / "stains.csv")
         return reached_inputs(p for p in named if p is not None)

@@ -191,3 +191,17 @@ def test_one_roi_wash_protects_batch_matrices_and_says_they_do_not_apply(world, 
     err = capsys.readouterr().err.strip()
     assert err.startswith("error: ") and str(victim) in err and "\n" not in err
     assert victim.read_bytes() == before
+
+
+def test_the_studio_counts_batch_matrices_among_its_inputs(world):
+    from plexwash.plugin._state import StudioState
+    from plexwash.qc.errors import InputError
+    from plexwash.qc.files import check_output
+
+    tmp, cohort, recipe = world
+    state = StudioState()
+    state.recipe = load_recipe(recipe)
+    inputs = state.inputs()
+    assert (tmp / "controls" / "b1.csv").resolve() in {p.resolve() for p in inputs}
+    with pytest.raises(InputError):  # a studio save over a batch matrix is refused
+        check_output(tmp / "controls" / "b2.csv", inputs)
