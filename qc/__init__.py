@@ -6,6 +6,7 @@ Research software: keep raw data; cleaned images are not for clinical diagnosis.
 import sys as _sys
 import types as _types
 
+from ._lazy import lazy_names
 from ._version import __version__
 
 # Every public name is imported on first use (PEP 562), so that ``import plexwash.qc`` and
@@ -48,20 +49,7 @@ _WHERE = {
 }
 
 
-def __getattr__(name: str):
-    """Import a public name's module on first use (PEP 562)."""
-    where = _WHERE.get(name)
-    if where is None:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-    from importlib import import_module
-
-    value = getattr(import_module(where, __name__), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(_WHERE))
+__getattr__, __dir__ = lazy_names(__name__, globals(), _WHERE)
 
 
 class _Package(_types.ModuleType):

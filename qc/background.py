@@ -519,14 +519,7 @@ def roi_background(plane, channels, shape, *, block: int = CONTEXT_BLOCK,
         blocks = np.zeros((1, -(-ny // block), -(-nx // block)))
     else:
         blocks = np.stack([block_sums(plane(i), block) for i in channels])
-    model = background_model(blocks, settings=block_settings(settings, block))
-    tissue = _full(model.tissue, block, (ny, nx))
-    modulation = _full(model.modulation, block, (ny, nx)).astype(np.float32)
-    steps = np.rint(np.log2(np.maximum(model.modulation, 1e-6)) * ZONE_STEPS_PER_DOUBLING)
-    k = np.clip(steps + ZONES_PER_PART // 2, 0, ZONES_PER_PART - 1)
-    zone = _full((zone_parts(model.tissue) * ZONES_PER_PART + k).astype(np.uint8), block, (ny, nx))
-    return BackgroundContext(tissue=tissue, modulation=modulation, zone=zone, model=model,
-                             block=block)
+    return context_of_block_sums(blocks, (ny, nx), block=block, settings=settings)
 
 
 def _full(coarse: np.ndarray, block: int, shape) -> np.ndarray:

@@ -80,6 +80,8 @@ below their neighbours across channels), ``outlier`` (added across a cohort by
 also be ``low-sbr``.
 """
 
+from .._lazy import lazy_names
+
 # Names are imported on first use (PEP 562): a recipe needs QualitySettings only, not the
 # measurements' numba kernels and scipy.stats.
 _WHERE = {
@@ -95,20 +97,7 @@ _WHERE = {
 }
 
 
-def __getattr__(name: str):
-    """Import a public name's module on first use (PEP 562)."""
-    where = _WHERE.get(name)
-    if where is None:
-        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-    from importlib import import_module
-
-    value = getattr(import_module(where, __name__), name)
-    globals()[name] = value
-    return value
-
-
-def __dir__() -> list[str]:
-    return sorted(set(globals()) | set(_WHERE))
+__getattr__, __dir__ = lazy_names(__name__, globals(), _WHERE)
 
 
 __all__ = [
