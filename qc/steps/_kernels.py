@@ -169,7 +169,7 @@ def centre_histogram(image, counts, threshold, radius, histogram):
 
 
 @nb.njit(cache=True, nogil=True)
-def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count, wide_radius, wide_min_count,
+def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count, zone, threshold, radius, min_count, wide_radius, wide_min_count,
                    support_min_count, value_cut, low_mean, keep_touching, min_area, lone_cut, rim_min_count,
                    rim_value, out, removed):
     """Local-density speckle filter of one channel; return how many pixels were set to 0.
@@ -180,7 +180,9 @@ def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count
     counts : uint16 (H, W), from :func:`window_counts` (centre included)
     threshold : float32, a pixel is positive when ``value > threshold``
     wide : uint16 (H, W), :func:`window_counts` with ``wide_radius``
-    line : uint8 (H, W), :func:`line_dense`; a marked positive pixel is dense
+    line_offsets, line_upper, line_min_count : the line test of :func:`line_dense` (offsets
+        (O, 2 * half, 2), O = 0 for off; ``upper``; table (Z, T)), asked only of a positive
+        pixel no other rule makes dense; a pixel on such a line is dense
     zone : uint8 (H, W), the background zone of each pixel (indexes the tables below)
     radius : int, window half-width
     min_count : int32 (Z, 2r+2, 2r+2); ``min_count[z, a, b]`` = smallest neighbour count kept
@@ -222,7 +224,8 @@ def speckle_filter(image, counts, wide, line, zone, threshold, radius, min_count
                     wrows = min(height - 1, y + wide_radius) - max(0, y - wide_radius) + 1
                     wcols = min(width - 1, x + wide_radius) - max(0, x - wide_radius) + 1
                     dense = np.int32(wide[y, x]) - 1 >= wide_min_count[z, wrows, wcols]
-                if not dense and line[y, x] != 0:
+                if not dense and line_offsets.shape[0] > 0 and _on_line(
+                        image, y, x, threshold, line_upper, line_offsets, line_min_count[z]):
                     dense = True
                 if dense and not _below_neighbours(image, y, x, v, low_mean):
                     state[y, x] = _CORE
@@ -382,31 +385,45 @@ def line_dense(image, threshold, upper, offsets, zone, line_min_count, out):
     :func:`plexwash.qc.steps.speckle_tests.line_offsets`). On each line the pixels inside the
     array are ``trials``; ``n`` of them are positive and not above ``upper`` (dim). The pixel
     is marked when, for some orientation, both sides hold at least one such pixel and
-    ``n >= line_min_count[zone, trials]``.
+    ``n >= line_min_count[zone, trials]`` (:func:`_on_line`). :func:`speckle_filter` asks the
+    same question only of the pixels no other rule keeps.
     """
     height, width = image.shape
-    n_lines, length, _ = offsets.shape
-    half = length // 2
     for y in range(height):
         for x in range(width):
             out[y, x] = 0
-            if not image[y, x] > threshold:
-                continue
-            z = zone[y, x]
-            for o in range(n_lines):
-                ahead = 0
-                behind = 0
-                trials = 0
-                for k in range(length):
-                    yy = y + offsets[o, k, 0]
-                    xx = x + offsets[o, k, 1]
-                    if 0 <= yy < height and 0 <= xx < width:
-                        trials += 1
-                        if threshold < image[yy, xx] <= upper:
-                            if k < half:
-                                ahead += 1
-                            else:
-                                behind += 1
-                if ahead > 0 and behind > 0 and ahead + behind >= line_min_count[z, trials]:
-                    out[y, x] = 1
-                    break
+            if image[y, x] > threshold and _on_line(image, y, x, threshold, upper, offsets,
+                                                    line_min_count[zone[y, x]]):
+                out[y, x] = 1
+
+
+@nb.njit(cache=True, nogil=True)
+def _on_line(image, y, x, threshold, upper, offsets, table):
+    """Whether a line of dim positive pixels passes through (y, x) (see :func:`line_dense`)."""
+    height, width = image.shape
+    n_lines, length, _ = offsets.shape
+    half = length // 2
+    possible = False  # some line length t whose table entry can be met (table[t] <= t)
+    for t in range(min(length, table.shape[0] - 1) + 1):
+        if table[t] <= t:
+            possible = True
+            break
+    if not possible:
+        return False
+    for o in range(n_lines):
+        ahead = 0
+        behind = 0
+        trials = 0
+        for k in range(length):
+            yy = y + offsets[o, k, 0]
+            xx = x + offsets[o, k, 1]
+            if 0 <= yy < height and 0 <= xx < width:
+                trials += 1
+                if threshold < image[yy, xx] <= upper:
+                    if k < half:
+                        ahead += 1
+                    else:
+                        behind += 1
+        if ahead > 0 and behind > 0 and ahead + behind >= table[trials]:
+            return True
+    return False

@@ -153,6 +153,9 @@ class BackgroundEstimate(NamedTuple):
 # ----------------------------------------------------------------------------- background
 
 
+#: The line test turned off (``line_half = 0``): no lines to look along.
+_NO_LINES = np.zeros((0, 0, 2), np.int64)
+
 def estimate_background(
     image,
     *,
@@ -475,13 +478,11 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
         wide = np.empty(image.shape, np.uint16)
         _k.window_counts(image, params["threshold"], params["wide_radius"], wide, params["wide_upper"])
     zone = np.ascontiguousarray(zone, np.uint8)
-    line = np.zeros(image.shape, np.uint8)
-    if params["line_half"] > 0:
-        _k.line_dense(image, params["threshold"], params["wide_upper"], line_offsets(params["line_half"]), zone,
-                      params["line_min_count"], line)
-    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_min_count")
+    lines = line_offsets(params["line_half"]) if params["line_half"] > 0 else _NO_LINES
+    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half")
     kernel_args = {k: v for k, v in params.items() if k not in skip}
-    return _k.speckle_filter(image, counts, wide, line, zone, out=out, removed=removed, **kernel_args)
+    return _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out, removed=removed,
+                             **kernel_args)
 
 
 def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: SpeckleSettings | None = None):
