@@ -398,6 +398,35 @@ def line_dense(image, threshold, upper, offsets, zone, line_min_count, out):
 
 
 @nb.njit(cache=True, nogil=True)
+def _on_line_inside(image, y, x, threshold, upper, offsets, need):
+    """:func:`_on_line` for a pixel whose lines lie inside the image (``trials`` = the line's
+    length, so ``need`` = its table entry): the same answer, with a line given up as soon as
+    its remaining pixels cannot bring it to ``need``, or its first side holds none."""
+    n_lines, length, _ = offsets.shape
+    half = length // 2
+    if need > length:
+        return False
+    for o in range(n_lines):
+        ahead = 0
+        for k in range(half):
+            v = image[y + offsets[o, k, 0], x + offsets[o, k, 1]]
+            if threshold < v <= upper:
+                ahead += 1
+        if ahead == 0 or ahead + half < need:
+            continue
+        behind = 0
+        for k in range(half, length):
+            v = image[y + offsets[o, k, 0], x + offsets[o, k, 1]]
+            if threshold < v <= upper:
+                behind += 1
+            elif ahead + behind + (length - 1 - k) < need:
+                break
+        if behind > 0 and ahead + behind >= need:
+            return True
+    return False
+
+
+@nb.njit(cache=True, nogil=True)
 def _on_line(image, y, x, threshold, upper, offsets, table):
     """Whether a line of dim positive pixels passes through (y, x) (see :func:`line_dense`)."""
     height, width = image.shape
@@ -410,6 +439,8 @@ def _on_line(image, y, x, threshold, upper, offsets, table):
             break
     if not possible:
         return False
+    if half <= y < height - half and half <= x < width - half:  # every line pixel inside
+        return _on_line_inside(image, y, x, threshold, upper, offsets, table[length])
     for o in range(n_lines):
         ahead = 0
         behind = 0
