@@ -46,6 +46,7 @@ import numpy as np  # noqa: E402
 from _dense import (  # noqa: E402
     dense_counts,
     floor_process,
+    floor_seconds,
     load,
     plexwash_process,
     plexwash_seconds,

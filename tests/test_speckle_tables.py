@@ -61,3 +61,33 @@ def test_line_kernel_equals_the_rule_written_out(rate):
     got = np.zeros(image.shape, np.uint8)
     k.line_dense(image, np.float32(0.5), 20.0, offsets, zone, table, got)
     np.testing.assert_array_equal(got, _line_marks_by_hand(image, 0.5, 20.0, offsets, zone, table))
+
+
+def _binomial_min_count_plain(trials, rate, alpha):
+    """The search entry by entry (no sharing of equal pairs); ``scipy.special.bdtrc`` is the
+    binomial upper tail."""
+    from scipy import special
+
+    trials, rate = np.broadcast_arrays(np.asarray(trials, np.int64), np.asarray(rate, np.float64))
+    out = np.empty(trials.shape, np.int64)
+    for i in np.ndindex(trials.shape):
+        low, high = 0, int(trials[i]) + 1
+        while high - low > 1:
+            mid = (low + high) // 2
+            low, high = (low, mid) if special.bdtrc(mid - 1, trials[i], rate[i]) < alpha else (mid, high)
+        out[i] = high
+    return out
+
+
+@pytest.mark.parametrize("alpha", [1e-5, 0.003, 0.2])
+def test_binomial_min_count_equals_the_plain_search(alpha):
+    from plexwash.qc.steps.speckle_tests import binomial_min_count
+
+    rng = np.random.default_rng(3)
+    a, b = np.meshgrid(np.arange(12), np.arange(12), indexing="ij")
+    trials = np.maximum(a * b - 1, 0)
+    rates = np.concatenate([rng.uniform(0, 1, 6), [0.0, 1.0, 0.5, 0.5]])[:, None, None]
+    got = binomial_min_count(trials, rates, alpha)
+    assert got.shape == (10, 12, 12)
+    np.testing.assert_array_equal(got, _binomial_min_count_plain(trials, rates, alpha))
+    assert int(binomial_min_count(np.array(8), 0.1, alpha)) == int(_binomial_min_count_plain(8, 0.1, alpha))

@@ -188,6 +188,15 @@ def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
     kept) when even ``P(N = trials)`` is not below ``alpha``.
     """
     trials, rate = np.broadcast_arrays(np.asarray(trials, np.int64), np.asarray(rate, np.float64))
+    # Each entry's search is its own (the same steps whatever the other entries), so a table
+    # that repeats trial counts (a window's a x b - 1) and rates is searched once per distinct
+    # (trials, rate) pair of the product of both, when that product is smaller.
+    shape = trials.shape
+    unique_trials, trial_at = np.unique(trials.ravel(), return_inverse=True)
+    unique_rates, rate_at = np.unique(rate.ravel(), return_inverse=True)
+    product = unique_trials.size * unique_rates.size < trials.size
+    if product:
+        trials, rate = np.meshgrid(unique_trials, unique_rates, indexing="ij")
     low = np.zeros_like(trials)  # P(N >= 0) = 1 >= alpha
     high = trials + 1  # P(N >= trials + 1) = 0 < alpha
     while np.any(high - low > 1):
@@ -195,6 +204,8 @@ def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
         below = special.bdtrc(mid - 1, trials, rate) < alpha  # P(N >= mid) = P(N > mid - 1)
         low = np.where(below, low, mid)
         high = np.where(below, mid, high)
+    if product:
+        return high[trial_at.ravel(), rate_at.ravel()].reshape(shape)
     return high
 
 
