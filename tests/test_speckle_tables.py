@@ -1,5 +1,5 @@
-"""The vectorised Poisson cut equals the scalar search entry for entry (the scalar form is the
-reference: both compare ``scipy.special.pdtrc`` tails, the Poisson upper tail)."""
+"""The speckle tables: the compiled and vectorised searches equal the plain searches entry for entry
+(the plain forms are the reference: both compare ``scipy.special.pdtrc``/``bdtrc`` tails)."""
 
 from __future__ import annotations
 
@@ -91,3 +91,78 @@ def test_binomial_min_count_equals_the_plain_search(alpha):
     assert got.shape == (10, 12, 12)
     np.testing.assert_array_equal(got, _binomial_min_count_plain(trials, rates, alpha))
     assert int(binomial_min_count(np.array(8), 0.1, alpha)) == int(_binomial_min_count_plain(8, 0.1, alpha))
+
+
+@pytest.mark.parametrize("alpha", [1e-12, 1e-6, 0.001, 0.01, 0.2, 0.5])
+def test_compiled_binomial_search_equals_the_plain_search_on_many_rates(alpha):
+    """The compiled search (scipy's own ``bdtrc`` through ``scipy.special.cython_special``) against
+    the plain search with the ``scipy.special.bdtrc`` ufunc, on rates from 0 to 1 (tiny ones too)
+    and trial counts 0..200."""
+    from plexwash.qc.steps.speckle_tests import binomial_min_count
+
+    rng = np.random.default_rng(int(-np.log10(alpha) * 10))
+    rates = np.concatenate([rng.uniform(0, 1, 25), 10.0 ** rng.uniform(-12, 0, 15),
+                            1.0 - 10.0 ** rng.uniform(-12, -1, 5), [0.0, 1.0, 0.5]])
+    trials = np.concatenate([np.arange(26), rng.integers(26, 201, 10)])
+    got = binomial_min_count(trials[:, None], rates[None, :], alpha)
+    np.testing.assert_array_equal(got, _binomial_min_count_plain(trials[:, None], rates[None, :], alpha))
+
+
+def test_poisson_min_values_equal_the_scalar_search_on_wide_levels():
+    """Levels over 24 orders of magnitude (``scipy.special.pdtrc`` is the Poisson upper tail)."""
+    rng = np.random.default_rng(11)
+    levels = np.concatenate([10.0 ** rng.uniform(-12, 5, 400), -rng.uniform(0, 1, 5)])
+    for alpha in (1e-12, 1e-3, 0.2):
+        expected = np.array([poisson_min_value(v, alpha) for v in levels])
+        np.testing.assert_array_equal(poisson_min_values(levels, alpha), expected)
+
+
+def test_low_mean_table_is_cached_read_only_and_equals_the_inverse_gamma():
+    """``scipy.special.gammainccinv`` is the inverse of the regularised upper incomplete gamma."""
+    from plexwash.qc.steps.speckle_tests import LOW_VALUES, low_mean_table
+    from scipy import special
+
+    first = low_mean_table(1e-3)
+    assert low_mean_table(1e-3) is first and not first.flags.writeable
+    np.testing.assert_array_equal(first, special.gammainccinv(np.arange(LOW_VALUES + 1.0) + 1.0, 1e-3))
+    assert np.isinf(low_mean_table(0.0)).all()
+
+
+def test_tables_of_the_zones_present_equal_the_tables_of_every_zone():
+    """The kernel reads the zone tables only at the codes of the zone map: tabulated on the
+    codes present, those entries equal the tables of all 256 codes, and the washed channel is
+    the same."""
+    from plexwash.qc.background import zone_factors
+    from plexwash.qc.steps import speckle as sp
+    from plexwash.qc.steps.speckle_settings import SpeckleSettings
+    from plexwash.qc.steps.speckle_tests import tabulated_levels
+
+    levels = np.where(np.arange(256) < 128, 0.02, 0.3) * zone_factors()
+    rng = np.random.default_rng(5)
+    zone = rng.choice(np.array([40, 41, 170, 200], np.uint8), (60, 60))
+    tabled = tabulated_levels(levels, zone)
+    present = np.unique(zone)
+    np.testing.assert_array_equal(tabled[present], levels[present])
+    assert len(np.unique(tabled)) == len(present)
+    assert tabulated_levels(levels, None) is levels
+    settings = SpeckleSettings()
+    background = sp._background_from_histogram(None, settings, rate=0.2)._replace(zone_levels=levels)
+    everywhere = sp._filter_parameters(settings, background)
+    here = sp._filter_parameters(settings, background, zone)
+    for key, value in everywhere.items():
+        if isinstance(value, np.ndarray) and value.shape[:1] == (256,):
+            np.testing.assert_array_equal(here[key][present], value[present], err_msg=key)
+        elif isinstance(value, np.ndarray):
+            np.testing.assert_array_equal(here[key], value, err_msg=key)
+        else:
+            assert here[key] == value, key
+    image = rng.poisson(np.where(zone >= 128, 0.3, 0.02)).astype(np.float32)
+    image[20:30, 20:30] += 5.0
+    counts = sp._counts(image, settings)
+    results = []
+    for params in (everywhere, here):
+        out, removed = np.empty_like(image), np.empty_like(image)
+        sp._speckle_apply(image, counts, zone, params, out, removed)
+        results.append(out)
+    np.testing.assert_array_equal(results[0], results[1])
+    assert (results[0] != image).any()

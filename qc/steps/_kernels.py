@@ -458,3 +458,50 @@ def _on_line(image, y, x, threshold, upper, offsets, table):
         if ahead > 0 and behind > 0 and ahead + behind >= table[trials]:
             return True
     return False
+
+
+@nb.njit(cache=True, nogil=True)
+def zone_presence(zone, present):
+    """Set ``present[z]`` for every zone code ``z`` of the uint8 map ``zone`` (any shape, flat)."""
+    flat = zone.ravel()
+    for i in range(flat.size):
+        present[flat[i]] = True
+
+
+@nb.njit(cache=True, nogil=True)
+def binomial_search(trials, rates, alphas, bdtrc, out):
+    """Per entry ``i``, the smallest ``k`` with ``P(N >= k) < alphas[i]``, ``N ~ Binomial(trials[i],
+    rates[i])``, by bisection on ``[0, trials + 1]`` (``P(N >= k) = bdtrc(k - 1, n, p)``; ``bdtrc``
+    is scipy's own, ``scipy.special.cython_special``, passed in). Written to ``out`` (int64)."""
+    for i in range(trials.size):
+        n = trials[i]
+        low = 0  # P(N >= 0) = 1 >= alpha
+        high = n + 1  # P(N >= n + 1) = 0 < alpha
+        while high - low > 1:
+            mid = (low + high) // 2
+            if bdtrc(np.float64(mid - 1), n, rates[i], 0) < alphas[i]:
+                high = mid
+            else:
+                low = mid
+        out[i] = high
+
+
+@nb.njit(cache=True, nogil=True)
+def poisson_search(levels, alpha, pdtrc, out):
+    """Per finite entry, the smallest whole ``v >= 1`` with ``P(Y >= v) < alpha``, ``Y ~
+    Poisson(levels[i])`` (``P(Y >= v) = pdtrc(v - 1, level)``, scipy's own, passed in): doubling,
+    then bisection. Written to ``out`` (float64)."""
+    for i in range(levels.size):
+        level = levels[i]
+        low = 0
+        high = 1
+        while pdtrc(np.float64(high - 1), level, 0) >= alpha:
+            low = high
+            high = 2 * high
+        while high - low > 1:
+            mid = (low + high) // 2
+            if pdtrc(np.float64(mid - 1), level, 0) < alpha:
+                high = mid
+            else:
+                low = mid
+        out[i] = high

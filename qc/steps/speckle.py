@@ -99,6 +99,7 @@ from .speckle_tests import (
     poisson_min_value,
     rim_tables,
     rim_values,
+    tabulated_levels,
     without_residue,
     zone_tables,
 )
@@ -378,7 +379,7 @@ def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out
     counts = _counts(image, settings)
     if background is None:
         background = _estimate(image, counts, settings, zone)
-    params = _filter_parameters(settings, background)
+    params = _filter_parameters(settings, background, zone)
     tested = without_residue(image, spilled, zone if params["zoned"] else None, params["levels"],
                              settings.residue_alpha)
     if tested is not image:
@@ -424,21 +425,23 @@ def _regional_background(histogram: np.ndarray, settings: SpeckleSettings) -> Ba
     return base._replace(glass_level=float(levels[0] if has_glass else np.nan), zone_levels=zone_levels)
 
 
-def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate) -> dict:
-    """Everything the kernel needs besides the pixels (and the zone map)."""
+def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate, zone=None) -> dict:
+    """Everything the kernel needs besides the pixels (and the zone map: with it, the zone
+    tables are searched only for the codes it holds)."""
     zoned = background.zone_levels is not None
     if zoned:
         levels, rates = background.zone_levels, None
     else:
         levels, rates = np.array([background.level]), np.array([background.rate])
+    tabled = tabulated_levels(levels, zone) if zoned else levels
     tables = {"threshold": settings.threshold, "value_alpha": settings.value_alpha}
-    min_count, value_cut = zone_tables(levels, rates=rates, radius=int(settings.radius), alpha=settings.alpha,
+    min_count, value_cut = zone_tables(tabled, rates=rates, radius=int(settings.radius), alpha=settings.alpha,
                                        **tables)
     wide_radius = int(settings.wide_radius)
     if wide_radius > 0:
-        support, _ = zone_tables(levels, rates=rates, radius=int(settings.radius),
+        support, _ = zone_tables(tabled, rates=rates, radius=int(settings.radius),
                                  alpha=settings.support_alpha, **tables)
-        wide, _ = zone_tables(levels, rates=rates, radius=wide_radius, alpha=settings.alpha, **tables)
+        wide, _ = zone_tables(tabled, rates=rates, radius=wide_radius, alpha=settings.alpha, **tables)
     else:  # never: more neighbours than any window has
         support = np.full_like(min_count, np.iinfo(np.int32).max)
         wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
@@ -456,9 +459,9 @@ def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate
         "min_area": int(settings.min_area),
         "lone_cut": lone_cuts(levels, settings),
         "line_half": int(settings.line_half),
-        "line_min_count": line_tables(levels, rates, settings),
-        "rim_min_count": rim_tables(levels, rates, settings),
-        "rim_value": rim_values(levels, settings),
+        "line_min_count": line_tables(tabled, rates, settings),
+        "rim_min_count": rim_tables(tabled, rates, settings),
+        "rim_value": rim_values(tabled, settings),
         "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
         "keep_touching": bool(settings.keep_touching),
         "zoned": zoned,

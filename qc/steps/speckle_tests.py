@@ -47,6 +47,7 @@ from __future__ import annotations
 import functools
 
 import numpy as np
+from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
 from scipy import special
 
 from ..errors import InputError
@@ -71,6 +72,7 @@ __all__ = [
     "poisson_min_value",
     "poisson_min_values",
     "positive_rate",
+    "tabulated_levels",
     "zone_tables",
 ]
 
@@ -159,26 +161,33 @@ def poisson_min_value(level: float, value_alpha: float) -> float:
 
 
 def poisson_min_values(levels, value_alpha: float) -> np.ndarray:
-    """:func:`poisson_min_value` of each entry of ``levels`` (float64 array), in one vectorised
-    search: every entry takes the same doubling and bisection steps, with the same
-    ``special.pdtrc`` comparisons, as the scalar function, so the results are equal."""
+    """:func:`poisson_min_value` of each entry of ``levels`` (float64 array): every entry takes
+    the same doubling and bisection steps, with the same ``pdtrc`` comparisons (scipy's own
+    function, compiled loop), as the scalar function, so the results are equal."""
     levels = np.asarray(levels, np.float64)
     out = np.full(levels.shape, np.inf)
     finite = np.isfinite(levels)
-    level = levels[finite]
-    low = np.zeros(level.shape, np.int64)
-    high = np.ones(level.shape, np.int64)
-    growing = special.pdtrc(high - 1, level) >= value_alpha
-    while growing.any():
-        low = np.where(growing, high, low)
-        high = np.where(growing, 2 * high, high)
-        growing = special.pdtrc(high - 1, level) >= value_alpha
-    while np.any(high - low > 1):
-        mid = (low + high) // 2
-        below = special.pdtrc(mid - 1, level) < value_alpha
-        low, high = np.where(below, low, mid), np.where(below, mid, high)
-    out[finite] = high
+    found = np.empty(int(finite.sum()), np.float64)
+    _k.poisson_search(np.ascontiguousarray(levels[finite]), float(value_alpha), _special_functions()[1], found)
+    out[finite] = found
     return out
+
+
+@functools.cache
+def _special_functions():
+    """scipy's ``bdtrc(double k, long n, double p)`` and ``pdtrc(double k, double m)``, the
+    functions ``scipy.special.bdtrc``/``pdtrc`` compute on int64 counts and float64 values, as
+    C function pointers the compiled searches call (``scipy.special.cython_special``)."""
+    import ctypes
+
+    from numba.extending import get_cython_function_address
+
+    module = "scipy.special.cython_special"
+    bdtrc = ctypes.CFUNCTYPE(ctypes.c_double, ctypes.c_double, ctypes.c_long, ctypes.c_double, ctypes.c_int)(
+        get_cython_function_address(module, "__pyx_fuse_1bdtrc"))
+    pdtrc = ctypes.CFUNCTYPE(ctypes.c_double, ctypes.c_double, ctypes.c_double, ctypes.c_int)(
+        get_cython_function_address(module, "pdtrc"))
+    return bdtrc, pdtrc
 
 
 def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
@@ -197,13 +206,10 @@ def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
     product = unique_trials.size * unique_rates.size < trials.size
     if product:
         trials, rate = np.meshgrid(unique_trials, unique_rates, indexing="ij")
-    low = np.zeros_like(trials)  # P(N >= 0) = 1 >= alpha
-    high = trials + 1  # P(N >= trials + 1) = 0 < alpha
-    while np.any(high - low > 1):
-        mid = (low + high) // 2
-        below = special.bdtrc(mid - 1, trials, rate) < alpha  # P(N >= mid) = P(N > mid - 1)
-        low = np.where(below, low, mid)
-        high = np.where(below, mid, high)
+    high = np.empty(trials.shape, np.int64)
+    flat_alpha = np.broadcast_to(np.asarray(alpha, np.float64), trials.shape)
+    _k.binomial_search(np.ascontiguousarray(trials).ravel(), np.ascontiguousarray(rate).ravel(),
+                       np.ascontiguousarray(flat_alpha).ravel(), _special_functions()[0], high.reshape(-1))
     if product:
         return high[trial_at.ravel(), rate_at.ravel()].reshape(shape)
     return high
@@ -250,13 +256,30 @@ def zone_tables(levels: np.ndarray, *, rates=None, threshold: float, radius: int
 LOW_VALUES = 255
 
 
+@functools.lru_cache(maxsize=16)
 def low_mean_table(edge_alpha: float) -> np.ndarray:
     """``table[v]``: the neighbour mean above which a pixel of value ``v`` (whole counts, floor)
-    is improbably low, ``P(Y <= v) < edge_alpha`` for ``Y ~ Poisson(mean)``; ``inf`` when off."""
+    is improbably low, ``P(Y <= v) < edge_alpha`` for ``Y ~ Poisson(mean)``; ``inf`` when off.
+
+    Depends on ``edge_alpha`` alone: computed once per value and shared (read-only)."""
     values = np.arange(LOW_VALUES + 1, dtype=np.float64)
-    if edge_alpha <= 0.0:
-        return np.full(values.shape, np.inf)
-    return special.gammainccinv(values + 1.0, edge_alpha)
+    table = np.full(values.shape, np.inf) if edge_alpha <= 0.0 else special.gammainccinv(values + 1.0, edge_alpha)
+    table.flags.writeable = False
+    return table
+
+
+def tabulated_levels(levels: np.ndarray, zone) -> np.ndarray:
+    """``levels`` (one per zone code) with the codes absent from the ``zone`` map set to the level
+    of the first code present, so the tables indexed by zone (read only at the map's codes) are
+    searched for the levels that occur: a small ROI has a few of the 256 codes. ``levels``
+    itself when ``zone`` is None or every code occurs."""
+    if zone is None:
+        return levels
+    present = np.zeros(len(levels), np.bool_)
+    _k.zone_presence(np.ascontiguousarray(zone, np.uint8), present)
+    if present.all() or not present.any():
+        return levels
+    return np.where(present, levels, levels[np.argmax(present)])
 
 
 def drop_residue(image: np.ndarray, spilled: np.ndarray, background: np.ndarray, alpha: float) -> np.ndarray:
