@@ -203,28 +203,53 @@ def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
     shape = trials.shape
     unique_trials, trial_at = np.unique(trials.ravel(), return_inverse=True)
     unique_rates, rate_at = np.unique(rate.ravel(), return_inverse=True)
-    product = unique_trials.size * unique_rates.size < trials.size
-    if product:
-        trials, rate = np.meshgrid(unique_trials, unique_rates, indexing="ij")
-    high = np.empty(trials.shape, np.int64)
-    flat_alpha = np.broadcast_to(np.asarray(alpha, np.float64), trials.shape)
-    _k.binomial_search(np.ascontiguousarray(trials).ravel(), np.ascontiguousarray(rate).ravel(),
-                       np.ascontiguousarray(flat_alpha).ravel(), _special_functions()[0], high.reshape(-1))
-    if product:
-        return high[trial_at.ravel(), rate_at.ravel()].reshape(shape)
-    return high
+    if unique_trials.size * unique_rates.size < trials.size:
+        return _binomial_grid(unique_trials, unique_rates, alpha)[trial_at.ravel(), rate_at.ravel()].reshape(shape)
+    high = np.empty(trials.size, np.int64)
+    _k.binomial_search(np.array(trials, np.int64).ravel(), np.array(rate, np.float64).ravel(),
+                       np.full(trials.size, float(alpha)), _special_functions()[0], high)
+    return high.reshape(shape)
+
+
+def _binomial_grid(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
+    """:func:`binomial_min_count` of every pair of the 1-D ``trials`` and ``rates``, ``(T, R)``."""
+    grid_trials, grid_rates = np.meshgrid(np.asarray(trials, np.int64), np.asarray(rates, np.float64), indexing="ij")
+    high = np.empty(grid_trials.size, np.int64)
+    _k.binomial_search(grid_trials.ravel(), grid_rates.ravel(), np.full(grid_trials.size, float(alpha)),
+                       _special_functions()[0], high)
+    return high.reshape(grid_trials.shape)
+
+
+@functools.lru_cache(maxsize=16)
+def _window_trials(radius: int) -> tuple[np.ndarray, np.ndarray]:
+    """The distinct neighbour counts ``max(a * b - 1, 0)`` of windows clipped to ``a`` x ``b``
+    pixels (``a, b <= 2r + 1``), and where each ``(a, b)`` finds its count among them."""
+    side = 2 * radius + 1
+    a, b = np.meshgrid(np.arange(side + 1), np.arange(side + 1), indexing="ij")
+    distinct, at = np.unique(np.maximum(a * b - 1, 0), return_inverse=True)
+    distinct.flags.writeable = False
+    at.flags.writeable = False
+    return distinct, at.reshape(side + 1, side + 1)
 
 
 def min_count_table(radius: int, rate, alpha: float) -> np.ndarray:
     """``table[..., a, b]``: smallest kept neighbour count for a window of ``a`` x ``b`` pixels.
 
-    ``rate`` is one rate or a 1-D array of them (one table each, stacked first).
+    ``rate`` is one rate or a 1-D array of them (one table each, stacked first). Each
+    distinct (neighbour count, rate) pair is searched once.
     """
-    side = 2 * radius + 1
-    a, b = np.meshgrid(np.arange(side + 1), np.arange(side + 1), indexing="ij")
-    trials = np.maximum(a * b - 1, 0)
     rate = np.asarray(rate, np.float64)
-    return binomial_min_count(trials, rate[..., None, None], alpha).astype(np.int32)
+    distinct, at = _window_trials(int(radius))
+    rates, rate_at = np.unique(rate.ravel(), return_inverse=True)
+    grid = _binomial_grid(distinct, rates, alpha).astype(np.int32)  # (T, R)
+    return grid.T[rate_at.reshape(rate.shape)][..., at]
+
+
+def _rate_tables(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
+    """``table[z, t]`` = :func:`binomial_min_count` of ``trials[t]`` (1-D, distinct) at ``rates[z]``,
+    each distinct rate searched once."""
+    distinct, at = np.unique(rates, return_inverse=True)
+    return _binomial_grid(trials, distinct, alpha).T[at.ravel()]
 
 
 def zone_tables(levels: np.ndarray, *, rates=None, threshold: float, radius: int, alpha: float,
@@ -372,7 +397,7 @@ def line_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
     rates = np.asarray(rates, np.float64)
     trials = np.arange(2 * half + 1)
     tests = len(line_offsets(half)) if half > 0 else 1
-    table = binomial_min_count(trials[None, :], rates[:, None], settings.line_alpha / tests).astype(np.int32)
+    table = _rate_tables(trials, rates, settings.line_alpha / tests).astype(np.int32)
     table[rates >= 1.0] = 0
     return np.ascontiguousarray(table)
 
@@ -407,7 +432,7 @@ def rim_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
         rates = positive_rate(levels, settings.threshold)
     rates = np.asarray(rates, np.float64)
     trials = np.arange((2 * int(settings.radius) + 1) ** 2)
-    table = binomial_min_count(trials[None, :], rates[:, None], settings.rim_alpha).astype(np.int32)
+    table = _rate_tables(trials, rates, settings.rim_alpha).astype(np.int32)
     table[rates >= 1.0] = 0
     return np.ascontiguousarray(table)
 
