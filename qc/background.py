@@ -316,14 +316,93 @@ def lower_tail_scale(image, pattern, keep, *, window: int, quantile: float) -> f
     n, m = counts[sample], weight[sample]
     target = float(special.ndtri(quantile))
     low, high = np.log(1e-9), np.log(max(float(n.sum() / m.sum()), 1e-9) * 10.0)
-    for _ in range(32):  # brackets e^-21 .. 10x the mean: 32 halvings leave < 1e-8 in log s
+    search = _TailSearch(n, m, quantile) if _TailSearch.usable(n, m) else None
+    for step in range(32):  # brackets e^-21 .. 10x the mean: 32 halvings leave < 1e-8 in log s
         mid = 0.5 * (low + high)
         s = np.exp(mid)
-        if np.quantile((n - s * m) / np.sqrt(s * m), quantile) > target:
+        if search is None:
+            above = np.quantile((n - s * m) / np.sqrt(s * m), quantile) > target
+        else:
+            if step >= _TailSearch.FIRST_NARROWING and step % 2 == 0:
+                search.narrow(np.exp(low), np.exp(high))
+            above = search.above(s, target)
+        if above:
             low = mid
         else:
             high = mid
     return float(np.exp(0.5 * (low + high)))
+
+
+class _TailSearch:
+    """``np.quantile((n - s m) / sqrt(s m), q) > target`` for the bisection of
+    :func:`lower_tail_scale`, decided exactly and without sorting where it can be.
+
+    The quantile is numpy's default (linear) one: order statistics ``j = floor((N - 1) q)`` and
+    ``j + 1`` interpolated as ``numpy.lib._function_base_impl._lerp`` does, and the result lies
+    between them. So when at most ``j`` values are ``<= target`` the quantile is above it, when
+    more than ``j + 1`` are it is not, and only otherwise are both order statistics selected and
+    interpolated, with numpy's arithmetic. Each value is computed by the same elementwise
+    operations as on the whole array, so the decisions equal numpy's.
+
+    :meth:`narrow` drops the values that cannot be either order statistic while ``s`` stays in
+    the bracket: each value falls as ``s`` grows (``n / sqrt(s m) - sqrt(s m)``), so between the
+    bracket's ends it lies between its values there (widened by 1e-9 of its size, far beyond
+    rounding); one whose upper end is below every possible ``j``-th value is counted below and
+    dropped, one whose lower end is above every possible ``(j + 1)``-th value dropped.
+    """
+
+    #: The bisection step from which the candidates are narrowed (every other step): before,
+    #: the bracket spans too wide a range of scales for it to drop much.
+    FIRST_NARROWING = 6
+
+    @staticmethod
+    def usable(n: np.ndarray, m: np.ndarray) -> bool:
+        """Finite counts and weights bounded away from 0 (every value finite, no NaN)."""
+        return bool(np.isfinite(n).all() and np.isfinite(m).all() and m.min() > 1e-200)
+
+    def __init__(self, n: np.ndarray, m: np.ndarray, quantile: float):
+        self.n, self.m = n, m
+        virtual = (n.size - 1) * quantile
+        if virtual >= n.size - 1:  # numpy takes the largest value
+            self.first = self.second = n.size - 1
+            self.gamma = 0.0
+        else:
+            below = np.floor(virtual)
+            self.first, self.second = int(below), int(below) + 1
+            self.gamma = float(virtual - below)
+        self.dropped = 0  # values dropped below the order statistics
+
+    def _values(self, s):
+        return (self.n - s * self.m) / np.sqrt(s * self.m)
+
+    def above(self, s, target: float) -> bool:
+        values = self._values(s)
+        first, second = self.first - self.dropped, self.second - self.dropped
+        at_most = int(np.count_nonzero(values <= target))
+        if at_most <= first:
+            return True
+        if at_most > second:
+            return False
+        order = np.partition(values, (first, second))
+        a, b = float(order[first]), float(order[second])
+        diff = b - a
+        value = b - diff * (1 - self.gamma) if self.gamma >= 0.5 else a + diff * self.gamma
+        return value > target
+
+    def narrow(self, s_low, s_high) -> None:
+        if self.n.size <= 64:
+            return
+        upper_end, lower_end = self._values(s_low), self._values(s_high)
+        slack = 1e-9 * (np.abs(upper_end) + np.abs(lower_end) + np.sqrt(s_high * self.m) + 1.0)
+        upper_end += slack
+        lower_end -= slack
+        first, second = self.first - self.dropped, self.second - self.dropped
+        lowest_first = np.partition(lower_end, first)[first]
+        highest_second = np.partition(upper_end, second)[second]
+        below = upper_end < lowest_first
+        keep = ~below & (lower_end <= highest_second)
+        self.dropped += int(np.count_nonzero(below))
+        self.n, self.m = self.n[keep], self.m[keep]
 
 
 def _regions(shape, mask) -> tuple[np.ndarray, np.ndarray]:
