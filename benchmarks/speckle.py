@@ -11,6 +11,15 @@ Floors and steps run under the same thread count, ``--threads`` (default: all co
 ``os.cpu_count()``): the steps run channels on a pool of ``os.cpu_count()`` threads, so
 the benchmark sets that to ``--threads``, and the floors run their channels on a pool of
 the same size (numpy and scipy.ndimage release the GIL on whole planes).
+
+Wash steps per ROI: ``python benchmarks/speckle.py --steps [--baseline DIR] [--small 10]
+[--repeats 3]`` times, as a wash calls them (one channel per call, one thread), the ROI's
+background context (``roi_background``), hot pixels and speckle (with what compensation
+removed, so the residue test runs) on small 36 x 96 x 96 ROIs and on one dense 36 x 1008 x
+1008 ROI (``_dense.py``), in a child process of this checkout and, with ``--baseline``, one
+whose ``plexwash`` comes from ``DIR`` (e.g. main archived there), on the same pixels in the
+same run, repeats interleaved. Prints seconds per ROI (median; CPU seconds beside), the
+ratios and the load average.
 """
 
 from __future__ import annotations
@@ -20,6 +29,7 @@ import os
 import statistics
 import time
 from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
 
 os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
@@ -80,14 +90,129 @@ def timings(funcs: dict, repeats: int) -> dict:
     return {name: (statistics.median(t), min(t)) for name, t in times.items()}
 
 
+STEP_NAMES = ("context", "hot_pixels", "speckle")
+
+
+def step_seconds(folder: Path, small: int) -> dict:
+    """Seconds (wall, CPU) per ROI of each wash step on the ROIs saved in ``folder``, one thread,
+    one channel per call as the wash makes them (run in a child process: see ``--steps``)."""
+    from plexwash.qc.background import roi_background
+    from plexwash.qc.steps.registry import step
+
+    os.cpu_count = lambda: 1
+    raw, compensated, spilled = (np.load(folder / f"{name}.npy") for name in ("raw", "compensated", "spilled"))
+    edge = 96
+    starts = [(y, x) for y in range(0, raw.shape[1] - edge + 1, edge) for x in range(0, raw.shape[2] - edge + 1, edge)]
+    rois = {"small": [tuple(np.ascontiguousarray(a[:, y:y + edge, x:x + edge]) for a in (raw, compensated, spilled))
+                      for y, x in starts[:small + 1]],
+            "dense": [(raw, compensated, spilled)]}
+    hot, speckle = step("hot_pixels"), step("speckle")
+    hot_settings, speckle_settings = hot.settings(), speckle.settings()
+
+    def run(roi) -> dict:
+        raw_roi, comp_roi, spilled_roi = roi
+        seconds = {}
+        clock = (time.perf_counter(), time.process_time())
+        context = roi_background(raw_roi.__getitem__, range(raw_roi.shape[0]), raw_roi.shape[1:])
+        seconds["context"], clock = _lap(clock)
+        for c in range(raw_roi.shape[0]):
+            hot.run(raw_roi[c:c + 1], [hot_settings], None, parallel=False)
+        seconds["hot_pixels"], clock = _lap(clock)
+        for c in range(raw_roi.shape[0]):
+            speckle.run(comp_roi[c:c + 1], [speckle_settings], None, parallel=False, background=context,
+                        spilled=spilled_roi[c:c + 1])
+        seconds["speckle"], clock = _lap(clock)
+        return seconds
+
+    run(rois["small"][0])  # first calls compile or load the numba caches; not timed
+    out = {}
+    for kind, batch in (("small", rois["small"][1:]), ("dense", rois["dense"])):
+        laps = [run(roi) for roi in batch]
+        out[kind] = {name: [float(np.sum([lap[name][k] for lap in laps]) / len(laps)) for k in (0, 1)]
+                     for name in STEP_NAMES}
+    return out
+
+
+def _lap(clock):
+    now = (time.perf_counter(), time.process_time())
+    return (now[0] - clock[0], now[1] - clock[1]), now
+
+
+def steps_main(args) -> None:
+    """Both checkouts' step seconds per ROI, children interleaved, medians of ``--repeats``."""
+    import json
+    import subprocess
+    import sys
+    import tempfile
+
+    from _dense import dense_counts
+    from plexwash.qc.steps.compensation import compensation_stack
+    from plexwash.qc.steps.registry import step
+
+    counts, _, spill = dense_counts(36, 1008)
+    compensated = compensation_stack(counts, [step("compensation").settings()] * 36, spill).image
+    compensated = np.ascontiguousarray(compensated, np.float32)
+    here = Path(__file__).resolve()
+    sides = {"this checkout": None}
+    if args.baseline:
+        sides["baseline"] = str(Path(args.baseline).resolve())
+    results = {side: [] for side in sides}
+    with tempfile.TemporaryDirectory() as folder:
+        np.save(Path(folder) / "raw.npy", counts)
+        np.save(Path(folder) / "compensated.npy", compensated)
+        np.save(Path(folder) / "spilled.npy", counts - compensated)
+        del counts, compensated
+        for _ in range(args.repeats):
+            for side, path in sides.items():
+                env = dict(os.environ)
+                if path is not None:
+                    env["PYTHONPATH"] = path + os.pathsep + env.get("PYTHONPATH", "")
+                child = subprocess.run([sys.executable, str(here), "--steps-child", folder, "--small", str(args.small)],
+                                       env=env, capture_output=True, text=True, check=True)
+                results[side].append(json.loads(child.stdout.strip().splitlines()[-1]))
+    load = os.getloadavg()
+    print(f"wash steps per ROI, one thread, one channel per call; {args.repeats} interleaved repeats (median); "
+          f"small: {args.small} ROIs of 36 x 96 x 96, dense: 1 ROI of 36 x 1008 x 1008; "
+          f"load average {load[0]:.1f} {load[1]:.1f} {load[2]:.1f}")
+    for kind in ("small", "dense"):
+        print(f"-- {kind}: wall s per ROI (CPU s)")
+        totals = {}
+        for name in (*STEP_NAMES, "all"):
+            cells = []
+            for side in sides:
+                if name == "all":
+                    wall = statistics.median(sum(r[kind][n][0] for n in STEP_NAMES) for r in results[side])
+                    cpu = statistics.median(sum(r[kind][n][1] for n in STEP_NAMES) for r in results[side])
+                else:
+                    wall = statistics.median(r[kind][name][0] for r in results[side])
+                    cpu = statistics.median(r[kind][name][1] for r in results[side])
+                totals[side] = wall
+                cells.append(f"{side} {wall:8.4f} ({cpu:7.4f})")
+            ratio = f"   baseline / this = {totals['baseline'] / max(totals['this checkout'], 1e-12):5.2f}x" \
+                if "baseline" in totals else ""
+            print(f"{name:<11} " + "   ".join(cells) + ratio)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--steps", action="store_true", help="the wash steps' seconds per small and dense ROI")
+    parser.add_argument("--steps-child", help=argparse.SUPPRESS)
+    parser.add_argument("--baseline", help="with --steps: a folder holding another plexwash package to time too")
+    parser.add_argument("--small", type=int, default=10, help="with --steps: small ROIs timed")
     parser.add_argument("--channels", type=int, default=40)
     parser.add_argument("--size", type=int, default=1000)
     parser.add_argument("--repeats", type=int, default=5)
     parser.add_argument("--threads", type=int, default=os.cpu_count() or 1,
                         help="threads for the floors and the steps alike (default: all cores)")
     args = parser.parse_args()
+    if args.steps_child:
+        import json
+
+        print(json.dumps(step_seconds(Path(args.steps_child), args.small)))
+        return
+    if args.steps:
+        steps_main(args)
+        return
     threads = args.threads
     os.cpu_count = lambda: threads  # the steps' channel pool takes os.cpu_count() threads
 
