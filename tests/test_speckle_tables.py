@@ -166,3 +166,56 @@ def test_tables_of_the_zones_present_equal_the_tables_of_every_zone():
         results.append(out)
     np.testing.assert_array_equal(results[0], results[1])
     assert (results[0] != image).any()
+
+
+def _region_histogram_plain(image, counts, threshold, radius, zone):
+    """The histogram by ``np.bincount`` of one code per full window (the reference)."""
+    from plexwash.qc.background import PARTS, ZONES_PER_PART
+
+    size = (2 * radius + 1) ** 2
+    inner = (slice(radius, image.shape[0] - radius), slice(radius, image.shape[1] - radius))
+    centre = (image[inner] > np.float32(threshold)).astype(np.int64)
+    part = (zone[inner] // ZONES_PER_PART).astype(np.int64)
+    code = (2 * part + centre) * size + counts[inner].astype(np.int64) - centre
+    return np.bincount(code.ravel(), minlength=2 * len(PARTS) * size).reshape(len(PARTS), 2, size)
+
+
+@pytest.mark.parametrize("radius", [1, 2, 3])
+def test_region_histogram_equals_the_bincount(radius):
+    from plexwash.qc.steps.speckle_counts import region_histogram, window_counts
+
+    rng = np.random.default_rng(radius)
+    image = rng.poisson(0.4, (70, 53)).astype(np.float32)
+    zone = rng.integers(0, 256, image.shape).astype(np.uint8)
+    counts = window_counts(image, 0.5, radius)
+    np.testing.assert_array_equal(region_histogram(image, counts, 0.5, radius, zone),
+                                  _region_histogram_plain(image, counts, 0.5, radius, zone))
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_without_residue_equals_drop_residue_on_the_zone_background(seed):
+    """The compiled residue test against :func:`drop_residue` (whose Poisson tail is checked
+    against ``scipy.stats.poisson.sf`` in test_speckle_tissue.py) with the background of each
+    pixel's zone, infinite and NaN levels included, and without a zone map."""
+    from plexwash.qc.steps.speckle_tests import drop_residue, without_residue
+
+    rng = np.random.default_rng(seed)
+    shape = (57, 64)
+    levels = rng.uniform(0, 3, 256)
+    levels[rng.integers(0, 256, 8)] = np.inf
+    levels[rng.integers(0, 256, 4)] = np.nan
+    zone = rng.integers(0, 256, shape).astype(np.uint8)
+    zone[:, :20] = rng.integers(0, 4, (shape[0], 20))
+    spilled = (rng.uniform(0, 6, shape) * (rng.uniform(size=shape) < 0.7)).astype(np.float32)
+    image = np.maximum(rng.poisson(2.0, shape) - spilled + rng.normal(0, 0.3, shape), 0).astype(np.float32)
+    image[rng.uniform(size=shape) < 0.1] = -0.5
+    for alpha in (1e-3, 0.05, 0.5):
+        for zone_map in (zone, None):
+            background = np.nan_to_num(levels[zone_map] if zone_map is not None else np.full(shape, levels[0]),
+                                       posinf=1e30)
+            want = drop_residue(image, spilled, background, alpha)
+            got = without_residue(image, spilled, zone_map, levels, alpha)
+            np.testing.assert_array_equal(got, want)
+            assert (got is image) == (want is image)
+    assert without_residue(image, None, zone, levels, 0.05) is image
+    assert without_residue(image, spilled, zone, levels, 0.0) is image

@@ -505,3 +505,48 @@ def poisson_search(levels, alpha, pdtrc, out):
             else:
                 low = mid
         out[i] = high
+
+
+@nb.njit(cache=True, nogil=True)
+def region_histogram(image, counts, threshold, radius, zone, zones_per_part, histogram):
+    """Add each full window to ``histogram[part, centre positive, n]`` (int64), ``part`` the zone
+    part of its centre (``zone // zones_per_part``), ``n`` its positive neighbours."""
+    height, width = image.shape
+    for y in range(radius, height - radius):
+        for x in range(radius, width - radius):
+            centre = 1 if image[y, x] > threshold else 0
+            histogram[zone[y, x] // zones_per_part, centre, np.int64(counts[y, x]) - centre] += 1
+
+
+@nb.njit(cache=True, nogil=True)
+def residue_candidates(image, spilled, zone, levels, measured, expected, where):
+    """The pixels :func:`plexwash.qc.steps.speckle_tests.drop_residue` tests, in row-major order:
+    ``image > 0``, ``spilled > 0`` and ``spilled >= b`` for the background ``b = levels[zone]``.
+    For each, the 3 x 3 sums (clipped at the edges, added in the order of ``box3``: rows, then
+    columns, from a zero start, outside pixels adding 0) of ``floor(image + spilled + 0.5)`` into
+    ``measured`` and of ``spilled + b`` into ``expected`` (float64), its flat index into ``where``.
+    Returns how many."""
+    height, width = image.shape
+    found = 0
+    for y in range(height):
+        for x in range(width):
+            g = spilled[y, x]
+            if not (image[y, x] > 0 and g > 0 and np.float64(g) >= levels[zone[y, x]]):
+                continue
+            total = 0.0
+            mean = 0.0
+            for dy in range(-1, 2):
+                for dx in range(-1, 2):
+                    yy = y + dy
+                    xx = x + dx
+                    if 0 <= yy < height and 0 <= xx < width:
+                        total += np.floor(np.float64(image[yy, xx]) + np.float64(spilled[yy, xx]) + 0.5)
+                        mean += np.float64(spilled[yy, xx]) + levels[zone[yy, xx]]
+                    else:
+                        total += 0.0
+                        mean += 0.0
+            measured[found] = total
+            expected[found] = mean
+            where[found] = y * width + x
+            found += 1
+    return found

@@ -91,11 +91,10 @@ def region_histogram(image: np.ndarray, counts: np.ndarray, threshold: float, ra
     """``histogram[part, c, n]``: :func:`centre_histogram` split by the zone part of the centre."""
     radius = int(radius)
     size = (2 * radius + 1) ** 2
-    inner = (slice(radius, image.shape[0] - radius), slice(radius, image.shape[1] - radius))
-    centre = (image[inner] > np.float32(threshold)).astype(np.int64)
-    part = (zone[inner] // ZONES_PER_PART).astype(np.int64)
-    code = (2 * part + centre) * size + counts[inner].astype(np.int64) - centre
-    return np.bincount(code.ravel(), minlength=2 * len(PARTS) * size).reshape(len(PARTS), 2, size)
+    histogram = np.zeros((len(PARTS), 2, size), np.int64)
+    _k.region_histogram(np.ascontiguousarray(image), np.ascontiguousarray(counts), np.float32(threshold),
+                        radius, np.ascontiguousarray(zone, np.uint8), ZONES_PER_PART, histogram)
+    return histogram
 
 
 def check_window(shape, radius: int) -> None:
