@@ -344,7 +344,8 @@ class _TailSearch:
     interpolated, with numpy's arithmetic. Each value is computed by the same elementwise
     operations as on the whole array, so the decisions equal numpy's.
 
-    :meth:`narrow` drops the values that cannot be either order statistic while ``s`` stays in
+    The values, count and selection of a step are one compiled loop (``_kernels.tail_decision``:
+    the same operations, element by element, as numpy's). :meth:`narrow` drops the values that cannot be either order statistic while ``s`` stays in
     the bracket: each value falls as ``s`` grows (``n / sqrt(s m) - sqrt(s m)``), so between the
     bracket's ends it lies between its values there (widened by 1e-9 of its size, far beyond
     rounding); one whose upper end is below every possible ``j``-th value is counted below and
@@ -354,6 +355,8 @@ class _TailSearch:
     #: The bisection step from which the candidates are narrowed (every other step): before,
     #: the bracket spans too wide a range of scales for it to drop much.
     FIRST_NARROWING = 6
+    #: Fewer values are not narrowed (the compiled step costs less than the narrowing).
+    NARROW_ABOVE = 4096
 
     @staticmethod
     def usable(n: np.ndarray, m: np.ndarray) -> bool:
@@ -371,26 +374,27 @@ class _TailSearch:
             self.first, self.second = int(below), int(below) + 1
             self.gamma = float(virtual - below)
         self.dropped = 0  # values dropped below the order statistics
+        self._buffer = None
+        from plexwash.qc.steps import _kernels  # absolute: one numba cache, whatever imported us
 
-    def _values(self, s):
+        self._kernels = _kernels
+
+    def _values(self, s):  # as tail_decision makes them
         return (self.n - s * self.m) / np.sqrt(s * self.m)
 
     def above(self, s, target: float) -> bool:
-        values = self._values(s)
         first, second = self.first - self.dropped, self.second - self.dropped
-        at_most = int(np.count_nonzero(values <= target))
-        if at_most <= first:
-            return True
-        if at_most > second:
-            return False
-        order = np.partition(values, (first, second))
-        a, b = float(order[first]), float(order[second])
+        if self._buffer is None or self._buffer.size < self.n.size:
+            self._buffer = np.empty(self.n.size, np.float64)
+        code, a, b = self._kernels.tail_decision(self.n, self.m, float(s), float(target), first, second, self._buffer)
+        if code < 2:
+            return code == 1
         diff = b - a
         value = b - diff * (1 - self.gamma) if self.gamma >= 0.5 else a + diff * self.gamma
         return value > target
 
     def narrow(self, s_low, s_high) -> None:
-        if self.n.size <= 64:
+        if self.n.size <= self.NARROW_ABOVE:
             return
         upper_end, lower_end = self._values(s_low), self._values(s_high)
         slack = 1e-9 * (np.abs(upper_end) + np.abs(lower_end) + np.sqrt(s_high * self.m) + 1.0)

@@ -550,3 +550,32 @@ def residue_candidates(image, spilled, zone, levels, measured, expected, where):
             where[found] = y * width + x
             found += 1
     return found
+
+
+@nb.njit(cache=True, nogil=True)
+def tail_decision(n, m, s, target, first, second, values):
+    """One step of the lower-tail scale bisection (:class:`plexwash.qc.background._TailSearch`):
+    ``values = (n - s m) / sqrt(s m)`` elementwise, then ``(1, 0, 0)`` when at most ``first`` of
+    them are ``<= target`` (the quantile is above it), ``(0, 0, 0)`` when more than ``second``
+    are, else ``(2, a, b)`` with ``a``, ``b`` the order statistics ``first`` and ``second``."""
+    size = n.size
+    at_most = 0
+    for i in range(size):
+        product = s * m[i]
+        v = (n[i] - product) / np.sqrt(product)
+        values[i] = v
+        if v <= target:
+            at_most += 1
+    if at_most <= first:
+        return 1, 0.0, 0.0
+    if at_most > second:
+        return 0, 0.0, 0.0
+    order = np.partition(values[:size], first)
+    a = order[first]
+    b = a
+    if second > first:
+        b = order[first + 1]
+        for i in range(first + 2, size):
+            if order[i] < b:
+                b = order[i]
+    return 2, a, b
