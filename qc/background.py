@@ -344,7 +344,7 @@ class _TailSearch:
     interpolated, with numpy's arithmetic. Each value is computed by the same elementwise
     operations as on the whole array, so the decisions equal numpy's.
 
-    The values, count and selection of a step are one compiled loop (``_kernels.tail_decision``:
+    The values, count and selection of a step are one compiled loop (``steps._search_kernels.tail_decision``:
     the same operations, element by element, as numpy's). :meth:`narrow` drops the values that cannot be either order statistic while ``s`` stays in
     the bracket: each value falls as ``s`` grows (``n / sqrt(s m) - sqrt(s m)``), so between the
     bracket's ends it lies between its values there (widened by 1e-9 of its size, far beyond
@@ -375,9 +375,9 @@ class _TailSearch:
             self.gamma = float(virtual - below)
         self.dropped = 0  # values dropped below the order statistics
         self._buffer = None
-        from plexwash.qc.steps import _kernels  # absolute: one numba cache, whatever imported us
+        from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
 
-        self._kernels = _kernels
+        self._kernels = _search_kernels
 
     def _values(self, s):  # as tail_decision makes them
         return (self.n - s * self.m) / np.sqrt(s * self.m)

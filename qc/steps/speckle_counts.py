@@ -13,6 +13,7 @@ import functools
 
 import numpy as np
 from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
+from plexwash.qc.steps import _search_kernels as _sk
 
 from ..background import PARTS, ZONES_PER_PART
 from ..errors import InputError
@@ -92,7 +93,7 @@ def region_histogram(image: np.ndarray, counts: np.ndarray, threshold: float, ra
     radius = int(radius)
     size = (2 * radius + 1) ** 2
     histogram = np.zeros((len(PARTS), 2, size), np.int64)
-    _k.region_histogram(np.ascontiguousarray(image), np.ascontiguousarray(counts), np.float32(threshold),
+    _sk.region_histogram(np.ascontiguousarray(image), np.ascontiguousarray(counts), np.float32(threshold),
                         radius, np.ascontiguousarray(zone, np.uint8), ZONES_PER_PART, histogram)
     return histogram
 

@@ -47,7 +47,7 @@ from __future__ import annotations
 import functools
 
 import numpy as np
-from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
+from plexwash.qc.steps import _search_kernels as _sk  # absolute: one numba cache
 from scipy import special
 
 from ..errors import InputError
@@ -168,7 +168,7 @@ def poisson_min_values(levels, value_alpha: float) -> np.ndarray:
     out = np.full(levels.shape, np.inf)
     finite = np.isfinite(levels)
     found = np.empty(int(finite.sum()), np.float64)
-    _k.poisson_search(np.ascontiguousarray(levels[finite]), float(value_alpha), _special_functions()[1], found)
+    _sk.poisson_search(np.ascontiguousarray(levels[finite]), float(value_alpha), _special_functions()[1], found)
     out[finite] = found
     return out
 
@@ -206,7 +206,7 @@ def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
     if unique_trials.size * unique_rates.size < trials.size:
         return _binomial_grid(unique_trials, unique_rates, alpha)[trial_at.ravel(), rate_at.ravel()].reshape(shape)
     high = np.empty(trials.size, np.int64)
-    _k.binomial_search(np.array(trials, np.int64).ravel(), np.array(rate, np.float64).ravel(),
+    _sk.binomial_search(np.array(trials, np.int64).ravel(), np.array(rate, np.float64).ravel(),
                        np.full(trials.size, float(alpha)), _special_functions()[0], high)
     return high.reshape(shape)
 
@@ -215,7 +215,7 @@ def _binomial_grid(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.nd
     """:func:`binomial_min_count` of every pair of the 1-D ``trials`` and ``rates``, ``(T, R)``."""
     grid_trials, grid_rates = np.meshgrid(np.asarray(trials, np.int64), np.asarray(rates, np.float64), indexing="ij")
     high = np.empty(grid_trials.size, np.int64)
-    _k.binomial_search(grid_trials.ravel(), grid_rates.ravel(), np.full(grid_trials.size, float(alpha)),
+    _sk.binomial_search(grid_trials.ravel(), grid_rates.ravel(), np.full(grid_trials.size, float(alpha)),
                        _special_functions()[0], high)
     return high.reshape(grid_trials.shape)
 
@@ -301,7 +301,7 @@ def tabulated_levels(levels: np.ndarray, zone) -> np.ndarray:
     if zone is None:
         return levels
     present = np.zeros(len(levels), np.bool_)
-    _k.zone_presence(np.ascontiguousarray(zone, np.uint8), present)
+    _sk.zone_presence(np.ascontiguousarray(zone, np.uint8), present)
     if present.all() or not present.any():
         return levels
     return np.where(present, levels, levels[np.argmax(present)])
@@ -463,7 +463,7 @@ def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
         zone, levels = np.zeros(image.shape, np.uint8), levels[:1]
     measured, expected = np.empty(image.size, np.float64), np.empty(image.size, np.float64)
     where = np.empty(image.size, np.int64)
-    found = _k.residue_candidates(np.ascontiguousarray(image), spilled, np.ascontiguousarray(zone, np.uint8),
+    found = _sk.residue_candidates(np.ascontiguousarray(image), spilled, np.ascontiguousarray(zone, np.uint8),
                                   np.ascontiguousarray(levels), measured, expected, where)
     if found == 0:
         return image

@@ -1,0 +1,133 @@
+"""Compiled loops of the wash steps' tables and tests (speckle tables, residue test, region
+histogram, the background scale's bisection step), beside :mod:`._kernels`' filters.
+
+scipy's special functions are called through the C function pointers that
+``scipy.special.cython_special`` exports (passed in as arguments, so the compiled code is
+cached), the same functions the ``scipy.special`` ufuncs compute.
+"""
+
+from __future__ import annotations
+
+import numba as nb
+import numpy as np
+
+
+@nb.njit(cache=True, nogil=True)
+def zone_presence(zone, present):
+    """Set ``present[z]`` for every zone code ``z`` of the uint8 map ``zone`` (any shape, flat)."""
+    flat = zone.ravel()
+    for i in range(flat.size):
+        present[flat[i]] = True
+
+
+@nb.njit(cache=True, nogil=True)
+def binomial_search(trials, rates, alphas, bdtrc, out):
+    """Per entry ``i``, the smallest ``k`` with ``P(N >= k) < alphas[i]``, ``N ~ Binomial(trials[i],
+    rates[i])``, by bisection on ``[0, trials + 1]`` (``P(N >= k) = bdtrc(k - 1, n, p)``; ``bdtrc``
+    is scipy's own, ``scipy.special.cython_special``, passed in). Written to ``out`` (int64)."""
+    for i in range(trials.size):
+        n = trials[i]
+        low = 0  # P(N >= 0) = 1 >= alpha
+        high = n + 1  # P(N >= n + 1) = 0 < alpha
+        while high - low > 1:
+            mid = (low + high) // 2
+            if bdtrc(np.float64(mid - 1), n, rates[i], 0) < alphas[i]:
+                high = mid
+            else:
+                low = mid
+        out[i] = high
+
+
+@nb.njit(cache=True, nogil=True)
+def poisson_search(levels, alpha, pdtrc, out):
+    """Per finite entry, the smallest whole ``v >= 1`` with ``P(Y >= v) < alpha``, ``Y ~
+    Poisson(levels[i])`` (``P(Y >= v) = pdtrc(v - 1, level)``, scipy's own, passed in): doubling,
+    then bisection. Written to ``out`` (float64)."""
+    for i in range(levels.size):
+        level = levels[i]
+        low = 0
+        high = 1
+        while pdtrc(np.float64(high - 1), level, 0) >= alpha:
+            low = high
+            high = 2 * high
+        while high - low > 1:
+            mid = (low + high) // 2
+            if pdtrc(np.float64(mid - 1), level, 0) < alpha:
+                high = mid
+            else:
+                low = mid
+        out[i] = high
+
+
+@nb.njit(cache=True, nogil=True)
+def region_histogram(image, counts, threshold, radius, zone, zones_per_part, histogram):
+    """Add each full window to ``histogram[part, centre positive, n]`` (int64), ``part`` the zone
+    part of its centre (``zone // zones_per_part``), ``n`` its positive neighbours."""
+    height, width = image.shape
+    for y in range(radius, height - radius):
+        for x in range(radius, width - radius):
+            centre = 1 if image[y, x] > threshold else 0
+            histogram[zone[y, x] // zones_per_part, centre, np.int64(counts[y, x]) - centre] += 1
+
+
+@nb.njit(cache=True, nogil=True)
+def residue_candidates(image, spilled, zone, levels, measured, expected, where):
+    """The pixels :func:`plexwash.qc.steps.speckle_tests.drop_residue` tests, in row-major order:
+    ``image > 0``, ``spilled > 0`` and ``spilled >= b`` for the background ``b = levels[zone]``.
+    For each, the 3 x 3 sums (clipped at the edges, added in the order of ``box3``: rows, then
+    columns, from a zero start, outside pixels adding 0) of ``floor(image + spilled + 0.5)`` into
+    ``measured`` and of ``spilled + b`` into ``expected`` (float64), its flat index into ``where``.
+    Returns how many."""
+    height, width = image.shape
+    found = 0
+    for y in range(height):
+        for x in range(width):
+            g = spilled[y, x]
+            if not (image[y, x] > 0 and g > 0 and np.float64(g) >= levels[zone[y, x]]):
+                continue
+            total = 0.0
+            mean = 0.0
+            for dy in range(-1, 2):
+                for dx in range(-1, 2):
+                    yy = y + dy
+                    xx = x + dx
+                    if 0 <= yy < height and 0 <= xx < width:
+                        total += np.floor(np.float64(image[yy, xx]) + np.float64(spilled[yy, xx]) + 0.5)
+                        mean += np.float64(spilled[yy, xx]) + levels[zone[yy, xx]]
+                    else:
+                        total += 0.0
+                        mean += 0.0
+            measured[found] = total
+            expected[found] = mean
+            where[found] = y * width + x
+            found += 1
+    return found
+
+
+@nb.njit(cache=True, nogil=True)
+def tail_decision(n, m, s, target, first, second, values):
+    """One step of the lower-tail scale bisection (:class:`plexwash.qc.background._TailSearch`):
+    ``values = (n - s m) / sqrt(s m)`` elementwise, then ``(1, 0, 0)`` when at most ``first`` of
+    them are ``<= target`` (the quantile is above it), ``(0, 0, 0)`` when more than ``second``
+    are, else ``(2, a, b)`` with ``a``, ``b`` the order statistics ``first`` and ``second``."""
+    size = n.size
+    at_most = 0
+    for i in range(size):
+        product = s * m[i]
+        v = (n[i] - product) / np.sqrt(product)
+        values[i] = v
+        if v <= target:
+            at_most += 1
+    if at_most <= first:
+        return 1, 0.0, 0.0
+    if at_most > second:
+        return 0, 0.0, 0.0
+    order = np.partition(values[:size], first)
+    a = order[first]
+    b = a
+    if second > first:
+        b = order[first + 1]
+        for i in range(first + 2, size):
+            if order[i] < b:
+                b = order[i]
+    return 2, a, b
