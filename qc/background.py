@@ -42,6 +42,7 @@ counts it cleans.
 from __future__ import annotations
 
 import dataclasses
+import functools
 
 import numpy as np
 from scipy import ndimage, special
@@ -558,10 +559,18 @@ def block_sums(plane, block: int = CONTEXT_BLOCK) -> np.ndarray:
     padded = np.zeros((by * block, bx * block), np.float64)
     padded[:ny, :nx] = plane
     sums = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
-    covered = np.zeros_like(padded)
+    return sums * (block * block) / _block_area(ny, nx, block)
+
+
+@functools.lru_cache(maxsize=8)
+def _block_area(ny: int, nx: int, block: int) -> np.ndarray:
+    """Pixels of a ``ny`` x ``nx`` plane in each block (the same for every plane: made once)."""
+    by, bx = -(-ny // block), -(-nx // block)
+    covered = np.zeros((by * block, bx * block), np.float64)
     covered[:ny, :nx] = 1.0
     area = covered.reshape(by, block, bx, block).sum(axis=(1, 3))
-    return sums * (block * block) / area
+    area.flags.writeable = False
+    return area
 
 
 def block_settings(settings: BackgroundSettings, block: int) -> BackgroundSettings:
