@@ -222,10 +222,37 @@ def likely_signal(image: np.ndarray, rate, *, box: int, alpha: float) -> np.ndar
     # 1994): only windows above their mean can be improbable, the tail is computed there
     above = sums > mean
     improbable = np.zeros(sums.shape, bool)
-    improbable[above] = poisson_upper_tail(sums[above], mean[above]) < alpha
+    improbable[above] = _tail_below(sums[above], mean[above], alpha)
     if box > 1:
         improbable = ndimage.maximum_filter(improbable, size=box, mode="constant")
     return improbable
+
+
+def _tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarray:
+    """``poisson_upper_tail(n, mu) < alpha`` for whole counts ``n > mu > 0``, the incomplete gamma
+    function evaluated only where two bounds on the tail do not decide.
+
+    With ``p = P(N = n)``, ``p <= P(N >= n) <= p / (1 - mu / (n + 1))`` (the terms after ``n``
+    fall at least geometrically by ``mu / (n + 1)``; Johnson, Kemp and Kotz, Univariate
+    Discrete Distributions, 3rd ed., ch. 4). ``log p`` is computed to far better than the
+    ``1e-6`` kept on either side of ``log alpha``, so where a bound decides, the tail computed
+    by ``special.gammainc`` (relative error far below ``1e-6``) decides alike; elsewhere (and
+    for counts or means above ``1e7``, or not whole) the tail is computed.
+    """
+    n = np.asarray(n, np.float64)
+    mu = np.asarray(mu, np.float64)
+    out = np.zeros(n.shape, bool)
+    boundable = (n < 1e7) & (mu < 1e7) & (mu > 1e-300) & (n >= 1.0) & (n > mu) & (n == np.floor(n))
+    log_alpha = float(np.log(alpha))
+    nb, mb = n[boundable], mu[boundable]
+    log_p = nb * np.log(mb) - mb - special.gammaln(nb + 1.0)
+    probable = log_p > log_alpha + 1e-6
+    improbable = (log_p - np.log1p(-mb / (nb + 1.0))) < log_alpha - 1e-6
+    undecided = ~boundable
+    undecided[boundable] = ~(probable | improbable)
+    out[boundable] = improbable & ~probable
+    out[undecided] = poisson_upper_tail(n[undecided], mu[undecided]) < alpha
+    return out
 
 
 def local_background(image, *, mask=None, modulation=None, return_regions: bool = False,

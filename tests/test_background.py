@@ -296,3 +296,18 @@ def test_lower_tail_scale_equals_the_bisection_with_np_quantile(seed):
                 got = lower_tail_scale(image, pattern, keep, window=window, quantile=quantile)
                 want = _lower_tail_scale_plain(image, pattern, keep, window=window, quantile=quantile)
                 assert got == want, (size, window, quantile)
+
+
+def test_improbable_windows_equal_the_incomplete_gamma_everywhere():
+    """The bounded test against ``scipy.special.gammainc`` (the Poisson upper tail, Abramowitz &
+    Stegun 6.5.2, 26.4.21) on whole counts near and far from the cut, means from 1e-6 to 1e6."""
+    from plexwash.qc.background import _tail_below, poisson_upper_tail
+
+    rng = np.random.default_rng(21)
+    mu = 10.0 ** rng.uniform(-6, 6, 200_000)
+    spread = rng.choice([0.5, 2.0, 4.0, 8.0, 30.0], mu.size)
+    n = np.floor(mu + 1.0 + np.abs(rng.normal(0, spread * np.sqrt(mu) + 1.0)))
+    for alpha in (1e-12, 1e-6, 1e-3, 0.05, 0.4):
+        want = poisson_upper_tail(n, mu) < alpha
+        np.testing.assert_array_equal(_tail_below(n, mu, alpha), want)
+        assert 0 < want.sum() < want.size
