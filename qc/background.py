@@ -48,6 +48,7 @@ import numpy as np
 from scipy import ndimage, special
 from skimage.filters import threshold_otsu
 
+from ._tail_search import TailSearch, tail_below
 from .errors import InputError
 from .settings import setting
 
@@ -222,37 +223,10 @@ def likely_signal(image: np.ndarray, rate, *, box: int, alpha: float) -> np.ndar
     # 1994): only windows above their mean can be improbable, the tail is computed there
     above = sums > mean
     improbable = np.zeros(sums.shape, bool)
-    improbable[above] = _tail_below(sums[above], mean[above], alpha)
+    improbable[above] = tail_below(sums[above], mean[above], alpha, poisson_upper_tail)
     if box > 1:
         improbable = ndimage.maximum_filter(improbable, size=box, mode="constant")
     return improbable
-
-
-def _tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarray:
-    """``poisson_upper_tail(n, mu) < alpha`` for whole counts ``n > mu > 0``, the incomplete gamma
-    function evaluated only where two bounds on the tail do not decide.
-
-    With ``p = P(N = n)``, ``p <= P(N >= n) <= p / (1 - mu / (n + 1))`` (the terms after ``n``
-    fall at least geometrically by ``mu / (n + 1)``; Johnson, Kemp and Kotz, Univariate
-    Discrete Distributions, 3rd ed., ch. 4). ``log p`` is computed to far better than the
-    ``1e-6`` kept on either side of ``log alpha``, so where a bound decides, the tail computed
-    by ``special.gammainc`` (relative error far below ``1e-6``) decides alike; elsewhere (and
-    for counts or means above ``1e7``, or not whole) the tail is computed.
-    """
-    n = np.asarray(n, np.float64)
-    mu = np.asarray(mu, np.float64)
-    out = np.zeros(n.shape, bool)
-    boundable = (n < 1e7) & (mu < 1e7) & (mu > 1e-300) & (n >= 1.0) & (n > mu) & (n == np.floor(n))
-    log_alpha = float(np.log(alpha))
-    nb, mb = n[boundable], mu[boundable]
-    log_p = nb * np.log(mb) - mb - special.gammaln(nb + 1.0)
-    probable = log_p > log_alpha + 1e-6
-    improbable = (log_p - np.log1p(-mb / (nb + 1.0))) < log_alpha - 1e-6
-    undecided = ~boundable
-    undecided[boundable] = ~(probable | improbable)
-    out[boundable] = improbable & ~probable
-    out[undecided] = poisson_upper_tail(n[undecided], mu[undecided]) < alpha
-    return out
 
 
 def local_background(image, *, mask=None, modulation=None, return_regions: bool = False,
@@ -344,14 +318,14 @@ def lower_tail_scale(image, pattern, keep, *, window: int, quantile: float) -> f
     n, m = counts[sample], weight[sample]
     target = float(special.ndtri(quantile))
     low, high = np.log(1e-9), np.log(max(float(n.sum() / m.sum()), 1e-9) * 10.0)
-    search = _TailSearch(n, m, quantile) if _TailSearch.usable(n, m) else None
+    search = TailSearch(n, m, quantile) if TailSearch.usable(n, m) else None
     for step in range(32):  # brackets e^-21 .. 10x the mean: 32 halvings leave < 1e-8 in log s
         mid = 0.5 * (low + high)
         s = np.exp(mid)
         if search is None:
             above = np.quantile((n - s * m) / np.sqrt(s * m), quantile) > target
         else:
-            if step >= _TailSearch.FIRST_NARROWING and step % 2 == 0:
+            if step >= TailSearch.FIRST_NARROWING and step % 2 == 0:
                 search.narrow(np.exp(low), np.exp(high))
             above = search.above(s, target)
         if above:
@@ -359,82 +333,6 @@ def lower_tail_scale(image, pattern, keep, *, window: int, quantile: float) -> f
         else:
             high = mid
     return float(np.exp(0.5 * (low + high)))
-
-
-class _TailSearch:
-    """``np.quantile((n - s m) / sqrt(s m), q) > target`` for the bisection of
-    :func:`lower_tail_scale`, decided exactly and without sorting where it can be.
-
-    The quantile is numpy's default (linear) one: order statistics ``j = floor((N - 1) q)`` and
-    ``j + 1`` interpolated as ``numpy.lib._function_base_impl._lerp`` does, and the result lies
-    between them. So when at most ``j`` values are ``<= target`` the quantile is above it, when
-    more than ``j + 1`` are it is not, and only otherwise are both order statistics selected and
-    interpolated, with numpy's arithmetic. Each value is computed by the same elementwise
-    operations as on the whole array, so the decisions equal numpy's.
-
-    The values, count and selection of a step are one compiled loop (``steps._search_kernels.tail_decision``:
-    the same operations, element by element, as numpy's). :meth:`narrow` drops the values that cannot be either order statistic while ``s`` stays in
-    the bracket: each value falls as ``s`` grows (``n / sqrt(s m) - sqrt(s m)``), so between the
-    bracket's ends it lies between its values there (widened by 1e-9 of its size, far beyond
-    rounding); one whose upper end is below every possible ``j``-th value is counted below and
-    dropped, one whose lower end is above every possible ``(j + 1)``-th value dropped.
-    """
-
-    #: The bisection step from which the candidates are narrowed (every other step): before,
-    #: the bracket spans too wide a range of scales for it to drop much.
-    FIRST_NARROWING = 6
-    #: Fewer values are not narrowed (the compiled step costs less than the narrowing).
-    NARROW_ABOVE = 4096
-
-    @staticmethod
-    def usable(n: np.ndarray, m: np.ndarray) -> bool:
-        """Finite counts and weights bounded away from 0 (every value finite, no NaN)."""
-        return bool(np.isfinite(n).all() and np.isfinite(m).all() and m.min() > 1e-200)
-
-    def __init__(self, n: np.ndarray, m: np.ndarray, quantile: float):
-        self.n, self.m = n, m
-        virtual = (n.size - 1) * quantile
-        if virtual >= n.size - 1:  # numpy takes the largest value
-            self.first = self.second = n.size - 1
-            self.gamma = 0.0
-        else:
-            below = np.floor(virtual)
-            self.first, self.second = int(below), int(below) + 1
-            self.gamma = float(virtual - below)
-        self.dropped = 0  # values dropped below the order statistics
-        self._buffer = None
-        from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
-
-        self._kernels = _search_kernels
-
-    def _values(self, s):  # as tail_decision makes them
-        return (self.n - s * self.m) / np.sqrt(s * self.m)
-
-    def above(self, s, target: float) -> bool:
-        first, second = self.first - self.dropped, self.second - self.dropped
-        if self._buffer is None or self._buffer.size < self.n.size:
-            self._buffer = np.empty(self.n.size, np.float64)
-        code, a, b = self._kernels.tail_decision(self.n, self.m, float(s), float(target), first, second, self._buffer)
-        if code < 2:
-            return code == 1
-        diff = b - a
-        value = b - diff * (1 - self.gamma) if self.gamma >= 0.5 else a + diff * self.gamma
-        return value > target
-
-    def narrow(self, s_low, s_high) -> None:
-        if self.n.size <= self.NARROW_ABOVE:
-            return
-        upper_end, lower_end = self._values(s_low), self._values(s_high)
-        slack = 1e-9 * (np.abs(upper_end) + np.abs(lower_end) + np.sqrt(s_high * self.m) + 1.0)
-        upper_end += slack
-        lower_end -= slack
-        first, second = self.first - self.dropped, self.second - self.dropped
-        lowest_first = np.partition(lower_end, first)[first]
-        highest_second = np.partition(upper_end, second)[second]
-        below = upper_end < lowest_first
-        keep = ~below & (lower_end <= highest_second)
-        self.dropped += int(np.count_nonzero(below))
-        self.n, self.m = self.n[keep], self.m[keep]
 
 
 def _regions(shape, mask) -> tuple[np.ndarray, np.ndarray]:

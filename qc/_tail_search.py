@@ -1,0 +1,116 @@
+"""Exact shortcuts of the background model's tests (:mod:`plexwash.qc.background`): the same
+decisions as the plain computations, made with less of them.
+
+- :class:`TailSearch`: one step of the lower-tail scale bisection, decided by counting and,
+  only when that cannot decide, by numpy's own quantile arithmetic.
+- :func:`tail_below`: the Poisson tail of a window compared with its cut, the incomplete gamma
+  function evaluated only where two bounds do not decide.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import special
+
+
+def tail_below(n: np.ndarray, mu: np.ndarray, alpha: float, upper_tail) -> np.ndarray:
+    """``upper_tail(n, mu) < alpha`` (``upper_tail``: :func:`plexwash.qc.background.poisson_upper_tail`) for whole counts ``n > mu > 0``, the incomplete gamma
+    function evaluated only where two bounds on the tail do not decide.
+
+    With ``p = P(N = n)``, ``p <= P(N >= n) <= p / (1 - mu / (n + 1))`` (the terms after ``n``
+    fall at least geometrically by ``mu / (n + 1)``; Johnson, Kemp and Kotz, Univariate
+    Discrete Distributions, 3rd ed., ch. 4). ``log p`` is computed to far better than the
+    ``1e-6`` kept on either side of ``log alpha``, so where a bound decides, the tail computed
+    by ``special.gammainc`` (relative error far below ``1e-6``) decides alike; elsewhere (and
+    for counts or means above ``1e7``, or not whole) the tail is computed.
+    """
+    n = np.asarray(n, np.float64)
+    mu = np.asarray(mu, np.float64)
+    out = np.zeros(n.shape, bool)
+    boundable = (n < 1e7) & (mu < 1e7) & (mu > 1e-300) & (n >= 1.0) & (n > mu) & (n == np.floor(n))
+    log_alpha = float(np.log(alpha))
+    nb, mb = n[boundable], mu[boundable]
+    log_p = nb * np.log(mb) - mb - special.gammaln(nb + 1.0)
+    probable = log_p > log_alpha + 1e-6
+    improbable = (log_p - np.log1p(-mb / (nb + 1.0))) < log_alpha - 1e-6
+    undecided = ~boundable
+    undecided[boundable] = ~(probable | improbable)
+    out[boundable] = improbable & ~probable
+    out[undecided] = upper_tail(n[undecided], mu[undecided]) < alpha
+    return out
+
+
+class TailSearch:
+    """``np.quantile((n - s m) / sqrt(s m), q) > target`` for the bisection of
+    :func:`plexwash.qc.background.lower_tail_scale`, decided exactly and without sorting where it can be.
+
+    The quantile is numpy's default (linear) one: order statistics ``j = floor((N - 1) q)`` and
+    ``j + 1`` interpolated as ``numpy.lib._function_base_impl._lerp`` does, and the result lies
+    between them. So when at most ``j`` values are ``<= target`` the quantile is above it, when
+    more than ``j + 1`` are it is not, and only otherwise are both order statistics selected and
+    interpolated, with numpy's arithmetic. Each value is computed by the same elementwise
+    operations as on the whole array, so the decisions equal numpy's.
+
+    The values, count and selection of a step are one compiled loop (``steps._search_kernels.tail_decision``:
+    the same operations, element by element, as numpy's). :meth:`narrow` drops the values that cannot be either order statistic while ``s`` stays in
+    the bracket: each value falls as ``s`` grows (``n / sqrt(s m) - sqrt(s m)``), so between the
+    bracket's ends it lies between its values there (widened by 1e-9 of its size, far beyond
+    rounding); one whose upper end is below every possible ``j``-th value is counted below and
+    dropped, one whose lower end is above every possible ``(j + 1)``-th value dropped.
+    """
+
+    #: The bisection step from which the candidates are narrowed (every other step): before,
+    #: the bracket spans too wide a range of scales for it to drop much.
+    FIRST_NARROWING = 6
+    #: Fewer values are not narrowed (the compiled step costs less than the narrowing).
+    NARROW_ABOVE = 4096
+
+    @staticmethod
+    def usable(n: np.ndarray, m: np.ndarray) -> bool:
+        """Finite counts and weights bounded away from 0 (every value finite, no NaN)."""
+        return bool(np.isfinite(n).all() and np.isfinite(m).all() and m.min() > 1e-200)
+
+    def __init__(self, n: np.ndarray, m: np.ndarray, quantile: float):
+        self.n, self.m = n, m
+        virtual = (n.size - 1) * quantile
+        if virtual >= n.size - 1:  # numpy takes the largest value
+            self.first = self.second = n.size - 1
+            self.gamma = 0.0
+        else:
+            below = np.floor(virtual)
+            self.first, self.second = int(below), int(below) + 1
+            self.gamma = float(virtual - below)
+        self.dropped = 0  # values dropped below the order statistics
+        self._buffer = None
+        from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
+
+        self._kernels = _search_kernels
+
+    def _values(self, s):  # as tail_decision makes them
+        return (self.n - s * self.m) / np.sqrt(s * self.m)
+
+    def above(self, s, target: float) -> bool:
+        first, second = self.first - self.dropped, self.second - self.dropped
+        if self._buffer is None or self._buffer.size < self.n.size:
+            self._buffer = np.empty(self.n.size, np.float64)
+        code, a, b = self._kernels.tail_decision(self.n, self.m, float(s), float(target), first, second, self._buffer)
+        if code < 2:
+            return code == 1
+        diff = b - a
+        value = b - diff * (1 - self.gamma) if self.gamma >= 0.5 else a + diff * self.gamma
+        return value > target
+
+    def narrow(self, s_low, s_high) -> None:
+        if self.n.size <= self.NARROW_ABOVE:
+            return
+        upper_end, lower_end = self._values(s_low), self._values(s_high)
+        slack = 1e-9 * (np.abs(upper_end) + np.abs(lower_end) + np.sqrt(s_high * self.m) + 1.0)
+        upper_end += slack
+        lower_end -= slack
+        first, second = self.first - self.dropped, self.second - self.dropped
+        lowest_first = np.partition(lower_end, first)[first]
+        highest_second = np.partition(upper_end, second)[second]
+        below = upper_end < lowest_first
+        keep = ~below & (lower_end <= highest_second)
+        self.dropped += int(np.count_nonzero(below))
+        self.n, self.m = self.n[keep], self.m[keep]
