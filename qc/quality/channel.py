@@ -13,7 +13,7 @@ from scipy import ndimage
 from skimage.filters import threshold_otsu
 
 from ..errors import InputError
-from ._kernels import lines_beside, split_mean_std, suppress_spikes, uniform_histogram
+from ._kernels import split_mean_std, suppress_spikes, uniform_histogram
 from .excess import fit_model, measure_excess_area
 from .settings import DEFAULT_QUALITY, QualitySettings
 
@@ -91,8 +91,6 @@ class ChannelSummary:
     """What a stack measurement keeps of one channel once its pixels are released."""
 
     bins: np.ndarray  # (ny, nx) spike-free sums in bins, data units
-    rows: np.ndarray  # (3, segments, Y) sums of the stripe test, see _line_sums
-    columns: np.ndarray  # (3, segments, X)
 
 
 def region_snr(values) -> float:
@@ -267,10 +265,7 @@ def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name,
         saturated_fraction=saturated, saturation_level=level, spikes=spikes,
         excess_area=excess_area, background_rate=float(coef[0]),
         ghost_sources=(), flags=flags)
-    # the stripe sums of every channel are kept until the end: float32 halves them
-    summary = ChannelSummary(bins=bins, rows=_line_sums(clean).astype(np.float32),
-                       columns=_line_sums(np.ascontiguousarray(clean.T)).astype(np.float32))
-    return cq, summary
+    return cq, ChannelSummary(bins=bins)
 
 
 def _mean_std(values: np.ndarray) -> tuple[float, float]:
@@ -367,36 +362,3 @@ def _bin_sums(values: np.ndarray, size: int) -> np.ndarray:
         band = values[i * size:(i + 1) * size].sum(axis=0, dtype=np.float64)
         out[i] = np.add.reduceat(band, columns)
     return out
-
-
-def _line_sums(image: np.ndarray) -> np.ndarray:
-    """Per row of ``image``: the sums the stripe test needs, shape (3, segments, rows).
-
-    With ``a`` the row, ``nb`` the mean of the rows next to it (distance 1) and
-    ``w`` the mean of the rows at distance 2 (one side only at the image edges),
-    the row is cut into :func:`_segments` equal parts and each part gives
-    ``sum(a (w + m))``, ``sum(nb (w + m))`` and ``sum(nb)``, ``m`` being the part's
-    mean of ``w``.
-    """
-    def beside(part, d):
-        total = np.empty(part.shape)
-        lines_beside(part, d, total)
-        return total
-
-    edges = _segments(image.shape[1])
-    out = np.empty((3, len(edges) - 1, image.shape[0]))
-    for k, (start, stop) in enumerate(zip(edges[:-1], edges[1:], strict=True)):
-        part = image[:, start:stop]  # one part at a time keeps the temporaries small
-        weight = beside(part, 2)
-        weight += weight.mean(axis=1, keepdims=True)
-        near = beside(part, 1)
-        out[0, k] = np.einsum("ij,ij->i", part, weight)
-        out[1, k] = np.einsum("ij,ij->i", near, weight)
-        out[2, k] = near.sum(axis=1)
-    return out
-
-
-def _segments(length: int) -> np.ndarray:
-    """Edges of the parts a line is cut into: about 64 px or more each, at most 4."""
-    n = int(min(4, max(1, length // 64)))
-    return np.linspace(0, length, n + 1).astype(int)
