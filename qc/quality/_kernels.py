@@ -128,37 +128,6 @@ def split_mean_std(values, mask):
 
 
 @nb.njit(cache=True, nogil=True)
-def poisson_tail_screen(n, mu, log_alpha, out):
-    """Sort bins for the test ``P(N >= n) < alpha``, N ~ Poisson(mu), by cheap bounds.
-
-    ``out[i]`` becomes 0 (not below: ``n <= mu + sqrt(mu)`` or the series lower bound is
-    at least ``alpha``), 1 (below: the Chernoff upper bound is under ``alpha``) or 2
-    (undecided: the caller asks ``gammainc``). See ``quality._poisson_tail_below``.
-    """
-    # Bright bins, decided without logarithms: with r = n / mu >= 8, the Chernoff exponent
-    # n log(n / mu) - n + mu = mu (r log r - r + 1) >= mu (r + 1) = n + mu (r log r >= 2r for
-    # r >= e^2), so n + mu above -log(alpha) (with a margin) puts the bound below alpha.
-    bright = -log_alpha + 1e-6
-    for i in range(n.size):
-        ni = n[i]
-        mi = mu[i]
-        if not ni > mi + np.sqrt(mi):
-            out[i] = 0
-            continue
-        if ni >= 8.0 * mi and ni + mi > bright:
-            out[i] = 1
-            continue
-        log_mu = np.log(mi)
-        upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
-        if upper < log_alpha - 1e-9:
-            out[i] = 1
-            continue
-        series = 1.0 + mi / (ni + 1.0) * (1.0 + mi / (ni + 2.0))
-        lower = ni * log_mu - mi - math.lgamma(ni + 1.0) + np.log(series)
-        out[i] = 0 if lower >= log_alpha + 1e-9 else 2
-
-
-@nb.njit(cache=True, nogil=True)
 def lines_beside(part, d, out):
     """``out[y]`` = the mean of rows ``y - d`` and ``y + d`` of ``part`` (one of them at the edges).
 
@@ -208,3 +177,71 @@ def uniform_histogram(values, edges, out):
         while i < n_bins - 1 and v >= edges[i + 1]:
             i += 1
         out[i] += 1
+
+
+#: Most series terms :func:`poisson_tail_verdicts` sums before it leaves a bin to gammainc.
+SERIES_TERMS = 400
+
+
+@nb.njit(cache=True, nogil=True)
+def poisson_tail_verdicts(n, mu, log_alpha, out, hard):
+    """``out[i] = P(N >= n[i]) < alpha`` for N ~ Poisson(mu[i]), where bounds decide it.
+
+    Cheap tests first: not below where ``n <= mu + sqrt(mu)``; below where ``n >= 8 mu``
+    and ``n + mu`` is above ``-log(alpha)`` (with ``r = n / mu >= 8``, the Chernoff exponent
+    ``n log(n / mu) - n + mu = mu (r log r - r + 1) >= mu (r + 1) = n + mu``, as ``r log r
+    >= 2 r`` for ``r >= e^2``), or where the Chernoff bound ``exp(-(n log(n / mu) - n +
+    mu))`` is under ``alpha``. A bin they leave undecided
+    (``mu + sqrt(mu) < n``, so ``mu / (n + k) < 1``) sums the series ``P(n, mu) = mu^n e^-mu
+    / Gamma(n + 1) * (1 + mu / (n + 1) + mu^2 / ((n + 1)(n + 2)) + ...)`` (Abramowitz &
+    Stegun 6.5.29) term by term: the partial sum is a lower bound and, the term ratios
+    falling with ``k``, the partial sum plus the next term's geometric tail an upper
+    bound. The bin is decided once a bound clears ``log(alpha)`` by a margin far above the
+    rounding of the logarithms (``1e-9`` plus ``1e-13`` of their magnitude). The indices
+    of the bins no bound decides (their ``P`` within that margin of ``alpha``, or the series
+    too slow) are written to ``hard``; their count is returned, for ``gammainc``.
+    """
+    bright = -log_alpha + 1e-6
+    count = 0
+    for i in range(n.size):
+        ni = n[i]
+        mi = mu[i]
+        if not ni > mi + np.sqrt(mi):
+            out[i] = False
+            continue
+        if ni >= 8.0 * mi and ni + mi > bright:
+            out[i] = True
+            continue
+        log_mu = np.log(mi)
+        upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
+        if upper < log_alpha - 1e-9:
+            out[i] = True
+            continue
+        lgam = math.lgamma(ni + 1.0)
+        prefactor = ni * log_mu - mi - lgam
+        margin = 1e-9 + 1e-13 * (abs(ni * log_mu) + mi + abs(lgam))
+        # the bounds on the sum itself: log comparisons without a logarithm per term
+        # (exp is good to its last bit, far inside the margin; an overflow to inf is the
+        # right answer: every finite sum is below such a limit)
+        at_least = np.exp(log_alpha + margin - prefactor)
+        below = np.exp(log_alpha - margin - prefactor)
+        term = 1.0
+        total = 1.0
+        decided = False
+        for k in range(1, SERIES_TERMS + 1):
+            term *= mi / (ni + k)
+            total += term
+            if total >= at_least:
+                out[i] = False
+                decided = True
+                break
+            ratio = mi / (ni + k + 1.0)
+            if total + term * ratio / (1.0 - ratio) < below:
+                out[i] = True
+                decided = True
+                break
+        if not decided:
+            out[i] = False
+            hard[count] = i
+            count += 1
+    return count

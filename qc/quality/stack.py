@@ -12,7 +12,7 @@ from .._arrays import channel_plane
 from .._threads import one_thread
 from ..errors import InputError
 from .channel import ChannelQuality, bin_areas, measure_prepared, prepare_channel
-from .excess import gram_matrix
+from .excess import WideDesign, gram_matrix
 from .ghosts import GhostModel, ghost_test
 from .regions import away_from_edges, binned_tissue, has_glass, roi_tissue, summed_channels
 from .settings import CHANNEL_FLAGS, DEFAULT_QUALITY, QualitySettings
@@ -198,7 +198,8 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
     # keeps a threaded BLAS from fighting other work for the cores.
     with one_thread("blas"):
         model = GhostModel(design=design, gram=gram_matrix(design), n_background=k,
-                           shape=areas.shape, names=names, matrix=matrix)
+                           shape=areas.shape, names=names, matrix=matrix,
+                           wide=WideDesign.of(design) if matrix is None else None)
         results = _judge_with_ghosts(results, model, per_channel, threads=threads)
     if reference is not None:
         results = [_inherit_empty(cq, ref) for cq, ref in zip(results, reference.channels,
