@@ -245,3 +245,65 @@ def poisson_tail_verdicts(n, mu, log_alpha, out, hard):
             hard[count] = i
             count += 1
     return count
+
+
+@nb.njit(cache=True, nogil=True, inline="always")
+def _order_key(v, is_float):
+    """An unsigned key that orders like the value (IEEE bits of a float32, flipped)."""
+    key = np.uint32(v)
+    if is_float:
+        key = ~key if key & np.uint32(0x80000000) else key | np.uint32(0x80000000)
+    return key
+
+
+@nb.njit(cache=True, nogil=True)
+def order_keys(values, is_float, ranks, out):
+    """``out[j]`` = the key of the ``ranks[j]``-th smallest value (0-based), by radix selection.
+
+    ``values`` (1-D) are float32 bits (``is_float``; seen as uint32) or unsigned integers of
+    up to 32 bits. Two passes of 16-bit histograms: the top halves of the keys, then the low
+    halves of the keys whose top half holds a wanted rank. Returns False, leaving ``out``,
+    where a float is NaN or a negative zero (which order statistic such a value is cannot be
+    told apart from +0.0 by its key alone: the caller sorts those itself).
+    """
+    size = values.size
+    counts = np.zeros(65536, np.int64)
+    for i in range(size):
+        bits = np.uint32(values[i])
+        if is_float and ((bits & np.uint32(0x7F800000)) == np.uint32(0x7F800000)
+                         and (bits & np.uint32(0x007FFFFF)) != 0 or bits == np.uint32(0x80000000)):
+            return False
+        counts[_order_key(values[i], is_float) >> np.uint32(16)] += 1
+    n_ranks = ranks.size
+    top = np.empty(n_ranks, np.int64)
+    before = np.empty(n_ranks, np.int64)
+    for j in range(n_ranks):
+        seen = 0
+        for b in range(65536):
+            if seen + counts[b] > ranks[j]:
+                top[j] = b
+                before[j] = seen
+                break
+            seen += counts[b]
+    low = np.zeros((n_ranks, 65536), np.int64)
+    for i in range(size):
+        key = _order_key(values[i], is_float)
+        high = np.int64(key >> np.uint32(16))
+        for j in range(n_ranks):
+            if top[j] == high:
+                low[j, np.int64(key & np.uint32(0xFFFF))] += 1
+                break
+    for j in range(n_ranks):
+        # the rank's histogram is that of the first rank sharing its top half
+        first = j
+        for m in range(j):
+            if top[m] == top[j]:
+                first = m
+                break
+        seen = before[j]
+        for b in range(65536):
+            if seen + low[first, b] > ranks[j]:
+                out[j] = (np.uint32(top[j]) << np.uint32(16)) | np.uint32(b)
+                break
+            seen += low[first, b]
+    return True

@@ -15,6 +15,7 @@ from skimage.filters import threshold_otsu
 from ..errors import InputError
 from ._kernels import split_mean_std, suppress_spikes, uniform_histogram
 from .excess import fit_model, measure_excess_area
+from .order import percentile
 from .settings import DEFAULT_QUALITY, QualitySettings
 
 
@@ -199,7 +200,7 @@ def prepare_channel(image, settings: QualitySettings, name, *, dtype=None) -> di
         raise InputError(key, "channel contains NaN or infinite values")
 
     # statistics of the values as given, before the raw copy is released
-    p50, p99 = (float(v) for v in np.percentile(raw, [50.0, 99.0]))
+    p50, p99 = (float(v) for v in percentile(raw, [50.0, 99.0]))
     maximum = float(raw.max())
     zero_fraction = float(np.count_nonzero(raw == 0)) / raw.size
     clean, spikes = _suppress_spikes(raw, settings.spike_ratio, settings.spike_excess)

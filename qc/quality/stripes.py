@@ -36,6 +36,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import special, stats
 
+from .order import percentile
 from .settings import QualitySettings
 
 #: Probability of a line's counts under the null (no drop): one line against two.
@@ -63,7 +64,7 @@ def loud_pixels(plane: np.ndarray) -> np.ndarray:
     [[0, 0, 0, 0, 0, 0, 1, 2]]
     """
     plane = np.asarray(plane)
-    low = plane[plane <= np.percentile(plane, 50.0)]
+    low = plane[plane <= percentile(plane, 50.0)]
     rate = float(low.mean()) if low.size else 0.0
     out = np.zeros(plane.shape, np.int8)
     for least, tail, value in ((2.0, LOUD_TAIL, 1), (4.0, BRIGHT_TAIL, 2)):

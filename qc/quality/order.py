@@ -1,0 +1,81 @@
+"""Percentiles of a channel without sorting it: ``numpy.percentile``'s answer, bit for bit.
+
+``numpy.percentile`` (default ``linear`` method) partitions a copy of the whole channel to
+find the one or two order statistics around each percentile. :func:`percentile` finds them
+by radix selection over the values' keys (:func:`._kernels.order_keys`: two counting passes,
+no copy) and then interpolates between them with numpy's own steps and types, so the value
+is the same to the last bit (tested against ``numpy.percentile``). Small channels, other
+pixel types and channels holding NaN or a negative zero are left to numpy itself.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ._kernels import order_keys
+
+#: Channels with fewer values than this are handed to ``numpy.percentile`` (its partition
+#: is quick there, and the selection's histograms would cost more than it).
+SELECT_SIZE = 1 << 16
+
+_SELECTED = (np.dtype(np.float32), np.dtype(np.uint8), np.dtype(np.uint16), np.dtype(np.uint32))
+
+
+def percentile(values, q):
+    """``numpy.percentile(values, q)`` over all values (``q`` a number or a list of them).
+
+    Examples
+    --------
+    >>> values = np.arange(100_000, dtype=np.float32)[::-1]
+    >>> float(percentile(values, 50.0)), percentile(values, [50.0, 99.0]).tolist()
+    (49999.5, [49999.5, 98999.01])
+    """
+    arr = np.asarray(values)
+    if arr.size < SELECT_SIZE or arr.dtype not in _SELECTED:
+        return np.percentile(arr, q)
+    flat = np.ascontiguousarray(arr).reshape(-1)
+    is_float = arr.dtype == np.float32
+    # numpy's steps (numpy.lib._function_base_impl: percentile, _quantile, _get_indexes)
+    weak = type(q) in (int, float)
+    quantiles = np.true_divide(q, 100, out=...)
+    n = flat.size
+    virtual = np.asanyarray((n - 1) * quantiles)
+    previous = np.floor(virtual, out=...)
+    following = np.add(previous, 1, out=...)
+    above = virtual >= n - 1
+    if above.any():
+        previous[above] = -1
+        following[above] = -1
+    previous, following = previous.astype(np.intp), following.astype(np.intp)
+    ranks = np.unique(np.concatenate([previous.ravel(), following.ravel()]) % n)
+    keys = np.empty(ranks.size, np.uint32)
+    if not order_keys(flat.view(np.uint32) if is_float else flat, is_float, ranks.astype(np.int64),
+                      keys):
+        return np.percentile(arr, q)
+    if is_float:
+        bits = np.where(keys & np.uint32(0x80000000), keys ^ np.uint32(0x80000000), ~keys)
+        found = bits.astype(np.uint32).view(np.float32)
+    else:
+        found = keys.astype(arr.dtype)
+    at = dict(zip(ranks.tolist(), found, strict=True))
+
+    def take(index):
+        if index.ndim == 0:
+            return at[int(index) % n]
+        return np.array([at[i % n] for i in index.ravel().tolist()], arr.dtype).reshape(index.shape)
+
+    low, high = take(previous), take(following)
+    gamma = np.asanyarray(np.asanyarray(virtual - previous), dtype=virtual.dtype)
+    gamma = float(gamma) if weak else gamma.reshape(virtual.shape)
+    return _lerp(low, high, gamma)
+
+
+def _lerp(a, b, t):
+    """numpy's interpolation between the order statistics (``_lerp`` of numpy 2)."""
+    diff_b_a = b - a
+    lerp_interpolation = np.add(a, diff_b_a * t, out=...)
+    np.subtract(b, diff_b_a * (1 - t), out=lerp_interpolation, where=t >= 0.5, casting="unsafe",
+                dtype=type(lerp_interpolation.dtype))
+    if lerp_interpolation.ndim == 0:
+        lerp_interpolation = lerp_interpolation[()]
+    return lerp_interpolation

@@ -1,0 +1,61 @@
+"""Percentiles by radix selection equal numpy.percentile to the last bit (reference: numpy)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from plexwash.qc.quality.order import SELECT_SIZE, percentile
+
+
+def _same(a, b) -> bool:
+    return (type(a) is type(b) and np.asarray(a).dtype == np.asarray(b).dtype
+            and np.asarray(a).tobytes() == np.asarray(b).tobytes())
+
+
+def _channels(rng):
+    n = SELECT_SIZE + 17
+    yield rng.poisson(rng.uniform(0.01, 50), (n // 257 + 1, 257)).astype(np.float32)  # counts
+    yield rng.normal(0.0, 3.0, n).astype(np.float32)  # washed: negatives, fractions
+    yield rng.integers(0, 65535, n).astype(np.uint16)
+    yield rng.poisson(2.0, n).astype(np.uint16)
+    yield rng.integers(0, 2**32 - 1, n, dtype=np.uint64).astype(np.uint32)
+    yield rng.poisson(0.3, n).astype(np.uint8)
+    yield np.full(n, -1.5, np.float32)  # every value equal
+    sparse = (rng.gamma(0.5, 10.0, n) * (rng.random(n) < 0.5)).astype(np.float32)
+    sparse[rng.random(n) < 0.01] = np.inf
+    sparse[:5] = -np.inf
+    yield sparse
+    tiny = rng.normal(0, 1e-38, n).astype(np.float32)  # subnormals both sides of zero
+    tiny[tiny == 0] = 1e-45
+    yield tiny
+    yield rng.poisson(1.0, 1000).astype(np.float32)  # small: numpy's own path
+    yield rng.normal(size=n)  # float64: numpy's own path
+
+
+@pytest.mark.parametrize("q", [[50.0, 99.0], 50.0, [0.0, 100.0], 37.3, 100.0, 0.0, [99.0, 1.0, 99.0]])
+def test_percentile_is_numpys_bit_for_bit(q):
+    rng = np.random.default_rng(7)
+    with np.errstate(invalid="ignore"):  # inf - inf between two infinite order statistics
+        for values in _channels(rng):
+            assert _same(percentile(values, q), np.percentile(values, q)), values.dtype
+
+
+def test_nan_and_negative_zero_are_left_to_numpy():
+    rng = np.random.default_rng(8)
+    values = rng.poisson(1.0, SELECT_SIZE + 3).astype(np.float32)
+    zeros = values.copy()
+    zeros[zeros == 0] = -0.0  # which zero sits at the rank only numpy's partition says
+    assert _same(percentile(zeros, [50.0, 99.0]), np.percentile(zeros, [50.0, 99.0]))
+    values[10] = np.nan
+    assert np.isnan(percentile(values, [50.0, 99.0])).all()
+    assert np.isnan(np.percentile(values, [50.0, 99.0])).all()
+
+
+def test_every_rank_of_a_shuffled_range():
+    # the order statistics themselves: q = 100 k / (n - 1) lands on rank k exactly
+    rng = np.random.default_rng(9)
+    n = SELECT_SIZE + 1
+    values = rng.permutation(n).astype(np.float32) - 1000.0
+    for k in rng.integers(0, n, 40).tolist():
+        q = 100.0 * k / (n - 1)
+        assert _same(percentile(values, q), np.percentile(values, q))
