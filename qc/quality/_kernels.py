@@ -307,3 +307,50 @@ def order_keys(values, is_float, ranks, out):
                 break
             seen += low[first, b]
     return True
+
+
+@nb.njit(cache=True, nogil=True, inline="always")
+def _reflected(i, n):
+    """Index ``i`` of a line of ``n`` extended by reflection (``d c b a | a b c d | d c b a``)."""
+    period = 2 * n
+    i %= period
+    return i if i < n else period - 1 - i
+
+
+@nb.njit(cache=True, nogil=True)
+def gaussian_reflect(image, weights, work, out):
+    """``scipy.ndimage.gaussian_filter(image, sigma, mode="reflect", output=out)`` of a 2-D image.
+
+    ``weights`` are scipy's (odd length ``2 r + 1``, symmetric); ``work`` and ``out`` have the
+    image's shape and ``out``'s type (``out`` may be ``image``). The same steps as scipy's
+    ``correlate1d`` for a symmetric filter, axis 0 into ``work`` then axis 1 into ``out``: each
+    value is ``v * w[r]`` plus, from the outermost pair in, ``(v[-j] + v[+j]) * w[r - j]``, in
+    float64, stored in the output type between the axes; so the same bits.
+    """
+    height, width = image.shape
+    r = weights.size // 2
+    centre = weights[r]
+    row = np.empty(width)
+    for y in range(height):
+        for x in range(width):
+            row[x] = np.float64(image[y, x]) * centre
+        for j in range(-r, 0):
+            w = weights[r + j]
+            above = image[_reflected(y + j, height)]
+            below = image[_reflected(y - j, height)]
+            for x in range(width):
+                row[x] += (np.float64(above[x]) + np.float64(below[x])) * w
+        for x in range(width):
+            work[y, x] = row[x]
+    line = np.empty(width + 2 * r)
+    for y in range(height):
+        for i in range(width + 2 * r):
+            line[i] = work[y, _reflected(i - r, width)]
+        for x in range(width):
+            row[x] = line[x + r] * centre
+        for j in range(-r, 0):
+            w = weights[r + j]
+            for x in range(width):
+                row[x] += (line[x + r + j] + line[x + r - j]) * w
+        for x in range(width):
+            out[y, x] = row[x]

@@ -6,14 +6,14 @@ See the notes of :mod:`plexwash.qc.quality` (how a channel is measured).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 
 import numpy as np
-from scipy import ndimage
 from skimage.filters import threshold_otsu
 
 from ..errors import InputError
-from ._kernels import split_mean_std, suppress_spikes, uniform_histogram
+from ._kernels import gaussian_reflect, split_mean_std, suppress_spikes, uniform_histogram
 from .excess import fit_model, measure_excess_area
 from .order import percentile
 from .settings import DEFAULT_QUALITY, QualitySettings
@@ -310,16 +310,31 @@ def _split_image(clean: np.ndarray, sigma: float) -> np.ndarray:
 
     One new array of the copy's type (float32 for float32 and 16-bit data, whose values
     it holds exactly; the log is then good to float32 rounding, far finer than a bin of
-    Otsu's 256-bin histogram): the log and the smoothing work in place (the smoothing
-    is separable and scipy filters each line from a copy, as it does between its own
-    axes).
+    Otsu's 256-bin histogram): the log works in place, the smoothing
+    (:func:`._kernels.gaussian_reflect`, scipy's Gaussian filter to the bit) through one
+    working copy between its two axes.
     """
     logged = np.empty(clean.shape, clean.dtype)
     np.maximum(clean, 0.0, out=logged)
     np.log1p(logged, out=logged)
-    if sigma > 0:
-        ndimage.gaussian_filter(logged, sigma, mode="reflect", output=logged)
+    if sigma > 1e-15:  # scipy's gaussian_filter leaves an axis this narrow alone
+        # ndimage.gaussian_filter(logged, sigma, mode="reflect", output=logged), bit for bit
+        gaussian_reflect(logged, gaussian_weights(float(sigma)), np.empty_like(logged), logged)
     return logged
+
+
+@functools.lru_cache(maxsize=16)
+def gaussian_weights(sigma: float) -> np.ndarray:
+    """The weights ``scipy.ndimage.gaussian_filter`` correlates with (``truncate`` 4, order 0).
+
+    scipy's ``_gaussian_kernel1d(sigma, 0, int(4 * sigma + 0.5))`` reversed, by the same steps.
+    """
+    radius = int(4.0 * sigma + 0.5)
+    x = np.arange(-radius, radius + 1)
+    phi = np.exp(-0.5 / (sigma * sigma) * x ** 2)
+    weights = np.ascontiguousarray((phi / phi.sum())[::-1], dtype=np.float64)
+    weights.setflags(write=False)
+    return weights
 
 
 def _otsu(image: np.ndarray, low: float, high: float) -> float:
