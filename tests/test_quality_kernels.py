@@ -36,3 +36,30 @@ def test_split_image_equals_log_then_scipy_gaussian(sigma):
     if sigma > 0:
         expected = ndimage.gaussian_filter(expected, sigma, mode="reflect")  # scipy.ndimage
     assert _split_image(clean, sigma).tobytes() == expected.tobytes()
+
+
+def test_poisson_isf_equals_scipy_stats():
+    from plexwash.qc.quality.stripes import BRIGHT_TAIL, LOUD_TAIL, poisson_isf
+    from scipy import stats
+
+    rng = np.random.default_rng(5)
+    rates = np.r_[10.0 ** rng.uniform(-6, 4, 3000), [1e-300, 0.5, 1.0, 2.0, 7.0, 1e6]]
+    tails = np.array([LOUD_TAIL, BRIGHT_TAIL, 0.5, 1e-12])
+    for rate in rates.tolist():
+        expected = stats.poisson.isf(tails, rate)  # reference: scipy.stats.poisson.isf
+        assert poisson_isf(tails, rate).tobytes() == np.asarray(expected, np.float64).tobytes()
+
+
+def test_loud_pixels_mark_the_levels_as_the_masks_did():
+    from plexwash.qc.quality._kernels import mark_levels
+
+    rng = np.random.default_rng(6)
+    plane = rng.gamma(0.5, 8.0, (50, 70)).astype(np.float32)
+    plane[0, :5] = [np.nan, np.inf, -np.inf, 3.0, 9.0]
+    for loud, bright in ((2.0, 4.0), (5.0, 5.0), (3.0, 11.0)):
+        expected = np.zeros(plane.shape, np.int8)
+        expected[plane >= loud] = 1
+        expected[plane >= bright] = 2
+        out = np.empty(plane.shape, np.int8)
+        mark_levels(plane, loud, bright, out)
+        np.testing.assert_array_equal(out, expected)

@@ -354,3 +354,13 @@ def gaussian_reflect(image, weights, work, out):
                 row[x] += (line[x + r + j] + line[x + r - j]) * w
         for x in range(width):
             out[y, x] = row[x]
+
+
+@nb.njit(cache=True, nogil=True)
+def mark_levels(plane, loud, bright, out):
+    """``out`` (int8) = 2 where ``plane >= bright``, else 1 where ``plane >= loud``, else 0."""
+    height, width = plane.shape
+    for y in range(height):
+        for x in range(width):
+            v = plane[y, x]
+            out[y, x] = 2 if v >= bright else (1 if v >= loud else 0)

@@ -34,8 +34,9 @@ may miss the level while its neighbour drop-out lines are found. The first and l
 from __future__ import annotations
 
 import numpy as np
-from scipy import special, stats
+from scipy import special
 
+from ._kernels import mark_levels
 from .order import percentile
 from .settings import QualitySettings
 
@@ -66,13 +67,34 @@ def loud_pixels(plane: np.ndarray) -> np.ndarray:
     plane = np.asarray(plane)
     low = plane[plane <= percentile(plane, 50.0)]
     rate = float(low.mean()) if low.size else 0.0
-    out = np.zeros(plane.shape, np.int8)
-    for least, tail, value in ((2.0, LOUD_TAIL, 1), (4.0, BRIGHT_TAIL, 2)):
-        level = least
-        if rate > 0:
-            level = max(level, float(stats.poisson.isf(tail, rate)) + 1.0)
-        out[plane >= level] = value
+    loud, bright = 2.0, 4.0
+    if rate > 0:
+        above = poisson_isf(np.array([LOUD_TAIL, BRIGHT_TAIL]), rate)
+        loud, bright = max(loud, float(above[0]) + 1.0), max(bright, float(above[1]) + 1.0)
+    out = np.empty(plane.shape, np.int8)
+    if plane.ndim == 2:
+        mark_levels(plane, loud, bright, out)
+    else:
+        out[...] = 0
+        out[plane >= loud] = 1
+        out[plane >= bright] = 2
     return out
+
+
+def poisson_isf(tail: np.ndarray, rate: float) -> np.ndarray:
+    """``scipy.stats.poisson.isf(tail, rate)`` for tails in (0, 1) and a rate > 0, without its
+    argument handling: the same ufunc steps (``poisson._ppf(1 - tail, rate)``: ``pdtrik``, then
+    ``pdtr`` one count lower), so the same values.
+
+    Examples
+    --------
+    >>> poisson_isf(np.array([1e-3, 1e-6]), 2.0).tolist()
+    [8.0, 12.0]
+    """
+    q = 1.0 - np.asarray(tail, np.float64)
+    counts = np.ceil(special.pdtrik(q, rate))
+    below = np.maximum(counts - 1, 0)
+    return np.where(special.pdtr(below, rate) >= q, below, counts) + 0.0
 
 
 def quiet_keep(loud: np.ndarray, away=None) -> np.ndarray:
