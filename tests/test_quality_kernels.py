@@ -1,6 +1,7 @@
 """The quality measurements' compiled replacements give their references' bits.
 
-References: ``scipy.ndimage.gaussian_filter`` (mode ``reflect``).
+References: ``scipy.ndimage.gaussian_filter`` (mode ``reflect``), ``uniform_filter`` and
+``maximum_filter`` (mode ``constant``), ``scipy.stats.poisson.isf``.
 """
 
 from __future__ import annotations
@@ -63,3 +64,56 @@ def test_loud_pixels_mark_the_levels_as_the_masks_did():
         out = np.empty(plane.shape, np.int8)
         mark_levels(plane, loud, bright, out)
         np.testing.assert_array_equal(out, expected)
+
+
+def test_window_sums_equal_scipy_filters():
+    from plexwash.qc.quality.excess import window_sums
+
+    rng = np.random.default_rng(11)
+    for shape in [(3, 3), (3, 17), (4, 5), (24, 24), (63, 41), (252, 252)]:
+        for _ in range(4):
+            n = rng.poisson(rng.gamma(1.0, 30.0, shape)).astype(float) * rng.uniform(0.1, 3.0)
+            mu = rng.gamma(2.0, 10.0, shape)
+            area = np.full(shape, 16.0)
+            area[-1] = 4.0
+            area[:, -1] *= 0.5
+            # reference: scipy.ndimage.uniform_filter / maximum_filter, as the test used them
+            expected = [ndimage.uniform_filter(v, 3, mode="constant") * 9 for v in (n, mu, area)]
+            largest = ndimage.maximum_filter(n - mu, 3, mode="constant", cval=0.0)
+            expected[0] = expected[0] - np.maximum(largest, 0.0)
+            n_w, mu_w, a_w = window_sums(n, mu, area)
+            assert mu_w.tobytes() == expected[1].tobytes() and a_w.tobytes() == expected[2].tobytes()
+            assert np.array_equal(n_w, expected[0]), shape  # the same, up to a zero's sign
+    # not finite: scipy's own filters
+    n = np.full((4, 4), 5.0)
+    mu = np.full((4, 4), 1.0)
+    mu[1, 1] = np.inf
+    got = window_sums(n, mu, np.ones((4, 4)))
+    assert np.isinf(got[1]).any()
+
+
+def test_excess_area_equals_the_scipy_form():
+    from plexwash.qc.quality.excess import measure_excess_area, poisson_tail_below
+    from plexwash.qc.quality.settings import QualitySettings
+
+    def reference(n, mu, area, settings):  # the test as written with scipy.ndimage's filters
+        excess = poisson_tail_below(n, mu, settings.empty_alpha) & (
+            n - mu >= settings.min_excess * area)
+        n_w, mu_w, a_w = (ndimage.uniform_filter(v, 3, mode="constant") * 9 for v in (n, mu, area))
+        largest = ndimage.maximum_filter(n - mu, 3, mode="constant", cval=0.0)
+        n_w = n_w - np.maximum(largest, 0.0)
+        excess |= poisson_tail_below(n_w, mu_w, settings.empty_alpha) & (
+            n_w - mu_w >= settings.min_excess * a_w)
+        return float(area[excess].sum())
+
+    rng = np.random.default_rng(12)
+    settings = QualitySettings()
+    for trial in range(60):
+        shape = tuple(int(v) for v in rng.integers(3, 40, 2))
+        mu = rng.gamma(2.0, 3.0, shape)
+        n = rng.poisson(mu * rng.choice([1.0, 1.0, 2.5], shape)).astype(float)
+        n[rng.random(shape) < 0.1] = -0.0  # signed zeros: washed bins
+        mu[rng.random(shape) < 0.05] = 1.0 + trial % 2  # bins at the floor
+        area = np.full(shape, 16.0)
+        got = measure_excess_area(n, mu, area, settings)
+        assert got == reference(n, mu, area, settings)

@@ -364,3 +364,64 @@ def mark_levels(plane, loud, bright, out):
         for x in range(width):
             v = plane[y, x]
             out[y, x] = 2 if v >= bright else (1 if v >= loud else 0)
+
+
+@nb.njit(cache=True, nogil=True)
+def _box3_line(ext, length, out, stride_out, start):
+    """scipy's uniform filter of size 3 along one line padded with zeros (``ext`` holds the
+    line between two zeros): a running sum, each output the sum divided by 3."""
+    total = 0.0
+    total += ext[0]
+    total += ext[1]
+    total += ext[2]
+    out[start] = total / 3.0
+    for i in range(1, length):
+        total += ext[i + 2] - ext[i - 1]
+        out[start + i * stride_out] = total / 3.0
+
+
+@nb.njit(cache=True, nogil=True)
+def box3_sums(values, out):
+    """``out`` = ``scipy.ndimage.uniform_filter(values, 3, mode="constant") * 9`` (2-D float64).
+
+    scipy's steps: along axis 0 then axis 1, each line padded with one zero at each end, a
+    running sum of 3 values divided by 3, stored in float64 between the axes; then times 9.
+    """
+    height, width = values.shape
+    work = np.empty((height, width))
+    ext = np.empty(max(height, width) + 2)
+    flat_work = work.reshape(-1)
+    for x in range(width):
+        ext[0] = 0.0
+        for y in range(height):
+            ext[y + 1] = values[y, x]
+        ext[height + 1] = 0.0
+        _box3_line(ext, height, flat_work, width, x)
+    flat_out = out.reshape(-1)
+    for y in range(height):
+        ext[0] = 0.0
+        for x in range(width):
+            ext[x + 1] = work[y, x]
+        ext[width + 1] = 0.0
+        _box3_line(ext, width, flat_out, 1, y * width)
+    for y in range(height):
+        for x in range(width):
+            out[y, x] = out[y, x] * 9.0
+
+
+@nb.njit(cache=True, nogil=True)
+def largest_excess3(n, mu, out):
+    """``out`` = ``maximum_filter(n - mu, 3, mode="constant", cval=0.0)`` floored at 0 as
+    ``numpy.maximum(., 0.0)`` does (``a >= 0 or a is NaN ? a : 0``): the largest single-bin
+    excess of each 3 x 3 window, outside the grid counting as 0. For finite values; a zero's
+    sign may differ from scipy's (no comparison of the excess test sees it)."""
+    height, width = n.shape
+    for y in range(height):
+        for x in range(width):
+            top = 0.0 if (y == 0 or y == height - 1 or x == 0 or x == width - 1) else -np.inf
+            for yy in range(max(y - 1, 0), min(y + 2, height)):
+                for xx in range(max(x - 1, 0), min(x + 2, width)):
+                    d = n[yy, xx] - mu[yy, xx]
+                    if d > top:
+                        top = d
+            out[y, x] = top if (top >= 0.0 or np.isnan(top)) else 0.0

@@ -12,7 +12,7 @@ from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
 from ._bvls import bounded_lstsq
-from ._kernels import poisson_tail_verdicts
+from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
 from .settings import QualitySettings
 
 # Largest number of refits of the background / ghost model while leaving out bins.
@@ -273,9 +273,29 @@ def measure_excess_area(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
     excess = poisson_tail_below(n, mu, settings.empty_alpha) & (
         n - mu >= settings.min_excess * unit * area)
     if min(n.shape) >= 3:
-        n_w, mu_w, a_w = (ndimage.uniform_filter(v, 3, mode="constant") * 9 for v in (n, mu, area))
-        largest = ndimage.maximum_filter(n - mu, 3, mode="constant", cval=0.0)
-        n_w = n_w - np.maximum(largest, 0.0)
+        n_w, mu_w, a_w = window_sums(n, mu, area)
         excess |= poisson_tail_below(n_w, mu_w, settings.empty_alpha) & (
             n_w - mu_w >= settings.min_excess * unit * a_w)
     return float(area[excess].sum())
+
+
+def window_sums(n: np.ndarray, mu: np.ndarray, area: np.ndarray):
+    """The 3 x 3-bin sums of :func:`measure_excess_area`'s window test.
+
+    ``n_w`` (less the window's largest single-bin excess, floored at 0), ``mu_w`` and
+    ``a_w``: ``scipy.ndimage.uniform_filter(v, 3, mode="constant") * 9`` and
+    ``maximum_filter(n - mu, 3, mode="constant")``, by compiled kernels with scipy's steps
+    (:func:`._kernels.box3_sums`, :func:`._kernels.largest_excess3`); scipy itself where a
+    value is not finite.
+    """
+    n, mu, area = (np.ascontiguousarray(v, dtype=np.float64) for v in (n, mu, area))
+    if not (np.isfinite(n).all() and np.isfinite(mu).all() and np.isfinite(area).all()):
+        n_w, mu_w, a_w = (ndimage.uniform_filter(v, 3, mode="constant") * 9 for v in (n, mu, area))
+        largest = ndimage.maximum_filter(n - mu, 3, mode="constant", cval=0.0)
+        return n_w - np.maximum(largest, 0.0), mu_w, a_w
+    n_w, mu_w, a_w, largest = (np.empty(n.shape) for _ in range(4))
+    for v, out in ((n, n_w), (mu, mu_w), (area, a_w)):
+        box3_sums(v, out)
+    largest_excess3(n, mu, largest)
+    n_w -= largest
+    return n_w, mu_w, a_w
