@@ -28,8 +28,16 @@ def _channels(rng):
     tiny = rng.normal(0, 1e-38, n).astype(np.float32)  # subnormals both sides of zero
     tiny[tiny == 0] = 1e-45
     yield tiny
-    yield rng.poisson(1.0, 1000).astype(np.float32)  # small: numpy's own path
-    yield rng.normal(size=n)  # float64: numpy's own path
+    yield rng.poisson(1.0, 1000).astype(np.float32)  # small: numpy's partition, by us
+    yield rng.normal(size=n)  # float64: numpy's partition, by us
+    small = rng.poisson(0.5, (40, 31)).astype(np.float32)
+    small[small == 0] = -0.0  # signed zeros: the same partition call puts the same zero there
+    small[::7] = 0.0
+    yield small
+    yield rng.integers(-300, 300, 999).astype(np.int16)
+    yield rng.integers(-2**40, 2**40, 5000)
+    yield np.array([3.5], np.float32)
+    yield np.array([[7, 1]], np.uint16)
 
 
 @pytest.mark.parametrize("q", [[50.0, 99.0], 50.0, [0.0, 100.0], 37.3, 100.0, 0.0, [99.0, 1.0, 99.0]])

@@ -363,10 +363,18 @@ def _saturation_level(dtype, settings: QualitySettings, dtype_max) -> float | No
 
 
 def bin_areas(shape, size: int) -> np.ndarray:
-    """Pixels per size x size bin of an image of ``shape`` (``_bin_sums`` of ones)."""
-    rows = np.minimum(size, shape[0] - np.arange(0, shape[0], size))
-    columns = np.minimum(size, shape[1] - np.arange(0, shape[1], size))
-    return np.outer(rows, columns).astype(np.float64)
+    """Pixels per size x size bin of an image of ``shape`` (``_bin_sums`` of ones; read-only,
+    kept for the next channel of that shape)."""
+    return _bin_areas(int(shape[0]), int(shape[1]), int(size))
+
+
+@functools.lru_cache(maxsize=32)
+def _bin_areas(height: int, width: int, size: int) -> np.ndarray:
+    rows = np.minimum(size, height - np.arange(0, height, size))
+    columns = np.minimum(size, width - np.arange(0, width, size))
+    areas = np.outer(rows, columns).astype(np.float64)
+    areas.setflags(write=False)
+    return areas
 
 
 def _bin_sums(values: np.ndarray, size: int) -> np.ndarray:

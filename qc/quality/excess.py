@@ -169,7 +169,7 @@ def _moved_bins(g, h, design, target, left, joined):
     A side no bin moved to contributes zeros, so its product is not formed (``+ 0.0``
     keeps what adding those zeros does to a -0.0).
     """
-    index_out, index_in = np.flatnonzero(left), np.flatnonzero(joined)
+    index_out, index_in = left.nonzero()[0], joined.nonzero()[0]  # 1-D: np.flatnonzero
     if index_out.size:
         g_out, h_out = _partial_gram(design, target, index_out)
         g, h = g - g_out, h - h_out
@@ -206,7 +206,7 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
     coef = lower.astype(np.float64)
     diagonal = gram.diagonal()
     free = (upper > lower) & (diagonal > 0)
-    idx = np.flatnonzero(free)
+    idx = free.nonzero()[0]  # 1-D: np.flatnonzero
     if idx.size == 0:
         return coef
     if idx.size == 1 == free.size:
@@ -215,11 +215,12 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
         h = cross - 0.0
         g = gram.copy()
     else:
-        fixed = np.flatnonzero(~free)
-        h = cross[idx] - gram[np.ix_(idx, fixed)] @ coef[fixed]
-        g = gram[np.ix_(idx, idx)]
+        fixed = (~free).nonzero()[0]
+        rows = idx[:, None]  # gram[np.ix_(idx, ...)], without its Python steps
+        h = cross[idx] - gram[rows, fixed[None, :]] @ coef[fixed]
+        g = gram[rows, idx[None, :]]
     scale = np.sqrt(diagonal[idx])
-    g /= np.outer(scale, scale)
+    g /= scale[:, None] * scale  # np.outer(scale, scale)
     g.flat[::idx.size + 1] += 1e-9
     h = h / scale
     lo = lower[idx] * scale

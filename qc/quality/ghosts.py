@@ -91,8 +91,9 @@ def ghost_test(c: int, cq: ChannelQuality, model: GhostModel, settings: QualityS
     area = area.reshape(model.shape)
     excess_area = measure_excess_area(target.reshape(model.shape) * settings.counts_per_unit,
                                       mu.reshape(model.shape), area, settings)
-    ghost_sources = tuple(sorted(((names[i], float(v)) for i, v in zip(others, slopes, strict=True)
-                                  if v >= REPORTED_SLOPE), key=lambda p: -p[1]))
+    listed = (np.asarray(slopes) >= REPORTED_SLOPE).nonzero()[0].tolist()  # few of the C - 1
+    ghost_sources = tuple(sorted(((names[others[j]], float(slopes[j])) for j in listed),
+                                 key=lambda p: -p[1]))
     flags = channel_flags(excess_area, cq.sbr, cq.saturated_fraction, settings)
     # the rate reported is the tissue's (the last background row) when the ROI has glass
     return dataclasses.replace(cq, excess_area=excess_area, flags=flags,

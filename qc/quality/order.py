@@ -5,7 +5,8 @@ find the one or two order statistics around each percentile. :func:`percentile` 
 by radix selection over the values' keys (:func:`._kernels.order_keys`: two counting passes,
 no copy) and then interpolates between them with numpy's own steps and types, so the value
 is the same to the last bit (tested against ``numpy.percentile``). Small channels, other
-pixel types and channels holding NaN or a negative zero are left to numpy itself.
+pixel types and channels holding a negative zero are partitioned as numpy does (the same
+call on the same copy), without the layers of its Python; NaN goes to numpy itself.
 """
 
 from __future__ import annotations
@@ -31,10 +32,9 @@ def percentile(values, q):
     (49999.5, [49999.5, 98999.01])
     """
     arr = np.asarray(values)
-    if arr.size < SELECT_SIZE or arr.dtype not in _SELECTED:
+    if arr.dtype.kind not in "uif" or arr.size == 0:
         return np.percentile(arr, q)
     flat = np.ascontiguousarray(arr).reshape(-1)
-    is_float = arr.dtype == np.float32
     # numpy's steps (numpy.lib._function_base_impl: percentile, _quantile, _get_indexes)
     weak = type(q) in (int, float)
     quantiles = np.true_divide(q, 100, out=...)
@@ -47,27 +47,45 @@ def percentile(values, q):
         previous[above] = -1
         following[above] = -1
     previous, following = previous.astype(np.intp), following.astype(np.intp)
-    ranks = np.unique(np.concatenate([previous.ravel(), following.ravel()]) % n)
+    ranks = np.unique(np.concatenate(([0, -1], previous.ravel(), following.ravel())))
+    take = None
+    if n >= SELECT_SIZE and arr.dtype in _SELECTED:
+        take = _selected(flat, ranks % n)
+    if take is None:
+        # numpy's own partition of a copy, with numpy's ranks: the same arrangement
+        ordered = flat.copy()
+        ordered.partition(ranks)
+        if arr.dtype.kind == "f" and np.isnan(ordered[-1]):
+            return np.percentile(arr, q)
+        take = ordered.__getitem__
+    low, high = take(previous), take(following)
+    gamma = np.asanyarray(np.asanyarray(virtual - previous), dtype=virtual.dtype)
+    gamma = float(gamma) if weak else gamma.reshape(virtual.shape)
+    return _lerp(low, high, gamma)
+
+
+def _selected(flat: np.ndarray, ranks: np.ndarray):
+    """A function giving the order statistics of ``flat`` at (some of) ``ranks`` as numpy's
+    indexing of the partitioned copy would; None where the keys cannot tell (NaN, -0.0)."""
+    is_float = flat.dtype == np.float32
+    ranks = np.unique(ranks).astype(np.int64)
     keys = np.empty(ranks.size, np.uint32)
-    if not order_keys(flat.view(np.uint32) if is_float else flat, is_float, ranks.astype(np.int64),
-                      keys):
-        return np.percentile(arr, q)
+    if not order_keys(flat.view(np.uint32) if is_float else flat, is_float, ranks, keys):
+        return None
     if is_float:
         bits = np.where(keys & np.uint32(0x80000000), keys ^ np.uint32(0x80000000), ~keys)
         found = bits.astype(np.uint32).view(np.float32)
     else:
-        found = keys.astype(arr.dtype)
+        found = keys.astype(flat.dtype)
+    n = flat.size
     at = dict(zip(ranks.tolist(), found, strict=True))
 
     def take(index):
         if index.ndim == 0:
             return at[int(index) % n]
-        return np.array([at[i % n] for i in index.ravel().tolist()], arr.dtype).reshape(index.shape)
+        return np.array([at[i % n] for i in index.ravel().tolist()], flat.dtype).reshape(index.shape)
 
-    low, high = take(previous), take(following)
-    gamma = np.asanyarray(np.asanyarray(virtual - previous), dtype=virtual.dtype)
-    gamma = float(gamma) if weak else gamma.reshape(virtual.shape)
-    return _lerp(low, high, gamma)
+    return take
 
 
 def _lerp(a, b, t):

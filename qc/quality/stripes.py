@@ -33,6 +33,8 @@ may miss the level while its neighbour drop-out lines are found. The first and l
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 from scipy import special
 
@@ -120,8 +122,15 @@ def line_parts(length: int) -> np.ndarray:
     >>> line_parts(100).tolist(), line_parts(400).tolist()
     ([0, 100], [0, 100, 200, 300, 400])
     """
+    return _line_parts(int(length))
+
+
+@functools.lru_cache(maxsize=32)
+def _line_parts(length: int) -> np.ndarray:
     n = int(min(4, max(1, length // 64)))
-    return np.linspace(0, length, n + 1).astype(int)
+    edges = np.linspace(0, length, n + 1).astype(int)
+    edges.setflags(write=False)  # kept for the next channel
+    return edges
 
 
 def quiet_line_counts(image: np.ndarray, keep: np.ndarray) -> np.ndarray:
