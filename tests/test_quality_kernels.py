@@ -117,3 +117,28 @@ def test_excess_area_equals_the_scipy_form():
         area = np.full(shape, 16.0)
         got = measure_excess_area(n, mu, area, settings)
         assert got == reference(n, mu, area, settings)
+
+
+def test_quiet_line_counts_equal_numpys_sums():
+    from plexwash.qc.quality.stripes import line_parts, quiet_line_counts
+
+    def reference(image, keep):  # the numpy form the counts were written in
+        edges = line_parts(image.shape[1])
+        out = np.zeros((2, len(edges) - 1, image.shape[0]))
+        middle = keep[1:-1]
+        line = np.multiply(image[1:-1], middle, dtype=np.float64)
+        beside = np.add(image[:-2], image[2:], dtype=np.float64)
+        beside *= middle
+        out[0, :, 1:-1] = np.add.reduceat(line, edges[:-1], axis=1).T  # numpy's pairwise sums
+        out[1, :, 1:-1] = np.add.reduceat(beside, edges[:-1], axis=1).T
+        return out
+
+    rng = np.random.default_rng(13)
+    for shape in [(3, 1), (3, 9), (5, 64), (40, 130), (17, 257), (9, 1100), (300, 96)]:
+        for dtype in (np.float32, np.float64, np.uint16):
+            image = (rng.gamma(0.6, 9.0, shape) * 10 ** rng.uniform(-2, 2)).astype(dtype)
+            if dtype != np.uint16:
+                image[rng.random(shape) < 0.05] = -0.0  # signed zeros sum as numpy sums them
+            keep = rng.random(shape) < 0.8
+            got = quiet_line_counts(image, keep)
+            assert got.tobytes() == reference(image, keep).tobytes(), (shape, dtype)

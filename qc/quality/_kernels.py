@@ -425,3 +425,67 @@ def largest_excess3(n, mu, out):
                     if d > top:
                         top = d
             out[y, x] = top if (top >= 0.0 or np.isnan(top)) else 0.0
+
+
+@nb.njit(cache=True, nogil=True)
+def _pairwise_sum(a, start, n):
+    """numpy's pairwise sum of ``a[start:start + n]`` (float64; its ``pairwise_sum`` of a
+    contiguous run: eight running sums per block of up to 128, halves above)."""
+    if n < 8:
+        total = -0.0
+        for i in range(n):
+            total += a[start + i]
+        return total
+    if n <= 128:
+        r0 = a[start]
+        r1 = a[start + 1]
+        r2 = a[start + 2]
+        r3 = a[start + 3]
+        r4 = a[start + 4]
+        r5 = a[start + 5]
+        r6 = a[start + 6]
+        r7 = a[start + 7]
+        i = 8
+        while i < n - (n % 8):
+            r0 += a[start + i]
+            r1 += a[start + i + 1]
+            r2 += a[start + i + 2]
+            r3 += a[start + i + 3]
+            r4 += a[start + i + 4]
+            r5 += a[start + i + 5]
+            r6 += a[start + i + 6]
+            r7 += a[start + i + 7]
+            i += 8
+        total = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+        while i < n:
+            total += a[start + i]
+            i += 1
+        return total
+    half = n // 2
+    half -= half % 8
+    return _pairwise_sum(a, start, half) + _pairwise_sum(a, start + half, n - half)
+
+
+@nb.njit(cache=True, nogil=True)
+def quiet_sums(image, keep, edges, out):
+    """The stripe test's line counts (``stripes.quiet_line_counts``) of rows 1 to Y - 2.
+
+    ``out[0, k, y]`` = the sum over part ``k`` (``edges``) of ``image[y] * keep[y]`` and
+    ``out[1, k, y]`` that of ``(image[y - 1] + image[y + 1]) * keep[y]``, each product in
+    float64 as numpy's ``multiply``/``add`` with ``dtype=float64`` make it, each part summed
+    as ``numpy.add.reduceat`` sums it (the first value, plus numpy's pairwise sum of the
+    rest), so the same bits.
+    """
+    height, width = image.shape
+    line = np.empty(width)
+    beside = np.empty(width)
+    for y in range(1, height - 1):
+        for x in range(width):
+            k = np.float64(keep[y, x])
+            line[x] = np.float64(image[y, x]) * k
+            beside[x] = (np.float64(image[y - 1, x]) + np.float64(image[y + 1, x])) * k
+        for part in range(edges.size - 1):
+            start = edges[part]
+            n = edges[part + 1] - start
+            out[0, part, y] = line[start] + _pairwise_sum(line, start + 1, n - 1)
+            out[1, part, y] = beside[start] + _pairwise_sum(beside, start + 1, n - 1)

@@ -38,7 +38,7 @@ import functools
 import numpy as np
 from scipy import special
 
-from ._kernels import mark_levels
+from ._kernels import mark_levels, quiet_sums
 from .order import percentile
 from .settings import QualitySettings
 
@@ -152,12 +152,9 @@ def quiet_line_counts(image: np.ndarray, keep: np.ndarray) -> np.ndarray:
     out = np.zeros((2, len(edges) - 1, image.shape[0]))
     if image.shape[0] < 3:
         return out
-    middle = keep[1:-1]
-    line = np.multiply(image[1:-1], middle, dtype=np.float64)
-    beside = np.add(image[:-2], image[2:], dtype=np.float64)
-    beside *= middle
-    out[0, :, 1:-1] = np.add.reduceat(line, edges[:-1], axis=1).T
-    out[1, :, 1:-1] = np.add.reduceat(beside, edges[:-1], axis=1).T
+    # in one pass: np.multiply(image[1:-1], keep[1:-1], dtype=float64) and np.add(image[:-2],
+    # image[2:], dtype=float64) * keep[1:-1], each summed per part as np.add.reduceat does
+    quiet_sums(np.ascontiguousarray(image), np.ascontiguousarray(keep, dtype=bool), edges, out)
     return out
 
 
