@@ -142,3 +142,17 @@ def test_quiet_line_counts_equal_numpys_sums():
             keep = rng.random(shape) < 0.8
             got = quiet_line_counts(image, keep)
             assert got.tobytes() == reference(image, keep).tobytes(), (shape, dtype)
+
+
+def test_bin_sums_equal_numpys():
+    from plexwash.qc.quality.channel import _bin_sums, _bin_sums_numpy
+
+    rng = np.random.default_rng(14)
+    for shape in [(1, 1), (3, 5), (8, 8), (33, 70), (96, 96), (101, 257)]:
+        for dtype in (np.float32, np.float64, np.uint16):
+            values = (rng.gamma(0.6, 9.0, shape) * 10 ** rng.uniform(-2, 3)).astype(dtype)
+            if dtype != np.uint16:
+                values[rng.random(shape) < 0.1] = -0.0
+            for size in (1, 2, 3, 4, 7, 16):
+                # reference: numpy's band sums and np.add.reduceat
+                assert _bin_sums(values, size).tobytes() == _bin_sums_numpy(values, size).tobytes()

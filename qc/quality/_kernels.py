@@ -489,3 +489,24 @@ def quiet_sums(image, keep, edges, out):
             n = edges[part + 1] - start
             out[0, part, y] = line[start] + _pairwise_sum(line, start + 1, n - 1)
             out[1, part, y] = beside[start] + _pairwise_sum(beside, start + 1, n - 1)
+
+
+@nb.njit(cache=True, nogil=True)
+def bin_sums(values, size, out):
+    """``out[i, j]`` = the sum of the ``size`` x ``size`` bin (i, j) of ``values`` in float64,
+    as ``channel._bin_sums`` adds it with numpy: each band's rows added in turn to 0.0
+    (``band.sum(axis=0, dtype=float64)``), then each bin's columns as ``np.add.reduceat``
+    sums them (the first, plus numpy's pairwise sum of the rest)."""
+    height, width = values.shape
+    band = np.empty(width)
+    for i in range(out.shape[0]):
+        top = i * size
+        for x in range(width):
+            band[x] = 0.0  # numpy's axis-0 sum starts from its identity
+        for y in range(top, min(top + size, height)):
+            for x in range(width):
+                band[x] += np.float64(values[y, x])
+        for j in range(out.shape[1]):
+            start = j * size
+            n = min(size, width - start)
+            out[i, j] = band[start] + _pairwise_sum(band, start + 1, n - 1)

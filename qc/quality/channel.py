@@ -13,7 +13,7 @@ import numpy as np
 from skimage.filters import threshold_otsu
 
 from ..errors import InputError
-from ._kernels import gaussian_reflect, split_mean_std, suppress_spikes, uniform_histogram
+from ._kernels import bin_sums, gaussian_reflect, split_mean_std, suppress_spikes, uniform_histogram
 from .excess import fit_model, measure_excess_area
 from .order import percentile
 from .settings import DEFAULT_QUALITY, QualitySettings
@@ -378,7 +378,15 @@ def _bin_areas(height: int, width: int, size: int) -> np.ndarray:
 
 
 def _bin_sums(values: np.ndarray, size: int) -> np.ndarray:
-    """Sums over size x size bins (the last row/column of bins may be partial)."""
+    """Sums over size x size bins (the last row/column of bins may be partial), in float64:
+    :func:`._kernels.bin_sums`, numpy's sums of each band of rows and of its bins to the bit."""
+    out = np.empty((-(-values.shape[0] // size), -(-values.shape[1] // size)))
+    bin_sums(np.ascontiguousarray(values), int(size), out)
+    return out
+
+
+def _bin_sums_numpy(values: np.ndarray, size: int) -> np.ndarray:
+    """:func:`_bin_sums` written with numpy (the form the kernel reproduces; for the tests)."""
     n_rows = -(-values.shape[0] // size)
     columns = np.arange(0, values.shape[1], size)
     out = np.empty((n_rows, columns.size))
