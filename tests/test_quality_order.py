@@ -67,3 +67,16 @@ def test_every_rank_of_a_shuffled_range():
     for k in rng.integers(0, n, 40).tolist():
         q = 100.0 * k / (n - 1)
         assert _same(percentile(values, q), np.percentile(values, q))
+
+
+def test_the_memo_serves_the_second_call_on_the_same_values():
+    rng = np.random.default_rng(10)
+    values = rng.poisson(3.0, (300, 301)).astype(np.float32)
+    memo = {}
+    assert _same(percentile(values, 50.0, memo=memo, also=(99.0,)), np.percentile(values, 50.0))
+    assert _same(percentile(values, [50.0, 99.0], memo=memo), np.percentile(values, [50.0, 99.0]))
+    # the second call read the memo, not the values (a stand-in of the same size shows it)
+    stand_in = np.zeros_like(values)
+    assert _same(percentile(stand_in, [50.0, 99.0], memo=memo), np.percentile(values, [50.0, 99.0]))
+    # a percentile the memo lacks is selected afresh
+    assert _same(percentile(values, 10.0, memo=memo), np.percentile(values, 10.0))

@@ -177,11 +177,12 @@ def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
                              name)
 
 
-def prepare_channel(image, settings: QualitySettings, name, *, dtype=None) -> dict:
+def prepare_channel(image, settings: QualitySettings, name, *, dtype=None, memo=None) -> dict:
     """Check a channel, take the statistics of its values as given and its spike-free copy.
 
     Split from the rest so that the caller's reference to the pixels as given (a plane
-    read from a lazy stack) is gone before the copies the split needs are made.
+    read from a lazy stack) is gone before the copies the split needs are made. ``memo``:
+    order statistics of these values already selected (:func:`.order.percentile`).
     """
     key = name if name is not None else "image"
     raw = np.asarray(image)
@@ -200,7 +201,7 @@ def prepare_channel(image, settings: QualitySettings, name, *, dtype=None) -> di
         raise InputError(key, "channel contains NaN or infinite values")
 
     # statistics of the values as given, before the raw copy is released
-    p50, p99 = (float(v) for v in percentile(raw, [50.0, 99.0]))
+    p50, p99 = (float(v) for v in percentile(raw, [50.0, 99.0], memo=memo))
     maximum = float(raw.max())
     zero_fraction = float(np.count_nonzero(raw == 0)) / raw.size
     clean, spikes = _suppress_spikes(raw, settings.spike_ratio, settings.spike_excess)

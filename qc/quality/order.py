@@ -22,8 +22,12 @@ SELECT_SIZE = 1 << 16
 _SELECTED = (np.dtype(np.float32), np.dtype(np.uint8), np.dtype(np.uint16), np.dtype(np.uint32))
 
 
-def percentile(values, q):
+def percentile(values, q, *, memo: dict | None = None, also=()):
     """``numpy.percentile(values, q)`` over all values (``q`` a number or a list of them).
+
+    ``memo`` (a dict kept with these values) holds the order statistics a radix selection
+    found: a later call on the same values for the same percentiles (or those listed in
+    ``also``, selected in the same passes) reads them from it.
 
     Examples
     --------
@@ -50,7 +54,12 @@ def percentile(values, q):
     ranks = np.unique(np.concatenate(([0, -1], previous.ravel(), following.ravel())))
     take = None
     if n >= SELECT_SIZE and arr.dtype in _SELECTED:
-        take = _selected(flat, ranks % n)
+        wanted = ranks % n
+        if memo is not None and all(r in memo for r in wanted.tolist()):
+            take = _from_memo(memo, n, flat.dtype)
+        else:
+            extra = [_ranks(n, np.true_divide(a, 100)) for a in also]
+            take = _selected(flat, np.concatenate([wanted, *extra]), memo)
     if take is None:
         # numpy's own partition of a copy, with numpy's ranks: the same arrangement
         ordered = flat.copy()
@@ -64,9 +73,26 @@ def percentile(values, q):
     return _lerp(low, high, gamma)
 
 
-def _selected(flat: np.ndarray, ranks: np.ndarray):
+def _ranks(n: int, quantile: float) -> np.ndarray:
+    """The two ranks around a quantile's virtual index ((n - 1) q, as in :func:`percentile`)."""
+    virtual = (n - 1) * np.float64(quantile)
+    low = min(int(np.floor(virtual)), n - 1)
+    return np.array([low, min(low + 1, n - 1)])
+
+
+def _from_memo(memo: dict, n: int, dtype):
+    def take(index):
+        if index.ndim == 0:
+            return memo[int(index) % n]
+        return np.array([memo[i % n] for i in index.ravel().tolist()], dtype).reshape(index.shape)
+
+    return take
+
+
+def _selected(flat: np.ndarray, ranks: np.ndarray, memo: dict | None = None):
     """A function giving the order statistics of ``flat`` at (some of) ``ranks`` as numpy's
-    indexing of the partitioned copy would; None where the keys cannot tell (NaN, -0.0)."""
+    indexing of the partitioned copy would; None where the keys cannot tell (NaN, -0.0).
+    The values found are added to ``memo``."""
     is_float = flat.dtype == np.float32
     ranks = np.unique(ranks).astype(np.int64)
     keys = np.empty(ranks.size, np.uint32)
@@ -77,15 +103,9 @@ def _selected(flat: np.ndarray, ranks: np.ndarray):
         found = bits.astype(np.uint32).view(np.float32)
     else:
         found = keys.astype(flat.dtype)
-    n = flat.size
-    at = dict(zip(ranks.tolist(), found, strict=True))
-
-    def take(index):
-        if index.ndim == 0:
-            return at[int(index) % n]
-        return np.array([at[i % n] for i in index.ravel().tolist()], flat.dtype).reshape(index.shape)
-
-    return take
+    at = {} if memo is None else memo
+    at.update(zip(ranks.tolist(), found, strict=True))
+    return _from_memo(at, flat.size, flat.dtype)
 
 
 def _lerp(a, b, t):

@@ -155,7 +155,10 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
             raise InputError("spillover", "matrix holds negative or non-finite values")
 
     # one pass over the channels: their sum (the tissue mask) and loud pixels (stripe test)
-    total, loud = summed_channels(stack, loud_pixels) if reference is None else (None, None)
+    # (the order statistics the loud pixels select are kept for each channel's percentiles)
+    memos = [{} for _ in range(shape[0])]
+    total, loud = (summed_channels(stack, lambda plane, c: loud_pixels(plane, memos[c]))
+                   if reference is None else (None, None))
     tissue = _tissue(total, shape, settings, tissue, reference)
     del total
     inside = tissue if has_glass(tissue) else None
@@ -183,7 +186,8 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
     def one(c):
         # the plane read from a lazy stack is released as soon as its spike-free copy exists
         prepared = prepare_channel(channel_plane(stack, c), per_channel[c], names[c],
-                            dtype=getattr(stack, "dtype", None))
+                                   dtype=getattr(stack, "dtype", None), memo=memos[c])
+        memos[c] = None
         clean = prepared["clean"]
         cq, summary = measure_prepared(prepared, per_channel[c], dtype_max, names[c],
                                        mask=inside)

@@ -52,14 +52,15 @@ LOUD_TAIL = 1e-3
 BRIGHT_TAIL = 1e-6
 
 
-def loud_pixels(plane: np.ndarray) -> np.ndarray:
+def loud_pixels(plane: np.ndarray, memo: dict | None = None) -> np.ndarray:
     """(Y, X) int8: 1 where a pixel of one channel is above its background level, 2 where
     it is far above it (bright), else 0.
 
     The levels are the smallest counts ``k >= 2`` (``k >= 4``) with ``P(N >= k) <
     LOUD_TAIL`` (``BRIGHT_TAIL``) for ``N`` Poisson with the mean of the channel's lower
     half of values (its background where the stain covers less than half of the ROI;
-    ``scipy.stats.poisson.isf``).
+    ``scipy.stats.poisson.isf``). ``memo``: as for :func:`.order.percentile` (the channel's
+    99th percentile is selected with its median, for the channel's own measurement).
 
     Examples
     --------
@@ -67,7 +68,7 @@ def loud_pixels(plane: np.ndarray) -> np.ndarray:
     [[0, 0, 0, 0, 0, 0, 1, 2]]
     """
     plane = np.asarray(plane)
-    low = plane[plane <= percentile(plane, 50.0)]
+    low = plane[plane <= percentile(plane, 50.0, memo=memo, also=(99.0,))]
     rate = float(low.mean()) if low.size else 0.0
     loud, bright = 2.0, 4.0
     if rate > 0:
