@@ -22,10 +22,8 @@ def test_gaussian_equals_scipy_bit_for_bit(dtype, sigma):
         image = np.log1p(rng.gamma(0.7, 5.0, shape)).astype(dtype)
         reference = ndimage.gaussian_filter(image, sigma, mode="reflect")  # scipy.ndimage
         out = np.empty_like(image)
-        gaussian_reflect(image, gaussian_weights(sigma), np.empty_like(image), out)
+        gaussian_reflect(image, gaussian_weights(sigma), out)
         assert out.tobytes() == reference.tobytes(), shape
-        gaussian_reflect(image, gaussian_weights(sigma), np.empty_like(image), image)  # in place
-        assert image.tobytes() == reference.tobytes(), shape
 
 
 @pytest.mark.parametrize("sigma", [1.0, 0.0, 1e-16])

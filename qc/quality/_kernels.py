@@ -318,19 +318,21 @@ def _reflected(i, n):
 
 
 @nb.njit(cache=True, nogil=True)
-def gaussian_reflect(image, weights, work, out):
+def gaussian_reflect(image, weights, out):
     """``scipy.ndimage.gaussian_filter(image, sigma, mode="reflect", output=out)`` of a 2-D image.
 
-    ``weights`` are scipy's (odd length ``2 r + 1``, symmetric); ``work`` and ``out`` have the
-    image's shape and ``out``'s type (``out`` may be ``image``). The same steps as scipy's
-    ``correlate1d`` for a symmetric filter, axis 0 into ``work`` then axis 1 into ``out``: each
-    value is ``v * w[r]`` plus, from the outermost pair in, ``(v[-j] + v[+j]) * w[r - j]``, in
-    float64, stored in the output type between the axes; so the same bits.
+    ``weights`` are scipy's (odd length ``2 r + 1``, symmetric); ``out`` has the image's shape,
+    its own type and its own memory (not ``image``). The same steps as scipy's
+    ``correlate1d`` for a symmetric filter, axis 0 then axis 1: each value is ``v * w[r]``
+    plus, from the outermost pair in, ``(v[-j] + v[+j]) * w[r - j]``, in float64, rounded to
+    the output type between the axes; so the same bits. Row by row: a row done along axis 0
+    is at once filtered along axis 1 (it needs nothing else).
     """
     height, width = image.shape
     r = weights.size // 2
     centre = weights[r]
     row = np.empty(width)
+    line = np.empty(width + 2 * r)
     for y in range(height):
         for x in range(width):
             row[x] = np.float64(image[y, x]) * centre
@@ -341,11 +343,9 @@ def gaussian_reflect(image, weights, work, out):
             for x in range(width):
                 row[x] += (np.float64(above[x]) + np.float64(below[x])) * w
         for x in range(width):
-            work[y, x] = row[x]
-    line = np.empty(width + 2 * r)
-    for y in range(height):
+            out[y, x] = row[x]  # stored in the output type between the axes, as scipy does
         for i in range(width + 2 * r):
-            line[i] = work[y, _reflected(i - r, width)]
+            line[i] = out[y, _reflected(i - r, width)]
         for x in range(width):
             row[x] = line[x + r] * centre
         for j in range(-r, 0):

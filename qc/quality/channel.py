@@ -309,18 +309,19 @@ def _suppress_spikes(image: np.ndarray, ratio: float, excess: float) -> tuple[np
 def _split_image(clean: np.ndarray, sigma: float) -> np.ndarray:
     """The image Otsu's threshold is found on: log1p, then a light Gaussian smoothing.
 
-    One new array of the copy's type (float32 for float32 and 16-bit data, whose values
+    New arrays of the copy's type (float32 for float32 and 16-bit data, whose values
     it holds exactly; the log is then good to float32 rounding, far finer than a bin of
     Otsu's 256-bin histogram): the log works in place, the smoothing
-    (:func:`._kernels.gaussian_reflect`, scipy's Gaussian filter to the bit) through one
-    working copy between its two axes.
+    (:func:`._kernels.gaussian_reflect`, scipy's Gaussian filter to the bit) into a second one.
     """
     logged = np.empty(clean.shape, clean.dtype)
     np.maximum(clean, 0.0, out=logged)
     np.log1p(logged, out=logged)
     if sigma > 1e-15:  # scipy's gaussian_filter leaves an axis this narrow alone
         # ndimage.gaussian_filter(logged, sigma, mode="reflect", output=logged), bit for bit
-        gaussian_reflect(logged, gaussian_weights(float(sigma)), np.empty_like(logged), logged)
+        smoothed = np.empty_like(logged)
+        gaussian_reflect(logged, gaussian_weights(float(sigma)), smoothed)
+        return smoothed
     return logged
 
 
