@@ -578,3 +578,33 @@ def test_channel_threads_follow_the_memory_budget(monkeypatch):
     assert quality.channel_threads((2000, 2000), 4) == 1
     monkeypatch.setattr(quality, "QUALITY_WORKING_BYTES", 2 * quality.CHANNEL_COPIES * 4 * 100)
     assert quality.channel_threads((10, 10), 8) == 2 and quality.channel_threads((100, 100), 8) == 1
+
+
+@pytest.mark.parametrize("alpha", [0.05, 1e-6, 1e-12])
+def test_poisson_tail_test_at_the_edge_of_alpha(alpha):
+    """Bins whose tail probability lies within a hair of alpha, either side, and the corner
+    cases (mu tiny or 0, n huge, non-integer n, n = 0): the verdicts are still those of
+    ``scipy.special.gammainc(n, mu) < alpha`` (reference: scipy), bit for bit as a mask."""
+    from plexwash.qc.quality.excess import poisson_tail_below as _poisson_tail_below
+    from scipy import special
+
+    rng = np.random.default_rng(31)
+    n = np.concatenate([rng.integers(1, 300, 20_000).astype(float),
+                        rng.uniform(1.0, 5e4, 20_000), 10.0 ** rng.uniform(3, 6, 2_000)])
+    # mu where P(n, mu) = alpha exactly (scipy.special.gammaincinv), nudged by relative steps
+    # from 1e-15 to 1e-3 either way: every bound must leave these to gammainc or be right
+    nudge = rng.choice([-1.0, 1.0], n.size) * 10.0 ** rng.uniform(-15, -3, n.size)
+    mu = special.gammaincinv(n, alpha) * (1.0 + nudge)
+    corner_n = np.array([0.0, 0.5, 1.0, 2.0, 3.7, 60.0, 1e6, 1e7, 5.0, 5.0])
+    corner_mu = np.array([0.0, 0.0, 0.0, 1e-300, 1e-3, 1e-3, 1e6 - 3e3, 1e7 + 1.0, 5.0, 4.0])
+    n, mu = np.r_[n, corner_n], np.r_[mu, corner_mu]
+    with np.errstate(all="ignore"):
+        exact = special.gammainc(n, mu) < alpha
+        exact &= n > mu + np.sqrt(mu)  # the documented shortcut (P >= 0.159 there)
+    got = _poisson_tail_below(n, mu, alpha)
+    np.testing.assert_array_equal(got, exact)
+    assert 0 < got.sum() < got.size  # both answers occur
+    # scalar mu and 2-D shapes take the same path
+    grid = n[:1000].reshape(40, 25)
+    np.testing.assert_array_equal(_poisson_tail_below(grid, 50.0, alpha),
+                                  _poisson_tail_below(grid.ravel(), np.full(1000, 50.0), alpha).reshape(40, 25))

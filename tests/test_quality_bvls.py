@@ -148,3 +148,39 @@ def test_one_unknown_equals_the_scipy_form_bit_for_bit():
         args = (np.array([[gram]]), np.array([cross]), np.array([lower]), np.array([upper]))
         ours = excess._box_least_squares(*args)
         assert _bits(ours) == _bits(_scipy_box(*args))  # scipy.linalg / lsq_linear form
+
+
+@pytest.mark.parametrize("bins", [50, 8192, 20_000])
+def test_fits_with_the_float64_design_kept_give_the_same_bits(bins):
+    # WideDesign keeps the float64 copies the rounds convert each time: the products, the
+    # Gram updates and so every fit must come out as the same bits (the plain conversion
+    # as it goes is the reference)
+    from plexwash.qc.quality.settings import QualitySettings
+
+    rng = np.random.default_rng(bins)
+    sources = rng.poisson(rng.gamma(1.0, 20.0, (5, 1)), (5, bins)).astype(np.float32)
+    areas = np.full((1, bins), 16.0, np.float32)
+    design = np.vstack([areas, sources])
+    wide = excess.WideDesign(design)
+    coef = rng.random(design.shape[0])
+    assert _bits(excess.combine_rows(coef, design, wide)) == _bits(excess.combine_rows(coef, design))
+    index = np.flatnonzero(rng.random(bins) < 0.3)
+    target = rng.random(bins) * 50
+    for a, b in zip(excess._partial_gram(wide.whole, target, index),
+                    excess._partial_gram(design, target, index), strict=True):
+        assert _bits(a) == _bits(b)
+    # a channel made of background, a ghost of source 1 and a stain in some bins
+    own = rng.poisson(2.0 + 0.05 * sources[1] + 40.0 * (rng.random(bins) < 0.05)).astype(np.float32)
+    design = np.vstack([design, own])
+    wide = excess.WideDesign(design)
+    gram = excess.gram_matrix(design)
+    upper = np.r_[np.inf, np.full(5, 0.1), 0.0]
+    settings = QualitySettings()
+    plain = excess.fit_model(design[-1].astype(np.float64), design, upper, settings,
+                             gram=gram, cross=gram[:, -1])
+    kept = excess.fit_model(wide.whole[-1], design, upper, settings, gram=gram,
+                            cross=gram[:, -1], wide=wide)
+    for a, b in zip(plain, kept, strict=True):
+        assert _bits(a) == _bits(b)
+    assert excess.WideDesign.of(np.zeros((40, excess.WIDE_DESIGN_BYTES // 16 // 40 + 1),
+                                          np.float32)) is None

@@ -13,7 +13,8 @@ the studio.
 Modules: :mod:`.settings` (thresholds, flag names), :mod:`.channel` (one channel),
 :mod:`.excess` (the excess test's model fits), :mod:`.stack` (one ROI: ghosts,
 stripes), :mod:`.cohort` (outliers, batch test), :mod:`.rows` (table rows, :func:`measure_roi`),
-:mod:`._kernels` (compiled one-pass kernels).
+:mod:`.order` (``numpy.percentile``'s values by radix selection), :mod:`._kernels` (compiled
+one-pass kernels, each reproducing the numpy/scipy steps it replaces to the bit).
 
 How a channel is measured
 -------------------------

@@ -6,15 +6,16 @@ See the notes of :mod:`plexwash.qc.quality` (how a channel is measured).
 from __future__ import annotations
 
 import dataclasses
+import functools
 import math
 
 import numpy as np
-from scipy import ndimage
 from skimage.filters import threshold_otsu
 
 from ..errors import InputError
-from ._kernels import lines_beside, split_mean_std, suppress_spikes, uniform_histogram
+from ._kernels import bin_sums, gaussian_reflect, split_mean_std, suppress_spikes, uniform_histogram
 from .excess import fit_model, measure_excess_area
+from .order import percentile
 from .settings import DEFAULT_QUALITY, QualitySettings
 
 
@@ -91,8 +92,6 @@ class ChannelSummary:
     """What a stack measurement keeps of one channel once its pixels are released."""
 
     bins: np.ndarray  # (ny, nx) spike-free sums in bins, data units
-    rows: np.ndarray  # (3, segments, Y) sums of the stripe test, see _line_sums
-    columns: np.ndarray  # (3, segments, X)
 
 
 def region_snr(values) -> float:
@@ -178,11 +177,12 @@ def _measure(image, settings: QualitySettings, dtype_max, name, *, dtype=None):
                              name)
 
 
-def prepare_channel(image, settings: QualitySettings, name, *, dtype=None) -> dict:
+def prepare_channel(image, settings: QualitySettings, name, *, dtype=None, memo=None) -> dict:
     """Check a channel, take the statistics of its values as given and its spike-free copy.
 
     Split from the rest so that the caller's reference to the pixels as given (a plane
-    read from a lazy stack) is gone before the copies the split needs are made.
+    read from a lazy stack) is gone before the copies the split needs are made. ``memo``:
+    order statistics of these values already selected (:func:`.order.percentile`).
     """
     key = name if name is not None else "image"
     raw = np.asarray(image)
@@ -201,7 +201,7 @@ def prepare_channel(image, settings: QualitySettings, name, *, dtype=None) -> di
         raise InputError(key, "channel contains NaN or infinite values")
 
     # statistics of the values as given, before the raw copy is released
-    p50, p99 = (float(v) for v in np.percentile(raw, [50.0, 99.0]))
+    p50, p99 = (float(v) for v in percentile(raw, [50.0, 99.0], memo=memo))
     maximum = float(raw.max())
     zero_fraction = float(np.count_nonzero(raw == 0)) / raw.size
     clean, spikes = _suppress_spikes(raw, settings.spike_ratio, settings.spike_excess)
@@ -267,10 +267,7 @@ def measure_prepared(prepared: dict, settings: QualitySettings, dtype_max, name,
         saturated_fraction=saturated, saturation_level=level, spikes=spikes,
         excess_area=excess_area, background_rate=float(coef[0]),
         ghost_sources=(), flags=flags)
-    # the stripe sums of every channel are kept until the end: float32 halves them
-    summary = ChannelSummary(bins=bins, rows=_line_sums(clean).astype(np.float32),
-                       columns=_line_sums(np.ascontiguousarray(clean.T)).astype(np.float32))
-    return cq, summary
+    return cq, ChannelSummary(bins=bins)
 
 
 def _mean_std(values: np.ndarray) -> tuple[float, float]:
@@ -312,18 +309,34 @@ def _suppress_spikes(image: np.ndarray, ratio: float, excess: float) -> tuple[np
 def _split_image(clean: np.ndarray, sigma: float) -> np.ndarray:
     """The image Otsu's threshold is found on: log1p, then a light Gaussian smoothing.
 
-    One new array of the copy's type (float32 for float32 and 16-bit data, whose values
+    New arrays of the copy's type (float32 for float32 and 16-bit data, whose values
     it holds exactly; the log is then good to float32 rounding, far finer than a bin of
-    Otsu's 256-bin histogram): the log and the smoothing work in place (the smoothing
-    is separable and scipy filters each line from a copy, as it does between its own
-    axes).
+    Otsu's 256-bin histogram): the log works in place, the smoothing
+    (:func:`._kernels.gaussian_reflect`, scipy's Gaussian filter to the bit) into a second one.
     """
     logged = np.empty(clean.shape, clean.dtype)
     np.maximum(clean, 0.0, out=logged)
     np.log1p(logged, out=logged)
-    if sigma > 0:
-        ndimage.gaussian_filter(logged, sigma, mode="reflect", output=logged)
+    if sigma > 1e-15:  # scipy's gaussian_filter leaves an axis this narrow alone
+        # ndimage.gaussian_filter(logged, sigma, mode="reflect", output=logged), bit for bit
+        smoothed = np.empty_like(logged)
+        gaussian_reflect(logged, gaussian_weights(float(sigma)), smoothed)
+        return smoothed
     return logged
+
+
+@functools.lru_cache(maxsize=16)
+def gaussian_weights(sigma: float) -> np.ndarray:
+    """The weights ``scipy.ndimage.gaussian_filter`` correlates with (``truncate`` 4, order 0).
+
+    scipy's ``_gaussian_kernel1d(sigma, 0, int(4 * sigma + 0.5))`` reversed, by the same steps.
+    """
+    radius = int(4.0 * sigma + 0.5)
+    x = np.arange(-radius, radius + 1)
+    phi = np.exp(-0.5 / (sigma * sigma) * x ** 2)
+    weights = np.ascontiguousarray((phi / phi.sum())[::-1], dtype=np.float64)
+    weights.setflags(write=False)
+    return weights
 
 
 def _otsu(image: np.ndarray, low: float, high: float) -> float:
@@ -352,14 +365,30 @@ def _saturation_level(dtype, settings: QualitySettings, dtype_max) -> float | No
 
 
 def bin_areas(shape, size: int) -> np.ndarray:
-    """Pixels per size x size bin of an image of ``shape`` (``_bin_sums`` of ones)."""
-    rows = np.minimum(size, shape[0] - np.arange(0, shape[0], size))
-    columns = np.minimum(size, shape[1] - np.arange(0, shape[1], size))
-    return np.outer(rows, columns).astype(np.float64)
+    """Pixels per size x size bin of an image of ``shape`` (``_bin_sums`` of ones; read-only,
+    kept for the next channel of that shape)."""
+    return _bin_areas(int(shape[0]), int(shape[1]), int(size))
+
+
+@functools.lru_cache(maxsize=32)
+def _bin_areas(height: int, width: int, size: int) -> np.ndarray:
+    rows = np.minimum(size, height - np.arange(0, height, size))
+    columns = np.minimum(size, width - np.arange(0, width, size))
+    areas = np.outer(rows, columns).astype(np.float64)
+    areas.setflags(write=False)
+    return areas
 
 
 def _bin_sums(values: np.ndarray, size: int) -> np.ndarray:
-    """Sums over size x size bins (the last row/column of bins may be partial)."""
+    """Sums over size x size bins (the last row/column of bins may be partial), in float64:
+    :func:`._kernels.bin_sums`, numpy's sums of each band of rows and of its bins to the bit."""
+    out = np.empty((-(-values.shape[0] // size), -(-values.shape[1] // size)))
+    bin_sums(np.ascontiguousarray(values), int(size), out)
+    return out
+
+
+def _bin_sums_numpy(values: np.ndarray, size: int) -> np.ndarray:
+    """:func:`_bin_sums` written with numpy (the form the kernel reproduces; for the tests)."""
     n_rows = -(-values.shape[0] // size)
     columns = np.arange(0, values.shape[1], size)
     out = np.empty((n_rows, columns.size))
@@ -367,36 +396,3 @@ def _bin_sums(values: np.ndarray, size: int) -> np.ndarray:
         band = values[i * size:(i + 1) * size].sum(axis=0, dtype=np.float64)
         out[i] = np.add.reduceat(band, columns)
     return out
-
-
-def _line_sums(image: np.ndarray) -> np.ndarray:
-    """Per row of ``image``: the sums the stripe test needs, shape (3, segments, rows).
-
-    With ``a`` the row, ``nb`` the mean of the rows next to it (distance 1) and
-    ``w`` the mean of the rows at distance 2 (one side only at the image edges),
-    the row is cut into :func:`_segments` equal parts and each part gives
-    ``sum(a (w + m))``, ``sum(nb (w + m))`` and ``sum(nb)``, ``m`` being the part's
-    mean of ``w``.
-    """
-    def beside(part, d):
-        total = np.empty(part.shape)
-        lines_beside(part, d, total)
-        return total
-
-    edges = _segments(image.shape[1])
-    out = np.empty((3, len(edges) - 1, image.shape[0]))
-    for k, (start, stop) in enumerate(zip(edges[:-1], edges[1:], strict=True)):
-        part = image[:, start:stop]  # one part at a time keeps the temporaries small
-        weight = beside(part, 2)
-        weight += weight.mean(axis=1, keepdims=True)
-        near = beside(part, 1)
-        out[0, k] = np.einsum("ij,ij->i", part, weight)
-        out[1, k] = np.einsum("ij,ij->i", near, weight)
-        out[2, k] = near.sum(axis=1)
-    return out
-
-
-def _segments(length: int) -> np.ndarray:
-    """Edges of the parts a line is cut into: about 64 px or more each, at most 4."""
-    n = int(min(4, max(1, length // 64)))
-    return np.linspace(0, length, n + 1).astype(int)

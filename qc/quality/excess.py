@@ -12,7 +12,7 @@ from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
 from ._bvls import bounded_lstsq
-from ._kernels import poisson_tail_screen
+from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
 from .settings import QualitySettings
 
 # Largest number of refits of the background / ghost model while leaving out bins.
@@ -40,7 +40,9 @@ def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarra
       ((n + 1)(n + 2)) + ...)`` (Abramowitz & Stegun 6.5.29), cut after three terms, is a
       lower bound; where it is at least ``alpha``: not below. These are the background
       bins that fluctuate up;
-    * the rest: ``gammainc`` itself.
+    * the rest: the same series summed further, with a bound on what it leaves out, and
+      ``gammainc`` itself where the answer is within rounding of ``alpha``
+      (:func:`._kernels.poisson_tail_verdicts`).
 
     The answer is that of ``gammainc(n, mu) < alpha`` everywhere (the bounds keep a
     margin far above their rounding).
@@ -49,18 +51,20 @@ def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarra
     if not (isinstance(mu, np.ndarray) and mu.shape == n.shape):
         mu = np.broadcast_to(mu, n.shape)
     mu = np.ascontiguousarray(mu, dtype=np.float64)
-    verdict = np.empty(n.shape, np.int8)
-    poisson_tail_screen(n.reshape(-1), mu.reshape(-1), math.log(alpha), verdict.reshape(-1))
-    out = verdict == 1
-    hard = verdict == 2
-    if hard.any():
-        out[hard] = special.gammainc(n[hard], mu[hard]) < alpha
+    out = np.empty(n.shape, bool)
+    flat_n, flat_mu, flat_out = n.reshape(-1), mu.reshape(-1), out.reshape(-1)
+    hard = np.empty(flat_n.size, np.intp)
+    count = poisson_tail_verdicts(flat_n, flat_mu, math.log(alpha), flat_out, hard)
+    if count:
+        index = hard[:count]
+        flat_out[index] = special.gammainc(flat_n[index], flat_mu[index]) < alpha
     return out
 
 
 def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
                settings: QualitySettings, *, gram: np.ndarray | None = None,
-               cross: np.ndarray | None = None, n_background: int = 1):
+               cross: np.ndarray | None = None, n_background: int = 1,
+               wide: WideDesign | None = None):
     """Fit target ~ design.T @ coef, leaving out bins the model cannot explain.
 
     ``design`` row 0 holds the bins' areas (its coefficient is the background per
@@ -72,7 +76,8 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
     ``mu`` = values times ``counts_per_unit``) are left out and the fit repeated
     until the set is stable. ``gram`` / ``cross`` (``design @ design.T`` and
     ``design @ target`` over all bins) may be passed precomputed; between rounds
-    they are updated with the bins that changed side only.
+    they are updated with the bins that changed side only. ``wide`` (:class:`WideDesign`
+    of ``design``) holds the float64 copies the rounds would otherwise convert again.
 
     Returns mu (model counts per bin, floored), the coefficients (in the data's
     units) and the mask of bins kept.
@@ -82,17 +87,22 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
         gram = gram_matrix(design)
         cross = _cross(design, target)
     n = target * unit
-    floor = settings.background_floor * unit * design[:n_background].astype(np.float64).sum(axis=0)
+    if wide is None:
+        floor = design[:n_background].astype(np.float64).sum(axis=0)
+    else:
+        floor = wide.whole[:n_background].sum(axis=0)
+    floor = settings.background_floor * unit * floor
     kept = np.ones(n.shape, bool)
     lower = np.zeros(design.shape[0])
     g, h = gram, cross
     for _ in range(_MAX_FIT_ROUNDS):
         coef = _box_least_squares(g, h, lower, upper)
-        mu = np.maximum(unit * combine_rows(coef, design), floor)
+        mu = np.maximum(unit * combine_rows(coef, design, wide), floor)
         new_kept = ~poisson_tail_below(n, mu, settings.fit_alpha)
         if not new_kept.any() or np.array_equal(new_kept, kept):
             break
-        g, h = _moved_bins(g, h, design, target, kept & ~new_kept, new_kept & ~kept)
+        g, h = _moved_bins(g, h, design if wide is None else wide.whole, target,
+                           kept & ~new_kept, new_kept & ~kept)
         kept = new_kept
     return mu, coef, kept
 
@@ -114,12 +124,43 @@ def _cross(design: np.ndarray, target: np.ndarray) -> np.ndarray:
     return h
 
 
-def combine_rows(coef: np.ndarray, design: np.ndarray) -> np.ndarray:
-    """``coef @ design`` in float64, a block of columns at a time (no float64 copy of ``design``)."""
+def combine_rows(coef: np.ndarray, design: np.ndarray, wide: WideDesign | None = None) -> np.ndarray:
+    """``coef @ design`` in float64, a block of columns at a time (no float64 copy of ``design``).
+
+    With ``wide`` (:class:`WideDesign` of ``design``) its float64 blocks are multiplied: the
+    same arrays the conversion makes, so the same products.
+    """
     out = np.empty(design.shape[1])
+    if wide is not None:
+        for start, block in zip(range(0, design.shape[1], _GRAM_BLOCK), wide.blocks, strict=True):
+            out[start:start + _GRAM_BLOCK] = coef @ block
+        return out
     for start in range(0, design.shape[1], _GRAM_BLOCK):
         out[start:start + _GRAM_BLOCK] = coef @ design[:, start:start + _GRAM_BLOCK].astype(np.float64)
     return out
+
+
+#: Largest float64 copies of a design :class:`WideDesign` keeps (the whole and its blocks).
+WIDE_DESIGN_BYTES = 64 * 2**20
+
+
+class WideDesign:
+    """A float32 design in float64, kept for the many fits of one ROI that share it.
+
+    ``whole`` is ``design.astype(float64)`` (the bins moved between rounds are gathered from
+    it, the values the conversion of the gathered float32 columns gives); ``blocks`` are its
+    column blocks as :func:`combine_rows` converts them, each C-contiguous. :meth:`of` gives
+    None when the copies would exceed ``WIDE_DESIGN_BYTES`` (the fits then convert as they go).
+    """
+
+    def __init__(self, design: np.ndarray):
+        self.whole = design.astype(np.float64)
+        self.blocks = [np.ascontiguousarray(self.whole[:, start:start + _GRAM_BLOCK])
+                       for start in range(0, design.shape[1], _GRAM_BLOCK)]
+
+    @classmethod
+    def of(cls, design: np.ndarray) -> WideDesign | None:
+        return cls(design) if 16 * design.size <= WIDE_DESIGN_BYTES else None
 
 
 def _moved_bins(g, h, design, target, left, joined):
@@ -128,7 +169,7 @@ def _moved_bins(g, h, design, target, left, joined):
     A side no bin moved to contributes zeros, so its product is not formed (``+ 0.0``
     keeps what adding those zeros does to a -0.0).
     """
-    index_out, index_in = np.flatnonzero(left), np.flatnonzero(joined)
+    index_out, index_in = left.nonzero()[0], joined.nonzero()[0]  # 1-D: np.flatnonzero
     if index_out.size:
         g_out, h_out = _partial_gram(design, target, index_out)
         g, h = g - g_out, h - h_out
@@ -144,7 +185,7 @@ def _partial_gram(design: np.ndarray, target: np.ndarray, index: np.ndarray):
     h = np.zeros(design.shape[0])
     for start in range(0, index.size, _GRAM_BLOCK):
         part = index[start:start + _GRAM_BLOCK]
-        d = design[:, part].astype(np.float64)
+        d = design[:, part].astype(np.float64, copy=False)  # a gathered copy already
         g += d @ d.T
         h += d @ target[part]
     return g, h
@@ -165,7 +206,7 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
     coef = lower.astype(np.float64)
     diagonal = gram.diagonal()
     free = (upper > lower) & (diagonal > 0)
-    idx = np.flatnonzero(free)
+    idx = free.nonzero()[0]  # 1-D: np.flatnonzero
     if idx.size == 0:
         return coef
     if idx.size == 1 == free.size:
@@ -174,11 +215,12 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
         h = cross - 0.0
         g = gram.copy()
     else:
-        fixed = np.flatnonzero(~free)
-        h = cross[idx] - gram[np.ix_(idx, fixed)] @ coef[fixed]
-        g = gram[np.ix_(idx, idx)]
+        fixed = (~free).nonzero()[0]
+        rows = idx[:, None]  # gram[np.ix_(idx, ...)], without its Python steps
+        h = cross[idx] - gram[rows, fixed[None, :]] @ coef[fixed]
+        g = gram[rows, idx[None, :]]
     scale = np.sqrt(diagonal[idx])
-    g /= np.outer(scale, scale)
+    g /= scale[:, None] * scale  # np.outer(scale, scale)
     g.flat[::idx.size + 1] += 1e-9
     h = h / scale
     lo = lower[idx] * scale
@@ -232,9 +274,29 @@ def measure_excess_area(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
     excess = poisson_tail_below(n, mu, settings.empty_alpha) & (
         n - mu >= settings.min_excess * unit * area)
     if min(n.shape) >= 3:
-        n_w, mu_w, a_w = (ndimage.uniform_filter(v, 3, mode="constant") * 9 for v in (n, mu, area))
-        largest = ndimage.maximum_filter(n - mu, 3, mode="constant", cval=0.0)
-        n_w = n_w - np.maximum(largest, 0.0)
+        n_w, mu_w, a_w = window_sums(n, mu, area)
         excess |= poisson_tail_below(n_w, mu_w, settings.empty_alpha) & (
             n_w - mu_w >= settings.min_excess * unit * a_w)
     return float(area[excess].sum())
+
+
+def window_sums(n: np.ndarray, mu: np.ndarray, area: np.ndarray):
+    """The 3 x 3-bin sums of :func:`measure_excess_area`'s window test.
+
+    ``n_w`` (less the window's largest single-bin excess, floored at 0), ``mu_w`` and
+    ``a_w``: ``scipy.ndimage.uniform_filter(v, 3, mode="constant") * 9`` and
+    ``maximum_filter(n - mu, 3, mode="constant")``, by compiled kernels with scipy's steps
+    (:func:`._kernels.box3_sums`, :func:`._kernels.largest_excess3`); scipy itself where a
+    value is not finite.
+    """
+    n, mu, area = (np.ascontiguousarray(v, dtype=np.float64) for v in (n, mu, area))
+    if not (np.isfinite(n).all() and np.isfinite(mu).all() and np.isfinite(area).all()):
+        n_w, mu_w, a_w = (ndimage.uniform_filter(v, 3, mode="constant") * 9 for v in (n, mu, area))
+        largest = ndimage.maximum_filter(n - mu, 3, mode="constant", cval=0.0)
+        return n_w - np.maximum(largest, 0.0), mu_w, a_w
+    n_w, mu_w, a_w, largest = (np.empty(n.shape) for _ in range(4))
+    for v, out in ((n, n_w), (mu, mu_w), (area, a_w)):
+        box3_sums(v, out)
+    largest_excess3(n, mu, largest)
+    n_w -= largest
+    return n_w, mu_w, a_w

@@ -24,7 +24,7 @@ import numpy as np
 
 from ..spillover.masses import plausible_pairs
 from .channel import ChannelQuality, channel_flags
-from .excess import combine_rows, fit_model, measure_excess_area
+from .excess import WideDesign, combine_rows, fit_model, measure_excess_area
 from .settings import QualitySettings
 
 # Largest factor on the ghost pattern of a known spillover matrix.
@@ -50,6 +50,7 @@ class GhostModel:
     shape: tuple
     names: list
     matrix: np.ndarray | None
+    wide: WideDesign | None = None
 
     def sources(self, settings: QualitySettings) -> np.ndarray:
         """(C, C) bool: channel i may be fitted as a ghost in channel j."""
@@ -62,8 +63,8 @@ def ghost_test(c: int, cq: ChannelQuality, model: GhostModel, settings: QualityS
 
     ``sources`` is :meth:`GhostModel.sources`; unused (may be None) with a known matrix.
     """
-    k, design, names = model.n_background, model.design, model.names
-    target = design[k + c].astype(np.float64)
+    k, design, names, wide = model.n_background, model.design, model.names, model.wide
+    target = design[k + c].astype(np.float64) if wide is None else wide.whole[k + c]
     others = [i for i in range(len(names)) if i != c]
     if model.matrix is not None:
         # The known matrix fixes the ghost pattern; its overall scale is fitted
@@ -84,13 +85,15 @@ def ghost_test(c: int, cq: ChannelQuality, model: GhostModel, settings: QualityS
             allowed[c] = False  # a channel is no ghost of itself
             upper[k:][allowed] = settings.max_ghost
         mu, coef, _ = fit_model(target, design, upper, settings, gram=model.gram,
-                                cross=model.gram[:, k + c], n_background=k)
+                                cross=model.gram[:, k + c], n_background=k, wide=wide)
         slopes = coef[[k + i for i in others]]
-    area = design[:k].astype(np.float64).sum(axis=0).reshape(model.shape)
+    area = (design[:k].astype(np.float64) if wide is None else wide.whole[:k]).sum(axis=0)
+    area = area.reshape(model.shape)
     excess_area = measure_excess_area(target.reshape(model.shape) * settings.counts_per_unit,
                                       mu.reshape(model.shape), area, settings)
-    ghost_sources = tuple(sorted(((names[i], float(v)) for i, v in zip(others, slopes, strict=True)
-                                  if v >= REPORTED_SLOPE), key=lambda p: -p[1]))
+    listed = (np.asarray(slopes) >= REPORTED_SLOPE).nonzero()[0].tolist()  # few of the C - 1
+    ghost_sources = tuple(sorted(((names[others[j]], float(slopes[j])) for j in listed),
+                                 key=lambda p: -p[1]))
     flags = channel_flags(excess_area, cq.sbr, cq.saturated_fraction, settings)
     # the rate reported is the tissue's (the last background row) when the ROI has glass
     return dataclasses.replace(cq, excess_area=excess_area, flags=flags,

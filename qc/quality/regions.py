@@ -24,8 +24,8 @@ DEFAULT_BACKGROUND = BackgroundSettings()
 def summed_channels(stack, also=None):
     """(Y, X) float64: the channels of a (C, Y, X) stack summed, one channel at a time.
 
-    With ``also`` (a function of one plane giving a (Y, X) int8 map), also the largest
-    of every channel's map at each pixel: returns ``(total, largest)``.
+    With ``also`` (a function of one plane and its channel index giving a (Y, X) int8 map),
+    also the largest of every channel's map at each pixel: returns ``(total, largest)``.
     """
     shape = tuple(int(n) for n in np.shape(stack))
     total = np.zeros(shape[1:], np.float64)
@@ -34,7 +34,7 @@ def summed_channels(stack, also=None):
         plane = channel_plane(stack, c)
         total += plane
         if also is not None:
-            np.maximum(largest, also(plane), out=largest)
+            np.maximum(largest, also(plane, c), out=largest)
     return total if also is None else (total, largest)
 
 

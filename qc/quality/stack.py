@@ -12,7 +12,7 @@ from .._arrays import channel_plane
 from .._threads import one_thread
 from ..errors import InputError
 from .channel import ChannelQuality, bin_areas, measure_prepared, prepare_channel
-from .excess import gram_matrix
+from .excess import WideDesign, gram_matrix
 from .ghosts import GhostModel, ghost_test
 from .regions import away_from_edges, binned_tissue, has_glass, roi_tissue, summed_channels
 from .settings import CHANNEL_FLAGS, DEFAULT_QUALITY, QualitySettings
@@ -155,7 +155,10 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
             raise InputError("spillover", "matrix holds negative or non-finite values")
 
     # one pass over the channels: their sum (the tissue mask) and loud pixels (stripe test)
-    total, loud = summed_channels(stack, loud_pixels) if reference is None else (None, None)
+    # (the order statistics the loud pixels select are kept for each channel's percentiles)
+    memos = [{} for _ in range(shape[0])]
+    total, loud = (summed_channels(stack, lambda plane, c: loud_pixels(plane, memos[c]))
+                   if reference is None else (None, None))
     tissue = _tissue(total, shape, settings, tissue, reference)
     del total
     inside = tissue if has_glass(tissue) else None
@@ -183,7 +186,8 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
     def one(c):
         # the plane read from a lazy stack is released as soon as its spike-free copy exists
         prepared = prepare_channel(channel_plane(stack, c), per_channel[c], names[c],
-                            dtype=getattr(stack, "dtype", None))
+                                   dtype=getattr(stack, "dtype", None), memo=memos[c])
+        memos[c] = None
         clean = prepared["clean"]
         cq, summary = measure_prepared(prepared, per_channel[c], dtype_max, names[c],
                                        mask=inside)
@@ -198,7 +202,8 @@ def measure_stack(stack, channels: Sequence[str], *, settings: QualitySettings =
     # keeps a threaded BLAS from fighting other work for the cores.
     with one_thread("blas"):
         model = GhostModel(design=design, gram=gram_matrix(design), n_background=k,
-                           shape=areas.shape, names=names, matrix=matrix)
+                           shape=areas.shape, names=names, matrix=matrix,
+                           wide=WideDesign.of(design) if matrix is None else None)
         results = _judge_with_ghosts(results, model, per_channel, threads=threads)
     if reference is not None:
         results = [_inherit_empty(cq, ref) for cq, ref in zip(results, reference.channels,

@@ -33,9 +33,13 @@ may miss the level while its neighbour drop-out lines are found. The first and l
 
 from __future__ import annotations
 
-import numpy as np
-from scipy import special, stats
+import functools
 
+import numpy as np
+from scipy import special
+
+from ._kernels import mark_levels, quiet_sums
+from .order import percentile
 from .settings import QualitySettings
 
 #: Probability of a line's counts under the null (no drop): one line against two.
@@ -48,14 +52,15 @@ LOUD_TAIL = 1e-3
 BRIGHT_TAIL = 1e-6
 
 
-def loud_pixels(plane: np.ndarray) -> np.ndarray:
+def loud_pixels(plane: np.ndarray, memo: dict | None = None) -> np.ndarray:
     """(Y, X) int8: 1 where a pixel of one channel is above its background level, 2 where
     it is far above it (bright), else 0.
 
     The levels are the smallest counts ``k >= 2`` (``k >= 4``) with ``P(N >= k) <
     LOUD_TAIL`` (``BRIGHT_TAIL``) for ``N`` Poisson with the mean of the channel's lower
     half of values (its background where the stain covers less than half of the ROI;
-    ``scipy.stats.poisson.isf``).
+    ``scipy.stats.poisson.isf``). ``memo``: as for :func:`.order.percentile` (the channel's
+    99th percentile is selected with its median, for the channel's own measurement).
 
     Examples
     --------
@@ -63,15 +68,36 @@ def loud_pixels(plane: np.ndarray) -> np.ndarray:
     [[0, 0, 0, 0, 0, 0, 1, 2]]
     """
     plane = np.asarray(plane)
-    low = plane[plane <= np.percentile(plane, 50.0)]
+    low = plane[plane <= percentile(plane, 50.0, memo=memo, also=(99.0,))]
     rate = float(low.mean()) if low.size else 0.0
-    out = np.zeros(plane.shape, np.int8)
-    for least, tail, value in ((2.0, LOUD_TAIL, 1), (4.0, BRIGHT_TAIL, 2)):
-        level = least
-        if rate > 0:
-            level = max(level, float(stats.poisson.isf(tail, rate)) + 1.0)
-        out[plane >= level] = value
+    loud, bright = 2.0, 4.0
+    if rate > 0:
+        above = poisson_isf(np.array([LOUD_TAIL, BRIGHT_TAIL]), rate)
+        loud, bright = max(loud, float(above[0]) + 1.0), max(bright, float(above[1]) + 1.0)
+    out = np.empty(plane.shape, np.int8)
+    if plane.ndim == 2:
+        mark_levels(plane, loud, bright, out)
+    else:
+        out[...] = 0
+        out[plane >= loud] = 1
+        out[plane >= bright] = 2
     return out
+
+
+def poisson_isf(tail: np.ndarray, rate: float) -> np.ndarray:
+    """``scipy.stats.poisson.isf(tail, rate)`` for tails in (0, 1) and a rate > 0, without its
+    argument handling: the same ufunc steps (``poisson._ppf(1 - tail, rate)``: ``pdtrik``, then
+    ``pdtr`` one count lower), so the same values.
+
+    Examples
+    --------
+    >>> poisson_isf(np.array([1e-3, 1e-6]), 2.0).tolist()
+    [8.0, 12.0]
+    """
+    q = 1.0 - np.asarray(tail, np.float64)
+    counts = np.ceil(special.pdtrik(q, rate))
+    below = np.maximum(counts - 1, 0)
+    return np.where(special.pdtr(below, rate) >= q, below, counts) + 0.0
 
 
 def quiet_keep(loud: np.ndarray, away=None) -> np.ndarray:
@@ -97,8 +123,15 @@ def line_parts(length: int) -> np.ndarray:
     >>> line_parts(100).tolist(), line_parts(400).tolist()
     ([0, 100], [0, 100, 200, 300, 400])
     """
+    return _line_parts(int(length))
+
+
+@functools.lru_cache(maxsize=32)
+def _line_parts(length: int) -> np.ndarray:
     n = int(min(4, max(1, length // 64)))
-    return np.linspace(0, length, n + 1).astype(int)
+    edges = np.linspace(0, length, n + 1).astype(int)
+    edges.setflags(write=False)  # kept for the next channel
+    return edges
 
 
 def quiet_line_counts(image: np.ndarray, keep: np.ndarray) -> np.ndarray:
@@ -120,12 +153,9 @@ def quiet_line_counts(image: np.ndarray, keep: np.ndarray) -> np.ndarray:
     out = np.zeros((2, len(edges) - 1, image.shape[0]))
     if image.shape[0] < 3:
         return out
-    middle = keep[1:-1]
-    line = np.multiply(image[1:-1], middle, dtype=np.float64)
-    beside = np.add(image[:-2], image[2:], dtype=np.float64)
-    beside *= middle
-    out[0, :, 1:-1] = np.add.reduceat(line, edges[:-1], axis=1).T
-    out[1, :, 1:-1] = np.add.reduceat(beside, edges[:-1], axis=1).T
+    # in one pass: np.multiply(image[1:-1], keep[1:-1], dtype=float64) and np.add(image[:-2],
+    # image[2:], dtype=float64) * keep[1:-1], each summed per part as np.add.reduceat does
+    quiet_sums(np.ascontiguousarray(image), np.ascontiguousarray(keep, dtype=bool), edges, out)
     return out
 
 
