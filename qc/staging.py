@@ -62,6 +62,10 @@ BAND_BYTES = 8 * 2**20
 #: ``STAGE_WORKING_BYTES // (copies x plane bytes)`` channels at once (and never more
 #: than dask's threads), so a 2000 x 2000 ROI's speckle pass runs one channel at a time.
 STAGE_WORKING_BYTES = 96 * 2**20
+#: An ROI in memory of at most this many float32 bytes is washed on the calling thread, task
+#: after task in the same order (no dask graph, no thread): for a small ROI the graph and the
+#: threads cost more than its planes. The tasks are the same, so are the pixels.
+DIRECT_BYTES = 4 * 2**20
 
 _ITEM = np.dtype(np.float32).itemsize
 
@@ -168,6 +172,8 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
         _planes_off_heap()
     stacks = {"a": staging.stack("a", (n_c, n_y, n_x))}
     lazy = is_dask(roi.data)  # else any array: numpy, zarr
+    direct = not lazy and staging.folder is None and n_c * n_y * n_x * _ITEM <= DIRECT_BYTES
+    each = _in_turn if direct else _in_chains
     by_channel = not lazy or len(roi.data.chunks[0]) == n_c  # one channel per source chunk
     current = None  # None: the source itself, read plane by plane
     if not by_channel:
@@ -192,7 +198,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
     # to its block sums on the way and the model is fitted from them (for a wash in memory
     # on a thread of its own, while the next passes run); else it is made here, in a pass
     # of its own.
-    later = _ContextLater.wanted(used, running, (n_y, n_x), aside=staging.folder is None)
+    later = _ContextLater.wanted(used, running, (n_y, n_x), aside=staging.folder is None and not direct)
     context = None
     if used and context_wanted(running) and later is None:
         context = roi_background(lambda c: read_plane(current, c), used, (n_y, n_x))
@@ -225,7 +231,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
                 target(dest).write_plane(c, cleaned[0])
                 return step_stats[0], _sums(plane[None], cleaned)
 
-            results = _in_chains(plane_task, channels, _chains(step.plane_copies * plane_bytes))
+            results = each(plane_task, channels, _chains(step.plane_copies * plane_bytes))
             if k == 0 and later is not None:
                 later.start()
             done = dict(zip(channels, results, strict=True))
@@ -236,8 +242,8 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
             compensated = None  # A has been written over
         else:
             if source is None:  # bands need the source staged first
-                _in_chains(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c),
-                           _chains(2.0 * plane_bytes))
+                each(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c),
+                     _chains(2.0 * plane_bytes))
                 source = copied = "a"
             dest = "b" if source == "a" else "a"
             rows = band_rows(len(used), n_x, n_y)
@@ -251,7 +257,10 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
                 return _sums(band, out), step_stats
 
             target(dest)  # made before the tasks run
-            sums = dask.compute(*[dask.delayed(band_task, pure=False)(y) for y in range(0, n_y, rows)])
+            if direct:
+                sums = [band_task(y) for y in range(0, n_y, rows)]
+            else:
+                sums = dask.compute(*[dask.delayed(band_task, pure=False)(y) for y in range(0, n_y, rows)])
             removed_sum = np.sum([s[0][0] for s in sums], axis=0)
             input_sum = np.sum([s[0][1] for s in sums], axis=0)
             # a pixels step's own numbers are per channel and the same in every band
@@ -260,12 +269,12 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
             compensated = source
         current = dest
     if current is None:  # no step runs: the source, as float32
-        _in_chains(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c), _chains(2.0 * plane_bytes))
+        each(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c), _chains(2.0 * plane_bytes))
         current = copied = "a"
     passing = [c for c in range(n_c) if c not in set(used)]
     if passing and copied != current:
-        _in_chains(lambda c: stacks[current].write_plane(c, stacks[copied].read_plane(c)), passing,
-                   _chains(2.0 * plane_bytes))
+        each(lambda c: stacks[current].write_plane(c, stacks[copied].read_plane(c)), passing,
+             _chains(2.0 * plane_bytes))
     return stacks[current], stats
 
 
@@ -378,6 +387,11 @@ def _in_chains(function, items, chains: int) -> list:
     for group, values in zip(groups, done, strict=True):
         results.update(zip(group, values, strict=True))
     return [results[i] for i in items]
+
+
+def _in_turn(function, items, chains: int) -> list:
+    """``[function(i) for i in items]`` on this thread (a small ROI: no task graph, no threads)."""
+    return [function(i) for i in items]
 
 
 def _sums(before: np.ndarray, after: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
