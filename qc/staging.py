@@ -46,6 +46,8 @@ from __future__ import annotations
 import os
 import shutil
 import tempfile
+import threading
+from concurrent.futures import Executor, ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -173,7 +175,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
     stacks = {"a": staging.stack("a", (n_c, n_y, n_x))}
     lazy = is_dask(roi.data)  # else any array: numpy, zarr
     direct = not lazy and staging.folder is None and n_c * n_y * n_x * _ITEM <= DIRECT_BYTES
-    each = _in_turn if direct else _in_chains
+    each = _on_threads if direct else _in_chains
     by_channel = not lazy or len(roi.data.chunks[0]) == n_c  # one channel per source chunk
     current = None  # None: the source itself, read plane by plane
     if not by_channel:
@@ -198,7 +200,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
     # to its block sums on the way and the model is fitted from them (for a wash in memory
     # on a thread of its own, while the next passes run); else it is made here, in a pass
     # of its own.
-    later = _ContextLater.wanted(used, running, (n_y, n_x), aside=staging.folder is None and not direct)
+    later = _ContextLater.wanted(used, running, (n_y, n_x), aside=staging.folder is None)
     context = None
     if used and context_wanted(running) and later is None:
         context = roi_background(lambda c: read_plane(current, c), used, (n_y, n_x))
@@ -258,7 +260,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
 
             target(dest)  # made before the tasks run
             if direct:
-                sums = [band_task(y) for y in range(0, n_y, rows)]
+                sums = each(band_task, range(0, n_y, rows), 1)
             else:
                 sums = dask.compute(*[dask.delayed(band_task, pure=False)(y) for y in range(0, n_y, rows)])
             removed_sum = np.sum([s[0][0] for s in sums], axis=0)
@@ -389,9 +391,35 @@ def _in_chains(function, items, chains: int) -> list:
     return [results[i] for i in items]
 
 
-def _in_turn(function, items, chains: int) -> list:
-    """``[function(i) for i in items]`` on this thread (a small ROI: no task graph, no threads)."""
-    return [function(i) for i in items]
+def _on_threads(function, items, chains: int) -> list:
+    """``[function(i) for i in items]`` without a task graph (a small ROI): on the threads of
+    the run's pool (dask's ``pool``, else one of this module) when the wash may use more
+    than one thread, else in turn on the calling thread. Each item is the same task as in
+    :func:`_in_chains`, so the results are the same."""
+    threads = _wash_threads()
+    items = list(items)
+    if threads <= 1 or len(items) <= 1:
+        return [function(i) for i in items]
+    return list(_pool(threads).map(function, items))
+
+
+
+def _pool(threads: int):
+    """The run's thread pool (dask's ``pool`` setting, as :func:`plexwash.qc.run` sets it), else
+    a pool of ``threads`` threads kept by this module for the next small ROIs."""
+    import dask
+
+    pool = dask.config.get("pool", None)
+    if isinstance(pool, Executor):
+        return pool
+    with _pools_lock:
+        if threads not in _pools:
+            _pools[threads] = ThreadPoolExecutor(threads, thread_name_prefix="plexwash-small")
+        return _pools[threads]
+
+
+_pools: dict[int, ThreadPoolExecutor] = {}
+_pools_lock = threading.Lock()
 
 
 def _sums(before: np.ndarray, after: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -913,3 +913,26 @@ def test_json_ready_equals_the_plain_conversion():
         want = plain(record)
         assert got == want and json.dumps(got) == json.dumps(want)
         assert [type(v) for v in got["2"][0]] == [type(v) for v in want["2"][0]]
+
+
+def test_run_files_are_parsed_once_while_they_stay_the_same(tmp_path):
+    """The recipe, stain sheet and matrix of a run are parsed once per process; a file that
+    changes (size or modification time) is parsed again, and a missing one gives the
+    loader's own error."""
+    from plexwash.qc.run import execute
+
+    calls = []
+
+    def load(path):
+        calls.append(path)
+        return Path(path).read_text()
+
+    path = tmp_path / "a.txt"
+    path.write_text("one")
+    assert execute._once(path, load) == "one" and execute._once(path, load) == "one"
+    assert len(calls) == 1
+    path.write_text("three")
+    os.utime(path, ns=(1, 1))
+    assert execute._once(path, load) == "three" and len(calls) == 2
+    with pytest.raises(FileNotFoundError):
+        execute._once(tmp_path / "missing.txt", load)
