@@ -38,7 +38,8 @@ CLI passes ``$PLEXWASH_STAGING_DIR``).
 
 An ROI held in memory (numpy) goes through the same passes with two numpy arrays as
 staging (:class:`MemoryStack`): no removed map is kept, only its sums, which is faster
-than :func:`plexwash.qc.wash` when only the washed stack and its numbers are wanted.
+than :func:`plexwash.qc.wash` when only the washed stack and its numbers are wanted. A
+small one (``DIRECT_BYTES``) runs those tasks without a dask graph.
 """
 
 from __future__ import annotations
@@ -64,9 +65,9 @@ BAND_BYTES = 8 * 2**20
 #: ``STAGE_WORKING_BYTES // (copies x plane bytes)`` channels at once (and never more
 #: than dask's threads), so a 2000 x 2000 ROI's speckle pass runs one channel at a time.
 STAGE_WORKING_BYTES = 96 * 2**20
-#: An ROI in memory of at most this many float32 bytes is washed on the calling thread, task
-#: after task in the same order (no dask graph, no thread): for a small ROI the graph and the
-#: threads cost more than its planes. The tasks are the same, so are the pixels.
+#: An ROI in memory of at most this many float32 bytes is washed without a dask graph: the
+#: same tasks run in turn, or on the run's thread pool (:func:`_on_threads`); for a small ROI
+#: building and scheduling the graph costs more than its planes. Same tasks, same pixels.
 DIRECT_BYTES = 4 * 2**20
 
 _ITEM = np.dtype(np.float32).itemsize
@@ -401,7 +402,6 @@ def _on_threads(function, items, chains: int) -> list:
     if threads <= 1 or len(items) <= 1:
         return [function(i) for i in items]
     return list(_pool(threads).map(function, items))
-
 
 
 def _pool(threads: int):
