@@ -14,8 +14,9 @@ of ``--repeats``; ratios are taken within this one run. Parts (``--parts``, defa
 - ``resume``: rerun of a finished 24-ROI cohort (target <= 1.5 s including start-up,
   must be < 2.5 s) against a floor process (Python start-up, a stat of both folders, the
   ledger read), and the same with ``--verify`` (re-hashes everything);
-- ``workers``: 8 ROIs of 36 x 504 x 504, the default (one process, threads) against
-  ``--workers 2`` (target: >= 1.7x a single worker's throughput on 2 cores). Each mode's
+- ``workers``: 8 ROIs of 36 x 504 x 504, the default (one process, threads) and
+  ``--workers 1`` (a single worker) against ``--workers 2`` (target: >= 1.7x a single
+  worker's throughput on 2 cores, also printed against the default). Each mode's
   CPU time (its worker processes included) over its wall time says how many cores it kept
   busy: a default run near the core count already uses them all, and ``--workers`` can then
   gain only what the default leaves idle (start-up, single-threaded parts).
@@ -171,16 +172,18 @@ def main(argv=None) -> None:
             cohort = tmp / "eight"
             for k, piece in enumerate(_tiles(counts, args.size // 2, 8)):
                 write_roi(cohort / f"roi_{k}.ome.tiff", piece, names)
-            singles, twos = [], []
-            for _ in range(args.repeats):  # interleaved, so both see the same load
+            singles, ones, twos = [], [], []
+            for _ in range(args.repeats):  # interleaved, so all see the same load
                 singles.append(_process(cohort, tmp / "eight-run", spill_csv))
+                ones.append(_process(cohort, tmp / "eight-run", spill_csv, "--workers", "1"))
                 twos.append(_process(cohort, tmp / "eight-run", spill_csv, "--workers", "2"))
-            single, two = (statistics.median(w for w, _ in runs) for runs in (singles, twos))
+            single, one, two = (statistics.median(w for w, _ in runs) for runs in (singles, ones, twos))
             print(f"\n[workers] 8 ROIs of {args.channels} x {args.size // 2} x {args.size // 2}")
-            for name, runs in (("default (one process)", singles), ("--workers 2", twos)):
+            for name, runs in (("default (one process)", singles), ("--workers 1", ones), ("--workers 2", twos)):
                 print(f"{name:22s} median {statistics.median(w for w, _ in runs):6.2f} s  runs "
                       f"{_list(w for w, _ in runs)}   cores busy (CPU / wall) {_list(c / w for w, c in runs)}")
-            print(f"throughput --workers 2 / default = {single / two:.2f}x   (target >= 1.7x)   {load()}")
+            print(f"throughput --workers 2 / --workers 1 = {one / two:.2f}x   (target >= 1.7x: a single "
+                  f"worker's throughput)   --workers 2 / default = {single / two:.2f}x   {load()}")
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     print(f"\nafter: {load()}")

@@ -140,7 +140,28 @@ def latest_records(records: Iterable[Mapping]) -> dict[str, dict]:
 
 
 def json_ready(value):
-    """Plain JSON values: numpy numbers to Python, non-finite floats to None."""
+    """Plain JSON values: numpy numbers to Python, non-finite floats to None.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> json_ready({1: (np.float32(0.5), np.nan, np.int64(3), np.array([True]))})
+    {'1': [0.5, None, 3, [True]]}
+    """
+    kind = type(value)
+    if kind is str or kind is int or kind is bool or value is None:  # most values: as they are
+        return value
+    if kind is float:
+        return value if math.isfinite(value) else None
+    if kind is dict:
+        return {k if type(k) is str else str(k): json_ready(v) for k, v in value.items()}
+    if kind is list or kind is tuple:
+        return [json_ready(v) for v in value]
+    return _json_other(value)
+
+
+def _json_other(value):
+    """:func:`json_ready` of a value of any other type (numpy values, mappings, paths)."""
     import numpy as np
 
     if isinstance(value, Mapping):

@@ -38,7 +38,8 @@ CLI passes ``$PLEXWASH_STAGING_DIR``).
 
 An ROI held in memory (numpy) goes through the same passes with two numpy arrays as
 staging (:class:`MemoryStack`): no removed map is kept, only its sums, which is faster
-than :func:`plexwash.qc.wash` when only the washed stack and its numbers are wanted.
+than :func:`plexwash.qc.wash` when only the washed stack and its numbers are wanted. A
+small one (``DIRECT_BYTES``) runs those tasks without a dask graph.
 """
 
 from __future__ import annotations
@@ -46,6 +47,8 @@ from __future__ import annotations
 import os
 import shutil
 import tempfile
+import threading
+from concurrent.futures import Executor, ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -62,6 +65,10 @@ BAND_BYTES = 8 * 2**20
 #: ``STAGE_WORKING_BYTES // (copies x plane bytes)`` channels at once (and never more
 #: than dask's threads), so a 2000 x 2000 ROI's speckle pass runs one channel at a time.
 STAGE_WORKING_BYTES = 96 * 2**20
+#: An ROI in memory of at most this many float32 bytes is washed without a dask graph: the
+#: same tasks run in turn, or on the run's thread pool (:func:`_on_threads`); for a small ROI
+#: building and scheduling the graph costs more than its planes. Same tasks, same pixels.
+DIRECT_BYTES = 4 * 2**20
 
 _ITEM = np.dtype(np.float32).itemsize
 
@@ -168,6 +175,8 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
         _planes_off_heap()
     stacks = {"a": staging.stack("a", (n_c, n_y, n_x))}
     lazy = is_dask(roi.data)  # else any array: numpy, zarr
+    direct = not lazy and staging.folder is None and n_c * n_y * n_x * _ITEM <= DIRECT_BYTES
+    each = _on_threads if direct else _in_chains
     by_channel = not lazy or len(roi.data.chunks[0]) == n_c  # one channel per source chunk
     current = None  # None: the source itself, read plane by plane
     if not by_channel:
@@ -225,7 +234,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
                 target(dest).write_plane(c, cleaned[0])
                 return step_stats[0], _sums(plane[None], cleaned)
 
-            results = _in_chains(plane_task, channels, _chains(step.plane_copies * plane_bytes))
+            results = each(plane_task, channels, _chains(step.plane_copies * plane_bytes))
             if k == 0 and later is not None:
                 later.start()
             done = dict(zip(channels, results, strict=True))
@@ -236,8 +245,8 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
             compensated = None  # A has been written over
         else:
             if source is None:  # bands need the source staged first
-                _in_chains(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c),
-                           _chains(2.0 * plane_bytes))
+                each(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c),
+                     _chains(2.0 * plane_bytes))
                 source = copied = "a"
             dest = "b" if source == "a" else "a"
             rows = band_rows(len(used), n_x, n_y)
@@ -251,7 +260,10 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
                 return _sums(band, out), step_stats
 
             target(dest)  # made before the tasks run
-            sums = dask.compute(*[dask.delayed(band_task, pure=False)(y) for y in range(0, n_y, rows)])
+            if direct:
+                sums = each(band_task, range(0, n_y, rows), 1)
+            else:
+                sums = dask.compute(*[dask.delayed(band_task, pure=False)(y) for y in range(0, n_y, rows)])
             removed_sum = np.sum([s[0][0] for s in sums], axis=0)
             input_sum = np.sum([s[0][1] for s in sums], axis=0)
             # a pixels step's own numbers are per channel and the same in every band
@@ -260,12 +272,12 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
             compensated = source
         current = dest
     if current is None:  # no step runs: the source, as float32
-        _in_chains(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c), _chains(2.0 * plane_bytes))
+        each(lambda c: stacks["a"].write_plane(c, read_plane(None, c)), range(n_c), _chains(2.0 * plane_bytes))
         current = copied = "a"
     passing = [c for c in range(n_c) if c not in set(used)]
     if passing and copied != current:
-        _in_chains(lambda c: stacks[current].write_plane(c, stacks[copied].read_plane(c)), passing,
-                   _chains(2.0 * plane_bytes))
+        each(lambda c: stacks[current].write_plane(c, stacks[copied].read_plane(c)), passing,
+             _chains(2.0 * plane_bytes))
     return stacks[current], stats
 
 
@@ -378,6 +390,36 @@ def _in_chains(function, items, chains: int) -> list:
     for group, values in zip(groups, done, strict=True):
         results.update(zip(group, values, strict=True))
     return [results[i] for i in items]
+
+
+def _on_threads(function, items, chains: int) -> list:
+    """``[function(i) for i in items]`` without a task graph (a small ROI): on the threads of
+    the run's pool (dask's ``pool``, else one of this module) when the wash may use more
+    than one thread, else in turn on the calling thread. Each item is the same task as in
+    :func:`_in_chains`, so the results are the same."""
+    threads = _wash_threads()
+    items = list(items)
+    if threads <= 1 or len(items) <= 1:
+        return [function(i) for i in items]
+    return list(_pool(threads).map(function, items))
+
+
+def _pool(threads: int):
+    """The run's thread pool (dask's ``pool`` setting, as :func:`plexwash.qc.run` sets it), else
+    a pool of ``threads`` threads kept by this module for the next small ROIs."""
+    import dask
+
+    pool = dask.config.get("pool", None)
+    if isinstance(pool, Executor):
+        return pool
+    with _pools_lock:
+        if threads not in _pools:
+            _pools[threads] = ThreadPoolExecutor(threads, thread_name_prefix="plexwash-small")
+        return _pools[threads]
+
+
+_pools: dict[int, ThreadPoolExecutor] = {}
+_pools_lock = threading.Lock()
 
 
 def _sums(before: np.ndarray, after: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -447,3 +447,22 @@ def test_sha256_of_folder_changes_with_content(tmp_path, small_stack):
     meta = path / "zarr.json"
     assert sha256_path(meta) == hashlib.sha256(meta.read_bytes()).hexdigest()
     assert json.loads(meta.read_text())["attributes"]["ome"]["version"] == "0.5"
+
+
+@pytest.mark.parametrize("shape", [(3, 40, 56), (40, 56)], ids=["stack", "one-channel"])
+def test_a_tiff_read_into_memory_equals_its_lazy_read(tmp_path, shape):
+    """An ROI read into memory is decoded whole by tifffile (no zarr view); its pixels,
+    dtype and shape equal those of the lazy read chunk by chunk (tifffile's zarr store)."""
+    rng = np.random.default_rng(5)
+    data = rng.poisson(3.0, shape).astype(np.uint16)
+    path = tmp_path / "a.ome.tiff"
+    axes = "CYX" if len(shape) == 3 else "YX"
+    tifffile.imwrite(path, data, ome=True, photometric="minisblack", tile=(16, 16),
+                     compression="zlib", metadata={"axes": axes, "Channel": {"Name": NAMES[:len(data)]}
+                                                   if len(shape) == 3 else {"Name": ["Nd145"]}})
+    eager = read_roi(path)
+    lazy = read_roi(path, lazy=True)
+    assert isinstance(eager.data, np.ndarray) and isinstance(lazy.data, da.Array)
+    assert eager.data.dtype == lazy.data.dtype and eager.data.shape == lazy.data.shape
+    np.testing.assert_array_equal(eager.data, lazy.data.compute())
+    assert eager.channels == lazy.channels

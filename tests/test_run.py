@@ -878,3 +878,61 @@ def test_package_imports_lazily_and_keeps_its_names():
         import plexwash.qc as qc
 
         qc.no_such_name  # noqa: B018
+
+
+def test_json_ready_equals_the_plain_conversion():
+    """The ledger's conversion (fast paths for plain Python values) gives what converting
+    every value by its kind gives, on nested records of every kind of value."""
+    from plexwash.qc.ledger import json_ready
+
+    def plain(value):
+        if isinstance(value, dict):
+            return {str(k): plain(v) for k, v in value.items()}
+        if isinstance(value, (list, tuple)):
+            return [plain(v) for v in value]
+        if isinstance(value, np.ndarray):
+            return plain(value.tolist())
+        if isinstance(value, (bool, np.bool_)):
+            return bool(value)
+        if isinstance(value, (int, np.integer)):
+            return int(value)
+        if isinstance(value, (float, np.floating)):
+            return float(value) if math.isfinite(value) else None
+        if isinstance(value, Path):
+            return str(value)
+        return value
+
+    rng = np.random.default_rng(4)
+    leaves = [None, True, np.bool_(False), 3, np.int64(-2), np.uint8(7), 1.5, np.float32(0.1),
+              np.float64(np.inf), float("nan"), -float("inf"), "text", Path("/a/b"),
+              np.array([[1.0, np.nan], [2.0, 3.0]], np.float32), np.array([True, False])]
+    for _ in range(50):
+        record = {"roi": "r", 2: [tuple(leaves[i] for i in rng.integers(0, len(leaves), 4))],
+                  "rows": [{"k": leaves[i], 5: {"x": leaves[j]}} for i, j in rng.integers(0, len(leaves), (6, 2))]}
+        got = json_ready(record)
+        want = plain(record)
+        assert got == want and json.dumps(got) == json.dumps(want)
+        assert [type(v) for v in got["2"][0]] == [type(v) for v in want["2"][0]]
+
+
+def test_run_files_are_parsed_once_while_they_stay_the_same(tmp_path):
+    """The recipe, stain sheet and matrix of a run are parsed once per process; a file that
+    changes (size or modification time) is parsed again, and a missing one gives the
+    loader's own error."""
+    from plexwash.qc.run import execute
+
+    calls = []
+
+    def load(path):
+        calls.append(path)
+        return Path(path).read_text()
+
+    path = tmp_path / "a.txt"
+    path.write_text("one")
+    assert execute._once(path, load) == "one" and execute._once(path, load) == "one"
+    assert len(calls) == 1
+    path.write_text("three")
+    os.utime(path, ns=(1, 1))
+    assert execute._once(path, load) == "three" and len(calls) == 2
+    with pytest.raises(FileNotFoundError):
+        execute._once(tmp_path / "missing.txt", load)

@@ -193,3 +193,38 @@ def test_staged_wash_with_the_context_fitted_aside_equals_the_in_memory_wash(tmp
     with dask.config.set(scheduler="threads", num_workers=threads):  # 1: the context is fitted inline
         out = wash_to_file(_lazy(roi, chunks), tmp_path / "w.ome.tiff", recipe)
     np.testing.assert_array_equal(read_roi(out.output, lazy=False).data, eager.data)
+
+
+@pytest.mark.parametrize("first_off", [False, True])
+def test_a_small_roi_is_washed_directly_with_the_pixels_and_stats_of_the_passes(tmp_path, monkeypatch, first_off):
+    """An ROI in memory of at most ``DIRECT_BYTES`` runs the same tasks in turn on the calling
+    thread, with no dask graph (dask.compute is not called) and the context fitted inline;
+    its pixels and stats equal those of the passes as dask tasks on two threads, bit for bit."""
+    rng = np.random.default_rng(13)
+    rate = np.full((48, 56), 0.6)
+    rate[:, 20:] = 5.0
+    data = rng.poisson(np.broadcast_to(rate, (5, 48, 56))).astype(np.float32)
+    data[2, 7, 9] = 600.0
+    names = ("Nd142", "Nd143", "Nd144", "Nd146", "Ir191")
+    roi = Roi(data, names, tmp_path / "in.ome.tiff", use=(True, True, True, False, True))
+    spill = np.eye(4) + np.diag(np.full(3, 0.03), 1)
+    from plexwash.qc.spillover import SpilloverMatrix
+
+    matrix = SpilloverMatrix(("Nd142", "Nd143", "Nd144", "Ir191"), spill)
+    recipe = default_recipe().replace("hot_pixels", enabled=not first_off)
+    assert data.nbytes <= staging.DIRECT_BYTES
+    with dask.config.set(scheduler="threads", num_workers=2):
+        monkeypatch.setattr(staging, "DIRECT_BYTES", 0)
+        passes = wash_to_file(roi, tmp_path / "passes.ome.tiff", recipe, spillover=matrix)
+        monkeypatch.undo()
+
+        def no_graph(*args, **kwargs):
+            raise AssertionError("a small ROI built a dask graph")
+
+        monkeypatch.setattr(dask, "compute", no_graph)
+        direct = wash_to_file(roi, tmp_path / "direct.ome.tiff", recipe, spillover=matrix)
+    np.testing.assert_array_equal(read_roi(direct.output, lazy=False).data,
+                                  read_roi(passes.output, lazy=False).data)
+    np.testing.assert_array_equal(read_roi(direct.output, lazy=False).data,
+                                  wash(roi, recipe, spillover=matrix).data)
+    assert direct.stats == passes.stats and direct.notes == passes.notes

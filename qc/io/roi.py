@@ -150,7 +150,8 @@ def read_roi(path: str | Path, *, stains: str | Path | StainSheet | None = None,
     if path.is_dir():
         data, channels, pixel_size, markers = open_zarr(path)
     else:
-        data, channels, pixel_size, markers = open_tiff(path, has_stains=stains is not None)
+        whole = -1 if lazy else LAZY_BYTES if lazy is None else 2**62  # read into memory: at once
+        data, channels, pixel_size, markers = open_tiff(path, has_stains=stains is not None, whole_bytes=whole)
     if data.ndim != 3:
         raise InputError(path, f"expected a C x Y x X stack, got {data.ndim}-D data")
     if np.dtype(data.dtype).type not in SUPPORTED_DTYPES:

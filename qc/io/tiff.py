@@ -32,9 +32,13 @@ STORE_LEVEL_BYTES = 16 * 2**20
 WRITE_BUFFER_BYTES = 32 * 2**20
 
 
-def open_tiff(path: Path, *, has_stains: bool):
+def open_tiff(path: Path, *, has_stains: bool, whole_bytes: int = -1):
     """A zarr view of level 0 of the first image series, its channel names (None: plain
-    TIFF), pixel size (µm) and marker names (None unless plexwash kept the tags beside them)."""
+    TIFF), pixel size (µm) and marker names (None unless plexwash kept the tags beside them).
+
+    A series of at most ``whole_bytes`` is read whole instead, into a numpy array (the same
+    pixels, without the zarr view's per-chunk machinery), and the file is closed.
+    """
     import tifffile
     import zarr
 
@@ -69,6 +73,16 @@ def open_tiff(path: Path, *, has_stains: bool):
             channels, markers, pixel_size = _ome_channels(path, tif.ome_metadata)
         elif not has_stains:
             raise InputError(path, "plain TIFF has no channel names; give its stain sheet (--stains stains.csv)")
+        if int(np.prod(shape)) * np.dtype(series.dtype).itemsize <= whole_bytes:
+            data = series.asarray().reshape(tuple(shape[i] for i in keep))
+            tif.close()
+            if len(keep) == 2:
+                data = data[None]
+            if channels is not None and len(channels) == 0:
+                channels = None
+            if channels is None and not has_stains:
+                raise InputError(path, "OME-XML names no channels; give its stain sheet (--stains stains.csv)")
+            return data, channels, pixel_size, markers
         store = series.aszarr(level=0)
         data = zarr.open(store, mode="r")
         if keep != tuple(range(len(shape))):

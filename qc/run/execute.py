@@ -14,6 +14,7 @@ import datetime as _dt
 import math
 import os
 import socket
+import threading
 import time
 import traceback
 from collections.abc import Iterable
@@ -161,8 +162,7 @@ def wash_one(job: Job) -> dict:
 
 def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     from ..audit import audit_washed
-    from ..io import file_stamp, read_roi, sha256_path
-    from ..recipe import load_recipe
+    from ..io import file_stamp, read_roi, read_stains, sha256_path
     from ..wash import wash_to_file
 
     timings = {}
@@ -177,16 +177,16 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     input_stamp = file_stamp(job.input)  # before the hash: a later change shows on resume
     input_sha256 = job.input_sha256 or sha256_path(job.input)
     lap("hash_input")
-    recipe = load_recipe(job.recipe)
-    if recipe.sha256() != job.recipe_sha256:
+    recipe, recipe_sha256 = _once(job.recipe, _recipe_and_hash)
+    if recipe_sha256 != job.recipe_sha256:
         raise InputError(job.recipe, "recipe changed while the run was going")
-    roi = read_roi(job.input, stains=job.stains)
+    roi = read_roi(job.input, stains=_once(job.stains, read_stains) if job.stains else None)
     recipe.check_size(roi)
     matrix = None
     if job.spillover:
         from ..spillover import read_spillover
 
-        matrix = read_spillover(job.spillover)
+        matrix = _once(job.spillover, read_spillover)
     lap("read")
     if job.output is not None:
         target = out_dir / job.output
@@ -241,6 +241,38 @@ def _wash_and_measure(job: Job, out_dir: Path, written: list) -> dict:
     if audit:
         record["audit"] = json_ready(audit)
     return record
+
+
+def _once(path, load):
+    """``load(path)``, kept for the next ROIs of the run while the file keeps its size,
+    modification time and inode (the recipe, stain sheet and matrix are the same for every
+    ROI: parsed and hashed once per process instead of once per ROI). What is kept is
+    immutable (frozen settings, a spillover matrix whose values are copied when aligned)."""
+    try:
+        st = os.stat(path)
+    except OSError:  # the loader says what is wrong, as without the cache
+        return load(path)
+    key = (str(path), load, st.st_size, st.st_mtime_ns, st.st_ino)
+    with _kept_lock:
+        if key in _kept:
+            return _kept[key]
+    value = load(path)
+    with _kept_lock:
+        if len(_kept) >= 16:
+            _kept.clear()
+        _kept[key] = value
+    return value
+
+
+def _recipe_and_hash(path):
+    from ..recipe import load_recipe
+
+    recipe = load_recipe(path)
+    return recipe, recipe.sha256()
+
+
+_kept: dict = {}
+_kept_lock = threading.Lock()
 
 
 def measure_quality(roi, washed, recipe, matrix, *, threads: int = 1):
