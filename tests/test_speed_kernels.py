@@ -9,7 +9,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from plexwash.qc.quality._kernels import (
-    lines_beside,
     split_mean_std,
     suppress_spikes,
     uniform_histogram,
@@ -79,26 +78,6 @@ def test_uniform_histogram_equals_numpy_histogram(dtype):
     expected, expected_edges = np.histogram(values, bins=256, range=(low, high))  # reference: numpy
     np.testing.assert_array_equal(edges, expected_edges)
     np.testing.assert_array_equal(counts, expected)
-
-
-@pytest.mark.parametrize("shape", [(1, 9), (2, 9), (3, 9), (4, 9), (5, 9), (37, 70)])
-@pytest.mark.parametrize("d", [1, 2])
-def test_lines_beside_equals_the_numpy_expression(shape, d):
-    rng = np.random.default_rng(5)
-    part = rng.gamma(2.0, 5.0, shape).astype(np.float32)
-    total = np.zeros(part.shape)  # the stripe test's numpy expression
-    count = np.zeros((part.shape[0], 1))
-    if part.shape[0] > d:
-        total[d:] += part[:-d]
-        total[:-d] += part[d:]
-        count[d:] += 1
-        count[:-d] += 1
-    total /= np.maximum(count, 1)
-    out = np.empty(part.shape)
-    lines_beside(part, d, out)
-    np.testing.assert_array_equal(out, total)
-    lines_beside(np.ascontiguousarray(part.T).T, d, out)  # strided input
-    np.testing.assert_array_equal(out, total)
 
 
 @pytest.mark.parametrize("alpha", [1e-6, 1e-3, 0.05])

@@ -128,28 +128,6 @@ def split_mean_std(values, mask):
 
 
 @nb.njit(cache=True, nogil=True)
-def lines_beside(part, d, out):
-    """``out[y]`` = the mean of rows ``y - d`` and ``y + d`` of ``part`` (one of them at the edges).
-
-    In float64, summed from 0 in that order and divided by the count (as the stripe test's
-    numpy expression ``total[d:] += part[:-d]; total[:-d] += part[d:]; total /= count``
-    does), so the values are the same to the last bit. Rows with neither are 0.
-    """
-    height, width = part.shape
-    for y in range(height):
-        below = y >= d
-        above = y + d < height
-        count = 1.0 if below != above else (2.0 if below else 1.0)
-        for x in range(width):
-            total = 0.0
-            if below:
-                total += np.float64(part[y - d, x])
-            if above:
-                total += np.float64(part[y + d, x])
-            out[y, x] = total / count
-
-
-@nb.njit(cache=True, nogil=True)
 def uniform_histogram(values, edges, out):
     """Counts of ``values`` in the bins between ``edges`` (``numpy.histogram`` with uniform bins).
 
