@@ -169,7 +169,7 @@ def centre_histogram(image, counts, threshold, radius, histogram):
 
 
 @nb.njit(cache=True, nogil=True)
-def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count, zone, threshold, radius, min_count, wide_radius, wide_min_count,
+def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count, line_flank, line_flank_min, zone, threshold, radius, min_count, wide_radius, wide_min_count,
                    support_min_count, value_cut, low_mean, keep_touching, min_area, lone_cut, rim_min_count,
                    rim_value, out, removed):
     """Local-density speckle filter of one channel; return how many pixels were set to 0.
@@ -180,9 +180,10 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
     counts : uint16 (H, W), from :func:`window_counts` (centre included)
     threshold : float32, a pixel is positive when ``value > threshold``
     wide : uint16 (H, W), :func:`window_counts` with ``wide_radius``
-    line_offsets, line_upper, line_min_count : the line test of :func:`line_dense` (offsets
-        (O, 2 * half, 2), O = 0 for off; ``upper``; table (Z, T)), asked only of a positive
-        pixel no other rule makes dense; a pixel on such a line is dense
+    line_offsets, line_upper, line_min_count, line_flank, line_flank_min : the line test of
+        :func:`line_sum_dense` (offsets (O, 2 * half, 2), O = 0 for off; ``upper``; tables
+        (Z, 2, T + 1); flank distance; flank table), asked only of a positive pixel no other
+        rule makes dense; a pixel on such a line is dense
     zone : uint8 (H, W), the background zone of each pixel (indexes the tables below)
     radius : int, window half-width
     min_count : int32 (Z, 2r+2, 2r+2); ``min_count[z, a, b]`` = smallest neighbour count kept
@@ -224,8 +225,8 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
                     wrows = min(height - 1, y + wide_radius) - max(0, y - wide_radius) + 1
                     wcols = min(width - 1, x + wide_radius) - max(0, x - wide_radius) + 1
                     dense = np.int32(wide[y, x]) - 1 >= wide_min_count[z, wrows, wcols]
-                if not dense and line_offsets.shape[0] > 0 and _on_line(
-                        image, y, x, threshold, line_upper, line_offsets, line_min_count[z]):
+                if not dense and line_offsets.shape[0] > 0 and _on_line_sum(
+                        image, y, x, threshold, line_upper, line_offsets, line_min_count[z], line_flank, line_flank_min):
                     dense = True
                 if dense and not _below_neighbours(image, y, x, v, low_mean):
                     state[y, x] = _CORE
@@ -456,5 +457,96 @@ def _on_line(image, y, x, threshold, upper, offsets, table):
                     else:
                         behind += 1
         if ahead > 0 and behind > 0 and ahead + behind >= table[trials]:
+            return True
+    return False
+
+
+@nb.njit(cache=True, nogil=True)
+def line_sum_dense(image, threshold, upper, offsets, zone, line_min_sum, flank, flank_min, out):
+    """Mark positive pixels through which a dense line of dim counts passes (uint8 ``out``; see
+    :func:`_on_line_sum`, ``table`` = ``line_min_sum[zone]``). :func:`speckle_filter` asks the
+    same question only of the pixels no other rule keeps (the line test of the speckle step,
+    :func:`plexwash.qc.steps.speckle_tests.line_sum_tables` and ``line_flank_table``)."""
+    height, width = image.shape
+    for y in range(height):
+        for x in range(width):
+            out[y, x] = 0
+            if image[y, x] > threshold and _on_line_sum(image, y, x, threshold, upper, offsets,
+                                                        line_min_sum[zone[y, x]], flank, flank_min):
+                out[y, x] = 1
+
+
+@nb.njit(cache=True, nogil=True)
+def _whole(v):
+    """A value rounded to whole counts (half up)."""
+    return np.floor(np.float64(v) + 0.5)
+
+
+@nb.njit(cache=True, nogil=True)
+def _flank_sum(image, y, x, offsets, o, shift_y, shift_x):
+    """Whole counts and pixels inside the image of line ``o`` moved by (shift_y, shift_x)."""
+    height, width = image.shape
+    total = 0.0
+    pixels = 0
+    for k in range(offsets.shape[1]):
+        yy = y + offsets[o, k, 0] + shift_y
+        xx = x + offsets[o, k, 1] + shift_x
+        if 0 <= yy < height and 0 <= xx < width:
+            total += _whole(image[yy, xx])
+            pixels += 1
+    return total, pixels
+
+
+@nb.njit(cache=True, nogil=True)
+def _on_line_sum(image, y, x, threshold, upper, offsets, table, flank, flank_min):
+    """Whether some line through (y, x) is dense.
+
+    On the line's ``t`` pixels inside the image the dim positive values (``threshold < v <=
+    upper``), each rounded to whole counts, sum to ``s`` (``a`` and ``b`` on its halves of
+    ``h`` pixels). The line is dense when both halves hold a dim positive pixel, ``s >=
+    table[0, t]``, ``a >= table[1, h_a]``, ``b >= table[1, h_b]`` and, for each of the two
+    parallel lines ``flank`` pixels away across it (``f`` pixels inside the image, ``n`` whole
+    counts of any value), ``s >= flank_min[t, f, s + n]`` (not dense when ``s + n`` lies beyond
+    the table's last axis; no flank test when ``flank_min`` is empty).
+    """
+    height, width = image.shape
+    n_lines, length, _ = offsets.shape
+    half = length // 2
+    inside = half <= y < height - half and half <= x < width - half
+    for o in range(n_lines):
+        ahead = 0.0
+        behind = 0.0
+        n_ahead = 0
+        n_behind = 0
+        for k in range(length):
+            yy = y + offsets[o, k, 0]
+            xx = x + offsets[o, k, 1]
+            if inside or (0 <= yy < height and 0 <= xx < width):
+                v = image[yy, xx]
+                if k < half:
+                    n_ahead += 1
+                    if threshold < v <= upper:
+                        ahead += _whole(v)
+                else:
+                    n_behind += 1
+                    if threshold < v <= upper:
+                        behind += _whole(v)
+        total = ahead + behind
+        if not (ahead > 0.0 and behind > 0.0 and ahead >= table[1, n_ahead] and behind >= table[1, n_behind]
+                and total >= table[0, n_ahead + n_behind]):
+            continue
+        if flank_min.shape[0] == 0:
+            return True
+        steep = abs(offsets[o, half - 1, 0]) == half  # one pixel per row: the flanks lie across x
+        dense = True
+        for side in (-1, 1):
+            sy = 0 if steep else side * flank
+            sx = side * flank if steep else 0
+            other, pixels = _flank_sum(image, y, x, offsets, o, sy, sx)
+            n = np.int64(total + other)
+            if n >= flank_min.shape[2] or total < flank_min[n_ahead + n_behind, pixels, n]:
+                dense = False
+                break
+        if dense:
             return True
     return False
