@@ -121,3 +121,12 @@ def test_flank_test_tells_a_fibre_from_a_sheet():
     marks = line_marks(img, level, SpeckleSettings())
     assert not marks[inside].any()
     assert marks[45, 12:48].all()
+
+
+def test_line_test_is_not_asked_above_its_level():
+    """Above ``line_max_level`` the line test is not asked (its tables say no line reaches them), so a
+    dense background costs no line scans; below it the same fibre is marked."""
+    img, fibre = fibres(seed=4, level=2.0)
+    asked = line_marks(img, 0.15, SpeckleSettings())
+    assert asked[fibre].mean() > 0.2
+    assert not line_marks(img, 0.15, SpeckleSettings(line_max_level=0.1)).any()

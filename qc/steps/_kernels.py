@@ -513,24 +513,37 @@ def _on_line_sum(image, y, x, threshold, upper, offsets, table, flank, flank_min
     n_lines, length, _ = offsets.shape
     half = length // 2
     inside = half <= y < height - half and half <= x < width - half
+    brightest = np.floor(np.float64(upper) + 0.5)
+    possible = False  # some line length t whose sum a line of the brightest dim pixels reaches
+    for t in range(length + 1):
+        if table[0, t] <= t * brightest:
+            possible = True
+            break
+    if not possible:
+        return False
     for o in range(n_lines):
         ahead = 0.0
         behind = 0.0
         n_ahead = 0
         n_behind = 0
-        for k in range(length):
+        for k in range(half):  # the first half: the line is given up when it fails the side test
             yy = y + offsets[o, k, 0]
             xx = x + offsets[o, k, 1]
             if inside or (0 <= yy < height and 0 <= xx < width):
+                n_ahead += 1
                 v = image[yy, xx]
-                if k < half:
-                    n_ahead += 1
-                    if threshold < v <= upper:
-                        ahead += _whole(v)
-                else:
-                    n_behind += 1
-                    if threshold < v <= upper:
-                        behind += _whole(v)
+                if threshold < v <= upper:
+                    ahead += _whole(v)
+        if ahead <= 0.0 or ahead < table[1, n_ahead]:
+            continue
+        for k in range(half, length):
+            yy = y + offsets[o, k, 0]
+            xx = x + offsets[o, k, 1]
+            if inside or (0 <= yy < height and 0 <= xx < width):
+                n_behind += 1
+                v = image[yy, xx]
+                if threshold < v <= upper:
+                    behind += _whole(v)
         total = ahead + behind
         if not (ahead > 0.0 and behind > 0.0 and ahead >= table[1, n_ahead] and behind >= table[1, n_behind]
                 and total >= table[0, n_ahead + n_behind]):

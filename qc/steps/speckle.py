@@ -287,6 +287,7 @@ def remove_speckle(
     line_half: int = 4,
     line_alpha: float = 0.003,
     line_side_alpha: float = 0.05,
+    line_max_level: float = 1.0,
     flank_alpha: float = 0.01,
     flank_distance: int = 2,
     rim_alpha: float = 0.01,
@@ -334,6 +335,9 @@ def remove_speckle(
         False-keep rate of the line test for one background pixel.
     line_side_alpha : float, optional
         Poisson test each half of the line must pass on its own (1: off).
+    line_max_level : float, optional
+        The line test is asked only where the background level is at most this (counts per
+        pixel): on denser backgrounds the square windows alone judge.
     flank_alpha, flank_distance : optional
         The line's counts against each flank's: conditional test of two Poisson means
         (Przyborowski & Wilenski 1940) at ``flank_alpha`` (0: off).
@@ -380,7 +384,7 @@ def remove_speckle(
               "keep_touching": keep_touching, "min_area": min_area, "edge_alpha": edge_alpha,
               "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
               "line_half": line_half, "line_alpha": line_alpha, "line_side_alpha": line_side_alpha,
-              "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha}
+              "line_max_level": line_max_level, "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(

@@ -60,6 +60,11 @@ class SpeckleSettings:
         " to either side (conditional test of two Poisson means): a fibre is, a line along a cell's edge or"
         " across two cells is not (0: off)", low=0.0, high=0.5,
     )
+    line_max_level: float = setting(
+        1.0, "the line test is asked only where the background is at most this many counts per pixel (on a"
+        " denser background nearly every pixel is positive and the square windows alone judge it: the line"
+        " test would cost a scan of every line of every pixel)", low=0.0, high=1e6,
+    )
     flank_distance: int = setting(
         2, "distance in pixels, across the line, of the two parallel lines the flank test compares with",
         low=1, high=20,

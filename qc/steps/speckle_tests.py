@@ -434,8 +434,9 @@ def line_sum_tables(levels: np.ndarray, settings) -> np.ndarray:
     the same test at ``line_side_alpha`` (1: off), a condition that only makes the line test
     stricter (a background pixel beside a cell or past a fibre's end has a half of
     background). Leaving out the bright pixels (above the value test's cut) only lowers a
-    background line's sum, so the tests stay conservative. A zone whose level is infinite
-    (every pixel positive) keeps every pixel: 0.
+    background line's sum, so the tests stay conservative. A zone whose level is above
+    ``line_max_level`` is not tested (every entry :data:`NO_LINE`: no line reaches it); one
+    whose level is infinite (every pixel positive) keeps every pixel: 0.
     """
     levels = np.asarray(levels, np.float64)
     half = int(settings.line_half)
@@ -447,7 +448,12 @@ def line_sum_tables(levels: np.ndarray, settings) -> np.ndarray:
     table[finite, 0] = poisson_min_values(means, settings.line_alpha / tests).astype(np.int32)
     if settings.line_side_alpha < 1.0:
         table[finite, 1] = poisson_min_values(means, settings.line_side_alpha).astype(np.int32)
+    table[finite & (levels > settings.line_max_level)] = NO_LINE
     return table
+
+
+#: A line-table entry no line's sum reaches (the line test is not asked there).
+NO_LINE = np.iinfo(np.int32).max
 
 
 #: Largest whole-count total of a line and a flank the flank test is tabulated for (a
