@@ -267,7 +267,8 @@ def test_background_rate_recovered_and_not_inflated_by_cells(rate):
 
 def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False,
                       wide_radius=0, support_alpha=0.2, edge_alpha=0.0, line_half=0, lone_alpha=0.0,
-                      line_alpha=0.003, rim_alpha=0.0):
+                      line_alpha=0.003, rim_alpha=0.0, line_side_alpha=0.05, flank_alpha=0.01,
+                      flank_distance=2):
     """The documented rule, written with scipy building blocks."""
     side = 2 * radius + 1
     positive = img > np.float32(threshold)
@@ -294,21 +295,39 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
         wide_trials = ndi.convolve(np.ones(img.shape, np.int64), wide_box, mode="constant") - 1
         support = n >= stats.binom.isf(support_alpha, trials, rate) + 1
         dense |= support & ~judged & (n_wide >= stats.binom.isf(alpha, wide_trials, rate) + 1)
-    if line_half:  # dim positives on each line of speckle_tests.line_offsets, both sides present
-        dim = positive & (img <= min_value - 1)
-        size = 2 * line_half + 1
+    if line_half:  # summed whole counts of the dim positives on each line of speckle_tests.line_offsets
+        dim_counts = np.where(positive & (img <= min_value - 1), np.floor(img.astype(np.float64) + 0.5), 0.0)
+        counts = np.floor(img.astype(np.float64) + 0.5)
+        size = 2 * (line_half + flank_distance) + 1
+        centre = line_half + flank_distance
         lines = speckle_tests.line_offsets(line_half)
+        tests = len(lines)
+
+        def along(values, pixels):  # scipy.ndimage.correlate: the sum over the given offsets
+            kernel = np.zeros((size, size))
+            kernel[centre + pixels[:, 0], centre + pixels[:, 1]] = 1
+            return ndi.correlate(values, kernel, mode="constant")
+
+        ones = np.ones(img.shape)
         for line in lines:
-            sides = []
-            whole = np.zeros((size, size), np.int64)
-            for half in (line[:line_half], line[line_half:]):
-                kernel = np.zeros((size, size), np.int64)
-                kernel[line_half + half[:, 0], line_half + half[:, 1]] = 1
-                sides.append(ndi.correlate(dim.astype(np.int64), kernel, mode="constant"))  # scipy.ndimage.correlate
-                whole += kernel
-            line_trials = ndi.correlate(np.ones(img.shape, np.int64), whole, mode="constant")
-            line_min = stats.binom.isf(line_alpha / len(lines), line_trials, rate) + 1  # Bonferroni over the lines
-            dense |= (sides[0] > 0) & (sides[1] > 0) & (sides[0] + sides[1] >= line_min)
+            halves = [(along(dim_counts, h), np.rint(along(ones, h))) for h in (line[:line_half], line[line_half:])]
+            total = halves[0][0] + halves[1][0]
+            trials = halves[0][1] + halves[1][1]
+            ok = total >= stats.poisson.isf(line_alpha / tests, level * trials) + 1  # Bonferroni over the lines
+            for side_sum, side_trials in halves:
+                ok &= side_sum > 0
+                if line_side_alpha < 1:
+                    ok &= side_sum >= stats.poisson.isf(line_side_alpha, level * side_trials) + 1
+            if flank_alpha > 0:  # conditional test of two Poisson means against each parallel line
+                steep = abs(line[line_half - 1, 0]) == line_half
+                for side in (-1, 1):
+                    shift = np.array([0, side * flank_distance]) if steep else np.array([side * flank_distance, 0])
+                    other = along(counts, line + shift)
+                    pixels = np.rint(along(ones, line + shift))
+                    n = np.rint(total + other)
+                    share = trials / np.maximum(trials + pixels, 1)
+                    ok &= (n <= 255) & (total >= stats.binom.isf(flank_alpha, n, share) + 1)  # scipy.stats.binom
+            dense |= ok
     if edge_alpha > 0:  # lower Poisson tail against the mean of the 8 neighbours
         ring = np.ones((3, 3))
         ring[1, 1] = 0
@@ -573,8 +592,9 @@ def test_settings_are_frozen_documented_and_defaults_in_range():
         # the functions' own defaults are the settings' defaults
         values = {f.name: f.default for f in dataclasses.fields(cls) if f.name != "enabled"}
         assert build_settings(cls, values, section="x") == obj
-    assert speckle_depth(SpeckleSettings()) == 5 + 2  # wide_radius + min_area
-    assert speckle_depth(SpeckleSettings(radius=5, min_area=1)) == 6
+    assert speckle_depth(SpeckleSettings()) == 4 + 2 + 2  # line_half + flank_distance + 1 + (min_area - 1)
+    assert speckle_depth(SpeckleSettings(radius=5, min_area=1)) == 7  # line_half + flank_distance + 1
+    assert speckle_depth(SpeckleSettings(radius=5, min_area=1, flank_alpha=0.0)) == 6
     assert BackgroundEstimate._fields[:4] == ("rate", "level", "count_threshold", "value_threshold")
 
 

@@ -8,8 +8,9 @@ Figures as in ``benchmarks/tissue_accuracy.py`` (hot pixels of the truth left ou
 Measured on this fixture (seed 3, plain / low-count): background removed in tissue 98.0 /
 98.5 % (95.5 / 91.7 % before the rim rule), on glass 99.6 / 99.7 %; kept: worst cell stain
 98.8 / 98.8 % (96.6 / 95.0 % before the hot-pixel margin and the lone-pixel rule), dim stain
-100.6 / 97.9 %, fibres 96.9 / 92.3 % (92.0 / 90.6 % before the line test), diffuse 96.5 /
-83.4 %; ghost left in the failed stain 0.6 / 1.1 %. Bounds leave a margin of a few points below those; where they sit below the issue's
+100.6 / 97.9 %, fibres 98.6 / 92.3 % (96.9 / 92.3 % when the line test counted positive
+pixels, 92.0 / 90.6 % before the line test), diffuse 96.4 / 83.2 %; ghost left in the failed
+stain 0.6 / 1.1 %. Bounds leave a margin of a few points below those; where they sit below the issue's
 targets (noted beside each), the target is not met yet. For contrast the single-rate
 speckle step removes at most 80 % of tissue background on the same ROI.
 """
@@ -106,6 +107,8 @@ def test_cells_fibres_and_diffuse_stains_are_kept(figures):
         assert fig["dim"] >= 0.95  # the dim stain, ~3 counts on a few % of pixels; target 98 %
         assert fig["fibre"] >= 0.91  # 1-2 px fibres at 1-4 counts; target 97 %
         assert fig["diffuse"] >= 0.78  # 0.3-0.8 counts over the stroma (0.15-0.4 low-count); target 95 %
+    # summed counts on the line (Poisson test) with the side and flank tests: 98.6 % (96.9 % counting positives)
+    assert figures["plain"]["fibre"] >= 0.97
 
 
 def test_ghost_left_in_a_failed_stain(figures):

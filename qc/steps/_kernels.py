@@ -169,7 +169,7 @@ def centre_histogram(image, counts, threshold, radius, histogram):
 
 
 @nb.njit(cache=True, nogil=True)
-def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count, zone, threshold, radius, min_count, wide_radius, wide_min_count,
+def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count, line_flank, line_flank_min, zone, threshold, radius, min_count, wide_radius, wide_min_count,
                    support_min_count, value_cut, low_mean, keep_touching, min_area, lone_cut, rim_min_count,
                    rim_value, out, removed):
     """Local-density speckle filter of one channel; return how many pixels were set to 0.
@@ -180,9 +180,10 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
     counts : uint16 (H, W), from :func:`window_counts` (centre included)
     threshold : float32, a pixel is positive when ``value > threshold``
     wide : uint16 (H, W), :func:`window_counts` with ``wide_radius``
-    line_offsets, line_upper, line_min_count : the line test of :func:`line_dense` (offsets
-        (O, 2 * half, 2), O = 0 for off; ``upper``; table (Z, T)), asked only of a positive
-        pixel no other rule makes dense; a pixel on such a line is dense
+    line_offsets, line_upper, line_min_count, line_flank, line_flank_min : the line test of
+        :func:`line_sum_dense` (offsets (O, 2 * half, 2), O = 0 for off; ``upper``; tables
+        (Z, 2, T + 1); flank distance; flank table), asked only of a positive pixel no other
+        rule makes dense; a pixel on such a line is dense
     zone : uint8 (H, W), the background zone of each pixel (indexes the tables below)
     radius : int, window half-width
     min_count : int32 (Z, 2r+2, 2r+2); ``min_count[z, a, b]`` = smallest neighbour count kept
@@ -224,8 +225,8 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
                     wrows = min(height - 1, y + wide_radius) - max(0, y - wide_radius) + 1
                     wcols = min(width - 1, x + wide_radius) - max(0, x - wide_radius) + 1
                     dense = np.int32(wide[y, x]) - 1 >= wide_min_count[z, wrows, wcols]
-                if not dense and line_offsets.shape[0] > 0 and _on_line(
-                        image, y, x, threshold, line_upper, line_offsets, line_min_count[z]):
+                if not dense and line_offsets.shape[0] > 0 and _on_line_sum(
+                        image, y, x, threshold, line_upper, line_offsets, line_min_count[z], line_flank, line_flank_min):
                     dense = True
                 if dense and not _below_neighbours(image, y, x, v, low_mean):
                     state[y, x] = _CORE
@@ -377,84 +378,104 @@ def _drop_small_components(state, min_area):
 
 
 @nb.njit(cache=True, nogil=True)
-def line_dense(image, threshold, upper, offsets, zone, line_min_count, out):
-    """Mark positive pixels through which a line of dim positive pixels passes (uint8 ``out``).
-
-    ``offsets`` (O, 2 * half, 2) int64: for each orientation the pixel offsets of the line
-    through a pixel, ``half`` ahead then ``half`` behind (see
-    :func:`plexwash.qc.steps.speckle_tests.line_offsets`). On each line the pixels inside the
-    array are ``trials``; ``n`` of them are positive and not above ``upper`` (dim). The pixel
-    is marked when, for some orientation, both sides hold at least one such pixel and
-    ``n >= line_min_count[zone, trials]`` (:func:`_on_line`). :func:`speckle_filter` asks the
-    same question only of the pixels no other rule keeps.
-    """
+def line_sum_dense(image, threshold, upper, offsets, zone, line_min_sum, flank, flank_min, out):
+    """Mark positive pixels through which a dense line of dim counts passes (uint8 ``out``; see
+    :func:`_on_line_sum`, ``table`` = ``line_min_sum[zone]``). :func:`speckle_filter` asks the
+    same question only of the pixels no other rule keeps (the line test of the speckle step,
+    :func:`plexwash.qc.steps.speckle_tests.line_sum_tables` and ``line_flank_table``)."""
     height, width = image.shape
     for y in range(height):
         for x in range(width):
             out[y, x] = 0
-            if image[y, x] > threshold and _on_line(image, y, x, threshold, upper, offsets,
-                                                    line_min_count[zone[y, x]]):
+            if image[y, x] > threshold and _on_line_sum(image, y, x, threshold, upper, offsets,
+                                                        line_min_sum[zone[y, x]], flank, flank_min):
                 out[y, x] = 1
 
 
 @nb.njit(cache=True, nogil=True)
-def _on_line_inside(image, y, x, threshold, upper, offsets, need):
-    """:func:`_on_line` for a pixel whose lines lie inside the image (``trials`` = the line's
-    length, so ``need`` = its table entry): the same answer, with a line given up as soon as
-    its remaining pixels cannot bring it to ``need``, or its first side holds none."""
-    n_lines, length, _ = offsets.shape
-    half = length // 2
-    if need > length:
-        return False
-    for o in range(n_lines):
-        ahead = 0
-        for k in range(half):
-            v = image[y + offsets[o, k, 0], x + offsets[o, k, 1]]
-            if threshold < v <= upper:
-                ahead += 1
-        if ahead == 0 or ahead + half < need:
-            continue
-        behind = 0
-        for k in range(half, length):
-            v = image[y + offsets[o, k, 0], x + offsets[o, k, 1]]
-            if threshold < v <= upper:
-                behind += 1
-            elif ahead + behind + (length - 1 - k) < need:
-                break
-        if behind > 0 and ahead + behind >= need:
-            return True
-    return False
+def _whole(v):
+    """A value rounded to whole counts (half up)."""
+    return np.floor(np.float64(v) + 0.5)
 
 
 @nb.njit(cache=True, nogil=True)
-def _on_line(image, y, x, threshold, upper, offsets, table):
-    """Whether a line of dim positive pixels passes through (y, x) (see :func:`line_dense`)."""
+def _flank_sum(image, y, x, offsets, o, shift_y, shift_x):
+    """Whole counts and pixels inside the image of line ``o`` moved by (shift_y, shift_x)."""
+    height, width = image.shape
+    total = 0.0
+    pixels = 0
+    for k in range(offsets.shape[1]):
+        yy = y + offsets[o, k, 0] + shift_y
+        xx = x + offsets[o, k, 1] + shift_x
+        if 0 <= yy < height and 0 <= xx < width:
+            total += _whole(image[yy, xx])
+            pixels += 1
+    return total, pixels
+
+
+@nb.njit(cache=True, nogil=True)
+def _on_line_sum(image, y, x, threshold, upper, offsets, table, flank, flank_min):
+    """Whether some line through (y, x) is dense.
+
+    On the line's ``t`` pixels inside the image the dim positive values (``threshold < v <=
+    upper``), each rounded to whole counts, sum to ``s`` (``a`` and ``b`` on its halves of
+    ``h`` pixels). The line is dense when both halves hold a dim positive pixel, ``s >=
+    table[0, t]``, ``a >= table[1, h_a]``, ``b >= table[1, h_b]`` and, for each of the two
+    parallel lines ``flank`` pixels away across it (``f`` pixels inside the image, ``n`` whole
+    counts of any value), ``s >= flank_min[t, f, s + n]`` (not dense when ``s + n`` lies beyond
+    the table's last axis; no flank test when ``flank_min`` is empty).
+    """
     height, width = image.shape
     n_lines, length, _ = offsets.shape
     half = length // 2
-    possible = False  # some line length t whose table entry can be met (table[t] <= t)
-    for t in range(min(length, table.shape[0] - 1) + 1):
-        if table[t] <= t:
+    inside = half <= y < height - half and half <= x < width - half
+    brightest = np.floor(np.float64(upper) + 0.5)
+    possible = False  # some line length t whose sum a line of the brightest dim pixels reaches
+    for t in range(length + 1):
+        if table[0, t] <= t * brightest:
             possible = True
             break
     if not possible:
         return False
-    if half <= y < height - half and half <= x < width - half:  # every line pixel inside
-        return _on_line_inside(image, y, x, threshold, upper, offsets, table[length])
     for o in range(n_lines):
-        ahead = 0
-        behind = 0
-        trials = 0
-        for k in range(length):
+        ahead = 0.0
+        behind = 0.0
+        n_ahead = 0
+        n_behind = 0
+        for k in range(half):  # the first half: the line is given up when it fails the side test
             yy = y + offsets[o, k, 0]
             xx = x + offsets[o, k, 1]
-            if 0 <= yy < height and 0 <= xx < width:
-                trials += 1
-                if threshold < image[yy, xx] <= upper:
-                    if k < half:
-                        ahead += 1
-                    else:
-                        behind += 1
-        if ahead > 0 and behind > 0 and ahead + behind >= table[trials]:
+            if inside or (0 <= yy < height and 0 <= xx < width):
+                n_ahead += 1
+                v = image[yy, xx]
+                if threshold < v <= upper:
+                    ahead += _whole(v)
+        if ahead <= 0.0 or ahead < table[1, n_ahead]:
+            continue
+        for k in range(half, length):
+            yy = y + offsets[o, k, 0]
+            xx = x + offsets[o, k, 1]
+            if inside or (0 <= yy < height and 0 <= xx < width):
+                n_behind += 1
+                v = image[yy, xx]
+                if threshold < v <= upper:
+                    behind += _whole(v)
+        total = ahead + behind
+        if not (ahead > 0.0 and behind > 0.0 and ahead >= table[1, n_ahead] and behind >= table[1, n_behind]
+                and total >= table[0, n_ahead + n_behind]):
+            continue
+        if flank_min.shape[0] == 0:
+            return True
+        steep = abs(offsets[o, half - 1, 0]) == half  # one pixel per row: the flanks lie across x
+        dense = True
+        for side in (-1, 1):
+            sy = 0 if steep else side * flank
+            sx = side * flank if steep else 0
+            other, pixels = _flank_sum(image, y, x, offsets, o, sy, sx)
+            n = np.int64(total + other)
+            if n >= flank_min.shape[2] or total < flank_min[n_ahead + n_behind, pixels, n]:
+                dense = False
+                break
+        if dense:
             return True
     return False

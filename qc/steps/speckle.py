@@ -91,8 +91,9 @@ from .speckle_tests import (
     MIN_REGION_WINDOWS,
     binomial_min_count,
     fit_rate,
+    line_flank_table,
     line_offsets,
-    line_tables,
+    line_sum_tables,
     lone_cuts,
     low_mean_table,
     poisson_level,
@@ -247,7 +248,8 @@ def _background_from_histogram(histogram: np.ndarray | None, settings: SpeckleSe
 def speckle_depth(settings: SpeckleSettings) -> int:
     """Overlap that makes the chunked speckle filter equal the whole-image filter.
 
-    The largest of ``radius``, ``wide_radius`` and ``line_half`` for the window and line counts, 1 for the neighbour
+    The largest of ``radius``, ``wide_radius`` and ``line_half`` (plus ``flank_distance`` with the flank test)
+    for the window and line counts, 1 for the neighbour
     mean and the ``keep_touching`` rule, ``min_area - 1`` for the component-size rule (see the
     module notes).
 
@@ -255,9 +257,19 @@ def speckle_depth(settings: SpeckleSettings) -> int:
     --------
     >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=0, line_half=0, min_area=2))
     4
+    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=5, line_half=4, flank_distance=2, min_area=2))
+    8
     """
-    return (max(int(settings.radius), int(settings.wide_radius), int(settings.line_half)) + 1
+    return (max(int(settings.radius), int(settings.wide_radius), _line_reach(settings)) + 1
             + max(int(settings.min_area) - 1, 0))
+
+
+def _line_reach(settings: SpeckleSettings) -> int:
+    """How far from a pixel the line test reads: the line, and its flanks moved across it."""
+    half = int(settings.line_half)
+    if half <= 0:
+        return 0
+    return half + (int(settings.flank_distance) if settings.flank_alpha > 0 else 0)
 
 
 def remove_speckle(
@@ -275,6 +287,10 @@ def remove_speckle(
     lone_alpha: float = 1e-12,
     line_half: int = 4,
     line_alpha: float = 0.003,
+    line_side_alpha: float = 0.05,
+    line_max_level: float = 1.0,
+    flank_alpha: float = 0.01,
+    flank_distance: int = 2,
     rim_alpha: float = 0.01,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
@@ -312,10 +328,20 @@ def remove_speckle(
         Smallest kept component, in pixels (1: no size rule).
     line_half : int, optional
         A pixel is also dense when, on a line of ``2 * line_half`` pixels through it (16
-        orientations and their phases, both sides represented), its dim positive pixels are improbably many
-        (binomial test at ``line_alpha / T`` for ``T`` lines, Bonferroni; 0: off).
+        orientations and their phases), the summed counts of its dim positive pixels are
+        improbably high for background (Poisson test at ``line_alpha / T`` for ``T`` lines,
+        Bonferroni; 0: off), each half's on its own too (``line_side_alpha``), and the line is
+        denser than each parallel line ``flank_distance`` pixels across it (``flank_alpha``).
     line_alpha : float, optional
         False-keep rate of the line test for one background pixel.
+    line_side_alpha : float, optional
+        Poisson test each half of the line must pass on its own (1: off).
+    line_max_level : float, optional
+        The line test is asked only where the background level is at most this (counts per
+        pixel): on denser backgrounds the square windows alone judge.
+    flank_alpha, flank_distance : optional
+        The line's counts against each flank's: conditional test of two Poisson means
+        (Przyborowski & Wilenski 1940) at ``flank_alpha`` (0: off).
     rim_alpha : float, optional
         Rim rule: a pixel dense in its own window beside a bright cell is judged on its other
         neighbours alone (exact binomial test at ``rim_alpha``; 0: off).
@@ -358,7 +384,8 @@ def remove_speckle(
     values = {"threshold": threshold, "radius": radius, "alpha": alpha, "value_alpha": value_alpha,
               "keep_touching": keep_touching, "min_area": min_area, "edge_alpha": edge_alpha,
               "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
-              "line_half": line_half, "line_alpha": line_alpha, "rim_alpha": rim_alpha}
+              "line_half": line_half, "line_alpha": line_alpha, "line_side_alpha": line_side_alpha,
+              "line_max_level": line_max_level, "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
@@ -459,7 +486,9 @@ def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate
         "min_area": int(settings.min_area),
         "lone_cut": lone_cuts(levels, settings),
         "line_half": int(settings.line_half),
-        "line_min_count": line_tables(tabled, rates, settings),
+        "line_min_count": line_sum_tables(tabled, settings),
+        "line_flank": int(settings.flank_distance),
+        "line_flank_min": line_flank_table(int(settings.line_half), float(settings.flank_alpha)),
         "rim_min_count": rim_tables(tabled, rates, settings),
         "rim_value": rim_values(tabled, settings),
         "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),

@@ -41,14 +41,33 @@ class SpeckleSettings:
         low=0, high=50,
     )
     line_half: int = setting(
-        4, "half-length of the line windows (8 orientations): a pixel is also kept when the dim positive"
-        " pixels on a line through it are improbably many (line_alpha over all lines, Bonferroni); keeps thin"
-        " fibres (0: off)",
+        4, "half-length of the line windows (16 orientations and their phases): a pixel is also kept when"
+        " the summed counts of the dim positive pixels on a line through it are improbably high (Poisson test,"
+        " line_alpha over all lines, Bonferroni); keeps thin fibres (0: off)",
         low=0, high=50,
     )
     line_alpha: float = setting(
         0.003, "false-keep rate of the line test for one background pixel, shared by all its lines", low=0.0,
         high=0.5, low_open=True,
+    )
+    line_side_alpha: float = setting(
+        0.05, "each half of such a line must hold counts this improbable for background on its own (a"
+        " background pixel beside a cell or past a fibre's end has a half of background; 1: off)",
+        low=0.0, high=1.0, low_open=True,
+    )
+    flank_alpha: float = setting(
+        0.01, "such a line must also be this improbably denser than each parallel line flank_distance pixels"
+        " to either side (conditional test of two Poisson means): a fibre is, a line along a cell's edge or"
+        " across two cells is not (0: off)", low=0.0, high=0.5,
+    )
+    line_max_level: float = setting(
+        1.0, "the line test is asked only where the background is at most this many counts per pixel (on a"
+        " denser background nearly every pixel is positive and the square windows alone judge it: the line"
+        " test would cost a scan of every line of every pixel)", low=0.0, high=1e6,
+    )
+    flank_distance: int = setting(
+        2, "distance in pixels, across the line, of the two parallel lines the flank test compares with",
+        low=1, high=20,
     )
     support_alpha: float = setting(
         0.2, "how improbable for background the own window's count must be for the wider window to count",

@@ -21,10 +21,18 @@ Low against the neighbours
     (Abramowitz & Stegun 6.5.2, 26.4.19), so the rule is ``mu > Q^-1(v + 1, edge_alpha)``
     (:func:`low_mean_table`, ``scipy.special.gammainccinv``).
 Line test
-    Binomial test on the dim positive pixels of a line of ``2 * line_half`` pixels through
-    a positive pixel, in eight orientations and the phases a digital line can take, at
-    ``line_alpha / T`` for ``T`` such lines (Bonferroni over the lines): a thin fibre puts most of its pixels on one of the lines, where a square
-    window dilutes them among background (:func:`line_tables`, kernel ``line_dense``).
+    Poisson test on the summed whole counts of the dim positive pixels of a line of
+    ``2 * line_half`` pixels through a positive pixel, in 16 orientations and the phases a
+    digital line can take, at ``line_alpha / T`` for ``T`` such lines (Bonferroni over the
+    lines): a thin fibre puts most of its pixels on one of the lines, where a square window
+    dilutes them among background, and summing its counts keeps what a fibre of 1-4 counts
+    per pixel carries (counting its positive pixels, a binomial test, throws that away).
+    Each half of the line must pass the same test on its own at ``line_side_alpha``, and the
+    line must be denser than each parallel line ``flank_distance`` pixels across it
+    (conditional test of two Poisson means, Przyborowski & Wilenski 1940, at
+    ``flank_alpha``): a background pixel beside a cell, between two cells or past a fibre's
+    end fails those (:func:`line_sum_tables`, :func:`line_flank_table`, kernel
+    ``line_sum_dense``).
 Lone pixels
     Poisson upper tail at ``lone_alpha`` (1e-12, about ``value_alpha`` over a million
     pixels, Bonferroni): a pixel this bright is kept even when it is alone, so a one-pixel
@@ -63,8 +71,9 @@ __all__ = [
     "fit_rate",
     "LINE_ORIENTATIONS",
     "LINE_PHASES",
+    "line_flank_table",
     "line_offsets",
-    "line_tables",
+    "line_sum_tables",
     "lone_cuts",
     "low_mean_table",
     "min_count_table",
@@ -384,24 +393,6 @@ def line_offsets(half: int) -> np.ndarray:
     return offsets
 
 
-def line_tables(levels: np.ndarray, rates, settings) -> np.ndarray:
-    """``table[z, t]``: smallest dim positive count on a line of ``t`` pixels kept in zone ``z``.
-
-    Exact one-sided binomial test at ``line_alpha / T`` for the ``T`` lines of
-    :func:`line_offsets`: Bonferroni over the lines (Bonferroni 1936), so a background pixel
-    is kept by some line with probability at most ``line_alpha``.
-    """
-    half = int(settings.line_half)
-    if rates is None:
-        rates = positive_rate(levels, settings.threshold)
-    rates = np.asarray(rates, np.float64)
-    trials = np.arange(2 * half + 1)
-    tests = len(line_offsets(half)) if half > 0 else 1
-    table = _rate_tables(trials, rates, settings.line_alpha / tests).astype(np.int32)
-    table[rates >= 1.0] = 0
-    return np.ascontiguousarray(table)
-
-
 def lone_cuts(levels: np.ndarray, settings) -> np.ndarray:
     """Per zone, the value above which a pixel is kept even alone (``lone_alpha``; inf: off).
 
@@ -474,3 +465,67 @@ def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
     out = np.array(image, np.float32, order="C")
     out.reshape(-1)[residue] = np.float32(0.0)
     return out
+
+
+def line_sum_tables(levels: np.ndarray, settings) -> np.ndarray:
+    """``table[z, 0, t]``: smallest sum of dim counts on a line of ``t`` pixels kept in zone ``z``;
+    ``table[z, 1, h]``: smallest sum on each of its halves of ``h`` pixels.
+
+    The line: exact one-sided Poisson test of its summed whole counts against its background
+    mean ``t * level[z]`` (``P(S >= s)``, the regularised lower incomplete gamma function,
+    Abramowitz & Stegun 6.5.2 and 26.4.21, via :func:`poisson_min_values`), at
+    ``line_alpha / T`` for the ``T`` lines of :func:`line_offsets`: Bonferroni over the lines
+    (Bonferroni 1936), so a background pixel is kept by some line with probability at most
+    ``line_alpha``. Summing the counts, not counting positive pixels, uses what a fibre of
+    1-4 counts per pixel carries (a binomial count of positives throws it away). Each half:
+    the same test at ``line_side_alpha`` (1: off), a condition that only makes the line test
+    stricter (a background pixel beside a cell or past a fibre's end has a half of
+    background). Leaving out the bright pixels (above the value test's cut) only lowers a
+    background line's sum, so the tests stay conservative. A zone whose level is above
+    ``line_max_level`` is not tested (every entry :data:`NO_LINE`: no line reaches it); one
+    whose level is infinite (every pixel positive) keeps every pixel: 0.
+    """
+    levels = np.asarray(levels, np.float64)
+    half = int(settings.line_half)
+    tests = len(line_offsets(half)) if half > 0 else 1
+    trials = np.arange(2 * half + 1, dtype=np.float64)
+    finite = np.isfinite(levels)
+    table = np.zeros((len(levels), 2, trials.size), np.int32)
+    means = trials[None, :] * levels[finite][:, None]
+    table[finite, 0] = poisson_min_values(means, settings.line_alpha / tests).astype(np.int32)
+    if settings.line_side_alpha < 1.0:
+        table[finite, 1] = poisson_min_values(means, settings.line_side_alpha).astype(np.int32)
+    table[finite & (levels > settings.line_max_level)] = NO_LINE
+    return table
+
+
+#: A line-table entry no line's sum reaches (the line test is not asked there).
+NO_LINE = np.iinfo(np.int32).max
+
+
+#: Largest whole-count total of a line and a flank the flank test is tabulated for (a
+#: brighter pair is a cell's, not a dim fibre's: the line test then fails).
+FLANK_TOTAL = 255
+
+
+@functools.lru_cache(maxsize=8)
+def line_flank_table(half: int, alpha: float) -> np.ndarray:
+    """``table[t, f, n]``: smallest whole-count sum on a line of ``t`` pixels that is improbably
+    high against a parallel line of ``f`` pixels when the two hold ``n`` counts together.
+
+    Conditional test of two Poisson means (Przyborowski & Wilenski 1940, the "C-test"):
+    under equal rates, given the total ``n`` the line's share is ``Binomial(n, t / (t + f))``;
+    exact one-sided binomial upper tail at ``alpha`` (``scipy.special.bdtrc``). A fibre is
+    denser than the background beside it on both sides; a line along the edge of a cell,
+    or across two cells, is not. Shape (0, 0, 0) when off (``alpha`` or ``half`` 0).
+    """
+    if alpha <= 0 or half <= 0:
+        return np.zeros((0, 0, 0), np.int32)
+    t = np.arange(2 * half + 1)[:, None, None]
+    f = np.arange(2 * half + 1)[None, :, None]
+    n = np.arange(FLANK_TOTAL + 1)[None, None, :]
+    share = np.where(t + f > 0, t / np.maximum(t + f, 1), 1.0)
+    trials, share = np.broadcast_arrays(n, share)
+    table = binomial_min_count(trials, share, alpha).astype(np.int32)
+    table.flags.writeable = False  # cached: shared by every call
+    return table
