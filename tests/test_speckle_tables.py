@@ -108,8 +108,8 @@ def test_tables_of_the_zones_present_equal_the_tables_of_every_zone():
     assert tabulated_levels(levels, None) is levels
     settings = SpeckleSettings()
     background = sp._background_from_histogram(None, settings, rate=0.2)._replace(zone_levels=levels)
-    everywhere = sp._filter_parameters(settings, background)
-    here = sp._filter_parameters(settings, background, zone)
+    everywhere = sp.filter_parameters(settings, background)
+    here = sp.filter_parameters(settings, background, zone)
     for key, value in everywhere.items():
         if isinstance(value, np.ndarray) and value.shape[:1] == (256,):
             np.testing.assert_array_equal(here[key][present], value[present], err_msg=key)

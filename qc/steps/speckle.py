@@ -90,19 +90,12 @@ from .speckle_settings import SpeckleSettings
 from .speckle_tests import (
     MIN_REGION_WINDOWS,
     binomial_min_count,
+    filter_parameters,
     fit_rate,
-    line_flank_table,
     line_offsets,
-    line_sum_tables,
-    lone_cuts,
-    low_mean_table,
     poisson_level,
     poisson_min_value,
-    rim_tables,
-    rim_values,
-    tabulated_levels,
     without_residue,
-    zone_tables,
 )
 
 __all__ = [
@@ -406,7 +399,7 @@ def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out
     counts = _counts(image, settings)
     if background is None:
         background = _estimate(image, counts, settings, zone)
-    params = _filter_parameters(settings, background, zone)
+    params = filter_parameters(settings, background, zone)
     tested = without_residue(image, spilled, zone if params["zoned"] else None, params["levels"],
                              settings.residue_alpha)
     if tested is not image:
@@ -452,52 +445,6 @@ def _regional_background(histogram: np.ndarray, settings: SpeckleSettings) -> Ba
     return base._replace(glass_level=float(levels[0] if has_glass else np.nan), zone_levels=zone_levels)
 
 
-def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate, zone=None) -> dict:
-    """Everything the kernel needs besides the pixels (and the zone map: with it, the zone
-    tables are searched only for the codes it holds)."""
-    zoned = background.zone_levels is not None
-    if zoned:
-        levels, rates = background.zone_levels, None
-    else:
-        levels, rates = np.array([background.level]), np.array([background.rate])
-    tabled = tabulated_levels(levels, zone) if zoned else levels
-    tables = {"threshold": settings.threshold, "value_alpha": settings.value_alpha}
-    min_count, value_cut = zone_tables(tabled, rates=rates, radius=int(settings.radius), alpha=settings.alpha,
-                                       **tables)
-    wide_radius = int(settings.wide_radius)
-    if wide_radius > 0:
-        support, _ = zone_tables(tabled, rates=rates, radius=int(settings.radius),
-                                 alpha=settings.support_alpha, **tables)
-        wide, _ = zone_tables(tabled, rates=rates, radius=wide_radius, alpha=settings.alpha, **tables)
-    else:  # never: more neighbours than any window has
-        support = np.full_like(min_count, np.iinfo(np.int32).max)
-        wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
-    return {
-        "threshold": np.float32(settings.threshold),
-        "radius": int(settings.radius),
-        "min_count": min_count,
-        "wide_radius": wide_radius,
-        "wide_upper": float(poisson_min_value(float(np.max(levels[np.isfinite(levels)], initial=0.0)),
-                                              settings.value_alpha) - 1.0),
-        "wide_min_count": wide,
-        "support_min_count": support,
-        "value_cut": value_cut,
-        "low_mean": low_mean_table(float(settings.edge_alpha)),
-        "min_area": int(settings.min_area),
-        "lone_cut": lone_cuts(levels, settings),
-        "line_half": int(settings.line_half),
-        "line_min_count": line_sum_tables(tabled, settings),
-        "line_flank": int(settings.flank_distance),
-        "line_flank_min": line_flank_table(int(settings.line_half), float(settings.flank_alpha)),
-        "rim_min_count": rim_tables(tabled, rates, settings),
-        "rim_value": rim_values(tabled, settings),
-        "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
-        "keep_touching": bool(settings.keep_touching),
-        "zoned": zoned,
-        "levels": np.asarray(levels, np.float64),
-    }
-
-
 def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
     if params["pass_through"]:  # every window is full: no pixel is sparser than background
         out[...] = image
@@ -531,7 +478,7 @@ def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: Sp
 
 def _speckle_dask(image, settings: SpeckleSettings, background: BackgroundEstimate) -> StepResult:
     out = lift_channel(image, _speckle_block, speckle_depth(settings),
-                       params=_filter_parameters(settings, background))
+                       params=filter_parameters(settings, background))
     removed = image - out
     stats = _speckle_stats(settings, background)
     stats.update(n_removed=(removed > 0).sum(), removed_fraction=removed_fraction(removed, image))
@@ -625,7 +572,7 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
         return _speckle_numpy(image, s, None, out, removed, zone=zone if s.local_rates else None, spilled=ghost)
 
     def block_kernel(c, s):
-        kernel = functools.partial(_speckle_block, params=_filter_parameters(s, backgrounds[c]), settings=s)
+        kernel = functools.partial(_speckle_block, params=filter_parameters(s, backgrounds[c]), settings=s)
         return kernel, speckle_depth(s), _speckle_stats(s, backgrounds[c])
 
     passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None,

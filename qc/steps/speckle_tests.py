@@ -68,6 +68,7 @@ __all__ = [
     "binomial_upper_point",
     "box3",
     "drop_residue",
+    "filter_parameters",
     "fit_rate",
     "LINE_ORIENTATIONS",
     "LINE_PHASES",
@@ -529,3 +530,51 @@ def line_flank_table(half: int, alpha: float) -> np.ndarray:
     table = binomial_min_count(trials, share, alpha).astype(np.int32)
     table.flags.writeable = False  # cached: shared by every call
     return table
+
+
+def filter_parameters(settings, background, zone=None) -> dict:
+    """Everything the speckle kernel needs besides the pixels: every table of this module for
+    ``settings`` (a ``SpeckleSettings``) and the channel's ``background`` (a
+    ``speckle.BackgroundEstimate``). With the ``zone`` map, the zone tables are searched only
+    for the codes it holds."""
+    zoned = background.zone_levels is not None
+    if zoned:
+        levels, rates = background.zone_levels, None
+    else:
+        levels, rates = np.array([background.level]), np.array([background.rate])
+    tabled = tabulated_levels(levels, zone) if zoned else levels
+    tables = {"threshold": settings.threshold, "value_alpha": settings.value_alpha}
+    min_count, value_cut = zone_tables(tabled, rates=rates, radius=int(settings.radius), alpha=settings.alpha,
+                                       **tables)
+    wide_radius = int(settings.wide_radius)
+    if wide_radius > 0:
+        support, _ = zone_tables(tabled, rates=rates, radius=int(settings.radius),
+                                 alpha=settings.support_alpha, **tables)
+        wide, _ = zone_tables(tabled, rates=rates, radius=wide_radius, alpha=settings.alpha, **tables)
+    else:  # never: more neighbours than any window has
+        support = np.full_like(min_count, np.iinfo(np.int32).max)
+        wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
+    return {
+        "threshold": np.float32(settings.threshold),
+        "radius": int(settings.radius),
+        "min_count": min_count,
+        "wide_radius": wide_radius,
+        "wide_upper": float(poisson_min_value(float(np.max(levels[np.isfinite(levels)], initial=0.0)),
+                                              settings.value_alpha) - 1.0),
+        "wide_min_count": wide,
+        "support_min_count": support,
+        "value_cut": value_cut,
+        "low_mean": low_mean_table(float(settings.edge_alpha)),
+        "min_area": int(settings.min_area),
+        "lone_cut": lone_cuts(levels, settings),
+        "line_half": int(settings.line_half),
+        "line_min_count": line_sum_tables(tabled, settings),
+        "line_flank": int(settings.flank_distance),
+        "line_flank_min": line_flank_table(int(settings.line_half), float(settings.flank_alpha)),
+        "rim_min_count": rim_tables(tabled, rates, settings),
+        "rim_value": rim_values(tabled, settings),
+        "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
+        "keep_touching": bool(settings.keep_touching),
+        "zoned": zoned,
+        "levels": np.asarray(levels, np.float64),
+    }
