@@ -492,10 +492,12 @@ def line_sum_tables(levels: np.ndarray, settings) -> np.ndarray:
     trials = np.arange(2 * half + 1, dtype=np.float64)
     finite = np.isfinite(levels)
     table = np.zeros((len(levels), 2, trials.size), np.int32)
-    means = trials[None, :] * levels[finite][:, None]
-    table[finite, 0] = poisson_min_values(means, settings.line_alpha / tests).astype(np.int32)
+    # each zone's row depends on its level alone: searched once per distinct level
+    distinct, at = np.unique(levels[finite], return_inverse=True)
+    means = trials[None, :] * distinct[:, None]
+    table[finite, 0] = poisson_min_values(means, settings.line_alpha / tests).astype(np.int32)[at.ravel()]
     if settings.line_side_alpha < 1.0:
-        table[finite, 1] = poisson_min_values(means, settings.line_side_alpha).astype(np.int32)
+        table[finite, 1] = poisson_min_values(means, settings.line_side_alpha).astype(np.int32)[at.ravel()]
     table[finite & (levels > settings.line_max_level)] = NO_LINE
     return table
 
