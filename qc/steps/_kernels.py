@@ -414,6 +414,25 @@ def _flank_sum(image, y, x, offsets, o, shift_y, shift_x):
 
 
 @nb.njit(cache=True, nogil=True)
+def _dim_sum(image, y, x, threshold, upper, offsets, o, first, stop, inside):
+    """Whole counts of the dim positive pixels (``threshold < v <= upper``) on line ``o``'s
+    pixels ``first`` to ``stop - 1`` through (y, x), and how many of those pixels lie inside
+    the image (all of them when ``inside``)."""
+    height, width = image.shape
+    total = 0.0
+    pixels = 0
+    for k in range(first, stop):
+        yy = y + offsets[o, k, 0]
+        xx = x + offsets[o, k, 1]
+        if inside or (0 <= yy < height and 0 <= xx < width):
+            pixels += 1
+            v = image[yy, xx]
+            if threshold < v <= upper:
+                total += _whole(v)
+    return total, pixels
+
+
+@nb.njit(cache=True, nogil=True)
 def _on_line_sum(image, y, x, threshold, upper, offsets, table, flank, flank_min):
     """Whether some line through (y, x) is dense.
 
@@ -438,28 +457,11 @@ def _on_line_sum(image, y, x, threshold, upper, offsets, table, flank, flank_min
     if not possible:
         return False
     for o in range(n_lines):
-        ahead = 0.0
-        behind = 0.0
-        n_ahead = 0
-        n_behind = 0
-        for k in range(half):  # the first half: the line is given up when it fails the side test
-            yy = y + offsets[o, k, 0]
-            xx = x + offsets[o, k, 1]
-            if inside or (0 <= yy < height and 0 <= xx < width):
-                n_ahead += 1
-                v = image[yy, xx]
-                if threshold < v <= upper:
-                    ahead += _whole(v)
+        # the first half: the line is given up when it fails the side test
+        ahead, n_ahead = _dim_sum(image, y, x, threshold, upper, offsets, o, 0, half, inside)
         if ahead <= 0.0 or ahead < table[1, n_ahead]:
             continue
-        for k in range(half, length):
-            yy = y + offsets[o, k, 0]
-            xx = x + offsets[o, k, 1]
-            if inside or (0 <= yy < height and 0 <= xx < width):
-                n_behind += 1
-                v = image[yy, xx]
-                if threshold < v <= upper:
-                    behind += _whole(v)
+        behind, n_behind = _dim_sum(image, y, x, threshold, upper, offsets, o, half, length, inside)
         total = ahead + behind
         if not (ahead > 0.0 and behind > 0.0 and ahead >= table[1, n_ahead] and behind >= table[1, n_behind]
                 and total >= table[0, n_ahead + n_behind]):
