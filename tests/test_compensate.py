@@ -118,6 +118,31 @@ def test_strong_spillover_uses_pivoting_and_matches_scipy():
     assert kkt_violation(stack, s, out) < 1e-5
 
 
+def test_strong_spillover_in_components_of_two_and_three_channels():
+    # The pivoting solver once read a block's scratch rows (at least four) as the
+    # component's channels: components of fewer than four channels read past their
+    # matrices (garbage or a crash). Reference: scipy.optimize.nnls per pixel.
+    s = np.eye(6)
+    s[0, 1], s[1, 0] = 0.9, 0.8  # two channels, strong both ways
+    s[2, 3], s[3, 4], s[4, 2] = 0.7, 0.6, 0.75  # three channels in a strong ring
+    comps = [c for c in _prepare_components(s) if c.idx.size > 1]
+    assert sorted(c.idx.size for c in comps) == [2, 3]
+    assert {c.mode for c in comps} == {_nnls.MODE_PIVOT}
+    rng = np.random.default_rng(21)
+    stack = rng.poisson(5.0, size=(6, 17, 13)).astype(np.float32)
+    for parallel in (True, False):
+        counts = {}
+        out = compensate_array(stack, s, method="nnls", parallel=parallel, counts=counts)
+        assert counts["pivoted"] > 0
+        assert_matches_scipy(stack, s, out)
+        assert kkt_violation(stack, s, out) < 1e-5
+    # the same pixels through the sweeps' hand-over to pivoting (a weak two-channel pair)
+    weak = np.eye(3)
+    weak[0, 1] = 0.05
+    out = compensate_array(stack[:3], weak, method="nnls", parallel=False, max_sweeps=1)
+    assert_matches_scipy(stack[:3], weak, out)
+
+
 def test_sweeps_handing_pixels_to_pivoting_stay_exact(physics):
     s, stack = physics
     assert {c.mode for c in _prepare_components(s) if c.idx.size > 1} == {_nnls.MODE_SWEEP}

@@ -388,7 +388,7 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
             for p in range(n):
                 if active[p] > 0.0:
                     pivoted += 1
-                    if _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges) < 0:
+                    if _bpp_column(yb[:m], x[:m], p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges) < 0:
                         last_resort += 1
     else:
         every = np.arange(m)
@@ -408,7 +408,7 @@ def _block(y, idx, s_ptr, s_col, s_val, e_ptr, e_col, e_val, g_ptr, g_col, g_val
                         negative = True
                 if negative:
                     pivoted += 1
-                    if _bpp_column(yb, x, p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges) < 0:
+                    if _bpp_column(yb[:m], x[:m], p, ainv, h, g, s_ptr, s_col, s_val, max_exchanges) < 0:
                         last_resort += 1
     for r in range(m):
         row = idx[r]
