@@ -936,3 +936,24 @@ def test_run_files_are_parsed_once_while_they_stay_the_same(tmp_path):
     assert execute._once(path, load) == "three" and len(calls) == 2
     with pytest.raises(FileNotFoundError):
         execute._once(tmp_path / "missing.txt", load)
+
+
+def test_csv_cells_fast_path_writes_the_same_text():
+    # quality.csv's cells go through a fast path for plain floats, text and None; the
+    # text must be that of the general conversion (_csv_cell) for every kind of value.
+    from plexwash.qc.files import _csv_cell, _csv_cell_fast, csv_text
+
+    class Text(str):
+        pass
+
+    rng = np.random.default_rng(3)
+    values = [None, "", "abc", Text("x"), 0.0, -0.0, 1.5, 1e-300, 5e-324, math.inf, -math.inf,
+              math.nan, 1.7976931348623157e308, True, False, 0, 7, -3, [1, 2.5, "a"], ("x",), [],
+              np.float64(2.5), np.float32(1.25), np.int64(4), np.float64("inf"), np.bool_(True)]
+    values += [float(v) for v in rng.normal(size=500) * 10.0 ** rng.integers(-300, 300, 500)]
+    for value in values:
+        assert _csv_cell_fast(value) == _csv_cell(value), value
+    rows = [{"a": v, "b": "t"} for v in values] + [{"b": 1.0}]
+    # no cell here holds a comma or a quote, so the CSV text is the cells joined
+    expected = "a,b\n" + "".join(f"{_csv_cell(r.get('a'))},{_csv_cell(r.get('b'))}\n" for r in rows)
+    assert csv_text(["a", "b"], rows) == expected
