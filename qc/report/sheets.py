@@ -12,7 +12,9 @@ from __future__ import annotations
 
 import base64
 import math
+import os
 from collections.abc import Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -189,14 +191,26 @@ def section_sheets(ctx, done, rows) -> str:
     n_channels = max(len(latest[n].get("channels") or []) for n in done) or 1
     size = tile_size(len(done), n_channels)
     thumbs, missing = {}, []
-    for name in done:
+
+    def tiles(name):
         rec = latest[name]
         own = bool(rec.get("output"))
         path = ctx["out_dir"] / rec["output"] if own else Path(rec.get("input") or "")
         try:
-            thumbs[name] = (rec.get("channels") or [], roi_tiles(path, size, own_output=own))
+            return rec.get("channels") or [], roi_tiles(path, size, own_output=own)
         except Exception:  # a moved or damaged file: its tiles stay black, the list says so
-            missing.append(name)
+            return None
+
+    # Decoding small pyramid levels releases the GIL: washed stacks are read on a few threads
+    # (raw ROIs, read whole when the run wrote no stacks, one at a time to bound memory).
+    own = all(latest[name].get("output") for name in done)
+    threads = max(1, min(4, os.cpu_count() or 1)) if own else 1
+    with ThreadPoolExecutor(threads) as pool:
+        for name, got in zip(done, pool.map(tiles, done), strict=True):
+            if got is None:
+                missing.append(name)
+            else:
+                thumbs[name] = got
     marks = {}
     for row in rows:
         flags = set(row.get("flags") or [])
