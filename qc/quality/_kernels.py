@@ -488,3 +488,36 @@ def bin_sums(values, size, out):
             start = j * size
             n = min(size, width - start)
             out[i, j] = band[start] + _pairwise_sum(band, start + 1, n - 1)
+
+
+@nb.njit(cache=True, nogil=True)
+def one_row_model(row, coef, unit, floor_scale, out):
+    """``out = np.maximum(unit * (coef * row), floor_scale * row)``: the model counts of a
+    one-row design.
+
+    ``coef * row`` is the product ``combine_rows`` forms for one row (a sum of one product);
+    the maximum is numpy's (``a >= b or a is NaN ? a : b``)."""
+    for i in range(row.size):
+        v = unit * (coef * row[i])
+        f = floor_scale * row[i]
+        out[i] = v if (v >= f or v != v) else f
+
+
+@nb.njit(cache=True, nogil=True)
+def kept_changes(kept, below, left, joined):
+    """Bins kept that ``below`` leaves out (into ``left``) and bins not kept that it keeps
+    (into ``joined``); returns (bins it keeps, count left, count joined)."""
+    n_kept = 0
+    n_left = 0
+    n_joined = 0
+    for i in range(kept.size):
+        keep = not below[i]
+        if keep:
+            n_kept += 1
+        if kept[i] and not keep:
+            left[n_left] = i
+            n_left += 1
+        elif keep and not kept[i]:
+            joined[n_joined] = i
+            n_joined += 1
+    return n_kept, n_left, n_joined

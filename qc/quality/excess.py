@@ -12,7 +12,8 @@ from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
 from ._bvls import bounded_lstsq
-from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
+from ._kernels import (box3_sums, kept_changes, largest_excess3, one_row_model,
+                       poisson_tail_verdicts)
 from .settings import QualitySettings
 
 # Largest number of refits of the background / ghost model while leaving out bins.
@@ -82,6 +83,16 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
     Returns mu (model counts per bin, floored), the coefficients (in the data's
     units) and the mask of bins kept.
     """
+    if (design.shape[0] == 1 and wide is None and n_background == 1
+            and design.dtype == np.float64 and upper.shape == (1,)):
+        return _fit_one_row(target, design, float(upper[0]), settings, gram=gram, cross=cross)
+    return _fit_rows(target, design, upper, settings, gram=gram, cross=cross,
+                     n_background=n_background, wide=wide)
+
+
+def _fit_rows(target, design, upper, settings, *, gram=None, cross=None, n_background=1,
+              wide=None):
+    """:func:`fit_model`'s rounds for any design (numpy steps)."""
     unit = settings.counts_per_unit
     if gram is None:
         gram = gram_matrix(design)
@@ -105,6 +116,73 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
                            kept & ~new_kept, new_kept & ~kept)
         kept = new_kept
     return mu, coef, kept
+
+
+def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
+    """:func:`_fit_rows` of a one-row float64 design (the flat background of one channel):
+    the same operations on the same values, bit for bit, with the 1 x 1 Gram matrix and
+    its cross term as Python floats (the same IEEE operations as numpy's 1-element arrays),
+    the model counts and the bins that change side found by compiled loops
+    (:func:`._kernels.one_row_model`, :func:`._kernels.kept_changes`), and the Gram sums
+    of the moved bins by the same numpy products as :func:`_partial_gram`."""
+    unit = settings.counts_per_unit
+    if gram is None:  # gram_matrix and _cross, a block at a time (0.0 + each block's product)
+        g = h = 0.0
+        for start in range(0, design.shape[1], _GRAM_BLOCK):
+            d = design[:, start:start + _GRAM_BLOCK].astype(np.float64)
+            g += float((d @ d.T)[0, 0])
+            h += float((d @ target[start:start + _GRAM_BLOCK])[0])
+    else:
+        g, h = float(gram[0, 0]), float(cross[0])
+    n = target * unit
+    row = np.ascontiguousarray(design[0])
+    # the floor: the sum over the one background row is that row (numpy's reduction of
+    # one item is the item), times background_floor * unit (in one_row_model)
+    floor_scale = settings.background_floor * unit
+    size = n.size
+    kept = np.ones(size, bool)
+    below = np.empty(size, bool)
+    hard = np.empty(size, np.intp)
+    left, joined = np.empty(size, np.intp), np.empty(size, np.intp)
+    log_alpha, alpha = math.log(settings.fit_alpha), settings.fit_alpha
+    flat_n = np.ascontiguousarray(n, dtype=np.float64).reshape(-1)
+    coef = np.zeros(1)
+    mu = np.empty(size)
+    for _ in range(_MAX_FIT_ROUNDS):
+        # _box_least_squares of one unknown, lower bound 0
+        coef = np.zeros(1)
+        if upper > 0.0 and g > 0.0:
+            _one_unknown(g, h, 0.0, upper, coef)
+        mu = np.empty(size)
+        one_row_model(row, float(coef[0]), unit, floor_scale, mu)
+        count = poisson_tail_verdicts(flat_n, mu, log_alpha, below, hard)
+        if count:
+            index = hard[:count]
+            below[index] = special.gammainc(flat_n[index], mu[index]) < alpha
+        n_kept, n_left, n_joined = kept_changes(kept, below, left, joined)
+        if n_kept == 0 or (n_left == 0 and n_joined == 0):
+            break
+        if n_left:
+            g_out, h_out = _partial_sums(design, target, left[:n_left])
+            g, h = g - g_out, h - h_out
+        if n_joined:
+            g_in, h_in = _partial_sums(design, target, joined[:n_joined])
+            g, h = g + g_in, h + h_in
+        else:
+            g, h = g + 0.0, h + 0.0
+        kept = ~below
+    return mu, coef, kept
+
+
+def _partial_sums(design, target, index):
+    """:func:`_partial_gram` of a one-row design, as Python floats (the same products and sums)."""
+    g = h = 0.0
+    for start in range(0, index.size, _GRAM_BLOCK):
+        part = index[start:start + _GRAM_BLOCK]
+        d = design[:, part].astype(np.float64, copy=False)
+        g += float((d @ d.T)[0, 0])
+        h += float((d @ target[part])[0])
+    return g, h
 
 
 def gram_matrix(design: np.ndarray) -> np.ndarray:
