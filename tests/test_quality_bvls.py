@@ -184,3 +184,56 @@ def test_fits_with_the_float64_design_kept_give_the_same_bits(bins):
         assert _bits(a) == _bits(b)
     assert excess.WideDesign.of(np.zeros((40, excess.WIDE_DESIGN_BYTES // 16 // 40 + 1),
                                           np.float32)) is None
+
+
+def test_lstsq_is_numpys_bit_for_bit():
+    """The direct call of numpy's lstsq gufunc returns numpy.linalg.lstsq's solution
+    (reference: numpy.linalg.lstsq), on full-rank, rank-deficient and tall systems."""
+    from plexwash.qc.quality._bvls import lstsq
+
+    rng = np.random.default_rng(21)
+    for trial in range(600):
+        m, n = int(rng.integers(1, 9)), int(rng.integers(1, 9))
+        a = rng.standard_normal((m, n)) * 10.0 ** rng.integers(-3, 4)
+        if trial % 3 == 0 and n > 1:
+            a[:, 0] = a[:, -1]  # rank-deficient
+        b = rng.standard_normal(m)
+        for rcond in (-1, None):
+            expected = np.linalg.lstsq(a, b, rcond=rcond)[0]
+            got = lstsq(a, b, rcond)
+            assert got.shape == expected.shape and _bits(got) == _bits(expected)
+    # a column slice (not contiguous) and NaN go through numpy itself: the same answer
+    a = rng.standard_normal((6, 6))[:, ::2]
+    b = rng.standard_normal(6)
+    assert _bits(lstsq(a, b, None)) == _bits(np.linalg.lstsq(a, b, rcond=None)[0])
+
+
+@pytest.mark.parametrize("block", [None, 7])
+def test_one_row_fit_is_the_general_fit_bit_for_bit(monkeypatch, block):
+    """The flat background fit of one channel (a one-row design) by compiled loops gives the
+    general rounds' mu, coefficient and kept bins to the bit (reference: the numpy rounds of
+    ``_fit_rows``, which call numpy and scipy as the fits always did)."""
+    from plexwash.qc.quality.settings import QualitySettings
+
+    if block is not None:  # several Gram blocks
+        monkeypatch.setattr(excess, "_GRAM_BLOCK", block)
+    rng = np.random.default_rng(22)
+    settings = QualitySettings()
+    for trial in range(60):
+        shape = (int(rng.integers(2, 30)), int(rng.integers(2, 30)))
+        areas = np.full(shape, 16.0)
+        areas[-1] = float(rng.integers(1, 16))  # partial last bins
+        rate = rng.gamma(1.0, 0.5)
+        counts = rng.poisson(rate * areas).astype(np.float64)
+        if trial % 2:  # a stain over part of the bins, so that rounds leave bins out
+            counts += rng.poisson(30.0, shape) * (rng.random(shape) < rng.random())
+        if trial % 7 == 0:
+            counts[:] = 0.0
+        design = areas.ravel()[None, :]
+        upper = np.array([np.inf if trial % 5 else 0.5 * rate])
+        fast = excess._fit_one_row(counts.ravel(), design, float(upper[0]), settings)
+        plain = excess._fit_rows(counts.ravel(), design, upper, settings)
+        for a, b in zip(fast, plain, strict=True):
+            assert a.dtype == b.dtype and _bits(a) == _bits(b)
+        routed = excess.fit_model(counts.ravel(), design, upper, settings)
+        assert all(_bits(a) == _bits(b) for a, b in zip(routed, plain, strict=True))

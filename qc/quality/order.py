@@ -53,24 +53,39 @@ def percentile(values, q, *, memo: dict | None = None, also=()):
     previous, following = previous.astype(np.intp), following.astype(np.intp)
     ranks = np.unique(np.concatenate(([0, -1], previous.ravel(), following.ravel())))
     take = None
-    if n >= SELECT_SIZE and arr.dtype in _SELECTED:
-        wanted = ranks % n
-        if memo is not None and all(r in memo for r in wanted.tolist()):
-            take = _from_memo(memo, n, flat.dtype)
-        else:
-            extra = [_ranks(n, np.true_divide(a, 100)) for a in also]
-            take = _selected(flat, np.concatenate([wanted, *extra]), memo)
+    wanted = ranks % n
+    if memo is not None and arr.dtype in _SELECTED and all(r in memo for r in wanted.tolist()):
+        take = _from_memo(memo, n, flat.dtype)
+    elif n >= SELECT_SIZE and arr.dtype in _SELECTED:
+        extra = [_ranks(n, np.true_divide(a, 100)) for a in also]
+        take = _selected(flat, np.concatenate([wanted, *extra]), memo)
     if take is None:
-        # numpy's own partition of a copy, with numpy's ranks: the same arrangement
+        # numpy's own partition of a copy: the order statistics numpy's ranks pick
         ordered = flat.copy()
-        ordered.partition(ranks)
+        # with a memo, the ranks of ``also`` are placed in the same partition and every
+        # rank's value kept; not where the values hold a negative zero, whose place among
+        # the zeros (so the sign of a zero found) depends on the ranks partitioned for
+        kept = memo is not None and arr.dtype in _SELECTED and not _negative_zero(flat)
+        if kept:
+            wanted = np.unique(np.concatenate(
+                [wanted, *(_ranks(n, np.true_divide(a, 100)) for a in also)]))
+            ordered.partition(wanted)
+        else:
+            ordered.partition(ranks)
         if arr.dtype.kind == "f" and np.isnan(ordered[-1]):
             return np.percentile(arr, q)
+        if kept:
+            memo.update(zip(wanted.tolist(), ordered[wanted], strict=True))
         take = ordered.__getitem__
     low, high = take(previous), take(following)
     gamma = np.asanyarray(np.asanyarray(virtual - previous), dtype=virtual.dtype)
     gamma = float(gamma) if weak else gamma.reshape(virtual.shape)
     return _lerp(low, high, gamma)
+
+
+def _negative_zero(flat: np.ndarray) -> bool:
+    """Whether float32 values hold a -0.0 (integers never do)."""
+    return flat.dtype == np.float32 and bool((flat.view(np.uint32) == 0x80000000).any())
 
 
 def _ranks(n: int, quantile: float) -> np.ndarray:
