@@ -179,50 +179,46 @@ def poisson_tail_verdicts(n, mu, log_alpha, out, hard):
     of the bins no bound decides (their ``P`` within that margin of ``alpha``, or the series
     too slow) are written to ``hard``; their count is returned, for ``gammainc``.
     """
-    bright = -log_alpha + 1e-6
     count = 0
     for i in range(n.size):
-        ni = n[i]
-        mi = mu[i]
-        if not ni > mi + np.sqrt(mi):
-            out[i] = False
-            continue
-        if ni >= 8.0 * mi and ni + mi > bright:
-            out[i] = True
-            continue
-        log_mu = np.log(mi)
-        upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
-        if upper < log_alpha - 1e-9:
-            out[i] = True
-            continue
-        lgam = math.lgamma(ni + 1.0)
-        prefactor = ni * log_mu - mi - lgam
-        margin = 1e-9 + 1e-13 * (abs(ni * log_mu) + mi + abs(lgam))
-        # the bounds on the sum itself: log comparisons without a logarithm per term
-        # (exp is good to its last bit, far inside the margin; an overflow to inf is the
-        # right answer: every finite sum is below such a limit)
-        at_least = np.exp(log_alpha + margin - prefactor)
-        below = np.exp(log_alpha - margin - prefactor)
-        term = 1.0
-        total = 1.0
-        decided = False
-        for k in range(1, SERIES_TERMS + 1):
-            term *= mi / (ni + k)
-            total += term
-            if total >= at_least:
-                out[i] = False
-                decided = True
-                break
-            ratio = mi / (ni + k + 1.0)
-            if total + term * ratio / (1.0 - ratio) < below:
-                out[i] = True
-                decided = True
-                break
-        if not decided:
-            out[i] = False
+        verdict = _tail_verdict(n[i], mu[i], log_alpha)
+        out[i] = verdict == 1
+        if verdict == 2:
             hard[count] = i
             count += 1
     return count
+
+
+@nb.njit(cache=True, nogil=True, inline="always")
+def _tail_verdict(ni, mi, log_alpha):
+    """:func:`poisson_tail_verdicts` of one bin: 1 below alpha, 0 not, 2 left to gammainc."""
+    if not ni > mi + np.sqrt(mi):
+        return 0
+    if ni >= 8.0 * mi and ni + mi > -log_alpha + 1e-6:
+        return 1
+    log_mu = np.log(mi)
+    upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
+    if upper < log_alpha - 1e-9:
+        return 1
+    lgam = math.lgamma(ni + 1.0)
+    prefactor = ni * log_mu - mi - lgam
+    margin = 1e-9 + 1e-13 * (abs(ni * log_mu) + mi + abs(lgam))
+    # the bounds on the sum itself: log comparisons without a logarithm per term
+    # (exp is good to its last bit, far inside the margin; an overflow to inf is the
+    # right answer: every finite sum is below such a limit)
+    at_least = np.exp(log_alpha + margin - prefactor)
+    below = np.exp(log_alpha - margin - prefactor)
+    term = 1.0
+    total = 1.0
+    for k in range(1, SERIES_TERMS + 1):
+        term *= mi / (ni + k)
+        total += term
+        if total >= at_least:
+            return 0
+        ratio = mi / (ni + k + 1.0)
+        if total + term * ratio / (1.0 - ratio) < below:
+            return 1
+    return 2
 
 
 @nb.njit(cache=True, nogil=True, inline="always")
@@ -556,3 +552,49 @@ def sorted_keys(values, is_float, out):
     # three passes: the last wrote into ``keys``
     out[:] = source
     return True
+
+
+@nb.njit(cache=True, nogil=True)
+def _mark_excess(n, mu, area, scale, log_alpha, offset, mark, hard, count):
+    """Bins with ``n - mu >= scale * area`` and ``P(N >= n) < alpha`` marked 1 in ``mark``
+    (left as they are otherwise); the undecided ones' indices plus ``offset`` added to
+    ``hard`` from ``count`` on. Returns the new count."""
+    for i in range(n.size):
+        if mark[i] or not (n[i] - mu[i] >= scale * area[i]):
+            continue
+        verdict = _tail_verdict(n[i], mu[i], log_alpha)
+        if verdict == 1:
+            mark[i] = 1
+        elif verdict == 2:
+            hard[count] = i + offset
+            count += 1
+    return count
+
+
+@nb.njit(cache=True, nogil=True)
+def excess_marks(n, mu, area, scale, log_alpha, windows, n_w, mu_w, a_w, mark, hard):
+    """The excess test of ``excess.measure_excess_area`` over (Y, X) float64 bins, finite.
+
+    ``mark`` (int8, zeroed here) = 1 where a bin, or its 3 x 3 window (with ``windows``:
+    ``n_w``, ``mu_w``, ``a_w`` filled as ``excess.window_sums`` makes them), holds more than
+    ``scale`` counts per pixel above the model and the Poisson tail bounds
+    (:func:`_tail_verdict`) put it below alpha. A bin whose own test needs ``gammainc`` goes
+    to ``hard`` as its flat index, a window's as its index plus ``n.size``; returns their
+    count. The tail is judged only where the excess is large enough (the test is an and).
+    """
+    flat_n, flat_mu, flat_a = n.reshape(-1), mu.reshape(-1), area.reshape(-1)
+    flat_mark = mark.reshape(-1)
+    flat_mark[:] = 0
+    count = _mark_excess(flat_n, flat_mu, flat_a, scale, log_alpha, 0, flat_mark, hard, 0)
+    if windows:
+        box3_sums(n, n_w)
+        box3_sums(mu, mu_w)
+        box3_sums(area, a_w)
+        largest = np.empty(n.shape)
+        largest_excess3(n, mu, largest)
+        for y in range(n.shape[0]):
+            for x in range(n.shape[1]):
+                n_w[y, x] -= largest[y, x]
+        count = _mark_excess(n_w.reshape(-1), mu_w.reshape(-1), a_w.reshape(-1), scale,
+                             log_alpha, n.size, flat_mark, hard, count)
+    return count

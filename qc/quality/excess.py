@@ -12,7 +12,14 @@ from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
 from ._bvls import bounded_lstsq
-from ._kernels import box3_sums, kept_changes, largest_excess3, one_row_model, poisson_tail_verdicts
+from ._kernels import (
+    box3_sums,
+    excess_marks,
+    kept_changes,
+    largest_excess3,
+    one_row_model,
+    poisson_tail_verdicts,
+)
 from .settings import QualitySettings
 
 # Largest number of refits of the background / ghost model while leaving out bins.
@@ -347,6 +354,34 @@ def measure_excess_area(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
     largest single-bin excess in a window is left out of it, so one stray bright
     bin (a hot pixel that escaped) cannot lend excess to its eight neighbours.
     """
+    given = n, mu, area
+    n, mu, area = (np.ascontiguousarray(v, dtype=np.float64) for v in given)
+    if (all(np.asarray(v).dtype == np.float64 for v in given) and n.ndim == 2
+            and n.shape == mu.shape == area.shape and n.size
+            and np.isfinite(n).all() and np.isfinite(mu).all() and np.isfinite(area).all()):
+        # one compiled pass over the bins and their windows (the same values, the same
+        # verdicts); gammainc only for what the bounds leave open
+        unit = settings.counts_per_unit
+        windows = min(n.shape) >= 3
+        n_w, mu_w, a_w = (np.empty(n.shape) for _ in range(3))
+        mark = np.empty(n.shape, np.int8)
+        hard = np.empty(2 * n.size, np.intp)
+        count = excess_marks(n, mu, area, settings.min_excess * unit,
+                             math.log(settings.empty_alpha), windows, n_w, mu_w, a_w, mark, hard)
+        if count:
+            index = hard[:count]
+            pool_n = np.concatenate([n.reshape(-1), n_w.reshape(-1)])
+            pool_mu = np.concatenate([mu.reshape(-1), mu_w.reshape(-1)])
+            below = special.gammainc(pool_n[index], pool_mu[index]) < settings.empty_alpha
+            mark.reshape(-1)[index[below] % n.size] = 1
+        return float(area[mark.view(bool)].sum())
+    return _measure_excess_area_numpy(*given, settings)
+
+
+def _measure_excess_area_numpy(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
+                               settings: QualitySettings) -> float:
+    """:func:`measure_excess_area` in numpy steps (for values that are not finite, and the
+    form the compiled pass is tested against)."""
     unit = settings.counts_per_unit
     excess = poisson_tail_below(n, mu, settings.empty_alpha) & (
         n - mu >= settings.min_excess * unit * area)
