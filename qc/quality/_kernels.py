@@ -598,3 +598,68 @@ def excess_marks(n, mu, area, scale, log_alpha, windows, n_w, mu_w, a_w, mark, h
         count = _mark_excess(n_w.reshape(-1), mu_w.reshape(-1), a_w.reshape(-1), scale,
                              log_alpha, n.size, flat_mark, hard, count)
     return count
+
+
+@nb.njit(cache=True, nogil=True)
+def otsu_index(counts, centers):
+    """The index into ``centers`` of ``skimage.filters.threshold_otsu(hist=(counts, centers))``
+    (scikit-image 0.26), by its steps: the histogram's empty ends trimmed, the counts in
+    float32, the class weights and means as its sequential ``cumsum`` forms them, the
+    between-class variance ``w1 * w2 * (m1 - m2) ** 2`` and numpy's ``argmax`` (the first
+    largest, a NaN counting as largest)."""
+    size = counts.size
+    start = 0
+    end = size
+    if counts[0] == 0 or counts[size - 1] == 0:
+        start = size
+        for i in range(size):
+            if counts[i] > 0:
+                start = i
+                break
+        if start == size:  # no count above 0: numpy's argmax of all False is 0
+            start = 0
+        last = 0
+        for i in range(size - 1, -1, -1):
+            if counts[i] > 0:
+                last = size - 1 - i
+                break
+        end = size - last
+    m = end - start
+    c = np.empty(m, np.float32)
+    for i in range(m):
+        c[i] = np.float32(counts[start + i])
+    cb = c * centers[start:end]
+    weight1 = np.empty(m, np.float32)
+    weight2 = np.empty(m, np.float32)
+    weight1[0] = c[0]
+    for i in range(1, m):
+        weight1[i] = weight1[i - 1] + c[i]
+    weight2[m - 1] = c[m - 1]
+    for i in range(m - 2, -1, -1):
+        weight2[i] = weight2[i + 1] + c[i]
+    sum1 = np.empty_like(cb)
+    sum2 = np.empty_like(cb)
+    sum1[0] = cb[0]
+    for i in range(1, m):
+        sum1[i] = sum1[i - 1] + cb[i]
+    sum2[m - 1] = cb[m - 1]
+    for i in range(m - 2, -1, -1):
+        sum2[i] = sum2[i + 1] + cb[i]
+    best = 0
+    top = 0.0
+    for i in range(m - 1):
+        mean1 = sum1[i] / weight1[i]
+        mean2 = sum2[i + 1] / weight2[i + 1]
+        d = mean1 - mean2
+        v = weight1[i] * weight2[i + 1] * (d * d)
+        if i == 0:
+            top = v
+            if v != v:
+                break
+        elif v != v:
+            best = i
+            break
+        elif v > top:
+            top = v
+            best = i
+    return start + best
