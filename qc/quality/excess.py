@@ -98,7 +98,10 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
 
 def _fit_rows(target, design, upper, settings, *, gram=None, cross=None, n_background=1,
               wide=None):
-    """:func:`fit_model`'s rounds for any design (numpy steps)."""
+    """:func:`fit_model`'s rounds for any design: each round's box fit and model counts by
+    numpy and LAPACK, the bins that change side found in one compiled pass
+    (:func:`_round_changes`), the Gram matrix updated by :func:`_partial_gram` (the steps
+    of the plain numpy rounds, which the tests keep as the reference)."""
     unit = settings.counts_per_unit
     if gram is None:
         gram = gram_matrix(design)
@@ -109,19 +112,43 @@ def _fit_rows(target, design, upper, settings, *, gram=None, cross=None, n_backg
     else:
         floor = wide.whole[:n_background].sum(axis=0)
     floor = settings.background_floor * unit * floor
+    work = _RoundWork(n, settings.fit_alpha)
     kept = np.ones(n.shape, bool)
     lower = np.zeros(design.shape[0])
+    rows = design if wide is None else wide.whole
     g, h = gram, cross
     for _ in range(_MAX_FIT_ROUNDS):
         coef = _box_least_squares(g, h, lower, upper)
         mu = np.maximum(unit * combine_rows(coef, design, wide), floor)
-        new_kept = ~poisson_tail_below(n, mu, settings.fit_alpha)
-        if not new_kept.any() or np.array_equal(new_kept, kept):
+        n_kept, left, joined = work.changes(mu, kept)
+        if n_kept == 0 or (left.size == 0 and joined.size == 0):
             break
-        g, h = _moved_bins(g, h, design if wide is None else wide.whole, target,
-                           kept & ~new_kept, new_kept & ~kept)
-        kept = new_kept
+        g, h = _moved_index(g, h, rows, target, left, joined)
+        kept = ~work.below
     return mu, coef, kept
+
+
+class _RoundWork:
+    """The buffers of one fit's rounds and the step they share: which bins the new model
+    leaves out (``poisson_tail_below`` of the counts, into ``below``) and which bins change
+    side against ``kept`` (ascending indices, as ``nonzero`` lists them)."""
+
+    def __init__(self, n: np.ndarray, alpha: float):
+        self.n = np.ascontiguousarray(n, dtype=np.float64).reshape(-1)
+        size = self.n.size
+        self.alpha, self.log_alpha = alpha, math.log(alpha)
+        self.below = np.empty(size, bool)
+        self.hard = np.empty(size, np.intp)
+        self.left, self.joined = np.empty(size, np.intp), np.empty(size, np.intp)
+
+    def changes(self, mu: np.ndarray, kept: np.ndarray):
+        """(bins kept by the new model, indices that leave, indices that join)."""
+        count = poisson_tail_verdicts(self.n, mu, self.log_alpha, self.below, self.hard)
+        if count:
+            index = self.hard[:count]
+            self.below[index] = special.gammainc(self.n[index], mu[index]) < self.alpha
+        n_kept, n_left, n_joined = kept_changes(kept, self.below, self.left, self.joined)
+        return n_kept, self.left[:n_left], self.joined[:n_joined]
 
 
 def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
@@ -145,38 +172,29 @@ def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
     # the floor: the sum over the one background row is that row (numpy's reduction of
     # one item is the item), times background_floor * unit (in one_row_model)
     floor_scale = settings.background_floor * unit
-    size = n.size
-    kept = np.ones(size, bool)
-    below = np.empty(size, bool)
-    hard = np.empty(size, np.intp)
-    left, joined = np.empty(size, np.intp), np.empty(size, np.intp)
-    log_alpha, alpha = math.log(settings.fit_alpha), settings.fit_alpha
-    flat_n = np.ascontiguousarray(n, dtype=np.float64).reshape(-1)
+    work = _RoundWork(n, settings.fit_alpha)
+    kept = np.ones(work.n.size, bool)
     coef = np.zeros(1)
-    mu = np.empty(size)
+    mu = np.empty(work.n.size)
     for _ in range(_MAX_FIT_ROUNDS):
         # _box_least_squares of one unknown, lower bound 0
         coef = np.zeros(1)
         if upper > 0.0 and g > 0.0:
             _one_unknown(g, h, 0.0, upper, coef)
-        mu = np.empty(size)
+        mu = np.empty(work.n.size)
         one_row_model(row, float(coef[0]), unit, floor_scale, mu)
-        count = poisson_tail_verdicts(flat_n, mu, log_alpha, below, hard)
-        if count:
-            index = hard[:count]
-            below[index] = special.gammainc(flat_n[index], mu[index]) < alpha
-        n_kept, n_left, n_joined = kept_changes(kept, below, left, joined)
-        if n_kept == 0 or (n_left == 0 and n_joined == 0):
+        n_kept, left, joined = work.changes(mu, kept)
+        if n_kept == 0 or (left.size == 0 and joined.size == 0):
             break
-        if n_left:
-            g_out, h_out = _partial_sums(design, target, left[:n_left])
+        if left.size:
+            g_out, h_out = _partial_sums(design, target, left)
             g, h = g - g_out, h - h_out
-        if n_joined:
-            g_in, h_in = _partial_sums(design, target, joined[:n_joined])
+        if joined.size:
+            g_in, h_in = _partial_sums(design, target, joined)
             g, h = g + g_in, h + h_in
         else:
             g, h = g + 0.0, h + 0.0
-        kept = ~below
+        kept = ~work.below
     return mu, coef, kept
 
 
@@ -248,12 +266,17 @@ class WideDesign:
 
 
 def _moved_bins(g, h, design, target, left, joined):
-    """``g - G(left) + G(joined)``, ``h - H(left) + H(joined)`` (:func:`_partial_gram`).
+    """``g - G(left) + G(joined)``, ``h - H(left) + H(joined)`` (:func:`_partial_gram`) for
+    boolean masks of the bins (:func:`_moved_index`)."""
+    return _moved_index(g, h, design, target, left.nonzero()[0], joined.nonzero()[0])
+
+
+def _moved_index(g, h, design, target, index_out, index_in):
+    """:func:`_moved_bins` of the bins' indices (ascending).
 
     A side no bin moved to contributes zeros, so its product is not formed (``+ 0.0``
     keeps what adding those zeros does to a -0.0).
     """
-    index_out, index_in = left.nonzero()[0], joined.nonzero()[0]  # 1-D: np.flatnonzero
     if index_out.size:
         g_out, h_out = _partial_gram(design, target, index_out)
         g, h = g - g_out, h - h_out
