@@ -109,3 +109,16 @@ def test_a_small_channel_with_a_negative_zero_keeps_no_memo():
     assert _same(percentile(values, 50.0, memo=memo, also=(99.0,)), np.percentile(values, 50.0))
     assert memo == {}
     assert _same(percentile(values, [50.0, 99.0], memo=memo), np.percentile(values, [50.0, 99.0]))
+
+
+def test_the_ranks_kept_per_size_serve_other_values_of_that_size():
+    """The ranks and weights are reused for every channel of a size; each channel's answer
+    is still its own (reference: numpy.percentile), for scalars, lists and numpy scalars."""
+    rng = np.random.default_rng(13)
+    for q in (50.0, 50, [50.0, 99.0], (1, 99.5), np.float64(37.5), [np.float64(2.0), 98.0]):
+        for _ in range(3):
+            for values in (rng.poisson(2.0, (96, 96)).astype(np.float32),
+                           rng.normal(size=SELECT_SIZE + 5).astype(np.float32)):
+                assert _same(percentile(values, q), np.percentile(values, q))
+                assert _same(percentile(values, q, memo={}, also=(99.0,)),
+                             np.percentile(values, q))
