@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from plexwash.qc.quality import channel
-from plexwash.qc.quality._kernels import otsu_index
+from plexwash.qc.quality._fit_kernels import otsu_index
 from skimage.filters import threshold_otsu
 
 

@@ -13,14 +13,8 @@ import numpy as np
 from skimage.filters import threshold_otsu
 
 from ..errors import InputError
-from ._kernels import (
-    bin_sums,
-    gaussian_reflect,
-    otsu_index,
-    split_mean_std,
-    suppress_spikes,
-    uniform_histogram,
-)
+from ._fit_kernels import otsu_index
+from ._kernels import bin_sums, gaussian_reflect, split_mean_std, suppress_spikes, uniform_histogram
 from .excess import fit_model, measure_excess_area
 from .order import percentile
 from .settings import DEFAULT_QUALITY, QualitySettings

@@ -12,14 +12,8 @@ from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
 from ._bvls import bounded_lstsq
-from ._kernels import (
-    box3_sums,
-    excess_marks,
-    kept_changes,
-    largest_excess3,
-    one_row_model,
-    poisson_tail_verdicts,
-)
+from ._fit_kernels import excess_marks, kept_changes, one_row_model
+from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
 from .settings import QualitySettings
 
 # Largest number of refits of the background / ghost model while leaving out bins.
