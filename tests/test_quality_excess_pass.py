@@ -59,5 +59,6 @@ def test_values_that_are_not_finite_take_the_numpy_form():
     n[1, 1] = np.inf
     mu = np.ones((4, 4))
     area = np.full((4, 4), 16.0)
-    assert (excess.measure_excess_area(n, mu, area, settings)
-            == excess._measure_excess_area_numpy(n, mu, area, settings))
+    with np.errstate(invalid="ignore"):  # inf - inf in the window sums, as before
+        assert (excess.measure_excess_area(n, mu, area, settings)
+                == excess._measure_excess_area_numpy(n, mu, area, settings))
