@@ -184,3 +184,126 @@ def test_fits_with_the_float64_design_kept_give_the_same_bits(bins):
         assert _bits(a) == _bits(b)
     assert excess.WideDesign.of(np.zeros((40, excess.WIDE_DESIGN_BYTES // 16 // 40 + 1),
                                           np.float32)) is None
+
+
+def test_lstsq_is_numpys_bit_for_bit():
+    """The direct call of numpy's lstsq gufunc returns numpy.linalg.lstsq's solution
+    (reference: numpy.linalg.lstsq), on full-rank, rank-deficient and tall systems."""
+    from plexwash.qc.quality._bvls import lstsq
+
+    rng = np.random.default_rng(21)
+    for trial in range(600):
+        m, n = int(rng.integers(1, 9)), int(rng.integers(1, 9))
+        a = rng.standard_normal((m, n)) * 10.0 ** rng.integers(-3, 4)
+        if trial % 3 == 0 and n > 1:
+            a[:, 0] = a[:, -1]  # rank-deficient
+        b = rng.standard_normal(m)
+        for rcond in (-1, None):
+            expected = np.linalg.lstsq(a, b, rcond=rcond)[0]
+            got = lstsq(a, b, rcond)
+            assert got.shape == expected.shape and _bits(got) == _bits(expected)
+    # a column slice (not contiguous) and NaN go through numpy itself: the same answer
+    a = rng.standard_normal((6, 6))[:, ::2]
+    b = rng.standard_normal(6)
+    assert _bits(lstsq(a, b, None)) == _bits(np.linalg.lstsq(a, b, rcond=None)[0])
+
+
+@pytest.mark.parametrize("block", [None, 7])
+def test_one_row_fit_is_the_general_fit_bit_for_bit(monkeypatch, block):
+    """The flat background fit of one channel (a one-row design) by compiled loops gives the
+    plain rounds' mu, coefficient and kept bins to the bit (reference: ``_plain_fit``, the
+    rounds as numpy and scipy computed them before)."""
+    from plexwash.qc.quality.settings import QualitySettings
+
+    if block is not None:  # several Gram blocks
+        monkeypatch.setattr(excess, "_GRAM_BLOCK", block)
+    rng = np.random.default_rng(22)
+    settings = QualitySettings()
+    for trial in range(60):
+        shape = (int(rng.integers(2, 30)), int(rng.integers(2, 30)))
+        areas = np.full(shape, 16.0)
+        areas[-1] = float(rng.integers(1, 16))  # partial last bins
+        rate = rng.gamma(1.0, 0.5)
+        counts = rng.poisson(rate * areas).astype(np.float64)
+        if trial % 2:  # a stain over part of the bins, so that rounds leave bins out
+            counts += rng.poisson(30.0, shape) * (rng.random(shape) < rng.random())
+        if trial % 7 == 0:
+            counts[:] = 0.0
+        design = areas.ravel()[None, :]
+        upper = np.array([np.inf if trial % 5 else 0.5 * rate])
+        fast = excess._fit_one_row(counts.ravel(), design, float(upper[0]), settings)
+        plain = _plain_fit(counts.ravel(), design, upper, settings)
+        for a, b in zip(fast, plain, strict=True):
+            assert a.dtype == b.dtype and _bits(a) == _bits(b)
+        routed = excess.fit_model(counts.ravel(), design, upper, settings)
+        assert all(_bits(a) == _bits(b) for a, b in zip(routed, plain, strict=True))
+
+
+def _plain_fit(target, design, upper, settings, *, gram=None, cross=None, n_background=1,
+               wide=None):
+    """The fit's rounds as they were written with numpy before (the reference): the bins'
+    verdicts by ``poisson_tail_below``, the moved bins by boolean masks."""
+    unit = settings.counts_per_unit
+    if gram is None:
+        gram = excess.gram_matrix(design)
+        cross = excess._cross(design, target)
+    n = target * unit
+    if wide is None:
+        floor = design[:n_background].astype(np.float64).sum(axis=0)
+    else:
+        floor = wide.whole[:n_background].sum(axis=0)
+    floor = settings.background_floor * unit * floor
+    kept = np.ones(n.shape, bool)
+    lower = np.zeros(design.shape[0])
+    g, h = gram, cross
+    for _ in range(excess._MAX_FIT_ROUNDS):
+        coef = excess._box_least_squares(g, h, lower, upper)
+        mu = np.maximum(unit * excess.combine_rows(coef, design, wide), floor)
+        new_kept = ~excess.poisson_tail_below(n, mu, settings.fit_alpha)
+        if not new_kept.any() or np.array_equal(new_kept, kept):
+            break
+        g, h = excess._moved_bins(g, h, design if wide is None else wide.whole, target,
+                                  kept & ~new_kept, new_kept & ~kept)
+        kept = new_kept
+    return mu, coef, kept
+
+
+@pytest.mark.parametrize("known", [False, True])
+def test_fit_rounds_are_the_plain_rounds_bit_for_bit(known):
+    """Region backgrounds and ghosts (a known pattern with one scale, or every source with
+    its own bound) fitted by ``fit_model`` give the plain rounds' results to the bit."""
+    from plexwash.qc.quality.settings import QualitySettings
+
+    rng = np.random.default_rng(23 + known)
+    settings = QualitySettings()
+    for trial in range(40):
+        bins = int(rng.integers(9, 400))
+        glass = rng.random(bins) < 0.3
+        areas = np.vstack([16.0 * glass, 16.0 * ~glass]).astype(np.float32)
+        k = 2 if trial % 2 else 1
+        if k == 1:
+            areas = areas.sum(axis=0, keepdims=True)
+        sources = rng.poisson(rng.gamma(1.0, 20.0, (6, 1)), (6, bins)).astype(np.float32)
+        rate = 0.05 + 0.3 * ~glass
+        own = rng.poisson(16 * rate + 0.05 * sources[2]
+                          + 40.0 * (rng.random(bins) < rng.random() * 0.2)).astype(np.float32)
+        design = np.vstack([areas, sources, own])
+        target = design[-1].astype(np.float64)
+        if known:
+            weights = rng.random(design.shape[0] - k) * 0.05
+            weights[-1] = 0.0
+            ghost = excess.combine_rows(weights, design[k:])
+            rows = np.vstack([design[:k].astype(np.float64), ghost])
+            upper = np.r_[np.full(k, np.inf), 2.0]
+            args = dict(n_background=k)
+            fast = excess.fit_model(target, rows, upper, settings, **args)
+            plain = _plain_fit(target, rows, upper, settings, **args)
+        else:
+            gram = excess.gram_matrix(design)
+            upper = np.r_[np.full(k, np.inf), np.where(rng.random(6) < 0.5, 0.1, 0.0), 0.0]
+            wide = excess.WideDesign(design) if trial % 3 else None
+            args = dict(gram=gram, cross=gram[:, -1], n_background=k, wide=wide)
+            fast = excess.fit_model(target, design, upper, settings, **args)
+            plain = _plain_fit(target, design, upper, settings, **args)
+        for a, b in zip(fast, plain, strict=True):
+            assert a.dtype == b.dtype and _bits(a) == _bits(b)

@@ -80,3 +80,45 @@ def test_the_memo_serves_the_second_call_on_the_same_values():
     assert _same(percentile(stand_in, [50.0, 99.0], memo=memo), np.percentile(values, [50.0, 99.0]))
     # a percentile the memo lacks is selected afresh
     assert _same(percentile(values, 10.0, memo=memo), np.percentile(values, 10.0))
+
+
+def test_the_memo_of_a_small_channel_is_filled_by_numpys_partition():
+    """Below SELECT_SIZE the partition numpy would make places the ``also`` ranks too and
+    keeps every rank's value; the second call reads them (reference: numpy.percentile)."""
+    rng = np.random.default_rng(11)
+    for values in (rng.poisson(3.0, (96, 96)).astype(np.float32),
+                   rng.normal(0, 2, (50, 61)).astype(np.float32),
+                   rng.poisson(40.0, (33, 40)).astype(np.uint16),
+                   rng.poisson(0.2, (96, 96)).astype(np.uint8)):
+        memo = {}
+        assert _same(percentile(values, 50.0, memo=memo, also=(99.0,)),
+                     np.percentile(values, 50.0))
+        assert memo  # filled
+        stand_in = np.zeros_like(values)  # the second call must not look at the values
+        assert _same(percentile(stand_in, [50.0, 99.0], memo=memo),
+                     np.percentile(values, [50.0, 99.0]))
+
+
+def test_a_small_channel_with_a_negative_zero_keeps_no_memo():
+    """Which zero lands on a rank depends on the ranks partitioned for: with a -0.0 among the
+    values nothing is kept, and each call partitions as numpy does (reference: numpy)."""
+    values = np.random.default_rng(12).poisson(0.5, (40, 31)).astype(np.float32)
+    values[values == 0] = -0.0
+    values[::7] = 0.0
+    memo = {}
+    assert _same(percentile(values, 50.0, memo=memo, also=(99.0,)), np.percentile(values, 50.0))
+    assert memo == {}
+    assert _same(percentile(values, [50.0, 99.0], memo=memo), np.percentile(values, [50.0, 99.0]))
+
+
+def test_the_ranks_kept_per_size_serve_other_values_of_that_size():
+    """The ranks and weights are reused for every channel of a size; each channel's answer
+    is still its own (reference: numpy.percentile), for scalars, lists and numpy scalars."""
+    rng = np.random.default_rng(13)
+    for q in (50.0, 50, [50.0, 99.0], (1, 99.5), np.float64(37.5), [np.float64(2.0), 98.0]):
+        for _ in range(3):
+            for values in (rng.poisson(2.0, (96, 96)).astype(np.float32),
+                           rng.normal(size=SELECT_SIZE + 5).astype(np.float32)):
+                assert _same(percentile(values, q), np.percentile(values, q))
+                assert _same(percentile(values, q, memo={}, also=(99.0,)),
+                             np.percentile(values, q))

@@ -16,9 +16,34 @@ system of two to a few dozen unknowns, solved hundreds of times per ROI.
 from __future__ import annotations
 
 import numpy as np
+from numpy.linalg import _umath_linalg
 
 #: ``lsq_linear``'s default tolerance.
 TOL = 1e-10
+
+
+_EPS = np.finfo(np.float64).eps
+
+
+def lstsq(a: np.ndarray, b: np.ndarray, rcond) -> np.ndarray:
+    """``numpy.linalg.lstsq(a, b, rcond)[0]`` for a float64 matrix and vector: the same LAPACK
+    call (numpy's ``_umath_linalg.lstsq`` gufunc, ``dgelsd``, with the ``rcond`` numpy
+    uses), without the layers of Python around it (the other outputs, the checks).
+
+    A result holding NaN (the call failed, or NaN came in) is handed to numpy's lstsq
+    itself, which raises or returns as it does.
+    """
+    m, n = a.shape
+    if (a.dtype != np.float64 or b.dtype != np.float64 or b.ndim != 1 or m == 0 or n == 0
+            or b.shape[0] != m):
+        return np.linalg.lstsq(a, b, rcond=rcond)[0]
+    if rcond is None:
+        rcond = _EPS * max(n, m)
+    x = _umath_linalg.lstsq(a, b[:, None], rcond, signature="ddd->ddid")[0].reshape(n)
+    total = x.sum()
+    if total != total:
+        return np.linalg.lstsq(a, b, rcond=rcond)[0]
+    return x
 
 
 def bounded_lstsq(a: np.ndarray, b: np.ndarray, lb: np.ndarray, ub: np.ndarray) -> np.ndarray:
@@ -30,7 +55,7 @@ def bounded_lstsq(a: np.ndarray, b: np.ndarray, lb: np.ndarray, ub: np.ndarray) 
     >>> bounded_lstsq(a, np.array([2.0, -1.0, 1.0]), np.zeros(2), np.full(2, np.inf))
     array([1.5, 0. ])
     """
-    x_lsq = np.linalg.lstsq(a, b, rcond=-1)[0]
+    x_lsq = lstsq(a, b, -1)
     if np.all((x_lsq >= lb) & (x_lsq <= ub)):
         return x_lsq
     return _bvls(a, b, x_lsq, lb, ub)
@@ -68,7 +93,7 @@ def _bvls(a, b, x_lsq, lb, ub):
     while free_set.size > 0:
         iteration += 1
         b_free = b - a.dot(x * active_set)
-        z = np.linalg.lstsq(a[:, free_set], b_free, rcond=None)[0]
+        z = lstsq(a[:, free_set], b_free, None)
         lbv = z < lb[free_set]
         ubv = z > ub[free_set]
         v = lbv | ubv
@@ -110,7 +135,7 @@ def _bvls(a, b, x_lsq, lb, ub):
             lb_free = lb[free_set]
             ub_free = ub[free_set]
             b_free = b - a.dot(x * active_set)
-            z = np.linalg.lstsq(a[:, free_set], b_free, rcond=None)[0]
+            z = lstsq(a[:, free_set], b_free, None)
             lbv, = np.nonzero(z < lb_free)
             ubv, = np.nonzero(z > ub_free)
             v = np.hstack((lbv, ubv))

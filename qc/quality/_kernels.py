@@ -179,50 +179,46 @@ def poisson_tail_verdicts(n, mu, log_alpha, out, hard):
     of the bins no bound decides (their ``P`` within that margin of ``alpha``, or the series
     too slow) are written to ``hard``; their count is returned, for ``gammainc``.
     """
-    bright = -log_alpha + 1e-6
     count = 0
     for i in range(n.size):
-        ni = n[i]
-        mi = mu[i]
-        if not ni > mi + np.sqrt(mi):
-            out[i] = False
-            continue
-        if ni >= 8.0 * mi and ni + mi > bright:
-            out[i] = True
-            continue
-        log_mu = np.log(mi)
-        upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
-        if upper < log_alpha - 1e-9:
-            out[i] = True
-            continue
-        lgam = math.lgamma(ni + 1.0)
-        prefactor = ni * log_mu - mi - lgam
-        margin = 1e-9 + 1e-13 * (abs(ni * log_mu) + mi + abs(lgam))
-        # the bounds on the sum itself: log comparisons without a logarithm per term
-        # (exp is good to its last bit, far inside the margin; an overflow to inf is the
-        # right answer: every finite sum is below such a limit)
-        at_least = np.exp(log_alpha + margin - prefactor)
-        below = np.exp(log_alpha - margin - prefactor)
-        term = 1.0
-        total = 1.0
-        decided = False
-        for k in range(1, SERIES_TERMS + 1):
-            term *= mi / (ni + k)
-            total += term
-            if total >= at_least:
-                out[i] = False
-                decided = True
-                break
-            ratio = mi / (ni + k + 1.0)
-            if total + term * ratio / (1.0 - ratio) < below:
-                out[i] = True
-                decided = True
-                break
-        if not decided:
-            out[i] = False
+        verdict = _tail_verdict(n[i], mu[i], log_alpha)
+        out[i] = verdict == 1
+        if verdict == 2:
             hard[count] = i
             count += 1
     return count
+
+
+@nb.njit(cache=True, nogil=True, inline="always")
+def _tail_verdict(ni, mi, log_alpha):
+    """:func:`poisson_tail_verdicts` of one bin: 1 below alpha, 0 not, 2 left to gammainc."""
+    if not ni > mi + np.sqrt(mi):
+        return 0
+    if ni >= 8.0 * mi and ni + mi > -log_alpha + 1e-6:
+        return 1
+    log_mu = np.log(mi)
+    upper = -(ni * (np.log(ni) - log_mu) - ni + mi)
+    if upper < log_alpha - 1e-9:
+        return 1
+    lgam = math.lgamma(ni + 1.0)
+    prefactor = ni * log_mu - mi - lgam
+    margin = 1e-9 + 1e-13 * (abs(ni * log_mu) + mi + abs(lgam))
+    # the bounds on the sum itself: log comparisons without a logarithm per term
+    # (exp is good to its last bit, far inside the margin; an overflow to inf is the
+    # right answer: every finite sum is below such a limit)
+    at_least = np.exp(log_alpha + margin - prefactor)
+    below = np.exp(log_alpha - margin - prefactor)
+    term = 1.0
+    total = 1.0
+    for k in range(1, SERIES_TERMS + 1):
+        term *= mi / (ni + k)
+        total += term
+        if total >= at_least:
+            return 0
+        ratio = mi / (ni + k + 1.0)
+        if total + term * ratio / (1.0 - ratio) < below:
+            return 1
+    return 2
 
 
 @nb.njit(cache=True, nogil=True, inline="always")

@@ -12,6 +12,7 @@ from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
 from ._bvls import bounded_lstsq
+from ._fit_kernels import excess_marks, kept_changes, one_row_model
 from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
 from .settings import QualitySettings
 
@@ -82,6 +83,19 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
     Returns mu (model counts per bin, floored), the coefficients (in the data's
     units) and the mask of bins kept.
     """
+    if (design.shape[0] == 1 and wide is None and n_background == 1
+            and design.dtype == np.float64 and upper.shape == (1,)):
+        return _fit_one_row(target, design, float(upper[0]), settings, gram=gram, cross=cross)
+    return _fit_rows(target, design, upper, settings, gram=gram, cross=cross,
+                     n_background=n_background, wide=wide)
+
+
+def _fit_rows(target, design, upper, settings, *, gram=None, cross=None, n_background=1,
+              wide=None):
+    """:func:`fit_model`'s rounds for any design: each round's box fit and model counts by
+    numpy and LAPACK, the bins that change side found in one compiled pass
+    (:func:`_round_changes`), the Gram matrix updated by :func:`_partial_gram` (the steps
+    of the plain numpy rounds, which the tests keep as the reference)."""
     unit = settings.counts_per_unit
     if gram is None:
         gram = gram_matrix(design)
@@ -92,19 +106,101 @@ def fit_model(target: np.ndarray, design: np.ndarray, upper: np.ndarray,
     else:
         floor = wide.whole[:n_background].sum(axis=0)
     floor = settings.background_floor * unit * floor
+    work = _RoundWork(n, settings.fit_alpha)
     kept = np.ones(n.shape, bool)
     lower = np.zeros(design.shape[0])
+    rows = design if wide is None else wide.whole
     g, h = gram, cross
     for _ in range(_MAX_FIT_ROUNDS):
         coef = _box_least_squares(g, h, lower, upper)
         mu = np.maximum(unit * combine_rows(coef, design, wide), floor)
-        new_kept = ~poisson_tail_below(n, mu, settings.fit_alpha)
-        if not new_kept.any() or np.array_equal(new_kept, kept):
+        n_kept, left, joined = work.changes(mu, kept)
+        if n_kept == 0 or (left.size == 0 and joined.size == 0):
             break
-        g, h = _moved_bins(g, h, design if wide is None else wide.whole, target,
-                           kept & ~new_kept, new_kept & ~kept)
-        kept = new_kept
+        g, h = _moved_index(g, h, rows, target, left, joined)
+        kept = ~work.below
     return mu, coef, kept
+
+
+class _RoundWork:
+    """The buffers of one fit's rounds and the step they share: which bins the new model
+    leaves out (``poisson_tail_below`` of the counts, into ``below``) and which bins change
+    side against ``kept`` (ascending indices, as ``nonzero`` lists them)."""
+
+    def __init__(self, n: np.ndarray, alpha: float):
+        self.n = np.ascontiguousarray(n, dtype=np.float64).reshape(-1)
+        size = self.n.size
+        self.alpha, self.log_alpha = alpha, math.log(alpha)
+        self.below = np.empty(size, bool)
+        self.hard = np.empty(size, np.intp)
+        self.left, self.joined = np.empty(size, np.intp), np.empty(size, np.intp)
+
+    def changes(self, mu: np.ndarray, kept: np.ndarray):
+        """(bins kept by the new model, indices that leave, indices that join)."""
+        count = poisson_tail_verdicts(self.n, mu, self.log_alpha, self.below, self.hard)
+        if count:
+            index = self.hard[:count]
+            self.below[index] = special.gammainc(self.n[index], mu[index]) < self.alpha
+        n_kept, n_left, n_joined = kept_changes(kept, self.below, self.left, self.joined)
+        return n_kept, self.left[:n_left], self.joined[:n_joined]
+
+
+def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
+    """:func:`_fit_rows` of a one-row float64 design (the flat background of one channel):
+    the same operations on the same values, bit for bit, with the 1 x 1 Gram matrix and
+    its cross term as Python floats (the same IEEE operations as numpy's 1-element arrays),
+    the model counts and the bins that change side found by compiled loops
+    (:func:`._kernels.one_row_model`, :func:`._kernels.kept_changes`), and the Gram sums
+    of the moved bins by the same numpy products as :func:`_partial_gram`."""
+    unit = settings.counts_per_unit
+    if gram is None:  # gram_matrix and _cross, a block at a time (0.0 + each block's product)
+        g = h = 0.0
+        for start in range(0, design.shape[1], _GRAM_BLOCK):
+            d = design[:, start:start + _GRAM_BLOCK].astype(np.float64)
+            g += float((d @ d.T)[0, 0])
+            h += float((d @ target[start:start + _GRAM_BLOCK])[0])
+    else:
+        g, h = float(gram[0, 0]), float(cross[0])
+    n = target * unit
+    row = np.ascontiguousarray(design[0])
+    # the floor: the sum over the one background row is that row (numpy's reduction of
+    # one item is the item), times background_floor * unit (in one_row_model)
+    floor_scale = settings.background_floor * unit
+    work = _RoundWork(n, settings.fit_alpha)
+    kept = np.ones(work.n.size, bool)
+    coef = np.zeros(1)
+    mu = np.empty(work.n.size)
+    for _ in range(_MAX_FIT_ROUNDS):
+        # _box_least_squares of one unknown, lower bound 0
+        coef = np.zeros(1)
+        if upper > 0.0 and g > 0.0:
+            _one_unknown(g, h, 0.0, upper, coef)
+        mu = np.empty(work.n.size)
+        one_row_model(row, float(coef[0]), unit, floor_scale, mu)
+        n_kept, left, joined = work.changes(mu, kept)
+        if n_kept == 0 or (left.size == 0 and joined.size == 0):
+            break
+        if left.size:
+            g_out, h_out = _partial_sums(design, target, left)
+            g, h = g - g_out, h - h_out
+        if joined.size:
+            g_in, h_in = _partial_sums(design, target, joined)
+            g, h = g + g_in, h + h_in
+        else:
+            g, h = g + 0.0, h + 0.0
+        kept = ~work.below
+    return mu, coef, kept
+
+
+def _partial_sums(design, target, index):
+    """:func:`_partial_gram` of a one-row design, as Python floats (the same products and sums)."""
+    g = h = 0.0
+    for start in range(0, index.size, _GRAM_BLOCK):
+        part = index[start:start + _GRAM_BLOCK]
+        d = design[:, part].astype(np.float64, copy=False)
+        g += float((d @ d.T)[0, 0])
+        h += float((d @ target[part])[0])
+    return g, h
 
 
 def gram_matrix(design: np.ndarray) -> np.ndarray:
@@ -164,12 +260,17 @@ class WideDesign:
 
 
 def _moved_bins(g, h, design, target, left, joined):
-    """``g - G(left) + G(joined)``, ``h - H(left) + H(joined)`` (:func:`_partial_gram`).
+    """``g - G(left) + G(joined)``, ``h - H(left) + H(joined)`` (:func:`_partial_gram`) for
+    boolean masks of the bins (:func:`_moved_index`)."""
+    return _moved_index(g, h, design, target, left.nonzero()[0], joined.nonzero()[0])
+
+
+def _moved_index(g, h, design, target, index_out, index_in):
+    """:func:`_moved_bins` of the bins' indices (ascending).
 
     A side no bin moved to contributes zeros, so its product is not formed (``+ 0.0``
     keeps what adding those zeros does to a -0.0).
     """
-    index_out, index_in = left.nonzero()[0], joined.nonzero()[0]  # 1-D: np.flatnonzero
     if index_out.size:
         g_out, h_out = _partial_gram(design, target, index_out)
         g, h = g - g_out, h - h_out
@@ -270,6 +371,34 @@ def measure_excess_area(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
     largest single-bin excess in a window is left out of it, so one stray bright
     bin (a hot pixel that escaped) cannot lend excess to its eight neighbours.
     """
+    given = n, mu, area
+    n, mu, area = (np.ascontiguousarray(v, dtype=np.float64) for v in given)
+    if (all(np.asarray(v).dtype == np.float64 for v in given) and n.ndim == 2
+            and n.shape == mu.shape == area.shape and n.size
+            and np.isfinite(n).all() and np.isfinite(mu).all() and np.isfinite(area).all()):
+        # one compiled pass over the bins and their windows (the same values, the same
+        # verdicts); gammainc only for what the bounds leave open
+        unit = settings.counts_per_unit
+        windows = min(n.shape) >= 3
+        n_w, mu_w, a_w = (np.empty(n.shape) for _ in range(3))
+        mark = np.empty(n.shape, np.int8)
+        hard = np.empty(2 * n.size, np.intp)
+        count = excess_marks(n, mu, area, settings.min_excess * unit,
+                             math.log(settings.empty_alpha), windows, n_w, mu_w, a_w, mark, hard)
+        if count:
+            index = hard[:count]
+            pool_n = np.concatenate([n.reshape(-1), n_w.reshape(-1)])
+            pool_mu = np.concatenate([mu.reshape(-1), mu_w.reshape(-1)])
+            below = special.gammainc(pool_n[index], pool_mu[index]) < settings.empty_alpha
+            mark.reshape(-1)[index[below] % n.size] = 1
+        return float(area[mark.view(bool)].sum())
+    return _measure_excess_area_numpy(*given, settings)
+
+
+def _measure_excess_area_numpy(n: np.ndarray, mu: np.ndarray, area: np.ndarray,
+                               settings: QualitySettings) -> float:
+    """:func:`measure_excess_area` in numpy steps (for values that are not finite, and the
+    form the compiled pass is tested against)."""
     unit = settings.counts_per_unit
     excess = poisson_tail_below(n, mu, settings.empty_alpha) & (
         n - mu >= settings.min_excess * unit * area)

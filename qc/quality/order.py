@@ -39,10 +39,59 @@ def percentile(values, q, *, memo: dict | None = None, also=()):
     if arr.dtype.kind not in "uif" or arr.size == 0:
         return np.percentile(arr, q)
     flat = np.ascontiguousarray(arr).reshape(-1)
-    # numpy's steps (numpy.lib._function_base_impl: percentile, _quantile, _get_indexes)
+    n = flat.size
+    weak, previous, following, ranks, gamma, key = _plan(n, q)
+    take = None
+    wanted = ranks % n
+    if memo is not None and arr.dtype in _SELECTED and all(r in memo for r in wanted.tolist()):
+        take = _from_memo(memo, n, flat.dtype)
+    elif n >= SELECT_SIZE and arr.dtype in _SELECTED:
+        take = _selected(flat, _with_also(key, n, wanted, also), memo)
+    if take is None:
+        # numpy's own partition of a copy: the order statistics numpy's ranks pick
+        ordered = flat.copy()
+        # with a memo, the ranks of ``also`` are placed in the same partition and every
+        # rank's value kept; not where the values hold a negative zero, whose place among
+        # the zeros (so the sign of a zero found) depends on the ranks partitioned for
+        kept = memo is not None and arr.dtype in _SELECTED and not _negative_zero(flat)
+        if kept:
+            wanted = _with_also(key, n, wanted, also)
+            ordered.partition(wanted)
+        else:
+            ordered.partition(ranks)
+        if arr.dtype.kind == "f" and np.isnan(ordered[-1]):
+            return np.percentile(arr, q)
+        if kept:
+            memo.update(zip(wanted.tolist(), ordered[wanted], strict=True))
+        take = ordered.__getitem__
+    low, high = take(previous), take(following)
+    return _lerp(low, high, gamma)
+
+
+#: The ranks and weights of the percentiles asked for, per (count of values, percentiles):
+#: they depend on nothing else, and the same few are asked for of every channel.
+_PLANS: dict = {}
+
+
+def _plan_key(n: int, q):
+    """A key for :data:`_PLANS` (None where ``q`` is not plain numbers)."""
+    if type(q) in (int, float):
+        return (n, type(q), q) if q == q else None
+    if type(q) in (list, tuple) and all(type(v) in (int, float) and v == v for v in q):
+        return (n, type(q), tuple((type(v), v) for v in q))
+    return None
+
+
+def _plan(n: int, q):
+    """numpy's steps from ``q`` to the order statistics it interpolates between
+    (numpy.lib._function_base_impl: percentile, _quantile, _get_indexes): (weak scalar,
+    ranks below, ranks above, every rank to place, the interpolation weights, the key)."""
+    key = _plan_key(n, q)
+    plan = _PLANS.get(key) if key is not None else None
+    if plan is not None:
+        return plan
     weak = type(q) in (int, float)
     quantiles = np.true_divide(q, 100, out=...)
-    n = flat.size
     virtual = np.asanyarray((n - 1) * quantiles)
     previous = np.floor(virtual, out=...)
     following = np.add(previous, 1, out=...)
@@ -52,25 +101,36 @@ def percentile(values, q, *, memo: dict | None = None, also=()):
         following[above] = -1
     previous, following = previous.astype(np.intp), following.astype(np.intp)
     ranks = np.unique(np.concatenate(([0, -1], previous.ravel(), following.ravel())))
-    take = None
-    if n >= SELECT_SIZE and arr.dtype in _SELECTED:
-        wanted = ranks % n
-        if memo is not None and all(r in memo for r in wanted.tolist()):
-            take = _from_memo(memo, n, flat.dtype)
-        else:
-            extra = [_ranks(n, np.true_divide(a, 100)) for a in also]
-            take = _selected(flat, np.concatenate([wanted, *extra]), memo)
-    if take is None:
-        # numpy's own partition of a copy, with numpy's ranks: the same arrangement
-        ordered = flat.copy()
-        ordered.partition(ranks)
-        if arr.dtype.kind == "f" and np.isnan(ordered[-1]):
-            return np.percentile(arr, q)
-        take = ordered.__getitem__
-    low, high = take(previous), take(following)
     gamma = np.asanyarray(np.asanyarray(virtual - previous), dtype=virtual.dtype)
     gamma = float(gamma) if weak else gamma.reshape(virtual.shape)
-    return _lerp(low, high, gamma)
+    for array in (previous, following, ranks, gamma):
+        if isinstance(array, np.ndarray):
+            array.setflags(write=False)
+    plan = (weak, previous, following, ranks, gamma, key)
+    if key is not None and len(_PLANS) < 1024:
+        _PLANS[key] = plan
+    return plan
+
+
+def _with_also(key, n: int, wanted: np.ndarray, also) -> np.ndarray:
+    """``wanted`` and the two ranks around each percentile of ``also``, sorted and unique."""
+    also_key = None if key is None else (key, tuple(also))
+    if also_key is not None and all(type(a) in (int, float) for a in also):
+        found = _PLANS.get(also_key)
+        if found is not None:
+            return found
+    else:
+        also_key = None
+    ranks = np.unique(np.concatenate([wanted, *(_ranks(n, np.true_divide(a, 100)) for a in also)]))
+    ranks.setflags(write=False)
+    if also_key is not None and len(_PLANS) < 1024:
+        _PLANS[also_key] = ranks
+    return ranks
+
+
+def _negative_zero(flat: np.ndarray) -> bool:
+    """Whether float32 values hold a -0.0 (integers never do)."""
+    return flat.dtype == np.float32 and bool((flat.view(np.uint32) == 0x80000000).any())
 
 
 def _ranks(n: int, quantile: float) -> np.ndarray:
