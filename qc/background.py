@@ -361,17 +361,29 @@ def shared_modulation(rates: np.ndarray, region_rates: np.ndarray, mask) -> np.n
     Per pixel, the median over channels of local rate / region rate: a stain raising one
     channel over a large area does not move it.
     """
-    rates = np.asarray(rates, np.float64)
+    rates = np.asarray(rates)
     regions = _regions(rates.shape[1:], mask)
+    flat = rates.reshape(rates.shape[0], -1)
     out = np.ones(rates.shape[1:], np.float64)
     for k, region in enumerate(regions):
         valid = np.isfinite(region_rates[:, k]) & (region_rates[:, k] > 0)
         if not region.any() or not valid.any():
             continue
-        ratios = rates[valid][:, region] / region_rates[valid, k][:, None]
-        values = np.median(ratios, axis=0)
+        rows, divisors = np.flatnonzero(valid), region_rates[valid, k][:, None]
+        where = np.flatnonzero(region.ravel())
+        values = np.empty(where.size, np.float64)
+        # The median of each pixel's column alone, a slice of pixels at a time: the same
+        # values as over the whole region at once, without channels x pixels float64 copies.
+        for start in range(0, where.size, MEDIAN_SLICE):
+            part = where[start:start + MEDIAN_SLICE]
+            ratios = flat[np.ix_(rows, part)].astype(np.float64) / divisors
+            values[start:start + part.size] = np.median(ratios, axis=0)
         out[region] = values / max(float(values.mean()), 1e-12)
     return out.astype(np.float32)
+
+
+#: Pixels per slice of :func:`shared_modulation`'s medians (a few MiB of float64 per slice).
+MEDIAN_SLICE = 1 << 15
 
 
 def background_model(stack, *, used=None, settings: BackgroundSettings = BackgroundSettings()
@@ -399,7 +411,9 @@ def background_model(stack, *, used=None, settings: BackgroundSettings = Backgro
     for c in np.flatnonzero(used):
         first[c], region_rates[c] = local_background(stack[c], mask=tissue, settings=rough,
                                                      return_regions=True)
-    pattern = shared_modulation(first[used], region_rates[used], tissue)
+    every = bool(used.all())  # then no copy of the first rates
+    pattern = shared_modulation(first if every else first[used],
+                                region_rates if every else region_rates[used], tissue)
     del first
     rates = np.empty(stack.shape, np.float32)
     for c in range(stack.shape[0]):
