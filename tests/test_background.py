@@ -312,3 +312,37 @@ def test_improbable_windows_equal_the_incomplete_gamma_everywhere():
         want = poisson_upper_tail(n, mu) < alpha
         np.testing.assert_array_equal(tail_below(n, mu, alpha, poisson_upper_tail), want)
         assert 0 < want.sum() < want.size
+
+
+def test_compiled_bisection_equals_the_stepwise_search_where_exp_differs():
+    """``TailSearch.bisect`` (one compiled loop) against the step-by-step loop of ``above`` at
+    ``np.exp`` of each mid, bit for bit; the cases include loops whose C-library ``exp``
+    differs from numpy's at some step (the reruns with numpy's scales are exercised)."""
+    from plexwash.qc._tail_search import TailSearch
+    from plexwash.qc.steps import _search_kernels
+    from scipy import special
+
+    rng = np.random.default_rng(11)
+    corrected = 0
+    for case in range(60):
+        size = int(rng.integers(1, 600))
+        m = rng.uniform(0.2, 40.0, size)
+        n = rng.poisson(m * rng.uniform(0.05, 20.0)).astype(np.float64)
+        quantile = float(rng.choice([0.05, 0.2, 0.5]))
+        target = float(special.ndtri(quantile))
+        low, high = np.log(1e-9), np.log(max(float(n.sum() / m.sum()), 1e-9) * 10.0)
+        search = TailSearch(n, m, quantile)
+        got = search.bisect(low, high, target, 32)
+        step_low, step_high = low, high
+        for _ in range(32):
+            mid = 0.5 * (step_low + step_high)
+            if search.above(np.exp(mid), target):
+                step_low = mid
+            else:
+                step_high = mid
+        assert got == (step_low, step_high), case
+        mids, scales = np.empty(32), np.empty(32)
+        _search_kernels.tail_bisection(n, m, low, high, target, search.first, search.second, search.gamma,
+                                       0, 0.0, np.empty(size), mids, scales, np.empty((32, 2)))
+        corrected += bool((np.exp(mids) != scales).any())
+    assert corrected > 0

@@ -104,30 +104,72 @@ def residue_candidates(image, spilled, zone, levels, measured, expected, where):
     return found
 
 
-@nb.njit(cache=True, nogil=True)
+@nb.njit(cache=True, nogil=True, error_model="numpy")
 def tail_decision(n, m, s, target, first, second, values):
     """One step of the lower-tail scale bisection (:class:`plexwash.qc.background._TailSearch`):
     ``values = (n - s m) / sqrt(s m)`` elementwise, then ``(1, 0, 0)`` when at most ``first`` of
     them are ``<= target`` (the quantile is above it), ``(0, 0, 0)`` when more than ``second``
-    are, else ``(2, a, b)`` with ``a``, ``b`` the order statistics ``first`` and ``second``."""
+    are, else ``(2, a, b)`` with ``a``, ``b`` the order statistics ``first`` and ``second``.
+
+    ``second`` is ``first + 1`` (or equal to it, when nothing is undecided), so the undecided
+    case has exactly ``second`` values ``<= target``: the order statistic ``first`` is the
+    largest of them and ``second`` the smallest of the others, found in one pass without
+    sorting. numpy's error model (a division by 0 gives inf, as numpy's does, instead of
+    raising) lets the values loop run on vector registers; IEEE division and square root give
+    the same bits either way."""
     size = n.size
-    at_most = 0
     for i in range(size):
         product = s * m[i]
-        v = (n[i] - product) / np.sqrt(product)
-        values[i] = v
-        if v <= target:
+        values[i] = (n[i] - product) / np.sqrt(product)
+    at_most = 0
+    for i in range(size):
+        if values[i] <= target:
             at_most += 1
     if at_most <= first:
         return 1, 0.0, 0.0
     if at_most > second:
         return 0, 0.0, 0.0
-    order = np.partition(values[:size], first)
-    a = order[first]
-    b = a
-    if second > first:
-        b = order[first + 1]
-        for i in range(first + 2, size):
-            if order[i] < b:
-                b = order[i]
+    a = -np.inf
+    b = np.inf
+    for i in range(size):
+        v = values[i]
+        if v <= target:
+            if v > a:
+                a = v
+        elif v < b:
+            b = v
     return 2, a, b
+
+
+@nb.njit(cache=True, nogil=True)
+def tail_bisection(n, m, low, high, target, first, second, gamma, start, scale, values, mids, scales, bounds):
+    """The lower-tail scale bisection of :func:`plexwash.qc.background.lower_tail_scale`, its steps
+    ``start`` to ``mids.size - 1`` in one loop from the bracket ``[low, high]`` (log scale), each
+    deciding by :func:`tail_decision` and, when undecided, by numpy's interpolation of the two
+    order statistics with weight ``gamma``, as ``_tail_search.TailSearch.above`` does. The scale of
+    step ``start`` is ``scale`` when that is positive, every other one ``exp(mid)``; each step's
+    ``mid``, scale and bracket before it are written to ``mids``, ``scales`` and ``bounds`` so the
+    caller can check the scales against numpy's ``exp`` and resume. Returns the final
+    ``(low, high)``."""
+    for step in range(start, mids.size):
+        bounds[step, 0] = low
+        bounds[step, 1] = high
+        mid = 0.5 * (low + high)
+        s = scale if step == start and scale > 0.0 else np.exp(mid)
+        mids[step] = mid
+        scales[step] = s
+        code, a, b = tail_decision(n, m, s, target, first, second, values)
+        if code < 2:
+            above = code == 1
+        else:
+            diff = b - a
+            if gamma >= 0.5:
+                value = b - diff * (1 - gamma)
+            else:
+                value = a + diff * gamma
+            above = value > target
+        if above:
+            low = mid
+        else:
+            high = mid
+    return low, high
