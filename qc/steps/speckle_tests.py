@@ -492,13 +492,14 @@ def line_sum_tables(levels: np.ndarray, settings) -> np.ndarray:
     trials = np.arange(2 * half + 1, dtype=np.float64)
     finite = np.isfinite(levels)
     table = np.zeros((len(levels), 2, trials.size), np.int32)
+    tested = finite & (levels <= settings.line_max_level)  # the others are NO_LINE: not searched
     # each zone's row depends on its level alone: searched once per distinct level
-    distinct, at = np.unique(levels[finite], return_inverse=True)
+    distinct, at = np.unique(levels[tested], return_inverse=True)
     means = trials[None, :] * distinct[:, None]
-    table[finite, 0] = poisson_min_values(means, settings.line_alpha / tests).astype(np.int32)[at.ravel()]
+    table[tested, 0] = poisson_min_values(means, settings.line_alpha / tests).astype(np.int32)[at.ravel()]
     if settings.line_side_alpha < 1.0:
-        table[finite, 1] = poisson_min_values(means, settings.line_side_alpha).astype(np.int32)[at.ravel()]
-    table[finite & (levels > settings.line_max_level)] = NO_LINE
+        table[tested, 1] = poisson_min_values(means, settings.line_side_alpha).astype(np.int32)[at.ravel()]
+    table[finite & ~tested] = NO_LINE
     return table
 
 
@@ -538,45 +539,98 @@ def filter_parameters(settings, background, zone=None) -> dict:
     """Everything the speckle kernel needs besides the pixels: every table of this module for
     ``settings`` (a ``SpeckleSettings``) and the channel's ``background`` (a
     ``speckle.BackgroundEstimate``). With the ``zone`` map, the zone tables are searched only
-    for the codes it holds."""
+    for the codes it holds.
+
+    Every zone's row of every table depends on its level alone, so the rows are made once per
+    distinct level and repeated (:func:`_level_tables`); the same entries as each table's own
+    function gives on every zone (tested)."""
     zoned = background.zone_levels is not None
     if zoned:
         levels, rates = background.zone_levels, None
     else:
         levels, rates = np.array([background.level]), np.array([background.rate])
     tabled = tabulated_levels(levels, zone) if zoned else levels
-    tables = {"threshold": settings.threshold, "value_alpha": settings.value_alpha}
-    min_count, value_cut = zone_tables(tabled, rates=rates, radius=int(settings.radius), alpha=settings.alpha,
-                                       **tables)
+    distinct, at = np.unique(tabled, return_inverse=True)
+    rows = _level_tables(distinct, rates, settings)
     wide_radius = int(settings.wide_radius)
-    if wide_radius > 0:
-        support, _ = zone_tables(tabled, rates=rates, radius=int(settings.radius),
-                                 alpha=settings.support_alpha, **tables)
-        wide, _ = zone_tables(tabled, rates=rates, radius=wide_radius, alpha=settings.alpha, **tables)
-    else:  # never: more neighbours than any window has
-        support = np.full_like(min_count, np.iinfo(np.int32).max)
-        wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
     return {
         "threshold": np.float32(settings.threshold),
         "radius": int(settings.radius),
-        "min_count": min_count,
+        "min_count": rows["min_count"][at.ravel()],
         "wide_radius": wide_radius,
         "wide_upper": float(poisson_min_value(float(np.max(levels[np.isfinite(levels)], initial=0.0)),
                                               settings.value_alpha) - 1.0),
-        "wide_min_count": wide,
-        "support_min_count": support,
-        "value_cut": value_cut,
+        "wide_min_count": rows["wide_min_count"][at.ravel()],
+        "support_min_count": rows["support_min_count"][at.ravel()],
+        "value_cut": rows["value_cut"][at.ravel()],
         "low_mean": low_mean_table(float(settings.edge_alpha)),
         "min_area": int(settings.min_area),
         "lone_cut": lone_cuts(levels, settings),
         "line_half": int(settings.line_half),
-        "line_min_count": line_sum_tables(tabled, settings),
+        "line_min_count": rows["line_min_count"][at.ravel()],
         "line_flank": int(settings.flank_distance),
         "line_flank_min": line_flank_table(int(settings.line_half), float(settings.flank_alpha)),
-        "rim_min_count": rim_tables(tabled, rates, settings),
-        "rim_value": rim_values(tabled, settings),
+        "rim_min_count": np.ascontiguousarray(rows["rim_min_count"][at.ravel()]),
+        "rim_value": rows["rim_value"][at.ravel()],
         "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
         "keep_touching": bool(settings.keep_touching),
         "zoned": zoned,
         "levels": np.asarray(levels, np.float64),
     }
+
+
+def _level_tables(levels: np.ndarray, rates, settings) -> dict:
+    """The rows of the zone tables for each of ``levels`` (``rates``: the fitted rate of a single
+    level, or None for the levels' positive rates), as :func:`zone_tables` (window, support and
+    wide), :func:`line_sum_tables`, :func:`rim_tables` and :func:`rim_values` make them; the
+    binomial searches at one alpha share one grid over all the neighbour counts asked."""
+    radius, wide_radius = int(settings.radius), int(settings.wide_radius)
+    given = rates is not None
+    rates = np.asarray(rates, np.float64) if given else positive_rate(levels, settings.threshold)
+    requests = [(radius, settings.alpha)]
+    if wide_radius > 0:
+        requests += [(radius, settings.support_alpha), (wide_radius, settings.alpha)]
+    tables = _min_count_tables(requests, rates, (2 * radius + 1) ** 2 if settings.rim_alpha > 0 else 0,
+                               settings.rim_alpha)
+    cuts = poisson_min_values(levels, settings.value_alpha) - 1.0
+    saturated = rates >= 1.0
+    if not given:  # a zone whose every pixel is positive (rate 1): nothing is sparser than background
+        for table in tables[:-1]:
+            table[saturated] = 0
+        cuts[saturated] = -np.inf
+    min_count = tables[0]
+    if wide_radius > 0:
+        support, wide = tables[1], tables[2]
+    else:  # never: more neighbours than any window has
+        support = np.full_like(min_count, np.iinfo(np.int32).max)
+        wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
+    rim = tables[-1]
+    if settings.rim_alpha > 0:
+        rim[saturated] = 0
+    return {"min_count": min_count, "support_min_count": support, "wide_min_count": wide, "value_cut": cuts,
+            "line_min_count": line_sum_tables(levels, settings), "rim_min_count": rim,
+            "rim_value": rim_values(levels, settings)}
+
+
+def _min_count_tables(requests, rates: np.ndarray, rim_trials: int, rim_alpha: float) -> list:
+    """:func:`min_count_table` of each ``(radius, alpha)`` of ``requests`` at ``rates`` (int32), then
+    the rim table (``binomial_min_count`` of ``0 .. rim_trials - 1`` neighbours at ``rim_alpha``,
+    ``(R, rim_trials)`` int32; ``(R, 0)`` when ``rim_trials`` is 0). Each distinct (neighbour count,
+    rate) pair is searched once per alpha (each search is its own, whatever else is searched)."""
+    asked = [(_window_trials(r)[0], float(alpha)) for r, alpha in requests]
+    if rim_trials:
+        asked.append((np.arange(rim_trials, dtype=np.int64), float(rim_alpha)))
+    distinct_rates, rate_at = np.unique(rates, return_inverse=True)
+    rate_at = rate_at.ravel()
+    grids = {}
+    for alpha in {alpha for _, alpha in asked}:
+        union = np.unique(np.concatenate([trials for trials, a in asked if a == alpha]))
+        grids[alpha] = (union, _binomial_grid(union, distinct_rates, alpha).astype(np.int32))
+    out = []
+    for k, (trials, alpha) in enumerate(asked):
+        union, grid = grids[alpha]
+        rows = grid[np.searchsorted(union, trials)].T[rate_at]  # (rates, trials)
+        out.append(rows[..., _window_trials(requests[k][0])[1]] if k < len(requests) else rows)
+    if not rim_trials:
+        out.append(np.zeros((len(rates), 0), np.int32))
+    return out
