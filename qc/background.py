@@ -318,20 +318,13 @@ def lower_tail_scale(image, pattern, keep, *, window: int, quantile: float) -> f
     n, m = counts[sample], weight[sample]
     target = float(special.ndtri(quantile))
     low, high = np.log(1e-9), np.log(max(float(n.sum() / m.sum()), 1e-9) * 10.0)
-    search = TailSearch(n, m, quantile) if TailSearch.usable(n, m) else None
-    if search is not None and n.size <= TailSearch.NARROW_ABOVE:  # never narrowed: one compiled loop
-        low, high = search.bisect(low, high, target, 32)
+    if TailSearch.usable(n, m):  # all 32 steps in one compiled loop, decided by counting
+        low, high = TailSearch(n, m, quantile).bisect(low, high, target, 32)
         return float(np.exp(0.5 * (low + high)))
-    for step in range(32):  # brackets e^-21 .. 10x the mean: 32 halvings leave < 1e-8 in log s
+    for _ in range(32):  # brackets e^-21 .. 10x the mean: 32 halvings leave < 1e-8 in log s
         mid = 0.5 * (low + high)
         s = np.exp(mid)
-        if search is None:
-            above = np.quantile((n - s * m) / np.sqrt(s * m), quantile) > target
-        else:
-            if step >= TailSearch.FIRST_NARROWING and step % 2 == 0:
-                search.narrow(np.exp(low), np.exp(high))
-            above = search.above(s, target)
-        if above:
+        if np.quantile((n - s * m) / np.sqrt(s * m), quantile) > target:
             low = mid
         else:
             high = mid

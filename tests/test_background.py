@@ -343,6 +343,7 @@ def test_compiled_bisection_equals_the_stepwise_search_where_exp_differs():
         assert got == (step_low, step_high), case
         mids, scales = np.empty(32), np.empty(32)
         _search_kernels.tail_bisection(n, m, low, high, target, search.first, search.second, search.gamma,
-                                       0, 0.0, np.empty(size), mids, scales, np.empty((32, 2)))
+                                       0, 0.0, np.empty(size), mids, scales, np.empty((32, 2)),
+                                       np.empty(32, np.bool_))
         corrected += bool((np.exp(mids) != scales).any())
     assert corrected > 0

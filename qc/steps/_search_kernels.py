@@ -142,15 +142,16 @@ def tail_decision(n, m, s, target, first, second, values):
 
 
 @nb.njit(cache=True, nogil=True)
-def tail_bisection(n, m, low, high, target, first, second, gamma, start, scale, values, mids, scales, bounds):
+def tail_bisection(n, m, low, high, target, first, second, gamma, start, scale, values, mids, scales, bounds,
+                   decisions):
     """The lower-tail scale bisection of :func:`plexwash.qc.background.lower_tail_scale`, its steps
     ``start`` to ``mids.size - 1`` in one loop from the bracket ``[low, high]`` (log scale), each
     deciding by :func:`tail_decision` and, when undecided, by numpy's interpolation of the two
     order statistics with weight ``gamma``, as ``_tail_search.TailSearch.above`` does. The scale of
     step ``start`` is ``scale`` when that is positive, every other one ``exp(mid)``; each step's
-    ``mid``, scale and bracket before it are written to ``mids``, ``scales`` and ``bounds`` so the
-    caller can check the scales against numpy's ``exp`` and resume. Returns the final
-    ``(low, high)``."""
+    ``mid``, scale, bracket before it and decision (``above``) are written to ``mids``, ``scales``,
+    ``bounds`` and ``decisions`` so the caller can check the scales against numpy's ``exp`` and
+    resume. Returns the final ``(low, high)``."""
     for step in range(start, mids.size):
         bounds[step, 0] = low
         bounds[step, 1] = high
@@ -168,6 +169,7 @@ def tail_bisection(n, m, low, high, target, first, second, gamma, start, scale, 
             else:
                 value = a + diff * gamma
             above = value > target
+        decisions[step] = above
         if above:
             low = mid
         else:
