@@ -243,3 +243,24 @@ def test_filter_parameters_equal_each_tables_own_function(seed):
             for key, value in want.items():
                 assert got[key].dtype == value.dtype, key
                 np.testing.assert_array_equal(got[key], value, err_msg=key)
+
+
+def test_cached_scalar_searches_equal_the_plain_searches():
+    """One-entry binomial counts, Poisson levels and minimum values come from bounded caches:
+    the same numbers as the plain search (``scipy.special.bdtrc``) and ``scipy.special.gammaincinv``
+    on first and repeated asks, in fresh arrays the caller may change."""
+    from plexwash.qc.steps.speckle_tests import binomial_min_count, poisson_level, poisson_min_value
+    from scipy import special
+
+    rng = np.random.default_rng(8)
+    for trials, rate, alpha in zip(rng.integers(0, 130, 40), rng.uniform(0, 1, 40), rng.choice([1e-6, 0.01, 0.2], 40),
+                                   strict=True):
+        for _ in range(2):
+            got = binomial_min_count(np.array([trials]), np.float64(rate), alpha)
+            assert got.shape == (1,) and got.dtype == np.int64
+            assert got[0] == _binomial_min_count_plain(trials, rate, alpha)
+            got[0] = -1  # the cache keeps its own number
+        level = poisson_level(rate, 0.5)
+        assert level == poisson_level(float(rate), 0.5) == float(special.gammaincinv(1.0, rate))
+        assert poisson_min_value(np.float64(level), alpha) == poisson_min_value(level, alpha)
+    assert np.isinf(poisson_min_value(np.nan, 0.01)) and np.isinf(poisson_min_value(np.inf, 0.01))

@@ -136,8 +136,18 @@ def binomial_upper_point(trials: int, rate: float, tail: float) -> int:
     return int(np.argmax(survival <= tail))
 
 
+#: Entries of the caches of the scalar searches (a channel asks the same ones more than once:
+#: its estimate and its statistics; each entry a few numbers).
+SCALAR_CACHE = 1024
+
+
 def poisson_level(rate: float, threshold: float) -> float:
     """Mean ``lambda`` of a Poisson count with ``P(Y > threshold) = rate``."""
+    return _poisson_level(float(rate), float(threshold))
+
+
+@functools.lru_cache(maxsize=SCALAR_CACHE)
+def _poisson_level(rate: float, threshold: float) -> float:
     if rate <= 0.0:
         return 0.0
     if rate >= 1.0:
@@ -155,6 +165,11 @@ def positive_rate(level, threshold: float) -> np.ndarray:
 
 def poisson_min_value(level: float, value_alpha: float) -> float:
     """Smallest whole ``v >= 1`` with ``P(Y >= v) < value_alpha``, ``Y ~ Poisson(level)``."""
+    return _poisson_min_value(float(level), float(value_alpha))
+
+
+@functools.lru_cache(maxsize=SCALAR_CACHE)
+def _poisson_min_value(level: float, value_alpha: float) -> float:
     if not np.isfinite(level):
         return float("inf")
 
@@ -207,6 +222,9 @@ def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
     kept) when even ``P(N = trials)`` is not below ``alpha``.
     """
     trials, rate = np.broadcast_arrays(np.asarray(trials, np.int64), np.asarray(rate, np.float64))
+    if trials.size == 1:  # one search, asked again by a channel's statistics: cached
+        return np.full(trials.shape, _one_binomial_min_count(int(trials.flat[0]), float(rate.flat[0]), float(alpha)),
+                       np.int64)
     # Each entry's search is its own (the same steps whatever the other entries), so a table
     # that repeats trial counts (a window's a x b - 1) and rates is searched once per distinct
     # (trials, rate) pair of the product of both, when that product is smaller.
@@ -219,6 +237,14 @@ def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
     _sk.binomial_search(np.array(trials, np.int64).ravel(), np.array(rate, np.float64).ravel(),
                        np.full(trials.size, float(alpha)), _special_functions()[0], high)
     return high.reshape(shape)
+
+
+@functools.lru_cache(maxsize=SCALAR_CACHE)
+def _one_binomial_min_count(trials: int, rate: float, alpha: float) -> int:
+    high = np.empty(1, np.int64)
+    _sk.binomial_search(np.array([trials], np.int64), np.array([rate], np.float64), np.array([alpha]),
+                       _special_functions()[0], high)
+    return int(high[0])
 
 
 def _binomial_grid(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
