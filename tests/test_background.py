@@ -347,3 +347,32 @@ def test_compiled_bisection_equals_the_stepwise_search_where_exp_differs():
                                        np.empty(32, np.bool_))
         corrected += bool((np.exp(mids) != scales).any())
     assert corrected > 0
+
+
+@pytest.mark.parametrize("target", [-2.3, -0.8416212335729143, 0.0, 0.7])
+def test_tail_decision_equals_numpy_on_values_at_the_target(target):
+    """The step's count (by squares where they decide) and its order statistics against numpy's
+    values ``(n - s m) / np.sqrt(s m)`` and ``np.sort``, with many values within rounding of the
+    target (the squares cannot decide those), NaN-free ties and random ones."""
+    from plexwash.qc.steps import _search_kernels
+
+    rng = np.random.default_rng(int(abs(target) * 100))
+    for case in range(40):
+        size = int(rng.integers(2, 400))
+        s = float(np.exp(rng.uniform(-5, 3)))
+        m = rng.uniform(0.05, 30.0, size)
+        product = s * m
+        n = rng.poisson(product * rng.uniform(0.2, 3.0)).astype(np.float64)
+        near = rng.uniform(size=size) < 0.5
+        n[near] = product[near] + target * np.sqrt(product[near]) * (1 + rng.choice([-1, 0, 1], near.sum()) * 1e-16)
+        values = (n - s * m) / np.sqrt(s * m)
+        at_most = int(np.count_nonzero(values <= target))
+        first = int(rng.integers(0, size - 1)) if case % 3 else max(at_most - 1, 0)
+        code, a, b = _search_kernels.tail_decision(n, m, s, target, first, first + 1, np.empty(size))
+        if at_most <= first:
+            assert code == 1
+        elif at_most > first + 1:
+            assert code == 0
+        else:
+            ordered = np.sort(values)
+            assert (code, a, b) == (2, ordered[first], ordered[first + 1])

@@ -116,19 +116,48 @@ def tail_decision(n, m, s, target, first, second, values):
     largest of them and ``second`` the smallest of the others, found in one pass without
     sorting. numpy's error model (a division by 0 gives inf, as numpy's does, instead of
     raising) lets the values loop run on vector registers; IEEE division and square root give
-    the same bits either way."""
+    the same bits either way.
+
+    For a negative ``target`` a value ``v = e / sqrt(p)`` (``e = n - s m``, ``p = s m``, both
+    computed as above) is ``<= target`` exactly when ``e < 0`` and ``e**2 >= target**2 p``; the
+    computed ``v`` and squares are within a few units of rounding (1e-15) of the true ones, so
+    where the squares differ by more than 1e-9 of their size they decide as the computed ``v``
+    does, and only closer ones are divided out. The values themselves are computed only when
+    the count leaves the step undecided."""
     size = n.size
-    for i in range(size):
-        product = s * m[i]
-        values[i] = (n[i] - product) / np.sqrt(product)
     at_most = 0
-    for i in range(size):
-        if values[i] <= target:
-            at_most += 1
+    if target < 0.0:  # counted without the square root where squares decide (see below)
+        squared = target * target
+        close = 0
+        for i in range(size):  # no branches: runs on vector registers
+            product = s * m[i]
+            excess = n[i] - product
+            left = excess * excess
+            right = squared * product
+            negative = excess < 0.0
+            at_most += negative & (left > right * (1.0 + 1e-9))
+            close += negative & (left <= right * (1.0 + 1e-9)) & (left >= right * (1.0 - 1e-9))
+        if close:
+            for i in range(size):
+                product = s * m[i]
+                excess = n[i] - product
+                left = excess * excess
+                right = squared * product
+                if (excess < 0.0 and left <= right * (1.0 + 1e-9) and left >= right * (1.0 - 1e-9)
+                        and excess / np.sqrt(product) <= target):
+                    at_most += 1
+    else:
+        for i in range(size):
+            product = s * m[i]
+            if (n[i] - product) / np.sqrt(product) <= target:
+                at_most += 1
     if at_most <= first:
         return 1, 0.0, 0.0
     if at_most > second:
         return 0, 0.0, 0.0
+    for i in range(size):
+        product = s * m[i]
+        values[i] = (n[i] - product) / np.sqrt(product)
     a = -np.inf
     b = np.inf
     for i in range(size):
