@@ -58,6 +58,7 @@ import numpy as np
 from plexwash.qc.steps import _search_kernels as _sk  # absolute: one numba cache
 from scipy import special
 
+from .._tail_search import tail_below
 from ..errors import InputError
 
 __all__ = [
@@ -471,7 +472,9 @@ def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
     itself when there is nothing to test (no ``spilled``, or ``alpha`` 0) or nothing is set to 0.
 
     The same test as :func:`drop_residue` with the window sums made by a compiled loop, only at
-    the pixels tested, in ``box3``'s order of additions (so the same sums)."""
+    the pixels tested, in ``box3``'s order of additions (so the same sums), and the incomplete
+    gamma function evaluated only where the bounds of :func:`plexwash.qc._tail_search.tail_below`
+    leave the answer within rounding of ``alpha``."""
     if spilled is None or alpha <= 0:
         return image
     image = np.asarray(image, np.float32)
@@ -485,13 +488,24 @@ def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
                                   np.ascontiguousarray(levels), measured, expected, where)
     if found == 0:
         return image
-    tail = special.gammainc(np.maximum(measured[:found], 1.0), np.maximum(expected[:found], 1e-300))
-    residue = where[:found][tail >= alpha]
+    # residue: tail >= alpha, the tail computed only where exact bounds on it do not decide
+    whole, mean = np.maximum(measured[:found], 1.0), expected[:found]
+    if alpha < 0.49:  # whole n <= mean: P(N >= n) > 1/2 (a Poisson median is >= mean - ln 2, Choi 1994)
+        above = np.flatnonzero(whole > mean)
+        kept = above[tail_below(whole[above], mean[above], alpha, _residue_tail)]
+        residue = np.delete(where[:found], kept)
+    else:
+        residue = where[:found][~tail_below(whole, mean, alpha, _residue_tail)]
     if residue.size == 0:
         return image
     out = np.array(image, np.float32, order="C")
     out.reshape(-1)[residue] = np.float32(0.0)
     return out
+
+
+def _residue_tail(measured: np.ndarray, expected: np.ndarray) -> np.ndarray:
+    """The Poisson upper tail :func:`drop_residue` tests, ``P(N >= measured)`` for ``N ~ Poisson(expected)``."""
+    return special.gammainc(np.maximum(measured, 1.0), np.maximum(expected, 1e-300))
 
 
 def line_sum_tables(levels: np.ndarray, settings) -> np.ndarray:
