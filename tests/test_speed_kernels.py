@@ -152,3 +152,19 @@ def test_line_possible_equals_the_table_comparison():
         expected = (tables[:, 0, :] <= np.arange(offsets.shape[1] + 1) * np.floor(upper + 0.5)).any(axis=1)
         np.testing.assert_array_equal(k._line_possible(offsets, upper, tables), expected)
     assert not k._line_possible(offsets[:0], 3.0, tables).any()
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (1, 9), (9, 1), (2, 2), (31, 40)])
+def test_dropping_isolated_pixels_equals_the_component_rule_at_two_pixels(shape):
+    """The kernel's shortcut for ``min_area`` 2 against the general union-find labelling
+    (``_drop_small_components``), on random states with every kind of pixel."""
+    from plexwash.qc.steps import _kernels as k
+
+    rng = np.random.default_rng(shape[0] * 100 + shape[1])
+    for density in (0.05, 0.3, 0.7):
+        state = rng.choice(np.array([0, 1, 2, 3, 4], np.uint8), shape,
+                           p=[1 - density, density / 4, density / 4, density / 4, density / 4])
+        fast, general = state.copy(), state.copy()
+        k._drop_isolated(fast)
+        k._drop_small_components(general, 2)
+        np.testing.assert_array_equal(fast, general)

@@ -242,7 +242,10 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
             for x in range(width):
                 if state[y, x] >= _KEPT and image[y, x] > lone_cut[zone[y, x]]:
                     state[y, x] = _LONE
-        _drop_small_components(state, min_area)
+        if min_area == 2:
+            _drop_isolated(state)
+        else:
+            _drop_small_components(state, min_area)
     n_removed = 0
     for y in range(height):
         for x in range(width):
@@ -326,6 +329,24 @@ def _keep_touching(state):
                     for xx in range(max(0, x - 1), min(width, x + 2)):
                         if state[yy, xx] == _CORE:
                             state[y, x] = _KEPT
+
+
+@nb.njit(cache=True, nogil=True)
+def _drop_isolated(state):
+    """:func:`_drop_small_components` with ``min_area`` 2: a component of one pixel is a kept pixel
+    with no kept 8-neighbour, dropped unless it is ``_LONE`` (a dropped pixel had no kept
+    neighbour, so dropping it changes no other pixel's answer)."""
+    height, width = state.shape
+    for y in range(height):
+        for x in range(width):
+            if state[y, x] == _KEPT or state[y, x] == _CORE:
+                alone = True
+                for yy in range(max(0, y - 1), min(height, y + 2)):
+                    for xx in range(max(0, x - 1), min(width, x + 2)):
+                        if (yy != y or xx != x) and state[yy, xx] >= _KEPT:
+                            alone = False
+                if alone:
+                    state[y, x] = _DROPPED
 
 
 @nb.njit(cache=True, nogil=True)
