@@ -306,8 +306,8 @@ def lower_tail_scale(image, pattern, keep, *, window: int, quantile: float) -> f
     """
     area = float(window) ** 2
     kept = keep.astype(np.float64)
-    counts = ndimage.uniform_filter(image * kept, window, mode="constant") * area
-    weight = ndimage.uniform_filter(pattern * kept, window, mode="constant") * area
+    counts = _box_mean_constant(image * kept, window) * area
+    weight = _box_mean_constant(pattern * kept, window) * area
     step = max(1, window // 4)  # neighbouring boxes overlap almost fully: a sample is enough
     sample = np.zeros(keep.shape, bool)
     sample[::step, ::step] = True
@@ -346,9 +346,23 @@ def _box_mean(image, keep, region, prior: float, weight: float, window: int) -> 
     """
     area = float(window) ** 2
     kept = (keep & region).astype(np.float64)
-    counts = ndimage.uniform_filter(image * kept, window, mode="constant") * area
-    pixels = ndimage.uniform_filter(kept, window, mode="constant") * area
+    counts = _box_mean_constant(image * kept, window) * area
+    pixels = _box_mean_constant(kept, window) * area
     return (counts + weight * prior) / np.maximum(pixels + weight, 1e-12)
+
+
+def _box_mean_constant(values: np.ndarray, window: int) -> np.ndarray:
+    """``ndimage.uniform_filter(values, window, mode="constant")`` of a 2-D float64 plane, by a
+    compiled loop taking scipy's steps (``steps._search_kernels.box_mean_constant``: the same
+    bits, tested), without scipy's per-call set-up."""
+    from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
+
+    values = np.ascontiguousarray(values, np.float64)
+    if values.ndim != 2 or window < 2:
+        return ndimage.uniform_filter(values, window, mode="constant")
+    out = np.empty(values.shape, np.float64)
+    _search_kernels.box_mean_constant(values, int(window), out)
+    return out
 
 
 def shared_modulation(rates: np.ndarray, region_rates: np.ndarray, mask) -> np.ndarray:

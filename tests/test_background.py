@@ -376,3 +376,18 @@ def test_tail_decision_equals_numpy_on_values_at_the_target(target):
         else:
             ordered = np.sort(values)
             assert (code, a, b) == (2, ordered[first], ordered[first + 1])
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (1, 9), (9, 1), (3, 3), (24, 24), (24, 17), (63, 130)])
+def test_compiled_box_mean_equals_scipy_uniform_filter(shape):
+    """The background model's box means against ``scipy.ndimage.uniform_filter(mode="constant")``
+    (the reference), bit for bit, for windows smaller and larger than the plane."""
+    from plexwash.qc.background import _box_mean_constant
+    from scipy import ndimage
+
+    rng = np.random.default_rng(shape[0] * 1000 + shape[1])
+    for window in (2, 3, 4, 7, 11, 41, 200):
+        values = (rng.poisson(rng.uniform(0, 50), shape) * (rng.uniform(size=shape) < 0.7)
+                  * rng.uniform(0.1, 3.0, shape))
+        np.testing.assert_array_equal(_box_mean_constant(values, window),
+                                      ndimage.uniform_filter(values, window, mode="constant"))

@@ -204,3 +204,40 @@ def tail_bisection(n, m, low, high, target, first, second, gamma, start, scale, 
         else:
             high = mid
     return low, high
+
+
+@nb.njit(cache=True, nogil=True)
+def _running_mean(line, length, size, out, start, stride):
+    """scipy's uniform filter of one line held in ``line`` with its padding (``size // 2`` values
+    before, the rest after): the sum of the first ``size`` values, then a running sum moved by
+    the difference of the entering and leaving values, each output the sum divided by ``size``
+    (``NI_UniformFilter1D``)."""
+    total = 0.0
+    for k in range(size):
+        total += line[k]
+    out[start] = total / size
+    for k in range(1, length):
+        total += line[k + size - 1] - line[k - 1]
+        out[start + k * stride] = total / size
+
+
+@nb.njit(cache=True, nogil=True)
+def box_mean_constant(values, size, out):
+    """``out`` = ``scipy.ndimage.uniform_filter(values, size, mode="constant")`` for a 2-D float64
+    plane and an odd or even ``size >= 2``: along axis 0 then axis 1, each line padded with zeros,
+    the intermediate plane float64, as scipy computes it."""
+    height, width = values.shape
+    before = size // 2
+    line = np.zeros(max(height, width) + size)
+    work = np.empty(height * width)
+    flat = out.reshape(-1)
+    for x in range(width):
+        for y in range(height):
+            line[before + y] = values[y, x]
+        _running_mean(line, height, size, work, x, width)
+    for k in range(line.size):
+        line[k] = 0.0
+    for y in range(height):
+        for x in range(width):
+            line[before + x] = work[y * width + x]
+        _running_mean(line, width, size, flat, y * width, 1)
