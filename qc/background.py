@@ -216,8 +216,9 @@ def likely_signal(image: np.ndarray, rate, *, box: int, alpha: float) -> np.ndar
     """(Y, X) bool: every pixel of a ``box`` x ``box`` window whose count sum ``n`` has
     ``P(N >= n) < alpha`` under ``N ~ Poisson(box**2 * rate)``."""
     area = float(box * box)
-    sums = np.rint(ndimage.uniform_filter(np.asarray(image, np.float64), box, mode="reflect")
-                   * area)
+    image = np.asarray(image, np.float64)
+    # a box of one pixel: scipy's filter returns the plane's values themselves
+    sums = np.rint((image if box == 1 else ndimage.uniform_filter(image, box, mode="reflect")) * area)
     mean = np.broadcast_to(area * np.asarray(rate, np.float64), sums.shape)
     # n <= mean implies P(N >= n) > 1/2 >= alpha (a Poisson median is >= mean - ln 2, Choi
     # 1994): only windows above their mean can be improbable, the tail is computed there
