@@ -52,18 +52,8 @@ class TailSearch:
     operations as on the whole array, so the decisions equal numpy's.
 
     The values, count and selection of a step are one compiled loop (``steps._search_kernels.tail_decision``:
-    the same operations, element by element, as numpy's). :meth:`narrow` drops the values that cannot be either order statistic while ``s`` stays in
-    the bracket: each value falls as ``s`` grows (``n / sqrt(s m) - sqrt(s m)``), so between the
-    bracket's ends it lies between its values there (widened by 1e-9 of its size, far beyond
-    rounding); one whose upper end is below every possible ``j``-th value is counted below and
-    dropped, one whose lower end is above every possible ``(j + 1)``-th value dropped.
+    the same operations, element by element, as numpy's); :meth:`bisect` runs all the steps in one.
     """
-
-    #: The bisection step from which the candidates are narrowed (every other step): before,
-    #: the bracket spans too wide a range of scales for it to drop much.
-    FIRST_NARROWING = 6
-    #: Fewer values are not narrowed (the compiled step costs less than the narrowing).
-    NARROW_ABOVE = 4096
 
     @staticmethod
     def usable(n: np.ndarray, m: np.ndarray) -> bool:
@@ -80,37 +70,46 @@ class TailSearch:
             below = np.floor(virtual)
             self.first, self.second = int(below), int(below) + 1
             self.gamma = float(virtual - below)
-        self.dropped = 0  # values dropped below the order statistics
         self._buffer = None
         from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
 
         self._kernels = _search_kernels
 
-    def _values(self, s):  # as tail_decision makes them
-        return (self.n - s * self.m) / np.sqrt(s * self.m)
-
     def above(self, s, target: float) -> bool:
-        first, second = self.first - self.dropped, self.second - self.dropped
         if self._buffer is None or self._buffer.size < self.n.size:
             self._buffer = np.empty(self.n.size, np.float64)
-        code, a, b = self._kernels.tail_decision(self.n, self.m, float(s), float(target), first, second, self._buffer)
+        code, a, b = self._kernels.tail_decision(self.n, self.m, float(s), float(target), self.first, self.second,
+                                                      self._buffer)
         if code < 2:
             return code == 1
         diff = b - a
         value = b - diff * (1 - self.gamma) if self.gamma >= 0.5 else a + diff * self.gamma
         return value > target
 
-    def narrow(self, s_low, s_high) -> None:
-        if self.n.size <= self.NARROW_ABOVE:
-            return
-        upper_end, lower_end = self._values(s_low), self._values(s_high)
-        slack = 1e-9 * (np.abs(upper_end) + np.abs(lower_end) + np.sqrt(s_high * self.m) + 1.0)
-        upper_end += slack
-        lower_end -= slack
-        first, second = self.first - self.dropped, self.second - self.dropped
-        lowest_first = np.partition(lower_end, first)[first]
-        highest_second = np.partition(upper_end, second)[second]
-        below = upper_end < lowest_first
-        keep = ~below & (lower_end <= highest_second)
-        self.dropped += int(np.count_nonzero(below))
-        self.n, self.m = self.n[keep], self.m[keep]
+    def bisect(self, low: float, high: float, target: float, steps: int) -> tuple[float, float]:
+        """``steps`` halvings of ``[low, high]`` (log scale) by :meth:`above` at ``exp(mid)``, in one
+        compiled loop (``steps._search_kernels.tail_bisection``): the same
+        ``(low, high)`` as the loop of :func:`plexwash.qc.background.lower_tail_scale`.
+
+        The loop's ``exp`` (the C library's) differs from numpy's in the last bit for a few
+        percent of arguments, so every step's scale is checked against ``np.exp`` of its mid.
+        Where they differ, that step is decided again at numpy's scale (:meth:`above`); when the
+        decision stands, the later steps are unchanged (each mid depends on the decisions before
+        it alone), otherwise the loop resumes from that step's bracket with numpy's scale."""
+        mids, scales = np.empty(steps, np.float64), np.empty(steps, np.float64)
+        bounds = np.empty((steps, 2), np.float64)
+        decisions = np.empty(steps, np.bool_)
+        buffer = np.empty(self.n.size, np.float64)
+        start, scale, checked = 0, 0.0, 0
+        while True:
+            end = self._kernels.tail_bisection(self.n, self.m, float(low), float(high), float(target), self.first,
+                                               self.second, self.gamma, start, scale, buffer, mids, scales, bounds,
+                                               decisions)
+            exact = np.exp(mids)
+            for k in checked + np.flatnonzero(exact[checked:] != scales[checked:]):
+                if self.above(exact[k], target) != decisions[k]:
+                    start, scale, checked = int(k), float(exact[k]), int(k) + 1
+                    low, high = bounds[k]
+                    break
+            else:
+                return end

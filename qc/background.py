@@ -216,8 +216,9 @@ def likely_signal(image: np.ndarray, rate, *, box: int, alpha: float) -> np.ndar
     """(Y, X) bool: every pixel of a ``box`` x ``box`` window whose count sum ``n`` has
     ``P(N >= n) < alpha`` under ``N ~ Poisson(box**2 * rate)``."""
     area = float(box * box)
-    sums = np.rint(ndimage.uniform_filter(np.asarray(image, np.float64), box, mode="reflect")
-                   * area)
+    image = np.asarray(image, np.float64)
+    # a box of one pixel: scipy's filter returns the plane's values themselves
+    sums = np.rint((image if box == 1 else ndimage.uniform_filter(image, box, mode="reflect")) * area)
     mean = np.broadcast_to(area * np.asarray(rate, np.float64), sums.shape)
     # n <= mean implies P(N >= n) > 1/2 >= alpha (a Poisson median is >= mean - ln 2, Choi
     # 1994): only windows above their mean can be improbable, the tail is computed there
@@ -306,8 +307,8 @@ def lower_tail_scale(image, pattern, keep, *, window: int, quantile: float) -> f
     """
     area = float(window) ** 2
     kept = keep.astype(np.float64)
-    counts = ndimage.uniform_filter(image * kept, window, mode="constant") * area
-    weight = ndimage.uniform_filter(pattern * kept, window, mode="constant") * area
+    counts = _box_mean_constant(image * kept, window) * area
+    weight = _box_mean_constant(pattern * kept, window) * area
     step = max(1, window // 4)  # neighbouring boxes overlap almost fully: a sample is enough
     sample = np.zeros(keep.shape, bool)
     sample[::step, ::step] = True
@@ -318,17 +319,13 @@ def lower_tail_scale(image, pattern, keep, *, window: int, quantile: float) -> f
     n, m = counts[sample], weight[sample]
     target = float(special.ndtri(quantile))
     low, high = np.log(1e-9), np.log(max(float(n.sum() / m.sum()), 1e-9) * 10.0)
-    search = TailSearch(n, m, quantile) if TailSearch.usable(n, m) else None
-    for step in range(32):  # brackets e^-21 .. 10x the mean: 32 halvings leave < 1e-8 in log s
+    if TailSearch.usable(n, m):  # all 32 steps in one compiled loop, decided by counting
+        low, high = TailSearch(n, m, quantile).bisect(low, high, target, 32)
+        return float(np.exp(0.5 * (low + high)))
+    for _ in range(32):  # brackets e^-21 .. 10x the mean: 32 halvings leave < 1e-8 in log s
         mid = 0.5 * (low + high)
         s = np.exp(mid)
-        if search is None:
-            above = np.quantile((n - s * m) / np.sqrt(s * m), quantile) > target
-        else:
-            if step >= TailSearch.FIRST_NARROWING and step % 2 == 0:
-                search.narrow(np.exp(low), np.exp(high))
-            above = search.above(s, target)
-        if above:
+        if np.quantile((n - s * m) / np.sqrt(s * m), quantile) > target:
             low = mid
         else:
             high = mid
@@ -350,9 +347,23 @@ def _box_mean(image, keep, region, prior: float, weight: float, window: int) -> 
     """
     area = float(window) ** 2
     kept = (keep & region).astype(np.float64)
-    counts = ndimage.uniform_filter(image * kept, window, mode="constant") * area
-    pixels = ndimage.uniform_filter(kept, window, mode="constant") * area
+    counts = _box_mean_constant(image * kept, window) * area
+    pixels = _box_mean_constant(kept, window) * area
     return (counts + weight * prior) / np.maximum(pixels + weight, 1e-12)
+
+
+def _box_mean_constant(values: np.ndarray, window: int) -> np.ndarray:
+    """``ndimage.uniform_filter(values, window, mode="constant")`` of a 2-D float64 plane, by a
+    compiled loop taking scipy's steps (``steps._search_kernels.box_mean_constant``: the same
+    bits, tested), without scipy's per-call set-up."""
+    from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
+
+    values = np.ascontiguousarray(values, np.float64)
+    if values.ndim != 2 or window < 2:
+        return ndimage.uniform_filter(values, window, mode="constant")
+    out = np.empty(values.shape, np.float64)
+    _search_kernels.box_mean_constant(values, int(window), out)
+    return out
 
 
 def shared_modulation(rates: np.ndarray, region_rates: np.ndarray, mask) -> np.ndarray:

@@ -312,3 +312,82 @@ def test_improbable_windows_equal_the_incomplete_gamma_everywhere():
         want = poisson_upper_tail(n, mu) < alpha
         np.testing.assert_array_equal(tail_below(n, mu, alpha, poisson_upper_tail), want)
         assert 0 < want.sum() < want.size
+
+
+def test_compiled_bisection_equals_the_stepwise_search_where_exp_differs():
+    """``TailSearch.bisect`` (one compiled loop) against the step-by-step loop of ``above`` at
+    ``np.exp`` of each mid, bit for bit; the cases include loops whose C-library ``exp``
+    differs from numpy's at some step (the reruns with numpy's scales are exercised)."""
+    from plexwash.qc._tail_search import TailSearch
+    from plexwash.qc.steps import _search_kernels
+    from scipy import special
+
+    rng = np.random.default_rng(11)
+    corrected = 0
+    for case in range(60):
+        size = int(rng.integers(1, 600))
+        m = rng.uniform(0.2, 40.0, size)
+        n = rng.poisson(m * rng.uniform(0.05, 20.0)).astype(np.float64)
+        quantile = float(rng.choice([0.05, 0.2, 0.5]))
+        target = float(special.ndtri(quantile))
+        low, high = np.log(1e-9), np.log(max(float(n.sum() / m.sum()), 1e-9) * 10.0)
+        search = TailSearch(n, m, quantile)
+        got = search.bisect(low, high, target, 32)
+        step_low, step_high = low, high
+        for _ in range(32):
+            mid = 0.5 * (step_low + step_high)
+            if search.above(np.exp(mid), target):
+                step_low = mid
+            else:
+                step_high = mid
+        assert got == (step_low, step_high), case
+        mids, scales = np.empty(32), np.empty(32)
+        _search_kernels.tail_bisection(n, m, low, high, target, search.first, search.second, search.gamma,
+                                       0, 0.0, np.empty(size), mids, scales, np.empty((32, 2)),
+                                       np.empty(32, np.bool_))
+        corrected += bool((np.exp(mids) != scales).any())
+    assert corrected > 0
+
+
+@pytest.mark.parametrize("target", [-2.3, -0.8416212335729143, 0.0, 0.7])
+def test_tail_decision_equals_numpy_on_values_at_the_target(target):
+    """The step's count (by squares where they decide) and its order statistics against numpy's
+    values ``(n - s m) / np.sqrt(s m)`` and ``np.sort``, with many values within rounding of the
+    target (the squares cannot decide those), NaN-free ties and random ones."""
+    from plexwash.qc.steps import _search_kernels
+
+    rng = np.random.default_rng(int(abs(target) * 100))
+    for case in range(40):
+        size = int(rng.integers(2, 400))
+        s = float(np.exp(rng.uniform(-5, 3)))
+        m = rng.uniform(0.05, 30.0, size)
+        product = s * m
+        n = rng.poisson(product * rng.uniform(0.2, 3.0)).astype(np.float64)
+        near = rng.uniform(size=size) < 0.5
+        n[near] = product[near] + target * np.sqrt(product[near]) * (1 + rng.choice([-1, 0, 1], near.sum()) * 1e-16)
+        values = (n - s * m) / np.sqrt(s * m)
+        at_most = int(np.count_nonzero(values <= target))
+        first = int(rng.integers(0, size - 1)) if case % 3 else max(at_most - 1, 0)
+        code, a, b = _search_kernels.tail_decision(n, m, s, target, first, first + 1, np.empty(size))
+        if at_most <= first:
+            assert code == 1
+        elif at_most > first + 1:
+            assert code == 0
+        else:
+            ordered = np.sort(values)
+            assert (code, a, b) == (2, ordered[first], ordered[first + 1])
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (1, 9), (9, 1), (3, 3), (24, 24), (24, 17), (63, 130)])
+def test_compiled_box_mean_equals_scipy_uniform_filter(shape):
+    """The background model's box means against ``scipy.ndimage.uniform_filter(mode="constant")``
+    (the reference), bit for bit, for windows smaller and larger than the plane."""
+    from plexwash.qc.background import _box_mean_constant
+    from scipy import ndimage
+
+    rng = np.random.default_rng(shape[0] * 1000 + shape[1])
+    for window in (2, 3, 4, 7, 11, 41, 200):
+        values = (rng.poisson(rng.uniform(0, 50), shape) * (rng.uniform(size=shape) < 0.7)
+                  * rng.uniform(0.1, 3.0, shape))
+        np.testing.assert_array_equal(_box_mean_constant(values, window),
+                                      ndimage.uniform_filter(values, window, mode="constant"))

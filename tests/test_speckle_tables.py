@@ -180,3 +180,87 @@ def test_without_residue_equals_drop_residue_on_the_zone_background(seed):
             assert (got is image) == (want is image)
     assert without_residue(image, None, zone, levels, 0.05) is image
     assert without_residue(image, spilled, zone, levels, 0.0) is image
+
+
+def _filter_parameters_plain(settings, background, zone=None) -> dict:
+    """The kernel's tables made by each table's own function on every tabulated zone (the
+    reference: ``speckle_tests.filter_parameters`` before its rows were shared by level)."""
+    from plexwash.qc.steps import speckle_tests as st
+
+    zoned = background.zone_levels is not None
+    if zoned:
+        levels, rates = background.zone_levels, None
+    else:
+        levels, rates = np.array([background.level]), np.array([background.rate])
+    tabled = st.tabulated_levels(levels, zone) if zoned else levels
+    tables = {"threshold": settings.threshold, "value_alpha": settings.value_alpha}
+    min_count, value_cut = st.zone_tables(tabled, rates=rates, radius=int(settings.radius), alpha=settings.alpha,
+                                          **tables)
+    if int(settings.wide_radius) > 0:
+        support, _ = st.zone_tables(tabled, rates=rates, radius=int(settings.radius),
+                                    alpha=settings.support_alpha, **tables)
+        wide, _ = st.zone_tables(tabled, rates=rates, radius=int(settings.wide_radius), alpha=settings.alpha,
+                                 **tables)
+    else:
+        support = np.full_like(min_count, np.iinfo(np.int32).max)
+        wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
+    return {"min_count": min_count, "wide_min_count": wide, "support_min_count": support, "value_cut": value_cut,
+            "line_min_count": st.line_sum_tables(tabled, settings),
+            "rim_min_count": st.rim_tables(tabled, rates, settings), "rim_value": st.rim_values(tabled, settings)}
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_filter_parameters_equal_each_tables_own_function(seed):
+    """Rows made once per distinct level, the binomial searches of one alpha sharing a grid: the
+    same tables as :func:`zone_tables`, :func:`line_sum_tables`, :func:`rim_tables` and
+    :func:`rim_values` give on every zone, with and without a zone map, for levels that are 0,
+    saturated, infinite, NaN or above ``line_max_level``, and for settings that turn parts off or
+    make alphas equal."""
+
+    from plexwash.qc.background import zone_factors
+    from plexwash.qc.steps import speckle as sp
+    from plexwash.qc.steps.speckle_settings import SpeckleSettings
+    from plexwash.qc.steps.speckle_tests import filter_parameters
+
+    rng = np.random.default_rng(seed)
+    variants = [SpeckleSettings(), SpeckleSettings(radius=3, wide_radius=0, rim_alpha=0.0, line_half=0),
+                SpeckleSettings(alpha=0.2, support_alpha=0.2, rim_alpha=0.2, line_side_alpha=1.0),
+                SpeckleSettings(radius=1, wide_radius=7, threshold=2.0, line_max_level=5.0)]
+    settings = variants[seed]
+    regions = rng.uniform(0.01, 4.0, 2)
+    levels = np.where(np.arange(256) < 128, regions[0], regions[1]) * zone_factors()
+    levels[rng.integers(0, 256, 3)] = np.inf
+    levels[rng.integers(0, 256, 2)] = 0.0
+    levels[rng.integers(0, 256, 2)] = np.nan
+    zone = rng.integers(0, 256, (40, 50)).astype(np.uint8)
+    zone[:, :25] = rng.choice(np.array([10, 11, 200], np.uint8), (40, 25))
+    for rate in (rng.uniform(0.01, 0.6), 1.0):
+        base = sp._background_from_histogram(None, settings, rate=rate)
+        cases = [(base, None), (base._replace(zone_levels=levels), zone), (base._replace(zone_levels=levels), None)]
+        for background, zone_map in cases:
+            got = filter_parameters(settings, background, zone_map)
+            want = _filter_parameters_plain(settings, background, zone_map)
+            for key, value in want.items():
+                assert got[key].dtype == value.dtype, key
+                np.testing.assert_array_equal(got[key], value, err_msg=key)
+
+
+def test_cached_scalar_searches_equal_the_plain_searches():
+    """One-entry binomial counts, Poisson levels and minimum values come from bounded caches:
+    the same numbers as the plain search (``scipy.special.bdtrc``) and ``scipy.special.gammaincinv``
+    on first and repeated asks, in fresh arrays the caller may change."""
+    from plexwash.qc.steps.speckle_tests import binomial_min_count, poisson_level, poisson_min_value
+    from scipy import special
+
+    rng = np.random.default_rng(8)
+    for trials, rate, alpha in zip(rng.integers(0, 130, 40), rng.uniform(0, 1, 40), rng.choice([1e-6, 0.01, 0.2], 40),
+                                   strict=True):
+        for _ in range(2):
+            got = binomial_min_count(np.array([trials]), np.float64(rate), alpha)
+            assert got.shape == (1,) and got.dtype == np.int64
+            assert got[0] == _binomial_min_count_plain(trials, rate, alpha)
+            got[0] = -1  # the cache keeps its own number
+        level = poisson_level(rate, 0.5)
+        assert level == poisson_level(float(rate), 0.5) == float(special.gammaincinv(1.0, rate))
+        assert poisson_min_value(np.float64(level), alpha) == poisson_min_value(level, alpha)
+    assert np.isinf(poisson_min_value(np.nan, 0.01)) and np.isinf(poisson_min_value(np.inf, 0.01))

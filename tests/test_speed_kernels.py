@@ -92,3 +92,79 @@ def test_poisson_tail_screen_agrees_with_gammainc(alpha):
     rng.shuffle(ratio)
     n = np.round(mu * ratio)
     np.testing.assert_array_equal(poisson_tail_below(n, mu, alpha), special.gammainc(n, mu) < alpha)
+
+
+def _speckle_kernel_args(seed: int):
+    """A channel with fibres, cells and background over zones where the line test can and
+    cannot keep a pixel (levels below and above ``line_max_level``), and its kernel tables."""
+    from plexwash.qc.background import zone_factors
+    from plexwash.qc.steps import speckle as sp
+    from plexwash.qc.steps.speckle_settings import SpeckleSettings
+
+    rng = np.random.default_rng(seed)
+    levels = np.where(np.arange(256) % 3 == 0, 0.05, np.where(np.arange(256) % 3 == 1, 0.4, 3.0)) * zone_factors()
+    zone = rng.choice(np.array([30, 31, 32, 160, 161, 224], np.uint8), (8, 8))
+    zone = np.ascontiguousarray(np.repeat(np.repeat(zone, 6, 0), 6, 1)[:45, :47])
+    image = rng.poisson(levels[zone]).astype(np.float32)
+    image[10, 3:40] += rng.poisson(2.0, 37)  # a dim fibre
+    image[20:26, 30:36] += 12.0  # a cell
+    settings = SpeckleSettings()
+    background = sp._background_from_histogram(None, settings, rate=0.2)._replace(zone_levels=levels)
+    params = sp.filter_parameters(settings, background, zone)
+    return image, zone, params, settings
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_speckle_filter_with_the_line_gate_equals_the_filter_asking_every_pixel(seed, monkeypatch):
+    """The kernel asks the line test only in zones whose table some line can reach
+    (``_line_possible``): the same washed channel as its plain Python form asking the line
+    test of every pixel (the kernel before the gate), zones of both kinds present."""
+    from plexwash.qc.steps import _kernels as k
+    from plexwash.qc.steps import speckle as sp
+    from plexwash.qc.steps.speckle_tests import line_offsets
+
+    image, zone, params, settings = _speckle_kernel_args(seed)
+    possible = k._line_possible(line_offsets(settings.line_half), params["wide_upper"], params["line_min_count"])
+    assert possible[np.unique(zone)].any() and not possible[np.unique(zone)].all()
+    counts = sp._counts(image, settings)
+    fast = (np.empty_like(image), np.empty_like(image))
+    sp._speckle_apply(image, counts, zone, params, *fast)
+    monkeypatch.setattr(k, "_line_possible", lambda offsets, upper, tables: np.full(tables.shape[0], len(offsets) > 0))
+    monkeypatch.setattr(k, "speckle_filter", k.speckle_filter.py_func)
+    plain = (np.empty_like(image), np.empty_like(image))
+    sp._speckle_apply(image, counts, zone, params, *plain)
+    np.testing.assert_array_equal(fast[0], plain[0])
+    np.testing.assert_array_equal(fast[1], plain[1])
+    assert (fast[1] > 0).any() and (fast[0] > 0).any()
+
+
+def test_line_possible_equals_the_table_comparison():
+    """``_line_possible`` against numpy: some line length ``t`` whose table entry ``t`` pixels of
+    the brightest dim value reach."""
+    from plexwash.qc.steps import _kernels as k
+    from plexwash.qc.steps.speckle_tests import line_offsets
+
+    rng = np.random.default_rng(2)
+    offsets = line_offsets(4)
+    tables = rng.integers(0, 60, (50, 2, offsets.shape[1] + 1)).astype(np.int32)
+    tables[::4] = np.iinfo(np.int32).max
+    for upper in (0.4, 3.0, 7.49, 7.5):
+        expected = (tables[:, 0, :] <= np.arange(offsets.shape[1] + 1) * np.floor(upper + 0.5)).any(axis=1)
+        np.testing.assert_array_equal(k._line_possible(offsets, upper, tables), expected)
+    assert not k._line_possible(offsets[:0], 3.0, tables).any()
+
+
+@pytest.mark.parametrize("shape", [(1, 1), (1, 9), (9, 1), (2, 2), (31, 40)])
+def test_dropping_isolated_pixels_equals_the_component_rule_at_two_pixels(shape):
+    """The kernel's shortcut for ``min_area`` 2 against the general union-find labelling
+    (``_drop_small_components``), on random states with every kind of pixel."""
+    from plexwash.qc.steps import _kernels as k
+
+    rng = np.random.default_rng(shape[0] * 100 + shape[1])
+    for density in (0.05, 0.3, 0.7):
+        state = rng.choice(np.array([0, 1, 2, 3, 4], np.uint8), shape,
+                           p=[1 - density, density / 4, density / 4, density / 4, density / 4])
+        fast, general = state.copy(), state.copy()
+        k._drop_isolated(fast)
+        k._drop_small_components(general, 2)
+        np.testing.assert_array_equal(fast, general)

@@ -209,6 +209,7 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
     """
     height, width = image.shape
     state = np.zeros((height, width), np.uint8)
+    line_possible = _line_possible(line_offsets, line_upper, line_min_count)
     for y in range(height):
         rows = min(height - 1, y + radius) - max(0, y - radius) + 1
         for x in range(width):
@@ -225,7 +226,7 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
                     wrows = min(height - 1, y + wide_radius) - max(0, y - wide_radius) + 1
                     wcols = min(width - 1, x + wide_radius) - max(0, x - wide_radius) + 1
                     dense = np.int32(wide[y, x]) - 1 >= wide_min_count[z, wrows, wcols]
-                if not dense and line_offsets.shape[0] > 0 and _on_line_sum(
+                if not dense and line_possible[z] and _on_line_sum(
                         image, y, x, threshold, line_upper, line_offsets, line_min_count[z], line_flank, line_flank_min):
                     dense = True
                 if dense and not _below_neighbours(image, y, x, v, low_mean):
@@ -241,7 +242,10 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
             for x in range(width):
                 if state[y, x] >= _KEPT and image[y, x] > lone_cut[zone[y, x]]:
                     state[y, x] = _LONE
-        _drop_small_components(state, min_area)
+        if min_area == 2:
+            _drop_isolated(state)
+        else:
+            _drop_small_components(state, min_area)
     n_removed = 0
     for y in range(height):
         for x in range(width):
@@ -254,6 +258,23 @@ def speckle_filter(image, counts, wide, line_offsets, line_upper, line_min_count
                 out[y, x] = v
                 removed[y, x] = 0.0
     return n_removed
+
+
+@nb.njit(cache=True, nogil=True)
+def _line_possible(offsets, upper, tables):
+    """Per zone, whether :func:`_on_line_sum` can find a dense line there (its first check,
+    which depends on the zone's table alone): False for every zone when there are no lines."""
+    possible = np.zeros(tables.shape[0], np.bool_)
+    if offsets.shape[0] == 0:
+        return possible
+    length = offsets.shape[1]
+    brightest = np.floor(np.float64(upper) + 0.5)
+    for z in range(tables.shape[0]):
+        for t in range(length + 1):
+            if tables[z, 0, t] <= t * brightest:
+                possible[z] = True
+                break
+    return possible
 
 
 @nb.njit(cache=True, nogil=True)
@@ -308,6 +329,24 @@ def _keep_touching(state):
                     for xx in range(max(0, x - 1), min(width, x + 2)):
                         if state[yy, xx] == _CORE:
                             state[y, x] = _KEPT
+
+
+@nb.njit(cache=True, nogil=True)
+def _drop_isolated(state):
+    """:func:`_drop_small_components` with ``min_area`` 2: a component of one pixel is a kept pixel
+    with no kept 8-neighbour, dropped unless it is ``_LONE`` (a dropped pixel had no kept
+    neighbour, so dropping it changes no other pixel's answer)."""
+    height, width = state.shape
+    for y in range(height):
+        for x in range(width):
+            if state[y, x] == _KEPT or state[y, x] == _CORE:
+                alone = True
+                for yy in range(max(0, y - 1), min(height, y + 2)):
+                    for xx in range(max(0, x - 1), min(width, x + 2)):
+                        if (yy != y or xx != x) and state[yy, xx] >= _KEPT:
+                            alone = False
+                if alone:
+                    state[y, x] = _DROPPED
 
 
 @nb.njit(cache=True, nogil=True)

@@ -104,30 +104,140 @@ def residue_candidates(image, spilled, zone, levels, measured, expected, where):
     return found
 
 
-@nb.njit(cache=True, nogil=True)
+@nb.njit(cache=True, nogil=True, error_model="numpy")
 def tail_decision(n, m, s, target, first, second, values):
     """One step of the lower-tail scale bisection (:class:`plexwash.qc.background._TailSearch`):
     ``values = (n - s m) / sqrt(s m)`` elementwise, then ``(1, 0, 0)`` when at most ``first`` of
     them are ``<= target`` (the quantile is above it), ``(0, 0, 0)`` when more than ``second``
-    are, else ``(2, a, b)`` with ``a``, ``b`` the order statistics ``first`` and ``second``."""
+    are, else ``(2, a, b)`` with ``a``, ``b`` the order statistics ``first`` and ``second``.
+
+    ``second`` is ``first + 1`` (or equal to it, when nothing is undecided), so the undecided
+    case has exactly ``second`` values ``<= target``: the order statistic ``first`` is the
+    largest of them and ``second`` the smallest of the others, found in one pass without
+    sorting. numpy's error model (a division by 0 gives inf, as numpy's does, instead of
+    raising) lets the values loop run on vector registers; IEEE division and square root give
+    the same bits either way.
+
+    For a negative ``target`` a value ``v = e / sqrt(p)`` (``e = n - s m``, ``p = s m``, both
+    computed as above) is ``<= target`` exactly when ``e < 0`` and ``e**2 >= target**2 p``; the
+    computed ``v`` and squares are within a few units of rounding (1e-15) of the true ones, so
+    where the squares differ by more than 1e-9 of their size they decide as the computed ``v``
+    does, and only closer ones are divided out. The values themselves are computed only when
+    the count leaves the step undecided."""
     size = n.size
     at_most = 0
-    for i in range(size):
-        product = s * m[i]
-        v = (n[i] - product) / np.sqrt(product)
-        values[i] = v
-        if v <= target:
-            at_most += 1
+    if target < 0.0:  # counted without the square root where squares decide (see below)
+        squared = target * target
+        close = 0
+        for i in range(size):  # no branches: runs on vector registers
+            product = s * m[i]
+            excess = n[i] - product
+            left = excess * excess
+            right = squared * product
+            negative = excess < 0.0
+            at_most += negative & (left > right * (1.0 + 1e-9))
+            close += negative & (left <= right * (1.0 + 1e-9)) & (left >= right * (1.0 - 1e-9))
+        if close:
+            for i in range(size):
+                product = s * m[i]
+                excess = n[i] - product
+                left = excess * excess
+                right = squared * product
+                if (excess < 0.0 and left <= right * (1.0 + 1e-9) and left >= right * (1.0 - 1e-9)
+                        and excess / np.sqrt(product) <= target):
+                    at_most += 1
+    else:
+        for i in range(size):
+            product = s * m[i]
+            if (n[i] - product) / np.sqrt(product) <= target:
+                at_most += 1
     if at_most <= first:
         return 1, 0.0, 0.0
     if at_most > second:
         return 0, 0.0, 0.0
-    order = np.partition(values[:size], first)
-    a = order[first]
-    b = a
-    if second > first:
-        b = order[first + 1]
-        for i in range(first + 2, size):
-            if order[i] < b:
-                b = order[i]
+    for i in range(size):
+        product = s * m[i]
+        values[i] = (n[i] - product) / np.sqrt(product)
+    a = -np.inf
+    b = np.inf
+    for i in range(size):
+        v = values[i]
+        if v <= target:
+            if v > a:
+                a = v
+        elif v < b:
+            b = v
     return 2, a, b
+
+
+@nb.njit(cache=True, nogil=True)
+def tail_bisection(n, m, low, high, target, first, second, gamma, start, scale, values, mids, scales, bounds,
+                   decisions):
+    """The lower-tail scale bisection of :func:`plexwash.qc.background.lower_tail_scale`, its steps
+    ``start`` to ``mids.size - 1`` in one loop from the bracket ``[low, high]`` (log scale), each
+    deciding by :func:`tail_decision` and, when undecided, by numpy's interpolation of the two
+    order statistics with weight ``gamma``, as ``_tail_search.TailSearch.above`` does. The scale of
+    step ``start`` is ``scale`` when that is positive, every other one ``exp(mid)``; each step's
+    ``mid``, scale, bracket before it and decision (``above``) are written to ``mids``, ``scales``,
+    ``bounds`` and ``decisions`` so the caller can check the scales against numpy's ``exp`` and
+    resume. Returns the final ``(low, high)``."""
+    for step in range(start, mids.size):
+        bounds[step, 0] = low
+        bounds[step, 1] = high
+        mid = 0.5 * (low + high)
+        s = scale if step == start and scale > 0.0 else np.exp(mid)
+        mids[step] = mid
+        scales[step] = s
+        code, a, b = tail_decision(n, m, s, target, first, second, values)
+        if code < 2:
+            above = code == 1
+        else:
+            diff = b - a
+            if gamma >= 0.5:
+                value = b - diff * (1 - gamma)
+            else:
+                value = a + diff * gamma
+            above = value > target
+        decisions[step] = above
+        if above:
+            low = mid
+        else:
+            high = mid
+    return low, high
+
+
+@nb.njit(cache=True, nogil=True)
+def _running_mean(line, length, size, out, start, stride):
+    """scipy's uniform filter of one line held in ``line`` with its padding (``size // 2`` values
+    before, the rest after): the sum of the first ``size`` values, then a running sum moved by
+    the difference of the entering and leaving values, each output the sum divided by ``size``
+    (``NI_UniformFilter1D``)."""
+    total = 0.0
+    for k in range(size):
+        total += line[k]
+    out[start] = total / size
+    for k in range(1, length):
+        total += line[k + size - 1] - line[k - 1]
+        out[start + k * stride] = total / size
+
+
+@nb.njit(cache=True, nogil=True)
+def box_mean_constant(values, size, out):
+    """``out`` = ``scipy.ndimage.uniform_filter(values, size, mode="constant")`` for a 2-D float64
+    plane and an odd or even ``size >= 2``: along axis 0 then axis 1, each line padded with zeros,
+    the intermediate plane float64, as scipy computes it."""
+    height, width = values.shape
+    before = size // 2
+    line = np.zeros(max(height, width) + size)
+    work = np.empty(height * width)
+    flat = out.reshape(-1)
+    for x in range(width):
+        for y in range(height):
+            line[before + y] = values[y, x]
+        _running_mean(line, height, size, work, x, width)
+    for k in range(line.size):
+        line[k] = 0.0
+    for y in range(height):
+        for x in range(width):
+            line[before + x] = work[y * width + x]
+        _running_mean(line, width, size, flat, y * width, 1)

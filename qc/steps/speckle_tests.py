@@ -58,7 +58,17 @@ import numpy as np
 from plexwash.qc.steps import _search_kernels as _sk  # absolute: one numba cache
 from scipy import special
 
+from .._tail_search import tail_below
 from ..errors import InputError
+from ._speckle_search import (
+    _min_count_tables,
+    _rate_tables,
+    binomial_min_count,
+    min_count_table,
+    poisson_level,
+    poisson_min_value,
+    poisson_min_values,
+)
 
 __all__ = [
     "FIT_START_QUANTILE",
@@ -136,130 +146,11 @@ def binomial_upper_point(trials: int, rate: float, tail: float) -> int:
     return int(np.argmax(survival <= tail))
 
 
-def poisson_level(rate: float, threshold: float) -> float:
-    """Mean ``lambda`` of a Poisson count with ``P(Y > threshold) = rate``."""
-    if rate <= 0.0:
-        return 0.0
-    if rate >= 1.0:
-        return float("inf")
-    # P(Y > k) = P(Y >= k + 1) = regularised lower incomplete gamma P(k + 1, lambda)
-    return float(special.gammaincinv(np.floor(threshold) + 1.0, rate))
-
-
 def positive_rate(level, threshold: float) -> np.ndarray:
     """``P(Y > threshold)`` for ``Y ~ Poisson(level)`` (the inverse of :func:`poisson_level`)."""
     level = np.asarray(level, np.float64)
     return np.where(level > 0, special.gammainc(np.floor(threshold) + 1.0, np.maximum(level, 1e-300)),
                     0.0)
-
-
-def poisson_min_value(level: float, value_alpha: float) -> float:
-    """Smallest whole ``v >= 1`` with ``P(Y >= v) < value_alpha``, ``Y ~ Poisson(level)``."""
-    if not np.isfinite(level):
-        return float("inf")
-
-    def tail(v):  # P(Y >= v) = P(Y > v - 1)
-        return special.pdtrc(v - 1, level)
-
-    low, high = 0, 1  # invariant: tail(low) >= value_alpha > tail(high)
-    while tail(high) >= value_alpha:
-        low, high = high, 2 * high
-    while high - low > 1:
-        mid = (low + high) // 2
-        low, high = (low, mid) if tail(mid) < value_alpha else (mid, high)
-    return float(high)
-
-
-def poisson_min_values(levels, value_alpha: float) -> np.ndarray:
-    """:func:`poisson_min_value` of each entry of ``levels`` (float64 array): every entry takes
-    the same doubling and bisection steps, with the same ``pdtrc`` comparisons (scipy's own
-    function, compiled loop), as the scalar function, so the results are equal."""
-    levels = np.asarray(levels, np.float64)
-    out = np.full(levels.shape, np.inf)
-    finite = np.isfinite(levels)
-    found = np.empty(int(finite.sum()), np.float64)
-    _sk.poisson_search(np.ascontiguousarray(levels[finite]), float(value_alpha), _special_functions()[1], found)
-    out[finite] = found
-    return out
-
-
-@functools.cache
-def _special_functions():
-    """scipy's ``bdtrc(double k, long n, double p)`` and ``pdtrc(double k, double m)``, the
-    functions ``scipy.special.bdtrc``/``pdtrc`` compute on int64 counts and float64 values, as
-    C function pointers the compiled searches call (``scipy.special.cython_special``)."""
-    import ctypes
-
-    from numba.extending import get_cython_function_address
-
-    module = "scipy.special.cython_special"
-    bdtrc = ctypes.CFUNCTYPE(ctypes.c_double, ctypes.c_double, ctypes.c_long, ctypes.c_double, ctypes.c_int)(
-        get_cython_function_address(module, "__pyx_fuse_1bdtrc"))
-    pdtrc = ctypes.CFUNCTYPE(ctypes.c_double, ctypes.c_double, ctypes.c_double, ctypes.c_int)(
-        get_cython_function_address(module, "pdtrc"))
-    return bdtrc, pdtrc
-
-
-def binomial_min_count(trials: np.ndarray, rate, alpha: float) -> np.ndarray:
-    """Smallest ``k`` with ``P(N >= k) < alpha``, ``N ~ Binomial(trials, rate)``, per entry.
-
-    ``rate`` is a number or an array broadcast with ``trials``. ``k = trials + 1`` (never
-    kept) when even ``P(N = trials)`` is not below ``alpha``.
-    """
-    trials, rate = np.broadcast_arrays(np.asarray(trials, np.int64), np.asarray(rate, np.float64))
-    # Each entry's search is its own (the same steps whatever the other entries), so a table
-    # that repeats trial counts (a window's a x b - 1) and rates is searched once per distinct
-    # (trials, rate) pair of the product of both, when that product is smaller.
-    shape = trials.shape
-    unique_trials, trial_at = np.unique(trials.ravel(), return_inverse=True)
-    unique_rates, rate_at = np.unique(rate.ravel(), return_inverse=True)
-    if unique_trials.size * unique_rates.size < trials.size:
-        return _binomial_grid(unique_trials, unique_rates, alpha)[trial_at.ravel(), rate_at.ravel()].reshape(shape)
-    high = np.empty(trials.size, np.int64)
-    _sk.binomial_search(np.array(trials, np.int64).ravel(), np.array(rate, np.float64).ravel(),
-                       np.full(trials.size, float(alpha)), _special_functions()[0], high)
-    return high.reshape(shape)
-
-
-def _binomial_grid(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
-    """:func:`binomial_min_count` of every pair of the 1-D ``trials`` and ``rates``, ``(T, R)``."""
-    grid_trials, grid_rates = np.meshgrid(np.asarray(trials, np.int64), np.asarray(rates, np.float64), indexing="ij")
-    high = np.empty(grid_trials.size, np.int64)
-    _sk.binomial_search(grid_trials.ravel(), grid_rates.ravel(), np.full(grid_trials.size, float(alpha)),
-                       _special_functions()[0], high)
-    return high.reshape(grid_trials.shape)
-
-
-@functools.lru_cache(maxsize=16)
-def _window_trials(radius: int) -> tuple[np.ndarray, np.ndarray]:
-    """The distinct neighbour counts ``max(a * b - 1, 0)`` of windows clipped to ``a`` x ``b``
-    pixels (``a, b <= 2r + 1``), and where each ``(a, b)`` finds its count among them."""
-    side = 2 * radius + 1
-    a, b = np.meshgrid(np.arange(side + 1), np.arange(side + 1), indexing="ij")
-    distinct, at = np.unique(np.maximum(a * b - 1, 0), return_inverse=True)
-    distinct.flags.writeable = False
-    at.flags.writeable = False
-    return distinct, at.reshape(side + 1, side + 1)
-
-
-def min_count_table(radius: int, rate, alpha: float) -> np.ndarray:
-    """``table[..., a, b]``: smallest kept neighbour count for a window of ``a`` x ``b`` pixels.
-
-    ``rate`` is one rate or a 1-D array of them (one table each, stacked first). Each
-    distinct (neighbour count, rate) pair is searched once.
-    """
-    rate = np.asarray(rate, np.float64)
-    distinct, at = _window_trials(int(radius))
-    rates, rate_at = np.unique(rate.ravel(), return_inverse=True)
-    grid = _binomial_grid(distinct, rates, alpha).astype(np.int32)  # (T, R)
-    return grid.T[rate_at.reshape(rate.shape)][..., at]
-
-
-def _rate_tables(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
-    """``table[z, t]`` = :func:`binomial_min_count` of ``trials[t]`` (1-D, distinct) at ``rates[z]``,
-    each distinct rate searched once."""
-    distinct, at = np.unique(rates, return_inverse=True)
-    return _binomial_grid(trials, distinct, alpha).T[at.ravel()]
 
 
 def zone_tables(levels: np.ndarray, *, rates=None, threshold: float, radius: int, alpha: float,
@@ -445,7 +336,9 @@ def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
     itself when there is nothing to test (no ``spilled``, or ``alpha`` 0) or nothing is set to 0.
 
     The same test as :func:`drop_residue` with the window sums made by a compiled loop, only at
-    the pixels tested, in ``box3``'s order of additions (so the same sums)."""
+    the pixels tested, in ``box3``'s order of additions (so the same sums), and the incomplete
+    gamma function evaluated only where the bounds of :func:`plexwash.qc._tail_search.tail_below`
+    leave the answer within rounding of ``alpha``."""
     if spilled is None or alpha <= 0:
         return image
     image = np.asarray(image, np.float32)
@@ -459,13 +352,24 @@ def without_residue(image, spilled, zone, levels: np.ndarray, alpha: float):
                                   np.ascontiguousarray(levels), measured, expected, where)
     if found == 0:
         return image
-    tail = special.gammainc(np.maximum(measured[:found], 1.0), np.maximum(expected[:found], 1e-300))
-    residue = where[:found][tail >= alpha]
+    # residue: tail >= alpha, the tail computed only where exact bounds on it do not decide
+    whole, mean = np.maximum(measured[:found], 1.0), expected[:found]
+    if alpha < 0.49:  # whole n <= mean: P(N >= n) > 1/2 (a Poisson median is >= mean - ln 2, Choi 1994)
+        above = np.flatnonzero(whole > mean)
+        kept = above[tail_below(whole[above], mean[above], alpha, _residue_tail)]
+        residue = np.delete(where[:found], kept)
+    else:
+        residue = where[:found][~tail_below(whole, mean, alpha, _residue_tail)]
     if residue.size == 0:
         return image
     out = np.array(image, np.float32, order="C")
     out.reshape(-1)[residue] = np.float32(0.0)
     return out
+
+
+def _residue_tail(measured: np.ndarray, expected: np.ndarray) -> np.ndarray:
+    """The Poisson upper tail :func:`drop_residue` tests, ``P(N >= measured)`` for ``N ~ Poisson(expected)``."""
+    return special.gammainc(np.maximum(measured, 1.0), np.maximum(expected, 1e-300))
 
 
 def line_sum_tables(levels: np.ndarray, settings) -> np.ndarray:
@@ -492,13 +396,14 @@ def line_sum_tables(levels: np.ndarray, settings) -> np.ndarray:
     trials = np.arange(2 * half + 1, dtype=np.float64)
     finite = np.isfinite(levels)
     table = np.zeros((len(levels), 2, trials.size), np.int32)
+    tested = finite & (levels <= settings.line_max_level)  # the others are NO_LINE: not searched
     # each zone's row depends on its level alone: searched once per distinct level
-    distinct, at = np.unique(levels[finite], return_inverse=True)
+    distinct, at = np.unique(levels[tested], return_inverse=True)
     means = trials[None, :] * distinct[:, None]
-    table[finite, 0] = poisson_min_values(means, settings.line_alpha / tests).astype(np.int32)[at.ravel()]
+    table[tested, 0] = poisson_min_values(means, settings.line_alpha / tests).astype(np.int32)[at.ravel()]
     if settings.line_side_alpha < 1.0:
-        table[finite, 1] = poisson_min_values(means, settings.line_side_alpha).astype(np.int32)[at.ravel()]
-    table[finite & (levels > settings.line_max_level)] = NO_LINE
+        table[tested, 1] = poisson_min_values(means, settings.line_side_alpha).astype(np.int32)[at.ravel()]
+    table[finite & ~tested] = NO_LINE
     return table
 
 
@@ -538,45 +443,74 @@ def filter_parameters(settings, background, zone=None) -> dict:
     """Everything the speckle kernel needs besides the pixels: every table of this module for
     ``settings`` (a ``SpeckleSettings``) and the channel's ``background`` (a
     ``speckle.BackgroundEstimate``). With the ``zone`` map, the zone tables are searched only
-    for the codes it holds."""
+    for the codes it holds.
+
+    Every zone's row of every table depends on its level alone, so the rows are made once per
+    distinct level and repeated (:func:`_level_tables`); the same entries as each table's own
+    function gives on every zone (tested)."""
     zoned = background.zone_levels is not None
     if zoned:
         levels, rates = background.zone_levels, None
     else:
         levels, rates = np.array([background.level]), np.array([background.rate])
     tabled = tabulated_levels(levels, zone) if zoned else levels
-    tables = {"threshold": settings.threshold, "value_alpha": settings.value_alpha}
-    min_count, value_cut = zone_tables(tabled, rates=rates, radius=int(settings.radius), alpha=settings.alpha,
-                                       **tables)
+    distinct, at = np.unique(tabled, return_inverse=True)
+    rows = _level_tables(distinct, rates, settings)
     wide_radius = int(settings.wide_radius)
-    if wide_radius > 0:
-        support, _ = zone_tables(tabled, rates=rates, radius=int(settings.radius),
-                                 alpha=settings.support_alpha, **tables)
-        wide, _ = zone_tables(tabled, rates=rates, radius=wide_radius, alpha=settings.alpha, **tables)
-    else:  # never: more neighbours than any window has
-        support = np.full_like(min_count, np.iinfo(np.int32).max)
-        wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
     return {
         "threshold": np.float32(settings.threshold),
         "radius": int(settings.radius),
-        "min_count": min_count,
+        "min_count": rows["min_count"][at.ravel()],
         "wide_radius": wide_radius,
         "wide_upper": float(poisson_min_value(float(np.max(levels[np.isfinite(levels)], initial=0.0)),
                                               settings.value_alpha) - 1.0),
-        "wide_min_count": wide,
-        "support_min_count": support,
-        "value_cut": value_cut,
+        "wide_min_count": rows["wide_min_count"][at.ravel()],
+        "support_min_count": rows["support_min_count"][at.ravel()],
+        "value_cut": rows["value_cut"][at.ravel()],
         "low_mean": low_mean_table(float(settings.edge_alpha)),
         "min_area": int(settings.min_area),
         "lone_cut": lone_cuts(levels, settings),
         "line_half": int(settings.line_half),
-        "line_min_count": line_sum_tables(tabled, settings),
+        "line_min_count": rows["line_min_count"][at.ravel()],
         "line_flank": int(settings.flank_distance),
         "line_flank_min": line_flank_table(int(settings.line_half), float(settings.flank_alpha)),
-        "rim_min_count": rim_tables(tabled, rates, settings),
-        "rim_value": rim_values(tabled, settings),
+        "rim_min_count": np.ascontiguousarray(rows["rim_min_count"][at.ravel()]),
+        "rim_value": rows["rim_value"][at.ravel()],
         "pass_through": bool(np.all(np.isinf(levels))) or (not zoned and background.rate >= 1.0),
         "keep_touching": bool(settings.keep_touching),
         "zoned": zoned,
         "levels": np.asarray(levels, np.float64),
     }
+
+
+def _level_tables(levels: np.ndarray, rates, settings) -> dict:
+    """The rows of the zone tables for each of ``levels`` (``rates``: the fitted rate of a single
+    level, or None for the levels' positive rates), as :func:`zone_tables` (window, support and
+    wide), :func:`line_sum_tables`, :func:`rim_tables` and :func:`rim_values` make them; the
+    binomial searches at one alpha share one grid over all the neighbour counts asked."""
+    radius, wide_radius = int(settings.radius), int(settings.wide_radius)
+    given = rates is not None
+    rates = np.asarray(rates, np.float64) if given else positive_rate(levels, settings.threshold)
+    requests = [(radius, settings.alpha)]
+    if wide_radius > 0:
+        requests += [(radius, settings.support_alpha), (wide_radius, settings.alpha)]
+    tables = _min_count_tables(requests, rates, (2 * radius + 1) ** 2 if settings.rim_alpha > 0 else 0,
+                               settings.rim_alpha)
+    cuts = poisson_min_values(levels, settings.value_alpha) - 1.0
+    saturated = rates >= 1.0
+    if not given:  # a zone whose every pixel is positive (rate 1): nothing is sparser than background
+        for table in tables[:-1]:
+            table[saturated] = 0
+        cuts[saturated] = -np.inf
+    min_count = tables[0]
+    if wide_radius > 0:
+        support, wide = tables[1], tables[2]
+    else:  # never: more neighbours than any window has
+        support = np.full_like(min_count, np.iinfo(np.int32).max)
+        wide = np.full((min_count.shape[0], 2, 2), np.iinfo(np.int32).max, np.int32)
+    rim = tables[-1]
+    if settings.rim_alpha > 0:
+        rim[saturated] = 0
+    return {"min_count": min_count, "support_min_count": support, "wide_min_count": wide, "value_cut": cuts,
+            "line_min_count": line_sum_tables(levels, settings), "rim_min_count": rim,
+            "rim_value": rim_values(levels, settings)}
