@@ -481,3 +481,84 @@ def _on_line_sum(image, y, x, threshold, upper, offsets, table, flank, flank_min
         if dense:
             return True
     return False
+
+
+@nb.njit(cache=True, nogil=True)
+def extend_lines(image, out, removed, threshold, upper, offsets, zone, line_min_sum, flank, flank_min, passes):
+    """Keep the dropped dim pixels that continue a kept line; return how many were kept again.
+
+    The end rule of the speckle step's line test, run after :func:`speckle_filter` on its
+    ``out`` and ``removed`` (float32, updated in place): a dropped dim positive pixel
+    (``threshold < v <= upper``, ``removed > 0``) is kept when its own count passes the side
+    test, and, on some line through it, its neighbour on one half is kept (``out > threshold``)
+    and the line passes the line test with the side test asked of that half alone (the other
+    half lies past the structure's end, so it may hold background only): see
+    :func:`_extends_line`. ``passes`` rounds, each judged on
+    the kept pixels of the round before, so a line grows by at most one pixel per round and
+    the result does not depend on the order of the pixels.
+    """
+    height, width = image.shape
+    kept = np.empty((height, width), np.bool_)
+    total = 0
+    for _ in range(passes):
+        for y in range(height):
+            for x in range(width):
+                kept[y, x] = out[y, x] > threshold
+        restored = 0
+        for y in range(height):
+            for x in range(width):
+                v = image[y, x]
+                if removed[y, x] > 0.0 and threshold < v <= upper and _extends_line(
+                        image, kept, y, x, threshold, upper, offsets, line_min_sum[zone[y, x]], flank, flank_min):
+                    out[y, x] = v
+                    removed[y, x] = 0.0
+                    restored += 1
+        total += restored
+        if restored == 0:
+            break
+    return total
+
+
+@nb.njit(cache=True, nogil=True)
+def _extends_line(image, kept, y, x, threshold, upper, offsets, table, flank, flank_min):
+    """Whether a line through (y, x) continues a kept structure: the pixel's own whole count
+    passes the side test as a half of one pixel (``table[1, 1]``: a background count past a
+    fibre's end is mostly a single count, a fibre's is not), the line's first pixel on one half
+    is kept, that half's dim sum passes the side test (``table[1]``), the whole line's sum the
+    line test (``table[0]``) and the flank test (as in :func:`_on_line_sum`); the other half is
+    not asked to hold anything."""
+    height, width = image.shape
+    n_lines, length, _ = offsets.shape
+    half = length // 2
+    inside = half <= y < height - half and half <= x < width - half
+    if _whole(image[y, x]) < table[1, 1]:
+        return False
+    for o in range(n_lines):
+        for first in (0, half):
+            ny = y + offsets[o, first, 0]
+            nx = x + offsets[o, first, 1]
+            if not (0 <= ny < height and 0 <= nx < width) or not kept[ny, nx]:
+                continue
+            ahead, n_ahead = _dim_sum(image, y, x, threshold, upper, offsets, o, first, first + half, inside)
+            if ahead <= 0.0 or ahead < table[1, n_ahead]:
+                continue
+            other = half - first
+            behind, n_behind = _dim_sum(image, y, x, threshold, upper, offsets, o, other, other + half, inside)
+            total = ahead + behind
+            if total < table[0, n_ahead + n_behind]:
+                continue
+            if flank_min.shape[0] == 0:
+                return True
+            steep = abs(offsets[o, half - 1, 0]) == half
+            dense = True
+            for side in (-1, 1):
+                sy = 0 if steep else side * flank
+                sx = side * flank if steep else 0
+                beside, pixels = _flank_sum(image, y, x, offsets, o, sy, sx)
+                n = np.int64(total + beside)
+                if n >= flank_min.shape[2] or total < flank_min[n_ahead + n_behind, pixels, n]:
+                    dense = False
+                    break
+            if dense:
+                return True
+    return False

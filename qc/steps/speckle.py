@@ -15,6 +15,12 @@ Speckle
     * its own value is improbable for background: ``P(Y >= value) < value_alpha`` with
       ``Y ~ Poisson(level)``, so bright tiny objects survive.
 
+    * (line test, ``line_half``) the dim counts on a line through it are improbable for
+      background, each half's too, and the line is denser than its flanks; then, in
+      ``line_extend`` rounds, a dropped dim pixel whose own count passes the side test is kept
+      when a line through it continues a kept neighbour and passes the same tests with the side
+      test asked of that half alone: a fibre's end (see :mod:`.speckle_tests`).
+
     Then kept pixels are grouped into 8-connected components and components smaller than
     ``min_area`` are dropped, unless one of their pixels is so bright that background
     cannot explain it anywhere in the ROI: ``P(Y >= value) < lone_alpha`` under
@@ -244,17 +250,20 @@ def speckle_depth(settings: SpeckleSettings) -> int:
     The largest of ``radius``, ``wide_radius`` and ``line_half`` (plus ``flank_distance`` with the flank test)
     for the window and line counts, 1 for the neighbour
     mean and the ``keep_touching`` rule, ``min_area - 1`` for the component-size rule (see the
-    module notes).
+    module notes), and one pixel per round of the line-end rule (``line_extend``: a round reads
+    the kept marks of the pixels next to it).
 
     Examples
     --------
     >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=0, line_half=0, min_area=2))
     4
-    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=5, line_half=4, flank_distance=2, min_area=2))
-    8
+    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=5, line_half=4, flank_distance=2, min_area=2,
+    ...                               line_extend=2))
+    10
     """
+    extend = int(settings.line_extend) if int(settings.line_half) > 0 else 0
     return (max(int(settings.radius), int(settings.wide_radius), _line_reach(settings)) + 1
-            + max(int(settings.min_area) - 1, 0))
+            + max(int(settings.min_area) - 1, 0) + extend)
 
 
 def _line_reach(settings: SpeckleSettings) -> int:
@@ -284,6 +293,7 @@ def remove_speckle(
     line_max_level: float = 1.0,
     flank_alpha: float = 0.01,
     flank_distance: int = 2,
+    line_extend: int = 2,
     rim_alpha: float = 0.01,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
@@ -332,6 +342,9 @@ def remove_speckle(
     line_max_level : float, optional
         The line test is asked only where the background level is at most this (counts per
         pixel): on denser backgrounds the square windows alone judge.
+    line_extend : int, optional
+        Rounds of the line-end rule, one pixel each (0: off): a fibre's last pixels, whose lines
+        reach past its end (see the module notes and ``_kernels.extend_lines``).
     flank_alpha, flank_distance : optional
         The line's counts against each flank's: conditional test of two Poisson means
         (Przyborowski & Wilenski 1940) at ``flank_alpha`` (0: off).
@@ -378,7 +391,8 @@ def remove_speckle(
               "keep_touching": keep_touching, "min_area": min_area, "edge_alpha": edge_alpha,
               "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
               "line_half": line_half, "line_alpha": line_alpha, "line_side_alpha": line_side_alpha,
-              "line_max_level": line_max_level, "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha}
+              "line_max_level": line_max_level, "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha,
+              "line_extend": line_extend}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
@@ -458,10 +472,15 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
         _k.window_counts(image, params["threshold"], params["wide_radius"], wide, params["wide_upper"])
     zone = np.ascontiguousarray(zone, np.uint8)
     lines = line_offsets(params["line_half"]) if params["line_half"] > 0 else _NO_LINES
-    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half")
+    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_extend")
     kernel_args = {k: v for k, v in params.items() if k not in skip}
-    return _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out, removed=removed,
-                             **kernel_args)
+    n_removed = _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out,
+                                  removed=removed, **kernel_args)
+    if params["line_extend"] > 0 and lines.shape[0] > 0:
+        n_removed -= _k.extend_lines(image, out, removed, params["threshold"], params["wide_upper"], lines, zone,
+                                     params["line_min_count"], params["line_flank"], params["line_flank_min"],
+                                     params["line_extend"])
+    return n_removed
 
 
 def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: SpeckleSettings | None = None):

@@ -65,6 +65,13 @@ class SpeckleSettings:
         " denser background nearly every pixel is positive and the square windows alone judge it: the line"
         " test would cost a scan of every line of every pixel)", low=0.0, high=1e6,
     )
+    line_extend: int = setting(
+        2, "a dropped dim pixel is kept when it continues a kept line: its own count passes the side test"
+        " (line_side_alpha), its neighbour on one half of a line through it is kept, and the line passes the"
+        " line test with the side test asked of that half alone (a fibre's end, whose other half lies past the"
+        " fibre); this many rounds, one pixel each (0: off)",
+        low=0, high=20,
+    )
     flank_distance: int = setting(
         2, "distance in pixels, across the line, of the two parallel lines the flank test compares with",
         low=1, high=20,

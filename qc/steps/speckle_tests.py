@@ -572,6 +572,7 @@ def filter_parameters(settings, background, zone=None) -> dict:
         "line_half": int(settings.line_half),
         "line_min_count": line_sum_tables(tabled, settings),
         "line_flank": int(settings.flank_distance),
+        "line_extend": int(settings.line_extend),
         "line_flank_min": line_flank_table(int(settings.line_half), float(settings.flank_alpha)),
         "rim_min_count": rim_tables(tabled, rates, settings),
         "rim_value": rim_values(tabled, settings),
