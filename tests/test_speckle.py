@@ -324,14 +324,17 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
         # the pixel's own whole count passes the side test (scipy.stats.poisson.isf)
         dim = positive & (img <= min_value - 1)
         dim &= np.floor(img.astype(np.float64) + 0.5) >= stats.poisson.isf(line_side_alpha, level) + 1
+        ring = np.ones((3, 3), np.int64)
+        ring[1, 1] = 0
         for _ in range(line_extend):
+            around = ndi.convolve(keep.astype(np.int64), ring, mode="constant")  # kept 8-neighbours: 1 or 2
             extended = np.zeros(img.shape, bool)
             for line, halves, whole in lines:
                 for k, (_, _, side_ok) in enumerate(halves):
                     first = line[0] if k == 0 else line[line_half]
                     beside = np.rint(along_line(keep.astype(float), first[None], line_half, flank_distance)) > 0
                     extended |= whole & side_ok & beside
-            extended &= dim & ~keep
+            extended &= dim & ~keep & (around >= 1) & (around <= 2)
             if not extended.any():
                 break
             keep |= extended

@@ -489,50 +489,83 @@ def extend_lines(image, out, removed, threshold, upper, offsets, zone, line_min_
 
     The end rule of the speckle step's line test, run after :func:`speckle_filter` on its
     ``out`` and ``removed`` (float32, updated in place): a dropped dim positive pixel
-    (``threshold < v <= upper``, ``removed > 0``) is kept when its own count passes the side
-    test, and, on some line through it, its neighbour on one half is kept (``out > threshold``)
-    and the line passes the line test with the side test asked of that half alone (the other
-    half lies past the structure's end, so it may hold background only): see
-    :func:`_extends_line`. ``passes`` rounds, each judged on
+    (``threshold < v <= upper``, ``removed > 0``) is kept when its own whole count passes the
+    side test as a half of one pixel (``line_min_sum[zone, 1, 1]``: a background count past a
+    fibre's end is mostly a single count, a fibre's is not), one or two of its 8 neighbours are
+    kept (``out > threshold``: a structure's end has it on one side, a pixel beside a cell has
+    more), and, on some line through it, its neighbour on one half is kept and the line passes
+    the line test with the side test asked of that half alone (the other half lies past the
+    structure's end, so it may hold background only): see :func:`_extends_line`. ``passes`` rounds, each judged on
     the kept pixels of the round before, so a line grows by at most one pixel per round and
     the result does not depend on the order of the pixels.
     """
     height, width = image.shape
     kept = np.empty((height, width), np.bool_)
+    for y in range(height):
+        for x in range(width):
+            kept[y, x] = out[y, x] > threshold
+    # a pixel's verdict changes only when one of its 8 neighbours changed: after the first round
+    # only the neighbours of the pixels kept in the round before are judged again
+    fresh = np.ones((height, width), np.bool_)
+    now = np.zeros((height, width), np.bool_)
     total = 0
     for _ in range(passes):
-        for y in range(height):
-            for x in range(width):
-                kept[y, x] = out[y, x] > threshold
         restored = 0
         for y in range(height):
             for x in range(width):
                 v = image[y, x]
-                if removed[y, x] > 0.0 and threshold < v <= upper and _extends_line(
-                        image, kept, y, x, threshold, upper, offsets, line_min_sum[zone[y, x]], flank, flank_min):
-                    out[y, x] = v
-                    removed[y, x] = 0.0
+                if removed[y, x] > 0.0 and threshold < v <= upper and _whole(v) >= line_min_sum[zone[y, x], 1, 1] \
+                        and _near(fresh, y, x) and 1 <= _kept_around(kept, y, x) <= 2 and _extends_line(
+                            image, kept, y, x, threshold, upper, offsets, line_min_sum[zone[y, x]], flank, flank_min):
+                    now[y, x] = True
                     restored += 1
         total += restored
         if restored == 0:
             break
+        for y in range(height):
+            for x in range(width):
+                fresh[y, x] = now[y, x]
+                if now[y, x]:
+                    kept[y, x] = True
+                    out[y, x] = image[y, x]
+                    removed[y, x] = 0.0
+                    now[y, x] = False
     return total
 
 
 @nb.njit(cache=True, nogil=True)
+def _near(marks, y, x):
+    """Whether (y, x) or one of its 8 neighbours is marked."""
+    height, width = marks.shape
+    for yy in range(max(0, y - 1), min(height, y + 2)):
+        for xx in range(max(0, x - 1), min(width, x + 2)):
+            if marks[yy, xx]:
+                return True
+    return False
+
+
+@nb.njit(cache=True, nogil=True)
+def _kept_around(kept, y, x):
+    """How many of the 8 neighbours of (y, x) inside the array are kept."""
+    height, width = kept.shape
+    n = 0
+    for yy in range(max(0, y - 1), min(height, y + 2)):
+        for xx in range(max(0, x - 1), min(width, x + 2)):
+            if (yy != y or xx != x) and kept[yy, xx]:
+                n += 1
+    return n
+
+
+@nb.njit(cache=True, nogil=True)
 def _extends_line(image, kept, y, x, threshold, upper, offsets, table, flank, flank_min):
-    """Whether a line through (y, x) continues a kept structure: the pixel's own whole count
-    passes the side test as a half of one pixel (``table[1, 1]``: a background count past a
-    fibre's end is mostly a single count, a fibre's is not), the line's first pixel on one half
-    is kept, that half's dim sum passes the side test (``table[1]``), the whole line's sum the
-    line test (``table[0]``) and the flank test (as in :func:`_on_line_sum`); the other half is
-    not asked to hold anything."""
+    """Whether a line through (y, x) continues a kept structure: the line's first pixel on one
+    half is kept, that half's dim sum passes the side test (``table[1]``), the whole line's sum
+    the line test (``table[0]``) and the flank test (as in :func:`_on_line_sum`); the other half
+    is not asked to hold anything."""
     height, width = image.shape
     n_lines, length, _ = offsets.shape
     half = length // 2
     inside = half <= y < height - half and half <= x < width - half
-    if _whole(image[y, x]) < table[1, 1]:
-        return False
     for o in range(n_lines):
         for first in (0, half):
             ny = y + offsets[o, first, 0]

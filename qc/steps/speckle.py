@@ -17,9 +17,9 @@ Speckle
 
     * (line test, ``line_half``) the dim counts on a line through it are improbable for
       background, each half's too, and the line is denser than its flanks; then, in
-      ``line_extend`` rounds, a dropped dim pixel whose own count passes the side test is kept
-      when a line through it continues a kept neighbour and passes the same tests with the side
-      test asked of that half alone: a fibre's end (see :mod:`.speckle_tests`).
+      ``line_extend`` rounds, a dropped dim pixel whose own count passes the side test, with
+      one or two kept neighbours, is kept when a line through it continues a kept neighbour and
+      passes the same tests with the side test asked of that half alone: a fibre's end.
 
     Then kept pixels are grouped into 8-connected components and components smaller than
     ``min_area`` are dropped, unless one of their pixels is so bright that background

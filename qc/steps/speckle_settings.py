@@ -67,9 +67,9 @@ class SpeckleSettings:
     )
     line_extend: int = setting(
         2, "a dropped dim pixel is kept when it continues a kept line: its own count passes the side test"
-        " (line_side_alpha), its neighbour on one half of a line through it is kept, and the line passes the"
-        " line test with the side test asked of that half alone (a fibre's end, whose other half lies past the"
-        " fibre); this many rounds, one pixel each (0: off)",
+        " (line_side_alpha), one or two of its 8 neighbours are kept, its neighbour on one half of a line"
+        " through it is kept, and the line passes the line test with the side test asked of that half alone"
+        " (a fibre's end, whose other half lies past the fibre); this many rounds, one pixel each (0: off)",
         low=0, high=20,
     )
     flank_distance: int = setting(
