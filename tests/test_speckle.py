@@ -268,7 +268,7 @@ def test_background_rate_recovered_and_not_inflated_by_cells(rate):
 def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False,
                       wide_radius=0, support_alpha=0.2, edge_alpha=0.0, line_half=0, lone_alpha=0.0,
                       line_alpha=0.003, rim_alpha=0.0, line_side_alpha=0.05, flank_alpha=0.01,
-                      flank_distance=2, line_extend=0):
+                      flank_distance=2, line_extend=0, area_alpha=1e-6, area_half_alpha=0.01):
     """The documented rule, written with scipy building blocks."""
     side = 2 * radius + 1
     positive = img > np.float32(threshold)
@@ -338,6 +338,22 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
             if not extended.any():
                 break
             keep |= extended
+    if wide_radius and area_alpha > 0:  # area rule: the wide window and each of its halves dense
+        dim = (positive & (img <= min_value - 1)).astype(np.int64)
+        wide_side = 2 * wide_radius + 1
+        inside = dim.astype(bool)
+        halves = [np.ones((wide_side, wide_side))]  # the whole window, then the four halves
+        for part in (np.s_[:wide_radius + 1, :], np.s_[wide_radius:, :], np.s_[:, :wide_radius + 1],
+                     np.s_[:, wide_radius:]):
+            kernel = np.zeros((wide_side, wide_side))
+            kernel[part] = 1
+            halves.append(kernel)
+        for k, kernel in enumerate(halves):
+            n_part = np.rint(ndi.correlate(dim.astype(float), kernel, mode="constant")) - dim  # scipy.ndimage
+            trials_part = np.rint(ndi.correlate(np.ones(img.shape), kernel, mode="constant")) - 1
+            level_alpha = area_alpha if k == 0 else area_half_alpha
+            inside &= n_part >= stats.binom.isf(level_alpha, trials_part, rate) + 1  # scipy.stats.binom.isf
+        keep |= inside
     return np.where(positive & ~keep, np.float32(0), img)
 
 

@@ -595,3 +595,61 @@ def _extends_line(image, kept, y, x, threshold, upper, offsets, table, flank, fl
             if dense:
                 return True
     return False
+
+
+@nb.njit(cache=True, nogil=True)
+def keep_areas(image, wide, out, removed, threshold, upper, zone, radius, area_min, half_min):
+    """Keep the dropped dim pixels that lie inside a dim area; return how many were kept again.
+
+    The area rule of the speckle step, run after the other rules on their ``out`` and ``removed``
+    (float32, updated in place): a dropped dim positive pixel (``threshold < v <= upper``,
+    ``removed > 0``) is kept when its ``(2R+1)^2`` window holds at least ``area_min[z, a, b]`` dim
+    positive neighbours (``wide``: :func:`window_counts` with ``upper``, centre included; a window
+    clipped to ``a`` x ``b`` pixels) and each of its four half windows (the rows above and
+    below it, the columns left and right of it, the pixel's own row or column included) at least
+    ``half_min[z, a, b]`` for its own clipped size: a pixel inside a dim stain, not beside one
+    (there one half is background). Reads only ``image`` and ``wide``, so the result does not
+    depend on the order of the pixels. Off when ``area_min`` has no rows.
+    """
+    height, width = image.shape
+    if area_min.shape[0] == 0:
+        return 0
+    restored = 0
+    for y in range(height):
+        top, bottom = max(0, y - radius), min(height - 1, y + radius)
+        for x in range(width):
+            v = image[y, x]
+            if removed[y, x] > 0.0 and threshold < v <= upper:
+                z = zone[y, x]
+                left, right = max(0, x - radius), min(width - 1, x + radius)
+                if np.int32(wide[y, x]) - 1 >= area_min[z, bottom - top + 1, right - left + 1] and _dense_halves(
+                        image, y, x, threshold, upper, top, bottom, left, right, half_min[z]):
+                    out[y, x] = v
+                    removed[y, x] = 0.0
+                    restored += 1
+    return restored
+
+
+@nb.njit(cache=True, nogil=True)
+def _dense_halves(image, y, x, threshold, upper, top, bottom, left, right, table):
+    """Whether each half of the window ``top..bottom`` x ``left..right`` around (y, x) (rows up to
+    and from ``y``, columns up to and from ``x``) holds at least ``table[a, b]`` dim positive
+    pixels besides (y, x), ``a`` x ``b`` its size."""
+    above = below = before = after = 0
+    for yy in range(top, bottom + 1):
+        for xx in range(left, right + 1):
+            if yy == y and xx == x:
+                continue
+            u = image[yy, xx]
+            if threshold < u <= upper:
+                if yy <= y:
+                    above += 1
+                if yy >= y:
+                    below += 1
+                if xx <= x:
+                    before += 1
+                if xx >= x:
+                    after += 1
+    rows, cols = bottom - top + 1, right - left + 1
+    return (above >= table[y - top + 1, cols] and below >= table[bottom - y + 1, cols]
+            and before >= table[rows, x - left + 1] and after >= table[rows, right - x + 1])

@@ -19,7 +19,8 @@ Speckle
       background, each half's too, and the line is denser than its flanks; then, in
       ``line_extend`` rounds, a dropped dim pixel whose own count passes the side test, with
       one or two kept neighbours, is kept when a line through it continues a kept neighbour and
-      passes the same tests with the side test asked of that half alone: a fibre's end.
+      passes the same tests with the side test asked of that half alone: a fibre's end; and a
+      dropped dim pixel whose wide window and each half of it are dense (``area_alpha``) is kept.
 
     Then kept pixels are grouped into 8-connected components and components smaller than
     ``min_area`` are dropped, unless one of their pixels is so bright that background
@@ -294,6 +295,8 @@ def remove_speckle(
     flank_alpha: float = 0.01,
     flank_distance: int = 2,
     line_extend: int = 2,
+    area_alpha: float = 1e-6,
+    area_half_alpha: float = 0.01,
     rim_alpha: float = 0.01,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
@@ -354,6 +357,9 @@ def remove_speckle(
     lone_alpha : float, optional
         A smaller component stays when one of its pixels has ``P(Y >= value) < lone_alpha``
         under the channel's densest Poisson background (0: off).
+    area_alpha, area_half_alpha : float, optional
+        Area rule: a dropped dim pixel whose wide window, and each half of it, holds improbably
+        many dim positives (binomial tests) lies inside a dim stain and is kept (0: off).
     wide_radius, support_alpha : optional
         A pixel is also dense when its ``(2R+1)^2`` window holds improbably many dim
         positive neighbours (binomial test at ``alpha``; dim: not above the value test's
@@ -392,7 +398,7 @@ def remove_speckle(
               "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
               "line_half": line_half, "line_alpha": line_alpha, "line_side_alpha": line_side_alpha,
               "line_max_level": line_max_level, "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha,
-              "line_extend": line_extend}
+              "line_extend": line_extend, "area_alpha": area_alpha, "area_half_alpha": area_half_alpha}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
@@ -472,7 +478,7 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
         _k.window_counts(image, params["threshold"], params["wide_radius"], wide, params["wide_upper"])
     zone = np.ascontiguousarray(zone, np.uint8)
     lines = line_offsets(params["line_half"]) if params["line_half"] > 0 else _NO_LINES
-    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_extend")
+    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_extend", "area_min")
     kernel_args = {k: v for k, v in params.items() if k not in skip}
     n_removed = _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out,
                                   removed=removed, **kernel_args)
@@ -480,6 +486,9 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
         n_removed -= _k.extend_lines(image, out, removed, params["threshold"], params["wide_upper"], lines, zone,
                                      params["line_min_count"], params["line_flank"], params["line_flank_min"],
                                      params["line_extend"])
+    if params["wide_radius"] > 0:
+        n_removed -= _k.keep_areas(image, wide, out, removed, params["threshold"], params["wide_upper"], zone,
+                                   params["wide_radius"], *params["area_min"])
     return n_removed
 
 

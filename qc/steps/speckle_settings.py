@@ -76,6 +76,16 @@ class SpeckleSettings:
         2, "distance in pixels, across the line, of the two parallel lines the flank test compares with",
         low=1, high=20,
     )
+    area_alpha: float = setting(
+        1e-6, "a dropped dim pixel is kept when its wide window (wide_radius) holds this improbably many dim"
+        " positive neighbours for background (exact binomial test) and each half of the window does too at"
+        " area_half_alpha: inside a dim diffuse stain, not beside it (0: off)", low=0.0, high=0.5,
+    )
+    area_half_alpha: float = setting(
+        0.01, "each half of the wide window (above, below, left, right of the pixel) must hold this improbably"
+        " many dim positive pixels for the area rule (an intersection-union test: stricter only)",
+        low=0.0, high=1.0, low_open=True,
+    )
     support_alpha: float = setting(
         0.2, "how improbable for background the own window's count must be for the wider window to count",
         low=0.0, high=1.0, low_open=True,
