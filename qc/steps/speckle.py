@@ -72,6 +72,7 @@ from collections.abc import Sequence
 from typing import NamedTuple
 
 import numpy as np
+from plexwash.qc.steps import _growth_kernels as _g  # absolute: one numba cache
 from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
 
 from .._arrays import as_channel, as_stack, is_dask
@@ -93,6 +94,7 @@ from .speckle_counts import (
     region_histogram,
     window_counts,
 )
+from .speckle_growth import with_area_tables
 from .speckle_settings import SpeckleSettings
 from .speckle_tests import (
     MIN_REGION_WINDOWS,
@@ -345,9 +347,8 @@ def remove_speckle(
     line_max_level : float, optional
         The line test is asked only where the background level is at most this (counts per
         pixel): on denser backgrounds the square windows alone judge.
-    line_extend : int, optional
-        Rounds of the line-end rule, one pixel each (0: off): a fibre's last pixels, whose lines
-        reach past its end (see the module notes and ``_kernels.extend_lines``).
+    line_extend, area_alpha, area_half_alpha : optional
+        The line-end rule's rounds and the area rule's levels (0: off; see the module notes).
     flank_alpha, flank_distance : optional
         The line's counts against each flank's: conditional test of two Poisson means
         (Przyborowski & Wilenski 1940) at ``flank_alpha`` (0: off).
@@ -357,9 +358,6 @@ def remove_speckle(
     lone_alpha : float, optional
         A smaller component stays when one of its pixels has ``P(Y >= value) < lone_alpha``
         under the channel's densest Poisson background (0: off).
-    area_alpha, area_half_alpha : float, optional
-        Area rule: a dropped dim pixel whose wide window, and each half of it, holds improbably
-        many dim positives (binomial tests) lies inside a dim stain and is kept (0: off).
     wide_radius, support_alpha : optional
         A pixel is also dense when its ``(2R+1)^2`` window holds improbably many dim
         positive neighbours (binomial test at ``alpha``; dim: not above the value test's
@@ -419,7 +417,7 @@ def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out
     counts = _counts(image, settings)
     if background is None:
         background = _estimate(image, counts, settings, zone)
-    params = filter_parameters(settings, background, zone)
+    params = _filter_parameters(settings, background, zone)
     tested = without_residue(image, spilled, zone if params["zoned"] else None, params["levels"],
                              settings.residue_alpha)
     if tested is not image:
@@ -465,6 +463,11 @@ def _regional_background(histogram: np.ndarray, settings: SpeckleSettings) -> Ba
     return base._replace(glass_level=float(levels[0] if has_glass else np.nan), zone_levels=zone_levels)
 
 
+def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate, zone=None) -> dict:
+    """:func:`.speckle_tests.filter_parameters` with the area rule's tables (``area_min``)."""
+    return with_area_tables(filter_parameters(settings, background, zone), settings, background.rate, zone)
+
+
 def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
     if params["pass_through"]:  # every window is full: no pixel is sparser than background
         out[...] = image
@@ -483,11 +486,11 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
     n_removed = _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out,
                                   removed=removed, **kernel_args)
     if params["line_extend"] > 0 and lines.shape[0] > 0:
-        n_removed -= _k.extend_lines(image, out, removed, params["threshold"], params["wide_upper"], lines, zone,
+        n_removed -= _g.extend_lines(image, out, removed, params["threshold"], params["wide_upper"], lines, zone,
                                      params["line_min_count"], params["line_flank"], params["line_flank_min"],
                                      params["line_extend"])
     if params["wide_radius"] > 0:
-        n_removed -= _k.keep_areas(image, wide, out, removed, params["threshold"], params["wide_upper"], zone,
+        n_removed -= _g.keep_areas(image, wide, out, removed, params["threshold"], params["wide_upper"], zone,
                                    params["wide_radius"], *params["area_min"])
     return n_removed
 
@@ -506,7 +509,7 @@ def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: Sp
 
 def _speckle_dask(image, settings: SpeckleSettings, background: BackgroundEstimate) -> StepResult:
     out = lift_channel(image, _speckle_block, speckle_depth(settings),
-                       params=filter_parameters(settings, background))
+                       params=_filter_parameters(settings, background))
     removed = image - out
     stats = _speckle_stats(settings, background)
     stats.update(n_removed=(removed > 0).sum(), removed_fraction=removed_fraction(removed, image))
@@ -600,7 +603,7 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
         return _speckle_numpy(image, s, None, out, removed, zone=zone if s.local_rates else None, spilled=ghost)
 
     def block_kernel(c, s):
-        kernel = functools.partial(_speckle_block, params=filter_parameters(s, backgrounds[c]), settings=s)
+        kernel = functools.partial(_speckle_block, params=_filter_parameters(s, backgrounds[c]), settings=s)
         return kernel, speckle_depth(s), _speckle_stats(s, backgrounds[c])
 
     passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None,

@@ -573,7 +573,6 @@ def filter_parameters(settings, background, zone=None) -> dict:
         "line_min_count": line_sum_tables(tabled, settings),
         "line_flank": int(settings.flank_distance),
         "line_extend": int(settings.line_extend),
-        "area_min": area_tables(tabled, rates, settings),
         "line_flank_min": line_flank_table(int(settings.line_half), float(settings.flank_alpha)),
         "rim_min_count": rim_tables(tabled, rates, settings),
         "rim_value": rim_values(tabled, settings),
@@ -582,28 +581,3 @@ def filter_parameters(settings, background, zone=None) -> dict:
         "zoned": zoned,
         "levels": np.asarray(levels, np.float64),
     }
-
-
-def area_tables(levels: np.ndarray, rates, settings) -> tuple[np.ndarray, np.ndarray]:
-    """Thresholds of the area rule (kernel ``keep_areas``) per zone, ``(Z, 2R+2, 2R+2)`` each for
-    the wide window of half-width ``R = wide_radius``: the smallest dim positive neighbour count
-    kept in a window of ``a`` x ``b`` pixels, at ``area_alpha`` (the whole window) and at
-    ``area_half_alpha`` (each of its four halves).
-
-    Exact one-sided binomial tests (:func:`min_count_table`, the density test on a larger
-    window). The whole window at ``area_alpha`` (1e-6, about ``value_alpha``) bounds the false
-    keeps on background alone; asking each half too is an intersection-union test (Berger 1982),
-    whose level is that of its strictest part, so it only makes the rule stricter: a background
-    pixel beside a dim stain or a group of cells has a half of background and fails it. Shape
-    ``(0, 0, 0)`` when off (``area_alpha`` or ``wide_radius`` 0).
-    """
-    radius = int(settings.wide_radius)
-    if settings.area_alpha <= 0 or radius <= 0:
-        empty = np.zeros((0, 0, 0), np.int32)
-        return empty, empty
-    rates = positive_rate(levels, settings.threshold) if rates is None else np.asarray(rates, np.float64)
-    whole = min_count_table(radius, rates, settings.area_alpha)
-    halves = min_count_table(radius, rates, settings.area_half_alpha)
-    whole[rates >= 1.0] = 0  # a zone whose every pixel is positive: nothing is sparser than background
-    halves[rates >= 1.0] = 0
-    return np.ascontiguousarray(whole, np.int32), np.ascontiguousarray(halves, np.int32)
