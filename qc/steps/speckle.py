@@ -99,12 +99,14 @@ from .speckle_settings import SpeckleSettings
 from .speckle_tests import (
     MIN_REGION_WINDOWS,
     binomial_min_count,
-    filter_parameters,
     fit_rate,
     line_offsets,
     poisson_level,
     poisson_min_value,
     without_residue,
+)
+from .speckle_tests import (
+    filter_parameters as table_parameters,
 )
 
 __all__ = [
@@ -417,7 +419,7 @@ def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out
     counts = _counts(image, settings)
     if background is None:
         background = _estimate(image, counts, settings, zone)
-    params = _filter_parameters(settings, background, zone)
+    params = filter_parameters(settings, background, zone)
     tested = without_residue(image, spilled, zone if params["zoned"] else None, params["levels"],
                              settings.residue_alpha)
     if tested is not image:
@@ -463,9 +465,10 @@ def _regional_background(histogram: np.ndarray, settings: SpeckleSettings) -> Ba
     return base._replace(glass_level=float(levels[0] if has_glass else np.nan), zone_levels=zone_levels)
 
 
-def _filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate, zone=None) -> dict:
-    """:func:`.speckle_tests.filter_parameters` with the area rule's tables (``area_min``)."""
-    return with_area_tables(filter_parameters(settings, background, zone), settings, background.rate, zone)
+def filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate, zone=None) -> dict:
+    """:func:`.speckle_tests.filter_parameters` with the area rule's tables (``area_min``,
+    ``area_half_min``)."""
+    return with_area_tables(table_parameters(settings, background, zone), settings, background.rate, zone)
 
 
 def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
@@ -481,7 +484,7 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
         _k.window_counts(image, params["threshold"], params["wide_radius"], wide, params["wide_upper"])
     zone = np.ascontiguousarray(zone, np.uint8)
     lines = line_offsets(params["line_half"]) if params["line_half"] > 0 else _NO_LINES
-    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_extend", "area_min")
+    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_extend", "area_min", "area_half_min")
     kernel_args = {k: v for k, v in params.items() if k not in skip}
     n_removed = _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out,
                                   removed=removed, **kernel_args)
@@ -491,7 +494,7 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
                                      params["line_extend"])
     if params["wide_radius"] > 0:
         n_removed -= _g.keep_areas(image, wide, out, removed, params["threshold"], params["wide_upper"], zone,
-                                   params["wide_radius"], *params["area_min"])
+                                   params["wide_radius"], params["area_min"], params["area_half_min"])
     return n_removed
 
 
@@ -509,7 +512,7 @@ def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: Sp
 
 def _speckle_dask(image, settings: SpeckleSettings, background: BackgroundEstimate) -> StepResult:
     out = lift_channel(image, _speckle_block, speckle_depth(settings),
-                       params=_filter_parameters(settings, background))
+                       params=filter_parameters(settings, background))
     removed = image - out
     stats = _speckle_stats(settings, background)
     stats.update(n_removed=(removed > 0).sum(), removed_fraction=removed_fraction(removed, image))
@@ -603,7 +606,7 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
         return _speckle_numpy(image, s, None, out, removed, zone=zone if s.local_rates else None, spilled=ghost)
 
     def block_kernel(c, s):
-        kernel = functools.partial(_speckle_block, params=_filter_parameters(s, backgrounds[c]), settings=s)
+        kernel = functools.partial(_speckle_block, params=filter_parameters(s, backgrounds[c]), settings=s)
         return kernel, speckle_depth(s), _speckle_stats(s, backgrounds[c])
 
     passive = {"rate": None, "level": None, "count_threshold": None, "value_threshold": None,

@@ -35,7 +35,8 @@ def area_tables(levels: np.ndarray, rates, settings) -> tuple[np.ndarray, np.nda
 
 def with_area_tables(params: dict, settings, rate: float, zone=None) -> dict:
     """The speckle kernel's ``params`` (:func:`.speckle_tests.filter_parameters`) with the area
-    rule's tables added (``area_min``), for the same zone levels (or the channel's one ``rate``)."""
+    rule's tables added (``area_min``, ``area_half_min``), for the same zone levels (or the channel's one ``rate``)."""
     levels = tabulated_levels(params["levels"], zone) if params["zoned"] else params["levels"]
-    params["area_min"] = area_tables(levels, None if params["zoned"] else np.array([rate]), settings)
+    params["area_min"], params["area_half_min"] = area_tables(levels, None if params["zoned"] else np.array([rate]),
+                                                              settings)
     return params
