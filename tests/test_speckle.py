@@ -268,7 +268,7 @@ def test_background_rate_recovered_and_not_inflated_by_cells(rate):
 def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False,
                       wide_radius=0, support_alpha=0.2, edge_alpha=0.0, line_half=0, lone_alpha=0.0,
                       line_alpha=0.003, rim_alpha=0.0, line_side_alpha=0.05, flank_alpha=0.01,
-                      flank_distance=2):
+                      flank_distance=2, line_extend=0, area_alpha=1e-6, area_half_alpha=0.01):
     """The documented rule, written with scipy building blocks."""
     side = 2 * radius + 1
     positive = img > np.float32(threshold)
@@ -296,38 +296,11 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
         support = n >= stats.binom.isf(support_alpha, trials, rate) + 1
         dense |= support & ~judged & (n_wide >= stats.binom.isf(alpha, wide_trials, rate) + 1)
     if line_half:  # summed whole counts of the dim positives on each line of speckle_tests.line_offsets
-        dim_counts = np.where(positive & (img <= min_value - 1), np.floor(img.astype(np.float64) + 0.5), 0.0)
-        counts = np.floor(img.astype(np.float64) + 0.5)
-        size = 2 * (line_half + flank_distance) + 1
-        centre = line_half + flank_distance
-        lines = speckle_tests.line_offsets(line_half)
-        tests = len(lines)
-
-        def along(values, pixels):  # scipy.ndimage.correlate: the sum over the given offsets
-            kernel = np.zeros((size, size))
-            kernel[centre + pixels[:, 0], centre + pixels[:, 1]] = 1
-            return ndi.correlate(values, kernel, mode="constant")
-
-        ones = np.ones(img.shape)
-        for line in lines:
-            halves = [(along(dim_counts, h), np.rint(along(ones, h))) for h in (line[:line_half], line[line_half:])]
-            total = halves[0][0] + halves[1][0]
-            trials = halves[0][1] + halves[1][1]
-            ok = total >= stats.poisson.isf(line_alpha / tests, level * trials) + 1  # Bonferroni over the lines
-            for side_sum, side_trials in halves:
-                ok &= side_sum > 0
-                if line_side_alpha < 1:
-                    ok &= side_sum >= stats.poisson.isf(line_side_alpha, level * side_trials) + 1
-            if flank_alpha > 0:  # conditional test of two Poisson means against each parallel line
-                steep = abs(line[line_half - 1, 0]) == line_half
-                for side in (-1, 1):
-                    shift = np.array([0, side * flank_distance]) if steep else np.array([side * flank_distance, 0])
-                    other = along(counts, line + shift)
-                    pixels = np.rint(along(ones, line + shift))
-                    n = np.rint(total + other)
-                    share = trials / np.maximum(trials + pixels, 1)
-                    ok &= (n <= 255) & (total >= stats.binom.isf(flank_alpha, n, share) + 1)  # scipy.stats.binom
-            dense |= ok
+        lines = reference_lines(img, threshold=threshold, level=level, min_value=min_value, line_half=line_half,
+                                line_alpha=line_alpha, line_side_alpha=line_side_alpha, flank_alpha=flank_alpha,
+                                flank_distance=flank_distance)
+        for _line, halves, whole in lines:
+            dense |= whole & halves[0][2] & halves[1][2]
     if edge_alpha > 0:  # lower Poisson tail against the mean of the 8 neighbours
         ring = np.ones((3, 3))
         ring[1, 1] = 0
@@ -347,17 +320,97 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
         if lone_alpha > 0:  # a pixel this bright keeps its group whatever its size
             lone[labels[keep & (img > stats.poisson.isf(lone_alpha, level))]] = True
         keep &= (sizes[labels] >= min_area) | lone[labels]
+    if line_half:  # line-end rule: rounds judged on the kept marks of the round before
+        # the pixel's own whole count passes the side test (scipy.stats.poisson.isf)
+        dim = positive & (img <= min_value - 1)
+        dim &= np.floor(img.astype(np.float64) + 0.5) >= stats.poisson.isf(line_side_alpha, level) + 1
+        ring = np.ones((3, 3), np.int64)
+        ring[1, 1] = 0
+        for _ in range(line_extend):
+            around = ndi.convolve(keep.astype(np.int64), ring, mode="constant")  # kept 8-neighbours: 1 or 2
+            extended = np.zeros(img.shape, bool)
+            for line, halves, whole in lines:
+                for k, (_, _, side_ok) in enumerate(halves):
+                    first = line[0] if k == 0 else line[line_half]
+                    beside = np.rint(along_line(keep.astype(float), first[None], line_half, flank_distance)) > 0
+                    extended |= whole & side_ok & beside
+            extended &= dim & ~keep & (around >= 1) & (around <= 2)
+            if not extended.any():
+                break
+            keep |= extended
+    if wide_radius and area_alpha > 0:  # area rule: the wide window and each of its halves dense
+        dim = (positive & (img <= min_value - 1)).astype(np.int64)
+        wide_side = 2 * wide_radius + 1
+        inside = dim.astype(bool)
+        halves = [np.ones((wide_side, wide_side))]  # the whole window, then the four halves
+        for part in (np.s_[:wide_radius + 1, :], np.s_[wide_radius:, :], np.s_[:, :wide_radius + 1],
+                     np.s_[:, wide_radius:]):
+            kernel = np.zeros((wide_side, wide_side))
+            kernel[part] = 1
+            halves.append(kernel)
+        for k, kernel in enumerate(halves):
+            n_part = np.rint(ndi.correlate(dim.astype(float), kernel, mode="constant")) - dim  # scipy.ndimage
+            trials_part = np.rint(ndi.correlate(np.ones(img.shape), kernel, mode="constant")) - 1
+            level_alpha = area_alpha if k == 0 else area_half_alpha
+            inside &= n_part >= stats.binom.isf(level_alpha, trials_part, rate) + 1  # scipy.stats.binom.isf
+        keep |= inside
     return np.where(positive & ~keep, np.float32(0), img)
 
 
-@pytest.mark.parametrize("radius, min_area, threshold, keep_touching, wide_radius, edge_alpha, line_half, lone_alpha",
-                         [(1, 1, 0.0, False, 0, 0.0, 0, 0.0), (2, 2, 0.5, False, 0, 0.0, 0, 0.0),
-                          (3, 5, 1.5, True, 0, 0.0, 3, 1e-8), (2, 12, 0.0, True, 0, 0.0, 0, 1e-12),
-                          (2, 1, 0.5, True, 0, 0.0, 4, 0.0), (2, 2, 0.5, False, 5, 1e-3, 4, 1e-12),
-                          (1, 3, 0.0, True, 4, 1e-2, 6, 1e-6)])
+def along_line(values, pixels, line_half, flank_distance):
+    """scipy.ndimage.correlate: the sum of ``values`` over the given offsets from each pixel."""
+    size = 2 * (line_half + flank_distance) + 1
+    centre = line_half + flank_distance
+    kernel = np.zeros((size, size))
+    kernel[centre + pixels[:, 0], centre + pixels[:, 1]] = 1
+    return ndi.correlate(values, kernel, mode="constant")
+
+
+def reference_lines(img, *, threshold, level, min_value, line_half, line_alpha, line_side_alpha, flank_alpha,
+                    flank_distance):
+    """Per line of ``speckle_tests.line_offsets``: the line, its halves' (sum, pixels, side test
+    passed) and whether the whole line passes its sum and flank tests (both halves aside)."""
+    positive = img > np.float32(threshold)
+    dim_counts = np.where(positive & (img <= min_value - 1), np.floor(img.astype(np.float64) + 0.5), 0.0)
+    counts = np.floor(img.astype(np.float64) + 0.5)
+    lines = speckle_tests.line_offsets(line_half)
+    tests = len(lines)
+    ones = np.ones(img.shape)
+    out = []
+    for line in lines:
+        halves = []
+        for h in (line[:line_half], line[line_half:]):
+            side_sum = along_line(dim_counts, h, line_half, flank_distance)
+            side_trials = np.rint(along_line(ones, h, line_half, flank_distance))
+            ok = side_sum > 0
+            if line_side_alpha < 1:
+                ok &= side_sum >= stats.poisson.isf(line_side_alpha, level * side_trials) + 1
+            halves.append((side_sum, side_trials, ok))
+        total = halves[0][0] + halves[1][0]
+        trials = halves[0][1] + halves[1][1]
+        ok = total >= stats.poisson.isf(line_alpha / tests, level * trials) + 1  # Bonferroni over the lines
+        if flank_alpha > 0:  # conditional test of two Poisson means against each parallel line
+            steep = abs(line[line_half - 1, 0]) == line_half
+            for side in (-1, 1):
+                shift = np.array([0, side * flank_distance]) if steep else np.array([side * flank_distance, 0])
+                other = along_line(counts, line + shift, line_half, flank_distance)
+                pixels = np.rint(along_line(ones, line + shift, line_half, flank_distance))
+                n = np.rint(total + other)
+                share = trials / np.maximum(trials + pixels, 1)
+                ok &= (n <= 255) & (total >= stats.binom.isf(flank_alpha, n, share) + 1)  # scipy.stats.binom
+        out.append((line, halves, ok))
+    return out
+
+
+@pytest.mark.parametrize("radius, min_area, threshold, keep_touching, wide_radius, edge_alpha, line_half, lone_alpha,"
+                         " line_extend",
+                         [(1, 1, 0.0, False, 0, 0.0, 0, 0.0, 2), (2, 2, 0.5, False, 0, 0.0, 0, 0.0, 0),
+                          (3, 5, 1.5, True, 0, 0.0, 3, 1e-8, 1), (2, 12, 0.0, True, 0, 0.0, 0, 1e-12, 2),
+                          (2, 1, 0.5, True, 0, 0.0, 4, 0.0, 0), (2, 2, 0.5, False, 5, 1e-3, 4, 1e-12, 2),
+                          (1, 3, 0.0, True, 4, 1e-2, 6, 1e-6, 3), (2, 2, 0.5, False, 5, 1e-3, 4, 1e-12, 0)])
 @pytest.mark.parametrize("rim_alpha", [0.0, 0.01])
 def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold, keep_touching, wide_radius, edge_alpha,
-                                             line_half, lone_alpha, rim_alpha):
+                                             line_half, lone_alpha, line_extend, rim_alpha):
     d = synthetic_channel((150, 170), background=0.15, seed=radius + min_area, n_cells=40, n_dim=10,
                           n_specks=15, n_processes=4, n_hot=0)
     img = d["counts"]
@@ -366,7 +419,7 @@ def test_speckle_rule_equals_scipy_reference(radius, min_area, threshold, keep_t
     img[70, 5] = img[5, 160] = 30.0  # lone bright pixels (away from the synthetic objects, mostly)
     settings = dict(threshold=threshold, radius=radius, alpha=0.01, value_alpha=1e-5, min_area=min_area,
                     keep_touching=keep_touching, wide_radius=wide_radius, edge_alpha=edge_alpha,
-                    line_half=line_half, lone_alpha=lone_alpha, rim_alpha=rim_alpha)
+                    line_half=line_half, lone_alpha=lone_alpha, rim_alpha=rim_alpha, line_extend=line_extend)
     out, removed, st = remove_speckle(img, **settings)
     expected = reference_speckle(img, rate=st["rate"], level=st["level"], **settings)
     np.testing.assert_array_equal(out, expected)
@@ -592,9 +645,11 @@ def test_settings_are_frozen_documented_and_defaults_in_range():
         # the functions' own defaults are the settings' defaults
         values = {f.name: f.default for f in dataclasses.fields(cls) if f.name != "enabled"}
         assert build_settings(cls, values, section="x") == obj
-    assert speckle_depth(SpeckleSettings()) == 4 + 2 + 2  # line_half + flank_distance + 1 + (min_area - 1)
-    assert speckle_depth(SpeckleSettings(radius=5, min_area=1)) == 7  # line_half + flank_distance + 1
-    assert speckle_depth(SpeckleSettings(radius=5, min_area=1, flank_alpha=0.0)) == 6
+    # line_half + flank_distance + 1 + (min_area - 1) + line_extend
+    assert speckle_depth(SpeckleSettings()) == 4 + 2 + 2 + 2
+    assert speckle_depth(SpeckleSettings(radius=5, min_area=1)) == 7 + 2  # line_half + flank_distance + 1 + rounds
+    assert speckle_depth(SpeckleSettings(radius=5, min_area=1, flank_alpha=0.0, line_extend=0)) == 6
+    assert speckle_depth(SpeckleSettings(line_half=0, line_extend=3)) == 5 + 1 + 1  # wide_radius: no lines, no rounds
     assert BackgroundEstimate._fields[:4] == ("rate", "level", "count_threshold", "value_threshold")
 
 

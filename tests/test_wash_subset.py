@@ -53,7 +53,8 @@ def random_recipe(seed: int, channels):
     recipe = recipe.replace("speckle", lone_alpha=float(10 ** rng.uniform(-14, -10)), line_half=int(rng.integers(2, 4)),
                             line_alpha=float(rng.uniform(0.005, 0.02)), rim_alpha=float(rng.uniform(0.02, 0.05)))
     recipe = recipe.replace("speckle", line_side_alpha=float(rng.uniform(0.1, 0.3)),
-                            flank_alpha=float(rng.uniform(0.02, 0.05)), flank_distance=3, line_max_level=5.0)
+                            flank_alpha=float(rng.uniform(0.02, 0.05)), flank_distance=3, line_max_level=5.0,
+                            line_extend=3, area_alpha=1e-5, area_half_alpha=0.02)
     recipe = recipe.with_channel("hot_pixels", channels[a], flat_sigmas=0.0, ratio=9.0)
     recipe = recipe.with_channel("hot_pixels", channels[b], enabled=False)
     recipe = recipe.with_channel("speckle", channels[c], radius=1, min_area=1, keep_touching=False,

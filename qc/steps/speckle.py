@@ -15,6 +15,13 @@ Speckle
     * its own value is improbable for background: ``P(Y >= value) < value_alpha`` with
       ``Y ~ Poisson(level)``, so bright tiny objects survive.
 
+    * (line test, ``line_half``) the dim counts on a line through it are improbable for
+      background, each half's too, and the line is denser than its flanks; then, in
+      ``line_extend`` rounds, a dropped dim pixel whose own count passes the side test, with
+      one or two kept neighbours, is kept when a line through it continues a kept neighbour and
+      passes the same tests with the side test asked of that half alone: a fibre's end; and a
+      dropped dim pixel whose wide window and each half of it are dense (``area_alpha``) is kept.
+
     Then kept pixels are grouped into 8-connected components and components smaller than
     ``min_area`` are dropped, unless one of their pixels is so bright that background
     cannot explain it anywhere in the ROI: ``P(Y >= value) < lone_alpha`` under
@@ -65,6 +72,7 @@ from collections.abc import Sequence
 from typing import NamedTuple
 
 import numpy as np
+from plexwash.qc.steps import _growth_kernels as _g  # absolute: one numba cache
 from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
 
 from .._arrays import as_channel, as_stack, is_dask
@@ -86,16 +94,19 @@ from .speckle_counts import (
     region_histogram,
     window_counts,
 )
+from .speckle_growth import with_area_tables
 from .speckle_settings import SpeckleSettings
 from .speckle_tests import (
     MIN_REGION_WINDOWS,
     binomial_min_count,
-    filter_parameters,
     fit_rate,
     line_offsets,
     poisson_level,
     poisson_min_value,
     without_residue,
+)
+from .speckle_tests import (
+    filter_parameters as table_parameters,
 )
 
 __all__ = [
@@ -244,17 +255,20 @@ def speckle_depth(settings: SpeckleSettings) -> int:
     The largest of ``radius``, ``wide_radius`` and ``line_half`` (plus ``flank_distance`` with the flank test)
     for the window and line counts, 1 for the neighbour
     mean and the ``keep_touching`` rule, ``min_area - 1`` for the component-size rule (see the
-    module notes).
+    module notes), and one pixel per round of the line-end rule (``line_extend``: a round reads
+    the kept marks of the pixels next to it).
 
     Examples
     --------
     >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=0, line_half=0, min_area=2))
     4
-    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=5, line_half=4, flank_distance=2, min_area=2))
-    8
+    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=5, line_half=4, flank_distance=2, min_area=2,
+    ...                               line_extend=2))
+    10
     """
+    extend = int(settings.line_extend) if int(settings.line_half) > 0 else 0
     return (max(int(settings.radius), int(settings.wide_radius), _line_reach(settings)) + 1
-            + max(int(settings.min_area) - 1, 0))
+            + max(int(settings.min_area) - 1, 0) + extend)
 
 
 def _line_reach(settings: SpeckleSettings) -> int:
@@ -284,6 +298,9 @@ def remove_speckle(
     line_max_level: float = 1.0,
     flank_alpha: float = 0.01,
     flank_distance: int = 2,
+    line_extend: int = 2,
+    area_alpha: float = 1e-6,
+    area_half_alpha: float = 0.01,
     rim_alpha: float = 0.01,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
@@ -332,6 +349,8 @@ def remove_speckle(
     line_max_level : float, optional
         The line test is asked only where the background level is at most this (counts per
         pixel): on denser backgrounds the square windows alone judge.
+    line_extend, area_alpha, area_half_alpha : optional
+        The line-end rule's rounds and the area rule's levels (0: off; see the module notes).
     flank_alpha, flank_distance : optional
         The line's counts against each flank's: conditional test of two Poisson means
         (Przyborowski & Wilenski 1940) at ``flank_alpha`` (0: off).
@@ -378,7 +397,8 @@ def remove_speckle(
               "keep_touching": keep_touching, "min_area": min_area, "edge_alpha": edge_alpha,
               "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
               "line_half": line_half, "line_alpha": line_alpha, "line_side_alpha": line_side_alpha,
-              "line_max_level": line_max_level, "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha}
+              "line_max_level": line_max_level, "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha,
+              "line_extend": line_extend, "area_alpha": area_alpha, "area_half_alpha": area_half_alpha}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
@@ -445,6 +465,12 @@ def _regional_background(histogram: np.ndarray, settings: SpeckleSettings) -> Ba
     return base._replace(glass_level=float(levels[0] if has_glass else np.nan), zone_levels=zone_levels)
 
 
+def filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate, zone=None) -> dict:
+    """:func:`.speckle_tests.filter_parameters` with the area rule's tables (``area_min``,
+    ``area_half_min``)."""
+    return with_area_tables(table_parameters(settings, background, zone), settings, background.rate, zone)
+
+
 def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
     if params["pass_through"]:  # every window is full: no pixel is sparser than background
         out[...] = image
@@ -458,10 +484,18 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
         _k.window_counts(image, params["threshold"], params["wide_radius"], wide, params["wide_upper"])
     zone = np.ascontiguousarray(zone, np.uint8)
     lines = line_offsets(params["line_half"]) if params["line_half"] > 0 else _NO_LINES
-    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half")
+    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_extend", "area_min", "area_half_min")
     kernel_args = {k: v for k, v in params.items() if k not in skip}
-    return _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out, removed=removed,
-                             **kernel_args)
+    n_removed = _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out,
+                                  removed=removed, **kernel_args)
+    if params["line_extend"] > 0 and lines.shape[0] > 0:
+        n_removed -= _g.extend_lines(image, out, removed, params["threshold"], params["wide_upper"], lines, zone,
+                                     params["line_min_count"], params["line_flank"], params["line_flank_min"],
+                                     params["line_extend"])
+    if params["wide_radius"] > 0:
+        n_removed -= _g.keep_areas(image, wide, out, removed, params["threshold"], params["wide_upper"], zone,
+                                   params["wide_radius"], params["area_min"], params["area_half_min"])
+    return n_removed
 
 
 def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: SpeckleSettings | None = None):

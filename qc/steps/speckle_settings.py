@@ -65,9 +65,26 @@ class SpeckleSettings:
         " denser background nearly every pixel is positive and the square windows alone judge it: the line"
         " test would cost a scan of every line of every pixel)", low=0.0, high=1e6,
     )
+    line_extend: int = setting(
+        2, "a dropped dim pixel is kept when it continues a kept line: its own count passes the side test"
+        " (line_side_alpha), one or two of its 8 neighbours are kept, its neighbour on one half of a line"
+        " through it is kept, and the line passes the line test with the side test asked of that half alone"
+        " (a fibre's end, whose other half lies past the fibre); this many rounds, one pixel each (0: off)",
+        low=0, high=20,
+    )
     flank_distance: int = setting(
         2, "distance in pixels, across the line, of the two parallel lines the flank test compares with",
         low=1, high=20,
+    )
+    area_alpha: float = setting(
+        1e-6, "a dropped dim pixel is kept when its wide window (wide_radius) holds this improbably many dim"
+        " positive neighbours for background (exact binomial test) and each half of the window does too at"
+        " area_half_alpha: inside a dim diffuse stain, not beside it (0: off)", low=0.0, high=0.5,
+    )
+    area_half_alpha: float = setting(
+        0.01, "each half of the wide window (above, below, left, right of the pixel) must hold this improbably"
+        " many dim positive pixels for the area rule (an intersection-union test: stricter only)",
+        low=0.0, high=1.0, low_open=True,
     )
     support_alpha: float = setting(
         0.2, "how improbable for background the own window's count must be for the wider window to count",

@@ -473,6 +473,7 @@ def filter_parameters(settings, background, zone=None) -> dict:
         "line_half": int(settings.line_half),
         "line_min_count": rows["line_min_count"][at.ravel()],
         "line_flank": int(settings.flank_distance),
+        "line_extend": int(settings.line_extend),
         "line_flank_min": line_flank_table(int(settings.line_half), float(settings.flank_alpha)),
         "rim_min_count": np.ascontiguousarray(rows["rim_min_count"][at.ravel()]),
         "rim_value": rows["rim_value"][at.ravel()],
