@@ -264,3 +264,23 @@ def test_cached_scalar_searches_equal_the_plain_searches():
         assert level == poisson_level(float(rate), 0.5) == float(special.gammaincinv(1.0, rate))
         assert poisson_min_value(np.float64(level), alpha) == poisson_min_value(level, alpha)
     assert np.isinf(poisson_min_value(np.nan, 0.01)) and np.isinf(poisson_min_value(np.inf, 0.01))
+
+
+@pytest.mark.parametrize("alpha", [1e-12, 1e-6, 0.003, 0.01, 0.2])
+def test_grid_walk_equals_the_bisection_of_every_entry(alpha):
+    """The table search that walks each rate up the trial counts gives what the bisection of each
+    entry gives (both ask scipy's ``bdtrc``, ``scipy.special.cython_special``), on trial counts
+    out of order and with gaps, rates over twelve orders of magnitude, 0, 1 and NaN."""
+    from plexwash.qc.steps import _search_kernels as sk
+    from plexwash.qc.steps._speckle_search import _binomial_grid, _special_functions
+
+    rng = np.random.default_rng(int(-np.log10(alpha) * 7))
+    rates = np.concatenate([10.0 ** rng.uniform(-12, 0, 300), rng.uniform(0, 1, 200),
+                            1.0 - 10.0 ** rng.uniform(-12, -1, 20), [0.0, 1.0, np.nan]])
+    trials = np.concatenate([np.arange(0, 130), [200, 143, 167, 131, 121, 0, 3]])
+    rng.shuffle(trials)
+    grid_trials, grid_rates = np.meshgrid(trials, rates, indexing="ij")
+    expected = np.empty(grid_trials.size, np.int64)
+    sk.binomial_search(grid_trials.ravel(), grid_rates.ravel(), np.full(grid_trials.size, alpha),
+                       _special_functions()[0], expected)
+    np.testing.assert_array_equal(_binomial_grid(trials, rates, alpha), expected.reshape(grid_trials.shape))

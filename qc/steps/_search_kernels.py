@@ -241,3 +241,45 @@ def box_mean_constant(values, size, out):
         for x in range(width):
             line[before + x] = work[y * width + x]
         _running_mean(line, width, size, flat, y * width, 1)
+
+
+@nb.njit(cache=True, nogil=True)
+def binomial_grid_search(trials, rates, alpha, bdtrc, out):
+    """:func:`binomial_search` of every pair of the ascending ``trials`` and the ``rates``,
+    ``out[t, r]`` (int64), each rate's column walked up the trial counts.
+
+    For one rate the answer does not fall as the trials grow (``P(N >= k)`` grows with them),
+    so the walk starts where the previous trial count ended: it checks that the count below
+    the start is not yet improbable, then asks the counts above it one by one, the first
+    improbable one being the answer. ``P(N >= k)`` falls with ``k``, so that is the count the
+    bisection finds; where the check fails, or after ``8`` steps, the entry is searched by the
+    bisection itself on what is left open (``P(N >= k) = bdtrc(k - 1, n, p)``, as there)."""
+    for r in range(rates.size):
+        p = rates[r]
+        previous = 1
+        for t in range(trials.size):
+            n = trials[t]
+            low = 0
+            high = n + 1
+            start = min(previous, n + 1)
+            if start >= 2 and bdtrc(np.float64(start - 2), n, p, 0) < alpha:
+                start = 1  # not as expected: the whole range is bisected
+            if start >= 2:
+                low = start - 1
+            k = low + 1
+            steps = 0
+            while k < high and steps < 8:
+                if bdtrc(np.float64(k - 1), n, p, 0) < alpha:
+                    high = k
+                    break
+                low = k
+                k += 1
+                steps += 1
+            while high - low > 1:
+                mid = (low + high) // 2
+                if bdtrc(np.float64(mid - 1), n, p, 0) < alpha:
+                    high = mid
+                else:
+                    low = mid
+            out[t, r] = high
+            previous = high

@@ -117,11 +117,14 @@ def _one_binomial_min_count(trials: int, rate: float, alpha: float) -> int:
 
 def _binomial_grid(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
     """:func:`binomial_min_count` of every pair of the 1-D ``trials`` and ``rates``, ``(T, R)``."""
-    grid_trials, grid_rates = np.meshgrid(np.asarray(trials, np.int64), np.asarray(rates, np.float64), indexing="ij")
-    high = np.empty(grid_trials.size, np.int64)
-    _sk.binomial_search(grid_trials.ravel(), grid_rates.ravel(), np.full(grid_trials.size, float(alpha)),
-                       _special_functions()[0], high)
-    return high.reshape(grid_trials.shape)
+    trials = np.asarray(trials, np.int64)
+    order = np.argsort(trials, kind="stable")
+    out = np.empty((trials.size, np.size(rates)), np.int64)
+    _sk.binomial_grid_search(np.ascontiguousarray(trials[order]), np.ascontiguousarray(rates, np.float64).ravel(),
+                             float(alpha), _special_functions()[0], out)
+    grid = np.empty_like(out)
+    grid[order] = out
+    return grid
 
 
 @functools.lru_cache(maxsize=16)
