@@ -466,3 +466,18 @@ def test_a_tiff_read_into_memory_equals_its_lazy_read(tmp_path, shape):
     assert eager.data.dtype == lazy.data.dtype and eager.data.shape == lazy.data.shape
     np.testing.assert_array_equal(eager.data, lazy.data.compute())
     assert eager.channels == lazy.channels
+
+
+def test_source_xml_kept_from_the_read_is_the_files_own_and_follows_a_replaced_file(tmp_path):
+    path = tmp_path / "roi.ome.tiff"
+    data = np.arange(2 * 8 * 8, dtype=np.float32).reshape(2, 8, 8)
+    write_ome_tiff(path, data, ["Ir191", "Pt195"])
+    read_roi(path)  # keeps the XML it read
+    with tifffile.TiffFile(path) as tif:  # the file's own OME-XML (tifffile reference reader)
+        assert tiff_module.source_ome_xml(path) == tif.ome_metadata
+    other = tmp_path / "other.ome.tiff"
+    write_ome_tiff(other, data, ["Yb171", "Lu175"])
+    os.replace(other, path)  # a different file under the same name: read again
+    with tifffile.TiffFile(path) as tif:
+        assert tiff_module.source_ome_xml(path) == tif.ome_metadata
+    assert "Yb171" in tiff_module.source_ome_xml(path)

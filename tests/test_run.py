@@ -464,6 +464,21 @@ def test_ledger_survives_a_torn_last_line(tmp_path):
     assert json.loads(line, parse_constant=refuse)["value"] is None
 
 
+def test_ledger_read_again_gives_fresh_records_and_sees_every_change(tmp_path):
+    path = tmp_path / LEDGER
+    for k in range(12):  # enough records to be kept parsed between reads
+        Ledger(path).append({"roi": f"r{k}", "status": "done", "quality": [{"sbr": k}]})
+    first = read_ledger(tmp_path)
+    first[0]["quality"][0]["sbr"] = -1  # a caller changing what it got
+    again = read_ledger(tmp_path)
+    assert again == [{"roi": f"r{k}", "status": "done", "quality": [{"sbr": k}]} for k in range(12)]
+    text = path.read_text()
+    path.write_text(text.replace('"r3", "status": "done"', '"r3", "status": "fail"'))  # same size
+    assert read_ledger(tmp_path)[3]["status"] == "fail"
+    path.write_text(text + '{"roi": "r12", "sta')  # a torn line is skipped as before
+    assert len(read_ledger(tmp_path)) == 12
+
+
 def test_sweep_removes_only_temporary_names(tmp_path):
     keep = [tmp_path / "roi_01.ome.tiff", tmp_path / "ledger.jsonl", tmp_path / ".hidden"]
     gone = [tmp_path / ".roi_01.ome.tiff.partial-123", tmp_path / ".quality.csv.partial-9"]

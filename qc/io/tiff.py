@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import logging
+import os
 import struct
+import threading
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator
 from pathlib import Path
@@ -48,8 +50,7 @@ def open_tiff(path: Path, *, has_stains: bool, whole_bytes: int = -1):
     with _TiffWarnings() as warnings:
         try:
             tif = tifffile.TiffFile(path)
-            if tif.is_ome:
-                _refuse_absurd_ome(path, tif)
+            root = _refuse_absurd_ome(path, tif) if tif.is_ome else None
             series = tif.series[0] if tif.series else None
         except InputError:
             tif.close()
@@ -70,7 +71,8 @@ def open_tiff(path: Path, *, has_stains: bool, whole_bytes: int = -1):
         channels = markers = None
         pixel_size = None
         if tif.is_ome:
-            channels, markers, pixel_size = _ome_channels(path, tif.ome_metadata)
+            channels, markers, pixel_size = _ome_channels(path, tif.ome_metadata, root)
+            _keep_xml(path, tif.ome_metadata)
         elif not has_stains:
             raise InputError(path, "plain TIFF has no channel names; give its stain sheet (--stains stains.csv)")
         if int(np.prod(shape)) * np.dtype(series.dtype).itemsize <= whole_bytes:
@@ -105,8 +107,9 @@ def open_tiff(path: Path, *, has_stains: bool, whole_bytes: int = -1):
         raise InputError(path, f"cannot read TIFF ({short_reason(exc)})") from None
 
 
-def _refuse_absurd_ome(path: Path, tif) -> None:
+def _refuse_absurd_ome(path: Path, tif):
     """Refuse OME-XML that claims more pixels than the file holds, before anything is allocated.
+    Returns the parsed XML (None when it is malformed).
 
     Every plane of an OME-TIFF is one page of the main chain, of the size ``SizeX`` x
     ``SizeY`` (OME-TIFF specification); a claim beyond the pages would make the reader
@@ -115,7 +118,7 @@ def _refuse_absurd_ome(path: Path, tif) -> None:
     try:
         root = ET.fromstring(tif.ome_metadata or "")
     except ET.ParseError:
-        return  # reported with the channel names
+        return None  # reported with the channel names
     first = tif.pages.first
     planes_held = len(tif.pages)
     planes_claimed = 0
@@ -135,6 +138,7 @@ def _refuse_absurd_ome(path: Path, tif) -> None:
     if planes_claimed > planes_held:
         raise InputError(path, f"OME-XML claims {planes_claimed} image planes but the file holds "
                          f"{planes_held}; the file is truncated or its metadata damaged")
+    return root
 
 
 def _sizes(sizes: dict) -> str:
@@ -184,15 +188,17 @@ class _TiffWarnings(logging.Handler):
         self._logger.propagate = self._saved[0]
 
 
-def _ome_channels(path: Path, xml: str | None):
+def _ome_channels(path: Path, xml: str | None, root=None):
     """Channel names (acquisition tags), marker names (None unless plexwash's tag map is
-    there) and (y, x) physical pixel size in µm from OME-XML."""
+    there) and (y, x) physical pixel size in µm from OME-XML (``root``: that XML already
+    parsed)."""
     if not xml:
         raise InputError(path, "OME-TIFF without OME-XML")
-    try:
-        root = ET.fromstring(xml)
-    except ET.ParseError as exc:
-        raise InputError(path, f"malformed OME-XML ({exc})") from None
+    if root is None:
+        try:
+            root = ET.fromstring(xml)
+        except ET.ParseError as exc:
+            raise InputError(path, f"malformed OME-XML ({exc})") from None
     pixels = next((el for el in root.iter() if el.tag.endswith("}Pixels") or el.tag == "Pixels"), None)
     if pixels is None:
         raise InputError(path, "OME-XML has no Pixels element")
@@ -353,11 +359,41 @@ def source_ome_xml(path: str | Path) -> str | None:
     path = Path(path)
     if not path.is_file():
         return None
+    key = _file_key(path)
+    with _xml_lock:
+        kept = _xml_read.get(str(path))
+    if kept is not None and key is not None and kept[0] == key:
+        return kept[1]  # read by open_tiff from this same file: not opened again
     try:
         with tifffile.TiffFile(path) as tif:
             return tif.ome_metadata if tif.is_ome else None
     except Exception:  # read_roi has already judged the file; nothing to carry
         return None
+
+
+#: The OME-XML of the last few TIFFs :func:`open_tiff` read, with the file's identity
+#: (device, inode, size, modification time): the writer carries it into the washed
+#: stack (:func:`source_ome_xml`) without opening the input a second time.
+_xml_read: dict[str, tuple] = {}
+_xml_lock = threading.Lock()
+
+
+def _file_key(path: Path):
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns
+
+
+def _keep_xml(path: Path, xml) -> None:
+    key = _file_key(path)
+    if key is None or not isinstance(xml, str):
+        return
+    with _xml_lock:
+        if len(_xml_read) >= 16:
+            _xml_read.clear()
+        _xml_read[str(path)] = (key, xml)
 
 
 def tiff_levels(path: Path) -> list:
