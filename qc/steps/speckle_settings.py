@@ -1,4 +1,5 @@
-"""Settings of the speckle step (recipe section ``[speckle]``), declared once for the registry."""
+"""Settings of the speckle step (recipe section ``[speckle]``), declared once for the registry,
+and the chunk overlap they imply (:func:`speckle_depth`)."""
 
 from __future__ import annotations
 
@@ -108,3 +109,33 @@ class SpeckleSettings:
         True, "test against the background where the pixel lies (tissue or glass, and its local variation)"
         " rather than one rate for the whole channel"
     )
+
+
+def speckle_depth(settings: SpeckleSettings) -> int:
+    """Overlap that makes the chunked speckle filter equal the whole-image filter.
+
+    The largest of ``radius``, ``wide_radius`` and ``line_half`` (plus ``flank_distance`` with the flank test)
+    for the window and line counts, 1 for the neighbour
+    mean and the ``keep_touching`` rule, ``min_area - 1`` for the component-size rule (see the
+    module notes), and one pixel per round of the line-end rule (``line_extend``: a round reads
+    the kept marks of the pixels next to it).
+
+    Examples
+    --------
+    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=0, line_half=0, min_area=2))
+    4
+    >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=5, line_half=4, flank_distance=2, min_area=2,
+    ...                               line_extend=2))
+    10
+    """
+    extend = int(settings.line_extend) if int(settings.line_half) > 0 else 0
+    return (max(int(settings.radius), int(settings.wide_radius), _line_reach(settings)) + 1
+            + max(int(settings.min_area) - 1, 0) + extend)
+
+
+def _line_reach(settings: SpeckleSettings) -> int:
+    """How far from a pixel the line test reads: the line, and its flanks moved across it."""
+    half = int(settings.line_half)
+    if half <= 0:
+        return 0
+    return half + (int(settings.flank_distance) if settings.flank_alpha > 0 else 0)
