@@ -397,13 +397,15 @@ def shared_modulation(rates: np.ndarray, region_rates: np.ndarray, mask) -> np.n
 MEDIAN_SLICE = 1 << 15
 
 
-def background_model(stack, *, used=None, settings: BackgroundSettings = BackgroundSettings()
-                     ) -> BackgroundModel:
+def background_model(stack, *, used=None, settings: BackgroundSettings = BackgroundSettings(),
+                     rates_out=None) -> BackgroundModel:
     """Tissue mask and local background rates of every channel of one (C, Y, X) raw stack.
 
     The shared variation comes from a first estimate of each channel on its own. ``used``
     (bool per channel, default all) picks the channels that form the mask and the shared
-    variation; every channel gets a rate.
+    variation; every channel gets a rate. ``rates_out``: a float32 array of the stack's
+    shape to hold the rates (e.g. a memory map in a staging folder, so a big ROI's rates
+    are not held in memory); the same values as without.
 
     Examples
     --------
@@ -426,7 +428,7 @@ def background_model(stack, *, used=None, settings: BackgroundSettings = Backgro
     pattern = shared_modulation(first if every else first[used],
                                 region_rates if every else region_rates[used], tissue)
     del first
-    rates = np.empty(stack.shape, np.float32)
+    rates = np.empty(stack.shape, np.float32) if rates_out is None else rates_out
     for c in range(stack.shape[0]):
         rates[c], region_rates[c] = local_background(stack[c], mask=tissue, modulation=pattern,
                                                      settings=settings, return_regions=True)
@@ -588,16 +590,18 @@ def region_levels(plane, context: BackgroundContext,
 
 
 def context_of_block_sums(blocks, shape, *, block: int = CONTEXT_BLOCK,
-                          settings: BackgroundSettings = BackgroundSettings()) -> BackgroundContext:
+                          settings: BackgroundSettings = BackgroundSettings(),
+                          rates_out=None) -> BackgroundContext:
     """:func:`roi_background` from block sums already made, so a pass that reads the raw
     planes for another reason can reduce them on the way (the staged wash's first pass).
 
     ``blocks`` is (C, by, bx): :func:`block_sums` of each used channel's raw plane with
     ``block``, in the order of the used channels; ``shape`` the ROI's (Y, X). The same
-    sums give the same context as :func:`roi_background` on those planes.
+    sums give the same context as :func:`roi_background` on those planes. ``rates_out``
+    (float32, the shape of ``blocks``) holds the model's rates (:func:`background_model`).
     """
     ny, nx = (int(n) for n in shape)
-    model = background_model(np.asarray(blocks), settings=block_settings(settings, block))
+    model = background_model(np.asarray(blocks), settings=block_settings(settings, block), rates_out=rates_out)
     tissue = _full(model.tissue, block, (ny, nx))
     modulation = _full(model.modulation, block, (ny, nx)).astype(np.float32)
     steps = np.rint(np.log2(np.maximum(model.modulation, 1e-6)) * ZONE_STEPS_PER_DOUBLING)
