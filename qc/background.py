@@ -505,13 +505,24 @@ def block_sums(plane, block: int = CONTEXT_BLOCK) -> np.ndarray:
     Partial blocks at the far edges are scaled to a whole block's area (their mean times
     ``block**2``), so every block stands for the same area.
     """
-    plane = np.asarray(plane, np.float64)
+    plane = np.asarray(plane)
     ny, nx = plane.shape
     by, bx = -(-ny // block), -(-nx // block)
-    padded = np.zeros((by * block, bx * block), np.float64)
-    padded[:ny, :nx] = plane
-    sums = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
+    # a slice of block rows at a time (each block's 16 values summed as over the whole
+    # plane, so the same sums): a float64 copy of a few hundred rows, not of the plane
+    step = max(1, BLOCK_SUM_ROWS // block)
+    sums = np.empty((by, bx), np.float64)
+    for b0 in range(0, by, step):
+        b1 = min(b0 + step, by)
+        rows = plane[b0 * block:min(b1 * block, ny)]
+        padded = np.zeros(((b1 - b0) * block, bx * block), np.float64)
+        padded[:rows.shape[0], :nx] = rows
+        sums[b0:b1] = padded.reshape(b1 - b0, block, bx, block).sum(axis=(1, 3))
     return sums * (block * block) / _block_area(ny, nx, block)
+
+
+#: Pixel rows per slice of :func:`block_sums` (256 rows of 2400 pixels: 5 MiB of float64).
+BLOCK_SUM_ROWS = 256
 
 
 @functools.lru_cache(maxsize=8)
