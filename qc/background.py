@@ -602,7 +602,7 @@ def region_levels(plane, context: BackgroundContext,
 
 def context_of_block_sums(blocks, shape, *, block: int = CONTEXT_BLOCK,
                           settings: BackgroundSettings = BackgroundSettings(),
-                          rates_out=None) -> BackgroundContext:
+                          rates_out=None, empty=None) -> BackgroundContext:
     """:func:`roi_background` from block sums already made, so a pass that reads the raw
     planes for another reason can reduce them on the way (the staged wash's first pass).
 
@@ -610,13 +610,24 @@ def context_of_block_sums(blocks, shape, *, block: int = CONTEXT_BLOCK,
     ``block``, in the order of the used channels; ``shape`` the ROI's (Y, X). The same
     sums give the same context as :func:`roi_background` on those planes. ``rates_out``
     (float32, the shape of ``blocks``) holds the model's rates (:func:`background_model`).
+    ``empty(name, shape, dtype)``, when given, makes the arrays that hold the pixel-size
+    maps (``"tissue"``, ``"modulation"``, ``"zone"``; e.g. memory maps in a staging folder),
+    filled with the same values.
     """
     ny, nx = (int(n) for n in shape)
     model = background_model(np.asarray(blocks), settings=block_settings(settings, block), rates_out=rates_out)
-    tissue = _full(model.tissue, block, (ny, nx))
-    modulation = _full(model.modulation, block, (ny, nx)).astype(np.float32)
+
+    def kept(name, full):
+        if empty is None:
+            return full
+        out = empty(name, full.shape, full.dtype)
+        out[...] = full
+        return out
+
+    tissue = kept("tissue", _full(model.tissue, block, (ny, nx)))
+    modulation = kept("modulation", _full(model.modulation, block, (ny, nx)).astype(np.float32))
     steps = np.rint(np.log2(np.maximum(model.modulation, 1e-6)) * ZONE_STEPS_PER_DOUBLING)
     k = np.clip(steps + ZONES_PER_PART // 2, 0, ZONES_PER_PART - 1)
-    zone = _full((zone_parts(model.tissue) * ZONES_PER_PART + k).astype(np.uint8), block, (ny, nx))
+    zone = kept("zone", _full((zone_parts(model.tissue) * ZONES_PER_PART + k).astype(np.uint8), block, (ny, nx)))
     return BackgroundContext(tissue=tissue, modulation=modulation, zone=zone, model=model,
                              block=block)

@@ -44,6 +44,7 @@ small one (``DIRECT_BYTES``) runs those tasks without a dask graph.
 
 from __future__ import annotations
 
+import functools
 import os
 import shutil
 import tempfile
@@ -296,10 +297,11 @@ class _ContextLater:
     memory is what counts: the fit's arrays then never meet a pass's), it is fitted as
     soon as the first pass ends.
 
-    With a staging ``folder`` (on disk), the block sums (float64) and the model's rates
-    (float32) are memory maps of files there rather than arrays on the heap: the same
-    values, in pages that the system may write out (for 36 x 2400 x 2400, 99 MiB of sums
-    through the first pass and 49 MiB of rates held through every later one).
+    With a staging ``folder`` (on disk), the block sums (float64), the model's rates
+    (float32) and the context's pixel-size maps are memory maps of files there rather
+    than arrays on the heap: the same values, in pages that the system may write out (for
+    36 x 2400 x 2400, 99 MiB of sums through the first pass, 49 MiB of rates and 33 MiB of
+    maps held through every later one).
     """
 
     def __init__(self, used, shape, aside: bool, folder: Path | None = None):
@@ -310,6 +312,7 @@ class _ContextLater:
         blocks = (len(used), -(-ny // CONTEXT_BLOCK), -(-nx // CONTEXT_BLOCK))
         self._blocks = _scratch(folder, "context-blocks", blocks, np.float64)
         self._rates = None if folder is None else _scratch(folder, "context-rates", blocks, np.float32)
+        self._folder = folder
         self._future = None
 
     @classmethod
@@ -338,7 +341,9 @@ class _ContextLater:
             pool.shutdown(wait=False)
         else:
             self._future = Future()
-            self._future.set_result(context_of_block_sums(self._blocks, self._shape, rates_out=self._rates))
+            empty = None if self._folder is None else functools.partial(_scratch, self._folder)
+            self._future.set_result(context_of_block_sums(self._blocks, self._shape, rates_out=self._rates,
+                                                          empty=empty))
         self._blocks = self._rates = None
 
     def result(self):

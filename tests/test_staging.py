@@ -250,8 +250,11 @@ def test_context_fitted_into_staging_files_is_the_one_fitted_on_the_heap(tmp_pat
         later.start()
         contexts.append(later.result())
     on_heap, mapped = contexts
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["context-blocks.bin", "context-rates.bin"]
-    assert isinstance(mapped.model.rates, np.memmap) and not isinstance(on_heap.model.rates, np.memmap)
+    assert sorted(p.name for p in tmp_path.iterdir()) == [
+        "context-blocks.bin", "context-rates.bin", "modulation.bin", "tissue.bin", "zone.bin"]
+    for got, heap in [(mapped.model.rates, on_heap.model.rates), (mapped.zone, on_heap.zone),
+                      (mapped.modulation, on_heap.modulation), (mapped.tissue, on_heap.tissue)]:
+        assert isinstance(got, np.memmap) and not isinstance(heap, np.memmap)
     for field in ("tissue", "modulation", "zone"):
         np.testing.assert_array_equal(getattr(mapped, field), getattr(on_heap, field))
     for field in ("tissue", "rates", "region_rates", "modulation"):
