@@ -397,13 +397,15 @@ def shared_modulation(rates: np.ndarray, region_rates: np.ndarray, mask) -> np.n
 MEDIAN_SLICE = 1 << 15
 
 
-def background_model(stack, *, used=None, settings: BackgroundSettings = BackgroundSettings()
-                     ) -> BackgroundModel:
+def background_model(stack, *, used=None, settings: BackgroundSettings = BackgroundSettings(),
+                     rates_out=None) -> BackgroundModel:
     """Tissue mask and local background rates of every channel of one (C, Y, X) raw stack.
 
     The shared variation comes from a first estimate of each channel on its own. ``used``
     (bool per channel, default all) picks the channels that form the mask and the shared
-    variation; every channel gets a rate.
+    variation; every channel gets a rate. ``rates_out``: a float32 array of the stack's
+    shape to hold the rates (e.g. a memory map in a staging folder, so a big ROI's rates
+    are not held in memory); the same values as without.
 
     Examples
     --------
@@ -426,7 +428,7 @@ def background_model(stack, *, used=None, settings: BackgroundSettings = Backgro
     pattern = shared_modulation(first if every else first[used],
                                 region_rates if every else region_rates[used], tissue)
     del first
-    rates = np.empty(stack.shape, np.float32)
+    rates = np.empty(stack.shape, np.float32) if rates_out is None else rates_out
     for c in range(stack.shape[0]):
         rates[c], region_rates[c] = local_background(stack[c], mask=tissue, modulation=pattern,
                                                      settings=settings, return_regions=True)
@@ -503,13 +505,24 @@ def block_sums(plane, block: int = CONTEXT_BLOCK) -> np.ndarray:
     Partial blocks at the far edges are scaled to a whole block's area (their mean times
     ``block**2``), so every block stands for the same area.
     """
-    plane = np.asarray(plane, np.float64)
+    plane = np.asarray(plane)
     ny, nx = plane.shape
     by, bx = -(-ny // block), -(-nx // block)
-    padded = np.zeros((by * block, bx * block), np.float64)
-    padded[:ny, :nx] = plane
-    sums = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
+    # a slice of block rows at a time (each block's 16 values summed as over the whole
+    # plane, so the same sums): a float64 copy of a few hundred rows, not of the plane
+    step = max(1, BLOCK_SUM_ROWS // block)
+    sums = np.empty((by, bx), np.float64)
+    for b0 in range(0, by, step):
+        b1 = min(b0 + step, by)
+        rows = plane[b0 * block:min(b1 * block, ny)]
+        padded = np.zeros(((b1 - b0) * block, bx * block), np.float64)
+        padded[:rows.shape[0], :nx] = rows
+        sums[b0:b1] = padded.reshape(b1 - b0, block, bx, block).sum(axis=(1, 3))
     return sums * (block * block) / _block_area(ny, nx, block)
+
+
+#: Pixel rows per slice of :func:`block_sums` (256 rows of 2400 pixels: 5 MiB of float64).
+BLOCK_SUM_ROWS = 256
 
 
 @functools.lru_cache(maxsize=8)
@@ -588,20 +601,33 @@ def region_levels(plane, context: BackgroundContext,
 
 
 def context_of_block_sums(blocks, shape, *, block: int = CONTEXT_BLOCK,
-                          settings: BackgroundSettings = BackgroundSettings()) -> BackgroundContext:
+                          settings: BackgroundSettings = BackgroundSettings(),
+                          rates_out=None, empty=None) -> BackgroundContext:
     """:func:`roi_background` from block sums already made, so a pass that reads the raw
     planes for another reason can reduce them on the way (the staged wash's first pass).
 
     ``blocks`` is (C, by, bx): :func:`block_sums` of each used channel's raw plane with
     ``block``, in the order of the used channels; ``shape`` the ROI's (Y, X). The same
-    sums give the same context as :func:`roi_background` on those planes.
+    sums give the same context as :func:`roi_background` on those planes. ``rates_out``
+    (float32, the shape of ``blocks``) holds the model's rates (:func:`background_model`).
+    ``empty(name, shape, dtype)``, when given, makes the arrays that hold the pixel-size
+    maps (``"tissue"``, ``"modulation"``, ``"zone"``; e.g. memory maps in a staging folder),
+    filled with the same values.
     """
     ny, nx = (int(n) for n in shape)
-    model = background_model(np.asarray(blocks), settings=block_settings(settings, block))
-    tissue = _full(model.tissue, block, (ny, nx))
-    modulation = _full(model.modulation, block, (ny, nx)).astype(np.float32)
+    model = background_model(np.asarray(blocks), settings=block_settings(settings, block), rates_out=rates_out)
+
+    def kept(name, full):
+        if empty is None:
+            return full
+        out = empty(name, full.shape, full.dtype)
+        out[...] = full
+        return out
+
+    tissue = kept("tissue", _full(model.tissue, block, (ny, nx)))
+    modulation = kept("modulation", _full(model.modulation, block, (ny, nx)).astype(np.float32))
     steps = np.rint(np.log2(np.maximum(model.modulation, 1e-6)) * ZONE_STEPS_PER_DOUBLING)
     k = np.clip(steps + ZONES_PER_PART // 2, 0, ZONES_PER_PART - 1)
-    zone = _full((zone_parts(model.tissue) * ZONES_PER_PART + k).astype(np.uint8), block, (ny, nx))
+    zone = kept("zone", _full((zone_parts(model.tissue) * ZONES_PER_PART + k).astype(np.uint8), block, (ny, nx)))
     return BackgroundContext(tissue=tissue, modulation=modulation, zone=zone, model=model,
                              block=block)

@@ -44,6 +44,7 @@ small one (``DIRECT_BYTES``) runs those tasks without a dask graph.
 
 from __future__ import annotations
 
+import functools
 import os
 import shutil
 import tempfile
@@ -201,7 +202,7 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
     # to its block sums on the way and the model is fitted from them (for a wash in memory
     # on a thread of its own, while the next passes run); else it is made here, in a pass
     # of its own.
-    later = _ContextLater.wanted(used, running, (n_y, n_x), aside=staging.folder is None)
+    later = _ContextLater.wanted(used, running, (n_y, n_x), aside=staging.folder is None, folder=staging.folder)
     context = None
     if used and context_wanted(running) and later is None:
         context = roi_background(lambda c: read_plane(current, c), used, (n_y, n_x))
@@ -228,7 +229,11 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
                     collect.add(c, plane)
                 extra = {}
                 if step.uses_background:  # what compensation removed: its input (still in A) minus its output
-                    spilled = None if compensated is None else (read_plane(compensated, c) - plane)[None]
+                    spilled = None
+                    if compensated is not None:  # in place: one plane fewer in flight
+                        spilled = read_plane(compensated, c)
+                        np.subtract(spilled, plane, out=spilled)
+                        spilled = spilled[None]
                     extra = {"background": context, "spilled": spilled}
                 cleaned, _, step_stats = step.run(plane[None], [settings_of[c]], None, parallel=False, **extra)
                 target(dest).write_plane(c, cleaned[0])
@@ -291,25 +296,34 @@ class _ContextLater:
     own and its result is dropped with the object. Without (a wash staged on disk, where
     memory is what counts: the fit's arrays then never meet a pass's), it is fitted as
     soon as the first pass ends.
+
+    With a staging ``folder`` (on disk), the block sums (float64), the model's rates
+    (float32) and the context's pixel-size maps are memory maps of files there rather
+    than arrays on the heap: the same values, in pages that the system may write out (for
+    36 x 2400 x 2400, 99 MiB of sums through the first pass, 49 MiB of rates and 33 MiB of
+    maps held through every later one).
     """
 
-    def __init__(self, used, shape, aside: bool):
+    def __init__(self, used, shape, aside: bool, folder: Path | None = None):
         ny, nx = shape
         self._aside = aside
         self._position = {c: k for k, c in enumerate(used)}
         self._shape = (ny, nx)
-        self._blocks = np.empty((len(used), -(-ny // CONTEXT_BLOCK), -(-nx // CONTEXT_BLOCK)))
+        blocks = (len(used), -(-ny // CONTEXT_BLOCK), -(-nx // CONTEXT_BLOCK))
+        self._blocks = _scratch(folder, "context-blocks", blocks, np.float64)
+        self._rates = None if folder is None else _scratch(folder, "context-rates", blocks, np.float32)
+        self._folder = folder
         self._future = None
 
     @classmethod
-    def wanted(cls, used, running, shape, *, aside: bool) -> _ContextLater | None:
+    def wanted(cls, used, running, shape, *, aside: bool, folder: Path | None = None) -> _ContextLater | None:
         """One when a step wants the context and the first step can gather its sums, else None."""
         if not used or not context_wanted(running):
             return None
         first = running[0][0]
         if first.scope != "plane" or first.uses_background:
             return None
-        return cls(used, shape, aside)
+        return cls(used, shape, aside, folder)
 
     def add(self, c: int, plane: np.ndarray) -> None:
         """Block sums of used channel ``c``'s raw plane (each channel once, from any thread)."""
@@ -327,12 +341,21 @@ class _ContextLater:
             pool.shutdown(wait=False)
         else:
             self._future = Future()
-            self._future.set_result(context_of_block_sums(self._blocks, self._shape))
-        self._blocks = None
+            empty = None if self._folder is None else functools.partial(_scratch, self._folder)
+            self._future.set_result(context_of_block_sums(self._blocks, self._shape, rates_out=self._rates,
+                                                          empty=empty))
+        self._blocks = self._rates = None
 
     def result(self):
         """The context (waits for the fit)."""
         return self._future.result()
+
+
+def _scratch(folder: Path | None, name: str, shape, dtype) -> np.ndarray:
+    """An empty array: a memory map of a new file ``name`` in ``folder``, or on the heap when None."""
+    if folder is None:
+        return np.empty(shape, dtype)
+    return np.memmap(folder / f"{name}.bin", dtype=dtype, mode="w+", shape=tuple(shape))
 
 
 def _wash_threads() -> int:

@@ -391,3 +391,22 @@ def test_compiled_box_mean_equals_scipy_uniform_filter(shape):
                   * rng.uniform(0.1, 3.0, shape))
         np.testing.assert_array_equal(_box_mean_constant(values, window),
                                       ndimage.uniform_filter(values, window, mode="constant"))
+
+
+def test_block_sums_a_slice_of_rows_at_a_time_equal_the_whole_plane_sums():
+    """``block_sums`` sums a slice of block rows at a time (memory); each block's sum is the
+    one of the whole padded plane reduced at once (numpy's own sum over the block axes)."""
+    from plexwash.qc.background import BLOCK_SUM_ROWS, block_sums
+
+    rng = np.random.default_rng(9)
+    for ny, nx, block in [(2 * BLOCK_SUM_ROWS + 7, 61, 4), (BLOCK_SUM_ROWS + 4, 40, 4),
+                          (BLOCK_SUM_ROWS * 3 + 1, 33, 3), (17, 19, 4)]:
+        plane = (rng.gamma(0.7, 30.0, (ny, nx)) * rng.random((ny, nx))).astype(np.float32)
+        by, bx = -(-ny // block), -(-nx // block)
+        padded = np.zeros((by * block, bx * block), np.float64)
+        padded[:ny, :nx] = plane
+        covered = np.zeros(padded.shape)
+        covered[:ny, :nx] = 1.0
+        whole = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
+        area = covered.reshape(by, block, bx, block).sum(axis=(1, 3))
+        np.testing.assert_array_equal(block_sums(plane, block), whole * (block * block) / area)

@@ -14,6 +14,7 @@ from plexwash.qc.io import Roi, read_roi
 from plexwash.qc.recipe import default_recipe
 from plexwash.qc.staging import StagedStack, Staging, band_rows
 from plexwash.qc.steps.registry import STEP_NAMES as STEPS
+from plexwash.qc.steps.registry import step as registry_step
 from plexwash.qc.wash import wash, wash_to_file
 
 
@@ -228,3 +229,33 @@ def test_a_small_roi_is_washed_directly_with_the_pixels_and_stats_of_the_passes(
     np.testing.assert_array_equal(read_roi(direct.output, lazy=False).data,
                                   wash(roi, recipe, spillover=matrix).data)
     assert direct.stats == passes.stats and direct.notes == passes.notes
+
+
+def test_context_fitted_into_staging_files_is_the_one_fitted_on_the_heap(tmp_path):
+    """On disk, the first pass's block sums and the model's rates are memory maps of files in
+    the staging folder (so a big ROI's do not sit on the heap): the context is the same, field
+    for field, as the one fitted from arrays in memory."""
+    rng = np.random.default_rng(22)
+    rate = np.full((90, 70), 0.5)
+    rate[:, 30:] = 4.0  # tissue on the right
+    stack = rng.poisson(np.broadcast_to(rate, (5, 90, 70))).astype(np.float32)
+    speckle = default_recipe().for_channels("speckle", ["a"])
+    assert speckle[0].enabled and speckle[0].local_rates  # so the wash wants the context
+    used, running = [0, 2, 3, 4], [(registry_step("hot_pixels"), None), (registry_step("speckle"), speckle)]
+    contexts = []
+    for folder in (None, tmp_path):
+        later = staging._ContextLater.wanted(used, running, (90, 70), aside=False, folder=folder)
+        for c in used:
+            later.add(c, stack[c])
+        later.start()
+        contexts.append(later.result())
+    on_heap, mapped = contexts
+    assert sorted(p.name for p in tmp_path.iterdir()) == [
+        "context-blocks.bin", "context-rates.bin", "modulation.bin", "tissue.bin", "zone.bin"]
+    for got, heap in [(mapped.model.rates, on_heap.model.rates), (mapped.zone, on_heap.zone),
+                      (mapped.modulation, on_heap.modulation), (mapped.tissue, on_heap.tissue)]:
+        assert isinstance(got, np.memmap) and not isinstance(heap, np.memmap)
+    for field in ("tissue", "modulation", "zone"):
+        np.testing.assert_array_equal(getattr(mapped, field), getattr(on_heap, field))
+    for field in ("tissue", "rates", "region_rates", "modulation"):
+        np.testing.assert_array_equal(getattr(mapped.model, field), getattr(on_heap.model, field))
