@@ -236,7 +236,7 @@ def order_keys(values, is_float, ranks, out):
 
     ``values`` (1-D) are float32 bits (``is_float``; seen as uint32) or unsigned integers of
     up to 32 bits. Two passes of 16-bit histograms: the top halves of the keys, then the low
-    halves of the keys whose top half holds a wanted rank. Returns False, leaving ``out``,
+    halves of the keys whose top half holds a wanted rank (found by one table look-up). Returns False, leaving ``out``,
     where a float is NaN or a negative zero (which order statistic such a value is cannot be
     told apart from +0.0 by its key alone: the caller sorts those itself).
     """
@@ -249,7 +249,7 @@ def order_keys(values, is_float, ranks, out):
             return False
         counts[_order_key(values[i], is_float) >> np.uint32(16)] += 1
     n_ranks = ranks.size
-    top = np.empty(n_ranks, np.int64)
+    top = np.zeros(n_ranks, np.int64)
     before = np.empty(n_ranks, np.int64)
     for j in range(n_ranks):
         seen = 0
@@ -259,21 +259,19 @@ def order_keys(values, is_float, ranks, out):
                 before[j] = seen
                 break
             seen += counts[b]
+    # each wanted top half's row of low-half counts: that of the first rank holding it
+    # (-1: no rank's), looked up once per value
+    row_of = np.full(65536, -1, np.int64)
+    for j in range(n_ranks - 1, -1, -1):
+        row_of[top[j]] = j
     low = np.zeros((n_ranks, 65536), np.int64)
     for i in range(size):
         key = _order_key(values[i], is_float)
-        high = np.int64(key >> np.uint32(16))
-        for j in range(n_ranks):
-            if top[j] == high:
-                low[j, np.int64(key & np.uint32(0xFFFF))] += 1
-                break
+        row = row_of[np.int64(key >> np.uint32(16))]
+        if row >= 0:
+            low[row, np.int64(key & np.uint32(0xFFFF))] += 1
     for j in range(n_ranks):
-        # the rank's histogram is that of the first rank sharing its top half
-        first = j
-        for m in range(j):
-            if top[m] == top[j]:
-                first = m
-                break
+        first = row_of[top[j]]
         seen = before[j]
         for b in range(65536):
             if seen + low[first, b] > ranks[j]:
