@@ -154,3 +154,20 @@ def test_bin_sums_equal_numpys():
             for size in (1, 2, 3, 4, 7, 16):
                 # reference: numpy's band sums and np.add.reduceat
                 assert _bin_sums(values, size).tobytes() == _bin_sums_numpy(values, size).tobytes()
+
+
+def test_poisson_tail_below_near_the_mean_equals_gammainc():
+    """Counts at, just below and just above their mean (where the verdict kernel now stops
+    before the root) answer as ``scipy.special.gammainc(n, mu) < alpha`` does."""
+    from plexwash.qc.quality.excess import poisson_tail_below
+    from scipy import special
+
+    rng = np.random.default_rng(21)
+    mu = np.concatenate([rng.gamma(1.0, 50.0, 4000), [0.0, 1e-3, 0.5, 95.0, 1e4]])
+    for n in (mu, np.nextafter(mu, np.inf), np.nextafter(mu, -np.inf), mu + np.sqrt(mu),
+              np.floor(mu + 2.0 * np.sqrt(mu)), rng.poisson(mu).astype(np.float64)):
+        n = np.maximum(n, 0.0)
+        for alpha in (0.05, 1e-3):
+            with np.errstate(divide="ignore"):
+                assert np.array_equal(poisson_tail_below(n, mu, alpha),
+                                      special.gammainc(n, mu) < alpha)  # scipy.special

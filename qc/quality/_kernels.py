@@ -192,6 +192,8 @@ def poisson_tail_verdicts(n, mu, log_alpha, out, hard):
 @nb.njit(cache=True, nogil=True, inline="always")
 def _tail_verdict(ni, mi, log_alpha):
     """:func:`poisson_tail_verdicts` of one bin: 1 below alpha, 0 not, 2 left to gammainc."""
+    if not ni > mi:  # mi + sqrt(mi) >= mi in floating point too: no root needed
+        return 0
     if not ni > mi + np.sqrt(mi):
         return 0
     if ni >= 8.0 * mi and ni + mi > -log_alpha + 1e-6:
@@ -316,8 +318,11 @@ def gaussian_reflect(image, weights, out):
                 row[x] += (np.float64(above[x]) + np.float64(below[x])) * w
         for x in range(width):
             out[y, x] = row[x]  # stored in the output type between the axes, as scipy does
-        for i in range(width + 2 * r):
+        for i in range(r):  # the reflected ends; the row itself copied straight
             line[i] = out[y, _reflected(i - r, width)]
+            line[width + r + i] = out[y, _reflected(width + i, width)]
+        for x in range(width):
+            line[x + r] = out[y, x]
         for x in range(width):
             row[x] = line[x + r] * centre
         for j in range(-r, 0):
