@@ -487,3 +487,17 @@ def bin_sums(values, size, out):
             start = j * size
             n = min(size, width - start)
             out[i, j] = band[start] + _pairwise_sum(band, start + 1, n - 1)
+
+
+@nb.njit(cache=True, nogil=True)
+def values_at_most(plane, limit, out):
+    """``plane[plane <= limit]`` (row-major order) written to the start of ``out`` (its size
+    at least ``plane.size``); returns how many. NaN is never at most anything."""
+    flat = plane.ravel()
+    count = 0
+    for i in range(flat.size):
+        v = flat[i]
+        if v <= limit:
+            out[count] = v
+            count += 1
+    return count
