@@ -495,9 +495,8 @@ def values_at_most(plane, limit, out):
     at least ``plane.size``); returns how many. NaN is never at most anything."""
     flat = plane.ravel()
     count = 0
-    for i in range(flat.size):
+    for i in range(flat.size):  # without a branch: each value written, kept if at most
         v = flat[i]
-        if v <= limit:
-            out[count] = v
-            count += 1
+        out[count] = v
+        count += 1 if v <= limit else 0
     return count
