@@ -154,3 +154,49 @@ def test_bin_sums_equal_numpys():
             for size in (1, 2, 3, 4, 7, 16):
                 # reference: numpy's band sums and np.add.reduceat
                 assert _bin_sums(values, size).tobytes() == _bin_sums_numpy(values, size).tobytes()
+
+
+def test_poisson_tail_below_near_the_mean_equals_gammainc():
+    """Counts at, just below and just above their mean (where the verdict kernel now stops
+    before the root) answer as ``scipy.special.gammainc(n, mu) < alpha`` does."""
+    from plexwash.qc.quality.excess import poisson_tail_below
+    from scipy import special
+
+    rng = np.random.default_rng(21)
+    mu = np.concatenate([rng.gamma(1.0, 50.0, 4000), [0.0, 1e-3, 0.5, 95.0, 1e4]])
+    for n in (mu, np.nextafter(mu, np.inf), np.nextafter(mu, -np.inf), mu + np.sqrt(mu),
+              np.floor(mu + 2.0 * np.sqrt(mu)), rng.poisson(mu).astype(np.float64)):
+        n = np.maximum(n, 0.0)
+        for alpha in (0.05, 1e-3):
+            with np.errstate(divide="ignore"):
+                assert np.array_equal(poisson_tail_below(n, mu, alpha),
+                                      special.gammainc(n, mu) < alpha)  # scipy.special
+
+
+def test_loud_pixels_take_the_lower_half_as_the_mask_did():
+    """The compiled selection of the values at most the median gives the values, and so the
+    levels, of ``plane[plane <= median]`` (the previous form, kept here as the reference)."""
+    from plexwash.qc.quality._kernels import values_at_most
+    from plexwash.qc.quality.stripes import BRIGHT_TAIL, LOUD_TAIL, loud_pixels, poisson_isf
+
+    rng = np.random.default_rng(16)
+    gamma = rng.gamma(0.5, 8.0, (60, 70)).astype(np.float32)
+    gamma[0, :4] = [np.nan, np.inf, -np.inf, -0.0]
+    planes = [gamma, gamma[::2, 3:], rng.poisson(3.0, (40, 33)).astype(np.uint16),
+              rng.poisson(0.4, (40, 33)).astype(np.uint8), np.zeros((5, 6), np.float32),
+              rng.poisson(2.0, (30, 30)).astype(np.float64)]
+    for plane in planes:
+        for limit in (0.0, 1.0, float(np.nanmedian(plane)), -np.inf, np.nan):
+            reference = plane[plane <= limit]
+            out = np.empty(plane.size, plane.dtype)
+            got = out[:values_at_most(np.ascontiguousarray(plane), limit, out)]
+            assert got.tobytes() == reference.tobytes()
+        median = np.percentile(plane, 50.0)  # numpy.percentile: the previous form's steps
+        low = plane[plane <= median]
+        rate = float(low.mean()) if low.size else 0.0
+        loud, bright = 2.0, 4.0
+        if rate > 0:
+            above = poisson_isf(np.array([LOUD_TAIL, BRIGHT_TAIL]), rate)
+            loud, bright = max(loud, float(above[0]) + 1.0), max(bright, float(above[1]) + 1.0)
+        expected = np.where(plane >= bright, 2, np.where(plane >= loud, 1, 0)).astype(np.int8)
+        assert loud_pixels(plane).tobytes() == expected.tobytes()

@@ -2,8 +2,10 @@
 
 from __future__ import annotations
 
+import numba as nb
 import numpy as np
 import pytest
+from plexwash.qc.quality._kernels import _order_key, order_keys
 from plexwash.qc.quality.order import SELECT_SIZE, percentile
 
 
@@ -122,3 +124,69 @@ def test_the_ranks_kept_per_size_serve_other_values_of_that_size():
                 assert _same(percentile(values, q), np.percentile(values, q))
                 assert _same(percentile(values, q, memo={}, also=(99.0,)),
                              np.percentile(values, q))
+
+
+@nb.njit(cache=True)
+def _order_keys_before(values, is_float, ranks, out):
+    """order_keys as it was before its second pass looked rows up in a table (the reference)."""
+    size = values.size
+    counts = np.zeros(65536, np.int64)
+    for i in range(size):
+        bits = np.uint32(values[i])
+        if is_float and ((bits & np.uint32(0x7F800000)) == np.uint32(0x7F800000)
+                         and (bits & np.uint32(0x007FFFFF)) != 0 or bits == np.uint32(0x80000000)):
+            return False
+        counts[_order_key(values[i], is_float) >> np.uint32(16)] += 1
+    n_ranks = ranks.size
+    top = np.zeros(n_ranks, np.int64)
+    before = np.empty(n_ranks, np.int64)
+    for j in range(n_ranks):
+        seen = 0
+        for b in range(65536):
+            if seen + counts[b] > ranks[j]:
+                top[j] = b
+                before[j] = seen
+                break
+            seen += counts[b]
+    low = np.zeros((n_ranks, 65536), np.int64)
+    for i in range(size):
+        key = _order_key(values[i], is_float)
+        high = np.int64(key >> np.uint32(16))
+        for j in range(n_ranks):
+            if top[j] == high:
+                low[j, np.int64(key & np.uint32(0xFFFF))] += 1
+                break
+    for j in range(n_ranks):
+        first = j
+        for m in range(j):
+            if top[m] == top[j]:
+                first = m
+                break
+        seen = before[j]
+        for b in range(65536):
+            if seen + low[first, b] > ranks[j]:
+                out[j] = (np.uint32(top[j]) << np.uint32(16)) | np.uint32(b)
+                break
+            seen += low[first, b]
+    return True
+
+
+def test_order_keys_equal_their_previous_form():
+    """The table look-up of the second pass finds the same keys as the loop over the ranks
+    it replaced (kept above as the reference), ranks sharing a top half included."""
+    rng = np.random.default_rng(14)
+    for values in _channels(rng):
+        flat = np.ascontiguousarray(values).reshape(-1)
+        if flat.dtype not in (np.float32, np.uint8, np.uint16, np.uint32):
+            continue
+        is_float = flat.dtype == np.float32
+        view = flat.view(np.uint32) if is_float else flat
+        n = flat.size
+        for ranks in (np.array([0, n - 1]), np.unique(rng.integers(0, n, 9)),
+                      np.array([-1, 0, n // 2, n // 2 + 1, (99 * (n - 1)) // 100, n - 1])):
+            ranks = np.unique(ranks).astype(np.int64)
+            got, want = np.zeros(ranks.size, np.uint32), np.zeros(ranks.size, np.uint32)
+            ok = order_keys(view, is_float, ranks, got)
+            assert ok == _order_keys_before(view, is_float, ranks, want)
+            if ok:
+                assert got.tobytes() == want.tobytes()

@@ -192,6 +192,8 @@ def poisson_tail_verdicts(n, mu, log_alpha, out, hard):
 @nb.njit(cache=True, nogil=True, inline="always")
 def _tail_verdict(ni, mi, log_alpha):
     """:func:`poisson_tail_verdicts` of one bin: 1 below alpha, 0 not, 2 left to gammainc."""
+    if not ni > mi:  # mi + sqrt(mi) >= mi in floating point too: no root needed
+        return 0
     if not ni > mi + np.sqrt(mi):
         return 0
     if ni >= 8.0 * mi and ni + mi > -log_alpha + 1e-6:
@@ -236,7 +238,7 @@ def order_keys(values, is_float, ranks, out):
 
     ``values`` (1-D) are float32 bits (``is_float``; seen as uint32) or unsigned integers of
     up to 32 bits. Two passes of 16-bit histograms: the top halves of the keys, then the low
-    halves of the keys whose top half holds a wanted rank. Returns False, leaving ``out``,
+    halves of the keys whose top half holds a wanted rank (found by one table look-up). Returns False, leaving ``out``,
     where a float is NaN or a negative zero (which order statistic such a value is cannot be
     told apart from +0.0 by its key alone: the caller sorts those itself).
     """
@@ -249,7 +251,7 @@ def order_keys(values, is_float, ranks, out):
             return False
         counts[_order_key(values[i], is_float) >> np.uint32(16)] += 1
     n_ranks = ranks.size
-    top = np.empty(n_ranks, np.int64)
+    top = np.zeros(n_ranks, np.int64)
     before = np.empty(n_ranks, np.int64)
     for j in range(n_ranks):
         seen = 0
@@ -259,21 +261,19 @@ def order_keys(values, is_float, ranks, out):
                 before[j] = seen
                 break
             seen += counts[b]
+    # each wanted top half's row of low-half counts: that of the first rank holding it
+    # (-1: no rank's), looked up once per value
+    row_of = np.full(65536, -1, np.int64)
+    for j in range(n_ranks - 1, -1, -1):
+        row_of[top[j]] = j
     low = np.zeros((n_ranks, 65536), np.int64)
     for i in range(size):
         key = _order_key(values[i], is_float)
-        high = np.int64(key >> np.uint32(16))
-        for j in range(n_ranks):
-            if top[j] == high:
-                low[j, np.int64(key & np.uint32(0xFFFF))] += 1
-                break
+        row = row_of[np.int64(key >> np.uint32(16))]
+        if row >= 0:
+            low[row, np.int64(key & np.uint32(0xFFFF))] += 1
     for j in range(n_ranks):
-        # the rank's histogram is that of the first rank sharing its top half
-        first = j
-        for m in range(j):
-            if top[m] == top[j]:
-                first = m
-                break
+        first = row_of[top[j]]
         seen = before[j]
         for b in range(65536):
             if seen + low[first, b] > ranks[j]:
@@ -318,8 +318,11 @@ def gaussian_reflect(image, weights, out):
                 row[x] += (np.float64(above[x]) + np.float64(below[x])) * w
         for x in range(width):
             out[y, x] = row[x]  # stored in the output type between the axes, as scipy does
-        for i in range(width + 2 * r):
+        for i in range(r):  # the reflected ends; the row itself copied straight
             line[i] = out[y, _reflected(i - r, width)]
+            line[width + r + i] = out[y, _reflected(width + i, width)]
+        for x in range(width):
+            line[x + r] = out[y, x]
         for x in range(width):
             row[x] = line[x + r] * centre
         for j in range(-r, 0):
@@ -484,3 +487,16 @@ def bin_sums(values, size, out):
             start = j * size
             n = min(size, width - start)
             out[i, j] = band[start] + _pairwise_sum(band, start + 1, n - 1)
+
+
+@nb.njit(cache=True, nogil=True)
+def values_at_most(plane, limit, out):
+    """``plane[plane <= limit]`` (row-major order) written to the start of ``out`` (its size
+    at least ``plane.size``); returns how many. NaN is never at most anything."""
+    flat = plane.ravel()
+    count = 0
+    for i in range(flat.size):  # without a branch: each value written, kept if at most
+        v = flat[i]
+        out[count] = v
+        count += 1 if v <= limit else 0
+    return count
