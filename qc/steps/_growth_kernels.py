@@ -10,7 +10,7 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
-from ._kernels import _dim_sum, _flank_sum, _whole
+from ._kernels import _denser_than_flanks, _dim_sum, _whole
 
 
 @nb.njit(cache=True, nogil=True)
@@ -110,19 +110,7 @@ def _extends_line(image, kept, y, x, threshold, upper, offsets, table, flank, fl
             total = ahead + behind
             if total < table[0, n_ahead + n_behind]:
                 continue
-            if flank_min.shape[0] == 0:
-                return True
-            steep = abs(offsets[o, half - 1, 0]) == half
-            dense = True
-            for side in (-1, 1):
-                sy = 0 if steep else side * flank
-                sx = side * flank if steep else 0
-                beside, pixels = _flank_sum(image, y, x, offsets, o, sy, sx)
-                n = np.int64(total + beside)
-                if n >= flank_min.shape[2] or total < flank_min[n_ahead + n_behind, pixels, n]:
-                    dense = False
-                    break
-            if dense:
+            if _denser_than_flanks(image, y, x, offsets, o, half, flank, total, n_ahead + n_behind, flank_min):
                 return True
     return False
 

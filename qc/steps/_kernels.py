@@ -505,18 +505,23 @@ def _on_line_sum(image, y, x, threshold, upper, offsets, table, flank, flank_min
         if not (ahead > 0.0 and behind > 0.0 and ahead >= table[1, n_ahead] and behind >= table[1, n_behind]
                 and total >= table[0, n_ahead + n_behind]):
             continue
-        if flank_min.shape[0] == 0:
-            return True
-        steep = abs(offsets[o, half - 1, 0]) == half  # one pixel per row: the flanks lie across x
-        dense = True
-        for side in (-1, 1):
-            sy = 0 if steep else side * flank
-            sx = side * flank if steep else 0
-            other, pixels = _flank_sum(image, y, x, offsets, o, sy, sx)
-            n = np.int64(total + other)
-            if n >= flank_min.shape[2] or total < flank_min[n_ahead + n_behind, pixels, n]:
-                dense = False
-                break
-        if dense:
+        if _denser_than_flanks(image, y, x, offsets, o, half, flank, total, n_ahead + n_behind, flank_min):
             return True
     return False
+
+
+@nb.njit(cache=True, nogil=True)
+def _denser_than_flanks(image, y, x, offsets, o, half, flank, total, dim, flank_min):
+    """The flank test of line ``o`` through ``(y, x)`` (``total`` counts on ``dim`` dim pixels):
+    denser than the parallel line ``flank`` px to either side (always, with no flank table)."""
+    if flank_min.shape[0] == 0:
+        return True
+    steep = abs(offsets[o, half - 1, 0]) == half  # one pixel per row: the flanks lie across x
+    for side in (-1, 1):
+        sy = 0 if steep else side * flank
+        sx = side * flank if steep else 0
+        other, pixels = _flank_sum(image, y, x, offsets, o, sy, sx)
+        n = np.int64(total + other)
+        if n >= flank_min.shape[2] or total < flank_min[dim, pixels, n]:
+            return False
+    return True
