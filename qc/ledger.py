@@ -11,13 +11,9 @@ cut back); a line torn by a killed process is skipped by readers and dropped by
 
 from __future__ import annotations
 
-import io
 import json
 import math
 import os
-import pickle
-import threading
-import zlib
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 
@@ -120,39 +116,18 @@ def read_ledger(out_dir) -> list[dict]:
     path = Path(out_dir) / LEDGER
     if not path.is_file():
         return []
-    with open(path, "rb") as fh:
-        raw = fh.read()
-    key = (len(raw), zlib.crc32(raw))
-    name = str(path.resolve())
-    with _parsed_lock:
-        kept = _parsed.get(name)
-    if kept is not None and kept[0] == key:
-        return pickle.loads(kept[1])  # fresh objects: a caller may change what it gets
     records = []
-    for line in io.TextIOWrapper(io.BytesIO(raw), encoding="utf-8", errors="replace"):
-        if not line.endswith("\n"):
-            break  # torn last line
-        try:
-            record = json.loads(line)
-        except json.JSONDecodeError:
-            continue
-        if isinstance(record, dict) and "roi" in record:
-            records.append(record)
-    if len(records) >= PARSED_KEEP_MIN:
-        with _parsed_lock:
-            if len(_parsed) >= 8:
-                _parsed.clear()
-            _parsed[name] = (key, pickle.dumps(records, protocol=pickle.HIGHEST_PROTOCOL))
+    with open(path, encoding="utf-8", errors="replace") as fh:
+        for line in fh:
+            if not line.endswith("\n"):
+                break  # torn last line
+            try:
+                record = json.loads(line)
+            except json.JSONDecodeError:
+                continue
+            if isinstance(record, dict) and "roi" in record:
+                records.append(record)
     return records
-
-
-#: Ledgers of at least this many records are kept parsed, as a pickle (a few times
-#: faster to load than the JSON lines), with the length and CRC-32 of the file's bytes:
-#: the closing steps of a run (audit, quality table, hand-off, report) each read the
-#: same ledger, and only the first parses it.
-PARSED_KEEP_MIN = 8
-_parsed: dict[str, tuple] = {}
-_parsed_lock = threading.Lock()
 
 
 def latest_records(records: Iterable[Mapping]) -> dict[str, dict]:

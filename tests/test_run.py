@@ -466,7 +466,7 @@ def test_ledger_survives_a_torn_last_line(tmp_path):
 
 def test_ledger_read_again_gives_fresh_records_and_sees_every_change(tmp_path):
     path = tmp_path / LEDGER
-    for k in range(12):  # enough records to be kept parsed between reads
+    for k in range(12):  # a ledger of several records
         Ledger(path).append({"roi": f"r{k}", "status": "done", "quality": [{"sbr": k}]})
     first = read_ledger(tmp_path)
     first[0]["quality"][0]["sbr"] = -1  # a caller changing what it got
