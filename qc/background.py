@@ -508,6 +508,9 @@ def block_sums(plane, block: int = CONTEXT_BLOCK) -> np.ndarray:
     plane = np.asarray(plane)
     ny, nx = plane.shape
     by, bx = -(-ny // block), -(-nx // block)
+    whole = _whole_block_sums(plane, block)
+    if whole is not None:
+        return whole * (block * block) / _block_area(ny, nx, block)
     # a slice of block rows at a time (each block's 16 values summed as over the whole
     # plane, so the same sums): a float64 copy of a few hundred rows, not of the plane
     step = max(1, BLOCK_SUM_ROWS // block)
@@ -519,6 +522,20 @@ def block_sums(plane, block: int = CONTEXT_BLOCK) -> np.ndarray:
         padded[:rows.shape[0], :nx] = rows
         sums[b0:b1] = padded.reshape(b1 - b0, block, bx, block).sum(axis=(1, 3))
     return sums * (block * block) / _block_area(ny, nx, block)
+
+
+def _whole_block_sums(plane: np.ndarray, block: int) -> np.ndarray | None:
+    """The block sums of a plane of whole counts (every value a whole number of magnitude at most
+    2**40) by one compiled pass (``steps._search_kernels.whole_block_sums``), or None for any
+    other plane. Whole numbers that small add exactly in float64 in any order, so these are the
+    sums numpy's reduction makes."""
+    from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
+
+    if plane.dtype.kind not in "fiu" or plane.ndim != 2 or plane.size == 0 or block * block > 4096:
+        return None
+    ny, nx = plane.shape
+    sums = np.empty((-(-ny // block), -(-nx // block)), np.float64)
+    return sums if _search_kernels.whole_block_sums(plane, int(block), sums) else None
 
 
 #: Pixel rows per slice of :func:`block_sums` (256 rows of 2400 pixels: 5 MiB of float64).

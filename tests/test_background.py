@@ -410,3 +410,28 @@ def test_block_sums_a_slice_of_rows_at_a_time_equal_the_whole_plane_sums():
         whole = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
         area = covered.reshape(by, block, bx, block).sum(axis=(1, 3))
         np.testing.assert_array_equal(block_sums(plane, block), whole * (block * block) / area)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64, np.uint16, np.int32])
+def test_block_sums_of_whole_counts_equal_numpys_block_sums(dtype):
+    """Whole counts take the compiled pass (``_search_kernels.whole_block_sums``); its sums equal
+    numpy's reduction of the padded plane over the block axes (the reference form, as above),
+    partial edge blocks included; a plane with a fraction, NaN or an infinity goes numpy's way."""
+    from plexwash.qc.background import _whole_block_sums, block_sums
+
+    rng = np.random.default_rng(11)
+    for ny, nx, block in [(61, 47, 4), (64, 64, 4), (17, 19, 3), (5, 9, 4), (300, 130, 4)]:
+        plane = (rng.poisson(rng.gamma(0.5, 40.0, (ny, nx))) * (rng.random((ny, nx)) < 0.8)).astype(dtype)
+        by, bx = -(-ny // block), -(-nx // block)
+        padded = np.zeros((by * block, bx * block), np.float64)
+        padded[:ny, :nx] = plane
+        covered = np.zeros(padded.shape)
+        covered[:ny, :nx] = 1.0
+        whole = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
+        area = covered.reshape(by, block, bx, block).sum(axis=(1, 3))
+        assert _whole_block_sums(plane, block) is not None
+        np.testing.assert_array_equal(block_sums(plane, block), whole * (block * block) / area)
+    for odd in (0.5, np.nan, np.inf, 2.0**41):
+        plane = np.ones((20, 20), np.float64)
+        plane[19, 3] = odd
+        assert _whole_block_sums(plane, 4) is None

@@ -297,3 +297,35 @@ def binomial_grid_search(trials, rates, alpha, bdtrc, out):
                     low = mid
             out[t, r] = high
             previous = high
+
+
+#: Largest magnitude of a whole value :func:`whole_block_sums` adds (sums of up to 2**12 such
+#: values stay below 2**53, where float64 holds every whole number).
+WHOLE_LIMIT = 2.0**40
+
+
+@nb.njit(cache=True, nogil=True)
+def whole_block_sums(plane, block, sums):
+    """Sums of ``block`` x ``block`` blocks of a (Y, X) plane into ``sums`` (float64, the blocks
+    of the far edges partial) when every value is a whole number of magnitude at most
+    :data:`WHOLE_LIMIT`: then each sum is exact, whatever the order of the additions. Returns
+    False, at the first other value (a fraction, NaN, an infinity), with ``sums`` unfinished."""
+    height, width = plane.shape
+    columns = np.empty(width, np.float64)
+    for b_row in range(sums.shape[0]):
+        columns[:] = 0.0
+        whole = True
+        for y in range(b_row * block, min(b_row * block + block, height)):
+            row = plane[y]
+            for x in range(width):  # no branches: runs on vector registers
+                v = np.float64(row[x])
+                whole &= (abs(v) <= WHOLE_LIMIT) & (v == np.floor(v))
+                columns[x] += v
+        if not whole:
+            return False
+        for b in range(sums.shape[1]):
+            total = 0.0
+            for x in range(b * block, min(b * block + block, width)):
+                total += columns[x]
+            sums[b_row, b] = total
+    return True
