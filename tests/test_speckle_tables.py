@@ -284,3 +284,38 @@ def test_grid_walk_equals_the_bisection_of_every_entry(alpha):
     sk.binomial_search(grid_trials.ravel(), grid_rates.ravel(), np.full(grid_trials.size, alpha),
                        _special_functions()[0], expected)
     np.testing.assert_array_equal(_binomial_grid(trials, rates, alpha), expected.reshape(grid_trials.shape))
+
+
+def test_cached_grid_columns_equal_the_searches_and_stay_bounded():
+    """Columns of the table search kept by exact trials, rate and alpha (``_COLUMNS``): grids
+    asked again, in another order or mixed with new rates, equal each entry's bisection (scipy's
+    ``bdtrc``, ``scipy.special.cython_special``); a grid handed out does not share the cache's
+    memory, and the cache holds at most its size."""
+    from plexwash.qc.steps import _search_kernels as sk
+    from plexwash.qc.steps._speckle_search import (
+        _COLUMNS,
+        SCALAR_CACHE,
+        _binomial_grid,
+        _special_functions,
+    )
+
+    def plain(trials, rates, alpha):
+        grid_trials, grid_rates = np.meshgrid(trials, rates, indexing="ij")
+        out = np.empty(grid_trials.size, np.int64)
+        sk.binomial_search(grid_trials.ravel(), grid_rates.ravel(), np.full(grid_trials.size, alpha),
+                           _special_functions()[0], out)
+        return out.reshape(grid_trials.shape)
+
+    rng = np.random.default_rng(5)
+    trials = np.array([0, 3, 8, 15, 24, 35, 48, 63, 80, 99, 120])
+    first = rng.uniform(0, 0.6, 5)
+    second = np.concatenate([first[::-1][:3], rng.uniform(0, 0.6, 4)])
+    for alpha in (0.01, 1e-6):
+        for rates in (first, second, first, second[::-1]):
+            got = _binomial_grid(trials, rates, alpha)
+            np.testing.assert_array_equal(got, plain(trials, rates, alpha))
+            got[...] = -1  # the caller's copy
+        np.testing.assert_array_equal(_binomial_grid(trials, first, alpha), plain(trials, first, alpha))
+    for rate in rng.uniform(0, 1, SCALAR_CACHE + 10):
+        _binomial_grid(trials[:2], np.array([rate]), 0.2)
+    assert len(_COLUMNS._entries) <= SCALAR_CACHE

@@ -5,7 +5,9 @@ binomial thresholds by bisection on scipy's own tail functions, compiled
 
 from __future__ import annotations
 
+import collections
 import functools
+import threading
 
 import numpy as np
 from plexwash.qc.steps import _search_kernels as _sk  # absolute: one numba cache
@@ -115,9 +117,65 @@ def _one_binomial_min_count(trials: int, rate: float, alpha: float) -> int:
     return int(high[0])
 
 
+class _ArrayCache:
+    """A bounded, thread-safe cache of small arrays by exact keys (bytes of the inputs): the
+    least recently used entry goes first once ``size`` are held; each hit hands out a copy."""
+
+    def __init__(self, size: int):
+        self._size = size
+        self._entries: collections.OrderedDict = collections.OrderedDict()
+        self._lock = threading.Lock()
+
+    def get(self, key):
+        with self._lock:
+            found = self._entries.get(key)
+            if found is None:
+                return None
+            self._entries.move_to_end(key)
+            return found.copy()
+
+    def put(self, key, value: np.ndarray) -> None:
+        with self._lock:
+            self._entries[key] = value.copy()
+            self._entries.move_to_end(key)
+            while len(self._entries) > self._size:
+                self._entries.popitem(last=False)
+
+
+#: Searched columns of grids kept by their exact trials, rate and alpha: the channels of a cohort
+#: that have the same fitted rate (a fraction of whole window counts) share their tables'
+#: searches. Each entry a column of a few dozen numbers.
+_COLUMNS = _ArrayCache(SCALAR_CACHE)
+
+
 def _binomial_grid(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
-    """:func:`binomial_min_count` of every pair of the 1-D ``trials`` and ``rates``, ``(T, R)``."""
-    trials = np.asarray(trials, np.int64)
+    """:func:`binomial_min_count` of every pair of the 1-D ``trials`` and ``rates``, ``(T, R)``.
+
+    Each rate's column is its own search (the same steps whatever the other rates), so a column
+    searched before for the same trials, rate and alpha is taken from :data:`_COLUMNS`; the
+    others are searched together."""
+    trials = np.ascontiguousarray(trials, np.int64)
+    rates = np.ascontiguousarray(rates, np.float64).ravel()
+    base = (trials.tobytes(), float(alpha))
+    grid = np.empty((trials.size, rates.size), np.int64)
+    keys = [(base, rate.tobytes()) for rate in rates]
+    missing = []
+    for r, key in enumerate(keys):
+        column = _COLUMNS.get(key)
+        if column is None:
+            missing.append(r)
+        else:
+            grid[:, r] = column
+    if missing:
+        searched = _searched_grid(trials, rates[missing], alpha)
+        grid[:, missing] = searched
+        for k, r in enumerate(missing):
+            _COLUMNS.put(keys[r], searched[:, k])
+    return grid
+
+
+def _searched_grid(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
+    """The search behind :func:`_binomial_grid`."""
     order = np.argsort(trials, kind="stable")
     out = np.empty((trials.size, np.size(rates)), np.int64)
     _sk.binomial_grid_search(np.ascontiguousarray(trials[order]), np.ascontiguousarray(rates, np.float64).ravel(),

@@ -103,12 +103,12 @@ def run_stack(stack, per_channel: list, channel_step, *, passive: dict, block_ke
         return one(c, cleaned[c], removed[c]).stats
 
     workers = min(n_channels, os.cpu_count() or 1)
-    with one_thread():  # kernels run in parallel threads; keep BLAS pools out of their way
-        if workers <= 1:
-            stats = [store(c) for c in range(n_channels)]
-        else:
-            with ThreadPoolExecutor(max_workers=workers) as pool:
-                stats = list(pool.map(store, range(n_channels)))
+    if workers <= 1:  # no threads of ours here (e.g. one channel per call, as a wash makes them)
+        stats = [store(c) for c in range(n_channels)]
+    else:
+        with one_thread(), ThreadPoolExecutor(max_workers=workers) as pool:
+            # kernels run in parallel threads; keep BLAS pools out of their way
+            stats = list(pool.map(store, range(n_channels)))
     return StepResult(cleaned, removed, stats)
 
 
