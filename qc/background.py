@@ -421,21 +421,59 @@ def background_model(stack, *, used=None, settings: BackgroundSettings = Backgro
     first = np.empty(stack.shape, np.float32)
     region_rates = np.full((stack.shape[0], 2), np.nan)
     rough = dataclasses.replace(settings, passes=1)  # the median over channels forgives it
-    for c in np.flatnonzero(used):
+
+    def first_rates(c):
         first[c], region_rates[c] = local_background(stack[c], mask=tissue, settings=rough,
                                                      return_regions=True)
+
+    _each_channel(first_rates, np.flatnonzero(used), stack[0].size)
     every = bool(used.all())  # then no copy of the first rates
     pattern = shared_modulation(first if every else first[used],
                                 region_rates if every else region_rates[used], tissue)
-    del first
+    first = None  # the first rates are not needed again
     rates = np.empty(stack.shape, np.float32) if rates_out is None else rates_out
-    for c in range(stack.shape[0]):
+
+    def final_rates(c):
         rates[c], region_rates[c] = local_background(stack[c], mask=tissue, modulation=pattern,
                                                      settings=settings, return_regions=True)
+
+    _each_channel(final_rates, range(stack.shape[0]), stack[0].size)
     if tissue.all():
         region_rates[:, 0] = np.nan
     return BackgroundModel(tissue=tissue, rates=rates, region_rates=region_rates,
                            modulation=pattern)
+
+
+#: Pixels of a plane from which :func:`background_model` fits its channels on several threads
+#: (a 512 x 512 ROI's block sums and up); smaller planes are fitted in turn (their cost is
+#: Python's, which threads do not share).
+THREADED_PLANE = 128 * 128
+
+
+def _each_channel(function, channels, plane_size: int) -> None:
+    """``function(c)`` for each channel: each channel's fit is its own (it reads the shared inputs
+    and writes its own rows), so the order does not matter and the results are the same. On the
+    wash's threads (dask's ``num_workers`` when set, else the cores) for planes of at least
+    :data:`THREADED_PLANE` pixels; the compiled loops and numpy's whole-plane work release the GIL."""
+    channels = list(channels)
+    threads = min(_fit_threads(), len(channels)) if plane_size >= THREADED_PLANE else 1
+    if threads <= 1:
+        for c in channels:
+            function(c)
+        return
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(threads, thread_name_prefix="plexwash-background") as pool:
+        for _ in pool.map(function, channels):
+            pass
+
+
+def _fit_threads() -> int:
+    import os
+
+    import dask
+
+    return int(dask.config.get("num_workers", None) or os.cpu_count() or 1)
 
 
 #: Edge in pixels of the blocks whose sums the ROI's background context is computed from.

@@ -435,3 +435,24 @@ def test_block_sums_of_whole_counts_equal_numpys_block_sums(dtype):
         plane = np.ones((20, 20), np.float64)
         plane[19, 3] = odd
         assert _whole_block_sums(plane, 4) is None
+
+
+def test_background_model_on_threads_equals_the_channels_in_turn(monkeypatch):
+    """The channels' fits on two threads give the model fitted one channel after another, to
+    the bit (each fit reads the shared inputs and writes its own rows)."""
+    import dask
+    from plexwash.qc import background as bg
+
+    rng = np.random.default_rng(8)
+    rate = np.full((90, 70), 0.05)
+    rate[:, 30:] = 0.6
+    stack = rng.poisson(rate * rng.uniform(0.5, 2.0, (7, 1, 1))).astype(np.float32)
+    stack[2, 40:60, 40:60] += rng.poisson(5.0, (20, 20))
+    used = np.array([True, True, True, False, True, True, True])
+    models = []
+    for threads, smallest in ((1, bg.THREADED_PLANE), (2, 1)):
+        monkeypatch.setattr(bg, "THREADED_PLANE", smallest)
+        with dask.config.set(num_workers=threads):
+            models.append(bg.background_model(stack, used=used))
+    for name in ("tissue", "rates", "region_rates", "modulation"):
+        np.testing.assert_array_equal(getattr(models[0], name), getattr(models[1], name))
