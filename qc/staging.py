@@ -57,6 +57,7 @@ import numpy as np
 from ._arrays import channel_plane, is_dask, used_channels
 from .background import CONTEXT_BLOCK, block_sums, context_of_block_sums, roi_background
 from .io.staged import StagedStack
+from .steps.lifting import fractions_from_sums
 from .steps.registry import STEPS, context_wanted
 from .steps.stats import step_rows
 
@@ -235,7 +236,8 @@ def wash_staged(roi, recipe, matrix, *, staging: Staging, notes: list) -> tuple[
                         np.subtract(spilled, plane, out=spilled)
                         spilled = spilled[None]
                     extra = {"background": context, "spilled": spilled}
-                cleaned, _, step_stats = step.run(plane[None], [settings_of[c]], None, parallel=False, **extra)
+                with fractions_from_sums():  # the rows take it from the sums below
+                    cleaned, _, step_stats = step.run(plane[None], [settings_of[c]], None, parallel=False, **extra)
                 target(dest).write_plane(c, cleaned[0])
                 return step_stats[0], _sums(plane[None], cleaned)
 

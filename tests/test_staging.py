@@ -259,3 +259,24 @@ def test_context_fitted_into_staging_files_is_the_one_fitted_on_the_heap(tmp_pat
         np.testing.assert_array_equal(getattr(mapped, field), getattr(on_heap, field))
     for field in ("tissue", "rates", "region_rates", "modulation"):
         np.testing.assert_array_equal(getattr(mapped.model, field), getattr(on_heap.model, field))
+
+
+def test_steps_leave_their_own_fraction_to_the_wash_rows_only_inside_the_block():
+    """Inside ``fractions_from_sums`` a plane step called on this thread leaves its
+    ``removed_fraction`` None (a wash's rows take it from their own sums: the staged rows equal
+    the in-memory wash's, tested above); outside, and after the block, it is the fraction of the
+    removed map's sum over the plane's (numpy's float64 sums, the reference)."""
+    from plexwash.qc.steps.hot_pixels import HotPixelSettings, hot_pixels_stack
+    from plexwash.qc.steps.lifting import fractions_from_sums
+
+    rng = np.random.default_rng(3)
+    stack = rng.poisson(2.0, (1, 30, 40)).astype(np.float32)
+    stack[0, 10, 12] = 900.0
+    with fractions_from_sums():
+        inside = hot_pixels_stack(stack, HotPixelSettings())
+    outside = hot_pixels_stack(stack, HotPixelSettings())
+    assert inside.stats[0]["removed_fraction"] is None
+    expected = float(outside.removed.sum(dtype=np.float64)) / float(stack.sum(dtype=np.float64))
+    assert outside.stats[0]["removed_fraction"] == expected > 0
+    np.testing.assert_array_equal(inside.image, outside.image)
+    assert inside.stats[0]["n_pixels"] == outside.stats[0]["n_pixels"] == 1

@@ -10,6 +10,8 @@ goes through :func:`lift_channel`. Whatever the chunking, the result equals the 
 
 from __future__ import annotations
 
+import contextlib
+import contextvars
 import functools
 import os
 from collections.abc import Callable
@@ -21,7 +23,8 @@ import numpy as np
 from .._arrays import is_dask
 from ..errors import InputError
 
-__all__ = ["StepResult", "kernel_outputs", "lift_channel", "per_channel_settings", "removed_fraction", "run_stack"]
+__all__ = ["StepResult", "kernel_outputs", "lift_channel", "per_channel_settings", "fractions_from_sums", "removed_fraction",
+           "run_stack"]
 
 
 class StepResult(NamedTuple):
@@ -167,7 +170,10 @@ def removed_fraction(removed, image):
 
     For dask input a 0-d dask array (array arithmetic only: in dask 2026.8 computing
     ``Delayed`` objects together with arrays in one ``dask.compute`` misorders results).
+    None for numpy input inside :func:`fractions_from_sums` (the caller makes it).
     """
+    if not _OWN_FRACTIONS.get() and not is_dask(removed):
+        return None
     part, total = removed.sum(dtype=np.float64), image.sum(dtype=np.float64)
     if is_dask(removed):
         return part * (total > 0) / np.maximum(total, np.finfo(np.float64).tiny)
@@ -188,3 +194,19 @@ def per_channel_settings(settings, kind, n_channels: int) -> list:
     return settings
 
 
+#: Whether a numpy step computes its own ``removed_fraction`` (see :func:`fractions_from_sums`).
+_OWN_FRACTIONS = contextvars.ContextVar("plexwash_own_fractions", default=True)
+
+
+@contextlib.contextmanager
+def fractions_from_sums():
+    """Within this block (this thread), the numpy steps called here leave their
+    ``removed_fraction`` stat None instead of summing both planes again: for a wash, whose rows
+    take the fraction from the sums it makes of every plane anyway
+    (:func:`plexwash.qc.steps.stats.step_rows` overwrites the step's own). Threads started
+    inside the block (a stack's channels on a pool) still compute it."""
+    token = _OWN_FRACTIONS.set(False)
+    try:
+        yield
+    finally:
+        _OWN_FRACTIONS.reset(token)
