@@ -8,6 +8,8 @@ cached), the same functions the ``scipy.special`` ufuncs compute.
 
 from __future__ import annotations
 
+import math
+
 import numba as nb
 import numpy as np
 
@@ -329,3 +331,27 @@ def whole_block_sums(plane, block, sums):
                 total += columns[x]
             sums[b_row, b] = total
     return True
+
+
+@nb.njit(cache=True, nogil=True)
+def tail_bounds(n, mu, log_alpha, out, undecided):
+    """The bounds of :func:`plexwash.qc._tail_search.tail_below` on 1-D float64 ``n`` and ``mu``:
+    ``out[i]`` True where the upper bound on ``P(N >= n)`` is below ``alpha`` by the margin and
+    the lower bound is not above it; the indices where neither bound decides (or the bounds do
+    not apply: ``n`` or ``mu`` at least ``1e7``, ``mu <= 1e-300``, ``n < 1``, ``n <= mu``, ``n``
+    not whole, NaN) are written to ``undecided``; returns how many."""
+    left = 0
+    for i in range(n.size):
+        count = n[i]
+        mean = mu[i]
+        if (count < 1e7 and mean < 1e7 and mean > 1e-300 and count >= 1.0 and count > mean
+                and count == np.floor(count)):
+            log_p = count * math.log(mean) - mean - math.lgamma(count + 1.0)
+            probable = log_p > log_alpha + 1e-6
+            improbable = (log_p - math.log1p(-mean / (count + 1.0))) < log_alpha - 1e-6
+            if probable or improbable:
+                out[i] = improbable and not probable
+                continue
+        undecided[left] = i
+        left += 1
+    return left
