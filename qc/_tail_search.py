@@ -9,8 +9,23 @@ decisions as the plain computations, made with less of them.
 
 from __future__ import annotations
 
+import sys
+
 import numpy as np
 from scipy import special
+
+
+def search_kernels():
+    """The compiled loops (``plexwash.qc.steps._search_kernels``), imported on first use (numba
+    stays out of the commands that never wash) by its absolute name (one numba cache), then
+    taken from ``sys.modules``: a hot path calls this per channel."""
+    kernels = sys.modules.get(_KERNELS)
+    if kernels is None:
+        from plexwash.qc.steps import _search_kernels as kernels
+    return kernels
+
+
+_KERNELS = "plexwash.qc.steps._search_kernels"
 
 
 def tail_below(n: np.ndarray, mu: np.ndarray, alpha: float, upper_tail) -> np.ndarray:
@@ -29,15 +44,13 @@ def tail_below(n: np.ndarray, mu: np.ndarray, alpha: float, upper_tail) -> np.nd
     far better than the ``1e-6`` margin, so where either decides it decides as the tail does);
     the tail is then computed on the pixels left open only.
     """
-    from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
-
     n = np.ascontiguousarray(n, np.float64)
     mu = np.ascontiguousarray(mu, np.float64)
     if n.shape != mu.shape:
         n, mu = (np.ascontiguousarray(a) for a in np.broadcast_arrays(n, mu))
     out = np.zeros(n.shape, bool)
     undecided = np.empty(n.size, np.int64)
-    left = _search_kernels.tail_bounds(n.reshape(-1), mu.reshape(-1), float(np.log(alpha)), out.reshape(-1),
+    left = search_kernels().tail_bounds(n.reshape(-1), mu.reshape(-1), float(np.log(alpha)), out.reshape(-1),
                                        undecided)
     if left:
         at = undecided[:left]
@@ -95,9 +108,7 @@ class TailSearch:
             self.first, self.second = int(below), int(below) + 1
             self.gamma = float(virtual - below)
         self._buffer = None
-        from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
-
-        self._kernels = _search_kernels
+        self._kernels = search_kernels()
 
     def above(self, s, target: float) -> bool:
         if self._buffer is None or self._buffer.size < self.n.size:

@@ -48,7 +48,7 @@ import numpy as np
 from scipy import ndimage, special
 from skimage.filters import threshold_otsu
 
-from ._tail_search import TailSearch, tail_below
+from ._tail_search import TailSearch, search_kernels, tail_below
 from .errors import InputError
 from .settings import setting
 
@@ -219,7 +219,9 @@ def likely_signal(image: np.ndarray, rate, *, box: int, alpha: float) -> np.ndar
     image = np.asarray(image, np.float64)
     # a box of one pixel: scipy's filter returns the plane's values themselves
     sums = np.rint((image if box == 1 else ndimage.uniform_filter(image, box, mode="reflect")) * area)
-    mean = np.broadcast_to(area * np.asarray(rate, np.float64), sums.shape)
+    mean = area * np.asarray(rate, np.float64)
+    if mean.shape != sums.shape:  # a rate per pixel already has the plane's shape
+        mean = np.broadcast_to(mean, sums.shape)
     # n <= mean implies P(N >= n) > 1/2 >= alpha (a Poisson median is >= mean - ln 2, Choi
     # 1994): only windows above their mean can be improbable, the tail is computed there
     above = sums > mean
@@ -356,13 +358,11 @@ def _box_mean_constant(values: np.ndarray, window: int) -> np.ndarray:
     """``ndimage.uniform_filter(values, window, mode="constant")`` of a 2-D float64 plane, by a
     compiled loop taking scipy's steps (``steps._search_kernels.box_mean_constant``: the same
     bits, tested), without scipy's per-call set-up."""
-    from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
-
     values = np.ascontiguousarray(values, np.float64)
     if values.ndim != 2 or window < 2:
         return ndimage.uniform_filter(values, window, mode="constant")
     out = np.empty(values.shape, np.float64)
-    _search_kernels.box_mean_constant(values, int(window), out)
+    search_kernels().box_mean_constant(values, int(window), out)
     return out
 
 
@@ -567,13 +567,11 @@ def _whole_block_sums(plane: np.ndarray, block: int) -> np.ndarray | None:
     2**40) by one compiled pass (``steps._search_kernels.whole_block_sums``), or None for any
     other plane. Whole numbers that small add exactly in float64 in any order, so these are the
     sums numpy's reduction makes."""
-    from plexwash.qc.steps import _search_kernels  # absolute: one numba cache
-
     if plane.dtype.kind not in "fiu" or plane.ndim != 2 or plane.size == 0 or block * block > 4096:
         return None
     ny, nx = plane.shape
     sums = np.empty((-(-ny // block), -(-nx // block)), np.float64)
-    return sums if _search_kernels.whole_block_sums(plane, int(block), sums) else None
+    return sums if search_kernels().whole_block_sums(plane, int(block), sums) else None
 
 
 #: Pixel rows per slice of :func:`block_sums` (256 rows of 2400 pixels: 5 MiB of float64).
