@@ -9,6 +9,7 @@ decisions as the plain computations, made with less of them.
 
 from __future__ import annotations
 
+import functools
 import sys
 
 import numpy as np
@@ -50,12 +51,26 @@ def tail_below(n: np.ndarray, mu: np.ndarray, alpha: float, upper_tail) -> np.nd
         n, mu = (np.ascontiguousarray(a) for a in np.broadcast_arrays(n, mu))
     out = np.zeros(n.shape, bool)
     undecided = np.empty(n.size, np.int64)
-    left = search_kernels().tail_bounds(n.reshape(-1), mu.reshape(-1), float(np.log(alpha)), out.reshape(-1),
-                                       undecided)
+    left = search_kernels().tail_bounds(n.reshape(-1), mu.reshape(-1), float(np.log(alpha)), _log_factorials(),
+                                        out.reshape(-1), undecided)
     if left:
         at = undecided[:left]
         out.reshape(-1)[at] = upper_tail(n.reshape(-1)[at], mu.reshape(-1)[at]) < alpha
     return out
+
+
+@functools.cache
+def _log_factorials() -> np.ndarray:
+    """``lgamma(k + 1)`` for the counts ``k`` below :data:`FACTORIALS`, made once by the compiled
+    loops' own ``lgamma`` (read-only)."""
+    table = np.empty(FACTORIALS, np.float64)
+    search_kernels().log_factorials(table)
+    table.flags.writeable = False
+    return table
+
+
+#: Whole counts whose ``lgamma(k + 1)`` :func:`tail_below` looks up (32 KiB).
+FACTORIALS = 4096
 
 
 def tail_below_numpy(n: np.ndarray, mu: np.ndarray, alpha: float, upper_tail) -> np.ndarray:

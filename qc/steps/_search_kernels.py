@@ -334,23 +334,37 @@ def whole_block_sums(plane, block, sums):
 
 
 @nb.njit(cache=True, nogil=True)
-def tail_bounds(n, mu, log_alpha, out, undecided):
+def log_factorials(out):
+    """``out[k] = lgamma(k + 1)``, the C library's, exactly as :func:`tail_bounds` computes it."""
+    for k in range(out.size):
+        out[k] = math.lgamma(np.float64(k) + 1.0)
+
+
+@nb.njit(cache=True, nogil=True)
+def tail_bounds(n, mu, log_alpha, factorials, out, undecided):
     """The bounds of :func:`plexwash.qc._tail_search.tail_below` on 1-D float64 ``n`` and ``mu``:
     ``out[i]`` True where the upper bound on ``P(N >= n)`` is below ``alpha`` by the margin and
     the lower bound is not above it; the indices where neither bound decides (or the bounds do
     not apply: ``n`` or ``mu`` at least ``1e7``, ``mu <= 1e-300``, ``n < 1``, ``n <= mu``, ``n``
-    not whole, NaN) are written to ``undecided``; returns how many."""
+    not whole, NaN) are written to ``undecided``; returns how many.
+
+    ``lgamma(n + 1)`` is read from ``factorials`` (:func:`log_factorials`: the same values) for
+    the counts it holds; the upper bound is computed only where the lower one leaves ``out``
+    open (where ``P(N = n)`` alone is above ``alpha``, ``out`` is False whatever it says)."""
     left = 0
     for i in range(n.size):
         count = n[i]
         mean = mu[i]
         if (count < 1e7 and mean < 1e7 and mean > 1e-300 and count >= 1.0 and count > mean
                 and count == np.floor(count)):
-            log_p = count * math.log(mean) - mean - math.lgamma(count + 1.0)
-            probable = log_p > log_alpha + 1e-6
-            improbable = (log_p - math.log1p(-mean / (count + 1.0))) < log_alpha - 1e-6
-            if probable or improbable:
-                out[i] = improbable and not probable
+            whole = np.int64(count)
+            log_count = factorials[whole] if whole < factorials.size else math.lgamma(count + 1.0)
+            log_p = count * math.log(mean) - mean - log_count
+            if log_p > log_alpha + 1e-6:  # probable
+                out[i] = False
+                continue
+            if (log_p - math.log1p(-mean / (count + 1.0))) < log_alpha - 1e-6:  # improbable
+                out[i] = True
                 continue
         undecided[left] = i
         left += 1
