@@ -431,6 +431,13 @@ def test_block_sums_of_whole_counts_equal_numpys_block_sums(dtype):
         area = covered.reshape(by, block, bx, block).sum(axis=(1, 3))
         assert _whole_block_sums(plane, block) is not None
         np.testing.assert_array_equal(block_sums(plane, block), whole * (block * block) / area)
+    for ny, nx in [(8, 8), (10, 9)]:  # negative zeros: their sum keeps its sign, a padded block's does not
+        plane = np.full((ny, nx), -0.0, np.float32)
+        plane[0, 0] = 0.0 if ny == 10 else -0.0
+        padded = np.zeros((12, 12), np.float64)
+        padded[:ny, :nx] = plane
+        whole = padded[:-(-ny // 4) * 4, :-(-nx // 4) * 4].reshape(-(-ny // 4), 4, -(-nx // 4), 4).sum(axis=(1, 3))
+        np.testing.assert_array_equal(np.signbit(_whole_block_sums(plane, 4)), np.signbit(whole))
     for odd in (0.5, np.nan, np.inf, 2.0**41):
         plane = np.ones((20, 20), np.float64)
         plane[19, 3] = odd
