@@ -207,7 +207,8 @@ def min_count_table(radius: int, rate, alpha: float) -> np.ndarray:
     distinct, at = _window_trials(int(radius))
     rates, rate_at = np.unique(rate.ravel(), return_inverse=True)
     grid = _binomial_grid(distinct, rates, alpha).astype(np.int32)  # (T, R)
-    return grid.T[rate_at.reshape(rate.shape)][..., at]
+    tables = np.ascontiguousarray(grid.T[:, at])  # (R, a, b): one table per distinct rate
+    return tables[rate_at.reshape(rate.shape)]  # whole tables repeated: C-contiguous
 
 
 def _rate_tables(trials: np.ndarray, rates: np.ndarray, alpha: float) -> np.ndarray:
