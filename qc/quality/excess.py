@@ -11,6 +11,7 @@ import numpy as np
 from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
+from ._box_kernels import box_fit, routines
 from ._bvls import bounded_lstsq
 from ._fit_kernels import excess_marks, kept_changes, one_row_model
 from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
@@ -22,6 +23,10 @@ _MAX_FIT_ROUNDS = 12
 
 # Bins per block when Gram matrices are updated (bounds the temporary copies).
 _GRAM_BLOCK = 8192
+
+
+# The library routines the compiled box fit calls (None: the numpy form runs).
+_ROUTINES = routines()
 
 
 def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarray:
@@ -294,6 +299,19 @@ def _partial_gram(design: np.ndarray, target: np.ndarray, index: np.ndarray):
 
 def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
                        upper: np.ndarray) -> np.ndarray:
+    """:func:`_box_least_squares_numpy` by one compiled call (:func:`._box_kernels.box_fit`,
+    the same library routines on the same values), the numpy form where it hands back."""
+    if (_ROUTINES is not None and gram.dtype == cross.dtype == lower.dtype == upper.dtype
+            == np.float64 and gram.ndim == 2 and cross.ndim == lower.ndim == upper.ndim == 1
+            and gram.shape == (cross.size, cross.size) == (lower.size, upper.size)):
+        coef = np.empty(cross.size)
+        if box_fit(gram, cross, lower, upper, _ROUTINES, coef) == 0:
+            return coef
+    return _box_least_squares_numpy(gram, cross, lower, upper)
+
+
+def _box_least_squares_numpy(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
+                             upper: np.ndarray) -> np.ndarray:
     """argmin c^T G c - 2 c^T h subject to lower <= c <= upper (G = D D^T, h = D n).
 
     Variables with ``upper <= lower`` are fixed at ``lower``; the others are
