@@ -305,7 +305,9 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
             == np.float64 and gram.ndim == 2 and cross.ndim == lower.ndim == upper.ndim == 1
             and gram.shape == (cross.size, cross.size) == (lower.size, upper.size)):
         coef = np.empty(cross.size)
-        if box_fit(gram, cross, lower, upper, _ROUTINES, coef) == 0:
+        # C-contiguous copies (the same values): one compiled specialisation to load
+        args = (np.ascontiguousarray(v) for v in (gram, cross, lower, upper))
+        if box_fit(*args, _ROUTINES, coef) == 0:
             return coef
     return _box_least_squares_numpy(gram, cross, lower, upper)
 
