@@ -412,3 +412,28 @@ def box_fit(gram, cross, lower, upper, fn, coef):
     for j in range(nf):
         coef[idx[j]] = x[j] / scale[j]
     return 0
+
+
+def agrees(fn: np.ndarray, reference, count: int = 24) -> bool:
+    """Whether :func:`box_fit` with the routines ``fn`` gives ``reference``'s bits (the numpy
+    form, ``reference(gram, cross, lower, upper)``) on ``count`` small systems of count bins,
+    some sources bounded or fixed, some pushed onto their bounds: a check, once per process,
+    that this numpy and scipy call their libraries as :func:`box_fit` assumes."""
+    rng = np.random.default_rng(20261206)
+    for t in range(count):
+        k = 2 + t % 6
+        design = rng.poisson(rng.uniform(0.5, 50, (k, 1)), (k, 12 + 3 * k)).astype(np.float64)
+        target = rng.poisson(design[0] * 0.5 + 2.0).astype(np.float64)
+        gram, cross = design @ design.T, design @ target
+        lower = np.zeros(k)
+        upper = np.full(k, np.inf) if t % 3 == 0 else np.r_[np.inf, np.full(k - 1, 0.05)]
+        if t % 4 == 1:
+            upper[-1] = 0.0
+        if t % 2:
+            cross = cross - rng.uniform(0, 2, k) * np.abs(cross)
+        coef = np.empty(k)
+        status = box_fit(gram, cross, lower, upper, fn, coef)
+        if status == 0 and coef.tobytes() != np.asarray(
+                reference(gram, cross, lower, upper), np.float64).tobytes():
+            return False
+    return True

@@ -11,7 +11,7 @@ import numpy as np
 from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
-from ._box_kernels import box_fit, routines
+from ._box_kernels import agrees, box_fit, routines
 from ._bvls import bounded_lstsq
 from ._fit_kernels import excess_marks, kept_changes, one_row_model
 from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
@@ -25,8 +25,21 @@ _MAX_FIT_ROUNDS = 12
 _GRAM_BLOCK = 8192
 
 
-# The library routines the compiled box fit calls (None: the numpy form runs).
+# The library routines the compiled box fit calls (None: the numpy form runs), checked
+# against the numpy form at the first fit (:func:`_compiled_routines`).
 _ROUTINES = routines()
+_ROUTINES_CHECKED = False
+
+
+def _compiled_routines():
+    """:data:`_ROUTINES`, or None when the compiled box fit disagrees with the numpy form on
+    the check systems (:func:`._box_kernels.agrees`; checked once per process)."""
+    global _ROUTINES, _ROUTINES_CHECKED
+    if not _ROUTINES_CHECKED:
+        if _ROUTINES is not None and not agrees(_ROUTINES, _box_least_squares_numpy):
+            _ROUTINES = None
+        _ROUTINES_CHECKED = True
+    return _ROUTINES
 
 
 def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarray:
@@ -301,13 +314,14 @@ def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
                        upper: np.ndarray) -> np.ndarray:
     """:func:`_box_least_squares_numpy` by one compiled call (:func:`._box_kernels.box_fit`,
     the same library routines on the same values), the numpy form where it hands back."""
-    if (_ROUTINES is not None and gram.dtype == cross.dtype == lower.dtype == upper.dtype
+    fn = _compiled_routines()
+    if (fn is not None and gram.dtype == cross.dtype == lower.dtype == upper.dtype
             == np.float64 and gram.ndim == 2 and cross.ndim == lower.ndim == upper.ndim == 1
             and gram.shape == (cross.size, cross.size) == (lower.size, upper.size)):
         coef = np.empty(cross.size)
         # C-contiguous copies (the same values): one compiled specialisation to load
         args = (np.ascontiguousarray(v) for v in (gram, cross, lower, upper))
-        if box_fit(*args, _ROUTINES, coef) == 0:
+        if box_fit(*args, fn, coef) == 0:
             return coef
     return _box_least_squares_numpy(gram, cross, lower, upper)
 
