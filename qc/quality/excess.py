@@ -13,7 +13,7 @@ from scipy.linalg import lapack
 
 from ._box_kernels import agrees, box_fit, routines
 from ._bvls import bounded_lstsq
-from ._fit_kernels import excess_marks, kept_changes, one_row_model
+from ._fit_kernels import excess_marks, kept_changes, one_row_fit, one_row_model
 from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
 from .settings import QualitySettings
 
@@ -164,6 +164,41 @@ class _RoundWork:
 
 
 def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
+    """:func:`_fit_one_row_numpy` by one compiled call (:func:`._fit_kernels.one_row_fit`:
+    the same operations, the moved bins' sums by numpy's ``ddot``); the numpy form where
+    it hands back (a round leaving bins to ``gammainc``) or the routines are missing."""
+    fn = _compiled_routines()
+    if fn is None or target.dtype != np.float64 or target.shape != (design.shape[1],):
+        return _fit_one_row_numpy(target, design, upper, settings, gram=gram, cross=cross)
+    unit = settings.counts_per_unit
+    g, h = _one_row_sums(design, target) if gram is None else (float(gram[0, 0]),
+                                                               float(cross[0]))
+    n = np.ascontiguousarray(target * unit, dtype=np.float64).reshape(-1)  # as _RoundWork
+    size = n.size
+    mu, coef = np.empty(size), np.zeros(1)
+    below, kept = np.empty(size, bool), np.empty(size, bool)
+    hard, left, joined = (np.empty(size, np.intp) for _ in range(3))
+    status = one_row_fit(np.ascontiguousarray(design[0]), np.ascontiguousarray(target), n,
+                         g, h, upper, unit, settings.background_floor * unit,
+                         math.log(settings.fit_alpha), _MAX_FIT_ROUNDS, _GRAM_BLOCK, fn, mu,
+                         below, hard, left, joined, kept, coef)
+    if status == 0:
+        return mu, coef, kept
+    return _fit_one_row_numpy(target, design, upper, settings, gram=gram, cross=cross)
+
+
+def _one_row_sums(design, target):
+    """gram_matrix and _cross of a one-row design, a block at a time (0.0 + each block's
+    product), as Python floats."""
+    g = h = 0.0
+    for start in range(0, design.shape[1], _GRAM_BLOCK):
+        d = design[:, start:start + _GRAM_BLOCK].astype(np.float64)
+        g += float((d @ d.T)[0, 0])
+        h += float((d @ target[start:start + _GRAM_BLOCK])[0])
+    return g, h
+
+
+def _fit_one_row_numpy(target, design, upper, settings, *, gram=None, cross=None):
     """:func:`_fit_rows` of a one-row float64 design (the flat background of one channel):
     the same operations on the same values, bit for bit, with the 1 x 1 Gram matrix and
     its cross term as Python floats (the same IEEE operations as numpy's 1-element arrays),
@@ -172,11 +207,7 @@ def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
     of the moved bins by the same numpy products as :func:`_partial_gram`."""
     unit = settings.counts_per_unit
     if gram is None:  # gram_matrix and _cross, a block at a time (0.0 + each block's product)
-        g = h = 0.0
-        for start in range(0, design.shape[1], _GRAM_BLOCK):
-            d = design[:, start:start + _GRAM_BLOCK].astype(np.float64)
-            g += float((d @ d.T)[0, 0])
-            h += float((d @ target[start:start + _GRAM_BLOCK])[0])
+        g, h = _one_row_sums(design, target)
     else:
         g, h = float(gram[0, 0]), float(cross[0])
     n = target * unit
