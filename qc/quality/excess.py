@@ -36,10 +36,29 @@ def _compiled_routines():
     the check systems (:func:`._box_kernels.agrees`; checked once per process)."""
     global _ROUTINES, _ROUTINES_CHECKED
     if not _ROUTINES_CHECKED:
-        if _ROUTINES is not None and not agrees(_ROUTINES, _box_least_squares_numpy):
+        if _ROUTINES is not None and not (agrees(_ROUTINES, _box_least_squares_numpy)
+                                          and _one_row_agrees(_ROUTINES)):
             _ROUTINES = None
         _ROUTINES_CHECKED = True
     return _ROUTINES
+
+
+def _one_row_agrees(fn, count: int = 6) -> bool:
+    """Whether the compiled one-row fit gives :func:`_fit_one_row_numpy`'s bits on ``count``
+    small channels with a stain (bins leave and join between rounds)."""
+    settings = QualitySettings()
+    rng = np.random.default_rng(20261207)
+    for t in range(count):
+        area = np.full((6 + t, 9), 16.0)
+        area[-1] = 8.0
+        bins = rng.poisson(0.5 * (1 + t) * area).astype(np.float64)
+        bins[:2] += rng.poisson(40.0, (2, 9))
+        design = area.ravel()[None, :]
+        ours = _fit_one_row_compiled(bins.ravel(), design, np.inf, settings, fn)
+        ref = _fit_one_row_numpy(bins.ravel(), design, np.inf, settings)
+        if ours is not None and any(a.tobytes() != b.tobytes() for a, b in zip(ours, ref)):
+            return False
+    return True
 
 
 def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarray:
@@ -168,8 +187,17 @@ def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
     the same operations, the moved bins' sums by numpy's ``ddot``); the numpy form where
     it hands back (a round leaving bins to ``gammainc``) or the routines are missing."""
     fn = _compiled_routines()
-    if fn is None or target.dtype != np.float64 or target.shape != (design.shape[1],):
+    found = None if fn is None else _fit_one_row_compiled(target, design, upper, settings, fn,
+                                                          gram=gram, cross=cross)
+    if found is None:
         return _fit_one_row_numpy(target, design, upper, settings, gram=gram, cross=cross)
+    return found
+
+
+def _fit_one_row_compiled(target, design, upper, settings, fn, *, gram=None, cross=None):
+    """(mu, coef, kept) of :func:`._fit_kernels.one_row_fit`, or None where it hands back."""
+    if target.dtype != np.float64 or target.shape != (design.shape[1],):
+        return None
     unit = settings.counts_per_unit
     g, h = _one_row_sums(design, target) if gram is None else (float(gram[0, 0]),
                                                                float(cross[0]))
@@ -182,9 +210,7 @@ def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
                          g, h, upper, unit, settings.background_floor * unit,
                          math.log(settings.fit_alpha), _MAX_FIT_ROUNDS, _GRAM_BLOCK, fn, mu,
                          below, hard, left, joined, kept, coef)
-    if status == 0:
-        return mu, coef, kept
-    return _fit_one_row_numpy(target, design, upper, settings, gram=gram, cross=cross)
+    return (mu, coef, kept) if status == 0 else None
 
 
 def _one_row_sums(design, target):
