@@ -56,7 +56,8 @@ def _one_row_agrees(fn, count: int = 6) -> bool:
         design = area.ravel()[None, :]
         ours = _fit_one_row_compiled(bins.ravel(), design, np.inf, settings, fn)
         ref = _fit_one_row_numpy(bins.ravel(), design, np.inf, settings)
-        if ours is not None and any(a.tobytes() != b.tobytes() for a, b in zip(ours, ref)):
+        if ours is not None and any(a.tobytes() != b.tobytes()
+                                    for a, b in zip(ours, ref, strict=True)):
             return False
     return True
 
