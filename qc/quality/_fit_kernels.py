@@ -11,7 +11,8 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
-from ._kernels import _tail_verdict, box3_sums, largest_excess3
+from ._box_kernels import _DDOT, _call_ddot
+from ._kernels import _tail_verdict, box3_sums, largest_excess3, poisson_tail_verdicts
 
 
 @nb.njit(cache=True, nogil=True)
@@ -156,3 +157,67 @@ def otsu_index(counts, centers):
             top = v
             best = i
     return start + best
+
+
+@nb.njit(cache=True, nogil=True)
+def _ddot_blocks(row, target, index, count, fn, d, t):
+    """``excess._partial_sums(design, target, index[:count])`` (a one-row design): per block
+    of ``d.size`` indices, the gathered values' ``0.0 + ddot`` (numpy's dot of a 1 x L by an
+    L x 1 matrix and by an L vector) added to 0.0, by numpy's CBLAS ``ddot``. ``d`` and
+    ``t`` are the gathering buffers (the caller's, so they outlive the calls)."""
+    g = 0.0
+    h = 0.0
+    block = d.size
+    for start in range(0, count, block):
+        size = min(block, count - start)
+        for j in range(size):
+            d[j] = row[index[start + j]]
+            t[j] = target[index[start + j]]
+        g += 0.0 + _call_ddot(fn[_DDOT], size, d.ctypes.data, d.ctypes.data)
+        h += 0.0 + _call_ddot(fn[_DDOT], size, d.ctypes.data, t.ctypes.data)
+    return g, h
+
+
+@nb.njit(cache=True, nogil=True)
+def one_row_fit(row, target, n, g, h, upper, unit, floor_scale, log_alpha, rounds, block,
+                fn, mu, below, hard, left, joined, kept, coef):
+    """``excess._fit_one_row_numpy``'s rounds (a one-row float64 design ``row``, ``g`` and
+    ``h`` its Gram sums, ``n`` the counts): the same IEEE operations on the same values,
+    the moved bins' sums by numpy's ``ddot`` (:func:`_ddot_blocks`). Fills ``mu``,
+    ``kept`` and ``coef``; returns 0, or 2 where a round leaves bins to ``gammainc`` or a
+    value is NaN (the numpy form then runs the fit)."""
+    kept[:] = True
+    coef[0] = 0.0
+    d = np.empty(min(block, max(kept.size, 1)))  # one block holds every bin when fewer
+    t = np.empty(d.size)
+    for _ in range(rounds):
+        value = 0.0
+        if upper > 0.0 and g > 0.0:  # excess._one_unknown with lower 0
+            scale = np.sqrt(g)
+            gg = g / (scale * scale) + 1e-9
+            x = (h / scale) / gg
+            lo = 0.0 * scale
+            hi = upper * scale
+            if x != x or lo != lo or hi != hi:
+                return 2
+            x = x if x > lo else lo
+            x = x if x < hi else hi
+            value = x / scale
+        coef[0] = value
+        one_row_model(row, value, unit, floor_scale, mu)
+        if poisson_tail_verdicts(n, mu, log_alpha, below, hard):
+            return 2
+        n_kept, n_left, n_joined = kept_changes(kept, below, left, joined)
+        if n_kept == 0 or (n_left == 0 and n_joined == 0):
+            return 0
+        if n_left:
+            g_out, h_out = _ddot_blocks(row, target, left, n_left, fn, d, t)
+            g, h = g - g_out, h - h_out
+        if n_joined:
+            g_in, h_in = _ddot_blocks(row, target, joined, n_joined, fn, d, t)
+            g, h = g + g_in, h + h_in
+        else:
+            g, h = g + 0.0, h + 0.0
+        for i in range(kept.size):
+            kept[i] = not below[i]
+    return 0

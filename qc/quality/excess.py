@@ -11,8 +11,9 @@ import numpy as np
 from scipy import linalg, ndimage, special
 from scipy.linalg import lapack
 
+from ._box_kernels import agrees, box_fit, routines
 from ._bvls import bounded_lstsq
-from ._fit_kernels import excess_marks, kept_changes, one_row_model
+from ._fit_kernels import excess_marks, kept_changes, one_row_fit, one_row_model
 from ._kernels import box3_sums, largest_excess3, poisson_tail_verdicts
 from .settings import QualitySettings
 
@@ -22,6 +23,43 @@ _MAX_FIT_ROUNDS = 12
 
 # Bins per block when Gram matrices are updated (bounds the temporary copies).
 _GRAM_BLOCK = 8192
+
+
+# The library routines the compiled box fit calls (None: the numpy form runs), checked
+# against the numpy form at the first fit (:func:`_compiled_routines`).
+_ROUTINES = routines()
+_ROUTINES_CHECKED = False
+
+
+def _compiled_routines():
+    """:data:`_ROUTINES`, or None when the compiled box fit disagrees with the numpy form on
+    the check systems (:func:`._box_kernels.agrees`; checked once per process)."""
+    global _ROUTINES, _ROUTINES_CHECKED
+    if not _ROUTINES_CHECKED:
+        if _ROUTINES is not None and not (agrees(_ROUTINES, _box_least_squares_numpy)
+                                          and _one_row_agrees(_ROUTINES)):
+            _ROUTINES = None
+        _ROUTINES_CHECKED = True
+    return _ROUTINES
+
+
+def _one_row_agrees(fn, count: int = 6) -> bool:
+    """Whether the compiled one-row fit gives :func:`_fit_one_row_numpy`'s bits on ``count``
+    small channels with a stain (bins leave and join between rounds)."""
+    settings = QualitySettings()
+    rng = np.random.default_rng(20261207)
+    for t in range(count):
+        area = np.full((6 + t, 9), 16.0)
+        area[-1] = 8.0
+        bins = rng.poisson(0.5 * (1 + t) * area).astype(np.float64)
+        bins[:2] += rng.poisson(40.0, (2, 9))
+        design = area.ravel()[None, :]
+        ours = _fit_one_row_compiled(bins.ravel(), design, np.inf, settings, fn)
+        ref = _fit_one_row_numpy(bins.ravel(), design, np.inf, settings)
+        if ours is not None and any(a.tobytes() != b.tobytes()
+                                    for a, b in zip(ours, ref, strict=True)):
+            return False
+    return True
 
 
 def poisson_tail_below(n: np.ndarray, mu: np.ndarray, alpha: float) -> np.ndarray:
@@ -146,6 +184,48 @@ class _RoundWork:
 
 
 def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
+    """:func:`_fit_one_row_numpy` by one compiled call (:func:`._fit_kernels.one_row_fit`:
+    the same operations, the moved bins' sums by numpy's ``ddot``); the numpy form where
+    it hands back (a round leaving bins to ``gammainc``) or the routines are missing."""
+    fn = _compiled_routines()
+    found = None if fn is None else _fit_one_row_compiled(target, design, upper, settings, fn,
+                                                          gram=gram, cross=cross)
+    if found is None:
+        return _fit_one_row_numpy(target, design, upper, settings, gram=gram, cross=cross)
+    return found
+
+
+def _fit_one_row_compiled(target, design, upper, settings, fn, *, gram=None, cross=None):
+    """(mu, coef, kept) of :func:`._fit_kernels.one_row_fit`, or None where it hands back."""
+    if target.dtype != np.float64 or target.shape != (design.shape[1],):
+        return None
+    unit = settings.counts_per_unit
+    g, h = _one_row_sums(design, target) if gram is None else (float(gram[0, 0]),
+                                                               float(cross[0]))
+    n = np.ascontiguousarray(target * unit, dtype=np.float64).reshape(-1)  # as _RoundWork
+    size = n.size
+    mu, coef = np.empty(size), np.zeros(1)
+    below, kept = np.empty(size, bool), np.empty(size, bool)
+    hard, left, joined = (np.empty(size, np.intp) for _ in range(3))
+    status = one_row_fit(np.ascontiguousarray(design[0]), np.ascontiguousarray(target), n,
+                         g, h, upper, unit, settings.background_floor * unit,
+                         math.log(settings.fit_alpha), _MAX_FIT_ROUNDS, _GRAM_BLOCK, fn, mu,
+                         below, hard, left, joined, kept, coef)
+    return (mu, coef, kept) if status == 0 else None
+
+
+def _one_row_sums(design, target):
+    """gram_matrix and _cross of a one-row design, a block at a time (0.0 + each block's
+    product), as Python floats."""
+    g = h = 0.0
+    for start in range(0, design.shape[1], _GRAM_BLOCK):
+        d = design[:, start:start + _GRAM_BLOCK].astype(np.float64)
+        g += float((d @ d.T)[0, 0])
+        h += float((d @ target[start:start + _GRAM_BLOCK])[0])
+    return g, h
+
+
+def _fit_one_row_numpy(target, design, upper, settings, *, gram=None, cross=None):
     """:func:`_fit_rows` of a one-row float64 design (the flat background of one channel):
     the same operations on the same values, bit for bit, with the 1 x 1 Gram matrix and
     its cross term as Python floats (the same IEEE operations as numpy's 1-element arrays),
@@ -154,11 +234,7 @@ def _fit_one_row(target, design, upper, settings, *, gram=None, cross=None):
     of the moved bins by the same numpy products as :func:`_partial_gram`."""
     unit = settings.counts_per_unit
     if gram is None:  # gram_matrix and _cross, a block at a time (0.0 + each block's product)
-        g = h = 0.0
-        for start in range(0, design.shape[1], _GRAM_BLOCK):
-            d = design[:, start:start + _GRAM_BLOCK].astype(np.float64)
-            g += float((d @ d.T)[0, 0])
-            h += float((d @ target[start:start + _GRAM_BLOCK])[0])
+        g, h = _one_row_sums(design, target)
     else:
         g, h = float(gram[0, 0]), float(cross[0])
     n = target * unit
@@ -294,6 +370,22 @@ def _partial_gram(design: np.ndarray, target: np.ndarray, index: np.ndarray):
 
 def _box_least_squares(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
                        upper: np.ndarray) -> np.ndarray:
+    """:func:`_box_least_squares_numpy` by one compiled call (:func:`._box_kernels.box_fit`,
+    the same library routines on the same values), the numpy form where it hands back."""
+    fn = _compiled_routines()
+    if (fn is not None and gram.dtype == cross.dtype == lower.dtype == upper.dtype
+            == np.float64 and gram.ndim == 2 and cross.ndim == lower.ndim == upper.ndim == 1
+            and gram.shape == (cross.size, cross.size) == (lower.size, upper.size)):
+        coef = np.empty(cross.size)
+        # C-contiguous copies (the same values): one compiled specialisation to load
+        args = (np.ascontiguousarray(v) for v in (gram, cross, lower, upper))
+        if box_fit(*args, fn, coef) == 0:
+            return coef
+    return _box_least_squares_numpy(gram, cross, lower, upper)
+
+
+def _box_least_squares_numpy(gram: np.ndarray, cross: np.ndarray, lower: np.ndarray,
+                             upper: np.ndarray) -> np.ndarray:
     """argmin c^T G c - 2 c^T h subject to lower <= c <= upper (G = D D^T, h = D n).
 
     Variables with ``upper <= lower`` are fixed at ``lower``; the others are
