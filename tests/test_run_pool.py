@@ -101,6 +101,25 @@ def test_a_dying_worker_gives_a_failed_record_and_the_others_go_on(tmp_path):
     assert len({by_roi[n]["pid"] for n in "acde"}) <= 3  # workers are reused; the dead one replaced
 
 
+def _wash_then_end(job):
+    """A stand-in for wash_one: after ROI ``a`` the worker ends while it is idle."""
+    if job.roi == "a":
+        import threading
+
+        threading.Timer(0.1, os._exit, (3,)).start()
+    return {"roi": job.roi, "status": "done", "pid": os.getpid()}
+
+
+def test_a_worker_that_ended_while_idle_is_replaced(tmp_path):
+    jobs = [Job(n, tmp_path / f"{n}.ome.tiff", tmp_path, None, tmp_path, "") for n in "abc"]
+    records = []
+    for record in pool_module.wash_in_processes(jobs, 1, 2, _wash_then_end, _failed):
+        records.append(record)
+        time.sleep(1.0)  # the worker has ended by the time it would get the next ROI
+    assert [(r["roi"], r["status"]) for r in records] == [("a", "done"), ("b", "done"), ("c", "done")]
+    assert records[0]["pid"] != records[1]["pid"] == records[2]["pid"]
+
+
 def test_the_fork_server_runs_one_thread(tmp_path):
     from multiprocessing import forkserver
 

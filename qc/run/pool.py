@@ -100,7 +100,13 @@ def wash_in_processes(jobs, processes: int, cores: int, wash, failed) -> Iterabl
         while pending or busy:
             while pending and len(busy) < processes:
                 worker = idle.pop() if idle else _Worker(context, threads, wash)
-                worker.give(pending.popleft())
+                if not worker.give(pending[0]):  # it ended while idle: a new one takes the job
+                    code = worker.stop()
+                    if worker.fresh:
+                        yield failed(pending.popleft(), WorkerDied(
+                            f"a new worker process ended (exit code {code}) before it could take it"))
+                    continue
+                pending.popleft()
                 busy[worker.conn] = worker
             # a short timeout: an asynchronous KeyboardInterrupt (the studio's Cancel) is
             # delivered between waits
@@ -116,6 +122,7 @@ def wash_in_processes(jobs, processes: int, cores: int, wash, failed) -> Iterabl
                     record = failed(job, WorkerDied(
                         f"the worker process washing it ended (exit code {code}) without a result"))
                 else:
+                    worker.fresh = False
                     idle.append(worker)
                 yield record
     finally:
@@ -139,10 +146,16 @@ class _Worker:
         lifeline.close()
         self.conn = here
         self.job = None
+        self.fresh = True  # no job taken yet
 
-    def give(self, job) -> None:
+    def give(self, job) -> bool:
+        """Send the process a job; False when it has ended (nothing sent)."""
+        try:
+            self.conn.send(job)
+        except (OSError, ValueError):
+            return False
         self.job = job
-        self.conn.send(job)
+        return True
 
     def take(self):
         """The record of the job, or None when the process ended without sending it."""
@@ -272,15 +285,23 @@ def _disk_bytes(path: Path) -> int:
 
 
 def _pixel_bytes(path: Path) -> int | None:
-    """Bytes of an ROI's pixels from its header (nothing else is read); None when unreadable."""
+    """Bytes of an ROI's pixels from its header (tifffile, or the OME-Zarr metadata; no pixel
+    is read, dask is not loaded); None when unreadable."""
     try:
-        from ..io import read_roi
+        if os.path.isdir(path):
+            from ..io.zarr import open_zarr
 
-        roi = read_roi(path, lazy=True)
+            array = open_zarr(Path(path))[0]
+            shape, dtype = array.shape, array.dtype
+        else:
+            import tifffile
+
+            with tifffile.TiffFile(path) as tif:
+                shape, dtype = tif.series[0].shape, tif.series[0].dtype
         count = 1
-        for n in roi.shape:
+        for n in shape:
             count *= int(n)
-        return count * roi.data.dtype.itemsize
+        return count * dtype.itemsize
     except Exception:  # an unreadable ROI fails in its own task, with its own error
         return None
 
