@@ -101,6 +101,19 @@ def test_a_dying_worker_gives_a_failed_record_and_the_others_go_on(tmp_path):
     assert len({by_roi[n]["pid"] for n in "acde"}) <= 3  # workers are reused; the dead one replaced
 
 
+def test_a_script_without_a_main_guard_runs_on_the_pool(tmp_path):
+    """The workers do not import the calling script again (it would run the run again)."""
+    cohort = _cohort(tmp_path / "cohort", names=("a", "b", "c"), size=32)
+    script = tmp_path / "script.py"
+    script.write_text("import sys\nfrom plexwash.qc.run import run_cohort\n"
+                      f"s = run_cohort({str(cohort)!r}, {str(tmp_path / 'run')!r}, progress=False)\n"
+                      "sys.exit(s.exit_code)\n")
+    done = subprocess.run([sys.executable, str(script)], capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr[-2000:]
+    records = read_ledger(tmp_path / "run")
+    assert sorted(r["roi"] for r in records) == ["a", "b", "c"] and os.getpid() not in {r["pid"] for r in records}
+
+
 def _wash_then_end(job):
     """A stand-in for wash_one: after ROI ``a`` the worker ends while it is idle."""
     if job.roi == "a":

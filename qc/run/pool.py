@@ -29,6 +29,7 @@ import collections
 import os
 import signal
 import sys
+import types
 from collections.abc import Iterable
 from pathlib import Path
 
@@ -141,7 +142,15 @@ class _Worker:
         lifeline, self.lifeline = context.Pipe(duplex=False)  # never written: its end is the news
         self.process = context.Process(target=serve, args=(there, lifeline, threads, wash),
                                        name="plexwash-roi", daemon=True)
-        self.process.start()
+        main = sys.modules.get("__main__")
+        # the worker needs nothing of the program running the run: with its main module
+        # hidden while the worker starts, the worker does not import (and run) that
+        # program's file again, so a script without `if __name__ == "__main__":` works
+        sys.modules["__main__"] = types.ModuleType("__main__")
+        try:
+            self.process.start()
+        finally:
+            sys.modules["__main__"] = main
         there.close()
         lifeline.close()
         self.conn = here
