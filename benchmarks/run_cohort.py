@@ -19,8 +19,9 @@ of ``--repeats``; ratios are taken within this one run. Parts (``--parts``, defa
   2 cores, also printed against the default). Two ratios each: the whole process (wall
   time of ``plexwash run``, start-up and closing report included) and the ROI throughput
   from the ledger (ROIs per second between the first ROI's start and the last ROI's
-  finish: the washing alone). Each mode's CPU time (its worker processes included) over its
-  wall time says how many cores it kept busy.
+  finish: the washing alone). Each mode's CPU time over its wall time is printed too; it
+  counts the processes the run waits for, not the pool's workers (children of the fork
+  server), so for the pool it is the run's own process only.
 
 The machine may be shared: the load average is printed with each part.
 
@@ -201,7 +202,7 @@ def main(argv=None) -> None:
             print(f"\n[workers] 8 ROIs of {args.channels} x {args.size // 2} x {args.size // 2}")
             for name, runs in timed.items():
                 print(f"{name:12s} whole process median {wall[name]:6.2f} s  runs {_list(w for w, _ in runs)}"
-                      f"   cores busy (CPU / wall) {_list(c / w for w, c in runs)}"
+                      f"   CPU / wall (workers not counted) {_list(c / w for w, c in runs)}"
                       f"   ledger throughput {rate[name]:.3f} ROI/s (runs {_list(rates[name])})")
             print(f"whole process (wall time, start-up and report included): --workers 2 / --workers 1 = "
                   f"{wall['--workers 1'] / wall['--workers 2']:.2f}x, --workers 2 / default = "
