@@ -78,7 +78,8 @@ def build_parser() -> argparse.ArgumentParser:
     _wash_options(p)
     p.add_argument("--samples", type=Path,
                    help="samples.csv (file,batch[,...]; default: samples.csv in the cohort folder)")
-    p.add_argument("--workers", type=int, help="start a local dask.distributed cluster of N workers")
+    p.add_argument("--workers", type=int, help="wash on N worker processes of this machine "
+                   "(default: one per core for small ROIs, else this process)")
     p.add_argument("--scheduler", help="join a running dask.distributed scheduler (tcp://host:port)")
     p.add_argument("--connect-timeout", type=float, default=5.0, metavar="SECONDS",
                    help="how long to try reaching --scheduler before giving up (default 5)")
@@ -95,7 +96,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = commands.add_parser("demo", help="the main job on the demo cohort: spillover, run, report")
     p.add_argument("--out", type=Path, default=Path("plexwash-demo"), help="run folder (default ./plexwash-demo)")
-    p.add_argument("--workers", type=int, help="start a local dask.distributed cluster of N workers")
+    p.add_argument("--workers", type=int, help="wash on N worker processes of this machine "
+                   "(default: one per core for small ROIs, else this process)")
     p.set_defaults(handler=_demo)
 
     p = commands.add_parser("studio", help="open the napari studio")

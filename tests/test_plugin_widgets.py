@@ -449,6 +449,7 @@ def test_run_washes_the_cohort_and_cancel_stops(make_napari_viewer, qtbot, cohor
 
     hook = BlockedWash(run_module.wash_one, block=1)
     monkeypatch.setattr(run_module, "wash_one", hook)
+    monkeypatch.setattr(run_module, "pool_size", lambda jobs, cores: 0)  # the hook is in this process
     viewer = make_napari_viewer()
     cohort_widget = dock(viewer, "Cohort")
     run = dock(viewer, "Run")
@@ -484,6 +485,7 @@ def test_cancel_interrupts_a_run_between_rois(make_napari_viewer, qtbot, cohort,
 
     hook = BlockedWash(run_module.wash_one, block=2)
     monkeypatch.setattr(run_module, "wash_one", hook)
+    monkeypatch.setattr(run_module, "pool_size", lambda jobs, cores: 0)  # the hook is in this process
     viewer = make_napari_viewer()
     run = dock(viewer, "Run")
     run.cohort.set_path(cohort / "cohort")

@@ -603,7 +603,8 @@ _DRIVER = textwrap.dedent("""
     import numpy as np
     import tifffile
     from plexwash.qc.io import roi as io
-    from plexwash.qc.run import run_cohort
+    from plexwash.qc.run import pool, run_cohort
+    pool.POOL_ROI_BYTES = -1  # the hook below is in this process: wash here (test_run_pool: workers)
     if sys.argv[5:] == ["lazy"]:  # every ROI read as dask: the staged wash
         io.LAZY_BYTES = 0
     block, marker = os.environ["BLOCK_ROI"], Path(os.environ["BLOCK_MARKER"])
@@ -779,6 +780,7 @@ def test_cancel_event_stops_after_the_roi_in_flight(tmp_path, monkeypatch):
     import threading
 
     import plexwash.qc.run.execute as run_module
+    import plexwash.qc.run.pool as pool_module
     from plexwash.qc.io import write_ome_tiff
 
     cohort = tmp_path / "cohort"
@@ -796,6 +798,7 @@ def test_cancel_event_stops_after_the_roi_in_flight(tmp_path, monkeypatch):
         return real(job)
 
     monkeypatch.setattr(run_module, "wash_one", cancel_pressed_during_the_first)
+    monkeypatch.setattr(pool_module, "POOL_ROI_BYTES", -1)  # the hook is in this process: wash here
     with pytest.raises(KeyboardInterrupt):
         run_cohort(cohort, tmp_path / "run", progress=False, cancel=cancel)
     assert started == ["a"]  # the ROI in flight finished; no other began
@@ -811,6 +814,7 @@ def test_staging_dir_is_passed_down_and_the_cli_reads_it_from_the_environment(tm
     from plexwash.qc.cli import main
     from plexwash.qc.io import roi as io_module
     from plexwash.qc.io import write_ome_tiff
+    from plexwash.qc.run import pool as pool_module
     from plexwash.qc.staging import Staging
 
     cohort = tmp_path / "cohort"
@@ -827,6 +831,7 @@ def test_staging_dir_is_passed_down_and_the_cli_reads_it_from_the_environment(tm
 
     monkeypatch.setattr(sys.modules["plexwash.qc.wash"], "Staging", Recorded)
     monkeypatch.setattr(io_module, "LAZY_BYTES", 0)  # read lazily: the wash stages on disk
+    monkeypatch.setattr(pool_module, "POOL_ROI_BYTES", -1)  # the patches above are in this process
     scratch = tmp_path / "scratch"
     run_cohort(cohort, tmp_path / "api", progress=False, staging_dir=scratch)
     assert len(folders) == 2 and all(f.parent == scratch for f in folders)

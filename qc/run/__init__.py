@@ -22,11 +22,18 @@ stack atomically, measures quality on raw and on the washed pixels still at hand
 read-back of the output), and hashes the output. Whole ROIs keep every
 write local to the process that computed it (no pixels travel between processes), make a
 task's result all-or-nothing, and let the ledger stay a single writer (this process).
-Inside a task the ROI's chunks run on dask's threaded scheduler.
+Inside a task the ROI's chunks run on dask's threaded scheduler (one thread: in turn).
 
-- default: in this process, one ROI after the other, each ROI's chunks on all cores;
-- ``workers=N``: a ``dask.distributed.LocalCluster`` of N worker processes, one ROI per
-  worker at a time, each with ``cores // N`` threads for its chunks;
+- default, small ROIs (:mod:`.pool`): with two or more ROIs to wash and two or more
+  cores, ROIs whose pixels are at most ``pool.POOL_ROI_BYTES`` (64 MiB) are washed side
+  by side on worker processes of this machine, one per core (fewer when half the
+  available memory does not hold them), one ROI per worker at a time, each with
+  ``cores // N`` threads; a small ROI is mostly Python (the GIL), so threads inside it
+  cannot keep the cores busy. The workers start from a fork server that imported the
+  engine once (Linux; spawned elsewhere);
+- default, otherwise (one ROI, one core, large ROIs): in this process, one ROI after
+  the other, each ROI's chunks on all cores;
+- ``workers=N``: the same pool with N worker processes, whatever the ROIs' size;
 - ``scheduler="tcp://host:port"``: join a running cluster (``Client(address)``); its
   workers must see the same paths (a shared file system).
 
@@ -47,8 +54,10 @@ under a temporary name and renamed, ledger lines are appended one at a time and 
 so ``kill -9`` loses only the ROIs in flight; leftover temporary files are removed when
 the next run starts. Ctrl-C (or SIGTERM) stops the run: nothing is recorded for the ROIs
 in flight, their temporary files and any output they finished without being recorded are
-removed, and ``KeyboardInterrupt`` propagates (with a remote scheduler, a task already
-running on a worker may still finish writing; the next run redoes it). One
+removed, and ``KeyboardInterrupt`` propagates (worker processes of this machine are
+stopped first, each removing its ROI's files; with a remote scheduler, a task already
+running on a worker may still finish writing; the next run redoes it). A worker
+process that dies gives its ROI a ``failed`` record. One
 unreadable ROI is recorded ``failed`` with its error; the others go on; the exit code is
 then 3. Inputs are only ever opened for reading. A lock file keeps two runs from writing
 into the same folder at once.
@@ -58,7 +67,8 @@ Modules
 - :mod:`.cohort`: :func:`run_cohort`, :class:`RunSummary`, the order of a run;
 - :mod:`.plan`: checking the inputs, the hand-off files, the jobs (:class:`~.plan.Job`)
   and the resume decisions;
-- :mod:`.execute`: one ROI (:func:`~.execute.wash_one`), threads or dask.distributed;
+- :mod:`.execute`: one ROI (:func:`~.execute.wash_one`), here, on the pool or on dask.distributed;
+- :mod:`.pool`: the worker processes of this machine and when they are used;
 - :mod:`.folder`: the output guard, the lock, interrupts, heap tuning;
 - :mod:`.progress`: ``run.log`` and the progress bar;
 - :mod:`.demo`: :func:`run_demo`.

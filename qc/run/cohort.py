@@ -88,7 +88,8 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None,
         folder when present. Its columns are carried into the ledger, ``quality.csv`` and the
         report; a ``spillover`` column names a matrix per batch.
     workers : int, optional
-        Start a local cluster of this many worker processes.
+        Wash on this many worker processes of this machine (default: one per core for
+        small ROIs, else in this process; see :mod:`plexwash.qc.run.pool`).
     scheduler : str, optional
         Address of a running dask scheduler to use (``tcp://host:port``). It is reached
         before anything is written: an unreachable one leaves nothing behind.

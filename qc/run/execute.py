@@ -1,10 +1,12 @@
-"""Executing a run's jobs: in this process on threads, or on dask.distributed.
+"""Executing a run's jobs: worker processes of this machine, this process, or dask.distributed.
 
 The unit of work is one whole ROI (:func:`wash_one`): read, wash, write atomically, measure
-quality on raw and washed, hash, and return the ROI's ledger record. By default the
-jobs run in this process one after the other, each ROI's chunks on a thread pool of all
-cores; with ``workers=N`` on a ``LocalCluster`` of N worker processes; with a scheduler
-address on a running cluster (``Client(address)``, reached first by :func:`connect`).
+quality on raw and washed, hash, and return the ROI's ledger record. By default small
+ROIs are washed side by side on a pool of worker processes, one per core
+(:mod:`.pool`, which also says when), and otherwise in this process one after the other,
+each ROI's chunks on a thread pool of all cores; with ``workers=N`` on a pool of N worker
+processes; with a scheduler address on a running cluster (``Client(address)``, reached
+first by :func:`connect`).
 """
 
 from __future__ import annotations
@@ -26,6 +28,7 @@ from ..files import remove_path, temporary_path
 from ..ledger import json_ready
 from .folder import bound_heap, release_memory
 from .plan import Job
+from .pool import pool_size, wash_in_processes
 
 
 def connect(scheduler: str, timeout: float):
@@ -47,10 +50,22 @@ def execute(jobs: list[Job], *, workers, client, log) -> Iterable[dict]:
     """Run the jobs and yield their ledger records as they finish."""
     if not jobs:
         return
-    if workers is None and client is None:
+    if client is not None:
+        yield from _execute_on_cluster(jobs, client=client, log=log)
+        return
+    cores = _cpu_count()
+    processes = int(workers) if workers is not None else pool_size(jobs, cores)
+    if not processes:
         yield from _execute_here(jobs)
         return
-    yield from _execute_on_cluster(jobs, workers=workers, client=client, log=log)
+    processes = min(processes, len(jobs))
+    log.line(f"washing on {processes} worker process(es), {max(1, cores // processes)} thread(s) each")
+    yield from wash_in_processes(jobs, processes, cores, wash_one, _died)
+
+
+def _died(job: Job, exc: BaseException) -> dict:
+    """The record of an ROI whose worker process ended without returning one."""
+    return _failed_record(job, exc, seconds=0.0, started=_now())
 
 
 def _execute_here(jobs: list[Job]) -> Iterable[dict]:
@@ -74,30 +89,13 @@ def _execute_here(jobs: list[Job]) -> Iterable[dict]:
         pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _execute_on_cluster(jobs: list[Job], *, workers, client, log) -> Iterable[dict]:
-    """Whole ROIs as tasks on a dask.distributed cluster (local processes or a running one)."""
-    try:
-        from distributed import Client, LocalCluster, as_completed
-    except ImportError:  # pragma: no cover - the cluster extra is not installed
-        raise InputError("--workers" if workers else "--scheduler",
-                         "needs dask.distributed (pip install 'plexwash[cluster]')") from None
+def _execute_on_cluster(jobs: list[Job], *, client, log) -> Iterable[dict]:
+    """Whole ROIs as tasks on a running dask.distributed cluster (joined by :func:`connect`)."""
+    from distributed import as_completed
 
-    cluster = None
-    cpus = _cpu_count()
-    if workers is not None:
-        workers = int(workers)
-        threads = max(1, cpus // workers)
-        env = {"OMP_NUM_THREADS": str(threads), "OMP_WAIT_POLICY": "PASSIVE",
-               "NUMBA_NUM_THREADS": str(threads), "OPENBLAS_NUM_THREADS": str(threads),
-               "MKL_NUM_THREADS": str(threads)}
-        cluster = LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
-                               host="127.0.0.1", dashboard_address=None, env=env)
-        client = Client(cluster)
-        log.line(f"started a local cluster: {workers} worker process(es), {threads} thread(s) each")
-        jobs = [dataclasses.replace(job, threads=threads) for job in jobs]
-    else:  # joined before the run folder was touched (run_cohort)
-        log.line(f"joined the dask cluster at {client.scheduler.address} "
-                 f"({len(client.scheduler_info().get('workers', {}))} worker(s))")
+    # joined before the run folder was touched (run_cohort)
+    log.line(f"joined the dask cluster at {client.scheduler.address} "
+             f"({len(client.scheduler_info().get('workers', {}))} worker(s))")
     futures = {}
     try:
         for job in jobs:
@@ -113,8 +111,6 @@ def _execute_on_cluster(jobs: list[Job], *, workers, client, log) -> Iterable[di
         if futures:
             client.cancel(list(futures))
         client.close()
-        if cluster is not None:
-            cluster.close()
 
 
 def wash_one(job: Job) -> dict:
@@ -146,8 +142,8 @@ def wash_one(job: Job) -> dict:
     try:
         threads = job.threads or _worker_threads()
         config = {"scheduler": "threads"}
-        if dask.config.get("pool", None) is None:
-            config["num_workers"] = threads
+        if dask.config.get("pool", None) is None:  # a worker process: its share of the cores
+            config = {"scheduler": "sync" if threads == 1 else "threads", "num_workers": threads}
         with dask.config.set(config):
             record = _wash_and_measure(job, out_dir, written)
     except BaseException as exc:
