@@ -393,6 +393,20 @@ def test_compiled_box_mean_equals_scipy_uniform_filter(shape):
                                       ndimage.uniform_filter(values, window, mode="constant"))
 
 
+def _numpy_block_sums(plane, block):
+    """The reference form: the zero-padded plane reduced over the block axes by numpy at once,
+    each edge block scaled up by the share of it the plane covers."""
+    ny, nx = plane.shape
+    by, bx = -(-ny // block), -(-nx // block)
+    padded = np.zeros((by * block, bx * block), np.float64)
+    padded[:ny, :nx] = plane
+    covered = np.zeros(padded.shape)
+    covered[:ny, :nx] = 1.0
+    whole = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
+    area = covered.reshape(by, block, bx, block).sum(axis=(1, 3))
+    return whole * (block * block) / area
+
+
 def test_block_sums_a_slice_of_rows_at_a_time_equal_the_whole_plane_sums():
     """``block_sums`` sums a slice of block rows at a time (memory); each block's sum is the
     one of the whole padded plane reduced at once (numpy's own sum over the block axes)."""
@@ -402,14 +416,7 @@ def test_block_sums_a_slice_of_rows_at_a_time_equal_the_whole_plane_sums():
     for ny, nx, block in [(2 * BLOCK_SUM_ROWS + 7, 61, 4), (BLOCK_SUM_ROWS + 4, 40, 4),
                           (BLOCK_SUM_ROWS * 3 + 1, 33, 3), (17, 19, 4)]:
         plane = (rng.gamma(0.7, 30.0, (ny, nx)) * rng.random((ny, nx))).astype(np.float32)
-        by, bx = -(-ny // block), -(-nx // block)
-        padded = np.zeros((by * block, bx * block), np.float64)
-        padded[:ny, :nx] = plane
-        covered = np.zeros(padded.shape)
-        covered[:ny, :nx] = 1.0
-        whole = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
-        area = covered.reshape(by, block, bx, block).sum(axis=(1, 3))
-        np.testing.assert_array_equal(block_sums(plane, block), whole * (block * block) / area)
+        np.testing.assert_array_equal(block_sums(plane, block), _numpy_block_sums(plane, block))
 
 
 @pytest.mark.parametrize("dtype", [np.float32, np.float64, np.uint16, np.int32])
@@ -422,15 +429,8 @@ def test_block_sums_of_whole_counts_equal_numpys_block_sums(dtype):
     rng = np.random.default_rng(11)
     for ny, nx, block in [(61, 47, 4), (64, 64, 4), (17, 19, 3), (5, 9, 4), (300, 130, 4)]:
         plane = (rng.poisson(rng.gamma(0.5, 40.0, (ny, nx))) * (rng.random((ny, nx)) < 0.8)).astype(dtype)
-        by, bx = -(-ny // block), -(-nx // block)
-        padded = np.zeros((by * block, bx * block), np.float64)
-        padded[:ny, :nx] = plane
-        covered = np.zeros(padded.shape)
-        covered[:ny, :nx] = 1.0
-        whole = padded.reshape(by, block, bx, block).sum(axis=(1, 3))
-        area = covered.reshape(by, block, bx, block).sum(axis=(1, 3))
         assert _whole_block_sums(plane, block) is not None
-        np.testing.assert_array_equal(block_sums(plane, block), whole * (block * block) / area)
+        np.testing.assert_array_equal(block_sums(plane, block), _numpy_block_sums(plane, block))
     for ny, nx in [(8, 8), (10, 9)]:  # negative zeros: their sum keeps its sign, a padded block's does not
         plane = np.full((ny, nx), -0.0, np.float32)
         plane[0, 0] = 0.0 if ny == 10 else -0.0
