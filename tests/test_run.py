@@ -31,6 +31,8 @@ from plexwash.qc.run import (
     run_cohort,
 )
 
+from ._blocking_write import BLOCKING_WRITE
+
 REQUIRED_LEDGER_KEYS = ("roi", "status", "input_sha256", "output", "output_sha256",
                         "recipe_sha256", "version", "seconds")
 CHANNELS = ["Nd143", "Nd144", "Nd145", "Nd146", "Sm147", "Gd160", "Ir191", "Ir193"]
@@ -597,48 +599,13 @@ def test_same_pixels_whatever_the_scheduler(reference, cohort, tmp_path):
 # --------------------------------------------------------------------------- kill and interrupt
 
 
-_DRIVER = textwrap.dedent("""
-    import os, sys, threading
-    from pathlib import Path
-    import numpy as np
-    import tifffile
+_DRIVER = BLOCKING_WRITE + textwrap.dedent("""
+    import sys
     from plexwash.qc.io import roi as io
     from plexwash.qc.run import pool, run_cohort
-    pool.POOL_ROI_BYTES = -1  # the hook below is in this process: wash here (test_run_pool: workers)
+    pool.POOL_ROI_BYTES = -1  # the hook is in this process: wash here (test_run_pool: workers)
     if sys.argv[5:] == ["lazy"]:  # every ROI read as dask: the staged wash
         io.LAZY_BYTES = 0
-    block, marker = os.environ["BLOCK_ROI"], Path(os.environ["BLOCK_MARKER"])
-    real_write = tifffile.TiffWriter.write
-
-    def tiles(data, tile):
-        for c in range(data.shape[0]):
-            for y in range(0, data.shape[1], tile[0]):
-                for x in range(0, data.shape[2], tile[1]):
-                    yield np.ascontiguousarray(data[c, y:y + tile[0], x:x + tile[1]])
-
-    def blocking_write(self, data, *args, **kwargs):
-        # The hook: the write of level 0 of the blocked ROI stops half way through its tiles,
-        # says so in the marker file (naming the file being written) and waits until a
-        # signal ends it.
-        path = self._fh.path
-        if not Path(path).name.startswith("." + block) or kwargs.get("subfiletype"):
-            return real_write(self, data, *args, **kwargs)
-        if isinstance(data, np.ndarray):
-            kwargs.update(shape=data.shape, dtype=data.dtype)
-            data = tiles(data, kwargs["tile"])
-        total = kwargs["shape"][0] * -(-kwargs["shape"][1] // kwargs["tile"][0]) \\
-            * -(-kwargs["shape"][2] // kwargs["tile"][1])
-
-        def half_then_block():
-            for k, tile in enumerate(data):
-                if k == total // 2:
-                    marker.write_text(str(path))
-                    threading.Event().wait()  # until SIGKILL, or SIGINT's KeyboardInterrupt
-                yield tile
-
-        return real_write(self, half_then_block(), *args, **kwargs)
-
-    tifffile.TiffWriter.write = blocking_write
     try:
         s = run_cohort(sys.argv[1], sys.argv[2], spillover=sys.argv[3], stains=sys.argv[4],
                        progress=False)
@@ -675,7 +642,7 @@ def _wait_for_blocked_write(marker: Path, process, timeout=300) -> Path:
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         if marker.exists() and marker.read_text():
-            return Path(marker.read_text())
+            return Path(marker.read_text().split(" ", 1)[1])
         if process.poll() is not None:
             raise AssertionError(f"run ended before the blocked write: {process.communicate()}")
         time.sleep(0.02)

@@ -18,6 +18,8 @@ from plexwash.qc.run import latest_records, quality_table, read_ledger, run_coho
 from plexwash.qc.run import pool as pool_module
 from plexwash.qc.run.plan import Job
 
+from ._blocking_write import BLOCKING_WRITE
+
 pytestmark = pytest.mark.skipif(not sys.platform.startswith("linux"), reason="fork server, /proc: Linux")
 
 CHANNELS = ["Nd143", "Nd144", "Nd145", "Nd146"]
@@ -149,42 +151,7 @@ def test_the_fork_server_runs_one_thread(tmp_path):
 # process, the fork server and so the workers): the write of level 0 of the ROI BLOCK_ROI
 # stops half way through its tiles, writes the file's path and its process id into the
 # marker file, and waits until a signal ends it.
-_HOOK = textwrap.dedent("""
-    import os, threading
-    from pathlib import Path
-    import numpy as np
-    import tifffile
-
-    real_write = tifffile.TiffWriter.write
-
-    def tiles(data, tile):
-        for c in range(data.shape[0]):
-            for y in range(0, data.shape[1], tile[0]):
-                for x in range(0, data.shape[2], tile[1]):
-                    yield np.ascontiguousarray(data[c, y:y + tile[0], x:x + tile[1]])
-
-    def blocking_write(self, data, *args, **kwargs):
-        path = self._fh.path
-        block = os.environ.get("BLOCK_ROI")
-        if not block or not Path(path).name.startswith("." + block) or kwargs.get("subfiletype"):
-            return real_write(self, data, *args, **kwargs)
-        if isinstance(data, np.ndarray):
-            kwargs.update(shape=data.shape, dtype=data.dtype)
-            data = tiles(data, kwargs["tile"])
-        total = kwargs["shape"][0] * -(-kwargs["shape"][1] // kwargs["tile"][0]) \\
-            * -(-kwargs["shape"][2] // kwargs["tile"][1])
-
-        def half_then_block():
-            for k, tile in enumerate(data):
-                if k == total // 2:
-                    Path(os.environ["BLOCK_MARKER"]).write_text(f"{os.getpid()} {path}")
-                    threading.Event().wait()
-                yield tile
-
-        return real_write(self, half_then_block(), *args, **kwargs)
-
-    tifffile.TiffWriter.write = blocking_write
-""")
+_HOOK = BLOCKING_WRITE
 
 _DRIVER = textwrap.dedent("""
     import sys
