@@ -338,10 +338,8 @@ def remove_speckle(
         Rim rule: a pixel dense in its own window beside a bright cell is judged on its other
         neighbours alone (exact binomial test at ``rim_alpha``; 0: off).
     chain_alpha, chain_max, chain_contacts : optional
-        Chain rule: a group of 2 to ``chain_max`` dropped positive pixels (8-connected) touching
-        at most ``chain_contacts`` kept pixels is kept when its summed counts are improbable
-        for background, ``P(S >= s) < chain_alpha`` for ``S`` a sum of zero-truncated Poisson
-        counts (David & Johnson 1952; exact, :mod:`.speckle_chains`; 0: off).
+        The chain rule's level and group limits (0: off; see the module notes and
+        :mod:`.speckle_chains`).
     lone_alpha : float, optional
         A smaller component stays when one of its pixels has ``P(Y >= value) < lone_alpha``
         under the channel's densest Poisson background (0: off).
