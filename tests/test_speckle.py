@@ -268,7 +268,8 @@ def test_background_rate_recovered_and_not_inflated_by_cells(rate):
 def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, rate, level, keep_touching=False,
                       wide_radius=0, support_alpha=0.2, edge_alpha=0.0, line_half=0, lone_alpha=0.0,
                       line_alpha=0.003, rim_alpha=0.0, line_side_alpha=0.05, flank_alpha=0.01,
-                      flank_distance=2, line_extend=0, area_alpha=1e-6, area_half_alpha=0.01):
+                      flank_distance=2, line_extend=0, area_alpha=1e-6, area_half_alpha=0.01, chain_alpha=1e-4,
+                      chain_max=16, chain_contacts=6, line_max_level=1.0):
     """The documented rule, written with scipy building blocks."""
     side = 2 * radius + 1
     positive = img > np.float32(threshold)
@@ -354,7 +355,49 @@ def reference_speckle(img, *, threshold, radius, alpha, value_alpha, min_area, r
             level_alpha = area_alpha if k == 0 else area_half_alpha
             inside &= n_part >= stats.binom.isf(level_alpha, trials_part, rate) + 1  # scipy.stats.binom.isf
         keep |= inside
+    if chain_alpha > 0 and chain_max >= 2:
+        keep |= reference_chains(img, positive & ~keep, positive & keep, level=level, threshold=threshold,
+                                 chain_alpha=chain_alpha, chain_max=chain_max, chain_contacts=chain_contacts,
+                                 line_max_level=line_max_level)
     return np.where(positive & ~keep, np.float32(0), img)
+
+
+def reference_chains(img, dropped, kept, *, level, threshold, chain_alpha, chain_max, chain_contacts, line_max_level):
+    """The chain rule (one background level): 8-connected groups of dropped positive pixels whose
+    summed whole counts have an exact tail under the sum of truncated Poisson counts below
+    ``chain_alpha``; the tail by the closed form of Tate & Goen (1958) with
+    ``scipy.special.stirling2`` for the zero-truncated case, else by convolving
+    ``scipy.stats.poisson`` probabilities."""
+    top = 1e-4 * 2.0 ** (np.floor(16 * np.log2(line_max_level / 1e-4)) / 16)  # the rule's grid of means
+    out = np.zeros(img.shape, bool)
+    if not level <= top:
+        return out
+    lowest = int(np.floor(threshold)) + 1
+    labels, n = ndi.label(dropped, structure=EIGHT)  # scipy.ndimage.label, 8-connectivity
+    for group in range(1, n + 1):
+        member = labels == group
+        k = int(member.sum())
+        contacts = int((ndi.binary_dilation(member, structure=EIGHT) & kept).sum())
+        if k < 2 or k > chain_max or contacts > chain_contacts:
+            continue
+        total = int(np.floor(img[member].astype(np.float64) + 0.5).sum())
+        out |= member & (truncated_sum_tail_reference(level, k, total, lowest) < chain_alpha)
+    return out
+
+
+def truncated_sum_tail_reference(level, k, total, lowest=1):
+    """``P(S >= total)``, ``S`` the sum of ``k`` Poisson(level) counts each at least ``lowest``."""
+    if lowest == 1:  # Tate & Goen 1958: P(S = s) = k! S2(s, k) level^s / (s! (e^level - 1)^k)
+        s = np.arange(k, max(total, k))
+        below = special.factorial(k) * special.stirling2(s, k, exact=False) * level ** s / (
+            special.factorial(s) * np.expm1(level) ** k)
+        return 1.0 - float(below.sum())
+    y = np.arange(total + 1)
+    pmf = np.where(y >= lowest, stats.poisson.pmf(y, level), 0.0) / stats.poisson.sf(lowest - 1, level)
+    law = np.ones(1)
+    for _ in range(k):
+        law = np.convolve(law, pmf)[:total + 1]
+    return 1.0 - float(law[:total].sum())
 
 
 def along_line(values, pixels, line_half, flank_distance):
@@ -526,7 +569,9 @@ PER_CHANNEL = [
 ]
 
 
-@pytest.mark.parametrize("chunks", [(1, 40, 33), (3, 64, 50), (2, 150, 23)])
+# every chunk at least the default overlap (26 px, the chain rule's 16 included): a narrower chunk makes
+# dask merge chunks for the overlap (the same values, other chunks)
+@pytest.mark.parametrize("chunks", [(1, 40, 33), (3, 50, 48), (2, 150, 44)])
 def test_dask_equals_numpy_across_chunk_borders(chunks):
     stack = small_tissue_stack()
     lazy = da.from_array(stack, chunks=chunks)
@@ -645,11 +690,11 @@ def test_settings_are_frozen_documented_and_defaults_in_range():
         # the functions' own defaults are the settings' defaults
         values = {f.name: f.default for f in dataclasses.fields(cls) if f.name != "enabled"}
         assert build_settings(cls, values, section="x") == obj
-    # line_half + flank_distance + 1 + (min_area - 1) + line_extend
-    assert speckle_depth(SpeckleSettings()) == 4 + 2 + 2 + 2
-    assert speckle_depth(SpeckleSettings(radius=5, min_area=1)) == 7 + 2  # line_half + flank_distance + 1 + rounds
-    assert speckle_depth(SpeckleSettings(radius=5, min_area=1, flank_alpha=0.0, line_extend=0)) == 6
-    assert speckle_depth(SpeckleSettings(line_half=0, line_extend=3)) == 5 + 1 + 1  # wide_radius: no lines, no rounds
+    # line_half + flank_distance + 1 + (min_area - 1) + line_extend + chain_max
+    assert speckle_depth(SpeckleSettings()) == 4 + 2 + 2 + 2 + 16
+    assert speckle_depth(SpeckleSettings(radius=5, min_area=1, chain_alpha=0)) == 7 + 2  # no chain rule
+    assert speckle_depth(SpeckleSettings(radius=5, min_area=1, flank_alpha=0.0, line_extend=0, chain_max=0)) == 6
+    assert speckle_depth(SpeckleSettings(line_half=0, line_extend=3, chain_max=4)) == 5 + 1 + 1 + 4  # no rounds
     assert BackgroundEstimate._fields[:4] == ("rate", "level", "count_threshold", "value_threshold")
 
 

@@ -54,7 +54,8 @@ def random_recipe(seed: int, channels):
                             line_alpha=float(rng.uniform(0.005, 0.02)), rim_alpha=float(rng.uniform(0.02, 0.05)))
     recipe = recipe.replace("speckle", line_side_alpha=float(rng.uniform(0.1, 0.3)),
                             flank_alpha=float(rng.uniform(0.02, 0.05)), flank_distance=3, line_max_level=5.0,
-                            line_extend=3, area_alpha=1e-5, area_half_alpha=0.02)
+                            line_extend=3, area_alpha=1e-5, area_half_alpha=0.02, chain_alpha=1e-3, chain_max=8,
+                            chain_contacts=3)
     recipe = recipe.with_channel("hot_pixels", channels[a], flat_sigmas=0.0, ratio=9.0)
     recipe = recipe.with_channel("hot_pixels", channels[b], enabled=False)
     recipe = recipe.with_channel("speckle", channels[c], radius=1, min_area=1, keep_touching=False,

@@ -171,3 +171,121 @@ def _dense_halves(image, y, x, threshold, upper, top, bottom, left, right, table
     rows, cols = bottom - top + 1, right - left + 1
     return (above >= table[y - top + 1, cols] and below >= table[bottom - y + 1, cols]
             and before >= table[rows, x - left + 1] and after >= table[rows, right - x + 1])
+
+
+@nb.njit(cache=True, nogil=True)
+def keep_chains(image, out, removed, threshold, zone, levels, spilled, grid, chain_min, max_pixels, max_contacts,
+                alpha, lowest):
+    """Keep the groups of dropped positive pixels whose summed counts are improbable for background;
+    return how many pixels were kept again.
+
+    The chain rule of the speckle step, run last on the other rules' ``out`` and ``removed``
+    (float32, updated in place): the dropped positive pixels (``removed > 0``, ``image >
+    threshold``) are grouped 8-connected; a group of ``k`` pixels, ``2 <= k <= max_pixels``,
+    touching at most ``max_contacts`` kept pixels (``out > threshold``), is kept when its summed
+    whole counts ``s`` are improbable, ``P(S >= s) < alpha``, for ``S`` the sum of independent
+    Poisson counts each at least ``lowest``, pixel ``i``'s mean its expected count
+    ``levels[zone] + spilled`` (the background and the spillover compensation removed there); a
+    group whose largest mean lies above the grid is not kept (see :mod:`.speckle_chains`). The
+    tail grows with every mean, so ``chain_min`` (the smallest kept sum at each ``grid`` mean)
+    decides at once a group that fails at its smallest mean rounded down or passes at its largest
+    rounded up; the others get the exact tail (:func:`_chain_tail_below`). The groups are those of
+    the input marks, so the result does not depend on the order of the pixels. Off when
+    ``chain_min`` has no rows.
+    """
+    height, width = image.shape
+    if chain_min.shape[0] == 0:
+        return 0
+    candidates = 0
+    for y in range(height):
+        for x in range(width):
+            if removed[y, x] > 0.0 and image[y, x] > threshold:
+                candidates += 1
+    if candidates < 2:
+        return 0
+    seen = np.zeros((height, width), np.bool_)
+    stamp = np.zeros((height, width), np.int32)  # the last group a kept pixel was counted for
+    queue = np.empty(candidates, np.int64)
+    restored = 0
+    group = 0
+    for y0 in range(height):
+        for x0 in range(width):
+            if seen[y0, x0] or not (removed[y0, x0] > 0.0 and image[y0, x0] > threshold):
+                continue
+            seen[y0, x0] = True
+            queue[0] = y0 * width + x0
+            head, tail, total, contacts, mean, least = 0, 1, 0.0, 0, 0.0, np.inf
+            group += 1
+            while head < tail:
+                p = queue[head]
+                head += 1
+                y, x = p // width, p % width
+                total += _whole(image[y, x])
+                here = levels[zone[y, x]] + max(np.float64(spilled[y, x]), 0.0)
+                mean = max(mean, here)
+                least = min(least, here)
+                for yy in range(max(0, y - 1), min(height, y + 2)):
+                    for xx in range(max(0, x - 1), min(width, x + 2)):
+                        if not seen[yy, xx] and removed[yy, xx] > 0.0 and image[yy, xx] > threshold:
+                            seen[yy, xx] = True
+                            queue[tail] = yy * width + xx
+                            tail += 1
+                        elif out[yy, xx] > threshold and stamp[yy, xx] != group:
+                            stamp[yy, xx] = group
+                            contacts += 1
+            if tail < 2 or tail > max_pixels or contacts > max_contacts or not mean <= grid[grid.size - 1]:
+                continue
+            g = 0
+            while grid[g] < mean:
+                g += 1
+            low = grid.size - 1
+            while low > 0 and grid[low] > least:
+                low -= 1
+            if grid[low] > least or total < chain_min[low, tail]:
+                continue  # improbable at no mean as low as the group's smallest
+            keep = total >= chain_min[g, tail]
+            if not keep:  # between the bounds: the exact tail of the group's own means
+                means = np.empty(tail, np.float64)
+                for i in range(tail):
+                    y, x = queue[i] // width, queue[i] % width
+                    means[i] = levels[zone[y, x]] + max(np.float64(spilled[y, x]), 0.0)
+                keep = 1.0 - _chain_tail_below(means, int(total), lowest) < alpha
+            if keep:
+                for i in range(tail):
+                    y, x = queue[i] // width, queue[i] % width
+                    out[y, x] = image[y, x]
+                    removed[y, x] = 0.0
+                restored += tail
+    return restored
+
+
+@nb.njit(cache=True, nogil=True)
+def _chain_tail_below(means, total, lowest):
+    """``P(S < total)`` for ``S`` the sum of independent Poisson(``means[i]``) counts each
+    conditioned on being at least ``lowest`` (zero-truncated Poisson for ``lowest = 1``, David &
+    Johnson 1952), by convolution of the truncated laws up to ``total - 1``."""
+    if total <= 0:
+        return 0.0
+    dist = np.zeros(total, np.float64)
+    dist[0] = 1.0
+    pmf = np.zeros(total, np.float64)
+    for i in range(means.size):
+        mu = means[i]
+        below = 0.0  # P(Y < lowest)
+        term = np.exp(-mu)
+        for y in range(total):
+            if y < lowest:
+                below += term
+                pmf[y] = 0.0
+            else:
+                pmf[y] = term
+            term *= mu / (y + 1)
+        kept = -np.expm1(-mu) if lowest == 1 else 1.0 - below
+        nxt = np.zeros(total, np.float64)
+        for a in range(total):
+            if dist[a] == 0.0:
+                continue
+            for y in range(lowest, total - a):
+                nxt[a + y] += dist[a] * pmf[y] / kept
+        dist = nxt
+    return dist.sum()

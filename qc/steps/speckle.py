@@ -22,6 +22,12 @@ Speckle
       passes the same tests with the side test asked of that half alone: a fibre's end; and a
       dropped dim pixel whose wide window and each half of it are dense (``area_alpha``) is kept.
 
+    * (chain rule, ``chain_alpha``) last, a group of 2 to ``chain_max`` dropped positive pixels
+      (8-connected) touching at most ``chain_contacts`` kept pixels is kept when its summed
+      whole counts are improbable for background plus the spillover compensation removed there
+      (exact tail of a sum of zero-truncated Poisson counts, David & Johnson 1952, Tate & Goen
+      1958; :mod:`.speckle_chains`): a dim fibre that bends, in low background.
+
     Then kept pixels are grouped into 8-connected components and components smaller than
     ``min_area`` are dropped, unless one of their pixels is so bright that background
     cannot explain it anywhere in the ROI: ``P(Y >= value) < lone_alpha`` under
@@ -87,6 +93,7 @@ from .lifting import (
     removed_fraction,
     run_stack,
 )
+from .speckle_chains import with_chain_tables
 from .speckle_counts import (
     centre_histogram,
     centre_histogram_dask,
@@ -272,6 +279,9 @@ def remove_speckle(
     area_alpha: float = 1e-6,
     area_half_alpha: float = 0.01,
     rim_alpha: float = 0.01,
+    chain_alpha: float = 1e-4,
+    chain_max: int = 16,
+    chain_contacts: int = 6,
     background: BackgroundEstimate | None = None,
 ) -> StepResult:
     """Remove sparse background counts of one channel by a local-density test.
@@ -327,6 +337,9 @@ def remove_speckle(
     rim_alpha : float, optional
         Rim rule: a pixel dense in its own window beside a bright cell is judged on its other
         neighbours alone (exact binomial test at ``rim_alpha``; 0: off).
+    chain_alpha, chain_max, chain_contacts : optional
+        The chain rule's level and group limits (0: off; see the module notes and
+        :mod:`.speckle_chains`).
     lone_alpha : float, optional
         A smaller component stays when one of its pixels has ``P(Y >= value) < lone_alpha``
         under the channel's densest Poisson background (0: off).
@@ -368,7 +381,8 @@ def remove_speckle(
               "wide_radius": wide_radius, "support_alpha": support_alpha, "lone_alpha": lone_alpha,
               "line_half": line_half, "line_alpha": line_alpha, "line_side_alpha": line_side_alpha,
               "line_max_level": line_max_level, "flank_alpha": flank_alpha, "flank_distance": flank_distance, "rim_alpha": rim_alpha,
-              "line_extend": line_extend, "area_alpha": area_alpha, "area_half_alpha": area_half_alpha}
+              "line_extend": line_extend, "area_alpha": area_alpha, "area_half_alpha": area_half_alpha,
+              "chain_alpha": chain_alpha, "chain_max": chain_max, "chain_contacts": chain_contacts}
     settings = build_settings(SpeckleSettings, values, section="speckle")
     if background is not None and float(background.threshold) != float(settings.threshold):
         raise InputError(
@@ -395,7 +409,7 @@ def _speckle_numpy(image: np.ndarray, settings: SpeckleSettings, background, out
     if tested is not image:
         counts = _counts(tested, settings)
     out, removed = kernel_outputs(image, out, removed)
-    _speckle_apply(tested, counts, zone, params, out, removed)
+    _speckle_apply(tested, counts, zone, params, out, removed, spilled)
     if tested is not image:
         np.subtract(image, out, out=removed)
     stats = _speckle_stats(settings, background)
@@ -438,10 +452,11 @@ def _regional_background(histogram: np.ndarray, settings: SpeckleSettings) -> Ba
 def filter_parameters(settings: SpeckleSettings, background: BackgroundEstimate, zone=None) -> dict:
     """:func:`.speckle_tests.filter_parameters` with the area rule's tables (``area_min``,
     ``area_half_min``)."""
-    return with_area_tables(table_parameters(settings, background, zone), settings, background.rate, zone)
+    return with_chain_tables(with_area_tables(table_parameters(settings, background, zone), settings,
+                                              background.rate, zone), settings)
 
 
-def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
+def _speckle_apply(image, counts, zone, params: dict, out, removed, spilled=None) -> int:
     if params["pass_through"]:  # every window is full: no pixel is sparser than background
         out[...] = image
         removed[...] = 0.0
@@ -454,7 +469,8 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
         _k.window_counts(image, params["threshold"], params["wide_radius"], wide, params["wide_upper"])
     zone = np.ascontiguousarray(zone, np.uint8)
     lines = line_offsets(params["line_half"]) if params["line_half"] > 0 else _NO_LINES
-    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_extend", "area_min", "area_half_min")
+    skip = ("pass_through", "zoned", "wide_upper", "levels", "line_half", "line_extend", "area_min", "area_half_min",
+            "chain_grid", "chain_min", "chain_max", "chain_contacts", "chain_alpha", "chain_lowest")
     kernel_args = {k: v for k, v in params.items() if k not in skip}
     n_removed = _k.speckle_filter(image, counts, wide, lines, params["wide_upper"], zone=zone, out=out,
                                   removed=removed, **kernel_args)
@@ -465,6 +481,11 @@ def _speckle_apply(image, counts, zone, params: dict, out, removed) -> int:
     if params["wide_radius"] > 0:
         n_removed -= _g.keep_areas(image, wide, out, removed, params["threshold"], params["wide_upper"], zone,
                                    params["wide_radius"], params["area_min"], params["area_half_min"])
+    if params["chain_min"].shape[0] > 0:  # the chain rule, against background plus removed spillover
+        ghost = np.zeros(image.shape, np.float32) if spilled is None else np.ascontiguousarray(spilled, np.float32)
+        n_removed -= _g.keep_chains(image, out, removed, params["threshold"], zone, params["levels"], ghost,
+                                    params["chain_grid"], params["chain_min"], params["chain_max"],
+                                    params["chain_contacts"], params["chain_alpha"], params["chain_lowest"])
     return n_removed
 
 
@@ -476,7 +497,7 @@ def _speckle_block(block, zone=None, spilled=None, *, params: dict, settings: Sp
     counts = np.empty(block.shape, np.uint16)
     _k.window_counts(block, params["threshold"], params["radius"], counts)
     out = np.empty(block.shape, np.float32)
-    _speckle_apply(block, counts, zone, params, out, np.empty_like(out))
+    _speckle_apply(block, counts, zone, params, out, np.empty_like(out), spilled if settings is not None else None)
     return out
 
 

@@ -105,6 +105,21 @@ class SpeckleSettings:
         " kept by density only when its other neighbours alone are this improbable for background (exact"
         " binomial test; removes background on the rims of cells; 0: off)", low=0.0, high=0.5,
     )
+    chain_alpha: float = setting(
+        1e-4, "dropped positive pixels forming an 8-connected group of 2 to chain_max pixels are kept when"
+        " their summed counts are this improbable for background (exact tail of a sum of zero-truncated"
+        " Poisson counts, David & Johnson 1952): a dim fibre that bends, in low background (0: off)",
+        low=0.0, high=0.5,
+    )
+    chain_max: int = setting(
+        16, "largest group of dropped pixels the chain rule judges (a larger group is a dense area, judged"
+        " by the windows); the chunk overlap grows by this many pixels", low=0, high=64,
+    )
+    chain_contacts: int = setting(
+        6, "... and only when the group touches at most this many kept pixels (8-connected): a chain meets"
+        " kept pieces at its ends, a group along the rim of a kept cell touches it all along, where the counts"
+        " are not background's alone", low=0, high=10**6,
+    )
     local_rates: bool = setting(
         True, "test against the background where the pixel lies (tissue or glass, and its local variation)"
         " rather than one rate for the whole channel"
@@ -117,20 +132,25 @@ def speckle_depth(settings: SpeckleSettings) -> int:
     The largest of ``radius``, ``wide_radius`` and ``line_half`` (plus ``flank_distance`` with the flank test)
     for the window and line counts, 1 for the neighbour
     mean and the ``keep_touching`` rule, ``min_area - 1`` for the component-size rule (see the
-    module notes), and one pixel per round of the line-end rule (``line_extend``: a round reads
-    the kept marks of the pixels next to it).
+    module notes), one pixel per round of the line-end rule (``line_extend``: a round reads
+    the kept marks of the pixels next to it), and ``chain_max`` for the chain rule (a group it
+    judges spans fewer pixels; a larger group shows more than ``chain_max`` pixels within that
+    distance, so a block sees it is too large).
 
     Examples
     --------
     >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=0, line_half=0, min_area=2))
     4
     >>> speckle_depth(SpeckleSettings(radius=2, wide_radius=5, line_half=4, flank_distance=2, min_area=2,
-    ...                               line_extend=2))
+    ...                               line_extend=2, chain_alpha=0))
     10
+    >>> speckle_depth(SpeckleSettings())
+    26
     """
     extend = int(settings.line_extend) if int(settings.line_half) > 0 else 0
+    chains = int(settings.chain_max) if settings.chain_alpha > 0 and int(settings.chain_max) >= 2 else 0
     return (max(int(settings.radius), int(settings.wide_radius), _line_reach(settings)) + 1
-            + max(int(settings.min_area) - 1, 0) + extend)
+            + max(int(settings.min_area) - 1, 0) + extend + chains)
 
 
 def _line_reach(settings: SpeckleSettings) -> int:
