@@ -40,16 +40,23 @@ def truncated_sum_tail(level: float, k: int, lowest: int = 1, limit: int = CHAIN
     counts each conditioned on being at least ``lowest`` (the zero-truncated Poisson for
     ``lowest = 1``), by ``k``-fold convolution of the truncated probability mass function
     (``scipy.stats.poisson``)."""
+    *_, tail = _truncated_sum_tails(level, k, lowest, limit)
+    return tail
+
+
+def _truncated_sum_tails(level: float, size: int, lowest: int = 1, limit: int = CHAIN_COUNT_LIMIT):
+    """:func:`truncated_sum_tail` for ``k = 1 .. size`` in turn, each ``k``'s law convolved once
+    more from the one before (the same sequence of convolutions as ``k`` separate calls make,
+    so the same values, with one probability mass function for all ``k``)."""
     values = np.arange(limit + 1)
     pmf = stats.poisson.pmf(values, level)
     pmf[:lowest] = 0.0
     pmf /= stats.poisson.sf(lowest - 1, level)
     total = np.zeros(1)
     total[0] = 1.0
-    for _ in range(k):
+    for _ in range(size):
         total = np.convolve(total, pmf)
-    tail = np.cumsum(total[::-1])[::-1]
-    return np.minimum(tail, 1.0)
+        yield np.minimum(np.cumsum(total[::-1])[::-1], 1.0)
 
 
 def chain_tables(settings) -> tuple[np.ndarray, np.ndarray]:
@@ -82,9 +89,8 @@ def _chain_tables(alpha: float, size: int, highest: float, lowest: int) -> tuple
     grid = CHAIN_LOWEST_LEVEL * np.exp2(np.arange(steps + 1) / CHAIN_STEPS_PER_DOUBLING)
     table = np.full((grid.size, size + 1), CHAIN_OFF, np.int32)
     for g, level in enumerate(grid):
-        for k in range(2, size + 1):
-            tail = truncated_sum_tail(float(level), k, lowest)
-            if tail[-1] < alpha:
+        for k, tail in enumerate(_truncated_sum_tails(float(level), size, lowest), start=1):
+            if k >= 2 and tail[-1] < alpha:
                 table[g, k] = int(np.argmax(tail < alpha))
     for array in (grid, table):
         array.flags.writeable = False
