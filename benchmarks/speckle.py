@@ -96,7 +96,7 @@ STEP_NAMES = ("context", "hot_pixels", "speckle")
 def step_seconds(folder: Path, small: int) -> dict:
     """Seconds (wall, CPU) per ROI of each wash step on the ROIs saved in ``folder``, one thread,
     one channel per call as the wash makes them (run in a child process: see ``--steps``)."""
-    from plexwash.qc.background import roi_background
+    from plexwash.qc.background_context import roi_background
     from plexwash.qc.steps.registry import step
 
     os.cpu_count = lambda: 1

@@ -10,7 +10,6 @@ decisions as the plain computations, made with less of them.
 from __future__ import annotations
 
 import functools
-import sys
 
 import numpy as np
 from scipy import special
@@ -19,14 +18,19 @@ from scipy import special
 def search_kernels():
     """The compiled loops (``plexwash.qc.steps._search_kernels``), imported on first use (numba
     stays out of the commands that never wash) by its absolute name (one numba cache), then
-    taken from ``sys.modules``: a hot path calls this per channel."""
-    kernels = sys.modules.get(_KERNELS)
-    if kernels is None:
+    kept in a module global: a hot path calls this per channel. The global is set only once
+    the import has finished; ``sys.modules`` holds a module from the moment its import starts,
+    so a second thread reading it from there could get it half initialised (the import
+    statement instead waits for another thread's import of the same module to end)."""
+    global _kernels
+    if _kernels is None:
         from plexwash.qc.steps import _search_kernels as kernels
-    return kernels
+
+        _kernels = kernels
+    return _kernels
 
 
-_KERNELS = "plexwash.qc.steps._search_kernels"
+_kernels = None
 
 
 def tail_below(n: np.ndarray, mu: np.ndarray, alpha: float, upper_tail) -> np.ndarray:

@@ -1,7 +1,7 @@
 """The tissue mask written with a ROI's outputs: ``<roi>.mask.ome.tiff``.
 
 One channel named ``tissue``, uint8, 1 on tissue and 0 on glass: the mask of the ROI's
-background context (:func:`plexwash.qc.background.roi_background`, the same one the
+background context (:func:`plexwash.qc.background_context.roi_background`, the same one the
 wash's speckle step tests against), so the next step (segmentation, the studio, a
 notebook) sees where the engine found tissue. Written atomically through the output guard
 (never over an input, nor over a file plexwash did not write), as a pyramidal OME-TIFF
@@ -18,7 +18,7 @@ from pathlib import Path
 import numpy as np
 
 from ._arrays import channel_plane, used_channels
-from .background import roi_background
+from .background_context import roi_background
 from .files import check_output
 from .io import write_stack
 from .io.cohort import roi_stem

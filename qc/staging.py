@@ -18,7 +18,7 @@ registry (:mod:`plexwash.qc.steps.registry`), one per step that runs, in its ord
 * a ``"pixels"`` step (compensation): one task per band of rows (all used channels x a
   few rows x the full width), read from one file and written to the other.
 
-The background context that speckle uses (:func:`plexwash.qc.background.roi_background`,
+The background context that speckle uses (:func:`plexwash.qc.background_context.roi_background`,
 from the raw used planes) is not a pass of its own when the first step is a plane step
 that does not use it (hot pixels): that pass reduces each raw plane it reads to its block
 sums, and the context is fitted from them (for an ROI in memory on a thread of its own,
@@ -55,7 +55,7 @@ from pathlib import Path
 import numpy as np
 
 from ._arrays import channel_plane, is_dask, used_channels
-from .background import CONTEXT_BLOCK, block_sums, context_of_block_sums, roi_background
+from .background_context import CONTEXT_BLOCK, block_sums, context_of_block_sums, roi_background
 from .io.staged import StagedStack
 from .steps.lifting import fractions_from_sums
 from .steps.registry import STEPS, context_wanted
@@ -292,7 +292,7 @@ class _ContextLater:
     """The ROI's background context, fitted on a thread of its own from the block sums that
     the first pass (a plane step that does not use it) gathers from the raw used planes.
 
-    The same sums as :func:`plexwash.qc.background.roi_background` takes, so the same
+    The same sums as :func:`plexwash.qc.background_context.roi_background` takes, so the same
     context. With ``aside``, fitting it (one thread, at block resolution) overlaps the
     passes before the first step that uses it; after an error the fit still ends on its
     own and its result is dropped with the object. Without (a wash staged on disk, where

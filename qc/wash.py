@@ -30,7 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from ._arrays import channel_plane, is_dask, stack_planes, used_channels
-from .background import roi_background
+from .background_context import roi_background
 from .errors import InputError
 from .io import Roi, write_stack
 from .io.tiff import source_ome_xml

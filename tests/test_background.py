@@ -210,8 +210,36 @@ def test_bad_shapes_are_one_line_errors():
 
 
 def test_docstring_examples_run():
+    from plexwash.qc import background_context
+
     result = doctest.testmod(background, verbose=False)
     assert result.failed == 0 and result.attempted >= 8
+    result = doctest.testmod(background_context, verbose=False)
+    assert result.failed == 0 and result.attempted >= 4
+
+
+def test_threads_first_reaching_the_compiled_loops_get_them_whole():
+    """A thread asking for the compiled loops while another is still importing them (a fresh
+    process, their first use: the second asks as soon as the module appears in ``sys.modules``)
+    gets the module with its kernels, never one half imported (regression: reading it from
+    ``sys.modules`` handed the half-initialised module to the second thread)."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, threading\n"
+        "from plexwash.qc._tail_search import search_kernels\n"
+        "name, got = 'plexwash.qc.steps._search_kernels', []\n"
+        "first = threading.Thread(target=lambda: got.append(hasattr(search_kernels(), 'box_mean_constant')))\n"
+        "first.start()\n"
+        "while name not in sys.modules and first.is_alive():\n"
+        "    pass\n"
+        "got.append(hasattr(search_kernels(), 'box_mean_constant'))\n"
+        "first.join()\n"
+        "print(got)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert out.stdout.strip() == "[True, True]"
 
 
 def test_a_run_writes_the_tissue_mask_beside_each_washed_stack(tmp_path):
@@ -410,7 +438,7 @@ def _numpy_block_sums(plane, block):
 def test_block_sums_a_slice_of_rows_at_a_time_equal_the_whole_plane_sums():
     """``block_sums`` sums a slice of block rows at a time (memory); each block's sum is the
     one of the whole padded plane reduced at once (numpy's own sum over the block axes)."""
-    from plexwash.qc.background import BLOCK_SUM_ROWS, block_sums
+    from plexwash.qc.background_context import BLOCK_SUM_ROWS, block_sums
 
     rng = np.random.default_rng(9)
     for ny, nx, block in [(2 * BLOCK_SUM_ROWS + 7, 61, 4), (BLOCK_SUM_ROWS + 4, 40, 4),
@@ -424,7 +452,7 @@ def test_block_sums_of_whole_counts_equal_numpys_block_sums(dtype):
     """Whole counts take the compiled pass (``_search_kernels.whole_block_sums``); its sums equal
     numpy's reduction of the padded plane over the block axes (the reference form, as above),
     partial edge blocks included; a plane with a fraction, NaN or an infinity goes numpy's way."""
-    from plexwash.qc.background import _whole_block_sums, block_sums
+    from plexwash.qc.background_context import _whole_block_sums, block_sums
 
     rng = np.random.default_rng(11)
     for ny, nx, block in [(61, 47, 4), (64, 64, 4), (17, 19, 3), (5, 9, 4), (300, 130, 4)]:

@@ -216,7 +216,7 @@ def test_quality_table_is_the_engine_table_sortable(make_napari_viewer, qtbot, c
 
 def test_speckle_preview_equals_the_engine(make_napari_viewer, qtbot, cohort, tmp_path):
     from plexwash.qc import remove_hot_pixels
-    from plexwash.qc.background import roi_background
+    from plexwash.qc.background_context import roi_background
     from plexwash.qc.steps.speckle import speckle_stack
     from plexwash.qc.wash import wash
 

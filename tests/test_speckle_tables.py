@@ -93,7 +93,7 @@ def test_tables_of_the_zones_present_equal_the_tables_of_every_zone():
     """The kernel reads the zone tables only at the codes of the zone map: tabulated on the
     codes present, those entries equal the tables of all 256 codes, and the washed channel is
     the same."""
-    from plexwash.qc.background import zone_factors
+    from plexwash.qc.background_context import zone_factors
     from plexwash.qc.steps import speckle as sp
     from plexwash.qc.steps.speckle_settings import SpeckleSettings
     from plexwash.qc.steps.speckle_tests import tabulated_levels
@@ -131,7 +131,7 @@ def test_tables_of_the_zones_present_equal_the_tables_of_every_zone():
 
 def _region_histogram_plain(image, counts, threshold, radius, zone):
     """The histogram by ``np.bincount`` of one code per full window (the reference)."""
-    from plexwash.qc.background import PARTS, ZONES_PER_PART
+    from plexwash.qc.background_context import PARTS, ZONES_PER_PART
 
     size = (2 * radius + 1) ** 2
     inner = (slice(radius, image.shape[0] - radius), slice(radius, image.shape[1] - radius))
@@ -217,7 +217,7 @@ def test_filter_parameters_equal_each_tables_own_function(seed):
     saturated, infinite, NaN or above ``line_max_level``, and for settings that turn parts off or
     make alphas equal."""
 
-    from plexwash.qc.background import zone_factors
+    from plexwash.qc.background_context import zone_factors
     from plexwash.qc.steps import speckle as sp
     from plexwash.qc.steps.speckle_settings import SpeckleSettings
     from plexwash.qc.steps.speckle_tests import filter_parameters

@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from plexwash.qc import SpilloverMatrix, default_recipe, wash
-from plexwash.qc.background import roi_background
+from plexwash.qc.background_context import roi_background
 from plexwash.qc.io import Roi
 from plexwash.qc.steps.speckle import SpeckleSettings, speckle_stack
 from plexwash.qc.steps.speckle_tests import drop_residue

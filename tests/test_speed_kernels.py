@@ -97,7 +97,7 @@ def test_poisson_tail_screen_agrees_with_gammainc(alpha):
 def _speckle_kernel_args(seed: int):
     """A channel with fibres, cells and background over zones where the line test can and
     cannot keep a pixel (levels below and above ``line_max_level``), and its kernel tables."""
-    from plexwash.qc.background import zone_factors
+    from plexwash.qc.background_context import zone_factors
     from plexwash.qc.steps import speckle as sp
     from plexwash.qc.steps.speckle_settings import SpeckleSettings
 

@@ -159,7 +159,7 @@ def test_stats_of_every_step_are_present(unseen, tmp_path):
 def test_context_from_the_first_pass_sums_is_roi_backgrounds():
     """The staged wash fits the background context from block sums its first pass gathers;
     they give the context :func:`roi_background` makes from the planes, field for field."""
-    from plexwash.qc.background import block_sums, context_of_block_sums, roi_background
+    from plexwash.qc.background_context import block_sums, context_of_block_sums, roi_background
 
     rng = np.random.default_rng(21)
     rate = np.full((90, 70), 0.5)

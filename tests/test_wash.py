@@ -7,7 +7,7 @@ import statistics
 import dask.array as da
 import numpy as np
 import pytest
-from plexwash.qc.background import roi_background
+from plexwash.qc.background_context import roi_background
 from plexwash.qc.io import Roi, read_roi
 from plexwash.qc.recipe import default_recipe
 from plexwash.qc.spillover import compensate

@@ -80,7 +80,7 @@ class Step:
     uses_background : bool
         ``run`` takes ``spilled=`` (what compensation removed from the channels it works
         on, None when compensation did not run) and ``background=``, the ROI's background context
-        (:func:`plexwash.qc.background.roi_background`), which the wash computes once per
+        (:func:`plexwash.qc.background_context.roi_background`), which the wash computes once per
         ROI from the raw used channels, before the first step, whenever a running step
         uses it (:func:`context_wanted`).
     """

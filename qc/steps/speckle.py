@@ -82,7 +82,7 @@ from plexwash.qc.steps import _growth_kernels as _g  # absolute: one numba cache
 from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
 
 from .._arrays import as_channel, as_stack, is_dask
-from ..background import PARTS, ZONES_PER_PART, zone_factors
+from ..background_context import PARTS, ZONES_PER_PART, zone_factors
 from ..errors import InputError
 from ..settings import build_settings
 from .lifting import (
@@ -148,7 +148,7 @@ class BackgroundEstimate(NamedTuple):
         without a context); ``rate`` and ``level`` are then those of the tissue.
     zone_levels : numpy.ndarray or None
         With a background context, the background mean of every zone code (see
-        :class:`plexwash.qc.background.BackgroundContext`); None: ``level`` everywhere.
+        :class:`plexwash.qc.background_context.BackgroundContext`); None: ``level`` everywhere.
     """
 
     rate: float
@@ -531,7 +531,7 @@ def speckle_stack(stack, settings: SpeckleSettings | Sequence[SpeckleSettings] |
 
     Each channel's background is estimated once on the whole channel (for dask, all
     channels in one pass, computed here), so results do not depend on chunking. With a
-    background ``context`` (:func:`plexwash.qc.background.roi_background`, computed once
+    background ``context`` (:func:`plexwash.qc.background_context.roi_background`, computed once
     per ROI) a channel whose settings have ``local_rates`` is fitted per region and tested
     against the background where each pixel lies (see :mod:`.speckle_tests`).
 

@@ -15,7 +15,7 @@ import numpy as np
 from plexwash.qc.steps import _kernels as _k  # absolute: one numba cache, whatever imported us
 from plexwash.qc.steps import _search_kernels as _sk
 
-from ..background import PARTS, ZONES_PER_PART
+from ..background_context import PARTS, ZONES_PER_PART
 from ..errors import InputError
 
 __all__ = ["centre_histogram", "centre_histogram_dask", "check_window", "region_histogram", "window_counts"]

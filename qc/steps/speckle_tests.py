@@ -43,7 +43,7 @@ Background rate
     Under background alone a window's centre is positive with probability ``p`` whatever
     its neighbours are, so the fraction of positive centres among windows with few positive
     neighbours is the conditional maximum-likelihood estimate of ``p`` (:func:`fit_rate`).
-    With a background context (:class:`plexwash.qc.background.BackgroundContext`) the fit
+    With a background context (:class:`plexwash.qc.background_context.BackgroundContext`) the fit
     is made per region, glass and tissue, over windows centred in that region; the rate of
     a pixel is its region's rate times the shared variation of background there, rounded to
     the context's zone (4.4 % steps), and the thresholds of both tests are tabulated per
