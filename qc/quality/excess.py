@@ -6,6 +6,7 @@ See the notes of :mod:`plexwash.qc.quality` (step 5 of how a channel is measured
 from __future__ import annotations
 
 import math
+import threading
 
 import numpy as np
 from scipy import linalg, ndimage, special
@@ -36,11 +37,16 @@ def _compiled_routines():
     the check systems (:func:`._box_kernels.agrees`; checked once per process)."""
     global _ROUTINES, _ROUTINES_CHECKED
     if not _ROUTINES_CHECKED:
-        if _ROUTINES is not None and not (agrees(_ROUTINES, _box_least_squares_numpy)
-                                          and _one_row_agrees(_ROUTINES)):
-            _ROUTINES = None
-        _ROUTINES_CHECKED = True
+        with _CHECK_LOCK:  # channels measured on threads: no thread uses them before the check ends
+            if not _ROUTINES_CHECKED:
+                if _ROUTINES is not None and not (agrees(_ROUTINES, _box_least_squares_numpy)
+                                                  and _one_row_agrees(_ROUTINES)):
+                    _ROUTINES = None
+                _ROUTINES_CHECKED = True
     return _ROUTINES
+
+
+_CHECK_LOCK = threading.Lock()
 
 
 def _one_row_agrees(fn, count: int = 6) -> bool:
