@@ -291,3 +291,34 @@ def test_heatmap_figure_has_every_row_column_and_a_shared_scale():
             block = image[i * ROW_PX:(i + 1) * ROW_PX, j * width:(j + 1) * width]
             assert (block == block[0, 0]).all()
     assert not np.array_equal(image[0, 0], image[-1, -1])
+
+
+def test_read_thumbnail_is_the_block_mean_of_every_plane(tmp_path):
+    import tifffile
+    from plexwash.qc.io import write_ome_tiff
+    from plexwash.qc.report.thumbnails import block_mean, read_thumbnail
+    from skimage.measure import block_reduce
+
+    rng = np.random.default_rng(4)
+    stack = rng.gamma(2.0, 3.0, (3, 250, 190)).astype(np.float32)
+    path = tmp_path / "s.ome.tiff"
+    write_ome_tiff(path, stack, ["A", "B", "C"])
+    got = read_thumbnail(path, 96)
+    # reference: tifffile.imread of the whole stack, skimage.measure.block_reduce with np.mean
+    # over 3 x 3 blocks (ceil(250 / 96) = 3), trimmed to whole blocks
+    whole = tifffile.imread(path)
+    expected = np.stack([block_reduce(c[:249, :189].astype(np.float64), (3, 3), np.mean) for c in whole])
+    assert got.shape == (3, 83, 63)
+    np.testing.assert_allclose(got, expected, rtol=1e-12)
+    np.testing.assert_allclose(downsample(stack, 96), expected, rtol=1e-12)
+    ints = rng.integers(0, 60000, (7, 9), dtype=np.uint16)
+    np.testing.assert_allclose(block_mean(ints, 2), block_reduce(ints[:6, :8].astype(float), (2, 2), np.mean))
+    # not a (C, Y, X) TIFF, not a TIFF, not there: None (the caller reads it the careful way)
+    tifffile.imwrite(tmp_path / "zcyx.tiff", np.ones((2, 2, 8, 8), np.float32), metadata={"axes": "ZCYX"})
+    (tmp_path / "text.tiff").write_text("not an image")
+    for other in ("zcyx.tiff", "text.tiff", "gone.tiff"):
+        assert read_thumbnail(tmp_path / other) is None
+    bad = stack.copy()
+    bad[1, 5, 5] = np.nan
+    write_ome_tiff(tmp_path / "nan.ome.tiff", bad, ["A", "B", "C"])
+    assert read_thumbnail(tmp_path / "nan.ome.tiff") is None
