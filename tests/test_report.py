@@ -322,3 +322,40 @@ def test_read_thumbnail_is_the_block_mean_of_every_plane(tmp_path):
     bad[1, 5, 5] = np.nan
     write_ome_tiff(tmp_path / "nan.ome.tiff", bad, ["A", "B", "C"])
     assert read_thumbnail(tmp_path / "nan.ome.tiff") is None
+
+
+def test_colour_tables_are_matplotlibs():
+    import matplotlib as mpl
+    from plexwash.qc.report.colour_maps import TABLES
+    from plexwash.qc.report.heatmaps import colour_table
+
+    assert {"cividis", "PuBuGn", "YlOrBr"} <= set(TABLES)
+    for name in (*TABLES, "viridis"):  # viridis: not kept, read from matplotlib
+        # reference: matplotlib's colour map at its 256 entries, rounded to 8 bits
+        expected = np.round(255.0 * mpl.colormaps[name](np.arange(256))[:, :3]).astype(np.uint8)
+        np.testing.assert_array_equal(colour_table(name), expected)
+
+
+def test_spillover_heatmap_writes_each_value_in_its_coloured_cell():
+    import re
+
+    from plexwash.qc.report.heatmaps import VALUE_CELLS_MAX, colour_cells
+    from plexwash.qc.report.plots import spillover_html
+
+    off = np.array([[0.0, 0.012, 0.0], [0.0004, 0.0, 0.03], [0.005, 0.0, 0.0]])
+    html = spillover_html(off, ["A", "B<", "C"])
+    assert 'aria-label="spillover matrix heatmap"' in html and "<span>B&lt;</span>" in html
+    cells = re.findall(r'<td style="background:#([0-9a-f]{6})(;color:#fff)?">([^<]*)</td>', html)
+    assert len(cells) == 9
+    # values in percent from 0.1 up; white ink from 60 % of the largest (3 %) up
+    assert [text for _, _, text in cells] == ["", "1.2", "", "", "", "3.0", "0.5", "", ""]
+    assert [bool(ink) for _, ink, _ in cells] == [False] * 5 + [True] + [False] * 3
+    grid = 100 * off
+    np.fill_diagonal(grid, np.nan)
+    expected = colour_cells(grid, 0.0, 3.0, "YlOrBr").reshape(9, 3)  # grey diagonal included
+    assert [bytes.fromhex(h) for h, _, _ in cells] == [bytes(int(v) for v in rgb) for rgb in expected]
+    assert "<span>0</span>" in html and "<span>3</span>" in html  # the colour scale
+    # beyond VALUE_CELLS_MAX channels: one heatmap image, labels in HTML, no values written
+    n = VALUE_CELLS_MAX + 6
+    big = spillover_html(np.full((n, n), 0.01), [f"c{k}" for k in range(n)])
+    assert big.count("<img") == 1 and "<td" not in big and "<span>c35</span>" in big
