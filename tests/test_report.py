@@ -291,3 +291,71 @@ def test_heatmap_figure_has_every_row_column_and_a_shared_scale():
             block = image[i * ROW_PX:(i + 1) * ROW_PX, j * width:(j + 1) * width]
             assert (block == block[0, 0]).all()
     assert not np.array_equal(image[0, 0], image[-1, -1])
+
+
+def test_read_thumbnail_is_the_block_mean_of_every_plane(tmp_path):
+    import tifffile
+    from plexwash.qc.io import write_ome_tiff
+    from plexwash.qc.report.thumbnails import block_mean, read_thumbnail
+    from skimage.measure import block_reduce
+
+    rng = np.random.default_rng(4)
+    stack = rng.gamma(2.0, 3.0, (3, 250, 190)).astype(np.float32)
+    path = tmp_path / "s.ome.tiff"
+    write_ome_tiff(path, stack, ["A", "B", "C"])
+    got = read_thumbnail(path, 96)
+    # reference: tifffile.imread of the whole stack, skimage.measure.block_reduce with np.mean
+    # over 3 x 3 blocks (ceil(250 / 96) = 3), trimmed to whole blocks
+    whole = tifffile.imread(path)
+    expected = np.stack([block_reduce(c[:249, :189].astype(np.float64), (3, 3), np.mean) for c in whole])
+    assert got.shape == (3, 83, 63)
+    np.testing.assert_allclose(got, expected, rtol=1e-12)
+    np.testing.assert_allclose(downsample(stack, 96), expected, rtol=1e-12)
+    ints = rng.integers(0, 60000, (7, 9), dtype=np.uint16)
+    np.testing.assert_allclose(block_mean(ints, 2), block_reduce(ints[:6, :8].astype(float), (2, 2), np.mean))
+    # not a (C, Y, X) TIFF, not a TIFF, not there: None (the caller reads it the careful way)
+    tifffile.imwrite(tmp_path / "zcyx.tiff", np.ones((2, 2, 8, 8), np.float32), metadata={"axes": "ZCYX"})
+    (tmp_path / "text.tiff").write_text("not an image")
+    for other in ("zcyx.tiff", "text.tiff", "gone.tiff"):
+        assert read_thumbnail(tmp_path / other) is None
+    bad = stack.copy()
+    bad[1, 5, 5] = np.nan
+    write_ome_tiff(tmp_path / "nan.ome.tiff", bad, ["A", "B", "C"])
+    assert read_thumbnail(tmp_path / "nan.ome.tiff") is None
+
+
+def test_colour_tables_are_matplotlibs():
+    import matplotlib as mpl
+    from plexwash.qc.report.colour_maps import TABLES
+    from plexwash.qc.report.heatmaps import colour_table
+
+    assert {"cividis", "PuBuGn", "YlOrBr"} <= set(TABLES)
+    for name in (*TABLES, "viridis"):  # viridis: not kept, read from matplotlib
+        # reference: matplotlib's colour map at its 256 entries, rounded to 8 bits
+        expected = np.round(255.0 * mpl.colormaps[name](np.arange(256))[:, :3]).astype(np.uint8)
+        np.testing.assert_array_equal(colour_table(name), expected)
+
+
+def test_spillover_heatmap_writes_each_value_in_its_coloured_cell():
+    import re
+
+    from plexwash.qc.report.heatmaps import VALUE_CELLS_MAX, colour_cells
+    from plexwash.qc.report.plots import spillover_html
+
+    off = np.array([[0.0, 0.012, 0.0], [0.0004, 0.0, 0.03], [0.005, 0.0, 0.0]])
+    html = spillover_html(off, ["A", "B<", "C"])
+    assert 'aria-label="spillover matrix heatmap"' in html and "<span>B&lt;</span>" in html
+    cells = re.findall(r'<td style="background:#([0-9a-f]{6})(;color:#fff)?">([^<]*)</td>', html)
+    assert len(cells) == 9
+    # values in percent from 0.1 up; white ink from 60 % of the largest (3 %) up
+    assert [text for _, _, text in cells] == ["", "1.2", "", "", "", "3.0", "0.5", "", ""]
+    assert [bool(ink) for _, ink, _ in cells] == [False] * 5 + [True] + [False] * 3
+    grid = 100 * off
+    np.fill_diagonal(grid, np.nan)
+    expected = colour_cells(grid, 0.0, 3.0, "YlOrBr").reshape(9, 3)  # grey diagonal included
+    assert [bytes.fromhex(h) for h, _, _ in cells] == [bytes(int(v) for v in rgb) for rgb in expected]
+    assert "<span>0</span>" in html and "<span>3</span>" in html  # the colour scale
+    # beyond VALUE_CELLS_MAX channels: one heatmap image, labels in HTML, no values written
+    n = VALUE_CELLS_MAX + 6
+    big = spillover_html(np.full((n, n), 0.01), [f"c{k}" for k in range(n)])
+    assert big.count("<img") == 1 and "<td" not in big and "<span>c35</span>" in big

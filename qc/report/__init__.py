@@ -11,7 +11,7 @@ z-score; the spillover matrix used; the fraction of signal each step removed; sm
 washed and removed thumbnails per channel; provenance (versions and hashes).
 
 Modules: :mod:`.html` (the page and its sections), :mod:`.heatmaps` (heatmaps drawn from
-numpy, labels in HTML), :mod:`.plots` (the spillover figure, matplotlib),
+numpy, labels in HTML), :mod:`.plots` (the spillover section, drawn as the heatmaps are),
 :mod:`.thumbnails` (image helpers), :mod:`.style` (the stylesheet). The report reads a
 run folder through :mod:`plexwash.qc.ledger` and :mod:`plexwash.qc.table` and never
 imports the run (which calls :func:`write_report` once, at its end).

@@ -1,9 +1,9 @@
 """Heatmaps of the report drawn straight from numpy: one PNG per panel, labels in HTML.
 
 A panel's grid (rows x columns of values) goes through a colour table (the matplotlib
-colour map's 256 entries, so colours match ``imshow`` with the same limits), each cell
-becomes a block of pixels, and the picture is encoded as an RGB PNG by
-:func:`~.thumbnails.png_rgb`. Row and column labels, panel titles and the colour scale
+colour map's 256 entries, kept in :mod:`.colour_maps`, so colours match ``imshow`` with
+the same limits), each cell becomes a block of pixels, and the picture is encoded as an
+RGB PNG by :func:`~.thumbnails.png_rgb`. Row and column labels, panel titles and the colour scale
 (a CSS gradient through the same table) are HTML, so no text is rasterised and a page of
 100 ROIs costs milliseconds instead of a matplotlib layout of thousands of tick labels.
 """
@@ -16,6 +16,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from .colour_maps import TABLES
 from .style import escape
 from .thumbnails import png_rgb
 
@@ -27,17 +28,22 @@ ROW_PX = 12
 COLUMN_PX = (8, 18, 720)
 #: Ticks on a colour scale.
 SCALE_TICKS = 5
+#: Square matrices up to this many rows are drawn as a table with each value in its cell.
+VALUE_CELLS_MAX = 30
 
 
 @functools.lru_cache(maxsize=8)
 def colour_table(name: str) -> np.ndarray:
-    """The 256 colours of a matplotlib colour map as a (256, 3) uint8 table.
+    """The 256 colours of a matplotlib colour map as a (256, 3) uint8 table (the maps of
+    :data:`~.colour_maps.TABLES` from there, others from matplotlib).
 
     Examples
     --------
     >>> colour_table("cividis").shape
     (256, 3)
     """
+    if name in TABLES:  # the report's own maps: no matplotlib import (a few tenths of a second)
+        return np.frombuffer(bytes.fromhex(TABLES[name]), np.uint8).reshape(256, 3).copy()
     import matplotlib as mpl
 
     rgba = mpl.colormaps[name](np.arange(256))
@@ -134,3 +140,36 @@ def heatmap_html(panels: Sequence[tuple[str, np.ndarray, Sequence[str]]], rows: 
     parts.append(scale_html(vmin, vmax, cmap, label))
     parts.append("</figure>")
     return "".join(parts)
+
+
+def matrix_html(grid, names: Sequence[str], *, vmin: float, vmax: float, cmap: str, title: str,
+                label: str, alt: str) -> str:
+    """A square matrix (rows and columns both ``names``) as a heatmap with one colour scale.
+
+    Up to :data:`VALUE_CELLS_MAX` names it is an HTML table: each cell coloured as
+    :func:`colour_cells` picks and holding its value (one decimal, from 0.1 up; white ink
+    from 60 % of ``vmax`` up, on the darker colours). Larger matrices are one
+    :func:`heatmap_html` panel, too small for written values.
+    """
+    grid = np.asarray(grid, dtype=np.float64)
+    if vmax <= vmin:
+        vmax = vmin + 1.0
+    if not 0 < len(names) <= VALUE_CELLS_MAX:
+        return heatmap_html([(title, grid, names)], names, vmin=vmin, vmax=vmax, cmap=cmap,
+                            label=label, alt=alt)
+    cells = colour_cells(grid, vmin, vmax, cmap)
+    head = "".join(f"<th><span>{escape(n)}</span></th>" for n in names)
+    lines = []
+    for i, name in enumerate(names):
+        tds = []
+        for j, value in enumerate(grid[i]):
+            r, g, b = (int(v) for v in cells[i, j])
+            shown = bool(np.isfinite(value) and value >= 0.1)
+            ink = ";color:#fff" if shown and value >= 0.6 * vmax else ""
+            tds.append(f'<td style="background:#{r:02x}{g:02x}{b:02x}{ink}">'
+                       f'{f"{value:.1f}" if shown else ""}</td>')
+        lines.append(f"<tr><th>{escape(name)}</th>{''.join(tds)}</tr>")
+    return (f'<figure class="heat" role="group" aria-label="{escape(alt)}">'
+            f'<table class="matrix"><caption>{escape(title)}</caption>'
+            f"<thead><tr><th></th>{head}</tr></thead><tbody>{''.join(lines)}</tbody></table>"
+            f"{scale_html(vmin, vmax, cmap, label)}</figure>")

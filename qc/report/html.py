@@ -40,6 +40,7 @@ from .thumbnails import (
     combined_removed_fraction,
     downsample,
     png_grey,
+    read_thumbnail,
     robust_range,
     to_grey,
 )
@@ -453,21 +454,29 @@ def _section_thumbnails(ctx, done, rows, limit) -> str:
     return "\n".join(out)
 
 
-def _roi_thumbnails(ctx, name) -> str:
-    from ..io import read_roi
+def _stack_thumbnail(path: Path) -> np.ndarray:
+    """The block-mean thumbnail of an ROI file: a TIFF read plane by plane when it can be,
+    else (other layouts, OME-Zarr, a damaged file: its error) through ``read_roi``."""
+    thumbnail = read_thumbnail(path, THUMBNAIL_SIZE)
+    if thumbnail is None:
+        from ..io import read_roi
 
+        thumbnail = downsample(read_roi(path).data, THUMBNAIL_SIZE)
+    return thumbnail
+
+
+def _roi_thumbnails(ctx, name) -> str:
     rec = ctx["latest"][name]
     out = [f"<h3>{escape(name)}</h3>"]
     raw_path = Path(rec.get("input") or "")
     washed_path = ctx["out_dir"] / rec["output"] if rec.get("output") else None
     try:
-        raw_roi = read_roi(raw_path)
-        raw = downsample(raw_roi.data, THUMBNAIL_SIZE)
+        raw = _stack_thumbnail(raw_path)
     except Exception as exc:
         raw = None
         out.append(f'<p class="note">Raw input not shown ({escape(exc)}).</p>')
     try:
-        washed = downsample(read_roi(washed_path).data, THUMBNAIL_SIZE) if washed_path else None
+        washed = _stack_thumbnail(washed_path) if washed_path else None
     except Exception as exc:
         washed = None
         out.append(f'<p class="note">Washed output not shown ({escape(exc)}).</p>')

@@ -1,83 +1,32 @@
-"""The report's spillover section: the matrix as a matplotlib figure (PNG) with its values,
-and the matrices batches had of their own.
+"""The report's spillover section: the matrix as a heatmap with its values, and the
+matrices batches had of their own.
 
-The per-ROI heatmaps (SBR, removed fractions) are drawn without matplotlib, see
-:mod:`.heatmaps`.
-
-Figures are drawn on the Agg canvas without pyplot (no global state, no display), so
-reports can be written from worker threads and headless machines.
+The heatmap is drawn as the per-ROI ones are (:mod:`.heatmaps`: colours from the
+colour map's table, no figure to lay out), as an HTML table holding each value for up to
+30 channels.
 """
 
 from __future__ import annotations
 
-import io
 from collections.abc import Mapping
 from pathlib import Path
 
 import numpy as np
 
-from .style import escape, img_tag
+from .heatmaps import matrix_html
+from .style import escape
 
 
-def _figure(width, height):
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(width, height), dpi=100)
-    fig.patch.set_facecolor("white")
-    return fig
-
-
-def _png_of(fig) -> bytes:
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-
-    FigureCanvasAgg(fig)
-    buffer = io.BytesIO()
-    fig.savefig(buffer, format="png", dpi=100, bbox_inches="tight")
-    return buffer.getvalue()
-
-
-def _heat(ax, grid, rows, cols, *, cmap, vmin, vmax, title):
-    import matplotlib as mpl
-
-    if grid.size == 0:
-        ax.set_axis_off()
-        ax.text(0.5, 0.5, "not measured", ha="center", va="center", transform=ax.transAxes)
-        ax.set_title(title, fontsize=10)
-        return None
-    colormap = mpl.colormaps[cmap].with_extremes(bad="#cfd3d9")
-    image = ax.imshow(np.ma.masked_invalid(grid), cmap=colormap, vmin=vmin, vmax=vmax,
-                      aspect="auto", interpolation="nearest")
-    ax.set_xticks(range(len(cols)))
-    ax.set_xticklabels(cols, rotation=90, fontsize=7)
-    ax.set_yticks(range(len(rows)))
-    ax.set_yticklabels(rows, fontsize=7)
-    ax.set_title(title, fontsize=10)
-    return image
-
-
-def plot_spillover(off, channels) -> bytes:
-    """Heatmap of the off-diagonal spillover entries, in percent (source rows, receiving columns)."""
+def spillover_html(off, channels) -> str:
+    """Heatmap of the off-diagonal spillover entries, in percent (source rows, receiving
+    columns; the diagonal grey), each value written in its cell for up to 30 channels."""
     n = len(channels)
-    side = min(14.0, max(4.0, 0.24 * n + 2.0))
-    fig = _figure(side + 1.2, side)
-    ax = fig.subplots()
-    grid = 100 * off
-    grid = np.where(np.eye(n, dtype=bool), np.nan, grid)
+    grid = np.where(np.eye(n, dtype=bool), np.nan, 100 * np.asarray(off, float))
     top = float(np.nanmax(grid)) if n > 1 and np.isfinite(grid).any() else 1.0
-    image = _heat(ax, grid, channels, channels, cmap="YlOrBr", vmin=0.0, vmax=max(top, 1e-6),
-                  title="spillover into column channel (%)")
-    if image is None:
-        return _png_of(fig)
-    ax.set_xlabel("receiving channel", fontsize=8)
-    ax.set_ylabel("source channel", fontsize=8)
-    if n <= 30:
-        for i in range(n):
-            for j in range(n):
-                if i != j and grid[i, j] >= 0.1:
-                    ax.text(j, i, f"{grid[i, j]:.1f}", ha="center", va="center", fontsize=5,
-                            color="black" if grid[i, j] < 0.6 * top else "white")
-    fig.colorbar(image, ax=ax, shrink=0.8, label="%")
-    return _png_of(fig)
+    return matrix_html(grid, list(channels), vmin=0.0, vmax=max(top, 1e-6), cmap="YlOrBr",
+                       title="spillover into column channel (%); rows: source channel, "
+                             "columns: receiving channel",
+                       label="% of the source channel's signal", alt="spillover matrix heatmap")
 
 
 def section_spillover(matrix, error, recipe, per_batch: str = "") -> str:
@@ -102,7 +51,7 @@ def section_spillover(matrix, error, recipe, per_batch: str = "") -> str:
                "in channel j, in percent; the diagonal (1) is left blank. "
                f"Largest off-diagonal entry {100 * off.max():.3g} %; "
                f"{int(np.count_nonzero(off > 0))} non-zero pairs.</p>")
-    out.append(img_tag(plot_spillover(off, list(matrix.channels)), "spillover matrix heatmap"))
+    out.append(spillover_html(off, list(matrix.channels)))
     pairs = sorted(((values[i, j], matrix.channels[i], matrix.channels[j])
                     for i in range(len(values)) for j in range(len(values))
                     if i != j and values[i, j] > 0), reverse=True)

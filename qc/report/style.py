@@ -73,6 +73,15 @@ figure.heat { margin: 6px 0 16px; max-width: 100%; overflow-x: auto; }
 .hm-scale i { display: block; height: 12px; border: 1px solid var(--line); }
 .hm-ticks { display: flex; justify-content: space-between; }
 .hm-label { text-align: center; color: var(--muted); }
+table.matrix { margin: 0; font-size: 9px; }
+table.matrix caption { font-size: 12px; font-weight: 600; text-align: left; padding-bottom: 4px;
+                       white-space: nowrap; }
+table.matrix td { width: 26px; min-width: 26px; height: 16px; padding: 0; border: 1px solid #fff;
+                  text-align: center; font-variant-numeric: tabular-nums; }
+table.matrix th { background: none; border: 0; padding: 0 4px; font-size: 10px; font-weight: 400;
+                  text-align: right; white-space: nowrap; overflow-wrap: normal; }
+table.matrix thead th { vertical-align: bottom; text-align: center; padding: 0 0 3px; }
+table.matrix thead th span { writing-mode: vertical-rl; transform: rotate(180deg); }
 footer { color: var(--muted); font-size: 12px; padding: 14px 28px; border-top: 1px solid var(--line); }
 """
 

@@ -38,8 +38,61 @@ def downsample(stack, size: int = THUMBNAIL_SIZE) -> np.ndarray:
 
         cropped = stack[:, :ny, :nx].astype(np.float64)
         return np.asarray(da.coarsen(np.mean, cropped, {1: factor, 2: factor}).compute())
-    cropped = np.asarray(stack[:, :ny, :nx], dtype=np.float64)
-    return cropped.reshape(n_c, ny // factor, factor, nx // factor, factor).mean(axis=(2, 4))
+    out = np.empty((n_c, ny // factor, nx // factor))
+    for c in range(n_c):
+        out[c] = block_mean(stack[c], factor)
+    return out
+
+
+def block_mean(plane, factor: int) -> np.ndarray:
+    """Means of the ``factor`` x ``factor`` blocks of a 2-D image, float64 (edge rows and
+    columns that do not fill a block dropped).
+
+    Rows are summed first, whole rows at a time in float64 (no float64 copy of the
+    plane), then the columns of the ``factor`` times smaller result.
+
+    Examples
+    --------
+    >>> block_mean(np.arange(16, dtype=np.uint8).reshape(4, 4), 2).tolist()
+    [[2.5, 4.5], [10.5, 12.5]]
+    """
+    plane = np.asarray(plane)
+    ny, nx = (plane.shape[0] // factor) * factor, (plane.shape[1] // factor) * factor
+    rows = np.add.reduce(plane[:ny, :nx].reshape(ny // factor, factor, nx), axis=1, dtype=np.float64)
+    return rows.reshape(ny // factor, nx // factor, factor).sum(axis=2) / (factor * factor)
+
+
+def read_thumbnail(path, size: int = THUMBNAIL_SIZE) -> np.ndarray | None:
+    """:func:`downsample` of a TIFF stack's level 0, read one channel plane at a time.
+
+    Read with tifffile alone: no task graph, no copy of the whole stack, so a report pays
+    little more than the decoding. Only for a first series laid out (C, Y, X) or (Y, X);
+    None otherwise, or when the thumbnail is not finite (callers then read the file
+    through :func:`plexwash.qc.io.read_roi`, which says what is wrong with it).
+    """
+    import tifffile
+
+    try:
+        with tifffile.TiffFile(path) as tif:
+            series = tif.series[0]
+            axes, shape = series.axes.upper(), tuple(series.shape)
+            if axes not in ("CYX", "YX") or series.dtype.kind not in "uif":
+                return None
+            n_y, n_x = shape[-2:]
+            pages = list(series.pages)
+            if len(pages) != (shape[0] if axes == "CYX" else 1) or min(n_y, n_x) < 1:
+                return None
+            factor = max(1, math.ceil(max(n_y, n_x) / size))
+            planes = []
+            for page in pages:
+                plane = page.asarray()
+                if plane.shape != (n_y, n_x):
+                    return None
+                planes.append(block_mean(plane, factor))
+    except Exception:  # any reading problem: the caller's reader reports it properly
+        return None
+    thumbnail = np.stack(planes)
+    return thumbnail if np.isfinite(thumbnail).all() else None
 
 
 def combined_removed_fraction(fractions) -> float:
