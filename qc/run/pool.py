@@ -48,10 +48,11 @@ WORKER_BYTES_PER_PIXEL_BYTE = 8
 #: Seconds a worker has to stop after SIGTERM before it is killed.
 STOP_SECONDS = 10.0
 
-#: What the fork server imports once, for every worker it forks.
+#: What the fork server imports once, for every worker it forks; the last one
+#: (:mod:`.warm`) imports what a worker's first ROI would and loads the cached kernels.
 PRELOAD = ["plexwash.qc.run.pool", "plexwash.qc.run.execute", "plexwash.qc.wash",
            "plexwash.qc.quality", "plexwash.qc.audit", "plexwash.qc.io", "plexwash.qc.steps.registry",
-           "plexwash.qc.spillover"]
+           "plexwash.qc.spillover", "plexwash.qc.run.warm"]
 
 
 class WorkerDied(RuntimeError):
@@ -259,6 +260,16 @@ def _limit_threads(threads: int) -> None:
 #: with one thread, so it runs no thread when it forks a worker.
 _ONE_THREAD = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1",
                "OMP_WAIT_POLICY": "PASSIVE"}
+
+
+def start_server() -> None:
+    """Start the workers' fork server now (Linux; elsewhere nothing to start).
+
+    Starting it is quick: its preload (the engine's imports and cached kernels, about a
+    second or two of one core) runs in the server's own process, so a run that starts it
+    before planning its jobs has that done by the time it forks the first worker.
+    """
+    _context()
 
 
 def _context():
