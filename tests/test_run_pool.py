@@ -263,3 +263,20 @@ def test_the_warm_up_loads_the_kernels_a_wash_cached_without_running_them(tmp_pa
     out = subprocess.run([sys.executable, "-c", program], capture_output=True, text=True, check=True)
     loaded, threads = map(int, out.stdout.split())
     assert loaded >= 20 and threads == 1  # loaded on import, nothing run (no numba thread)
+
+
+def test_the_command_line_starts_the_fork_server_early_only_for_a_cohort_bound_for_the_pool(tmp_path, monkeypatch):
+    started = []
+    monkeypatch.setattr(pool_module, "start_server", lambda: started.append(1))
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0, 1})
+    two = _cohort(tmp_path / "two", names=("a", "b"))
+    one = _cohort(tmp_path / "one", names=("a",))
+    assert pool_module.start_for_cohort(two) and len(started) == 1
+    assert not pool_module.start_for_cohort(one)  # one ROI: washed in this process
+    assert pool_module.start_for_cohort(one, workers=2) and len(started) == 2  # asked for
+    assert not pool_module.start_for_cohort(tmp_path / "absent")  # the run reports it
+    monkeypatch.setattr(pool_module, "POOL_ROI_BYTES", 1000)
+    assert not pool_module.start_for_cohort(two)  # large ROIs: washed in this process
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0})
+    monkeypatch.setattr(pool_module, "POOL_ROI_BYTES", 2**30)
+    assert not pool_module.start_for_cohort(two) and len(started) == 2  # one core

@@ -272,6 +272,32 @@ def start_server() -> None:
     _context()
 
 
+def start_for_cohort(cohort_dir, workers=None) -> bool:
+    """Start the fork server (:func:`start_server`) at once when a run of ``cohort_dir`` looks
+    bound for the pool; True when started.
+
+    A guess made before anything heavy is imported, from the cohort's file names and sizes
+    on disk only: ``workers`` given, or at least two ROIs, two cores and the largest ROI
+    file at most :data:`POOL_ROI_BYTES` on disk. The run still decides exactly
+    (:func:`pool_size`) once its inputs are checked; a wrong guess only starts the server
+    early (an idle process) or leaves it to be started then.
+    """
+    from ..errors import InputError
+    from ..io.cohort import list_cohort
+
+    if not sys.platform.startswith("linux"):
+        return False
+    if workers is None:
+        try:
+            rois = list_cohort(cohort_dir)
+        except (InputError, OSError):  # the run says what is wrong with the folder
+            return False
+        if len(rois) < 2 or len(os.sched_getaffinity(0)) < 2 or max(map(_disk_bytes, rois)) > POOL_ROI_BYTES:
+            return False
+    start_server()
+    return True
+
+
 def _context():
     """The multiprocessing context of the workers: a fork server on Linux, spawn elsewhere."""
     import multiprocessing
