@@ -8,9 +8,12 @@ they finish. The ledger stays a single writer: the records come back to this pro
 
 - The processes start from a fork server (Linux) that imported the engine once
   (:func:`multiprocessing.set_forkserver_preload`), so each starts without importing it
-  again; elsewhere (Windows, macOS) they are spawned. The fork server is started with
-  one BLAS/OpenMP thread, so it runs no thread when it forks (a process is never forked
-  while it runs threads).
+  again, with what a first ROI would load already loaded (:mod:`.warm`: the reading and
+  washing modules, the cached numba kernels, the default recipe's speckle tables); the
+  command line starts it before it imports the engine itself when the cohort looks bound
+  for the pool (:func:`start_for_cohort`). Elsewhere (Windows, macOS) they are spawned.
+  The fork server is started with one BLAS/OpenMP thread and its warm-up runs no kernel,
+  so it runs no thread when it forks (a process is never forked while it runs threads).
 - Each worker washes one ROI at a time with ``cores // processes`` threads (numba,
   OpenMP and BLAS set to match).
 - A worker that dies (killed, out of memory) gives its ROI a ``failed`` record and is
