@@ -377,6 +377,10 @@ def _roi_stem(path: Path) -> str:
 
 
 def _run(args) -> int:
+    if args.scheduler is None:  # the workers' fork server imports while this process does
+        from .run.pool import start_for_cohort
+
+        start_for_cohort(args.cohort, args.workers)
     from .run import run_cohort
 
     summary = run_cohort(args.cohort, args.output, recipe=args.recipe, spillover=args.spillover,

@@ -230,3 +230,53 @@ def test_interrupt_or_kill_with_the_pool(tmp_path, how, monkeypatch):
     monkeypatch.setattr(pool_module, "POOL_ROI_BYTES", -1)  # the same cohort in this process
     run_cohort(cohort, tmp_path / "here", progress=False)
     assert _pixel_hashes(out) == _pixel_hashes(tmp_path / "here")
+
+
+def _what_the_worker_inherited(job):
+    """Run in a worker: what it found loaded when it started, before any ROI."""
+    from plexwash.qc.run import warm
+
+    return {"roi": job.roi, "status": "done",
+            "modules": [name for name in ("dask.array", "tifffile") if name in sys.modules],
+            "kernels": len(warm.engine_kernels())}
+
+
+def test_the_warm_fork_server_runs_one_thread_and_its_workers_inherit_the_warm_up(tmp_path):
+    from multiprocessing import forkserver
+
+    pool_module.start_server()
+    pid = forkserver._forkserver._forkserver_pid
+    jobs = [Job("a", tmp_path / "a.ome.tiff", tmp_path, None, tmp_path, "")]
+    # the first worker is forked once the server's preload (the warm-up included) is done
+    (record,) = pool_module.wash_in_processes(jobs, 1, 1, _what_the_worker_inherited, _failed)
+    assert record["modules"] == ["dask.array", "tifffile"]
+    assert record["kernels"] > 20  # the engine's kernel modules were imported before the fork
+    # reference: proc(5), /proc/PID/task holds one entry per thread of the process
+    assert len(os.listdir(f"/proc/{pid}/task")) == 1
+
+
+def test_the_warm_up_loads_the_kernels_a_wash_cached_without_running_them(tmp_path):
+    # a run in this process writes (or reuses) numba's on-disk cache of the kernels it calls
+    run_cohort(_cohort(tmp_path / "cohort", names=("a",)), tmp_path / "run", progress=False)
+    program = ("import sys; from plexwash.qc.run import warm; import threading; "
+               "print(sum(len(k.overloads) for k in warm.engine_kernels()), threading.active_count())")
+    out = subprocess.run([sys.executable, "-c", program], capture_output=True, text=True, check=True)
+    loaded, threads = map(int, out.stdout.split())
+    assert loaded >= 20 and threads == 1  # loaded on import, nothing run (no numba thread)
+
+
+def test_the_command_line_starts_the_fork_server_early_only_for_a_cohort_bound_for_the_pool(tmp_path, monkeypatch):
+    started = []
+    monkeypatch.setattr(pool_module, "start_server", lambda: started.append(1))
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0, 1})
+    two = _cohort(tmp_path / "two", names=("a", "b"))
+    one = _cohort(tmp_path / "one", names=("a",))
+    assert pool_module.start_for_cohort(two) and len(started) == 1
+    assert not pool_module.start_for_cohort(one)  # one ROI: washed in this process
+    assert pool_module.start_for_cohort(one, workers=2) and len(started) == 2  # asked for
+    assert not pool_module.start_for_cohort(tmp_path / "absent")  # the run reports it
+    monkeypatch.setattr(pool_module, "POOL_ROI_BYTES", 1000)
+    assert not pool_module.start_for_cohort(two)  # large ROIs: washed in this process
+    monkeypatch.setattr(os, "sched_getaffinity", lambda pid: {0})
+    monkeypatch.setattr(pool_module, "POOL_ROI_BYTES", 2**30)
+    assert not pool_module.start_for_cohort(two) and len(started) == 2  # one core

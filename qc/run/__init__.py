@@ -77,6 +77,7 @@ The ledger (:mod:`plexwash.qc.ledger`) and the quality table (:mod:`plexwash.qc.
 live outside this package: the report reads them too, and the run calls the report.
 """
 
+from .._lazy import lazy_names
 from ..ledger import (
     LEDGER,
     QUALITY,
@@ -100,11 +101,17 @@ from ..table import (
     read_quality_csv,
     write_quality_table,
 )
-from .cohort import EXIT_ERROR, EXIT_OK, EXIT_SOME_FAILED, RunSummary, run_cohort
-from .demo import DEMO_STACK, run_demo
-from .execute import measure_quality, wash_one
-from .folder import bound_heap, check_run_folder, release_memory
-from .plan import Job
+
+# The run's own modules are imported on first use (PEP 562): the command line starts the
+# workers' fork server (:func:`.pool.start_server`, standard library only) before the
+# engine is imported, so the server's preload runs while this process imports and plans.
+_WHERE = {
+    **dict.fromkeys(("EXIT_ERROR", "EXIT_OK", "EXIT_SOME_FAILED", "RunSummary", "run_cohort"), ".cohort"),
+    "DEMO_STACK": ".demo", "run_demo": ".demo",
+    "measure_quality": ".execute", "wash_one": ".execute",
+    **dict.fromkeys(("bound_heap", "check_run_folder", "release_memory"), ".folder"),
+    "Job": ".plan",
+}
 
 __all__ = [
     "DEMO_STACK",
@@ -140,3 +147,5 @@ __all__ = [
     "wash_one",
     "write_quality_table",
 ]
+
+__getattr__, __dir__ = lazy_names(__name__, globals(), _WHERE)

@@ -19,7 +19,7 @@ from ..errors import InputError, OutputError
 from ..files import remove_path, sweep_leftovers, write_atomic
 from ..ledger import LEDGER, QUALITY, RECIPE, REPORT, RUN_LOG, STAINS_COPY, Ledger, repair_ledger
 from ..table import SAMPLES_COPY, write_quality_table
-from .execute import connect, execute
+from .execute import connect, execute, start_early
 from .folder import interrupts, run_lock
 from .plan import Job, check_inputs, plan_jobs, write_run_files
 from .progress import RunLog
@@ -144,6 +144,7 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None,
                           samples=samples)
     out = inputs.out_dir
     client = connect(scheduler, connect_timeout) if scheduler is not None else None
+    start_early([path for _, path in inputs.rois], workers=workers, client=client)
     with contextlib.ExitStack() as stack:
         if client is not None:
             stack.callback(client.close)

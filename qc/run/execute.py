@@ -28,7 +28,7 @@ from ..files import remove_path, temporary_path
 from ..ledger import json_ready
 from .folder import bound_heap, release_memory
 from .plan import Job
-from .pool import pool_size, wash_in_processes
+from .pool import pool_size, start_server, wash_in_processes
 
 
 def connect(scheduler: str, timeout: float):
@@ -61,6 +61,26 @@ def execute(jobs: list[Job], *, workers, client, log) -> Iterable[dict]:
     processes = min(processes, len(jobs))
     log.line(f"washing on {processes} worker process(es), {max(1, cores // processes)} thread(s) each")
     yield from wash_in_processes(jobs, processes, cores, wash_one, _died)
+
+
+def start_early(inputs: list[Path], *, workers, client) -> bool:
+    """Start the worker processes' fork server now when :func:`execute` will wash these
+    inputs on the pool (the same choice, from the inputs alone), so that its preload runs
+    while the run is planned; True when started."""
+    if client is not None or not inputs:
+        return False
+    processes = int(workers) if workers is not None else pool_size(
+        [_Input(Path(path)) for path in inputs], _cpu_count())
+    if processes:
+        start_server()
+    return bool(processes)
+
+
+@dataclasses.dataclass(frozen=True)
+class _Input:
+    """What :func:`pool_size` reads of a job: its input path."""
+
+    input: Path
 
 
 def _died(job: Job, exc: BaseException) -> dict:

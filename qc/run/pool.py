@@ -8,9 +8,12 @@ they finish. The ledger stays a single writer: the records come back to this pro
 
 - The processes start from a fork server (Linux) that imported the engine once
   (:func:`multiprocessing.set_forkserver_preload`), so each starts without importing it
-  again; elsewhere (Windows, macOS) they are spawned. The fork server is started with
-  one BLAS/OpenMP thread, so it runs no thread when it forks (a process is never forked
-  while it runs threads).
+  again, with what a first ROI would load already loaded (:mod:`.warm`: the reading and
+  washing modules, the cached numba kernels, the default recipe's speckle tables); the
+  command line starts it before it imports the engine itself when the cohort looks bound
+  for the pool (:func:`start_for_cohort`). Elsewhere (Windows, macOS) they are spawned.
+  The fork server is started with one BLAS/OpenMP thread and its warm-up runs no kernel,
+  so it runs no thread when it forks (a process is never forked while it runs threads).
 - Each worker washes one ROI at a time with ``cores // processes`` threads (numba,
   OpenMP and BLAS set to match).
 - A worker that dies (killed, out of memory) gives its ROI a ``failed`` record and is
@@ -48,10 +51,11 @@ WORKER_BYTES_PER_PIXEL_BYTE = 8
 #: Seconds a worker has to stop after SIGTERM before it is killed.
 STOP_SECONDS = 10.0
 
-#: What the fork server imports once, for every worker it forks.
+#: What the fork server imports once, for every worker it forks; the last one
+#: (:mod:`.warm`) imports what a worker's first ROI would and loads the cached kernels.
 PRELOAD = ["plexwash.qc.run.pool", "plexwash.qc.run.execute", "plexwash.qc.wash",
            "plexwash.qc.quality", "plexwash.qc.audit", "plexwash.qc.io", "plexwash.qc.steps.registry",
-           "plexwash.qc.spillover"]
+           "plexwash.qc.spillover", "plexwash.qc.run.warm"]
 
 
 class WorkerDied(RuntimeError):
@@ -259,6 +263,42 @@ def _limit_threads(threads: int) -> None:
 #: with one thread, so it runs no thread when it forks a worker.
 _ONE_THREAD = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1",
                "OMP_WAIT_POLICY": "PASSIVE"}
+
+
+def start_server() -> None:
+    """Start the workers' fork server now (Linux; elsewhere nothing to start).
+
+    Starting it is quick: its preload (the engine's imports and cached kernels, about a
+    second or two of one core) runs in the server's own process, so a run that starts it
+    before planning its jobs has that done by the time it forks the first worker.
+    """
+    _context()
+
+
+def start_for_cohort(cohort_dir, workers=None) -> bool:
+    """Start the fork server (:func:`start_server`) at once when a run of ``cohort_dir`` looks
+    bound for the pool; True when started.
+
+    A guess made before anything heavy is imported, from the cohort's file names and sizes
+    on disk only: ``workers`` given, or at least two ROIs, two cores and the largest ROI
+    file at most :data:`POOL_ROI_BYTES` on disk. The run still decides exactly
+    (:func:`pool_size`) once its inputs are checked; a wrong guess only starts the server
+    early (an idle process) or leaves it to be started then.
+    """
+    from ..errors import InputError
+    from ..io.cohort import list_cohort
+
+    if not sys.platform.startswith("linux"):
+        return False
+    if workers is None:
+        try:
+            rois = list_cohort(cohort_dir)
+        except (InputError, OSError):  # the run says what is wrong with the folder
+            return False
+        if len(rois) < 2 or len(os.sched_getaffinity(0)) < 2 or max(map(_disk_bytes, rois)) > POOL_ROI_BYTES:
+            return False
+    start_server()
+    return True
 
 
 def _context():
