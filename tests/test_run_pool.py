@@ -238,7 +238,8 @@ def _what_the_worker_inherited(job):
 
     return {"roi": job.roi, "status": "done",
             "modules": [name for name in ("dask.array", "tifffile") if name in sys.modules],
-            "kernels": len(warm.engine_kernels())}
+            "kernel_modules": [name for name in warm.MODULES if name.endswith("_kernels")
+                               and name in sys.modules]}
 
 
 def test_the_warm_fork_server_runs_one_thread_and_its_workers_inherit_the_warm_up(tmp_path):
@@ -250,19 +251,22 @@ def test_the_warm_fork_server_runs_one_thread_and_its_workers_inherit_the_warm_u
     # the first worker is forked once the server's preload (the warm-up included) is done
     (record,) = pool_module.wash_in_processes(jobs, 1, 1, _what_the_worker_inherited, _failed)
     assert record["modules"] == ["dask.array", "tifffile"]
-    assert record["kernels"] > 20  # the engine's kernel modules were imported before the fork
+    from plexwash.qc.run import warm
+
+    kernel_modules = [name for name in warm.MODULES if name.endswith("_kernels")]
+    assert len(kernel_modules) >= 5 and record["kernel_modules"] == kernel_modules  # imported before the fork
     # reference: proc(5), /proc/PID/task holds one entry per thread of the process
     assert len(os.listdir(f"/proc/{pid}/task")) == 1
 
 
-def test_the_warm_up_loads_the_kernels_a_wash_cached_without_running_them(tmp_path):
-    # a run in this process writes (or reuses) numba's on-disk cache of the kernels it calls
-    run_cohort(_cohort(tmp_path / "cohort", names=("a",)), tmp_path / "run", progress=False)
-    program = ("import sys; from plexwash.qc.run import warm; import threading; "
-               "print(sum(len(k.overloads) for k in warm.engine_kernels()), threading.active_count())")
+def test_the_warm_up_imports_the_engine_and_makes_the_tables_without_a_thread():
+    program = ("import sys, threading; from plexwash.qc.run import warm; "
+               "from plexwash.qc.steps import speckle_chains as sc; "
+               "print(all(m in sys.modules for m in warm.MODULES if m.startswith('plexwash')), "
+               "sc._chain_tables.cache_info().currsize, threading.active_count())")
     out = subprocess.run([sys.executable, "-c", program], capture_output=True, text=True, check=True)
-    loaded, threads = map(int, out.stdout.split())
-    assert loaded >= 20 and threads == 1  # loaded on import, nothing run (no numba thread)
+    imported, tables, threads = out.stdout.split()
+    assert imported == "True" and int(tables) >= 1 and threads == "1"  # nothing run that starts a thread
 
 
 def test_the_command_line_starts_the_fork_server_early_only_for_a_cohort_bound_for_the_pool(tmp_path, monkeypatch):

@@ -8,8 +8,8 @@ they finish. The ledger stays a single writer: the records come back to this pro
 
 - The processes start from a fork server (Linux) that imported the engine once
   (:func:`multiprocessing.set_forkserver_preload`), so each starts without importing it
-  again, with what a first ROI would load already loaded (:mod:`.warm`: the reading and
-  washing modules, the cached numba kernels, the default recipe's speckle tables); the
+  again, with what a first ROI would import already imported (:mod:`.warm`: the reading
+  and washing modules, the default recipe's speckle tables); the
   command line starts it before it imports the engine itself when the cohort looks bound
   for the pool (:func:`start_for_cohort`). Elsewhere (Windows, macOS) they are spawned.
   The fork server is started with one BLAS/OpenMP thread and its warm-up runs no kernel,
@@ -52,7 +52,7 @@ WORKER_BYTES_PER_PIXEL_BYTE = 8
 STOP_SECONDS = 10.0
 
 #: What the fork server imports once, for every worker it forks; the last one
-#: (:mod:`.warm`) imports what a worker's first ROI would and loads the cached kernels.
+#: (:mod:`.warm`) imports what a worker's first ROI would and makes the default tables.
 PRELOAD = ["plexwash.qc.run.pool", "plexwash.qc.run.execute", "plexwash.qc.wash",
            "plexwash.qc.quality", "plexwash.qc.audit", "plexwash.qc.io", "plexwash.qc.steps.registry",
            "plexwash.qc.spillover", "plexwash.qc.run.warm"]
@@ -268,7 +268,7 @@ _ONE_THREAD = {"OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THR
 def start_server() -> None:
     """Start the workers' fork server now (Linux; elsewhere nothing to start).
 
-    Starting it is quick: its preload (the engine's imports and cached kernels, about a
+    Starting it is quick: its preload (the engine's imports and default tables, about a
     second or two of one core) runs in the server's own process, so a run that starts it
     before planning its jobs has that done by the time it forks the first worker.
     """
