@@ -377,7 +377,11 @@ def _roi_stem(path: Path) -> str:
 
 
 def _run(args) -> int:
-    if args.scheduler is None:  # the workers' fork server imports while this process does
+    from .ledger import LEDGER
+
+    # a first run: the workers' fork server imports while this process does (a rerun has no
+    # early start: most of its ROIs may be done, and the run starts the server if it needs it)
+    if args.scheduler is None and not (Path(args.output) / LEDGER).exists():
         from .run.pool import start_for_cohort
 
         start_for_cohort(args.cohort, args.workers)

@@ -144,7 +144,8 @@ def run_cohort(cohort_dir, out_dir, *, recipe=None, spillover=None, stains=None,
                           samples=samples)
     out = inputs.out_dir
     client = connect(scheduler, connect_timeout) if scheduler is not None else None
-    start_early([path for _, path in inputs.rois], workers=workers, client=client)
+    if not (out / LEDGER).exists():  # a rerun: the plan decides what is left (execute starts the pool)
+        start_early([path for _, path in inputs.rois], workers=workers, client=client)
     with contextlib.ExitStack() as stack:
         if client is not None:
             stack.callback(client.close)
